@@ -1,0 +1,6 @@
+"""Allow ``python -m tracker``."""
+
+from tracker.cli import main
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

@@ -1,0 +1,1 @@
+"""Data layer: SQLAlchemy models, engine and sessions, migrations glue."""
