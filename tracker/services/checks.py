@@ -1,0 +1,167 @@
+"""Vectorised cell checks shared by the file readers: each collects :class:`Problem` rows, never raises."""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+
+import numpy as np
+import pandas as pd
+
+from tracker.domain.catalogue import suggest
+from tracker.domain.plausibility import Range
+from tracker.errors import Problem
+from tracker.services.tables import ROW
+
+ISO_DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
+CODE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,39}$")
+
+
+class Collector:
+    """Accumulates problems for one file; helpers take boolean masks over the table's rows."""
+
+    def __init__(self, cells: pd.DataFrame):
+        self.cells = cells
+        self.rows = cells[ROW].to_numpy()
+        self.problems: list[Problem] = []
+
+    def add(self, mask: np.ndarray | pd.Series, column: str, message: str, values: pd.Series | None = None) -> None:
+        mask = np.asarray(mask, dtype=bool)
+        if not mask.any():
+            return
+        shown = (values if values is not None else self.cells[column]).to_numpy()
+        for index in np.flatnonzero(mask):
+            value = shown[index]
+            self.problems.append(
+                Problem(int(self.rows[index]), column, None if value is None else str(value), message)
+            )
+
+    def add_one(self, row: int | None, column: str | None, value: str | None, message: str) -> None:
+        self.problems.append(Problem(row, column, value, message))
+
+    def sorted_problems(self) -> list[Problem]:
+        return sorted(self.problems, key=lambda p: (p.row or 0, p.column or "", p.message))
+
+
+def text(cells: pd.DataFrame, column: str) -> pd.Series:
+    """The column's cells as text, ``""`` when the column is absent."""
+    if column in cells:
+        return cells[column].astype(str)
+    return pd.Series([""] * len(cells), index=cells.index, dtype=str)
+
+
+def number(
+    collect: Collector,
+    column: str,
+    *,
+    required: np.ndarray | bool = False,
+    words: tuple[str, ...] = (),
+    unit: str = "",
+) -> tuple[np.ndarray, np.ndarray]:
+    """Parse a numeric column. Returns ``(values, word_mask)``: NaN where empty or a word from ``words``.
+
+    Problems: text that is not a number (with a hint for decimal commas); an empty cell where ``required``.
+    """
+    raw = text(collect.cells, column)
+    lowered = raw.str.lower()
+    empty = (raw == "").to_numpy()
+    is_word = lowered.isin(words).to_numpy() if words else np.zeros(len(raw), dtype=bool)
+    candidate = raw.where(~(empty | is_word), None)
+    values = pd.to_numeric(candidate, errors="coerce").to_numpy(dtype=float, na_value=np.nan).copy()
+    bad = ~empty & ~is_word & (np.isnan(values) | np.isinf(values))
+    values[np.isinf(values)] = np.nan
+    with_comma = raw.str.contains(",", regex=False).to_numpy()
+    expected = f"a number in {unit}" if unit else "a number"
+    if words:
+        expected += " or " + " / ".join(repr(w) for w in words[:1])
+    collect.add(bad & with_comma, column, f"not a number; expected {expected} with a point as the decimal separator")
+    collect.add(bad & ~with_comma, column, f"not a number; expected {expected}")
+    required_mask = np.broadcast_to(np.asarray(required, dtype=bool), empty.shape)
+    collect.add(required_mask & empty, column, f"required value is missing; expected {expected}")
+    return values, is_word
+
+
+def in_range(collect: Collector, column: str, values: np.ndarray, rule: Range, *, skip: np.ndarray | None = None) -> None:
+    outside = rule.outside(values)
+    if skip is not None:
+        outside &= ~skip
+    collect.add(outside, column, f"outside the plausible range; expected {rule.describe()}")
+
+
+def vocabulary(
+    collect: Collector,
+    column: str,
+    mapping: dict[str, str],
+    *,
+    required: bool = False,
+    shown_choices: list[str] | tuple[str, ...] | None = None,
+) -> pd.Series:
+    """Map cells through ``mapping`` (lower-cased keys); unknown words get a "did you mean" hint."""
+    raw = text(collect.cells, column)
+    key = raw.str.lower().str.replace("-", "_", regex=False).str.replace(" ", "_", regex=False)
+    mapped = key.map(mapping)
+    empty = (raw == "").to_numpy()
+    unknown = ~empty & mapped.isna().to_numpy()
+    choices = list(shown_choices or sorted(set(mapping.values())))
+    if unknown.any():
+        for word in pd.unique(key[unknown]):
+            hint = suggest(word, list(mapping))
+            hint_text = f"; did you mean {mapping[hint]!r}?" if hint else ""
+            collect.add(
+                unknown & (key == word).to_numpy(),
+                column,
+                f"unknown value; expected one of {', '.join(choices)}{hint_text}",
+            )
+    if required:
+        collect.add(empty, column, f"required value is missing; expected one of {', '.join(choices)}")
+    return mapped
+
+
+def iso_dates(collect: Collector, column: str, *, required: bool, not_after: dt.date | None) -> pd.Series:
+    """Parse ``YYYY-MM-DD`` dates; refuse impossible dates and dates after ``not_after``."""
+    raw = text(collect.cells, column)
+    empty = (raw == "").to_numpy()
+    shaped = raw.str.match(ISO_DATE).to_numpy(dtype=bool)
+    parsed = pd.to_datetime(raw.where(shaped, None), format="%Y-%m-%d", errors="coerce")
+    invalid = ~empty & (~shaped | parsed.isna().to_numpy())
+    collect.add(invalid, column, "not a real date; expected YYYY-MM-DD (ISO 8601)")
+    if required:
+        collect.add(empty, column, "required date is missing; expected YYYY-MM-DD")
+    if not_after is not None:
+        future = (parsed > pd.Timestamp(not_after)).to_numpy(dtype=bool)
+        collect.add(future, column, f"date is in the future (after {not_after.isoformat()})")
+    return parsed
+
+
+def patient_codes(collect: Collector, column: str = "patient") -> pd.Series:
+    raw = text(collect.cells, column)
+    empty = (raw == "").to_numpy()
+    collect.add(empty, column, "required patient code is missing")
+    bad = ~empty & ~raw.str.match(CODE).to_numpy(dtype=bool)
+    collect.add(
+        bad,
+        column,
+        "not a valid patient code; expected 1–40 letters, digits, '.', '_' or '-' (a pseudonymous code, "
+        "never a name or record number)",
+    )
+    return raw
+
+
+def unknown_columns(collect: Collector, known: list[str]) -> None:
+    for column in collect.cells.columns:
+        if column == ROW or column in known:
+            continue
+        hint = suggest(column, known)
+        collect.add_one(
+            1,
+            column,
+            column,
+            "unknown column" + (f"; did you mean {hint!r}?" if hint else "") + " Rename or remove it.",
+        )
+
+
+def missing_columns(collect: Collector, required: list[str]) -> bool:
+    missing = [c for c in required if c not in collect.cells.columns]
+    for column in missing:
+        collect.add_one(1, column, None, "required column is missing from the header row")
+    return bool(missing)

@@ -1,0 +1,428 @@
+"""Import a measurements, treatments or scores file: validate everything, then write in one transaction.
+
+The caller owns the transaction: on any :class:`~tracker.errors.InputRejected` nothing has been written.
+Re-importing identical content changes no clinical data; changed content of a stored visit (or treatment,
+or score) is refused unless ``replace`` is given, and a replaced visit keeps its earlier values in
+``visit_revisions``.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+from collections.abc import Iterable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+from sqlalchemy import delete, insert, select, update
+from sqlalchemy.orm import Session
+
+from tracker.db.models import (
+    NerveTest,
+    OutcomeScore,
+    Patient,
+    StimulationSite,
+    Treatment,
+    Visit,
+    VisitRevision,
+    utc_now,
+)
+from tracker.errors import InputRejected, Problem
+from tracker.services import audit
+from tracker.services.clinical_file import SCORE_KEY, TREATMENT_KEY, validate_scores, validate_treatments
+from tracker.services.measurement_file import MeasurementBatch, validate_measurements
+from tracker.services.tables import ROW, read_table
+
+CHUNK = 500  # keys per IN (...) list: well under every backend's parameter limit
+
+
+@dataclass
+class ImportReport:
+    """What an import did (or, with ``dry_run``, would do)."""
+
+    kind: str
+    rows: int
+    dry_run: bool
+    added: int = 0
+    replaced: int = 0
+    unchanged: int = 0
+    patients_added: int = 0
+    unusual: list[Problem] = field(default_factory=list)
+
+    def summary(self) -> str:
+        noun = {"measurements": "visits", "treatments": "treatment periods", "scores": "scores"}[self.kind]
+        verb = "would add" if self.dry_run else "added"
+        text = (
+            f"{self.kind}: {self.rows} rows checked; {verb} {self.added} {noun}, "
+            f"{'would replace' if self.dry_run else 'replaced'} {self.replaced}, {self.unchanged} unchanged"
+        )
+        if self.kind == "measurements":
+            text += f"; {self.patients_added} new patients"
+        if self.unusual:
+            text += f"; {len(self.unusual)} unusual values accepted with --allow-unusual"
+        return text + (" (dry run: nothing written)" if self.dry_run else "")
+
+
+def _chunks(values: list[Any], size: int = CHUNK) -> Iterable[list[Any]]:
+    for start in range(0, len(values), size):
+        yield values[start : start + size]
+
+
+def _clean(value: Any) -> Any:
+    """NaN → None; numpy scalars → Python scalars (for the database driver)."""
+    if value is None:
+        return None
+    if isinstance(value, float) and math.isnan(value):
+        return None
+    if hasattr(value, "item"):
+        value = value.item()
+        if isinstance(value, float) and math.isnan(value):
+            return None
+    if value is pd.NaT:
+        return None
+    return value
+
+
+def _records(frame: pd.DataFrame, columns: list[str]) -> list[dict[str, Any]]:
+    data = frame[columns].astype(object).where(frame[columns].notna(), None)
+    return [dict(zip(columns, (_clean(v) for v in row))) for row in data.itertuples(index=False, name=None)]
+
+
+def import_file(
+    session: Session,
+    path: Path,
+    *,
+    username: str,
+    dry_run: bool = False,
+    replace: bool = False,
+    allow_unusual: bool = False,
+    today: dt.date | None = None,
+) -> ImportReport:
+    """Import one file (kind recognised from its header). Raises :class:`InputRejected` on any problem."""
+    table = read_table(path)
+    if table.kind == "measurements":
+        batch = validate_measurements(table.cells, allow_unusual=allow_unusual, today=today)
+        report = _store_measurements(session, batch, username=username, dry_run=dry_run, replace=replace)
+    elif table.kind == "treatments":
+        frame = validate_treatments(table.cells, today=today)
+        report = _store_records(session, frame, kind="treatments", username=username, dry_run=dry_run, replace=replace)
+    else:
+        frame = validate_scores(table.cells, today=today)
+        report = _store_records(session, frame, kind="scores", username=username, dry_run=dry_run, replace=replace)
+    report.rows = len(table.cells)
+    if not dry_run:
+        audit.record(
+            session,
+            username=username,
+            action=f"import_{table.kind}",
+            entity="file",
+            entity_key=f"sha256:{table.sha256[:16]}",
+            after={
+                "file_sha256": table.sha256,
+                "rows": report.rows,
+                "added": report.added,
+                "replaced": report.replaced,
+                "unchanged": report.unchanged,
+                "patients_added": report.patients_added,
+                "replace": replace,
+                "allow_unusual": allow_unusual,
+                "unusual_values_accepted": [str(p) for p in report.unusual],
+            },
+        )
+    return report
+
+
+# -- measurements ---------------------------------------------------------------------------------------------
+
+
+def _existing_patients(session: Session, codes: list[str]) -> pd.DataFrame:
+    found = []
+    for part in _chunks(codes):
+        found += session.execute(
+            select(Patient.id, Patient.code, Patient.sex, Patient.birth_year).where(Patient.code.in_(part))
+        ).all()
+    return pd.DataFrame(found, columns=["patient_id", "patient", "db_sex", "db_birth_year"])
+
+
+def _existing_visits(session: Session, patient_ids: list[int]) -> pd.DataFrame:
+    found = []
+    for part in _chunks(patient_ids):
+        found += session.execute(
+            select(Visit.id, Visit.patient_id, Visit.visit_date, Visit.content_sha256, Visit.status, Visit.version)
+            .where(Visit.patient_id.in_(part))
+        ).all()
+    return pd.DataFrame(found, columns=["visit_id", "patient_id", "visit_date", "db_fingerprint", "status", "version"])
+
+
+def _patient_conflicts(patients: pd.DataFrame) -> list[Problem]:
+    problems = []
+    for row in patients.itertuples():
+        for column, stored in (("sex", row.db_sex), ("birth_year", row.db_birth_year)):
+            given = getattr(row, column)
+            if given is None or pd.isna(given) or stored is None or pd.isna(stored):
+                continue
+            if (float(given) != float(stored)) if column == "birth_year" else given != stored:
+                problems.append(
+                    Problem(
+                        int(getattr(row, ROW)),
+                        column,
+                        str(given if column == "sex" else int(given)),
+                        f"patient {row.patient} is stored with {column} {stored!r}; import with --replace to change it",
+                    )
+                )
+    return problems
+
+
+def _store_measurements(session: Session, batch: MeasurementBatch, *, username: str, dry_run: bool, replace: bool) -> ImportReport:
+    report = ImportReport(kind="measurements", rows=0, dry_run=dry_run, unusual=batch.unusual)
+    codes = batch.patients["patient"].tolist()
+    patients = batch.patients.merge(_existing_patients(session, codes), on="patient", how="left")
+    conflicts = _patient_conflicts(patients[patients["patient_id"].notna()])
+
+    known_ids = [int(i) for i in patients["patient_id"].dropna()]
+    stored = _existing_visits(session, known_ids)
+    visits = batch.visits.merge(patients[["patient", "patient_id"]], on="patient", how="left")
+    visits = visits.merge(stored, on=["patient_id", "visit_date"], how="left")
+    is_stored = visits["visit_id"].notna()
+    unchanged = is_stored & (visits["db_fingerprint"] == visits["fingerprint"])
+    changed = is_stored & ~unchanged
+    if not replace:
+        for row in visits[changed].itertuples():
+            conflicts.append(
+                Problem(
+                    int(getattr(row, ROW)),
+                    "visit_date",
+                    row.visit_date.isoformat(),
+                    f"the visit of {row.patient} on this date is already stored with different values; "
+                    "import with --replace to replace it (the earlier values are kept in its history)",
+                )
+            )
+    if conflicts:
+        raise InputRejected("The file conflicts with stored data", sorted(conflicts, key=lambda p: p.row or 0))
+
+    new_patients = patients[patients["patient_id"].isna()]
+    report.patients_added = len(new_patients)
+    report.unchanged = int(unchanged.sum())
+    report.replaced = int(changed.sum())
+    report.added = int((~is_stored).sum())
+    if dry_run:
+        return report
+
+    if len(new_patients):
+        session.execute(
+            insert(Patient),
+            [
+                {"code": r["patient"], "sex": r["sex"], "birth_year": None if r["birth_year"] is None else int(r["birth_year"]), "created_at": utc_now()}
+                for r in _records(new_patients, ["patient", "sex", "birth_year"])
+            ],
+        )
+    _fill_or_replace_patients(session, patients[patients["patient_id"].notna()], username=username, replace=replace)
+    ids = _existing_patients(session, codes).set_index("patient")["patient_id"]
+    visits["patient_id"] = visits["patient"].map(ids).astype(int)
+
+    replaced_ids = [int(v) for v in visits.loc[changed, "visit_id"]]
+    if replaced_ids:
+        _keep_history(session, visits[changed], username=username)
+        for part in _chunks(replaced_ids):
+            session.execute(delete(NerveTest).where(NerveTest.visit_id.in_(part)))
+        for row in _records(visits[changed], ["visit_id", "height_cm", "diagnosis", "phenotype", "fingerprint", "version"]):
+            session.execute(
+                update(Visit)
+                .where(Visit.id == row["visit_id"])
+                .values(
+                    height_cm=row["height_cm"],
+                    diagnosis=row["diagnosis"],
+                    phenotype=row["phenotype"],
+                    content_sha256=row["fingerprint"],
+                    version=int(row["version"]) + 1,
+                    updated_at=utc_now(),
+                )
+            )
+
+    new_visits = visits[~is_stored]
+    now = utc_now()
+    if len(new_visits):
+        rows = _records(new_visits, ["patient_id", "visit_date", "height_cm", "diagnosis", "phenotype", "fingerprint"])
+        for r in rows:
+            r["content_sha256"] = r.pop("fingerprint")
+            r.update(status="final", version=1, created_at=now)
+        new_ids = session.scalars(insert(Visit).returning(Visit.id, sort_by_parameter_order=True), rows).all()
+        visits.loc[~is_stored, "visit_id"] = new_ids
+
+    written = visits[~unchanged][["patient", "visit_date", "visit_id"]]
+    _insert_nerve_tests(session, batch, written)
+    _refresh_patient_diagnosis(session, [int(i) for i in visits["patient_id"].unique()])
+    return report
+
+
+def _fill_or_replace_patients(session: Session, known: pd.DataFrame, *, username: str, replace: bool) -> None:
+    """Fill empty sex / birth year of stored patients; overwrite differing ones only with ``replace``."""
+    for row in known.itertuples():
+        changes = {}
+        for column, stored in (("sex", row.db_sex), ("birth_year", row.db_birth_year)):
+            given = getattr(row, column)
+            if given is None or pd.isna(given):
+                continue
+            given = int(given) if column == "birth_year" else given
+            if stored is None or pd.isna(stored) or (replace and given != stored):
+                changes[column] = given
+        if changes:
+            before = {k: _clean(getattr(row, f"db_{k}")) for k in changes}
+            session.execute(update(Patient).where(Patient.id == int(row.patient_id)).values(**changes))
+            audit.record(session, username=username, action="update_patient", entity="patients", entity_key=row.patient, before=before, after=changes)
+
+
+def _snapshot(session: Session, visit_ids: list[int]) -> dict[int, dict[str, Any]]:
+    """The stored content of each visit, as plain JSON-ready data."""
+    tests_by_visit: dict[int, list[dict[str, Any]]] = {v: [] for v in visit_ids}
+    test_columns = [c for c in NerveTest.__table__.columns if c.name not in ("id", "visit_id")]
+    site_columns = [c for c in StimulationSite.__table__.columns if c.name not in ("id", "nerve_test_id")]
+    visit_columns = [Visit.height_cm, Visit.diagnosis, Visit.phenotype, Visit.examiner, Visit.laboratory]
+    visits = {}
+    for part in _chunks(visit_ids):
+        for row in session.execute(select(Visit.id, *visit_columns).where(Visit.id.in_(part))):
+            visits[row[0]] = {c.key: _clean(v) for c, v in zip(visit_columns, row[1:])}
+        tests = session.execute(select(NerveTest.id, NerveTest.visit_id, *test_columns).where(NerveTest.visit_id.in_(part))).all()
+        test_ids = [t[0] for t in tests]
+        sites: dict[int, list[dict[str, Any]]] = {t: [] for t in test_ids}
+        for test_part in _chunks(test_ids):
+            for s in session.execute(
+                select(StimulationSite.nerve_test_id, *site_columns).where(StimulationSite.nerve_test_id.in_(test_part)).order_by(StimulationSite.site_order)
+            ):
+                sites[s[0]].append({c.name: _clean(v) for c, v in zip(site_columns, s[1:])})
+        for t in tests:
+            entry = {c.name: _clean(v) for c, v in zip(test_columns, t[2:])}
+            entry["sites"] = sites[t[0]]
+            tests_by_visit[t[1]].append(entry)
+    return {v: {"visit": visits.get(v, {}), "nerve_tests": tests_by_visit[v]} for v in visit_ids}
+
+
+def _keep_history(session: Session, changed: pd.DataFrame, *, username: str) -> None:
+    visit_ids = [int(v) for v in changed["visit_id"]]
+    snapshots = _snapshot(session, visit_ids)
+    now = utc_now()
+    for row in changed.itertuples():
+        visit_id = int(row.visit_id)
+        session.execute(
+            insert(VisitRevision),
+            [
+                {
+                    "visit_id": visit_id,
+                    "revision": int(row.version),
+                    "status": row.status,
+                    "content_sha256": row.db_fingerprint,
+                    "snapshot": snapshots[visit_id],
+                    "replaced_at": now,
+                    "replaced_by": username,
+                    "reason": "import --replace",
+                }
+            ],
+        )
+        audit.record(
+            session,
+            username=username,
+            action="replace_visit",
+            entity="visits",
+            entity_key=f"{row.patient}/{row.visit_date.isoformat()}",
+            before={"version": int(row.version), "content_sha256": row.db_fingerprint, "kept_as_revision": int(row.version)},
+            after={"version": int(row.version) + 1, "content_sha256": row.fingerprint},
+        )
+
+
+def _insert_nerve_tests(session: Session, batch: MeasurementBatch, written: pd.DataFrame) -> None:
+    if written.empty:
+        return
+    key = ["patient", "visit_date"]
+    tests = batch.nerve_tests.merge(written, on=key, how="inner")
+    test_columns = ["visit_id", "nerve", "side", "modality", "recording_site", "temperature_c", "lff_hz", "f_latency_ms", "f_absent", "f_persistence_pct", "wrist_entrapment"]
+    rows = _records(tests, test_columns)
+    for r in rows:
+        r["visit_id"] = int(r["visit_id"])
+        r["f_absent"] = bool(r["f_absent"])
+    tests["nerve_test_id"] = session.scalars(insert(NerveTest).returning(NerveTest.id, sort_by_parameter_order=True), rows).all()
+    sites = batch.sites.merge(tests[["patient", "visit_date", "nerve", "side", "modality", "nerve_test_id"]], on=["patient", "visit_date", "nerve", "side", "modality"], how="inner")
+    site_columns = ["nerve_test_id", "site_order", "label", "distance_mm", "latency_ms", "peak_latency_ms", "amplitude_mv", "amplitude_uv", "duration_ms", "area_mvms"]
+    session.execute(insert(StimulationSite), _records(sites, site_columns))
+
+
+def _refresh_patient_diagnosis(session: Session, patient_ids: list[int]) -> None:
+    """A patient's current diagnosis and phenotype are those of their latest visit that states them."""
+    for column in ("diagnosis", "phenotype"):
+        latest = (
+            select(getattr(Visit, column))
+            .where(Visit.patient_id == Patient.id, getattr(Visit, column).is_not(None))
+            .order_by(Visit.visit_date.desc())
+            .limit(1)
+            .scalar_subquery()
+        )
+        for part in _chunks(patient_ids):
+            session.execute(update(Patient).where(Patient.id.in_(part)).values({column: latest}))
+
+
+# -- treatments and scores ------------------------------------------------------------------------------------
+
+
+def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username: str, dry_run: bool, replace: bool) -> ImportReport:
+    report = ImportReport(kind=kind, rows=0, dry_run=dry_run)
+    model = Treatment if kind == "treatments" else OutcomeScore
+    key = TREATMENT_KEY if kind == "treatments" else SCORE_KEY
+    value_columns = ["end_date", "dose", "dose_unit", "interval_days", "note"] if kind == "treatments" else ["value"]
+    date_column = "start_date" if kind == "treatments" else "score_date"
+    frame = frame.rename(columns={"date": "score_date"}) if kind == "scores" else frame
+    key = [date_column if k == "date" else k for k in key]
+
+    codes = sorted(frame["patient"].unique())
+    ids = _existing_patients(session, codes).set_index("patient")["patient_id"]
+    problems = []
+    for row in frame[~frame["patient"].isin(ids.index)].itertuples():
+        problems.append(
+            Problem(int(getattr(row, ROW)), "patient", row.patient, "unknown patient; import the patient's measurements first (or check the code)")
+        )
+    if problems:
+        raise InputRejected(f"The {kind} file was refused", problems)
+    frame = frame.assign(patient_id=frame["patient"].map(ids).astype(int))
+    key_db = ["patient_id"] + key[1:]
+
+    stored_rows = []
+    for part in _chunks([int(i) for i in ids]):
+        stored_rows += session.execute(
+            select(model.id, *[getattr(model, c) for c in key_db + value_columns]).where(model.patient_id.in_(part))
+        ).all()
+    stored = pd.DataFrame(stored_rows, columns=["record_id"] + key_db + [f"db_{c}" for c in value_columns])
+    merged = frame.merge(stored, on=key_db, how="left")
+    is_stored = merged["record_id"].notna()
+    same = pd.Series(True, index=merged.index)
+    for column in value_columns:
+        a, b = merged[column], merged[f"db_{column}"]
+        same &= (a.isna() & b.isna()) | (a.astype(object) == b.astype(object))
+    unchanged = is_stored & same
+    changed = is_stored & ~same
+    if changed.any() and not replace:
+        raise InputRejected(
+            "The file conflicts with stored data",
+            [
+                Problem(int(getattr(r, ROW)), value_columns[0], None, f"this {kind[:-1]} of {r.patient} is already stored with different values; import with --replace to replace it")
+                for r in merged[changed].itertuples()
+            ],
+        )
+    report.added, report.replaced, report.unchanged = int((~is_stored).sum()), int(changed.sum()), int(unchanged.sum())
+    if dry_run:
+        return report
+    if (~is_stored).any():
+        session.execute(insert(model), [{k: _clean(v) if k != "interval_days" or v is None else int(v) for k, v in r.items()} for r in _records(merged[~is_stored], key_db + value_columns)])
+    for r in merged[changed].itertuples():
+        before = {c: _jsonable(getattr(r, f"db_{c}")) for c in value_columns}
+        after = {c: _jsonable(getattr(r, c)) for c in value_columns}
+        values = {c: _clean(getattr(r, c)) for c in value_columns}
+        if "interval_days" in values and values["interval_days"] is not None:
+            values["interval_days"] = int(values["interval_days"])
+        session.execute(update(model).where(model.id == int(r.record_id)).values(**values))
+        audit.record(session, username=username, action=f"replace_{kind[:-1]}", entity=model.__tablename__, entity_key=f"{r.patient}/{getattr(r, key[1])}/{getattr(r, key[-1])}", before=before, after=after)
+    return report
+
+
+def _jsonable(value: Any) -> Any:
+    value = _clean(value)
+    return value.isoformat() if isinstance(value, dt.date) else value

@@ -1,0 +1,402 @@
+"""Validate a measurements table (DESIGN.md §4.1) into typed visits, nerve tests and stimulation sites.
+
+Everything is checked before anything is written: every problem is collected with its row and column.
+Plausibility ranges come from ``reference/plausibility.csv``; the velocity range may be waived with
+``allow_unusual`` (the waived findings are returned so that the import records them).
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from tracker.domain import catalogue
+from tracker.domain.conduction import quantise_array
+from tracker.domain.plausibility import ranges
+from tracker.domain.vocabulary import ABSENT_WORDS, DIAGNOSES, PHENOTYPES, SEXES, SIDE_ALIASES, YES_NO
+from tracker.errors import InputRejected, Problem
+from tracker.services import checks
+from tracker.services.checks import Collector
+from tracker.services.tables import ROW
+
+REQUIRED = ["patient", "visit_date", "nerve", "side", "modality", "site_order", "distance_mm", "latency_ms"]
+AMPLITUDES = ["amplitude_mv", "amplitude_uv"]
+OPTIONAL = [
+    "site",
+    "peak_latency_ms",
+    "duration_ms",
+    "area_mvms",
+    "temperature_c",
+    "lff_hz",
+    "f_latency_ms",
+    "f_persistence_pct",
+    "recording_site",
+    "height_cm",
+    "sex",
+    "birth_year",
+    "diagnosis",
+    "phenotype",
+    "wrist_entrapment",
+]
+KNOWN = REQUIRED + AMPLITUDES + OPTIONAL
+NERVE_LEVEL = ["temperature_c", "lff_hz", "f_latency_ms", "f_absent", "f_persistence_pct", "recording_site", "wrist_entrapment"]
+VISIT_LEVEL = ["height_cm", "diagnosis", "phenotype"]
+PATIENT_LEVEL = ["sex", "birth_year"]
+TEST_KEY = ["patient", "visit_date", "nerve", "side", "modality"]
+VISIT_KEY = ["patient", "visit_date"]
+SITE_VALUES = ["site_order", "label", "distance_mm", "latency_ms", "peak_latency_ms", "amplitude_mv", "amplitude_uv", "duration_ms", "area_mvms"]
+
+
+@dataclass
+class MeasurementBatch:
+    """Validated content of a measurements file, in canonical units and names.
+
+    ``sites``: one row per stimulation site (keys + site values). ``nerve_tests``: one row per nerve test
+    (keys + nerve-level values). ``visits``: one row per visit (keys + visit-level values + ``fingerprint``).
+    ``patients``: one row per patient code (``sex``, ``birth_year``, possibly missing).
+    """
+
+    sites: pd.DataFrame
+    nerve_tests: pd.DataFrame
+    visits: pd.DataFrame
+    patients: pd.DataFrame
+    unusual: list[Problem] = field(default_factory=list)
+
+
+def _word_map(words) -> dict[str, str]:
+    return {w: w for w in words}
+
+
+def _nerve_mapping(collect: Collector) -> pd.Series:
+    raw = checks.text(collect.cells, "nerve")
+    words = raw.map(catalogue.normalise_word)
+    uniques = pd.unique(words)
+    canonical = {w: catalogue.canonical_nerve(w) for w in uniques if w}
+    mapped = words.map(canonical)
+    unknown = (raw != "").to_numpy() & mapped.isna().to_numpy()
+    for word in pd.unique(words[unknown]):
+        hint = catalogue.suggest(word, catalogue.known_nerve_words())
+        hint_text = f"; did you mean {catalogue.canonical_nerve(hint)!r}?" if hint else ""
+        collect.add(
+            unknown & (words == word).to_numpy(),
+            "nerve",
+            f"unknown nerve{hint_text} Known nerves: {', '.join(sorted(catalogue.nerves()))}",
+        )
+    collect.add((raw == "").to_numpy(), "nerve", "required nerve name is missing")
+    return mapped
+
+
+def _site_labels(collect: Collector, nerve: pd.Series, modality: pd.Series) -> pd.Series:
+    raw = checks.text(collect.cells, "site")
+    result = pd.Series([None] * len(raw), index=raw.index, dtype=object)
+    present = (raw != "").to_numpy() & nerve.notna().to_numpy() & modality.notna().to_numpy()
+    if not present.any():
+        return result
+    frame = pd.DataFrame({"n": nerve[present], "m": modality[present], "w": raw[present].map(catalogue.normalise_word)})
+    for (n, m, w), index in frame.groupby(["n", "m", "w"]).groups.items():
+        label = catalogue.canonical_site(n, m, w)
+        if label is not None:
+            result.loc[index] = label
+            continue
+        known = catalogue.known_site_words(n, m)
+        hint = catalogue.suggest(w, known)
+        hint_text = f"; did you mean {catalogue.canonical_site(n, m, hint)!r}?" if hint else ""
+        mask = np.zeros(len(raw), dtype=bool)
+        mask[collect.cells.index.get_indexer(index)] = True
+        collect.add(
+            mask,
+            "site",
+            f"unknown stimulation site for the {m} {n} nerve{hint_text} Known sites: "
+            + (", ".join(sorted({catalogue.canonical_site(n, m, k) for k in known})) or "none listed"),
+        )
+    return result
+
+
+def _consistency(collect: Collector, frame: pd.DataFrame, group: np.ndarray, columns: list[str], level: str) -> None:
+    """Values of a nerve-, visit- or patient-level column must agree on every row that states them."""
+    for column in columns:
+        series = frame[column]
+        counts = series.groupby(group).nunique(dropna=True)
+        for group_id in counts.index[counts.to_numpy() > 1]:
+            members = np.flatnonzero(group == group_id)
+            stated = members[series.iloc[members].notna().to_numpy()]
+            shown = ", ".join(f"row {collect.rows[i]}: {series.iloc[i]!r}" for i in stated)
+            source_column = "f_latency_ms" if column == "f_absent" else column
+            collect.add_one(
+                int(collect.rows[stated[-1]]),
+                source_column,
+                None,
+                f"rows of the same {level} disagree ({shown}); a {level}-level value must be the same on every row",
+            )
+
+
+def _group_ids(frame: pd.DataFrame, keys: list[str]) -> np.ndarray:
+    return frame.groupby(keys, sort=False, dropna=False).ngroup().to_numpy()
+
+
+def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, today: dt.date | None = None) -> MeasurementBatch:
+    """Check every cell and every group of rows; raise :class:`InputRejected` listing all problems."""
+    today = today or dt.date.today()
+    limits = ranges()
+    collect = Collector(cells)
+    checks.unknown_columns(collect, KNOWN)
+    missing = checks.missing_columns(collect, REQUIRED)
+    if not any(c in cells.columns for c in AMPLITUDES):
+        collect.add_one(1, "amplitude_mv", None, "the header needs amplitude_mv (motor) and/or amplitude_uv (sensory)")
+        missing = True
+    if missing or len(cells) == 0:
+        if len(cells) == 0 and not missing:
+            collect.add_one(None, None, None, "the file has a header but no data rows")
+        raise InputRejected("The measurements file was refused", collect.sorted_problems())
+
+    patient = checks.patient_codes(collect)
+    visit_date = checks.iso_dates(collect, "visit_date", required=True, not_after=today)
+    nerve = _nerve_mapping(collect)
+    side = checks.vocabulary(collect, "side", SIDE_ALIASES, required=True, shown_choices=["left", "right", "L", "R"])
+    modality = checks.vocabulary(collect, "modality", _word_map(("motor", "sensory")), required=True)
+    motor = (modality == "motor").to_numpy()
+    sensory = (modality == "sensory").to_numpy()
+
+    # A nerve must be studied in a modality it has.
+    known_pair = np.array(
+        [n is None or pd.isna(n) or m is None or pd.isna(m) or m in catalogue.nerves()[n].modalities for n, m in zip(nerve, modality)],
+        dtype=bool,
+    )
+    collect.add(~known_pair, "modality", "this nerve is not studied in this modality here (see reference/nerves.csv)")
+
+    site_order, _ = checks.number(collect, "site_order", required=True)
+    bad_order = ~np.isnan(site_order) & ((site_order < 1) | (site_order != np.floor(site_order)) | (site_order > 20))
+    collect.add(bad_order, "site_order", "expected a whole number from 1 (most distal) to 20")
+    collect.add(sensory & ~np.isnan(site_order) & (site_order != 1), "site_order", "a sensory test has one stimulation site: site_order must be 1")
+
+    distance, _ = checks.number(collect, "distance_mm", required=True, unit="mm")
+    checks.in_range(collect, "distance_mm", distance, limits["distance_mm"])
+
+    amplitude_mv, _ = checks.number(collect, "amplitude_mv", unit="mV")
+    amplitude_uv, _ = checks.number(collect, "amplitude_uv", unit="µV")
+    checks.in_range(collect, "amplitude_mv", amplitude_mv, limits["amplitude_mv"])
+    checks.in_range(collect, "amplitude_uv", amplitude_uv, limits["amplitude_uv"])
+    collect.add(motor & np.isnan(amplitude_mv), "amplitude_mv", "a motor row needs the CMAP amplitude in mV (0 for no response)")
+    collect.add(motor & ~np.isnan(amplitude_uv), "amplitude_uv", "a motor row gives its amplitude in amplitude_mv, not µV")
+    collect.add(sensory & np.isnan(amplitude_uv), "amplitude_uv", "a sensory row needs the SNAP amplitude in µV (0 for no response)")
+    collect.add(sensory & ~np.isnan(amplitude_mv), "amplitude_mv", "a sensory row gives its amplitude in amplitude_uv, not mV")
+    amplitude = np.where(motor, amplitude_mv, amplitude_uv)
+
+    latency, latency_absent = checks.number(collect, "latency_ms", words=ABSENT_WORDS, unit="ms")
+    checks.in_range(collect, "latency_ms", latency, limits["latency_ms"])
+    no_response = amplitude == 0
+    has_amplitude = ~np.isnan(amplitude) & (amplitude > 0)
+    collect.add(no_response & ~np.isnan(latency), "latency_ms", "amplitude 0 records no response: leave latency_ms empty (or write 'absent')")
+    latency_text = checks.text(cells, "latency_ms")
+    collect.add(has_amplitude & np.isnan(latency) & ~latency_absent & (latency_text == "").to_numpy(), "latency_ms", "a recorded response needs its onset latency in ms")
+    collect.add(has_amplitude & latency_absent, "latency_ms", "latency says 'absent' but the amplitude is above 0; write amplitude 0 for no response")
+
+    peak_latency, _ = checks.number(collect, "peak_latency_ms", unit="ms")
+    checks.in_range(collect, "peak_latency_ms", peak_latency, limits["peak_latency_ms"])
+    with np.errstate(invalid="ignore"):
+        collect.add(peak_latency < latency, "peak_latency_ms", "the peak latency is earlier than the onset latency of the same response")
+    duration, _ = checks.number(collect, "duration_ms", unit="ms")
+    checks.in_range(collect, "duration_ms", duration, limits["duration_ms"])
+    area, _ = checks.number(collect, "area_mvms", unit="mV·ms")
+    checks.in_range(collect, "area_mvms", area, limits["area_mvms"])
+
+    temperature, _ = checks.number(collect, "temperature_c", unit="°C")
+    checks.in_range(collect, "temperature_c", temperature, limits["temperature_c"])
+    lff, _ = checks.number(collect, "lff_hz", unit="Hz")
+    checks.in_range(collect, "lff_hz", lff, limits["lff_hz"])
+    f_latency, f_absent = checks.number(collect, "f_latency_ms", words=ABSENT_WORDS, unit="ms")
+    checks.in_range(collect, "f_latency_ms", f_latency, limits["f_latency_ms"])
+    f_persistence, _ = checks.number(collect, "f_persistence_pct", unit="%")
+    checks.in_range(collect, "f_persistence_pct", f_persistence, limits["f_persistence_pct"])
+    collect.add(sensory & (~np.isnan(f_latency) | f_absent), "f_latency_ms", "F-waves belong to motor nerve tests")
+    collect.add(sensory & ~np.isnan(f_persistence), "f_persistence_pct", "F-waves belong to motor nerve tests")
+    recording = checks.text(cells, "recording_site").map(catalogue.normalise_word).replace("", None)
+
+    height, _ = checks.number(collect, "height_cm", unit="cm")
+    checks.in_range(collect, "height_cm", height, limits["height_cm"])
+    sex = checks.vocabulary(collect, "sex", _word_map(SEXES))
+    birth_year, _ = checks.number(collect, "birth_year", unit="years")
+    with np.errstate(invalid="ignore"):
+        collect.add(~np.isnan(birth_year) & (birth_year != np.floor(birth_year)), "birth_year", "expected a whole year such as 1961")
+    checks.in_range(collect, "birth_year", birth_year, limits["birth_year"])
+    visit_year = visit_date.dt.year.to_numpy(dtype=float, na_value=np.nan)
+    with np.errstate(invalid="ignore"):
+        collect.add(birth_year > visit_year, "birth_year", "the birth year is after the visit date")
+    diagnosis = checks.vocabulary(collect, "diagnosis", _word_map(DIAGNOSES))
+    phenotype = checks.vocabulary(collect, "phenotype", _word_map(PHENOTYPES))
+    collect.add(phenotype.notna().to_numpy() & diagnosis.notna().to_numpy() & (diagnosis != "cidp").to_numpy(), "phenotype", "a phenotype is recorded for CIDP only")
+    entrapment = checks.vocabulary(collect, "wrist_entrapment", {k: ("yes" if v else "no") for k, v in YES_NO.items()}, shown_choices=["yes", "no"])
+    collect.add(entrapment.notna().to_numpy() & (nerve != "median").to_numpy(), "wrist_entrapment", "wrist_entrapment is stated on median nerve rows only")
+    site_label = _site_labels(collect, nerve, modality)
+
+    frame = pd.DataFrame(
+        {
+            ROW: cells[ROW].to_numpy(),
+            "patient": patient.to_numpy(),
+            "visit_date": visit_date.dt.date.to_numpy(),
+            "nerve": nerve.to_numpy(),
+            "side": side.to_numpy(),
+            "modality": modality.to_numpy(),
+            "site_order": site_order,
+            "label": site_label.to_numpy(),
+            "distance_mm": distance,
+            "latency_ms": latency,
+            "peak_latency_ms": peak_latency,
+            "amplitude_mv": np.where(motor, amplitude_mv, np.nan),
+            "amplitude_uv": np.where(sensory, amplitude_uv, np.nan),
+            "duration_ms": duration,
+            "area_mvms": area,
+            "temperature_c": temperature,
+            "lff_hz": lff,
+            "f_latency_ms": f_latency,
+            "f_absent": np.where(f_absent, True, None),
+            "f_persistence_pct": f_persistence,
+            "recording_site": recording.to_numpy(),
+            "wrist_entrapment": entrapment.map({"yes": True, "no": False}).to_numpy(),
+            "height_cm": height,
+            "diagnosis": diagnosis.to_numpy(),
+            "phenotype": phenotype.to_numpy(),
+            "sex": sex.to_numpy(),
+            "birth_year": birth_year,
+        }
+    )
+    keys_ok = frame[TEST_KEY].notna().all(axis=1).to_numpy() & ~np.isnan(site_order)
+    if keys_ok.any():
+        _group_checks(collect, frame, keys_ok, allow_unusual, limits)
+    unusual = getattr(collect, "unusual", [])
+    if collect.problems:
+        raise InputRejected("The measurements file was refused", collect.sorted_problems())
+    return _assemble(frame, unusual)
+
+
+def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, allow_unusual: bool, limits) -> None:
+    """Checks that involve several rows: duplicates, site sequence, agreement, latencies, velocities."""
+    valid = frame[keys_ok]
+    offset = np.flatnonzero(keys_ok)  # position in the full table
+    sub = Collector.__new__(Collector)
+    sub.cells, sub.rows, sub.problems = valid, collect.rows[offset], collect.problems
+
+    test_group = _group_ids(valid, TEST_KEY)
+    duplicated = valid.duplicated(TEST_KEY + ["site_order"], keep=False).to_numpy()
+    if duplicated.any():
+        dup = valid[duplicated]
+        for _, rows in dup.groupby(TEST_KEY + ["site_order"], sort=False)[ROW]:
+            listed = ", ".join(str(r) for r in rows)
+            collect.add_one(int(rows.iloc[-1]), "site_order", None, f"the same nerve test and site_order appear on rows {listed}")
+
+    orders = valid.groupby(test_group)["site_order"]
+    expected = orders.transform("count").to_numpy()
+    highest = orders.transform("max").to_numpy()
+    gap = (highest != expected) & ~duplicated
+    sub.add(gap & (valid["site_order"].to_numpy() == highest), "site_order", "site orders of this nerve test are not 1, 2, 3… without gaps")
+
+    _consistency(sub, valid, test_group, NERVE_LEVEL, "nerve test")
+    _consistency(sub, valid, _group_ids(valid, VISIT_KEY), VISIT_LEVEL, "visit")
+    _consistency(sub, valid, _group_ids(valid, ["patient"]), PATIENT_LEVEL, "patient")
+
+    # Consecutive sites of one nerve test: latencies grow proximally; velocities are plausible.
+    order = np.lexsort((valid["site_order"].to_numpy(), test_group))
+    g = test_group[order]
+    latency = valid["latency_ms"].to_numpy()[order]
+    distance = valid["distance_mm"].to_numpy()[order]
+    same_test = np.r_[False, g[1:] == g[:-1]]
+    previous_latency = np.r_[np.nan, latency[:-1]]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        difference = quantise_array(latency - previous_latency)
+        not_growing = same_test & (difference <= 0)
+        velocity = quantise_array(np.where(same_test & (difference > 0), distance / difference, np.nan))
+    mask = np.zeros(len(valid), dtype=bool)
+    mask[order[not_growing]] = True
+    sub.add(mask, "latency_ms", "the latency is not longer than at the previous (more distal) site; latencies grow proximally")
+
+    modality = valid["modality"].to_numpy()[order]
+    sensory_first = (modality == "sensory") & ~same_test
+    with np.errstate(invalid="ignore", divide="ignore"):
+        sensory_velocity = quantise_array(np.where(sensory_first, distance / latency, np.nan))
+    for values, rule_name, what in (
+        (velocity, "motor_velocity_m_per_s", "segment conduction velocity"),
+        (sensory_velocity, "sensory_velocity_m_per_s", "sensory conduction velocity"),
+    ):
+        rule = limits[rule_name]
+        outside = rule.outside(values)
+        if not outside.any():
+            continue
+        mask = np.zeros(len(valid), dtype=bool)
+        mask[order[outside]] = True
+        message = (
+            f"{what} would be {{v}} m/s, outside {rule.describe()}: most likely a distance unit error "
+            "(cm written instead of mm?) or a wrong latency"
+        )
+        velocities = pd.Series(np.round(values[np.argsort(order)], 1), index=valid.index)
+        target = sub.problems if not allow_unusual else collect.__dict__.setdefault("unusual", [])
+        for index in np.flatnonzero(mask):
+            target.append(
+                Problem(
+                    int(sub.rows[index]),
+                    "distance_mm",
+                    str(valid["distance_mm"].iloc[index]),
+                    message.format(v=velocities.iloc[index])
+                    + ("" if allow_unusual else "; if the value is real, import with --allow-unusual"),
+                )
+            )
+
+    # F-wave minimal latency must exceed the distal (site 1) motor latency of the same nerve test.
+    f_latency = valid.groupby(test_group)["f_latency_ms"].transform("first").to_numpy()
+    distal = valid["site_order"].to_numpy() == 1
+    with np.errstate(invalid="ignore"):
+        too_short = distal & (f_latency <= valid["latency_ms"].to_numpy())
+    sub.add(too_short, "f_latency_ms", "the minimal F-wave latency is not longer than the distal motor latency", values=pd.Series(f_latency, index=valid.index).astype(str))
+
+
+def _first(frame: pd.DataFrame, keys: list[str], columns: list[str]) -> pd.DataFrame:
+    """One row per group: the first stated value of each column, and the group's first file row."""
+    grouped = frame.groupby(keys, sort=True, dropna=False)
+    result = grouped[columns].first()
+    result[ROW] = grouped[ROW].min()
+    return result.reset_index()
+
+
+def _assemble(frame: pd.DataFrame, unusual: list[Problem]) -> MeasurementBatch:
+    frame = frame.sort_values(TEST_KEY + ["site_order"], kind="stable").reset_index(drop=True)
+    frame["site_order"] = frame["site_order"].astype(int)
+    nerve_tests = _first(frame, TEST_KEY, NERVE_LEVEL)
+    nerve_tests["f_absent"] = nerve_tests["f_absent"].fillna(False).astype(bool)
+    visits = _first(frame, VISIT_KEY, VISIT_LEVEL)
+    patients = _first(frame, ["patient"], PATIENT_LEVEL)
+    visits["fingerprint"] = _fingerprints(frame, nerve_tests, visits)
+    return MeasurementBatch(
+        sites=frame[TEST_KEY + SITE_VALUES],
+        nerve_tests=nerve_tests,
+        visits=visits,
+        patients=patients,
+        unusual=unusual,
+    )
+
+
+def _text(values: pd.Series) -> pd.Series:
+    return values.astype(object).where(values.notna(), "").astype(str)
+
+
+def _fingerprints(frame: pd.DataFrame, nerve_tests: pd.DataFrame, visits: pd.DataFrame) -> list[str]:
+    """SHA-256 of each visit's measured content, independent of row order and of which row held a
+    nerve- or visit-level value. Floats are written with ``repr`` (exact round trip)."""
+    site_text = _text(frame["nerve"]) + "|" + _text(frame["side"]) + "|" + _text(frame["modality"])
+    for column in SITE_VALUES:
+        site_text = site_text + "|" + _text(frame[column])
+    test_text = _text(nerve_tests["nerve"]) + "|" + _text(nerve_tests["side"]) + "|" + _text(nerve_tests["modality"])
+    for column in NERVE_LEVEL:
+        test_text = test_text + "|" + _text(nerve_tests[column])
+    visit_text = "visit"
+    for column in VISIT_LEVEL:
+        visit_text = visit_text + "|" + _text(visits[column])
+    site_lines = pd.Series(site_text.to_numpy()).groupby([frame["patient"], frame["visit_date"]], sort=True).agg("\n".join)
+    test_lines = pd.Series(test_text.to_numpy()).groupby([nerve_tests["patient"], nerve_tests["visit_date"]], sort=True).agg("\n".join)
+    result = []
+    for (p, d), header in zip(zip(visits["patient"], visits["visit_date"]), visit_text):
+        payload = "\n".join((header, test_lines[(p, d)], site_lines[(p, d)]))
+        result.append(hashlib.sha256(payload.encode("utf-8")).hexdigest())
+    return result
