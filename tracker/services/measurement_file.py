@@ -277,8 +277,8 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
     """Checks that involve several rows: duplicates, site sequence, agreement, latencies, velocities."""
     valid = frame[keys_ok]
     offset = np.flatnonzero(keys_ok)  # position in the full table
-    sub = Collector.__new__(Collector)
-    sub.cells, sub.rows, sub.problems = valid, collect.rows[offset], collect.problems
+    sub = Collector(collect.cells.iloc[offset].reset_index(drop=True))  # shows the cells as written
+    sub.problems = collect.problems
 
     test_group = _group_ids(valid, TEST_KEY)
     duplicated = valid.duplicated(TEST_KEY + ["site_order"], keep=False).to_numpy()
@@ -349,7 +349,8 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
     distal = valid["site_order"].to_numpy() == 1
     with np.errstate(invalid="ignore"):
         too_short = distal & (f_latency <= valid["latency_ms"].to_numpy())
-    sub.add(too_short, "f_latency_ms", "the minimal F-wave latency is not longer than the distal motor latency", values=pd.Series(f_latency, index=valid.index).astype(str))
+    shown = pd.Series(np.where(np.isnan(f_latency), "", f_latency.astype(str)))
+    sub.add(too_short, "f_latency_ms", "the minimal F-wave latency is not longer than the distal motor latency", values=shown)
 
 
 def _first(frame: pd.DataFrame, keys: list[str], columns: list[str]) -> pd.DataFrame:
