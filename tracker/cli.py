@@ -47,6 +47,11 @@ class Context:
             require_current_schema(self._engine)
         return self._engine
 
+    def close(self) -> None:
+        if self._engine is not None:
+            self._engine.dispose()
+            self._engine = None
+
     def session_factory(self):
         from tracker.db.session import make_session_factory
 
@@ -79,6 +84,7 @@ def cli(ctx: click.Context, db: str | None, user: str | None, debug: bool) -> No
     values, local rules and licensed practice prevail.
     """
     ctx.obj = Context(db, user, debug)
+    ctx.call_on_close(ctx.obj.close)
 
 
 @cli.group()

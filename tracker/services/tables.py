@@ -13,7 +13,7 @@ import pandas as pd
 from tracker.domain.catalogue import normalise_word
 from tracker.errors import InputRejected, Problem
 
-ROW = "_row"  # spreadsheet row number column (header = row 1)
+ROW = "file_row"  # spreadsheet row number column (header = row 1); a reserved name
 
 
 @dataclass(frozen=True)
@@ -111,8 +111,10 @@ def read_table(path: Path) -> InputTable:
         Problem(1, str(h), str(h), "this header appears more than once (ignoring case and spaces)")
         for h in sorted({h for h in headers if headers.count(h) > 1})
     ]
+    if ROW in headers:
+        problems.append(Problem(1, ROW, ROW, "this column name is reserved by ncs-tracker; rename the column"))
     if problems:
-        raise InputRejected("The header row has duplicate columns", problems)
+        raise InputRejected("The header row has duplicate or reserved columns", problems)
     frame.columns = headers
     frame = frame.astype(str).apply(lambda column: column.str.strip()) if len(frame) else frame.astype(str)
     frame[ROW] = range(2, len(frame) + 2)

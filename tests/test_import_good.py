@@ -1,0 +1,213 @@
+"""Importing good files: demo clinic, idempotent re-import, replacement with history, xlsx, encodings."""
+
+from __future__ import annotations
+
+import csv
+import datetime as dt
+import io
+
+import openpyxl
+import pytest
+from sqlalchemy import func, select
+
+from conftest import DEMO, fingerprint, run_cli
+from tracker.db.models import AuditEvent, NerveTest, OutcomeScore, Patient, StimulationSite, Treatment, Visit, VisitRevision
+from tracker.services.records import patient_record
+
+DEMO_FILES = [DEMO / "measurements.csv", DEMO / "treatments.csv", DEMO / "scores.csv"]
+
+
+def _count(sessions, model) -> int:
+    with sessions() as session:
+        return session.scalar(select(func.count()).select_from(model))
+
+
+def _demo_rows() -> list[dict[str, str]]:
+    with open(DEMO / "measurements.csv", encoding="utf-8", newline="") as handle:
+        return list(csv.DictReader(handle))
+
+
+def _clinical_fingerprint(engine) -> str:
+    """Fingerprint without the audit trail (re-imports are audited but change no clinical data)."""
+    from conftest import Base
+    import hashlib
+
+    digest = hashlib.sha256()
+    with engine.connect() as connection:
+        for table in Base.metadata.sorted_tables:
+            if table.name == "audit_events":
+                continue
+            for row in connection.execute(select(table).order_by(*table.primary_key.columns)):
+                digest.update(repr(tuple(row)).encode())
+    return digest.hexdigest()
+
+
+def test_demo_files_import_and_counts_match_the_files(db_url, sessions, capsys):
+    code, out, err = run_cli(capsys, "--db", db_url, "import", *map(str, DEMO_FILES))
+    assert code == 0, err
+    rows = _demo_rows()
+    visits = {(r["patient"], r["visit_date"]) for r in rows}
+    tests = {(r["patient"], r["visit_date"], r["nerve"], r["side"], r["modality"]) for r in rows}
+    assert _count(sessions, Patient) == len({r["patient"] for r in rows})
+    assert _count(sessions, Visit) == len(visits)
+    assert _count(sessions, NerveTest) == len(tests)
+    assert _count(sessions, StimulationSite) == len(rows)
+    with open(DEMO / "treatments.csv", encoding="utf-8") as handle:
+        assert _count(sessions, Treatment) == sum(1 for _ in handle) - 1
+    with open(DEMO / "scores.csv", encoding="utf-8") as handle:
+        assert _count(sessions, OutcomeScore) == sum(1 for _ in handle) - 1
+    assert _count(sessions, AuditEvent) == 3  # one audit event per imported file
+    assert "added" in out
+
+
+def test_show_prints_velocities_computed_from_the_file(db_url, capsys):
+    assert run_cli(capsys, "--db", db_url, "import", *map(str, DEMO_FILES))[0] == 0
+    rows = [r for r in _demo_rows() if r["patient"] == "DEMO-01" and r["modality"] == "motor"]
+    first_date = min(r["visit_date"] for r in rows)
+    median = sorted(
+        (r for r in rows if r["visit_date"] == first_date and r["nerve"] == "median"), key=lambda r: int(r["site_order"])
+    )
+    # Hand arithmetic straight from the CSV cells: distance (mm) / latency difference (ms) = m/s.
+    expected = float(median[1]["distance_mm"]) / (float(median[1]["latency_ms"]) - float(median[0]["latency_ms"]))
+    code, out, err = run_cli(capsys, "--db", db_url, "show", "DEMO-01", "--visit", first_date)
+    assert code == 0, err
+    segment_line = next(line for line in out.splitlines() if "median right: wrist → elbow" in line)
+    assert f"{expected:.1f}" in segment_line.split()
+    assert "qualified clinician" in out
+
+
+def test_reimport_changes_no_clinical_data(db_url, engine, capsys):
+    assert run_cli(capsys, "--db", db_url, "import", *map(str, DEMO_FILES))[0] == 0
+    before = _clinical_fingerprint(engine)
+    code, out, _ = run_cli(capsys, "--db", db_url, "import", *map(str, DEMO_FILES))
+    assert code == 0
+    assert "added 0 visits" in out and "29 unchanged" in out
+    assert _clinical_fingerprint(engine) == before
+
+
+def test_reordered_and_reformatted_rows_are_the_same_content(db_url, engine, tmp_path, capsys):
+    assert run_cli(capsys, "--db", db_url, "import", str(DEMO_FILES[0]))[0] == 0
+    before = _clinical_fingerprint(engine)
+    rows = list(reversed(_demo_rows()))
+    for row in rows:  # "4.40" and "4.4" are the same number; upper-case words are the same words
+        if row["latency_ms"]:
+            row["latency_ms"] = f"{float(row['latency_ms']):.3f}"
+        row["side"] = row["side"].upper()[0]
+    path = tmp_path / "reordered.csv"
+    with open(path, "w", encoding="utf-8", newline="") as handle:
+        writer = csv.DictWriter(handle, fieldnames=list(rows[0]))
+        writer.writeheader()
+        writer.writerows(rows)
+    code, out, err = run_cli(capsys, "--db", db_url, "import", str(path))
+    assert code == 0, err
+    assert "29 unchanged" in out
+    assert _clinical_fingerprint(engine) == before
+
+
+def test_changed_visit_needs_replace_and_keeps_history(db_url, engine, sessions, tmp_path, capsys):
+    assert run_cli(capsys, "--db", db_url, "import", str(DEMO_FILES[0]))[0] == 0
+    rows = _demo_rows()
+    target = next(i for i, r in enumerate(rows) if r["patient"] == "DEMO-03" and r["nerve"] == "ulnar" and r["site_order"] == "2")
+    old_latency = float(rows[target]["latency_ms"])
+    rows[target]["latency_ms"] = f"{old_latency + 0.2:.2f}"
+    path = tmp_path / "amended.csv"
+    with open(path, "w", encoding="utf-8", newline="") as handle:
+        writer = csv.DictWriter(handle, fieldnames=list(rows[0]))
+        writer.writeheader()
+        writer.writerows(rows)
+
+    before = fingerprint(engine)
+    code, _, err = run_cli(capsys, "--db", db_url, "import", str(path))
+    assert code == 1
+    first_row_of_visit = 2 + min(
+        i for i, r in enumerate(rows) if r["patient"] == "DEMO-03" and r["visit_date"] == rows[target]["visit_date"]
+    )
+    assert f"row {first_row_of_visit}, column 'visit_date'" in err
+    assert "--replace" in err
+    assert fingerprint(engine) == before
+
+    code, out, err = run_cli(capsys, "--db", db_url, "import", "--replace", str(path))
+    assert code == 0, err
+    assert "replaced 1" in out
+    date = dt.date.fromisoformat(rows[target]["visit_date"])
+    with sessions() as session:
+        visit = session.scalar(select(Visit).join(Patient).where(Patient.code == "DEMO-03", Visit.visit_date == date))
+        assert visit.version == 2
+        revision = session.scalar(select(VisitRevision).where(VisitRevision.visit_id == visit.id))
+        assert revision.revision == 1 and revision.replaced_by
+        ulnar = next(t for t in revision.snapshot["nerve_tests"] if t["nerve"] == "ulnar" and t["modality"] == "motor")
+        assert [s["latency_ms"] for s in ulnar["sites"] if s["site_order"] == 2] == [old_latency]
+        record = patient_record(session, "DEMO-03", visit_date=visit.visit_date)
+        site = next(n for n in record.visits[0].nerves if n.nerve == "ulnar" and n.modality == "motor").sites[1]
+        assert site.latency_ms == pytest.approx(old_latency + 0.2)
+        actions = session.scalars(select(AuditEvent.action)).all()
+        assert "replace_visit" in actions
+
+
+def test_xlsx_gives_the_same_content_as_csv(backend, tmp_path, capsys):
+    from conftest import new_database
+    from tracker.db import migrate
+    from tracker.db.session import make_engine
+
+    workbook = openpyxl.Workbook()
+    sheet = workbook.active
+    rows = _demo_rows()
+    sheet.append(list(rows[0]))
+    for row in rows:  # numbers as numbers and dates as dates, the way a spreadsheet holds them
+        cells = []
+        for key, value in row.items():
+            if key == "visit_date":
+                cells.append(dt.date.fromisoformat(value))
+            else:
+                try:
+                    cells.append(float(value) if "." in value else int(value))
+                except ValueError:
+                    cells.append(value or None)
+        sheet.append(cells)
+    xlsx = tmp_path / "study.xlsx"
+    workbook.save(xlsx)
+
+    prints = []
+    for name, path in (("csv", DEMO_FILES[0]), ("xlsx", xlsx)):
+        folder = tmp_path / name
+        folder.mkdir()
+        for url in new_database(backend, folder):
+            migrate.upgrade(url)
+            code, _, err = run_cli(capsys, "--db", url, "import", str(path))
+            assert code == 0, err
+            engine = make_engine(url)
+            with engine.connect() as connection:
+                prints.append(
+                    connection.execute(select(Visit.content_sha256).order_by(Visit.content_sha256)).scalars().all()
+                )
+            engine.dispose()
+    assert prints[0] == prints[1]
+
+
+def test_bom_and_crlf_are_accepted(db_url, tmp_path, capsys):
+    text = (DEMO / "measurements.csv").read_text(encoding="utf-8")
+    path = tmp_path / "windows.csv"
+    path.write_bytes(b"\xef\xbb\xbf" + text.replace("\n", "\r\n").encode("utf-8"))
+    code, out, err = run_cli(capsys, "--db", db_url, "import", str(path))
+    assert code == 0, err
+    assert "added 29 visits" in out
+
+
+def test_dry_run_writes_nothing(db_url, engine, capsys):
+    before = fingerprint(engine)
+    code, out, _ = run_cli(capsys, "--db", db_url, "import", "--dry-run", *map(str, DEMO_FILES[:1]))
+    assert code == 0
+    assert "would add 29 visits" in out
+    assert fingerprint(engine) == before
+
+
+def test_no_response_is_stored_as_a_finding(db_url, sessions, capsys):
+    assert run_cli(capsys, "--db", db_url, "import", str(DEMO_FILES[0]))[0] == 0
+    absent = [r for r in _demo_rows() if r["amplitude_uv"] == "0" or r["amplitude_mv"] == "0"]
+    assert absent, "the demo clinic includes absent responses"
+    with sessions() as session:
+        stored = session.scalars(
+            select(StimulationSite).where((StimulationSite.amplitude_uv == 0) | (StimulationSite.amplitude_mv == 0))
+        ).all()
+        assert len(stored) == len(absent)
+        assert all(s.latency_ms is None for s in stored)
