@@ -29,6 +29,7 @@ from tracker.db import migrate
 from tracker.db.models import AuditEvent
 from tracker.db.session import make_engine, make_session_factory
 from tracker.services.importing import import_file
+from tracker.services.tables import ROW
 
 # --------------------------------------------------------------------------------------------------------------
 # Valid bases (invented data)
@@ -263,9 +264,19 @@ CASES = [
     case("missing-both-amplitude-columns", M, drop("amplitude_mv", "amplitude_uv"), 1, "amplitude_mv", "needs amplitude_mv (motor) and/or amplitude_uv"),
     # DESIGN.md §4.1 (header matching ignores case and surrounding spaces, so ' Side ' repeats 'side')
     case("duplicate-header-ignoring-case-and-spaces", M, rename("sex", " Side "), 1, "side", "appears more than once"),
+    # the product keeps a spreadsheet row number under this name, so a file may not use it
+    case("reserved-column-name", M, rename("wrist_entrapment", ROW.upper()), 1, ROW, "reserved"),
     case("header-only-file", M, no_data_rows, None, None, "has a header but no data rows"),
     # DESIGN.md §4.1: "a file that is not UTF-8 is refused with a message that says so"
     case("not-utf8-latin1", M, both(cell(2, "site", "poignet é"), encoding("latin-1")), None, None, "is not valid UTF-8"),
+    case(
+        "not-utf8-names-row-and-column",
+        M,
+        both(cell(2, "site", "poignet é"), encoding("latin-1")),
+        2,
+        "site",
+        "not valid UTF-8",
+    ),
     case("unsupported-extension", M, suffix(".ods"), None, None, "expected a .csv (UTF-8, comma-separated) or .xlsx file"),
     case("empty-file", M, raw(b""), None, None, "no header row and no data"),
     case("damaged-xlsx", M, both(suffix(".xlsx"), raw(b"this is not a workbook")), None, None, "damaged or is not a workbook"),
@@ -329,6 +340,14 @@ CASES = [
     # DESIGN.md §4.1: outside 10–100 m/s refused as a probable unit error unless --allow-unusual (23 cm for 230 mm)
     case("motor-velocity-distance-in-cm", M, cell(3, "distance_mm", "23"), 3, "distance_mm", "distance unit error"),
     case("motor-velocity-mentions-override", M, cell(3, "distance_mm", "23"), 3, "distance_mm", "import with --allow-unusual"),
+    case(
+        "motor-velocity-shows-value-as-written",
+        M,
+        cell(3, "distance_mm", "23"),
+        3,
+        "distance_mm",
+        "(value '23')",
+    ),
     case("sensory-velocity-distance-in-cm", M, cell(5, "distance_mm", "13"), 5, "distance_mm", "sensory conduction velocity would be"),
     # --- agreement between rows (DESIGN.md §4.1: "rows that disagree are an error") ---------------------------
     case("nerve-level-disagreement", M, cell(4, "temperature_c", "31"), 4, "temperature_c", "rows of the same nerve test disagree"),
@@ -359,11 +378,6 @@ CASES = [
         2,
         "interval_days",
         "import with --replace",
-        marks=pytest.mark.xfail(
-            strict=True,
-            reason="product names column 'end_date' (the first value column) for any changed treatment value, "
-            "not the column that differs",
-        ),
     ),
     # --- scores (DESIGN.md §4.2 and tracker/reference/scales.csv) ----------------------------------------------
     case("score-incat-11", SC, cell(2, "value", "11"), 2, "value", "outside the incat range; expected 0–10"),  # DESIGN.md §4.2: INCAT 0–10
@@ -513,3 +527,34 @@ def test_unusual_velocity_is_accepted_with_allow_unusual(db_url, tmp_path, capsy
         assert any("distance_mm" in text for text in recorded[0]["unusual_values_accepted"]), recorded
     finally:
         engine.dispose()
+
+
+# --- messages must not mislead (regressions of defects this suite found) -----------------------------------
+
+
+def _refused_base(shared, tmp_path, capsys, base: str, mutation: Mutation) -> list[str]:
+    url, engine = shared
+    sheet = Sheet.from_base(base)
+    mutation(sheet)
+    return problem_lines(refused(capsys, url, engine, sheet.write(tmp_path)))
+
+
+def test_disagreement_message_shows_plain_values(shared, tmp_path, capsys):
+    lines = _refused_base(shared, tmp_path, capsys, M, cell(4, "temperature_c", "31"))
+    located = [line for line in lines if line.startswith("row 4, column 'temperature_c': rows of the same nerve test disagree")]
+    assert located, lines
+    assert "np.float64" not in located[0], located[0]
+    assert "row 3: " in located[0] and "row 4: " in located[0], located[0]
+
+
+def test_score_that_is_not_a_number_gets_one_message(shared, tmp_path, capsys):
+    lines = _refused_base(shared, tmp_path, capsys, SC, cell(3, "value", "fifty"))
+    at_value = [line for line in lines if line.startswith("row 3, column 'value': ")]
+    assert any("not a number" in line for line in at_value), lines
+    assert not any("takes whole numbers" in line for line in at_value), lines
+
+
+def test_misspelt_nerve_is_not_blamed_on_other_columns(shared, tmp_path, capsys):
+    lines = _refused_base(shared, tmp_path, capsys, M, cell(5, "nerve", "medain"))
+    assert any(line.startswith("row 5, column 'nerve': ") for line in lines), lines
+    assert not any(line.startswith("row 5, column 'wrist_entrapment': ") for line in lines), lines

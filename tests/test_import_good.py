@@ -211,3 +211,12 @@ def test_no_response_is_stored_as_a_finding(db_url, sessions, capsys):
         ).all()
         assert len(stored) == len(absent)
         assert all(s.latency_ms is None for s in stored)
+
+
+def test_fingerprints_recomputed_from_stored_rows_equal_the_import_ones(db_url, sessions, capsys):
+    from tracker.services.importing import stored_fingerprints
+
+    assert run_cli(capsys, "--db", db_url, "import", str(DEMO_FILES[0]))[0] == 0
+    with sessions() as session:
+        stored = dict(session.execute(select(Visit.id, Visit.content_sha256)).all())
+        assert stored_fingerprints(session, list(stored)) == stored

@@ -188,7 +188,7 @@ def upgrade() -> None:
     sa.CheckConstraint('distance_mm > 0 AND distance_mm <= 2000', name=op.f('ck_stimulation_sites_distance_range')),
     sa.CheckConstraint('duration_ms > 0 AND duration_ms < 200', name=op.f('ck_stimulation_sites_duration_range')),
     sa.CheckConstraint('latency_ms > 0 AND latency_ms < 200', name=op.f('ck_stimulation_sites_latency_range')),
-    sa.CheckConstraint('latency_ms IS NOT NULL OR amplitude_mv = 0 OR amplitude_uv = 0', name=op.f('ck_stimulation_sites_latency_or_no_response')),
+    sa.CheckConstraint('latency_ms IS NOT NULL OR COALESCE(amplitude_mv, amplitude_uv, -1) = 0', name=op.f('ck_stimulation_sites_latency_or_no_response')),
     sa.CheckConstraint('peak_latency_ms > 0 AND peak_latency_ms < 200', name=op.f('ck_stimulation_sites_peak_latency_range')),
     sa.CheckConstraint('site_order >= 1 AND site_order <= 20', name=op.f('ck_stimulation_sites_site_order_range')),
     sa.ForeignKeyConstraint(['nerve_test_id'], ['nerve_tests.id'], name=op.f('fk_stimulation_sites_nerve_test_id_nerve_tests'), ondelete='CASCADE'),

@@ -242,7 +242,7 @@ class StimulationSite(Base):
         CheckConstraint("area_mvms >= 0 AND area_mvms <= 1000", name="area_range"),
         CheckConstraint("amplitude_mv IS NULL OR amplitude_uv IS NULL", name="one_amplitude_unit"),
         CheckConstraint(
-            "latency_ms IS NOT NULL OR amplitude_mv = 0 OR amplitude_uv = 0", name="latency_or_no_response"
+            "latency_ms IS NOT NULL OR COALESCE(amplitude_mv, amplitude_uv, -1) = 0", name="latency_or_no_response"
         ),
     )
 

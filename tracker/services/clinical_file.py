@@ -91,7 +91,7 @@ def validate_scores(cells: pd.DataFrame, *, today: dt.date | None = None) -> pd.
         rows = (scale == name).to_numpy()
         with np.errstate(invalid="ignore"):
             outside = rows & ((value < info.minimum) | (value > info.maximum))
-            fractional = rows & info.integer & (value != np.floor(value))
+            fractional = rows & info.integer & ~np.isnan(value) & (value != np.floor(value))
         collect.add(outside, "value", f"outside the {name} range; expected {info.minimum:g}–{info.maximum:g} {info.unit}")
         collect.add(fractional & ~outside, "value", f"{name} takes whole numbers")
     frame = pd.DataFrame(

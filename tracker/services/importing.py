@@ -29,10 +29,18 @@ from tracker.db.models import (
     VisitRevision,
     utc_now,
 )
+from tracker.domain.catalogue import suggest
 from tracker.errors import InputRejected, Problem
 from tracker.services import audit
 from tracker.services.clinical_file import SCORE_KEY, TREATMENT_KEY, validate_scores, validate_treatments
-from tracker.services.measurement_file import MeasurementBatch, validate_measurements
+from tracker.services.measurement_file import (
+    NERVE_LEVEL,
+    SITE_VALUES,
+    VISIT_LEVEL,
+    MeasurementBatch,
+    fingerprints_of,
+    validate_measurements,
+)
 from tracker.services.tables import ROW, read_table
 
 CHUNK = 500  # keys per IN (...) list: well under every backend's parameter limit
@@ -186,6 +194,10 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     visits = batch.visits.merge(patients[["patient", "patient_id"]], on="patient", how="left")
     visits = visits.merge(stored, on=["patient_id", "visit_date"], how="left")
     is_stored = visits["visit_id"].notna()
+    unknown = is_stored & (visits["db_fingerprint"] == "")
+    if unknown.any():  # stored before fingerprints existed (or after a downgrade): compute from the rows
+        recomputed = stored_fingerprints(session, [int(v) for v in visits.loc[unknown, "visit_id"]])
+        visits.loc[unknown, "db_fingerprint"] = visits.loc[unknown, "visit_id"].map(recomputed)
     unchanged = is_stored & (visits["db_fingerprint"] == visits["fingerprint"])
     changed = is_stored & ~unchanged
     if not replace:
@@ -255,6 +267,27 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     _insert_nerve_tests(session, batch, written)
     _refresh_patient_diagnosis(session, [int(i) for i in visits["patient_id"].unique()])
     return report
+
+
+def stored_fingerprints(session: Session, visit_ids: list[int]) -> dict[int, str]:
+    """Content fingerprints of stored visits, computed from their rows exactly as an import computes them."""
+    key_columns = [Visit.id.label("visit_id"), Visit.patient_id.label("patient"), Visit.visit_date]
+    visits, tests, sites = [], [], []
+    for part in _chunks(visit_ids):
+        visits += session.execute(select(*key_columns, *[getattr(Visit, c) for c in VISIT_LEVEL]).where(Visit.id.in_(part))).all()
+        test_key = [NerveTest.visit_id, NerveTest.nerve, NerveTest.side, NerveTest.modality]
+        tests += session.execute(select(*test_key, *[getattr(NerveTest, c) for c in NERVE_LEVEL]).where(NerveTest.visit_id.in_(part))).all()
+        site_values = [getattr(StimulationSite, "label" if c == "label" else c) for c in SITE_VALUES]
+        sites += session.execute(
+            select(*test_key, *site_values).join(StimulationSite, StimulationSite.nerve_test_id == NerveTest.id).where(NerveTest.visit_id.in_(part))
+        ).all()
+    visit_frame = pd.DataFrame(visits, columns=["visit_id", "patient", "visit_date", *VISIT_LEVEL]).sort_values("visit_id")
+    visit_frame["patient"] = visit_frame["visit_id"]  # one group per visit: the key only needs to be unique
+    visit_frame["visit_date"] = 0
+    test_frame = pd.DataFrame(tests, columns=["patient", "nerve", "side", "modality", *NERVE_LEVEL]).assign(visit_date=0)
+    site_frame = pd.DataFrame(sites, columns=["patient", "nerve", "side", "modality", *SITE_VALUES]).assign(visit_date=0)
+    visit_frame = visit_frame.sort_values(["patient", "visit_date"]).reset_index(drop=True)
+    return dict(zip(visit_frame["visit_id"], fingerprints_of(site_frame, test_frame, visit_frame)))
 
 
 def _fill_or_replace_patients(session: Session, known: pd.DataFrame, *, username: str, replace: bool) -> None:
@@ -376,9 +409,16 @@ def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username
     codes = sorted(frame["patient"].unique())
     ids = _existing_patients(session, codes).set_index("patient")["patient_id"]
     problems = []
-    for row in frame[~frame["patient"].isin(ids.index)].itertuples():
+    for row in frame[~frame["patient"].isin(ids.index)].to_dict("records"):
+        hint = suggest(row["patient"], list(ids.index))
         problems.append(
-            Problem(int(getattr(row, ROW)), "patient", row.patient, "unknown patient; import the patient's measurements first (or check the code)")
+            Problem(
+                int(row[ROW]),
+                "patient",
+                row["patient"],
+                "unknown patient; import the patient's measurements first"
+                + (f" (did you mean {hint!r}?)" if hint else " (or check the code)"),
+            )
         )
     if problems:
         raise InputRejected(f"The {kind} file was refused", problems)
@@ -400,13 +440,21 @@ def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username
     unchanged = is_stored & same
     changed = is_stored & ~same
     if changed.any() and not replace:
-        raise InputRejected(
-            "The file conflicts with stored data",
-            [
-                Problem(int(getattr(r, ROW)), value_columns[0], None, f"this {kind[:-1]} of {r.patient} is already stored with different values; import with --replace to replace it")
-                for r in merged[changed].itertuples()
-            ],
-        )
+        problems = []
+        for r in merged[changed].to_dict("records"):
+            for column in value_columns:
+                given, stored = _jsonable(r[column]), _jsonable(r[f"db_{column}"])
+                if given != stored:
+                    problems.append(
+                        Problem(
+                            int(r[ROW]),
+                            column,
+                            "" if given is None else str(given),
+                            f"this {kind[:-1]} of {r['patient']} is stored with {column} {stored!r}; "
+                            "import with --replace to replace it",
+                        )
+                    )
+        raise InputRejected("The file conflicts with stored data", problems)
     report.added, report.replaced, report.unchanged = int((~is_stored).sum()), int(changed.sum()), int(unchanged.sum())
     if dry_run:
         return report

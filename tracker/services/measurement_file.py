@@ -116,6 +116,15 @@ def _site_labels(collect: Collector, nerve: pd.Series, modality: pd.Series) -> p
     return result
 
 
+def _plain(value: object) -> str:
+    """A value as a person would write it: 33 not np.float64(33.0), absent not True."""
+    if isinstance(value, (bool, np.bool_)):
+        return "yes" if value else "no"
+    if isinstance(value, (float, np.floating)):
+        return f"{float(value):g}"
+    return str(value)
+
+
 def _consistency(collect: Collector, frame: pd.DataFrame, group: np.ndarray, columns: list[str], level: str) -> None:
     """Values of a nerve-, visit- or patient-level column must agree on every row that states them."""
     for column in columns:
@@ -124,7 +133,7 @@ def _consistency(collect: Collector, frame: pd.DataFrame, group: np.ndarray, col
         for group_id in counts.index[counts.to_numpy() > 1]:
             members = np.flatnonzero(group == group_id)
             stated = members[series.iloc[members].notna().to_numpy()]
-            shown = ", ".join(f"row {collect.rows[i]}: {series.iloc[i]!r}" for i in stated)
+            shown = ", ".join(f"row {collect.rows[i]}: {_plain(series.iloc[i])}" for i in stated)
             source_column = "f_latency_ms" if column == "f_absent" else column
             collect.add_one(
                 int(collect.rows[stated[-1]]),
@@ -230,7 +239,7 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     phenotype = checks.vocabulary(collect, "phenotype", _word_map(PHENOTYPES))
     collect.add(phenotype.notna().to_numpy() & diagnosis.notna().to_numpy() & (diagnosis != "cidp").to_numpy(), "phenotype", "a phenotype is recorded for CIDP only")
     entrapment = checks.vocabulary(collect, "wrist_entrapment", {k: ("yes" if v else "no") for k, v in YES_NO.items()}, shown_choices=["yes", "no"])
-    collect.add(entrapment.notna().to_numpy() & (nerve != "median").to_numpy(), "wrist_entrapment", "wrist_entrapment is stated on median nerve rows only")
+    collect.add(entrapment.notna().to_numpy() & nerve.notna().to_numpy() & (nerve != "median").to_numpy(), "wrist_entrapment", "wrist_entrapment is stated on median nerve rows only")
     site_label = _site_labels(collect, nerve, modality)
 
     frame = pd.DataFrame(
@@ -322,7 +331,8 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
         (sensory_velocity, "sensory_velocity_m_per_s", "sensory conduction velocity"),
     ):
         rule = limits[rule_name]
-        outside = rule.outside(values)
+        distance_ok = ~limits["distance_mm"].outside(distance) & ~np.isnan(distance)
+        outside = rule.outside(values) & distance_ok
         if not outside.any():
             continue
         mask = np.zeros(len(valid), dtype=bool)
@@ -331,15 +341,16 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
             f"{what} would be {{v}} m/s, outside {rule.describe()}: most likely a distance unit error "
             "(cm written instead of mm?) or a wrong latency"
         )
-        velocities = pd.Series(np.round(values[np.argsort(order)], 1), index=valid.index)
+        velocities = np.round(values[np.argsort(order)], 1)
+        written = sub.cells["distance_mm"].to_numpy()
         target = sub.problems if not allow_unusual else collect.__dict__.setdefault("unusual", [])
         for index in np.flatnonzero(mask):
             target.append(
                 Problem(
                     int(sub.rows[index]),
                     "distance_mm",
-                    str(valid["distance_mm"].iloc[index]),
-                    message.format(v=velocities.iloc[index])
+                    str(written[index]),
+                    message.format(v=f"{velocities[index]:g}")
                     + ("" if allow_unusual else "; if the value is real, import with --allow-unusual"),
                 )
             )
@@ -378,13 +389,23 @@ def _assemble(frame: pd.DataFrame, unusual: list[Problem]) -> MeasurementBatch:
     )
 
 
+def fingerprints_of(sites: pd.DataFrame, nerve_tests: pd.DataFrame, visits: pd.DataFrame) -> list[str]:
+    """Fingerprints of visits given as tables shaped like :class:`MeasurementBatch` (e.g. read back from the
+    database), in the order of ``visits``."""
+    sites = sites.sort_values(TEST_KEY + ["site_order"], kind="stable").reset_index(drop=True)
+    nerve_tests = nerve_tests.sort_values(TEST_KEY, kind="stable").reset_index(drop=True)
+    return _fingerprints(sites, nerve_tests, visits)
+
+
 def _text(values: pd.Series) -> pd.Series:
     return values.astype(object).where(values.notna(), "").astype(str)
 
 
 def _fingerprints(frame: pd.DataFrame, nerve_tests: pd.DataFrame, visits: pd.DataFrame) -> list[str]:
     """SHA-256 of each visit's measured content, independent of row order and of which row held a
-    nerve- or visit-level value. Floats are written with ``repr`` (exact round trip)."""
+    nerve- or visit-level value. Floats are written with ``repr`` (exact round trip).
+
+    ``frame`` must be sorted by nerve test and site order, ``nerve_tests`` by nerve test."""
     site_text = _text(frame["nerve"]) + "|" + _text(frame["side"]) + "|" + _text(frame["modality"])
     for column in SITE_VALUES:
         site_text = site_text + "|" + _text(frame[column])

@@ -34,18 +34,29 @@ def _decode(raw: bytes) -> str:
     try:
         return raw.decode("utf-8")
     except UnicodeDecodeError as error:
+        row, column = _locate(raw, error.start)
         raise InputRejected(
             "The file is not UTF-8 text",
             [
                 Problem(
+                    row,
+                    column,
                     None,
-                    None,
-                    None,
-                    f"byte 0x{raw[error.start]:02x} at offset {error.start} is not valid UTF-8; "
+                    f"byte 0x{raw[error.start]:02x} (offset {error.start}) is not valid UTF-8; "
                     "save the file as 'CSV UTF-8' and import it again",
                 )
             ],
         ) from None
+
+
+def _locate(raw: bytes, offset: int) -> tuple[int, str | None]:
+    """Spreadsheet row and header name of the cell holding byte ``offset`` (quoted newlines aside)."""
+    row = raw.count(b"\n", 0, offset) + 1
+    line_start = raw.rfind(b"\n", 0, offset) + 1
+    index = raw.count(b",", line_start, offset)
+    header = raw.split(b"\n", 1)[0].decode("utf-8", errors="replace").strip().lstrip("\ufeff").split(",")
+    column = normalise_word(header[index]) if index < len(header) else None
+    return row, column
 
 
 def _xlsx_cell(value: object) -> str:

@@ -1,0 +1,37 @@
+"""Layering: dependencies point downward only (DESIGN.md §2)."""
+
+from __future__ import annotations
+
+import ast
+from pathlib import Path
+
+import pytest
+
+PACKAGE = Path(__file__).resolve().parent.parent / "tracker"
+
+FORBIDDEN = {
+    "domain": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli"),
+    "db": ("streamlit", "plotly", "click", "tracker.services", "tracker.cli"),
+    "services": ("streamlit", "plotly", "click", "tracker.cli"),
+}
+
+
+def _imports(path: Path) -> set[str]:
+    tree = ast.parse(path.read_text(encoding="utf-8"))
+    names = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Import):
+            names.update(alias.name for alias in node.names)
+        elif isinstance(node, ast.ImportFrom) and node.module:
+            names.add(node.module)
+    return names
+
+
+@pytest.mark.parametrize("layer", sorted(FORBIDDEN))
+def test_layer_imports_point_downward(layer):
+    offenders = []
+    for path in sorted((PACKAGE / layer).rglob("*.py")):
+        for name in _imports(path):
+            if any(name == f or name.startswith(f + ".") for f in FORBIDDEN[layer]):
+                offenders.append(f"{path.relative_to(PACKAGE)} imports {name}")
+    assert offenders == []
