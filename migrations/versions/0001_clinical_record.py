@@ -69,9 +69,6 @@ def upgrade() -> None:
     sa.PrimaryKeyConstraint('id', name=op.f('pk_outcome_scores')),
     sa.UniqueConstraint('patient_id', 'score_date', 'scale', name=op.f('uq_outcome_scores_patient_id_score_date_scale'))
     )
-    with op.batch_alter_table('outcome_scores', schema=None) as batch_op:
-        batch_op.create_index(batch_op.f('ix_outcome_scores_patient_id'), ['patient_id'], unique=False)
-
     op.create_table('patient_identities',
     sa.Column('patient_id', sa.Integer(), nullable=False),
     sa.Column('record_number', sa.String(length=64), nullable=True, comment='hospital record number'),
@@ -98,9 +95,6 @@ def upgrade() -> None:
     sa.PrimaryKeyConstraint('id', name=op.f('pk_treatments')),
     sa.UniqueConstraint('patient_id', 'therapy', 'start_date', name=op.f('uq_treatments_patient_id_therapy_start_date'))
     )
-    with op.batch_alter_table('treatments', schema=None) as batch_op:
-        batch_op.create_index(batch_op.f('ix_treatments_patient_id'), ['patient_id'], unique=False)
-
     op.create_table('visits',
     sa.Column('id', sa.Integer(), nullable=False),
     sa.Column('patient_id', sa.Integer(), nullable=False),
@@ -121,9 +115,6 @@ def upgrade() -> None:
     sa.PrimaryKeyConstraint('id', name=op.f('pk_visits')),
     sa.UniqueConstraint('patient_id', 'visit_date', name=op.f('uq_visits_patient_id_visit_date'))
     )
-    with op.batch_alter_table('visits', schema=None) as batch_op:
-        batch_op.create_index(batch_op.f('ix_visits_patient_id'), ['patient_id'], unique=False)
-
     op.create_table('nerve_tests',
     sa.Column('id', sa.Integer(), nullable=False),
     sa.Column('visit_id', sa.Integer(), nullable=False),
@@ -149,9 +140,6 @@ def upgrade() -> None:
     sa.PrimaryKeyConstraint('id', name=op.f('pk_nerve_tests')),
     sa.UniqueConstraint('visit_id', 'nerve', 'side', 'modality', name=op.f('uq_nerve_tests_visit_id_nerve_side_modality'))
     )
-    with op.batch_alter_table('nerve_tests', schema=None) as batch_op:
-        batch_op.create_index(batch_op.f('ix_nerve_tests_visit_id'), ['visit_id'], unique=False)
-
     op.create_table('visit_revisions',
     sa.Column('id', sa.Integer(), nullable=False),
     sa.Column('visit_id', sa.Integer(), nullable=False),
@@ -166,9 +154,6 @@ def upgrade() -> None:
     sa.PrimaryKeyConstraint('id', name=op.f('pk_visit_revisions')),
     sa.UniqueConstraint('visit_id', 'revision', name=op.f('uq_visit_revisions_visit_id_revision'))
     )
-    with op.batch_alter_table('visit_revisions', schema=None) as batch_op:
-        batch_op.create_index(batch_op.f('ix_visit_revisions_visit_id'), ['visit_id'], unique=False)
-
     op.create_table('stimulation_sites',
     sa.Column('id', sa.Integer(), nullable=False),
     sa.Column('nerve_test_id', sa.Integer(), nullable=False),
@@ -195,36 +180,15 @@ def upgrade() -> None:
     sa.PrimaryKeyConstraint('id', name=op.f('pk_stimulation_sites')),
     sa.UniqueConstraint('nerve_test_id', 'site_order', name=op.f('uq_stimulation_sites_nerve_test_id_site_order'))
     )
-    with op.batch_alter_table('stimulation_sites', schema=None) as batch_op:
-        batch_op.create_index(batch_op.f('ix_stimulation_sites_nerve_test_id'), ['nerve_test_id'], unique=False)
-
 
 
 def downgrade() -> None:
-    with op.batch_alter_table('stimulation_sites', schema=None) as batch_op:
-        batch_op.drop_index(batch_op.f('ix_stimulation_sites_nerve_test_id'))
-
     op.drop_table('stimulation_sites')
-    with op.batch_alter_table('visit_revisions', schema=None) as batch_op:
-        batch_op.drop_index(batch_op.f('ix_visit_revisions_visit_id'))
-
     op.drop_table('visit_revisions')
-    with op.batch_alter_table('nerve_tests', schema=None) as batch_op:
-        batch_op.drop_index(batch_op.f('ix_nerve_tests_visit_id'))
-
     op.drop_table('nerve_tests')
-    with op.batch_alter_table('visits', schema=None) as batch_op:
-        batch_op.drop_index(batch_op.f('ix_visits_patient_id'))
-
     op.drop_table('visits')
-    with op.batch_alter_table('treatments', schema=None) as batch_op:
-        batch_op.drop_index(batch_op.f('ix_treatments_patient_id'))
-
     op.drop_table('treatments')
     op.drop_table('patient_identities')
-    with op.batch_alter_table('outcome_scores', schema=None) as batch_op:
-        batch_op.drop_index(batch_op.f('ix_outcome_scores_patient_id'))
-
     op.drop_table('outcome_scores')
     op.drop_table('users')
     op.drop_table('patients')

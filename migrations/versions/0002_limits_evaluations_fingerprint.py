@@ -73,7 +73,6 @@ def upgrade() -> None:
     )
     with op.batch_alter_table('evaluations', schema=None) as batch_op:
         batch_op.create_index(batch_op.f('ix_evaluations_limit_set_id'), ['limit_set_id'], unique=False)
-        batch_op.create_index(batch_op.f('ix_evaluations_visit_id'), ['visit_id'], unique=False)
 
     with op.batch_alter_table('visits', schema=None) as batch_op:
         batch_op.add_column(sa.Column('content_sha256', sa.String(length=64), server_default='', nullable=False, comment='fingerprint of the measured content, for idempotent import'))
@@ -86,7 +85,6 @@ def downgrade() -> None:
         batch_op.drop_column('content_sha256')
 
     with op.batch_alter_table('evaluations', schema=None) as batch_op:
-        batch_op.drop_index(batch_op.f('ix_evaluations_visit_id'))
         batch_op.drop_index(batch_op.f('ix_evaluations_limit_set_id'))
 
     op.drop_table('evaluations')

@@ -4,6 +4,9 @@ Units are in column names and comments: ms, mV (motor amplitude), µV (sensory a
 °C, Hz, cm. Physical ranges are CHECK constraints in the database; stricter plausibility checks (which a
 user may override) live in :mod:`tracker.services.measurement_rules`.
 
+Foreign-key columns are not indexed on their own where a UNIQUE constraint already starts with them
+(the constraint's index serves the lookups; a second index would only slow bulk imports).
+
 Cascades: deleting a patient deletes their identity, visits, treatments and scores; deleting a visit deletes
 its nerve tests, their sites, its revisions and evaluations. Audit events have no foreign keys: the trail
 outlives the rows it describes.
@@ -137,7 +140,7 @@ class Visit(Base):
     )
 
     id: Mapped[IntPk]
-    patient_id: Mapped[int] = mapped_column(ForeignKey("patients.id", ondelete="CASCADE"), index=True)
+    patient_id: Mapped[int] = mapped_column(ForeignKey("patients.id", ondelete="CASCADE"))
     visit_date: Mapped[dt.date] = mapped_column(Date, comment="date of the study (ISO)")
     height_cm: Mapped[float | None] = mapped_column(Float, comment="height in cm at the visit")
     examiner: Mapped[str | None] = mapped_column(String(100))
@@ -170,7 +173,7 @@ class VisitRevision(Base):
     __table_args__ = (UniqueConstraint("visit_id", "revision"),)
 
     id: Mapped[IntPk]
-    visit_id: Mapped[int] = mapped_column(ForeignKey("visits.id", ondelete="CASCADE"), index=True)
+    visit_id: Mapped[int] = mapped_column(ForeignKey("visits.id", ondelete="CASCADE"))
     revision: Mapped[int] = mapped_column(Integer, comment="the visit version these values belonged to")
     status: Mapped[str] = mapped_column(String(8), comment="draft / final at the time")
     content_sha256: Mapped[str] = mapped_column(String(64))
@@ -199,7 +202,7 @@ class NerveTest(Base):
     )
 
     id: Mapped[IntPk]
-    visit_id: Mapped[int] = mapped_column(ForeignKey("visits.id", ondelete="CASCADE"), index=True)
+    visit_id: Mapped[int] = mapped_column(ForeignKey("visits.id", ondelete="CASCADE"))
     nerve: Mapped[str] = mapped_column(String(40), comment="canonical nerve name (see reference/nerves.csv)")
     side: Mapped[str] = mapped_column(String(5), comment="left / right")
     modality: Mapped[str] = mapped_column(String(7), comment="motor / sensory")
@@ -247,7 +250,7 @@ class StimulationSite(Base):
     )
 
     id: Mapped[IntPk]
-    nerve_test_id: Mapped[int] = mapped_column(ForeignKey("nerve_tests.id", ondelete="CASCADE"), index=True)
+    nerve_test_id: Mapped[int] = mapped_column(ForeignKey("nerve_tests.id", ondelete="CASCADE"))
     site_order: Mapped[int] = mapped_column(Integer, comment="1 = most distal, then proximally")
     label: Mapped[str | None] = mapped_column(String(40), comment="site label (see reference/sites.csv)")
     distance_mm: Mapped[float] = mapped_column(
@@ -276,7 +279,7 @@ class Treatment(Base):
     )
 
     id: Mapped[IntPk]
-    patient_id: Mapped[int] = mapped_column(ForeignKey("patients.id", ondelete="CASCADE"), index=True)
+    patient_id: Mapped[int] = mapped_column(ForeignKey("patients.id", ondelete="CASCADE"))
     therapy: Mapped[str] = mapped_column(String(40), comment="ivig, scig, corticosteroid, plasma_exchange…")
     start_date: Mapped[dt.date] = mapped_column(Date)
     end_date: Mapped[dt.date | None] = mapped_column(Date, comment="empty while ongoing")
@@ -297,7 +300,7 @@ class OutcomeScore(Base):
     )
 
     id: Mapped[IntPk]
-    patient_id: Mapped[int] = mapped_column(ForeignKey("patients.id", ondelete="CASCADE"), index=True)
+    patient_id: Mapped[int] = mapped_column(ForeignKey("patients.id", ondelete="CASCADE"))
     score_date: Mapped[dt.date] = mapped_column(Date)
     scale: Mapped[str] = mapped_column(String(40))
     value: Mapped[float] = mapped_column(Float, comment="in the scale's own unit")
@@ -357,7 +360,7 @@ class Evaluation(Base):
     __table_args__ = (UniqueConstraint("visit_id", "criteria_id", "limit_set_id"),)
 
     id: Mapped[IntPk]
-    visit_id: Mapped[int] = mapped_column(ForeignKey("visits.id", ondelete="CASCADE"), index=True)
+    visit_id: Mapped[int] = mapped_column(ForeignKey("visits.id", ondelete="CASCADE"))
     criteria_id: Mapped[str] = mapped_column(String(40))
     criteria_version: Mapped[str] = mapped_column(String(20))
     limit_set_id: Mapped[int | None] = mapped_column(ForeignKey("limit_sets.id", ondelete="SET NULL"), index=True)

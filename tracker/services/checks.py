@@ -7,6 +7,8 @@ import re
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from tracker.domain.catalogue import suggest
 from tracker.domain.plausibility import Range
@@ -50,6 +52,30 @@ def text(cells: pd.DataFrame, column: str) -> pd.Series:
     return pd.Series([""] * len(cells), index=cells.index, dtype=str)
 
 
+def map_unique(values: pd.Series, function) -> pd.Series:
+    """Apply ``function`` once per distinct value (files repeat the same words thousands of times)."""
+    uniques = pd.unique(values)
+    return values.map(dict(zip(uniques, (function(u) for u in uniques))))
+
+
+def _fast_numbers(raw: pd.Series) -> tuple[np.ndarray, np.ndarray] | None:
+    """``(values, empty)`` when every non-empty cell is a finite number, else ``None`` (take the slow path).
+
+    Arrow's C parser does the common case in a few milliseconds for 100,000 cells.
+    """
+    arrow = pa.array(raw.array) if not isinstance(raw.array, np.ndarray) else pa.array(raw.to_numpy(dtype=object), type=pa.string())
+    empty = pc.equal(arrow, "")
+    try:
+        parsed = pc.cast(pc.if_else(empty, pa.scalar(None, pa.string()), arrow), pa.float64())
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        return None
+    values = parsed.to_numpy(zero_copy_only=False).astype(float, copy=True)
+    empty_mask = empty.to_numpy(zero_copy_only=False).astype(bool)
+    if not np.isfinite(values[~empty_mask]).all():  # "nan", "inf" written in a cell
+        return None
+    return values, empty_mask
+
+
 def number(
     collect: Collector,
     column: str,
@@ -63,6 +89,15 @@ def number(
     Problems: text that is not a number (with a hint for decimal commas); an empty cell where ``required``.
     """
     raw = text(collect.cells, column)
+    expected = f"a number in {unit}" if unit else "a number"
+    if words:
+        expected += " or " + " / ".join(repr(w) for w in words[:1])
+    required_mask = np.broadcast_to(np.asarray(required, dtype=bool), (len(raw),))
+    fast = _fast_numbers(raw) if len(raw) else None
+    if fast is not None:
+        values, empty = fast
+        collect.add(required_mask & empty, column, f"required value is missing; expected {expected}")
+        return values, np.zeros(len(raw), dtype=bool)
     lowered = raw.str.lower()
     empty = (raw == "").to_numpy()
     is_word = lowered.isin(words).to_numpy() if words else np.zeros(len(raw), dtype=bool)
@@ -71,12 +106,8 @@ def number(
     bad = ~empty & ~is_word & (np.isnan(values) | np.isinf(values))
     values[np.isinf(values)] = np.nan
     with_comma = raw.str.contains(",", regex=False).to_numpy()
-    expected = f"a number in {unit}" if unit else "a number"
-    if words:
-        expected += " or " + " / ".join(repr(w) for w in words[:1])
     collect.add(bad & with_comma, column, f"not a number; expected {expected} with a point as the decimal separator")
     collect.add(bad & ~with_comma, column, f"not a number; expected {expected}")
-    required_mask = np.broadcast_to(np.asarray(required, dtype=bool), empty.shape)
     collect.add(required_mask & empty, column, f"required value is missing; expected {expected}")
     return values, is_word
 
@@ -98,8 +129,8 @@ def vocabulary(
 ) -> pd.Series:
     """Map cells through ``mapping`` (lower-cased keys); unknown words get a "did you mean" hint."""
     raw = text(collect.cells, column)
-    key = raw.str.lower().str.replace("-", "_", regex=False).str.replace(" ", "_", regex=False)
-    mapped = key.map(mapping)
+    key = map_unique(raw, lambda w: w.lower().replace("-", "_").replace(" ", "_"))
+    mapped = key.map(mapping).astype(object)
     empty = (raw == "").to_numpy()
     unknown = ~empty & mapped.isna().to_numpy()
     choices = list(shown_choices or sorted(set(mapping.values())))
@@ -114,16 +145,18 @@ def vocabulary(
             )
     if required:
         collect.add(empty, column, f"required value is missing; expected one of {', '.join(choices)}")
-    return mapped
+    return mapped.where(mapped.notna(), None)
 
 
 def iso_dates(collect: Collector, column: str, *, required: bool, not_after: dt.date | None) -> pd.Series:
     """Parse ``YYYY-MM-DD`` dates; refuse impossible dates and dates after ``not_after``."""
     raw = text(collect.cells, column)
     empty = (raw == "").to_numpy()
-    shaped = raw.str.match(ISO_DATE).to_numpy(dtype=bool)
-    parsed = pd.to_datetime(raw.where(shaped, None), format="%Y-%m-%d", errors="coerce")
-    invalid = ~empty & (~shaped | parsed.isna().to_numpy())
+    uniques = pd.Series(pd.unique(raw), dtype=object)
+    shaped = uniques.str.match(ISO_DATE).fillna(False).astype(bool)
+    parsed_uniques = pd.to_datetime(uniques.where(shaped, None), format="%Y-%m-%d", errors="coerce")
+    parsed = pd.to_datetime(raw.map(dict(zip(uniques, parsed_uniques))))
+    invalid = ~empty & parsed.isna().to_numpy()
     collect.add(invalid, column, "not a real date; expected YYYY-MM-DD (ISO 8601)")
     if required:
         collect.add(empty, column, "required date is missing; expected YYYY-MM-DD")

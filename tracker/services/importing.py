@@ -16,7 +16,7 @@ from pathlib import Path
 from typing import Any
 
 import pandas as pd
-from sqlalchemy import delete, insert, select, update
+from sqlalchemy import delete, func, insert, select, text, update
 from sqlalchemy.orm import Session
 
 from tracker.db.models import (
@@ -94,8 +94,51 @@ def _clean(value: Any) -> Any:
 
 
 def _records(frame: pd.DataFrame, columns: list[str]) -> list[dict[str, Any]]:
+    """Rows as dicts of Python values (None for missing), ready for an executemany."""
+    data = frame[columns].astype(object)
+    return data.where(frame[columns].notna(), None).to_dict("records")
+
+
+def _allocate_ids(session: Session, table, count: int) -> list[int]:
+    """Primary keys for ``count`` new rows of ``table``, which no concurrent writer can take.
+
+    PostgreSQL: drawn from the table's own sequence. SQLite: the next integers after the largest key; safe
+    because the caller's transaction has already written, so it holds SQLite's single write lock.
+    """
+    connection = session.connection()
+    if connection.dialect.name == "postgresql":
+        return list(
+            connection.execute(
+                text("SELECT nextval(pg_get_serial_sequence(:table, 'id')) FROM generate_series(1, :count)"),
+                {"table": table.name, "count": count},
+            ).scalars()
+        )
+    assert connection.in_transaction()
+    start = (connection.execute(select(func.coalesce(func.max(table.c.id), 0))).scalar_one()) + 1
+    return list(range(start, start + count))
+
+
+def _bulk_insert(session: Session, table, frame: pd.DataFrame, columns: list[str]) -> None:
+    """Insert many rows through the driver's own executemany (the bulk path: tens of thousands of sites).
+
+    Only for tables without date columns: values are passed as plain Python numbers, text, booleans, None.
+    """
+    if frame.empty:
+        return
+    connection = session.connection()
+    marker = "?" if connection.dialect.paramstyle == "qmark" else "%s"
+    quote = connection.dialect.identifier_preparer.quote
+    sql = (
+        f"INSERT INTO {quote(table.name)} ({', '.join(quote(c) for c in columns)}) "
+        f"VALUES ({', '.join([marker] * len(columns))})"
+    )
     data = frame[columns].astype(object).where(frame[columns].notna(), None)
-    return [dict(zip(columns, (_clean(v) for v in row))) for row in data.itertuples(index=False, name=None)]
+    rows = list(zip(*(data[c].tolist() for c in columns)))
+    cursor = connection.connection.driver_connection.cursor()
+    try:
+        cursor.executemany(sql, rows)
+    finally:
+        cursor.close()
 
 
 def import_file(
@@ -223,8 +266,8 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
         return report
 
     if len(new_patients):
-        session.execute(
-            insert(Patient),
+        session.connection().execute(
+            Patient.__table__.insert(),
             [
                 {"code": r["patient"], "sex": r["sex"], "birth_year": None if r["birth_year"] is None else int(r["birth_year"]), "created_at": utc_now()}
                 for r in _records(new_patients, ["patient", "sex", "birth_year"])
@@ -254,14 +297,17 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
             )
 
     new_visits = visits[~is_stored]
-    now = utc_now()
     if len(new_visits):
         rows = _records(new_visits, ["patient_id", "visit_date", "height_cm", "diagnosis", "phenotype", "fingerprint"])
+        now = utc_now()
         for r in rows:
             r["content_sha256"] = r.pop("fingerprint")
             r.update(status="final", version=1, created_at=now)
-        new_ids = session.scalars(insert(Visit).returning(Visit.id, sort_by_parameter_order=True), rows).all()
-        visits.loc[~is_stored, "visit_id"] = new_ids
+        session.connection().execute(Visit.__table__.insert(), rows)
+        visit_ids = _visit_ids(session, [int(i) for i in new_visits["patient_id"].unique()])
+        visits.loc[~is_stored, "visit_id"] = [
+            visit_ids[(p, d)] for p, d in zip(new_visits["patient_id"], new_visits["visit_date"])
+        ]
 
     written = visits[~unchanged][["patient", "visit_date", "visit_id"]]
     _insert_nerve_tests(session, batch, written)
@@ -364,20 +410,32 @@ def _keep_history(session: Session, changed: pd.DataFrame, *, username: str) -> 
         )
 
 
+def _visit_ids(session: Session, patient_ids: list[int]) -> dict[tuple[int, Any], int]:
+    found: dict[tuple[int, Any], int] = {}
+    for part in _chunks(patient_ids):
+        for visit_id, patient_id, visit_date in session.execute(
+            select(Visit.id, Visit.patient_id, Visit.visit_date).where(Visit.patient_id.in_(part))
+        ):
+            found[(patient_id, visit_date)] = visit_id
+    return found
+
+
 def _insert_nerve_tests(session: Session, batch: MeasurementBatch, written: pd.DataFrame) -> None:
+    """Insert the nerve tests and sites of the written visits (Core executemany: no ORM overhead)."""
     if written.empty:
         return
     key = ["patient", "visit_date"]
+    test_key = ["nerve", "side", "modality"]
     tests = batch.nerve_tests.merge(written, on=key, how="inner")
-    test_columns = ["visit_id", "nerve", "side", "modality", "recording_site", "temperature_c", "lff_hz", "f_latency_ms", "f_absent", "f_persistence_pct", "wrist_entrapment"]
-    rows = _records(tests, test_columns)
-    for r in rows:
-        r["visit_id"] = int(r["visit_id"])
-        r["f_absent"] = bool(r["f_absent"])
-    tests["nerve_test_id"] = session.scalars(insert(NerveTest).returning(NerveTest.id, sort_by_parameter_order=True), rows).all()
-    sites = batch.sites.merge(tests[["patient", "visit_date", "nerve", "side", "modality", "nerve_test_id"]], on=["patient", "visit_date", "nerve", "side", "modality"], how="inner")
+    tests["visit_id"] = tests["visit_id"].astype(int)
+    tests["f_absent"] = tests["f_absent"].astype(bool)
+    test_columns = ["visit_id", *test_key, "recording_site", "temperature_c", "lff_hz", "f_latency_ms", "f_absent", "f_persistence_pct", "wrist_entrapment"]
+    tests["nerve_test_id"] = _allocate_ids(session, NerveTest.__table__, len(tests))
+    _bulk_insert(session, NerveTest.__table__, tests.rename(columns={"nerve_test_id": "id"}), ["id", *test_columns])
+    sites = batch.sites.merge(tests[[*key, *test_key, "nerve_test_id"]], on=[*key, *test_key], how="inner")
+    sites["nerve_test_id"] = sites["nerve_test_id"].astype(int)
     site_columns = ["nerve_test_id", "site_order", "label", "distance_mm", "latency_ms", "peak_latency_ms", "amplitude_mv", "amplitude_uv", "duration_ms", "area_mvms"]
-    session.execute(insert(StimulationSite), _records(sites, site_columns))
+    _bulk_insert(session, StimulationSite.__table__, sites, site_columns)
 
 
 def _refresh_patient_diagnosis(session: Session, patient_ids: list[int]) -> None:

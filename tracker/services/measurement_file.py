@@ -73,7 +73,7 @@ def _word_map(words) -> dict[str, str]:
 
 def _nerve_mapping(collect: Collector) -> pd.Series:
     raw = checks.text(collect.cells, "nerve")
-    words = raw.map(catalogue.normalise_word)
+    words = checks.map_unique(raw, catalogue.normalise_word)
     uniques = pd.unique(words)
     canonical = {w: catalogue.canonical_nerve(w) for w in uniques if w}
     mapped = words.map(canonical)
@@ -96,7 +96,7 @@ def _site_labels(collect: Collector, nerve: pd.Series, modality: pd.Series) -> p
     present = (raw != "").to_numpy() & nerve.notna().to_numpy() & modality.notna().to_numpy()
     if not present.any():
         return result
-    frame = pd.DataFrame({"n": nerve[present], "m": modality[present], "w": raw[present].map(catalogue.normalise_word)})
+    frame = pd.DataFrame({"n": nerve[present], "m": modality[present], "w": checks.map_unique(raw[present], catalogue.normalise_word)})
     for (n, m, w), index in frame.groupby(["n", "m", "w"]).groups.items():
         label = catalogue.canonical_site(n, m, w)
         if label is not None:
@@ -171,10 +171,10 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     sensory = (modality == "sensory").to_numpy()
 
     # A nerve must be studied in a modality it has.
-    known_pair = np.array(
-        [n is None or pd.isna(n) or m is None or pd.isna(m) or m in catalogue.nerves()[n].modalities for n, m in zip(nerve, modality)],
-        dtype=bool,
-    )
+    pairs = nerve.fillna("") + "|" + modality.fillna("")
+    known_pair = checks.map_unique(
+        pairs, lambda p: "" in p.split("|") or p.split("|")[1] in catalogue.nerves()[p.split("|")[0]].modalities
+    ).to_numpy(dtype=bool)
     collect.add(~known_pair, "modality", "this nerve is not studied in this modality here (see reference/nerves.csv)")
 
     site_order, _ = checks.number(collect, "site_order", required=True)
@@ -223,7 +223,7 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     checks.in_range(collect, "f_persistence_pct", f_persistence, limits["f_persistence_pct"])
     collect.add(sensory & (~np.isnan(f_latency) | f_absent), "f_latency_ms", "F-waves belong to motor nerve tests")
     collect.add(sensory & ~np.isnan(f_persistence), "f_persistence_pct", "F-waves belong to motor nerve tests")
-    recording = checks.text(cells, "recording_site").map(catalogue.normalise_word).replace("", None)
+    recording = checks.map_unique(checks.text(cells, "recording_site"), catalogue.normalise_word).replace("", None)
 
     height, _ = checks.number(collect, "height_cm", unit="cm")
     checks.in_range(collect, "height_cm", height, limits["height_cm"])
@@ -360,8 +360,9 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
     distal = valid["site_order"].to_numpy() == 1
     with np.errstate(invalid="ignore"):
         too_short = distal & (f_latency <= valid["latency_ms"].to_numpy())
-    shown = pd.Series(np.where(np.isnan(f_latency), "", f_latency.astype(str)))
-    sub.add(too_short, "f_latency_ms", "the minimal F-wave latency is not longer than the distal motor latency", values=shown)
+    if too_short.any():
+        shown = pd.Series(np.where(np.isnan(f_latency), "", f_latency.astype(str)))
+        sub.add(too_short, "f_latency_ms", "the minimal F-wave latency is not longer than the distal motor latency", values=shown)
 
 
 def _first(frame: pd.DataFrame, keys: list[str], columns: list[str]) -> pd.DataFrame:
@@ -397,28 +398,63 @@ def fingerprints_of(sites: pd.DataFrame, nerve_tests: pd.DataFrame, visits: pd.D
     return _fingerprints(sites, nerve_tests, visits)
 
 
-def _text(values: pd.Series) -> pd.Series:
-    return values.astype(object).where(values.notna(), "").astype(str)
+SITE_TEXT = ["nerve", "side", "modality", "label"]
+SITE_NUMBERS = [c for c in SITE_VALUES if c != "label"]
+TEST_TEXT = ["nerve", "side", "modality", "recording_site"]
+TEST_NUMBERS = [c for c in NERVE_LEVEL if c != "recording_site"]
+VISIT_TEXT = ["diagnosis", "phenotype"]
+VISIT_NUMBERS = ["height_cm"]
+
+
+def _number_matrix(frame: pd.DataFrame, columns: list[str]) -> np.ndarray:
+    """Columns as little-endian float64 (booleans 1/0), NaN replaced by 0 with a separate missing mask."""
+    values = np.empty((len(frame), len(columns)), dtype="<f8")
+    for index, column in enumerate(columns):
+        series = frame[column]
+        if series.dtype == object or series.dtype == bool:
+            series = series.map({True: 1.0, False: 0.0, 1: 1.0, 0: 0.0}) if column in ("f_absent", "wrist_entrapment") else series
+        values[:, index] = pd.to_numeric(series, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+    missing = np.isnan(values)
+    values[missing] = 0.0
+    return np.concatenate([values, missing.astype("<f8")], axis=1)
+
+
+def _text_lines(frame: pd.DataFrame, columns: list[str]) -> list[str]:
+    """Each row's words joined by ``|`` (built once per distinct combination: files repeat them)."""
+    if frame.empty:
+        return []
+    codes = frame.groupby(columns, sort=False, dropna=False).ngroup().to_numpy()
+    first_rows = pd.Series(np.arange(len(frame))).groupby(codes).first().to_numpy()
+    table = frame[columns].iloc[first_rows].astype(object).to_numpy()
+    words = np.array(["|".join("" if pd.isna(v) else str(v) for v in row) for row in table], dtype=object)
+    return words[codes].tolist()
 
 
 def _fingerprints(frame: pd.DataFrame, nerve_tests: pd.DataFrame, visits: pd.DataFrame) -> list[str]:
     """SHA-256 of each visit's measured content, independent of row order and of which row held a
-    nerve- or visit-level value. Floats are written with ``repr`` (exact round trip).
+    nerve- or visit-level value. Numbers enter as their exact IEEE-754 bytes, words as UTF-8 text.
 
-    ``frame`` must be sorted by nerve test and site order, ``nerve_tests`` by nerve test."""
-    site_text = _text(frame["nerve"]) + "|" + _text(frame["side"]) + "|" + _text(frame["modality"])
-    for column in SITE_VALUES:
-        site_text = site_text + "|" + _text(frame[column])
-    test_text = _text(nerve_tests["nerve"]) + "|" + _text(nerve_tests["side"]) + "|" + _text(nerve_tests["modality"])
-    for column in NERVE_LEVEL:
-        test_text = test_text + "|" + _text(nerve_tests[column])
-    visit_text = "visit"
-    for column in VISIT_LEVEL:
-        visit_text = visit_text + "|" + _text(visits[column])
-    site_lines = pd.Series(site_text.to_numpy()).groupby([frame["patient"], frame["visit_date"]], sort=True).agg("\n".join)
-    test_lines = pd.Series(test_text.to_numpy()).groupby([nerve_tests["patient"], nerve_tests["visit_date"]], sort=True).agg("\n".join)
+    ``frame`` must be sorted by nerve test and site order, ``nerve_tests`` by nerve test, ``visits`` by
+    visit: then each visit's rows are contiguous in all three.
+    """
+    site_numbers = _number_matrix(frame, SITE_NUMBERS)
+    site_text = _text_lines(frame, SITE_TEXT)
+    test_numbers = _number_matrix(nerve_tests, TEST_NUMBERS)
+    test_text = _text_lines(nerve_tests, TEST_TEXT)
+    visit_numbers = _number_matrix(visits, VISIT_NUMBERS)
+    visit_text = _text_lines(visits, VISIT_TEXT)
+    site_counts = frame.groupby(VISIT_KEY, sort=True).size().to_numpy()
+    test_counts = nerve_tests.groupby(VISIT_KEY, sort=True).size().to_numpy()
     result = []
-    for (p, d), header in zip(zip(visits["patient"], visits["visit_date"]), visit_text):
-        payload = "\n".join((header, test_lines[(p, d)], site_lines[(p, d)]))
-        result.append(hashlib.sha256(payload.encode("utf-8")).hexdigest())
+    site_at = test_at = 0
+    for index in range(len(visits)):
+        sites, tests = int(site_counts[index]), int(test_counts[index])
+        digest = hashlib.sha256(visit_text[index].encode("utf-8"))
+        digest.update(visit_numbers[index].tobytes())
+        digest.update("\n".join(test_text[test_at : test_at + tests]).encode("utf-8"))
+        digest.update(test_numbers[test_at : test_at + tests].tobytes())
+        digest.update("\n".join(site_text[site_at : site_at + sites]).encode("utf-8"))
+        digest.update(site_numbers[site_at : site_at + sites].tobytes())
+        result.append(digest.hexdigest())
+        site_at, test_at = site_at + sites, test_at + tests
     return result
