@@ -53,9 +53,14 @@ def text(cells: pd.DataFrame, column: str) -> pd.Series:
 
 
 def map_unique(values: pd.Series, function) -> pd.Series:
-    """Apply ``function`` once per distinct value (files repeat the same words thousands of times)."""
-    uniques = pd.unique(values)
-    return values.map(dict(zip(uniques, (function(u) for u in uniques))))
+    """Apply ``function`` once per distinct value (files repeat the same words thousands of times).
+
+    Returns an object Series aligned with ``values``.
+    """
+    codes, uniques = pd.factorize(values, use_na_sentinel=False)
+    results = np.empty(len(uniques), dtype=object)
+    results[:] = [function(u) for u in uniques]
+    return pd.Series(results[codes], index=values.index, dtype=object)
 
 
 def _fast_numbers(raw: pd.Series) -> tuple[np.ndarray, np.ndarray] | None:
@@ -130,7 +135,7 @@ def vocabulary(
     """Map cells through ``mapping`` (lower-cased keys); unknown words get a "did you mean" hint."""
     raw = text(collect.cells, column)
     key = map_unique(raw, lambda w: w.lower().replace("-", "_").replace(" ", "_"))
-    mapped = key.map(mapping).astype(object)
+    mapped = map_unique(key, mapping.get)
     empty = (raw == "").to_numpy()
     unknown = ~empty & mapped.isna().to_numpy()
     choices = list(shown_choices or sorted(set(mapping.values())))
@@ -145,7 +150,7 @@ def vocabulary(
             )
     if required:
         collect.add(empty, column, f"required value is missing; expected one of {', '.join(choices)}")
-    return mapped.where(mapped.notna(), None)
+    return mapped
 
 
 def iso_dates(collect: Collector, column: str, *, required: bool, not_after: dt.date | None) -> pd.Series:

@@ -15,8 +15,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pandas as pd
-from sqlalchemy import delete, func, insert, select, text, update
+from sqlalchemy import Date, DateTime, delete, func, insert, select, text, update
 from sqlalchemy.orm import Session
 
 from tracker.db.models import (
@@ -102,8 +103,8 @@ def _records(frame: pd.DataFrame, columns: list[str]) -> list[dict[str, Any]]:
 def _allocate_ids(session: Session, table, count: int) -> list[int]:
     """Primary keys for ``count`` new rows of ``table``, which no concurrent writer can take.
 
-    PostgreSQL: drawn from the table's own sequence. SQLite: the next integers after the largest key; safe
-    because the caller's transaction has already written, so it holds SQLite's single write lock.
+    PostgreSQL: drawn from the table's own sequence. SQLite: the next integers after the largest key, read
+    after a no-op UPDATE has taken SQLite's single write lock for this transaction.
     """
     connection = session.connection()
     if connection.dialect.name == "postgresql":
@@ -113,27 +114,43 @@ def _allocate_ids(session: Session, table, count: int) -> list[int]:
                 {"table": table.name, "count": count},
             ).scalars()
         )
-    assert connection.in_transaction()
-    start = (connection.execute(select(func.coalesce(func.max(table.c.id), 0))).scalar_one()) + 1
+    connection.execute(update(table).where(text("0 = 1")).values(id=table.c.id))
+    start = connection.execute(select(func.coalesce(func.max(table.c.id), 0))).scalar_one() + 1
     return list(range(start, start + count))
 
 
 def _bulk_insert(session: Session, table, frame: pd.DataFrame, columns: list[str]) -> None:
     """Insert many rows through the driver's own executemany (the bulk path: tens of thousands of sites).
 
-    Only for tables without date columns: values are passed as plain Python numbers, text, booleans, None.
+    Dates and times are converted exactly as SQLAlchemy would (its bind processors: ISO text on SQLite),
+    once per distinct value; numbers, text and booleans are passed to the driver as they are, missing
+    values as NULL.
     """
     if frame.empty:
         return
     connection = session.connection()
-    marker = "?" if connection.dialect.paramstyle == "qmark" else "%s"
-    quote = connection.dialect.identifier_preparer.quote
+    dialect = connection.dialect
+    marker = "?" if dialect.paramstyle == "qmark" else "%s"
+    quote = dialect.identifier_preparer.quote
     sql = (
         f"INSERT INTO {quote(table.name)} ({', '.join(quote(c) for c in columns)}) "
         f"VALUES ({', '.join([marker] * len(columns))})"
     )
-    data = frame[columns].astype(object).where(frame[columns].notna(), None)
-    rows = list(zip(*(data[c].tolist() for c in columns)))
+    cells_by_column = []
+    for column in columns:
+        series = frame[column]
+        if series.dtype == np.float64 and dialect.name == "sqlite":
+            cells = series.tolist()  # SQLite stores a bound NaN as NULL: no per-cell conversion needed
+        elif series.dtype.kind in "fiub":
+            cells = series.astype(object).where(series.notna(), None).tolist()
+        else:
+            cells = [None if value is None or value is pd.NaT or value != value else value for value in series.tolist()]
+        if isinstance(table.c[column].type, (Date, DateTime)):
+            process = table.c[column].type.bind_processor(dialect) or (lambda value: value)
+            plain = {v: process(v.to_pydatetime() if isinstance(v, pd.Timestamp) else v) for v in set(cells) if v is not None}
+            cells = [None if v is None else plain[v] for v in cells]
+        cells_by_column.append(cells)
+    rows = list(zip(*cells_by_column))
     cursor = connection.connection.driver_connection.cursor()
     try:
         cursor.executemany(sql, rows)
@@ -266,16 +283,20 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
         return report
 
     if len(new_patients):
-        session.connection().execute(
-            Patient.__table__.insert(),
-            [
-                {"code": r["patient"], "sex": r["sex"], "birth_year": None if r["birth_year"] is None else int(r["birth_year"]), "created_at": utc_now()}
-                for r in _records(new_patients, ["patient", "sex", "birth_year"])
-            ],
+        latest = _latest_stated(batch.visits)
+        new_patients = new_patients.assign(
+            id=_allocate_ids(session, Patient.__table__, len(new_patients)),
+            code=new_patients["patient"],
+            birth_year=new_patients["birth_year"].astype("Int64"),
+            diagnosis=new_patients["patient"].map(latest["diagnosis"]),
+            phenotype=new_patients["patient"].map(latest["phenotype"]),
+            created_at=utc_now(),
         )
-    _fill_or_replace_patients(session, patients[patients["patient_id"].notna()], username=username, replace=replace)
-    ids = _existing_patients(session, codes).set_index("patient")["patient_id"]
-    visits["patient_id"] = visits["patient"].map(ids).astype(int)
+        columns = ["id", "code", "sex", "birth_year", "diagnosis", "phenotype", "created_at"]
+        _bulk_insert(session, Patient.__table__, new_patients, columns)
+        patients.loc[new_patients.index, "patient_id"] = new_patients["id"]
+    _fill_or_replace_patients(session, patients.drop(new_patients.index), username=username, replace=replace)
+    visits["patient_id"] = visits["patient"].map(patients.set_index("patient")["patient_id"]).astype(int)
 
     replaced_ids = [int(v) for v in visits.loc[changed, "visit_id"]]
     if replaced_ids:
@@ -296,22 +317,24 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
                 )
             )
 
-    new_visits = visits[~is_stored]
+    new_visits = visits[~is_stored].copy()
     if len(new_visits):
-        rows = _records(new_visits, ["patient_id", "visit_date", "height_cm", "diagnosis", "phenotype", "fingerprint"])
         now = utc_now()
-        for r in rows:
-            r["content_sha256"] = r.pop("fingerprint")
-            r.update(status="final", version=1, created_at=now)
-        session.connection().execute(Visit.__table__.insert(), rows)
-        visit_ids = _visit_ids(session, [int(i) for i in new_visits["patient_id"].unique()])
-        visits.loc[~is_stored, "visit_id"] = [
-            visit_ids[(p, d)] for p, d in zip(new_visits["patient_id"], new_visits["visit_date"])
-        ]
+        new_visits = new_visits.assign(
+            id=_allocate_ids(session, Visit.__table__, len(new_visits)),
+            content_sha256=new_visits["fingerprint"],
+            status="final",
+            version=1,
+            created_at=now,
+        )
+        columns = ["id", "patient_id", "visit_date", "height_cm", "diagnosis", "phenotype", "content_sha256", "status", "version", "created_at"]
+        _bulk_insert(session, Visit.__table__, new_visits, columns)
+        visits.loc[~is_stored, "visit_id"] = new_visits["id"].to_numpy()
 
     written = visits[~unchanged][["patient", "visit_date", "visit_id"]]
     _insert_nerve_tests(session, batch, written)
-    _refresh_patient_diagnosis(session, [int(i) for i in visits["patient_id"].unique()])
+    known = patients.drop(new_patients.index)["patient_id"]
+    _refresh_patient_diagnosis(session, [int(i) for i in known])
     return report
 
 
@@ -334,6 +357,15 @@ def stored_fingerprints(session: Session, visit_ids: list[int]) -> dict[int, str
     site_frame = pd.DataFrame(sites, columns=["patient", "nerve", "side", "modality", *SITE_VALUES]).assign(visit_date=0)
     visit_frame = visit_frame.sort_values(["patient", "visit_date"]).reset_index(drop=True)
     return dict(zip(visit_frame["visit_id"], fingerprints_of(site_frame, test_frame, visit_frame)))
+
+
+def _latest_stated(visits: pd.DataFrame) -> dict[str, pd.Series]:
+    """Per patient code: the diagnosis and phenotype of their latest visit that states one."""
+    ordered = visits.sort_values(["patient", "visit_date"])
+    return {
+        column: ordered[ordered[column].notna()].groupby("patient")[column].last()
+        for column in ("diagnosis", "phenotype")
+    }
 
 
 def _fill_or_replace_patients(session: Session, known: pd.DataFrame, *, username: str, replace: bool) -> None:
@@ -408,16 +440,6 @@ def _keep_history(session: Session, changed: pd.DataFrame, *, username: str) -> 
             before={"version": int(row.version), "content_sha256": row.db_fingerprint, "kept_as_revision": int(row.version)},
             after={"version": int(row.version) + 1, "content_sha256": row.fingerprint},
         )
-
-
-def _visit_ids(session: Session, patient_ids: list[int]) -> dict[tuple[int, Any], int]:
-    found: dict[tuple[int, Any], int] = {}
-    for part in _chunks(patient_ids):
-        for visit_id, patient_id, visit_date in session.execute(
-            select(Visit.id, Visit.patient_id, Visit.visit_date).where(Visit.patient_id.in_(part))
-        ):
-            found[(patient_id, visit_date)] = visit_id
-    return found
 
 
 def _insert_nerve_tests(session: Session, batch: MeasurementBatch, written: pd.DataFrame) -> None:

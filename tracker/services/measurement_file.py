@@ -365,6 +365,13 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
         sub.add(too_short, "f_latency_ms", "the minimal F-wave latency is not longer than the distal motor latency", values=shown)
 
 
+def _sorted(frame: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
+    """``frame`` sorted by ``keys`` (ascending, stable), like ``sort_values`` but on integer codes."""
+    codes = [pd.factorize(frame[k], sort=True)[0] for k in keys]
+    order = np.lexsort(codes[::-1])
+    return frame.iloc[order].reset_index(drop=True)
+
+
 def _first(frame: pd.DataFrame, keys: list[str], columns: list[str]) -> pd.DataFrame:
     """One row per group: the first stated value of each column, and the group's first file row."""
     grouped = frame.groupby(keys, sort=True, dropna=False)
@@ -374,7 +381,7 @@ def _first(frame: pd.DataFrame, keys: list[str], columns: list[str]) -> pd.DataF
 
 
 def _assemble(frame: pd.DataFrame, unusual: list[Problem]) -> MeasurementBatch:
-    frame = frame.sort_values(TEST_KEY + ["site_order"], kind="stable").reset_index(drop=True)
+    frame = _sorted(frame, TEST_KEY + ["site_order"])
     frame["site_order"] = frame["site_order"].astype(int)
     nerve_tests = _first(frame, TEST_KEY, NERVE_LEVEL)
     nerve_tests["f_absent"] = nerve_tests["f_absent"].fillna(False).astype(bool)
@@ -411,6 +418,9 @@ def _number_matrix(frame: pd.DataFrame, columns: list[str]) -> np.ndarray:
     values = np.empty((len(frame), len(columns)), dtype="<f8")
     for index, column in enumerate(columns):
         series = frame[column]
+        if series.dtype == np.float64:
+            values[:, index] = series.to_numpy()
+            continue
         if series.dtype == object or series.dtype == bool:
             series = series.map({True: 1.0, False: 0.0, 1: 1.0, 0: 0.0}) if column in ("f_absent", "wrist_entrapment") else series
         values[:, index] = pd.to_numeric(series, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
