@@ -220,3 +220,19 @@ def test_fingerprints_recomputed_from_stored_rows_equal_the_import_ones(db_url, 
     with sessions() as session:
         stored = dict(session.execute(select(Visit.id, Visit.content_sha256)).all())
         assert stored_fingerprints(session, list(stored)) == stored
+
+
+def test_patient_diagnosis_follows_the_latest_visit_that_states_it(db_url, sessions, tmp_path, capsys):
+    # Invented scenario: an acute neuropathy first recorded as GBS is later judged CIDP.
+    header = "patient,visit_date,nerve,side,modality,site_order,distance_mm,latency_ms,amplitude_mv,diagnosis,phenotype\n"
+    first = tmp_path / "first.csv"
+    first.write_text(header + "T-7,2024-01-10,median,right,motor,1,70,4.0,6.0,gbs,\n", encoding="utf-8")
+    later = tmp_path / "later.csv"
+    later.write_text(header + "T-7,2024-06-10,median,right,motor,1,70,4.6,5.0,cidp,typical\n", encoding="utf-8")
+    assert run_cli(capsys, "--db", db_url, "import", str(first))[0] == 0
+    with sessions() as session:
+        assert session.scalar(select(Patient.diagnosis).where(Patient.code == "T-7")) == "gbs"
+    assert run_cli(capsys, "--db", db_url, "import", str(later))[0] == 0
+    with sessions() as session:
+        patient = session.scalar(select(Patient).where(Patient.code == "T-7"))
+        assert (patient.diagnosis, patient.phenotype) == ("cidp", "typical")

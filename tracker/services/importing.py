@@ -144,7 +144,7 @@ def _bulk_insert(session: Session, table, frame: pd.DataFrame, columns: list[str
         elif series.dtype.kind in "fiub":
             cells = series.astype(object).where(series.notna(), None).tolist()
         else:
-            cells = [None if value is None or value is pd.NaT or value != value else value for value in series.tolist()]
+            cells = series.astype(object).where(series.notna(), None).tolist()
         if isinstance(table.c[column].type, (Date, DateTime)):
             process = table.c[column].type.bind_processor(dialect) or (lambda value: value)
             plain = {v: process(v.to_pydatetime() if isinstance(v, pd.Timestamp) else v) for v in set(cells) if v is not None}

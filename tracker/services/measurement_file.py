@@ -127,9 +127,10 @@ def _plain(value: object) -> str:
 
 def _consistency(collect: Collector, frame: pd.DataFrame, group: np.ndarray, columns: list[str], level: str) -> None:
     """Values of a nerve-, visit- or patient-level column must agree on every row that states them."""
+    all_counts = frame[columns].groupby(group).nunique(dropna=True)
     for column in columns:
         series = frame[column]
-        counts = series.groupby(group).nunique(dropna=True)
+        counts = all_counts[column]
         for group_id in counts.index[counts.to_numpy() > 1]:
             members = np.flatnonzero(group == group_id)
             stated = members[series.iloc[members].notna().to_numpy()]
@@ -290,7 +291,8 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
     sub.problems = collect.problems
 
     test_group = _group_ids(valid, TEST_KEY)
-    duplicated = valid.duplicated(TEST_KEY + ["site_order"], keep=False).to_numpy()
+    site_key = pd.DataFrame({"test": test_group, "order": valid["site_order"].to_numpy()})
+    duplicated = site_key.duplicated(keep=False).to_numpy()
     if duplicated.any():
         dup = valid[duplicated]
         for _, rows in dup.groupby(TEST_KEY + ["site_order"], sort=False)[ROW]:
@@ -381,11 +383,16 @@ def _first(frame: pd.DataFrame, keys: list[str], columns: list[str]) -> pd.DataF
 
 
 def _assemble(frame: pd.DataFrame, unusual: list[Problem]) -> MeasurementBatch:
-    frame = _sorted(frame, TEST_KEY + ["site_order"])
+    """Sort sites by nerve test and site order, and gather one row per nerve test, visit and patient."""
+    test_code = frame.groupby(TEST_KEY, sort=True).ngroup().to_numpy()
+    order = np.lexsort((frame["site_order"].to_numpy(), test_code))
+    frame = frame.iloc[order].reset_index(drop=True)
+    test_code = test_code[order]
     frame["site_order"] = frame["site_order"].astype(int)
-    nerve_tests = _first(frame, TEST_KEY, NERVE_LEVEL)
+    nerve_tests = _first_by_code(frame, test_code, TEST_KEY, NERVE_LEVEL)
     nerve_tests["f_absent"] = nerve_tests["f_absent"].fillna(False).astype(bool)
-    visits = _first(frame, VISIT_KEY, VISIT_LEVEL)
+    visit_code = frame.groupby(VISIT_KEY, sort=True).ngroup().to_numpy()
+    visits = _first_by_code(frame, visit_code, VISIT_KEY, VISIT_LEVEL)
     patients = _first(frame, ["patient"], PATIENT_LEVEL)
     visits["fingerprint"] = _fingerprints(frame, nerve_tests, visits)
     return MeasurementBatch(
@@ -395,6 +402,16 @@ def _assemble(frame: pd.DataFrame, unusual: list[Problem]) -> MeasurementBatch:
         patients=patients,
         unusual=unusual,
     )
+
+
+def _first_by_code(frame: pd.DataFrame, code: np.ndarray, keys: list[str], columns: list[str]) -> pd.DataFrame:
+    """Like :func:`_first` for rows already sorted so that each group (integer ``code``) is contiguous."""
+    starts = np.flatnonzero(np.r_[True, code[1:] != code[:-1]])
+    result = frame[keys].iloc[starts].reset_index(drop=True)
+    values = frame[columns].groupby(code, sort=True).first().reset_index(drop=True)
+    result[columns] = values
+    result[ROW] = frame[ROW].groupby(code, sort=True).min().to_numpy()
+    return result
 
 
 def fingerprints_of(sites: pd.DataFrame, nerve_tests: pd.DataFrame, visits: pd.DataFrame) -> list[str]:
@@ -418,8 +435,8 @@ def _number_matrix(frame: pd.DataFrame, columns: list[str]) -> np.ndarray:
     values = np.empty((len(frame), len(columns)), dtype="<f8")
     for index, column in enumerate(columns):
         series = frame[column]
-        if series.dtype == np.float64:
-            values[:, index] = series.to_numpy()
+        if series.dtype.kind in "iuf":
+            values[:, index] = series.to_numpy(dtype=float)
             continue
         if series.dtype == object or series.dtype == bool:
             series = series.map({True: 1.0, False: 0.0, 1: 1.0, 0: 0.0}) if column in ("f_absent", "wrist_entrapment") else series

@@ -136,6 +136,7 @@ def read_table(path: Path) -> InputTable:
         raise InputRejected("The file could not be read", [Problem(None, None, str(path), error.strerror or "unreadable")]) from None
     sha = hashlib.sha256(raw).hexdigest()
     suffix = path.suffix.lower()
+    trimmed = False
     if suffix == ".xlsx":
         frame = _read_xlsx(raw)
     elif suffix in (".csv", ".txt"):
@@ -143,6 +144,7 @@ def read_table(path: Path) -> InputTable:
         if not text.strip():
             raise InputRejected("The file is empty", [Problem(None, None, None, "no header row and no data")])
         frame = _read_csv_fast(text)
+        trimmed = frame is not None
         if frame is None:
             try:
                 frame = pd.read_csv(
@@ -165,7 +167,8 @@ def read_table(path: Path) -> InputTable:
     if problems:
         raise InputRejected("The header row has duplicate or reserved columns", problems)
     frame.columns = headers
-    frame = frame.astype(str).apply(lambda column: column.str.strip()) if len(frame) else frame.astype(str)
+    if not trimmed:
+        frame = frame.astype(str).apply(lambda column: column.str.strip()) if len(frame) else frame.astype(str)
     frame[ROW] = range(2, len(frame) + 2)
     # Rows where every cell is empty (trailing spreadsheet rows) carry no data.
     data_columns = [c for c in frame.columns if c != ROW]
