@@ -156,7 +156,7 @@ def show_command(context: Context, patient: str, visit_date: str | None) -> None
 
 @cli.command("demo")
 @click.option("--path", "db_path", type=click.Path(path_type=Path, dir_okay=False), help="Where to build the demo database (default: the user data folder).")
-@click.option("--port", type=int, help="Reserved for the dashboard (not yet served).")
+@click.option("--port", type=int, help="Port of the dashboard. The dashboard is not built yet: accepted, and ignored for now.")
 @pass_context
 def demo_command(context: Context, db_path: Path | None, port: int | None) -> None:
     """Build a fresh demo database from the invented clinic in demo_data/ and print every patient."""
@@ -164,6 +164,8 @@ def demo_command(context: Context, db_path: Path | None, port: int | None) -> No
     from tracker.services.records import patient_codes, patient_record
     from tracker.text_report import patient_lines
 
+    if port is not None:
+        click.echo("Note: the dashboard is not built yet; --port is ignored and the demo is printed instead.", err=True)
     path = db_path or user_data_dir() / "demo.sqlite3"
     url = sqlite_url(path)
     engine, reports = build_demo_database(path, username=context.user)

@@ -439,7 +439,7 @@ def _number_matrix(frame: pd.DataFrame, columns: list[str]) -> np.ndarray:
             values[:, index] = series.to_numpy(dtype=float)
             continue
         if series.dtype == object or series.dtype == bool:
-            series = series.map({True: 1.0, False: 0.0, 1: 1.0, 0: 0.0}) if column in ("f_absent", "wrist_entrapment") else series
+            series = series.map({True: 1.0, False: 0.0}) if column in ("f_absent", "wrist_entrapment") else series
         values[:, index] = pd.to_numeric(series, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     missing = np.isnan(values)
     values[missing] = 0.0
