@@ -6,11 +6,11 @@ stored under the canonical name.
 
 from __future__ import annotations
 
-import csv
 import difflib
 from dataclasses import dataclass
 from functools import cache
-from importlib import resources
+
+from tracker.domain.reference_files import read_reference_csv
 
 
 @dataclass(frozen=True, slots=True)
@@ -21,11 +21,6 @@ class NerveInfo:
     limb: str  # "upper" or "lower": decides which temperature minimum applies
     motor_recording_site: str | None
     sensory_recording_site: str | None
-
-
-def _read_reference_csv(name: str) -> list[dict[str, str]]:
-    text = resources.files("tracker.reference").joinpath(name).read_text(encoding="utf-8")
-    return list(csv.DictReader(text.splitlines()))
 
 
 def _split(cell: str) -> tuple[str, ...]:
@@ -41,7 +36,7 @@ def normalise_word(text: str) -> str:
 def nerves() -> dict[str, NerveInfo]:
     """Canonical nerve name → its description."""
     result = {}
-    for row in _read_reference_csv("nerves.csv"):
+    for row in read_reference_csv("nerves.csv"):
         result[row["nerve"]] = NerveInfo(
             name=row["nerve"],
             aliases=_split(row["aliases"]),
@@ -67,7 +62,7 @@ def _nerve_lookup() -> dict[str, str]:
 def _site_lookup() -> dict[tuple[str, str], dict[str, str]]:
     """(nerve, modality) → {accepted label: canonical label}."""
     table: dict[tuple[str, str], dict[str, str]] = {}
-    for row in _read_reference_csv("sites.csv"):
+    for row in read_reference_csv("sites.csv"):
         labels = table.setdefault((row["nerve"], row["modality"]), {})
         labels[row["site"]] = row["site"]
         for alias in _split(row["aliases"]):

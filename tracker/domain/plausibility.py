@@ -2,12 +2,12 @@
 
 from __future__ import annotations
 
-import csv
 from dataclasses import dataclass
 from functools import cache
-from importlib import resources
 
 import numpy as np
+
+from tracker.domain.reference_files import read_reference_csv
 
 
 @dataclass(frozen=True, slots=True)
@@ -48,11 +48,6 @@ class Scale:
     source: str
 
 
-def _rows(name: str) -> list[dict[str, str]]:
-    text = resources.files("tracker.reference").joinpath(name).read_text(encoding="utf-8")
-    return list(csv.DictReader(text.splitlines()))
-
-
 @cache
 def ranges() -> dict[str, Range]:
     return {
@@ -66,7 +61,7 @@ def ranges() -> dict[str, Range]:
             overridable=row["overridable"] == "yes",
             source=row["source"],
         )
-        for row in _rows("plausibility.csv")
+        for row in read_reference_csv("plausibility.csv")
     }
 
 
@@ -82,5 +77,5 @@ def scales() -> dict[str, Scale]:
             meaning=row["meaning"],
             source=row["source"],
         )
-        for row in _rows("scales.csv")
+        for row in read_reference_csv("scales.csv")
     }
