@@ -235,3 +235,19 @@ def test_patient_diagnosis_follows_the_latest_visit_that_states_it(db_url, sessi
     with sessions() as session:
         patient = session.scalar(select(Patient).where(Patient.code == "T-7"))
         assert (patient.diagnosis, patient.phenotype) == ("cidp", "typical")
+
+
+def test_phenotype_comes_from_the_same_visit_as_the_diagnosis(db_url, sessions, tmp_path, capsys):
+    # Invented scenario: CIDP (distal) first, later reclassified as "other" with no phenotype.
+    header = "patient,visit_date,nerve,side,modality,site_order,distance_mm,latency_ms,amplitude_mv,diagnosis,phenotype\n"
+    path = tmp_path / "two.csv"
+    path.write_text(
+        header
+        + "T-8,2024-01-10,median,right,motor,1,70,4.0,6.0,cidp,distal\n"
+        + "T-8,2024-06-10,median,right,motor,1,70,4.1,6.0,other,\n",
+        encoding="utf-8",
+    )
+    assert run_cli(capsys, "--db", db_url, "import", str(path))[0] == 0
+    with sessions() as session:
+        patient = session.scalar(select(Patient).where(Patient.code == "T-8"))
+        assert (patient.diagnosis, patient.phenotype) == ("other", None)

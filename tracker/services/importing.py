@@ -141,14 +141,14 @@ def _bulk_insert(session: Session, table, frame: pd.DataFrame, columns: list[str
         series = frame[column]
         if series.dtype == np.float64 and dialect.name == "sqlite":
             cells = series.tolist()  # SQLite stores a bound NaN as NULL: no per-cell conversion needed
-        elif series.dtype.kind in "fiub":
-            cells = series.astype(object).where(series.notna(), None).tolist()
         else:
             cells = series.astype(object).where(series.notna(), None).tolist()
         if isinstance(table.c[column].type, (Date, DateTime)):
             process = table.c[column].type.bind_processor(dialect) or (lambda value: value)
-            plain = {v: process(v.to_pydatetime() if isinstance(v, pd.Timestamp) else v) for v in set(cells) if v is not None}
-            cells = [None if v is None else plain[v] for v in cells]
+            converted = {
+                v: process(v.to_pydatetime() if isinstance(v, pd.Timestamp) else v) for v in set(cells) if v is not None
+            }
+            cells = [None if v is None else converted[v] for v in cells]
         cells_by_column.append(cells)
     rows = list(zip(*cells_by_column))
     cursor = connection.connection.driver_connection.cursor()
@@ -346,7 +346,7 @@ def stored_fingerprints(session: Session, visit_ids: list[int]) -> dict[int, str
         visits += session.execute(select(*key_columns, *[getattr(Visit, c) for c in VISIT_LEVEL]).where(Visit.id.in_(part))).all()
         test_key = [NerveTest.visit_id, NerveTest.nerve, NerveTest.side, NerveTest.modality]
         tests += session.execute(select(*test_key, *[getattr(NerveTest, c) for c in NERVE_LEVEL]).where(NerveTest.visit_id.in_(part))).all()
-        site_values = [getattr(StimulationSite, "label" if c == "label" else c) for c in SITE_VALUES]
+        site_values = [getattr(StimulationSite, c) for c in SITE_VALUES]
         sites += session.execute(
             select(*test_key, *site_values).join(StimulationSite, StimulationSite.nerve_test_id == NerveTest.id).where(NerveTest.visit_id.in_(part))
         ).all()
@@ -360,12 +360,10 @@ def stored_fingerprints(session: Session, visit_ids: list[int]) -> dict[int, str
 
 
 def _latest_stated(visits: pd.DataFrame) -> dict[str, pd.Series]:
-    """Per patient code: the diagnosis and phenotype of their latest visit that states one."""
-    ordered = visits.sort_values(["patient", "visit_date"])
-    return {
-        column: ordered[ordered[column].notna()].groupby("patient")[column].last()
-        for column in ("diagnosis", "phenotype")
-    }
+    """Per patient code: diagnosis and phenotype of their latest visit that states a diagnosis."""
+    ordered = visits[visits["diagnosis"].notna()].sort_values(["patient", "visit_date"])
+    latest = ordered.drop_duplicates("patient", keep="last").set_index("patient")
+    return {column: latest[column] for column in ("diagnosis", "phenotype")}
 
 
 def _fill_or_replace_patients(session: Session, known: pd.DataFrame, *, username: str, replace: bool) -> None:
@@ -461,11 +459,11 @@ def _insert_nerve_tests(session: Session, batch: MeasurementBatch, written: pd.D
 
 
 def _refresh_patient_diagnosis(session: Session, patient_ids: list[int]) -> None:
-    """A patient's current diagnosis and phenotype are those of their latest visit that states them."""
+    """A patient's current diagnosis and phenotype are those of their latest visit that states a diagnosis."""
     for column in ("diagnosis", "phenotype"):
         latest = (
             select(getattr(Visit, column))
-            .where(Visit.patient_id == Patient.id, getattr(Visit, column).is_not(None))
+            .where(Visit.patient_id == Patient.id, Visit.diagnosis.is_not(None))
             .order_by(Visit.visit_date.desc())
             .limit(1)
             .scalar_subquery()
