@@ -150,10 +150,9 @@ def _bulk_insert(session: Session, table, frame: pd.DataFrame, columns: list[str
             }
             cells = [None if v is None else converted[v] for v in cells]
         cells_by_column.append(cells)
-    rows = list(zip(*cells_by_column))
     cursor = connection.connection.driver_connection.cursor()
     try:
-        cursor.executemany(sql, rows)
+        cursor.executemany(sql, zip(*cells_by_column, strict=True))
     finally:
         cursor.close()
 
