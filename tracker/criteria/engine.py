@@ -1,0 +1,121 @@
+"""Evaluate criteria sets over many visits at once, and derive the reports built on the findings:
+temperature warnings, the closest miss of a set not met, and what changed since the previous visit."""
+
+from __future__ import annotations
+
+import importlib
+
+import numpy as np
+import pandas as pd
+
+from tracker.criteria import features
+from tracker.criteria.model import MET, NOT_MET, SetResult, Settings
+
+# Criteria id → module under tracker.criteria.sets (each has ID and evaluate()).
+REGISTRY = {
+    "efns-pns-2010-cidp": "efns_pns_2010_cidp",
+    "ean-pns-2021-cidp": "ean_pns_2021_cidp",
+    "aan-1991-cidp": "aan_1991_cidp",
+    "efns-pns-2010-mmn": "efns_pns_2010_mmn",
+    "hadden-1998-gbs": "hadden_1998_gbs",
+    "rajabally-2015-gbs": "rajabally_2015_gbs",
+}
+
+
+def available() -> list[str]:
+    """Criteria ids whose module exists in this installation."""
+    found = []
+    for criteria_id, module in REGISTRY.items():
+        try:
+            importlib.import_module(f"tracker.criteria.sets.{module}")
+        except ModuleNotFoundError:
+            continue
+        found.append(criteria_id)
+    return found
+
+
+def evaluate(
+    visits: pd.DataFrame,
+    tests: pd.DataFrame,
+    sites: pd.DataFrame,
+    limits: pd.DataFrame,
+    criteria_ids: list[str] | None = None,
+    settings: Settings | None = None,
+) -> dict[str, SetResult]:
+    """Every requested criteria set over every visit, in one vectorised pass per set."""
+    settings = settings or Settings()
+    nerves, paths = features.build(visits, tests, sites, limits)
+    results = {}
+    for criteria_id in criteria_ids or available():
+        if criteria_id not in REGISTRY:
+            raise KeyError(f"Unknown criteria set {criteria_id!r}; known: {', '.join(REGISTRY)}")
+        module = importlib.import_module(f"tracker.criteria.sets.{REGISTRY[criteria_id]}")
+        results[criteria_id] = module.evaluate(nerves, paths, visits, settings)
+    return results
+
+
+def temperature_warnings(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
+    """Nerve tests recorded from a limb colder than the guideline minimum (no correction is applied)."""
+    nerves, _ = features.build(visits, tests, sites, limits)
+    cold = nerves[nerves["cold"].fillna(False).astype(bool)]
+    minimums = features.temperature_minimums()
+    return pd.DataFrame(
+        {
+            "visit_key": cold["visit_key"],
+            "nerve": cold["nerve"],
+            "side": cold["side"],
+            "modality": cold["modality"],
+            "temperature_c": cold["temperature_c"],
+            "minimum_c": cold["temperature_minimum_c"],
+            "message": [
+                f"{n} {s} {m}: limb temperature {t:g} °C is below the guideline minimum of {mn:g} °C "
+                f"({'from memory, not verified' if minimums.get(limb, (0, ''))[1] == 'memory' else 'verified'}); "
+                "values kept, no correction applied"
+                for n, s, m, t, mn, limb in zip(cold["nerve"], cold["side"], cold["modality"], cold["temperature_c"], cold["temperature_minimum_c"], cold["limb"])
+            ],
+        }
+    ).reset_index(drop=True)
+
+
+def closest_miss(result: SetResult) -> pd.DataFrame:
+    """For each visit where the set is not met: the not-met finding nearest its threshold (relative)."""
+    not_met_visits = result.outcomes.loc[result.outcomes["outcome"] == "not_met", "visit_key"]
+    findings = result.findings[(result.findings["status"] == NOT_MET) & result.findings["visit_key"].isin(not_met_visits)]
+    findings = findings[findings["threshold"].notna() & findings["margin"].notna() & (findings["threshold"] != 0)].copy()
+    if findings.empty:
+        return findings.assign(relative_margin=pd.Series(dtype=float), text=pd.Series(dtype=object))
+    findings["relative_margin"] = (findings["margin"] / findings["threshold"].abs()).abs()
+    best = findings.sort_values(["visit_key", "relative_margin"]).drop_duplicates("visit_key")
+    best["text"] = [describe_miss(row) for row in best.itertuples()]
+    return best.reset_index(drop=True)
+
+
+def describe_miss(row) -> str:
+    direction = "above" if row.comparator in ("le", "lt") else "below"
+    where = f" ({row.segment})" if isinstance(row.segment, str) and row.segment else ""
+    return (
+        f"{row.nerve} {row.side} {row.parameter}{where} {row.value:.1f} {row.unit}, "
+        f"{abs(row.margin):.1f} {row.unit} {direction} the {row.threshold:.1f} {row.unit} threshold ({row.item})"
+    )
+
+
+def changes_between_visits(visits: pd.DataFrame, result: SetResult) -> pd.DataFrame:
+    """Findings that turned met or not met between consecutive visits of the same patient.
+
+    ``visits`` needs ``visit_key``, ``patient``, ``visit_date``. Findings not evaluable on either visit are
+    not reported as changes.
+    """
+    order = visits[["visit_key", "patient", "visit_date"]].sort_values(["patient", "visit_date"])
+    order["previous_key"] = order.groupby("patient")["visit_key"].shift(1)
+    key = ["nerve", "side", "modality", "item"]
+    findings = result.findings[["visit_key", *key, "status", "value", "unit", "parameter"]]
+    pairs = order.dropna(subset=["previous_key"])
+    current = findings.merge(pairs[["visit_key", "previous_key", "patient", "visit_date"]], on="visit_key")
+    previous = findings.rename(columns={"visit_key": "previous_key", "status": "previous_status", "value": "previous_value"})
+    merged = current.merge(previous[["previous_key", *key, "previous_status", "previous_value"]], on=["previous_key", *key])
+    turned = merged[
+        ((merged["status"] == MET) & (merged["previous_status"] == NOT_MET))
+        | ((merged["status"] == NOT_MET) & (merged["previous_status"] == MET))
+    ].copy()
+    turned["change"] = np.where(turned["status"] == MET, "turned met", "turned not met")
+    return turned.reset_index(drop=True)

@@ -1,0 +1,134 @@
+"""Normal limits: the shipped default set, and choosing the stratum that fits a visit.
+
+A limit row applies to a nerve, modality and parameter, optionally only within an age band (years, lower
+bound inclusive, upper exclusive), a height band (cm, same convention) and a sex. For each nerve test the
+engine takes, per parameter and bound, the applicable row with the most stratum conditions; two applicable
+rows equally specific are an error of the limit set (refused at import).
+"""
+
+from __future__ import annotations
+
+import csv
+from functools import cache
+from importlib import resources
+
+import numpy as np
+import pandas as pd
+
+LIMIT_COLUMNS = ["nerve", "modality", "parameter", "bound", "value", "age_min", "age_max", "height_min_cm", "height_max_cm", "sex", "source", "status"]
+DEFAULT_NAME = "default (Preston & Shapiro appendix)"
+# (parameter, bound) → the column name the criteria use.
+LIMIT_FIELDS = {
+    ("distal_latency_ms", "uln"): "uln_distal_latency_ms",
+    ("amplitude", "lln"): "lln_amplitude",
+    ("cv_ms", "lln"): "lln_cv",
+    ("f_latency_ms", "uln"): "uln_f_latency_ms",
+    ("peak_latency_ms", "uln"): "uln_peak_latency_ms",
+    ("distal_duration_ms", "uln"): "uln_distal_duration_ms",
+}
+
+
+@cache
+def default_limits() -> pd.DataFrame:
+    """The shipped default limit rows (``tracker/reference/limits_default.csv``)."""
+    text = resources.files("tracker.reference").joinpath("limits_default.csv").read_text(encoding="utf-8")
+    frame = pd.DataFrame(list(csv.DictReader(text.splitlines())))
+    return normalise(frame)
+
+
+def normalise(frame: pd.DataFrame) -> pd.DataFrame:
+    """Typed limit rows with every column of ``LIMIT_COLUMNS`` (empty strata as NaN / None)."""
+    frame = frame.copy()
+    for column in LIMIT_COLUMNS:
+        if column not in frame:
+            frame[column] = None
+    for column in ("value", "age_min", "age_max", "height_min_cm", "height_max_cm"):
+        frame[column] = pd.to_numeric(frame[column].replace("", None), errors="coerce").astype(float)
+    for column in ("sex", "source", "status"):
+        frame[column] = frame[column].replace("", None).astype(object)
+    return frame[LIMIT_COLUMNS].reset_index(drop=True)
+
+
+def overlapping_strata(frame: pd.DataFrame) -> list[tuple[int, int]]:
+    """Pairs of row positions that could both apply to one person with the same specificity."""
+    pairs = []
+    limits = normalise(frame)
+    for _, group in limits.groupby(["nerve", "modality", "parameter", "bound"], sort=False):
+        rows = list(group.itertuples())
+        for i, a in enumerate(rows):
+            for b in rows[i + 1 :]:
+                if _specificity(a) == _specificity(b) and _bands_overlap(a, b):
+                    pairs.append((a.Index, b.Index))
+    return pairs
+
+
+def _specificity(row) -> int:
+    return sum(
+        not _missing(v) for v in (row.age_min, row.age_max, row.height_min_cm, row.height_max_cm, row.sex)
+    )
+
+
+def _missing(value) -> bool:
+    return value is None or (isinstance(value, float) and np.isnan(value))
+
+
+def _bands_overlap(a, b) -> bool:
+    def overlap(lo1, hi1, lo2, hi2) -> bool:
+        lo1 = -np.inf if _missing(lo1) else lo1
+        lo2 = -np.inf if _missing(lo2) else lo2
+        hi1 = np.inf if _missing(hi1) else hi1
+        hi2 = np.inf if _missing(hi2) else hi2
+        return lo1 < hi2 and lo2 < hi1
+
+    sexes_overlap = _missing(a.sex) or _missing(b.sex) or a.sex == b.sex
+    return (
+        overlap(a.age_min, a.age_max, b.age_min, b.age_max)
+        and overlap(a.height_min_cm, a.height_max_cm, b.height_min_cm, b.height_max_cm)
+        and sexes_overlap
+    )
+
+
+def attach_limits(nerves: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
+    """Add one column per limit (``LIMIT_FIELDS``) and ``limit_sources`` / ``limit_strata`` to ``nerves``.
+
+    ``nerves`` needs ``nerve``, ``modality``, ``age_years``, ``height_cm``, ``sex``. A stratum condition on a
+    value the visit lacks (unknown age, say) does not apply; the unconditioned row does.
+    """
+    limits = normalise(limits)
+    keyed = nerves[["nerve", "modality", "age_years", "height_cm", "sex"]].reset_index().rename(columns={"index": "row"})
+    merged = keyed.merge(limits, on=["nerve", "modality"], how="inner", suffixes=("", "_limit"))
+
+    def within(value, low, high):
+        v = merged[value].astype(float)
+        lo, hi = merged[low], merged[high]
+        ok_low = lo.isna() | (v >= lo)
+        ok_high = hi.isna() | (v < hi)
+        return ok_low & ok_high
+
+    applies = within("age_years", "age_min", "age_max") & within("height_cm", "height_min_cm", "height_max_cm")
+    applies &= merged["sex_limit"].isna() | (merged["sex_limit"] == merged["sex"])
+    merged = merged[applies].copy()
+    merged["specificity"] = (
+        merged[["age_min", "age_max", "height_min_cm", "height_max_cm"]].notna().sum(axis=1) + merged["sex_limit"].notna()
+    )
+    merged = merged.sort_values(["row", "parameter", "bound", "specificity"]).drop_duplicates(["row", "parameter", "bound"], keep="last")
+    result = nerves.copy()
+    for (parameter, bound), column in LIMIT_FIELDS.items():
+        part = merged[(merged["parameter"] == parameter) & (merged["bound"] == bound)].set_index("row")
+        result[column] = part["value"].reindex(result.index)
+        result[f"{column}_source"] = part["source"].reindex(result.index)
+        result[f"{column}_status"] = part["status"].reindex(result.index)
+        strata = part.apply(_describe_stratum, axis=1) if len(part) else pd.Series(dtype=object)
+        result[f"{column}_stratum"] = strata.reindex(result.index)
+    return result
+
+
+def _describe_stratum(row) -> str:
+    parts = []
+    if not (_missing(row.age_min) and _missing(row.age_max)):
+        parts.append(f"age {'' if _missing(row.age_min) else f'{row.age_min:g}'}–{'' if _missing(row.age_max) else f'{row.age_max:g}'} y")
+    if not (_missing(row.height_min_cm) and _missing(row.height_max_cm)):
+        parts.append(f"height {'' if _missing(row.height_min_cm) else f'{row.height_min_cm:g}'}–{'' if _missing(row.height_max_cm) else f'{row.height_max_cm:g}'} cm")
+    if not _missing(row.sex_limit):
+        parts.append(str(row.sex_limit))
+    return ", ".join(parts) or "all adults"

@@ -1,0 +1,77 @@
+"""Statuses, settings and the shape of a criteria result."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import pandas as pd
+
+MET, NOT_MET, NOT_EVALUABLE = "met", "not_met", "not_evaluable"
+
+# Columns of a findings table (one row per nerve × parameter × criteria item).
+FINDING_COLUMNS = [
+    "visit_key",
+    "criteria",
+    "nerve",
+    "side",
+    "modality",
+    "item",
+    "parameter",
+    "segment",
+    "value",
+    "unit",
+    "limit",
+    "limit_name",
+    "threshold",
+    "comparator",
+    "status",
+    "reason",
+    "source",
+    "source_status",
+    "margin",
+]
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Choices where clinicians differ (see ``tracker/criteria/README.md``).
+
+    ``cold_limbs``: ``"warn"`` keeps values from limbs colder than the guideline minimum and warns;
+    ``"exclude"`` makes that nerve's findings not evaluable.
+    ``sides_are_separate_nerves``: left and right of one nerve count as two nerves.
+    ``cv_segments``: ``"standard"`` uses the forearm/leg segment only for conduction velocity;
+    ``"all_outside_entrapment"`` also uses proximal segments (with the same lower limit).
+    ``block_path``: ``"outside_entrapment"`` measures block from the distal site to every proximal site
+    whose path avoids entrapment segments; ``"standard"`` uses the forearm/leg segment only.
+    """
+
+    cold_limbs: str = "warn"
+    sides_are_separate_nerves: bool = True
+    cv_segments: str = "standard"
+    block_path: str = "outside_entrapment"
+
+    def __post_init__(self) -> None:
+        checks = {
+            "cold_limbs": ("warn", "exclude"),
+            "cv_segments": ("standard", "all_outside_entrapment"),
+            "block_path": ("outside_entrapment", "standard"),
+        }
+        for name, allowed in checks.items():
+            if getattr(self, name) not in allowed:
+                raise ValueError(f"Invalid value for '{name}'. Allowed values are {allowed}, but got {getattr(self, name)!r}.")
+
+
+@dataclass
+class SetResult:
+    """The result of one criteria set over many visits.
+
+    ``findings``: per-nerve findings (``FINDING_COLUMNS``). ``outcomes``: one row per visit with column
+    ``outcome`` and any extra keys of that set (e.g. ``motor``, ``sensory``, ``items_met``) and ``rule``
+    (which combination rule decided the outcome).
+    """
+
+    criteria: str
+    version: str
+    findings: pd.DataFrame
+    outcomes: pd.DataFrame
+    extra_keys: tuple[str, ...] = field(default_factory=tuple)

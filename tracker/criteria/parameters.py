@@ -1,0 +1,206 @@
+"""Per-nerve motor and sensory parameters shared by the criteria sets.
+
+Each function returns the findings of one criteria item for every nerve test of the right modality. The
+threshold comes from the set's table; the set decides how findings combine.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from tracker.criteria import rules
+from tracker.criteria.model import Settings
+from tracker.criteria.thresholds import ThresholdTable
+
+LIMIT_NAMES = {"uln": "ULN", "lln": "LLN"}
+
+
+def motor(nerves: pd.DataFrame) -> pd.DataFrame:
+    return nerves[nerves["modality"] == "motor"]
+
+
+def sensory(nerves: pd.DataFrame) -> pd.DataFrame:
+    return nerves[nerves["modality"] == "sensory"]
+
+
+def _threshold(table: ThresholdTable, item: str, frame: pd.DataFrame, limit: np.ndarray | None) -> tuple[pd.DataFrame, np.ndarray]:
+    rows = table.per_nerve(item, frame["nerve"], frame.get("lff_hz"))
+    factor = rows["value"].to_numpy(dtype=float)
+    reference = rows["reference"].to_numpy(dtype=object)
+    if limit is None:
+        return rows, factor
+    scaled = np.where(np.isin(reference, ["uln", "lln"]), factor * limit, factor)
+    return rows, scaled
+
+
+def _limit_name(reference: pd.Series, factor: pd.Series) -> np.ndarray:
+    return np.array(
+        [
+            f"{f * 100:g} % of {LIMIT_NAMES.get(r, r)}" if r in LIMIT_NAMES else "fixed"
+            for r, f in zip(reference, factor)
+        ],
+        dtype=object,
+    )
+
+
+def _excluded(frame: pd.DataFrame, table: ThresholdTable, item: str) -> tuple[np.ndarray, str]:
+    excluded = {n for r in table.rows if r.item == item for n in r.excluded_nerves}
+    mask = frame["nerve"].isin(excluded).to_numpy()
+    return mask, f"{', '.join(sorted(excluded))} nerve excluded by this criterion" if excluded else ""
+
+
+def distal_latency(nerves, table: ThresholdTable, item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
+    frame = motor(nerves)
+    limit = frame["uln_distal_latency_ms"].to_numpy(dtype=float)
+    rows, threshold = _threshold(table, item, frame, limit)
+    wrist = (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(bool).to_numpy()
+    return rules.item_findings(
+        frame, criteria=criteria, item=item, parameter="distal latency", unit="ms",
+        value=frame["distal_latency_ms"].to_numpy(dtype=float), threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
+        limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
+        blocked=rules.common_blocks(frame, settings)
+        + [
+            (wrist, "median distal latency not counted: neuropathy at the wrist judged by the clinician"),
+            (frame["no_response"].to_numpy(dtype=bool), "no recordable response at the distal site"),
+        ],
+    )
+
+
+def velocity(nerves, table: ThresholdTable, item: str, settings: Settings, *, criteria: str, requirement=None, comparator_item=None) -> pd.DataFrame:
+    frame = motor(nerves)
+    column = "cv_standard" if settings.cv_segments == "standard" else "cv_outside_entrapment"
+    limit = frame["lln_cv"].to_numpy(dtype=float)
+    rows, threshold = _threshold(table, item, frame, limit)
+    return rules.item_findings(
+        frame, criteria=criteria, item=item, parameter="conduction velocity", unit="m/s",
+        value=frame[column].to_numpy(dtype=float), threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
+        limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
+        segment=frame[f"{column}_segment"].to_numpy(dtype=object), requirement=requirement,
+        blocked=rules.common_blocks(frame, settings)
+        + [(frame["no_response"].to_numpy(dtype=bool), "no recordable response")],
+    )
+
+
+def amplitude_switch(frame: pd.DataFrame, table: ThresholdTable, switch_item: str) -> tuple[np.ndarray, np.ndarray]:
+    """(switch applies, amplitude known): distal amplitude below the switch fraction of LLN."""
+    lln = frame["lln_amplitude"].to_numpy(dtype=float)
+    rows, threshold = _threshold(table, switch_item, frame, lln)
+    amplitude = frame["distal_amplitude"].to_numpy(dtype=float)
+    low = rules.compare(amplitude, threshold, rows["comparator"].to_numpy(dtype=object))
+    known = ~np.isnan(amplitude) & ~np.isnan(threshold)
+    return low, known
+
+
+def f_latency(nerves, table: ThresholdTable, item: str, low_item: str, switch_item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
+    """Minimal F latency against the ULN factor, or the larger factor when the distal CMAP is low."""
+    frame = motor(nerves)
+    limit = frame["uln_f_latency_ms"].to_numpy(dtype=float)
+    normal_rows, normal_threshold = _threshold(table, item, frame, limit)
+    low_rows, low_threshold = _threshold(table, low_item, frame, limit)
+    low, known = amplitude_switch(frame, table, switch_item)
+    threshold = np.where(low, low_threshold, normal_threshold)
+    factor = np.where(low, low_rows["value"], normal_rows["value"])
+    names = np.array([f"{f * 100:g} % of ULN" + (" (distal CMAP below the switch)" if l else "") for f, l in zip(factor, low)], dtype=object)
+    absent = frame["f_absent"].to_numpy(dtype=bool)
+    return rules.item_findings(
+        frame, criteria=criteria, item=item, parameter="F-wave latency", unit="ms",
+        value=frame["f_latency_ms"].to_numpy(dtype=float), threshold=threshold,
+        comparator=normal_rows["comparator"].to_numpy(dtype=object), limit=limit, limit_name=names,
+        source=normal_rows["source"], source_status=normal_rows["status"],
+        blocked=rules.common_blocks(frame, settings)
+        + [
+            (absent, "F-waves absent (judged by the absent-F item)"),
+            (~known & ~absent & ~np.isnan(frame["f_latency_ms"].to_numpy(dtype=float)), "distal CMAP amplitude or its LLN missing: the F-wave threshold cannot be chosen"),
+        ],
+    )
+
+
+def f_absent(nerves, table: ThresholdTable, item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
+    """Absent F-waves, counted only when the distal CMAP reaches the precondition fraction of LLN."""
+    frame = motor(nerves)
+    limit = frame["lln_amplitude"].to_numpy(dtype=float)
+    rows, threshold = _threshold(table, item, frame, limit)
+    absent = frame["f_absent"].to_numpy(dtype=bool)
+    present = ~np.isnan(frame["f_latency_ms"].to_numpy(dtype=float))
+    amplitude = frame["distal_amplitude"].to_numpy(dtype=float)
+    precondition = rules.compare(amplitude, threshold, rows["comparator"].to_numpy(dtype=object))
+    findings = rules.item_findings(
+        frame, criteria=criteria, item=item, parameter="F-waves absent (distal CMAP)", unit="mV",
+        value=amplitude, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
+        limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
+        requirement=absent,
+        blocked=rules.common_blocks(frame, settings)
+        + [
+            (~absent & ~present, "F-waves not recorded"),
+            (absent & ~precondition & ~np.isnan(amplitude) & ~np.isnan(threshold), "amplitude precondition failed: distal CMAP below the required fraction of LLN"),
+        ],
+    )
+    findings.loc[present & ~absent, "reason"] = "F-waves present"
+    return findings
+
+
+def best_path(nerves: pd.DataFrame, paths: pd.DataFrame, measure: str, eligible: pd.Series) -> pd.DataFrame:
+    """Per motor nerve test, the eligible path (or segment) with the largest ``measure``."""
+    candidates = paths[eligible & paths[measure].notna()]
+    best = candidates.sort_values(["test_key", measure], ascending=[True, False]).drop_duplicates("test_key")
+    return best.set_index("test_key").reindex(motor(nerves)["test_key"])
+
+
+def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: str, settings: Settings, *, criteria: str, exclude_labels: tuple[str, ...] = (), measure: str = "amplitude_reduction_pct") -> pd.DataFrame:
+    """Largest proximal-versus-distal reduction over the eligible paths, with the distal CMAP precondition."""
+    frame = motor(nerves)
+    eligible = paths["path_outside_entrapment"] if settings.block_path == "outside_entrapment" else paths["path_standard"]
+    if exclude_labels:
+        eligible = eligible & ~paths["label"].isin(exclude_labels)
+    best = best_path(nerves, paths, measure, eligible)
+    rows, threshold = _threshold(table, item, frame, None)
+    lln = frame["lln_amplitude"].to_numpy(dtype=float)
+    pre_rows, pre_threshold = _threshold(table, precondition_item, frame, lln)
+    amplitude = frame["distal_amplitude"].to_numpy(dtype=float)
+    precondition = rules.compare(amplitude, pre_threshold, pre_rows["comparator"].to_numpy(dtype=object))
+    excluded, why = _excluded(frame, table, item)
+    value = best[measure].to_numpy(dtype=float)
+    no_path = np.isnan(value)
+    return rules.item_findings(
+        frame, criteria=criteria, item=item, parameter="conduction block (amplitude reduction)" if "amplitude" in measure else "conduction block (area reduction)",
+        unit="%", value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
+        limit_name="", source=rows["source"], source_status=rows["status"], segment=best["path"].to_numpy(dtype=object),
+        blocked=rules.common_blocks(frame, settings)
+        + [
+            (excluded, why),
+            (no_path & ~excluded, "no proximal stimulation outside entrapment sites"),
+            (~precondition & ~no_path & ~np.isnan(pre_threshold), "amplitude precondition failed: distal CMAP below 20 % of LLN"),
+            (np.isnan(pre_threshold) & ~no_path, "no LLN for the distal CMAP precondition"),
+        ],
+    )
+
+
+def dispersion(nerves, paths, table: ThresholdTable, item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
+    """Largest proximal-versus-distal negative-peak duration increase over the eligible paths."""
+    frame = motor(nerves)
+    eligible = paths["path_outside_entrapment"] if settings.block_path == "outside_entrapment" else paths["path_standard"]
+    best = best_path(nerves, paths, "duration_increase_pct", eligible)
+    rows, threshold = _threshold(table, item, frame, None)
+    value = best["duration_increase_pct"].to_numpy(dtype=float)
+    return rules.item_findings(
+        frame, criteria=criteria, item=item, parameter="temporal dispersion (duration increase)", unit="%",
+        value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
+        limit_name="", source=rows["source"], source_status=rows["status"], segment=best["path"].to_numpy(dtype=object),
+        blocked=rules.common_blocks(frame, settings) + [(np.isnan(value) & frame["no_response"].to_numpy(dtype=bool), "no recordable response")],
+    )
+
+
+def distal_duration(nerves, table: ThresholdTable, item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
+    """Distal CMAP duration against a fixed (nerve- and possibly filter-specific) cut-off."""
+    frame = motor(nerves)
+    rows, threshold = _threshold(table, item, frame, None)
+    return rules.item_findings(
+        frame, criteria=criteria, item=item, parameter="distal CMAP duration", unit="ms",
+        value=frame["distal_duration_ms"].to_numpy(dtype=float), threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
+        limit_name=np.where(np.isnan(threshold), "", "fixed cut-off"), source=rows["source"], source_status=rows["status"],
+        blocked=rules.common_blocks(frame, settings),
+    )

@@ -1,0 +1,122 @@
+"""EFNS/PNS 2010 CIDP electrodiagnostic criteria: definite / probable / possible, and the supportive
+sensory item. Van den Bergh PYK et al., Eur J Neurol 2010;17:356–363."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from tracker.criteria import parameters as p
+from tracker.criteria import rules
+from tracker.criteria.model import MET, NOT_EVALUABLE, NOT_MET, SetResult, Settings
+from tracker.criteria.thresholds import load
+
+ID = "efns-pns-2010-cidp"
+DEMYELINATING = ["dml", "cv", "f_latency", "f_absent", "cb", "td", "dcmap_duration"]  # items (a)–(g)
+SENSORY_NERVES = ("median", "ulnar", "radial", "sural")
+
+
+def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> pd.DataFrame:
+    table = load(ID)
+    return pd.concat(
+        [
+            p.distal_latency(nerves, table, "dml", settings, criteria=ID),
+            p.velocity(nerves, table, "cv", settings, criteria=ID),
+            p.f_latency(nerves, table, "f_latency", "f_latency_low_cmap", "f_switch", settings, criteria=ID),
+            p.f_absent(nerves, table, "f_absent", settings, criteria=ID),
+            p.block(nerves, paths, table, "cb", "cb_precondition", settings, criteria=ID),
+            p.dispersion(nerves, paths, table, "td", settings, criteria=ID),
+            p.distal_duration(nerves, table, "dcmap_duration", settings, criteria=ID),
+            # Probable block: tibial excluded (table), and Erb's point needs ≥ 50 % (the definite item).
+            p.block(nerves, paths, table, "probable_cb", "cb_precondition", settings, criteria=ID, exclude_labels=("erb",)),
+        ],
+        ignore_index=True,
+    )
+
+
+def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
+    """Supportive item 3: sensory CV < 80 % LLN (< 70 % if SNAP < 80 % LLN); sural sparing."""
+    table = load(ID)
+    frame = p.sensory(nerves)
+    frame = frame[frame["nerve"].isin(SENSORY_NERVES)]
+    limit = frame["lln_cv"].to_numpy(dtype=float)
+    normal = table.one("sensory_cv")
+    low_rows = table.one("sensory_cv_low_snap")
+    low, known = p.amplitude_switch(frame, table, "sensory_switch")
+    threshold = np.where(low, low_rows.value, normal.value) * limit
+    names = np.where(low, f"{low_rows.value * 100:g} % of LLN (SNAP below 80 % of LLN)", f"{normal.value * 100:g} % of LLN")
+    cv = rules.item_findings(
+        frame, criteria=ID, item="sensory_cv", parameter="sensory conduction velocity", unit="m/s",
+        value=frame["sensory_cv"].to_numpy(dtype=float), threshold=threshold, comparator="lt", limit=limit,
+        limit_name=names, source=normal.source, source_status=normal.status,
+        blocked=rules.common_blocks(frame, settings)
+        + [(frame["no_response"].to_numpy(dtype=bool), "no recordable SNAP"), (~known & ~frame["no_response"].to_numpy(dtype=bool), "SNAP amplitude or its LLN missing")],
+    )
+    # Sural sparing: median (not explained by the wrist) or radial SNAP below LLN, sural SNAP normal.
+    sparing = table.one("sural_sparing")
+    lln = frame["lln_amplitude"].to_numpy(dtype=float)
+    amplitude = frame["distal_amplitude"].to_numpy(dtype=float)
+    reduced = rules.compare(amplitude, lln, "lt")
+    wrist = (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(bool).to_numpy()
+    is_sural = (frame["nerve"] == "sural").to_numpy()
+    snap = rules.item_findings(
+        frame, criteria=ID, item="snap_reduced", parameter="SNAP amplitude", unit="µV", value=amplitude, threshold=lln,
+        comparator=np.where(is_sural, "ge", "lt"), limit=lln, limit_name="LLN", source=sparing.source, source_status=sparing.status,
+        blocked=rules.common_blocks(frame, settings)
+        + [(wrist, "median SNAP not counted: neuropathy at the wrist judged by the clinician"), (frame["nerve"] == "ulnar", "not part of the sural-sparing pattern")],
+    )
+    snap.loc[is_sural, "item"] = "sural_normal"
+    del reduced
+    return pd.concat([cv, snap], ignore_index=True)
+
+
+def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings) -> SetResult:
+    motor = motor_findings(nerves, paths, settings)
+    sensory = sensory_findings(nerves, settings)
+    keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
+    sets = rules.met_sets(motor, settings)
+
+    def count(item):
+        return rules.count_nerves(sets, item, keys)
+
+    def plus_other(item):
+        return rules.one_plus_other(sets, item, [i for i in DEMYELINATING if i != item], keys)
+
+    definite_rules = {
+        "(a) distal latency in ≥ 2 nerves": count("dml") >= 2,
+        "(b) conduction velocity in ≥ 2 nerves": count("cv") >= 2,
+        "(c) F-wave latency in ≥ 2 nerves": count("f_latency") >= 2,
+        "(d) absent F-waves in ≥ 2 nerves plus another parameter in another nerve": (count("f_absent") >= 2) & plus_other("f_absent"),
+        "(e) conduction block in ≥ 2 nerves": count("cb") >= 2,
+        "(e) conduction block in 1 nerve plus another parameter in another nerve": plus_other("cb"),
+        "(f) temporal dispersion in ≥ 2 nerves": count("td") >= 2,
+        "(g) distal CMAP duration plus another parameter in another nerve": plus_other("dcmap_duration"),
+    }
+    probable_rules = {
+        "probable block in ≥ 2 nerves": count("probable_cb") >= 2,
+        "probable block in 1 nerve plus another parameter in another nerve": rules.one_plus_other(sets, "probable_cb", DEMYELINATING, keys),
+    }
+    any_single = rules.union(sets, DEMYELINATING, keys).map(len) >= 1
+    outcome = pd.Series("not_met", index=keys, dtype=object)
+    rule = pd.Series("no demyelinating parameter met in any nerve", index=keys, dtype=object)
+    outcome[any_single] = "possible"
+    rule[any_single] = "a demyelinating parameter met in one nerve only"
+    for name, hit in probable_rules.items():
+        fire = hit & (outcome != "probable")
+        outcome[fire], rule[fire] = "probable", name
+    for name, hit in definite_rules.items():
+        fire = hit & (outcome != "definite")
+        outcome[fire], rule[fire] = "definite", name
+
+    sensory_met = sensory[sensory["item"] == "sensory_cv"].groupby("visit_key")["status"].agg(lambda s: (s == MET).any())
+    reduced = sensory[(sensory["item"] == "snap_reduced") & (sensory["status"] == MET)].groupby("visit_key").size()
+    sural_normal = sensory[(sensory["item"] == "sural_normal") & (sensory["status"] == MET)].groupby("visit_key").size()
+    evaluable = sensory[sensory["status"] != NOT_EVALUABLE].groupby("visit_key").size()
+    supportive = pd.Series(NOT_EVALUABLE, index=keys, dtype=object)
+    supportive[evaluable.reindex(keys).fillna(0).to_numpy() > 0] = NOT_MET
+    hit = sensory_met.reindex(keys).fillna(False).astype(bool) | (
+        (reduced.reindex(keys).fillna(0) > 0) & (sural_normal.reindex(keys).fillna(0) > 0)
+    )
+    supportive[hit.to_numpy()] = MET
+    outcomes = pd.DataFrame({"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "sensory_supportive": supportive.to_numpy()})
+    return SetResult(ID, load(ID).version, pd.concat([motor, sensory], ignore_index=True), outcomes, extra_keys=("sensory_supportive",))

@@ -1,0 +1,108 @@
+"""Threshold tables: one CSV per criteria set in ``tracker/criteria/tables/``, every row with its source.
+
+Columns: ``item`` (the set's own item code), ``parameter``, ``nerve`` (``*`` for any), ``lff_hz`` (empty for
+any filter), ``comparator`` (``ge``, ``gt``, ``le``, ``lt``), ``reference`` (``uln`` or ``lln``: the value is
+a factor of that normal limit; ``percent`` or ``absolute``: the value is the threshold itself), ``value``,
+``unit``, ``excluded_nerves`` (``|``-separated), ``description``, ``source``, ``status`` (``verified`` or
+``memory``), ``version``.
+"""
+
+from __future__ import annotations
+
+import csv
+from dataclasses import dataclass
+from functools import cache
+from importlib import resources
+
+import numpy as np
+import pandas as pd
+
+COMPARATORS = {"ge": "≥", "gt": ">", "le": "≤", "lt": "<"}
+
+
+@dataclass(frozen=True)
+class Threshold:
+    item: str
+    parameter: str
+    nerve: str
+    lff_hz: float | None
+    comparator: str
+    reference: str
+    value: float
+    unit: str
+    excluded_nerves: tuple[str, ...]
+    description: str
+    source: str
+    status: str
+    version: str
+
+
+class ThresholdTable:
+    """All thresholds of one criteria set, looked up by item (and nerve, and filter setting)."""
+
+    def __init__(self, criteria_id: str, rows: list[Threshold]):
+        self.criteria_id = criteria_id
+        self.rows = rows
+        self.version = rows[0].version if rows else ""
+
+    def items(self) -> list[str]:
+        return sorted({r.item for r in self.rows})
+
+    def one(self, item: str) -> Threshold:
+        """The single row of an item that does not vary by nerve or filter."""
+        rows = [r for r in self.rows if r.item == item]
+        if len(rows) != 1:
+            raise KeyError(f"{self.criteria_id}: expected one threshold row for {item!r}, found {len(rows)}")
+        return rows[0]
+
+    def per_nerve(self, item: str, nerves: pd.Series, lff_hz: pd.Series | None = None) -> pd.DataFrame:
+        """Vectorised lookup: for each nerve (and filter setting), the matching row's value and source.
+
+        Returns a frame aligned with ``nerves`` with ``value`` (NaN where no row applies), ``source``,
+        ``status``, ``description``, ``comparator``, ``reference``. A nerve-specific row wins over ``*``;
+        a row with ``lff_hz`` applies only to that filter setting.
+        """
+        rows = [r for r in self.rows if r.item == item]
+        if not rows:
+            raise KeyError(f"{self.criteria_id}: no threshold rows for {item!r}")
+        result = pd.DataFrame(index=nerves.index, columns=["value", "source", "status", "description", "comparator", "reference"], dtype=object)
+        result["value"] = np.nan
+        lff = lff_hz if lff_hz is not None else pd.Series(np.nan, index=nerves.index)
+        # Generic rows first, then specific rows overwrite them.
+        for row in sorted(rows, key=lambda r: (r.nerve != "*", r.lff_hz is not None)):
+            mask = pd.Series(True, index=nerves.index) if row.nerve == "*" else nerves == row.nerve
+            if row.lff_hz is not None:
+                mask &= np.isclose(lff.astype(float), row.lff_hz)
+            if row.excluded_nerves:
+                mask &= ~nerves.isin(row.excluded_nerves)
+            result.loc[mask, ["value", "source", "status", "description", "comparator", "reference"]] = [
+                row.value, row.source, row.status, row.description, row.comparator, row.reference
+            ]
+        result["value"] = result["value"].astype(float)
+        return result
+
+
+@cache
+def load(criteria_id: str) -> ThresholdTable:
+    """The threshold table of ``criteria_id`` (file ``tables/<criteria_id>.csv``)."""
+    text = resources.files("tracker.criteria.tables").joinpath(f"{criteria_id}.csv").read_text(encoding="utf-8")
+    rows = []
+    for raw in csv.DictReader(line for line in text.splitlines() if not line.startswith("#")):
+        rows.append(
+            Threshold(
+                item=raw["item"],
+                parameter=raw["parameter"],
+                nerve=raw["nerve"] or "*",
+                lff_hz=float(raw["lff_hz"]) if raw["lff_hz"] else None,
+                comparator=raw["comparator"],
+                reference=raw["reference"],
+                value=float(raw["value"]),
+                unit=raw["unit"],
+                excluded_nerves=tuple(n for n in raw["excluded_nerves"].split("|") if n),
+                description=raw["description"],
+                source=raw["source"],
+                status=raw["status"],
+                version=raw["version"],
+            )
+        )
+    return ThresholdTable(criteria_id, rows)
