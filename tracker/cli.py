@@ -154,6 +154,97 @@ def show_command(context: Context, patient: str, visit_date: str | None) -> None
     click.echo("\n".join(patient_lines(record)))
 
 
+@cli.command("check")
+@click.argument("patient")
+@click.option("--visit", "visit_date", metavar="YYYY-MM-DD", help="The visit to check (default: the latest).")
+@click.option("--criteria", "criteria", metavar="ID", multiple=True,
+              help="Criteria set id (repeatable), or 'all' for every set side by side. Default: by the visit's diagnosis.")
+@click.option("--limits", "limits_name", metavar="NAME", help="Normal-limit set (default: the one marked default).")
+@click.option("--format", "output", type=click.Choice(["text", "json"]), default="text", show_default=True)
+@click.option("--cold-limbs", type=click.Choice(["warn", "exclude"]), default="warn", show_default=True,
+              help="Limbs colder than the guideline minimum: keep the values and warn, or exclude the nerve.")
+@click.option("--sides-separate/--sides-together", default=True, show_default=True,
+              help="Whether left and right of one nerve count as two nerves.")
+@click.option("--cv-segments", type=click.Choice(["standard", "all_outside_entrapment"]), default="standard", show_default=True,
+              help="Segments used for conduction velocity.")
+@pass_context
+def check_command(context: Context, patient: str, visit_date: str | None, criteria: tuple[str, ...], limits_name: str | None,
+                  output: str, cold_limbs: str, sides_separate: bool, cv_segments: str) -> None:
+    """Check a visit against published electrodiagnostic criteria, nerve by nerve, with the trace."""
+    import json
+
+    from tracker.check_report import json_payload, text
+    from tracker.criteria import engine
+    from tracker.criteria.model import Settings
+    from tracker.services.evaluation import check_visit
+
+    chosen = engine.available() if "all" in criteria else list(criteria) or None
+    settings = Settings(cold_limbs=cold_limbs, sides_are_separate_nerves=sides_separate, cv_segments=cv_segments)
+    day = _parse_date(visit_date) if visit_date else None
+    with context.session_factory().begin() as session:
+        result = check_visit(session, patient, visit_date=day, criteria=chosen, limits_name=limits_name, settings=settings)
+    if output == "json":
+        click.echo(json.dumps(json_payload(result), indent=2, ensure_ascii=False))
+    else:
+        click.echo(text(result))
+
+
+@cli.command("evaluate")
+@click.option("--limits", "limits_name", metavar="NAME", help="Normal-limit set (default: the one marked default).")
+@pass_context
+def evaluate_command(context: Context, limits_name: str | None) -> None:
+    """Recompute the saved evaluations of every visit whose data, limits or criteria changed."""
+    from tracker.services.evaluation import refresh_evaluations
+
+    with context.session_factory().begin() as session:
+        counts = refresh_evaluations(session, limits_name=limits_name)
+    click.echo(f"{counts['visits']} visits: {counts['recomputed']} evaluations recomputed, {counts['unchanged']} unchanged.")
+
+
+@cli.group()
+def limits() -> None:
+    """Normal-limit sets: list, import a laboratory's own, choose the default."""
+
+
+@limits.command("list")
+@pass_context
+def limits_list(context: Context) -> None:
+    """List the normal-limit sets."""
+    from tracker.services.limit_sets import list_limit_sets
+
+    with context.session_factory().begin() as session:
+        sets = list_limit_sets(session)
+    for s in sets:
+        click.echo(f"{'*' if s.is_default else ' '} {s.name} v{s.version}: {s.rows} rows — {s.description or ''}")
+    click.echo("(* = used when --limits is not given)")
+
+
+@limits.command("import")
+@click.argument("file", type=click.Path(path_type=Path, dir_okay=False))
+@click.option("--name", required=True, help="Name of the set; an existing name gets a new version.")
+@click.option("--description", help="What these limits are (population, technique).")
+@pass_context
+def limits_import(context: Context, file: Path, name: str, description: str | None) -> None:
+    """Import a laboratory's normal limits (CSV; DESIGN.md §4.3)."""
+    from tracker.services.limit_sets import import_limit_set
+
+    with context.session_factory().begin() as session:
+        info = import_limit_set(session, file, name=name, username=context.user, description=description)
+    click.echo(f"Imported {info.rows} limits as {info.name} v{info.version}.")
+
+
+@limits.command("default")
+@click.argument("name")
+@pass_context
+def limits_default(context: Context, name: str) -> None:
+    """Use the latest version of NAME when --limits is not given."""
+    from tracker.services.limit_sets import set_default
+
+    with context.session_factory().begin() as session:
+        info = set_default(session, name, username=context.user)
+    click.echo(f"Default normal limits: {info.name} v{info.version}.")
+
+
 @cli.command("demo")
 @click.option("--path", "db_path", type=click.Path(path_type=Path, dir_okay=False), help="Where to build the demo database (default: the user data folder).")
 @click.option("--port", type=int, help="Port of the dashboard. The dashboard is not built yet: accepted, and ignored for now.")

@@ -16,7 +16,10 @@ import numpy as np
 import pandas as pd
 
 LIMIT_COLUMNS = ["nerve", "modality", "parameter", "bound", "value", "age_min", "age_max", "height_min_cm", "height_max_cm", "sex", "source", "status"]
-DEFAULT_NAME = "default (Preston & Shapiro appendix)"
+DEFAULT_NAME = "default"
+# Bump with every change to reference/limits_default.csv: saved evaluations name the set and its version.
+DEFAULT_VERSION = 1
+DEFAULT_DESCRIPTION = "Shipped adult limits, Preston & Shapiro appendix (each row marked verified or from memory)"
 # (parameter, bound) → the column name the criteria use.
 LIMIT_FIELDS = {
     ("distal_latency_ms", "uln"): "uln_distal_latency_ms",

@@ -28,6 +28,8 @@ FINDING_COLUMNS = [
     "reason",
     "source",
     "source_status",
+    "limit_source",
+    "limit_status",
     "margin",
 ]
 

@@ -24,6 +24,11 @@ def sensory(nerves: pd.DataFrame) -> pd.DataFrame:
     return nerves[nerves["modality"] == "sensory"]
 
 
+def limit_provenance(frame: pd.DataFrame, column: str) -> dict[str, pd.Series]:
+    """Keyword arguments naming where a nerve's normal limit came from (for the trace)."""
+    return {"limit_source": frame[f"{column}_source"], "limit_status": frame[f"{column}_status"]}
+
+
 def _threshold(table: ThresholdTable, item: str, frame: pd.DataFrame, limit: np.ndarray | None) -> tuple[pd.DataFrame, np.ndarray]:
     rows = table.per_nerve(item, frame["nerve"], frame.get("lff_hz"))
     factor = rows["value"].to_numpy(dtype=float)
@@ -60,6 +65,7 @@ def distal_latency(nerves, table: ThresholdTable, item: str, settings: Settings,
         value=frame["distal_latency_ms"].to_numpy(dtype=float), threshold=threshold,
         comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
         limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
+        **limit_provenance(frame, "uln_distal_latency_ms"),
         blocked=rules.common_blocks(frame, settings)
         + [
             (wrist, "median distal latency not counted: neuropathy at the wrist judged by the clinician"),
@@ -78,7 +84,7 @@ def velocity(nerves, table: ThresholdTable, item: str, settings: Settings, *, cr
         value=frame[column].to_numpy(dtype=float), threshold=threshold,
         comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
         limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
-        segment=frame[f"{column}_segment"].to_numpy(dtype=object), requirement=requirement,
+        segment=frame[f"{column}_segment"].to_numpy(dtype=object), requirement=requirement, **limit_provenance(frame, "lln_cv"),
         blocked=rules.common_blocks(frame, settings)
         + [(frame["no_response"].to_numpy(dtype=bool), "no recordable response")],
     )
@@ -109,7 +115,7 @@ def f_latency(nerves, table: ThresholdTable, item: str, low_item: str, switch_it
         frame, criteria=criteria, item=item, parameter="F-wave latency", unit="ms",
         value=frame["f_latency_ms"].to_numpy(dtype=float), threshold=threshold,
         comparator=normal_rows["comparator"].to_numpy(dtype=object), limit=limit, limit_name=names,
-        source=normal_rows["source"], source_status=normal_rows["status"],
+        source=normal_rows["source"], source_status=normal_rows["status"], **limit_provenance(frame, "uln_f_latency_ms"),
         blocked=rules.common_blocks(frame, settings)
         + [
             (absent, "F-waves absent (judged by the absent-F item)"),
@@ -131,7 +137,7 @@ def f_absent(nerves, table: ThresholdTable, item: str, settings: Settings, *, cr
         frame, criteria=criteria, item=item, parameter="F-waves absent (distal CMAP)", unit="mV",
         value=amplitude, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
         limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
-        requirement=absent,
+        requirement=absent, **limit_provenance(frame, "lln_amplitude"),
         blocked=rules.common_blocks(frame, settings)
         + [
             (~absent & ~present, "F-waves not recorded"),

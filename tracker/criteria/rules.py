@@ -51,6 +51,8 @@ def item_findings(
     segment: np.ndarray | None = None,
     requirement: np.ndarray | None = None,
     blocked: list[tuple[np.ndarray, str | np.ndarray]] | None = None,
+    limit_source: pd.Series | np.ndarray | str | None = None,
+    limit_status: pd.Series | np.ndarray | str | None = None,
 ) -> pd.DataFrame:
     """Findings for one item over the rows of ``frame`` (``visit_key``, ``nerve``, ``side``, ``modality``).
 
@@ -98,6 +100,8 @@ def item_findings(
             "reason": reason,
             "source": source.to_numpy() if isinstance(source, pd.Series) else source,
             "source_status": source_status.to_numpy() if isinstance(source_status, pd.Series) else source_status,
+            "limit_source": limit_source.to_numpy() if isinstance(limit_source, pd.Series) else limit_source,
+            "limit_status": limit_status.to_numpy() if isinstance(limit_status, pd.Series) else limit_status,
             "margin": margin(value, threshold, comparator),
         }
     )

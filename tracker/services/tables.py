@@ -29,7 +29,7 @@ class InputTable:
     kind: str  # "measurements", "treatments", "scores", "limits"
 
 
-KIND_MARKERS = (("nerve", "measurements"), ("therapy", "treatments"), ("scale", "scores"))
+KIND_MARKERS = (("bound", "limits"), ("nerve", "measurements"), ("therapy", "treatments"), ("scale", "scores"))
 
 
 def _decode(raw: bytes) -> str:
@@ -128,7 +128,7 @@ def _read_csv_fast(text: str) -> pd.DataFrame | None:
     return frame
 
 
-def read_table(path: Path) -> InputTable:
+def read_table(path: Path, allowed_kinds: tuple[str, ...] = ("measurements", "treatments", "scores")) -> InputTable:
     """Read ``path`` (``.csv`` or ``.xlsx``); refuse anything else with a clear message."""
     try:
         raw = path.read_bytes()
@@ -187,4 +187,7 @@ def read_table(path: Path) -> InputTable:
                 )
             ],
         )
+    if kind not in allowed_kinds:
+        hint = "import it with: ncs-tracker limits import FILE --name NAME" if kind == "limits" else f"expected {' or '.join(allowed_kinds)}"
+        raise InputRejected("This file is of another kind", [Problem(1, None, kind, f"the header is that of a {kind} file; {hint}")])
     return InputTable(cells=frame.reset_index(drop=True), sha256=sha, kind=kind)

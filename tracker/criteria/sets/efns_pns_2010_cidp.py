@@ -48,7 +48,7 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     cv = rules.item_findings(
         frame, criteria=ID, item="sensory_cv", parameter="sensory conduction velocity", unit="m/s",
         value=frame["sensory_cv"].to_numpy(dtype=float), threshold=threshold, comparator="lt", limit=limit,
-        limit_name=names, source=normal.source, source_status=normal.status,
+        limit_name=names, source=normal.source, source_status=normal.status, **p.limit_provenance(frame, "lln_cv"),
         blocked=rules.common_blocks(frame, settings)
         + [(frame["no_response"].to_numpy(dtype=bool), "no recordable SNAP"), (~known & ~frame["no_response"].to_numpy(dtype=bool), "SNAP amplitude or its LLN missing")],
     )
@@ -62,6 +62,7 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     snap = rules.item_findings(
         frame, criteria=ID, item="snap_reduced", parameter="SNAP amplitude", unit="µV", value=amplitude, threshold=lln,
         comparator=np.where(is_sural, "ge", "lt"), limit=lln, limit_name="LLN", source=sparing.source, source_status=sparing.status,
+        **p.limit_provenance(frame, "lln_amplitude"),
         blocked=rules.common_blocks(frame, settings)
         + [(wrist, "median SNAP not counted: neuropathy at the wrist judged by the clinician"), (frame["nerve"] == "ulnar", "not part of the sural-sparing pattern")],
     )

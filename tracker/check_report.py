@@ -1,0 +1,100 @@
+"""Text and JSON renderings of a criteria check (interface layer; the rules live in tracker.criteria)."""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+from tracker import CAUTION
+from tracker.criteria.thresholds import COMPARATORS
+from tracker.services.evaluation import VisitCheck, to_json
+
+VERDICT = {"met": "● met", "not_met": "○ not met", "not_evaluable": "? not evaluable"}
+TITLES = {
+    "efns-pns-2010-cidp": "EFNS/PNS 2010 CIDP",
+    "ean-pns-2021-cidp": "EAN/PNS 2021 CIDP",
+    "aan-1991-cidp": "AAN 1991 CIDP research criteria",
+    "efns-pns-2010-mmn": "EFNS/PNS 2010 MMN conduction block",
+    "hadden-1998-gbs": "Hadden 1998 GBS classification",
+    "rajabally-2015-gbs": "Rajabally 2015 GBS classification",
+}
+
+
+def _number(value: Any, unit: str = "") -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "—"
+    return f"{value:.2f}".rstrip("0").rstrip(".") + (f" {unit}" if unit else "")
+
+
+def _table(header: list[str], rows: list[list[str]], indent: str = "    ") -> list[str]:
+    widths = [max([len(header[i])] + [len(r[i]) for r in rows]) for i in range(len(header))]
+    fmt = lambda cells: indent + "  ".join(c.ljust(w) for c, w in zip(cells, widths)).rstrip()
+    return [fmt(header), indent + "  ".join("-" * w for w in widths)] + [fmt(r) for r in rows]
+
+
+def text(check: VisitCheck) -> str:
+    lines = [
+        f"Patient {check.patient} — visit {check.visit_date.isoformat()}" + (f" (phenotype: {check.phenotype})" if check.phenotype else ""),
+        f"Normal limits: {check.limits.name} v{check.limits.version}" + (f" — {check.limits.description}" if check.limits.description else ""),
+    ]
+    sources: dict[str, int] = {}
+    for criteria_id, result in check.results.items():
+        outcome = result.outcomes.iloc[0]
+        lines += ["", f"== {TITLES.get(criteria_id, criteria_id)} ({criteria_id}, table version {result.version}) =="]
+        lines.append(f"Outcome: {str(outcome['outcome']).upper()} — {outcome.get('rule', '')}")
+        for key in result.extra_keys:
+            lines.append(f"{key.replace('_', ' ')}: {outcome[key]}")
+        for (nerve, side, modality), group in result.findings.groupby(["nerve", "side", "modality"], sort=True):
+            rows = []
+            for f in group.itertuples():
+                source = f.source if isinstance(f.source, str) else ""
+                number = sources.setdefault(source, len(sources) + 1) if source else None
+                mark = "" if f.source_status == "verified" and f.limit_status != "memory" else "*"
+                limit = f"{f.limit_name} {_number(f.limit)}".strip() if isinstance(f.limit_name, str) and f.limit_name else ""
+                threshold = f"{COMPARATORS.get(f.comparator, f.comparator) if isinstance(f.comparator, str) else ''} {_number(f.threshold, f.unit)}"
+                verdict = VERDICT[f.status] + (f" ({f.reason})" if f.reason else "")
+                value = _number(f.value, f.unit) + (f" [{f.segment}]" if isinstance(f.segment, str) and f.segment else "")
+                rows.append([f.item, f.parameter, value, limit or "—", threshold.strip(), verdict, f"[{number}]{mark}" if number else ""])
+            lines += ["", f"  {nerve} {side} ({modality})"]
+            lines += _table(["item", "parameter", "value", "limit", "threshold", "verdict", "source"], rows)
+        miss = check.closest.get(criteria_id)
+        if miss is not None and len(miss):
+            lines += ["", f"Closest miss: {miss.iloc[0]['text']}"]
+        changes = check.changes.get(criteria_id)
+        if check.previous_date is not None:
+            if changes is not None and len(changes):
+                lines += ["", f"Changed since the previous visit ({check.previous_date.isoformat()}):"]
+                lines += [f"  {c.nerve} {c.side} {c.item} ({c.parameter}): {c.change}" for c in changes.itertuples()]
+            else:
+                lines += ["", f"No finding changed since the previous visit ({check.previous_date.isoformat()})."]
+    if len(check.warnings):
+        lines += ["", "Warnings:"] + [f"  {m}" for m in check.warnings["message"]]
+    if sources:
+        lines += ["", "Sources (* = the threshold or the normal limit is from memory, not verified against the publication):"]
+        lines += [f"  [{n}] {s}" for s, n in sources.items()]
+    lines += ["", CAUTION]
+    return "\n".join(lines)
+
+
+def json_payload(check: VisitCheck) -> dict[str, Any] | list[dict[str, Any]]:
+    """DESIGN.md §5 shape; a list when several criteria sets were asked for."""
+    payloads = []
+    for criteria_id, result in check.results.items():
+        body = to_json(result, check.visit_key)
+        payloads.append(
+            {
+                "patient": check.patient,
+                "visit_date": check.visit_date.isoformat(),
+                "criteria": criteria_id,
+                "criteria_version": body.pop("criteria_version"),
+                "limits": f"{check.limits.name} v{check.limits.version}",
+                **{k: v for k, v in body.items() if k != "criteria"},
+                "warnings": list(check.warnings["message"]) if len(check.warnings) else [],
+                "closest_miss": check.closest[criteria_id].iloc[0]["text"] if len(check.closest.get(criteria_id, [])) else None,
+                "changes_since_previous": [
+                    {"nerve": c.nerve, "side": c.side, "item": c.item, "change": c.change} for c in check.changes.get(criteria_id, []).itertuples()
+                ] if check.previous_date is not None else None,
+                "caution": CAUTION,
+            }
+        )
+    return payloads[0] if len(payloads) == 1 else payloads

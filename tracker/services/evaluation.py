@@ -1,0 +1,253 @@
+"""Evaluate visits against criteria sets: load the rows, pick the normal limits, run the engine, keep the
+evaluations (recomputed when the visit's data, the limits or the criteria version change)."""
+
+from __future__ import annotations
+
+import datetime as dt
+import hashlib
+import json
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import delete, insert, select
+from sqlalchemy.orm import Session
+
+from tracker.criteria import engine
+from tracker.criteria.model import Settings, SetResult
+from tracker.db.models import Evaluation, NerveTest, Patient, StimulationSite, Visit, utc_now
+from tracker.errors import NotFound, TrackerError
+from tracker.services.limit_sets import LimitSetInfo, resolve
+from tracker.services.records import _patient_or_hint
+
+# The set a visit is checked against when none is asked for, by the visit's working diagnosis.
+DEFAULT_CRITERIA = {"cidp": "ean-pns-2021-cidp", "mmn": "efns-pns-2010-mmn", "gbs": "hadden-1998-gbs"}
+FALLBACK_CRITERIA = "efns-pns-2010-cidp"
+
+
+def load_frames(session: Session, visit_ids: list[int] | None = None) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """(visits, tests, sites) as the engine expects them, for the given visits (all when ``None``)."""
+    visit_query = select(
+        Visit.id.label("visit_key"), Patient.code.label("patient"), Visit.visit_date, Visit.height_cm, Patient.sex,
+        Patient.birth_year, Visit.phenotype, Visit.diagnosis, Visit.content_sha256,
+    ).join(Patient, Patient.id == Visit.patient_id)
+    test_query = select(
+        NerveTest.id.label("test_key"), NerveTest.visit_id.label("visit_key"), NerveTest.nerve, NerveTest.side, NerveTest.modality,
+        NerveTest.temperature_c, NerveTest.lff_hz, NerveTest.f_latency_ms, NerveTest.f_absent, NerveTest.wrist_entrapment,
+    )
+    site_query = select(
+        StimulationSite.nerve_test_id.label("test_key"), StimulationSite.site_order, StimulationSite.label, StimulationSite.distance_mm,
+        StimulationSite.latency_ms, StimulationSite.peak_latency_ms, StimulationSite.amplitude_mv, StimulationSite.amplitude_uv,
+        StimulationSite.duration_ms, StimulationSite.area_mvms,
+    ).join(NerveTest, NerveTest.id == StimulationSite.nerve_test_id)
+    if visit_ids is not None:
+        visit_query = visit_query.where(Visit.id.in_(visit_ids))
+        test_query = test_query.where(NerveTest.visit_id.in_(visit_ids))
+        site_query = site_query.where(NerveTest.visit_id.in_(visit_ids))
+    connection = session.connection()
+    visits = pd.read_sql(visit_query, connection)
+    tests = pd.read_sql(test_query, connection)
+    sites = pd.read_sql(site_query, connection)
+    return _typed(visits, tests, sites)
+
+
+def _typed(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    visits["visit_date"] = pd.to_datetime(visits["visit_date"]).dt.date
+    # Age at the visit from the birth year: exact to within a year (the full birth date is kept apart).
+    visits["age_years"] = pd.to_datetime(visits["visit_date"]).dt.year - visits["birth_year"].astype(float)
+    visits["height_cm"] = visits["height_cm"].astype(float)
+    tests["f_absent"] = tests["f_absent"].fillna(False).astype(bool)
+    for column in ("temperature_c", "lff_hz", "f_latency_ms"):
+        tests[column] = tests[column].astype(float)
+    sites["amplitude"] = sites["amplitude_mv"].astype(float).fillna(sites["amplitude_uv"].astype(float))
+    sites = sites.drop(columns=["amplitude_mv", "amplitude_uv"])
+    for column in ("distance_mm", "latency_ms", "peak_latency_ms", "duration_ms", "area_mvms"):
+        sites[column] = sites[column].astype(float)
+    return visits, tests, sites
+
+
+def default_criteria(diagnosis: str | None) -> str:
+    return DEFAULT_CRITERIA.get(diagnosis or "", FALLBACK_CRITERIA)
+
+
+@dataclass
+class VisitCheck:
+    """Everything a report of one visit needs (plain data; the CLI and dashboard render it)."""
+
+    patient: str
+    visit_date: dt.date
+    visit_key: int
+    phenotype: str | None
+    limits: LimitSetInfo
+    results: dict[str, SetResult]
+    warnings: pd.DataFrame
+    closest: dict[str, pd.DataFrame]
+    changes: dict[str, pd.DataFrame]
+    previous_date: dt.date | None
+
+
+def check_visit(session: Session, code: str, *, visit_date: dt.date | None, criteria: list[str] | None, limits_name: str | None, settings: Settings | None = None) -> VisitCheck:
+    """Evaluate one visit (the latest when no date is given) and save the evaluations."""
+    patient = _patient_or_hint(session, code)
+    visits = session.execute(select(Visit.id, Visit.visit_date, Visit.diagnosis).where(Visit.patient_id == patient.id).order_by(Visit.visit_date)).all()
+    if not visits:
+        raise NotFound(f"Patient {code} has no visits yet.")
+    chosen = visits[-1] if visit_date is None else next((v for v in visits if v.visit_date == visit_date), None)
+    if chosen is None:
+        raise NotFound(f"Patient {code} has no visit on {visit_date.isoformat()}; visits: {', '.join(v.visit_date.isoformat() for v in visits)}")
+    index = [v.id for v in visits].index(chosen.id)
+    previous = visits[index - 1] if index > 0 else None
+    wanted = [chosen.id] + ([previous.id] if previous else [])
+    criteria_ids = criteria or [default_criteria(chosen.diagnosis or patient.diagnosis)]
+    unknown = [c for c in criteria_ids if c not in engine.REGISTRY]
+    if unknown:
+        raise TrackerError(f"Unknown criteria set {unknown[0]!r}; known: {', '.join(engine.available())}")
+    info, limits = resolve(session, limits_name)
+    visit_frame, tests, sites = load_frames(session, wanted)
+    if tests[tests["visit_key"] == chosen.id].empty:
+        raise NotFound(f"The visit of {code} on {chosen.visit_date.isoformat()} has no nerve tests to evaluate.")
+    settings = settings or Settings()
+    results = engine.evaluate(visit_frame, tests, sites, limits, criteria_ids, settings)
+    current = {cid: _only(result, chosen.id) for cid, result in results.items()}
+    _save(session, visit_frame[visit_frame["visit_key"] == chosen.id], current, info, settings)
+    return VisitCheck(
+        patient=patient.code,
+        visit_date=chosen.visit_date,
+        visit_key=chosen.id,
+        phenotype=visit_frame.loc[visit_frame["visit_key"] == chosen.id, "phenotype"].iloc[0],
+        limits=info,
+        results=current,
+        warnings=engine.temperature_warnings(visit_frame[visit_frame["visit_key"] == chosen.id], tests, sites, limits),
+        closest={cid: engine.closest_miss(r) for cid, r in current.items()},
+        changes={cid: _changes_at(visit_frame, r, chosen.id) for cid, r in results.items()},
+        previous_date=previous.visit_date if previous else None,
+    )
+
+
+def _changes_at(visits: pd.DataFrame, result: SetResult, visit_key: int) -> pd.DataFrame:
+    changes = engine.changes_between_visits(visits, result)
+    return changes[changes["visit_key"] == visit_key].reset_index(drop=True)
+
+
+def _only(result: SetResult, visit_key: int) -> SetResult:
+    return SetResult(
+        result.criteria, result.version,
+        result.findings[result.findings["visit_key"] == visit_key].reset_index(drop=True),
+        result.outcomes[result.outcomes["visit_key"] == visit_key].reset_index(drop=True),
+        result.extra_keys,
+    )
+
+
+def _input_fingerprints(visits: pd.DataFrame, info: LimitSetInfo, criteria_version: str, settings: Settings) -> dict[int, str]:
+    """What an evaluation depends on: the visit's content, the patient's age/height/sex, the limits set and
+    version, the criteria version and the settings."""
+    fixed = f"{info.id}:{info.version}:{criteria_version}:{settings}"
+    result = {}
+    for row in visits.itertuples():
+        payload = f"{row.content_sha256}|{row.age_years}|{row.height_cm}|{row.sex}|{row.phenotype}|{fixed}"
+        result[int(row.visit_key)] = hashlib.sha256(payload.encode()).hexdigest()
+    return result
+
+
+def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult], info: LimitSetInfo, settings: Settings) -> None:
+    for criteria_id, result in results.items():
+        fingerprints = _input_fingerprints(visits, info, result.version, settings)
+        keys = list(fingerprints)
+        session.execute(delete(Evaluation).where(Evaluation.visit_id.in_(keys), Evaluation.criteria_id == criteria_id, Evaluation.limit_set_id == info.id))
+        outcomes = result.outcomes.set_index("visit_key")
+        rows = []
+        for key in keys:
+            if key not in outcomes.index:
+                continue
+            rows.append(
+                {
+                    "visit_id": key,
+                    "criteria_id": criteria_id,
+                    "criteria_version": result.version,
+                    "limit_set_id": info.id,
+                    "limit_set_version": info.version,
+                    "input_sha256": fingerprints[key],
+                    "outcome": str(outcomes.loc[key, "outcome"]),
+                    "result": to_json(result, key),
+                    "computed_at": utc_now(),
+                }
+            )
+        if rows:
+            session.execute(insert(Evaluation), rows)
+
+
+def refresh_evaluations(session: Session, criteria: list[str] | None = None, limits_name: str | None = None, settings: Settings | None = None) -> dict[str, int]:
+    """Recompute, in one vectorised pass, every evaluation whose inputs changed; return counts."""
+    settings = settings or Settings()
+    info, limits = resolve(session, limits_name)
+    visits, tests, sites = load_frames(session)
+    criteria_ids = criteria or engine.available()
+    counts = {"visits": len(visits), "recomputed": 0, "unchanged": 0}
+    stored = {
+        (visit_id, criteria_id): fingerprint
+        for visit_id, criteria_id, fingerprint in session.execute(
+            select(Evaluation.visit_id, Evaluation.criteria_id, Evaluation.input_sha256).where(Evaluation.limit_set_id == info.id)
+        )
+    }
+    results = engine.evaluate(visits, tests, sites, limits, criteria_ids, settings)
+    for criteria_id, result in results.items():
+        fingerprints = _input_fingerprints(visits, info, result.version, settings)
+        stale = [k for k, h in fingerprints.items() if stored.get((k, criteria_id)) != h]
+        counts["unchanged"] += len(fingerprints) - len(stale)
+        counts["recomputed"] += len(stale)
+        if stale:
+            _save(session, visits[visits["visit_key"].isin(stale)], {criteria_id: result}, info, settings)
+    return counts
+
+
+def _plain(value: Any) -> Any:
+    if value is None:
+        return None
+    if isinstance(value, (float, np.floating)):
+        return None if np.isnan(value) else round(float(value), 6)
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    if isinstance(value, (np.bool_,)):
+        return bool(value)
+    return value
+
+
+def to_json(result: SetResult, visit_key: int) -> dict[str, Any]:
+    """The evaluation of one visit in the interchange shape of DESIGN.md §5 (without patient and date)."""
+    outcome = result.outcomes[result.outcomes["visit_key"] == visit_key].iloc[0]
+    findings = result.findings[result.findings["visit_key"] == visit_key]
+    nerves = []
+    for (nerve, side, modality), group in findings.groupby(["nerve", "side", "modality"], sort=True):
+        nerves.append(
+            {
+                "nerve": nerve,
+                "side": side,
+                "modality": modality,
+                "findings": [
+                    {
+                        "parameter": row.parameter,
+                        "item": row.item,
+                        "segment": _plain(row.segment) if isinstance(row.segment, str) else None,
+                        "value": _plain(row.value),
+                        "unit": row.unit,
+                        "limit": _plain(row.limit),
+                        "limit_name": row.limit_name or None,
+                        "threshold": _plain(row.threshold),
+                        "comparator": row.comparator,
+                        "status": row.status,
+                        "reason": row.reason or None,
+                        "source": row.source if isinstance(row.source, str) else None,
+                        "source_status": row.source_status if isinstance(row.source_status, str) else None,
+                        "limit_source": row.limit_source if isinstance(row.limit_source, str) else None,
+                        "limit_status": row.limit_status if isinstance(row.limit_status, str) else None,
+                    }
+                    for row in group.itertuples()
+                ],
+            }
+        )
+    payload = {"criteria": result.criteria, "criteria_version": result.version, "outcome": outcome["outcome"], "rule": outcome.get("rule")}
+    for key in result.extra_keys:
+        payload[key] = _plain(outcome[key])
+    payload["nerves"] = nerves
+    return json.loads(json.dumps(payload, default=_plain))
