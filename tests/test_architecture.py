@@ -10,7 +10,8 @@ import pytest
 PACKAGE = Path(__file__).resolve().parent.parent / "tracker"
 
 FORBIDDEN = {
-    "domain": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli"),
+    "domain": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli", "tracker.criteria"),
+    "criteria": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli"),
     "db": ("streamlit", "plotly", "click", "tracker.services", "tracker.cli"),
     "services": ("streamlit", "plotly", "click", "tracker.cli"),
 }

@@ -5,7 +5,6 @@ from __future__ import annotations
 
 import datetime as dt
 import hashlib
-import json
 from dataclasses import dataclass
 from typing import Any
 
@@ -232,7 +231,7 @@ def to_json(result: SetResult, visit_key: int) -> dict[str, Any]:
                         "value": _plain(row.value),
                         "unit": row.unit,
                         "limit": _plain(row.limit),
-                        "limit_name": row.limit_name or None,
+                        "limit_name": row.limit_name if isinstance(row.limit_name, str) and row.limit_name else None,
                         "threshold": _plain(row.threshold),
                         "comparator": row.comparator,
                         "status": row.status,
@@ -246,8 +245,20 @@ def to_json(result: SetResult, visit_key: int) -> dict[str, Any]:
                 ],
             }
         )
-    payload = {"criteria": result.criteria, "criteria_version": result.version, "outcome": outcome["outcome"], "rule": outcome.get("rule")}
+    rule = outcome.get("rule")
+    payload = {"criteria": result.criteria, "criteria_version": result.version, "outcome": outcome["outcome"], "rule": rule if isinstance(rule, str) else None}
     for key in result.extra_keys:
         payload[key] = _plain(outcome[key])
     payload["nerves"] = nerves
-    return json.loads(json.dumps(payload, default=_plain))
+    return _json_safe(payload)
+
+
+def _json_safe(value: Any) -> Any:
+    """Plain JSON values only: NaN becomes null (PostgreSQL's JSON refuses NaN), numpy scalars Python."""
+    if isinstance(value, dict):
+        return {str(k): _json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_safe(v) for v in value]
+    if isinstance(value, str) or value is None or isinstance(value, bool):
+        return value
+    return _plain(value) if not (isinstance(value, float) and np.isnan(value)) else None

@@ -1,0 +1,131 @@
+"""Engine-wide properties: per-visit and vectorised paths agree, row order does not matter, worse values
+never undo a met finding, missing data are never normal, limits strata are chosen by age."""
+
+from __future__ import annotations
+
+import random
+
+import numpy as np
+import pandas as pd
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from criteria_cases import Motor, Sensory, Visit, evaluate, frames
+from tracker.criteria import engine, limits
+from tracker.criteria.model import MET, NOT_EVALUABLE
+
+SETS = engine.available()
+
+
+def random_visit(rng: random.Random, patient: str, day: int) -> Visit:
+    """An invented study: four motor nerves and three sensory nerves with values from normal to very abnormal."""
+    def motor(nerve, dml, cv, amp, f):
+        n_sites = 3 if nerve in ("ulnar", "fibular") else 2
+        amplitudes = [round(amp * rng.uniform(0.3, 1.5), 1)]
+        for _ in range(n_sites - 1):
+            amplitudes.append(round(amplitudes[-1] * rng.uniform(0.3, 1.0), 1))
+        durations = [round(rng.uniform(4.5, 11), 1)]
+        for _ in range(n_sites - 1):
+            durations.append(round(durations[-1] * rng.uniform(1.0, 1.8), 1))
+        absent = rng.random() < 0.15
+        return Motor(nerve, dml=round(dml * rng.uniform(0.7, 2.2), 2), cv=round(cv * rng.uniform(0.4, 1.2), 1), amplitudes=tuple(amplitudes),
+                     durations=tuple(durations), f_latency=round(f * rng.uniform(0.8, 1.8), 1), f_absent=absent,
+                     temperature=round(rng.uniform(29, 35), 1), lff=rng.choice([2.0, 5.0, 10.0, 20.0, None]),
+                     wrist_entrapment=rng.choice([None, False, True]) if nerve == "median" else None,
+                     segment_mm=400 if nerve == "tibial" else 250)
+    nerves = [motor("median", 3.8, 55, 8, 28), motor("ulnar", 3.0, 57, 9, 29), motor("fibular", 5.0, 47, 5, 50), motor("tibial", 4.8, 46, 10, 50)]
+    nerves += [Sensory(n, amplitude=round(rng.uniform(0, 40), 1), cv=round(rng.uniform(25, 60), 1)) for n in ("median", "ulnar", "sural")]
+    return Visit(nerves, patient=patient, visit_date=f"2024-{1 + day % 12:02d}-{1 + day % 27:02d}", age_years=rng.choice([35, 55, 75, None]),
+                 phenotype=rng.choice(["typical", "distal", "motor", "sensory", "multifocal", None]))
+
+
+@pytest.fixture(scope="module")
+def cohort():
+    rng = random.Random(11)
+    return [random_visit(rng, f"G-{i:03d}", i) for i in range(20)]
+
+
+def _outcomes(result) -> pd.DataFrame:
+    return result.outcomes.drop(columns=["visit_key"]).reset_index(drop=True)
+
+
+@pytest.mark.parametrize("criteria", SETS)
+def test_per_visit_and_vectorised_paths_agree(cohort, criteria):
+    together = engine.evaluate(*frames(cohort), limits.default_limits(), [criteria])[criteria]
+    together_outcomes = together.outcomes.set_index("visit_key")
+    v, t, s = frames(cohort)
+    together = engine.evaluate(v, t, s, limits.default_limits(), [criteria])[criteria]
+    for key in v["visit_key"]:
+        alone = engine.evaluate(v[v.visit_key == key], t[t.visit_key == key], s[s.test_key.isin(t[t.visit_key == key].test_key)], limits.default_limits(), [criteria])[criteria]
+        a = alone.findings.sort_values(["nerve", "side", "modality", "item"]).reset_index(drop=True)
+        b = together.findings[together.findings.visit_key == key].sort_values(["nerve", "side", "modality", "item"]).reset_index(drop=True)
+        pd.testing.assert_frame_equal(a, b)
+        assert alone.outcomes.drop(columns="visit_key").iloc[0].to_dict() == together.outcomes.set_index("visit_key").loc[key].to_dict()
+    assert len(together_outcomes) == len(cohort)
+
+
+@pytest.mark.parametrize("criteria", SETS)
+def test_row_order_does_not_matter(cohort, criteria):
+    v, t, s = frames(cohort[:15])
+    first = engine.evaluate(v, t, s, limits.default_limits(), [criteria])[criteria]
+    shuffled = engine.evaluate(v.sample(frac=1, random_state=3), t.sample(frac=1, random_state=4), s.sample(frac=1, random_state=5), limits.default_limits(), [criteria])[criteria]
+    key = ["visit_key", "nerve", "side", "modality", "item"]
+    pd.testing.assert_frame_equal(first.findings.sort_values(key).reset_index(drop=True), shuffled.findings.sort_values(key).reset_index(drop=True))
+    pd.testing.assert_frame_equal(first.outcomes.sort_values("visit_key").reset_index(drop=True), shuffled.outcomes.sort_values("visit_key").reset_index(drop=True))
+
+
+WORSENING_ITEMS = {"distal latency": "dml", "conduction velocity": "cv", "F-wave latency": "f"}
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(
+    dml=st.floats(2.0, 12.0), extra_latency=st.floats(0.0, 5.0),
+    cv=st.floats(15.0, 70.0), slower=st.floats(0.0, 10.0),
+    f=st.floats(20.0, 70.0), extra_f=st.floats(0.0, 20.0),
+    criteria=st.sampled_from([c for c in SETS]),
+)
+def test_longer_latency_or_slower_velocity_never_unmeets(dml, extra_latency, cv, slower, f, extra_f, criteria):
+    """Making a latency longer or a velocity slower never turns a met latency/velocity finding into not met."""
+    base = Visit([Motor("median", dml=round(dml, 2), cv=round(cv, 1), f_latency=round(f, 1)), Motor("ulnar", amplitudes=(8, 7.8, 7.6), durations=(5.5, 5.6, 5.7))])
+    worse = Visit([Motor("median", dml=round(dml + extra_latency, 2), cv=round(max(cv - slower, 5.0), 1), f_latency=round(f + extra_f, 1)),
+                   Motor("ulnar", amplitudes=(8, 7.8, 7.6), durations=(5.5, 5.6, 5.7))])
+    a = evaluate([base], criteria).findings
+    b = evaluate([worse], criteria).findings
+    for parameter in WORSENING_ITEMS:
+        before = a[(a.nerve == "median") & (a.parameter == parameter)].set_index("item")["status"]
+        after = b[(b.nerve == "median") & (b.parameter == parameter)].set_index("item")["status"]
+        for item, status in before.items():
+            if status == MET:
+                assert after[item] == MET, (criteria, parameter, item)
+
+
+@pytest.mark.parametrize("criteria", SETS)
+def test_a_study_without_values_is_never_normal(criteria):
+    empty = Visit([Motor("median", dml=None, cv=None, amplitudes=(None, None), durations=(None, None), f_latency=None)])
+    result = evaluate([empty], criteria)
+    assert (result.findings["status"] == NOT_EVALUABLE).all(), result.findings[["item", "status"]]
+    assert result.outcomes.iloc[0]["outcome"] not in ("normal", "met", "definite", "cidp")
+
+
+def test_stratum_is_chosen_by_age():
+    # Invented laboratory limits: a stricter distal latency limit under 60 years.
+    rows = limits.default_limits()
+    young = rows[(rows.nerve == "median") & (rows.modality == "motor") & (rows.parameter == "distal_latency_ms")].assign(value=4.0, age_min=18.0, age_max=60.0)
+    table = pd.concat([rows, young], ignore_index=True)
+    v, t, s = frames([Visit([Motor("median", dml=6.2)], age_years=40), Visit([Motor("median", dml=6.2)], age_years=70)])
+    result = engine.evaluate(v, t, s, table, ["efns-pns-2010-cidp"])["efns-pns-2010-cidp"]
+    dml = result.findings[result.findings.item == "dml"].set_index("visit_key")
+    # 1.5 × 4.0 = 6.0 ms (age 40: met); 1.5 × 4.4 = 6.6 ms (age 70: not met)
+    assert dml.loc[v.visit_key[0], "threshold"] == 6.0 and dml.loc[v.visit_key[0], "status"] == MET
+    assert dml.loc[v.visit_key[1], "threshold"] == 6.6 and dml.loc[v.visit_key[1], "status"] != MET
+    assert np.isclose(dml.loc[v.visit_key[0], "limit"], 4.0)
+
+
+def test_overlapping_strata_are_detected():
+    rows = pd.DataFrame([
+        {"nerve": "median", "modality": "motor", "parameter": "distal_latency_ms", "bound": "uln", "value": 4.2, "age_min": 20, "age_max": 60},
+        {"nerve": "median", "modality": "motor", "parameter": "distal_latency_ms", "bound": "uln", "value": 4.5, "age_min": 50, "age_max": 90},
+        {"nerve": "median", "modality": "motor", "parameter": "distal_latency_ms", "bound": "uln", "value": 4.6, "age_min": 60, "age_max": 90, "sex": "male"},
+    ])
+    assert limits.overlapping_strata(rows) == [(0, 1)]
