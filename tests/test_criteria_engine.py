@@ -78,7 +78,7 @@ def test_row_order_does_not_matter(cohort, criteria):
 WORSENING_ITEMS = {"distal latency": "dml", "conduction velocity": "cv", "F-wave latency": "f"}
 
 
-@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 @given(
     dml=st.floats(2.0, 12.0), extra_latency=st.floats(0.0, 5.0),
     cv=st.floats(15.0, 70.0), slower=st.floats(0.0, 10.0),
@@ -96,6 +96,8 @@ def test_longer_latency_or_slower_velocity_never_unmeets(dml, extra_latency, cv,
         before = a[(a.nerve == "median") & (a.parameter == parameter)].set_index("item")["status"]
         after = b[(b.nerve == "median") & (b.parameter == parameter)].set_index("item")["status"]
         for item, status in before.items():
+            if str(item).startswith(("normal", "sural_normal")):
+                continue  # normality checks (e.g. Hadden's "normal" class) rightly turn not met
             if status == MET:
                 assert after[item] == MET, (criteria, parameter, item)
 

@@ -92,7 +92,19 @@ def build(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits
         slowest = slowest.set_index("test_key")
         nerves[f"cv_{name}"] = slowest["segment_velocity"].reindex(nerves.index)
         nerves[f"cv_{name}_segment"] = slowest["segment"].reindex(nerves.index)
-    return nerves.reset_index(drop=True), paths
+    return _plain_text(nerves.reset_index(drop=True)), _plain_text(paths)
+
+
+TEXT_COLUMNS = ("nerve", "side", "modality", "limb", "label", "distal_label", "segment_kind", "segment", "path", "sex", "recording_site")
+
+
+def _plain_text(frame: pd.DataFrame) -> pd.DataFrame:
+    """Word columns as plain Python objects: Arrow-backed text columns are slow to index row by row, and
+    the rules filter and gather these frames many times."""
+    for column in frame.columns:
+        if column in TEXT_COLUMNS or column.endswith(("_source", "_status", "_stratum", "_segment")):
+            frame[column] = pd.Series(frame[column].to_numpy(dtype=object), index=frame.index, dtype=object)
+    return frame
 
 
 def _paths(sites: pd.DataFrame, nerves: pd.DataFrame) -> pd.DataFrame:
@@ -136,28 +148,28 @@ def _paths(sites: pd.DataFrame, nerves: pd.DataFrame) -> pd.DataFrame:
         difference = quantise_array(latency[index] - prev_latency)
         velocity = np.where(difference > 0, paths["distance_mm"].to_numpy(dtype=float) / difference, np.nan)
     paths["segment_velocity"] = quantise_array(velocity)
-    kinds = segment_kinds()
-    labels = list(zip(paths["nerve"], prev_label, paths["label"], paths["site_order"]))
-
-    def classify(nerve, low, high, order):
-        if low is None or high is None or (isinstance(low, float) and np.isnan(low)) or (isinstance(high, float) and np.isnan(high)):
-            # Unlabelled sites: the first segment is taken to be the standard forearm/leg segment.
-            return ("standard", True) if order == 2 else ("unknown", False)
-        return kinds.get((nerve, low, high), ("unknown", False))
-
-    classified = [classify(*item) for item in labels]
-    paths["segment_kind"] = [c[0] for c in classified]
-    paths["long_segment"] = [c[1] for c in classified]
-    paths["segment"] = [
-        f"{low if isinstance(low, str) else f'site {order - 1}'} → {high if isinstance(high, str) else f'site {order}'}"
-        for (_, low, high, order) in labels
-    ]
+    low = pd.Series(prev_label, index=paths.index, dtype=object)
+    high = paths["label"].astype(object)
+    order = paths["site_order"].astype(int)
+    kinds = pd.DataFrame(
+        [(n, d, p, k, lg) for (n, d, p), (k, lg) in segment_kinds().items()],
+        columns=["nerve", "low", "high", "segment_kind", "long_segment"],
+    )
+    keyed = pd.DataFrame({"nerve": paths["nerve"].astype(object).to_numpy(), "low": low.to_numpy(), "high": high.to_numpy()})
+    found = keyed.merge(kinds, on=["nerve", "low", "high"], how="left")
+    unlabelled = (low.isna() | high.isna()).to_numpy()
+    # Unlabelled sites: the first segment is taken to be the standard forearm/leg segment.
+    kind = np.where(unlabelled, np.where(order.to_numpy() == 2, "standard", "unknown"), found["segment_kind"].fillna("unknown").to_numpy())
+    long_segment = np.where(unlabelled, order.to_numpy() == 2, found["long_segment"].fillna(False).to_numpy(dtype=bool))
+    paths["segment_kind"] = kind
+    paths["long_segment"] = long_segment.astype(bool)
+    low_name = low.where(low.notna(), "site " + (order - 1).astype(str))
+    high_name = high.where(high.notna(), "site " + order.astype(str))
+    paths["segment"] = (low_name + " → " + high_name).to_numpy(dtype=object)
     # The path from the distal site avoids entrapment when no segment on it is an entrapment or unknown one.
     bad = (~paths["segment_kind"].isin(["standard", "proximal"])).astype(int)
     paths["path_outside_entrapment"] = bad.groupby(paths["test_key"]).cumsum().to_numpy() == 0
     paths["path_standard"] = (paths["site_order"] == 2) & (paths["segment_kind"] == "standard")
-    paths["path"] = [
-        f"{d if isinstance(d, str) else 'site 1'} → {h if isinstance(h, str) else f'site {o}'}"
-        for d, h, o in zip(base["label"], paths["label"], paths["site_order"])
-    ]
+    base_label = pd.Series(base["label"].to_numpy(dtype=object), index=paths.index)
+    paths["path"] = (base_label.where(base_label.notna(), "site 1") + " → " + high_name).to_numpy(dtype=object)
     return paths.reset_index(drop=True)[PATH_COLUMNS]

@@ -98,6 +98,8 @@ def attach_limits(nerves: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
     value the visit lacks (unknown age, say) does not apply; the unconditioned row does.
     """
     limits = normalise(limits)
+    # Described once per limit row (a handful), not once per nerve test.
+    limits["stratum"] = [_describe_stratum(row) for row in limits.rename(columns={"sex": "sex_limit"}).itertuples()] if len(limits) else []
     keyed = nerves[["nerve", "modality", "age_years", "height_cm", "sex"]].reset_index().rename(columns={"index": "row"})
     merged = keyed.merge(limits, on=["nerve", "modality"], how="inner", suffixes=("", "_limit"))
 
@@ -121,8 +123,7 @@ def attach_limits(nerves: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
         result[column] = part["value"].reindex(result.index)
         result[f"{column}_source"] = part["source"].reindex(result.index)
         result[f"{column}_status"] = part["status"].reindex(result.index)
-        strata = part.apply(_describe_stratum, axis=1) if len(part) else pd.Series(dtype=object)
-        result[f"{column}_stratum"] = strata.reindex(result.index)
+        result[f"{column}_stratum"] = part["stratum"].reindex(result.index)
     return result
 
 

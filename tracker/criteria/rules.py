@@ -80,28 +80,39 @@ def item_findings(
         mask = np.asarray(mask, dtype=bool)
         status[mask] = NOT_EVALUABLE
         reason[mask] = why[mask] if isinstance(why, np.ndarray) else why
+    def text(values) -> pd.Series:
+        # Plain Python objects: letting pandas infer a string column for each of millions of findings
+        # costs more than the rules themselves.
+        if isinstance(values, pd.Series):
+            values = values.to_numpy(dtype=object)
+        if values is None or isinstance(values, str):
+            array = np.empty(n, dtype=object)
+            array[:] = values
+            return pd.Series(array, dtype=object, copy=False)
+        return pd.Series(np.asarray(values, dtype=object), dtype=object, copy=False)
+
     result = pd.DataFrame(
         {
             "visit_key": frame["visit_key"].to_numpy(),
-            "criteria": criteria,
-            "nerve": frame["nerve"].to_numpy(),
-            "side": frame["side"].to_numpy(),
-            "modality": frame["modality"].to_numpy() if "modality" in frame else "motor",
-            "item": item,
-            "parameter": parameter,
-            "segment": segment if segment is not None else None,
+            "criteria": text(criteria),
+            "nerve": text(frame["nerve"]),
+            "side": text(frame["side"]),
+            "modality": text(frame["modality"] if "modality" in frame else "motor"),
+            "item": text(item),
+            "parameter": text(parameter),
+            "segment": text(segment),
             "value": value,
-            "unit": unit,
+            "unit": text(unit),
             "limit": limit,
-            "limit_name": limit_name,
+            "limit_name": text(limit_name),
             "threshold": quantise_array(threshold),
-            "comparator": comparator,
-            "status": status,
-            "reason": reason,
-            "source": source.to_numpy() if isinstance(source, pd.Series) else source,
-            "source_status": source_status.to_numpy() if isinstance(source_status, pd.Series) else source_status,
-            "limit_source": limit_source.to_numpy() if isinstance(limit_source, pd.Series) else limit_source,
-            "limit_status": limit_status.to_numpy() if isinstance(limit_status, pd.Series) else limit_status,
+            "comparator": text(comparator),
+            "status": text(status),
+            "reason": text(reason),
+            "source": text(source),
+            "source_status": text(source_status),
+            "limit_source": text(limit_source),
+            "limit_status": text(limit_status),
             "margin": margin(value, threshold, comparator),
         }
     )
@@ -124,39 +135,60 @@ def nerve_identity(findings: pd.DataFrame, settings: Settings) -> pd.Series:
 
 
 def met_sets(findings: pd.DataFrame, settings: Settings) -> pd.DataFrame:
-    """Per visit and item: the set of nerves (identities) where the item is met."""
-    met = findings[findings["status"] == MET].assign(identity=lambda f: nerve_identity(f, settings))
-    return met.groupby(["visit_key", "item"])["identity"].agg(frozenset).unstack("item")
+    """Per visit and nerve (identity): which items are met — a boolean table indexed by
+    (``visit_key``, ``identity``) with one column per item met anywhere."""
+    met = findings[findings["status"] == MET]
+    if met.empty:
+        return pd.DataFrame(index=pd.MultiIndex.from_arrays([[], []], names=["visit_key", "identity"]))
+    met = met.assign(identity=nerve_identity(met, settings).to_numpy())
+    table = met.groupby(["visit_key", "identity", "item"]).size().unstack("item", fill_value=0) > 0
+    return table
+
+
+def _per_visit(values: pd.Series, visits: pd.Index) -> pd.Series:
+    return values.groupby(level="visit_key").sum().reindex(visits, fill_value=0).astype(int)
 
 
 def count_nerves(sets: pd.DataFrame, item: str, visits: pd.Index) -> pd.Series:
     """Number of nerves meeting ``item`` per visit (0 where none)."""
     if item not in sets:
         return pd.Series(0, index=visits)
-    return sets[item].reindex(visits).map(lambda s: len(s) if isinstance(s, frozenset) else 0)
+    return _per_visit(sets[item], visits)
+
+
+def count_any(sets: pd.DataFrame, items: list[str], visits: pd.Index) -> pd.Series:
+    """Number of nerves meeting at least one of ``items`` per visit."""
+    present = [i for i in items if i in sets]
+    if not present:
+        return pd.Series(0, index=visits)
+    return _per_visit(sets[present].any(axis=1), visits)
 
 
 def union(sets: pd.DataFrame, items: list[str], visits: pd.Index) -> pd.Series:
-    """Per visit, the nerves meeting any of ``items``."""
+    """Per visit, the set of nerves meeting any of ``items`` (prefer :func:`count_any` for counts)."""
     present = [i for i in items if i in sets]
-    empty = frozenset()
+    empty = pd.Series([frozenset()] * len(visits), index=visits, dtype=object)
     if not present:
-        return pd.Series([empty] * len(visits), index=visits, dtype=object)
-    table = sets[present].reindex(visits)
-    return table.apply(lambda row: frozenset().union(*[s for s in row if isinstance(s, frozenset)]), axis=1)
+        return empty
+    hits = sets[present].any(axis=1)
+    hits = hits[hits].reset_index()
+    grouped = hits.groupby("visit_key")["identity"].agg(frozenset)
+    return grouped.reindex(visits).where(lambda s: s.notna(), frozenset()).astype(object).combine_first(empty)
 
 
 def one_plus_other(sets: pd.DataFrame, item: str, others: list[str], visits: pd.Index) -> pd.Series:
-    """True where ``item`` is met in one nerve and any of ``others`` in a different nerve."""
-    first = sets[item].reindex(visits) if item in sets else pd.Series([None] * len(visits), index=visits)
-    rest = union(sets, others, visits)
-    return pd.Series(
-        [
-            isinstance(a, frozenset) and any(x != y for x in a for y in b)
-            for a, b in zip(first, rest)
-        ],
-        index=visits,
-    )
+    """True where ``item`` is met in one nerve and any of ``others`` in a different nerve.
+
+    With A the nerves meeting ``item`` and B those meeting any of ``others``, some a ∈ A and b ∈ B differ
+    unless A and B are the same single nerve.
+    """
+    present = [i for i in others if i in sets]
+    if item not in sets or not present:
+        return pd.Series(False, index=visits)
+    a = sets[item]
+    b = sets[present].any(axis=1)
+    n_a, n_b, n_ab = _per_visit(a, visits), _per_visit(b, visits), _per_visit(a & b, visits)
+    return (n_a >= 1) & (n_b >= 1) & ~((n_a == 1) & (n_b == 1) & (n_ab == 1))
 
 
 def describe(comparator: str) -> str:

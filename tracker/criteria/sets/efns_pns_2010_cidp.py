@@ -97,7 +97,7 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
         "probable block in ≥ 2 nerves": count("probable_cb") >= 2,
         "probable block in 1 nerve plus another parameter in another nerve": rules.one_plus_other(sets, "probable_cb", DEMYELINATING, keys),
     }
-    any_single = rules.union(sets, DEMYELINATING, keys).map(len) >= 1
+    any_single = rules.count_any(sets, DEMYELINATING, keys) >= 1
     outcome = pd.Series("not_met", index=keys, dtype=object)
     rule = pd.Series("no demyelinating parameter met in any nerve", index=keys, dtype=object)
     outcome[any_single] = "possible"
@@ -109,7 +109,7 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
         fire = hit & (outcome != "definite")
         outcome[fire], rule[fire] = "definite", name
 
-    sensory_met = sensory[sensory["item"] == "sensory_cv"].groupby("visit_key")["status"].agg(lambda s: (s == MET).any())
+    sensory_met = (sensory["status"] == MET)[sensory["item"] == "sensory_cv"].groupby(sensory["visit_key"]).any()
     reduced = sensory[(sensory["item"] == "snap_reduced") & (sensory["status"] == MET)].groupby("visit_key").size()
     sural_normal = sensory[(sensory["item"] == "sural_normal") & (sensory["status"] == MET)].groupby("visit_key").size()
     evaluable = sensory[sensory["status"] != NOT_EVALUABLE].groupby("visit_key").size()
