@@ -139,3 +139,17 @@ def healthy_four_nerves() -> list:
     return [Motor("median"), Motor("ulnar", amplitudes=(9.0, 8.6, 8.4), durations=(5.5, 5.8, 6.0), dml=2.8),
             Motor("fibular", amplitudes=(5.0, 4.6, 4.5), durations=(5.5, 6.0, 6.1), dml=4.5, cv=48, f_latency=48),
             Motor("tibial", amplitudes=(10.0, 8.5), durations=(5.5, 6.5), dml=4.5, cv=46, f_latency=50, segment_mm=400)]
+
+
+def inexcitable(nerve: str, side: str = "right") -> Motor:
+    """A motor nerve with no recordable response at any stimulation site (invented): amplitude 0, no latency,
+    no duration, F-waves absent — what the importer stores as "no response"."""
+    n = len(DEFAULT_SITES.get(nerve, (None, None)))
+    return Motor(nerve, side=side, dml=None, cv=None, amplitudes=(0.0,) * n, durations=(None,) * n,
+                 f_latency=None, f_absent=True)
+
+
+def exact_velocity(cv: float, dml: float = 3.5, sites: int = 2) -> dict:
+    """Motor keyword arguments giving conduction velocity ``cv`` exactly on every segment (5 ms per segment,
+    distance cv × 5 mm), so a value placed on a threshold compares equal to it."""
+    return dict(dml=dml, latencies=tuple(dml + 5.0 * i for i in range(sites)), segment_mm=cv * 5.0)

@@ -14,6 +14,7 @@ from tracker.criteria.model import Settings
 from tracker.criteria.thresholds import ThresholdTable
 
 LIMIT_NAMES = {"uln": "ULN", "lln": "LLN"}
+COMPARATOR_WORDS = {"ge": "at least", "gt": "above", "le": "at most", "lt": "below"}
 
 
 def motor(nerves: pd.DataFrame) -> pd.DataFrame:
@@ -140,6 +141,7 @@ def f_absent(nerves, table: ThresholdTable, item: str, settings: Settings, *, cr
         requirement=absent, **limit_provenance(frame, "lln_amplitude"),
         blocked=rules.common_blocks(frame, settings)
         + [
+            (frame["no_response"].to_numpy(dtype=bool), "no recordable response at the distal site"),
             (~absent & ~present, "F-waves not recorded"),
             (absent & ~precondition & ~np.isnan(amplitude) & ~np.isnan(threshold), "amplitude precondition failed: distal CMAP below the required fraction of LLN"),
         ],
@@ -170,6 +172,13 @@ def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: st
     excluded, why = _excluded(frame, table, item)
     value = best[measure].to_numpy(dtype=float)
     no_path = np.isnan(value)
+    no_response = frame["no_response"].to_numpy(dtype=bool)
+    fraction = pre_rows["value"].to_numpy(dtype=float)
+    failed = np.array([f"amplitude precondition failed: distal CMAP {a:g} mV is not {COMPARATOR_WORDS.get(c, c)} {f * 100:g} % of LLN"
+                       for a, c, f in zip(amplitude, pre_rows["comparator"], fraction)], dtype=object)
+    eligible_sites = paths.loc[eligible, "test_key"].unique()
+    has_site = frame["test_key"].isin(eligible_sites).to_numpy()
+    no_amplitude = np.isnan(amplitude) & ~no_response
     return rules.item_findings(
         frame, criteria=criteria, item=item, parameter="conduction block (amplitude reduction)" if "amplitude" in measure else "conduction block (area reduction)",
         unit="%", value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
@@ -177,8 +186,11 @@ def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: st
         blocked=rules.common_blocks(frame, settings)
         + [
             (excluded, why),
-            (no_path & ~excluded, "no proximal stimulation outside entrapment sites"),
-            (~precondition & ~no_path & ~np.isnan(pre_threshold), "amplitude precondition failed: distal CMAP below 20 % of LLN"),
+            (no_path & ~excluded & ~no_response & ~has_site, "no proximal stimulation outside entrapment sites"),
+            (no_path & ~excluded & ~no_response & has_site, "amplitude (or area) missing at a site"),
+            (no_response & ~excluded, "no recordable response at the distal site"),
+            (~precondition & ~no_path & ~np.isnan(pre_threshold) & ~no_amplitude, failed),
+            (no_amplitude & ~no_path & ~excluded, "distal CMAP amplitude missing (needed for the precondition)"),
             (np.isnan(pre_threshold) & ~no_path, "no LLN for the distal CMAP precondition"),
         ],
     )
@@ -208,5 +220,5 @@ def distal_duration(nerves, table: ThresholdTable, item: str, settings: Settings
         value=frame["distal_duration_ms"].to_numpy(dtype=float), threshold=threshold,
         comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
         limit_name=np.where(np.isnan(threshold), "", "fixed cut-off"), source=rows["source"], source_status=rows["status"],
-        blocked=rules.common_blocks(frame, settings),
+        blocked=rules.common_blocks(frame, settings) + [(frame["no_response"].to_numpy(dtype=bool), "no recordable response at the distal site")],
     )

@@ -191,5 +191,17 @@ def one_plus_other(sets: pd.DataFrame, item: str, others: list[str], visits: pd.
     return (n_a >= 1) & (n_b >= 1) & ~((n_a == 1) & (n_b == 1) & (n_ab == 1))
 
 
+def other_outside(sets: pd.DataFrame, item: str, others: list[str], visits: pd.Index) -> pd.Series:
+    """True where some nerve that does not meet ``item`` meets any of ``others`` ("… plus another
+    parameter in another nerve" when ``item`` itself must be met in two nerves)."""
+    present = [i for i in others if i in sets]
+    if not present:
+        return pd.Series(False, index=visits)
+    outside = sets[present].any(axis=1)
+    if item in sets:
+        outside &= ~sets[item]
+    return _per_visit(outside, visits) >= 1
+
+
 def describe(comparator: str) -> str:
     return COMPARATORS[comparator]

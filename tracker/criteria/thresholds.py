@@ -73,11 +73,12 @@ class ThresholdTable:
             mask = pd.Series(True, index=nerves.index) if row.nerve == "*" else nerves == row.nerve
             if row.lff_hz is not None:
                 mask &= np.isclose(lff.astype(float), row.lff_hz)
-            if row.excluded_nerves:
-                mask &= ~nerves.isin(row.excluded_nerves)
             result.loc[mask, ["value", "source", "status", "description", "comparator", "reference"]] = [
                 row.value, row.source, row.status, row.description, row.comparator, row.reference
             ]
+            if row.excluded_nerves:
+                # An excluded nerve has no threshold, but the trace still cites the rule that excludes it.
+                result.loc[mask & nerves.isin(row.excluded_nerves), "value"] = np.nan
         result["value"] = result["value"].astype(float)
         return result
 

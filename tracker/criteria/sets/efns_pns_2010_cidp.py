@@ -87,7 +87,8 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
         "(a) distal latency in ≥ 2 nerves": count("dml") >= 2,
         "(b) conduction velocity in ≥ 2 nerves": count("cv") >= 2,
         "(c) F-wave latency in ≥ 2 nerves": count("f_latency") >= 2,
-        "(d) absent F-waves in ≥ 2 nerves plus another parameter in another nerve": (count("f_absent") >= 2) & plus_other("f_absent"),
+        "(d) absent F-waves in ≥ 2 nerves plus another parameter in another nerve": (count("f_absent") >= 2)
+        & rules.other_outside(sets, "f_absent", [i for i in DEMYELINATING if i != "f_absent"], keys),
         "(e) conduction block in ≥ 2 nerves": count("cb") >= 2,
         "(e) conduction block in 1 nerve plus another parameter in another nerve": plus_other("cb"),
         "(f) temporal dispersion in ≥ 2 nerves": count("td") >= 2,
