@@ -81,7 +81,9 @@ def closest_miss(result: SetResult) -> pd.DataFrame:
     """For each visit where the set is not met: the not-met finding nearest its threshold (relative)."""
     not_met_visits = result.outcomes.loc[result.outcomes["outcome"] == "not_met", "visit_key"]
     findings = result.findings[(result.findings["status"] == NOT_MET) & result.findings["visit_key"].isin(not_met_visits)]
-    findings = findings[findings["threshold"].notna() & findings["margin"].notna() & (findings["threshold"] != 0)].copy()
+    # Only findings whose own value falls short (margin > 0): a value past its threshold that is not met
+    # because another condition failed is no "near miss".
+    findings = findings[findings["threshold"].notna() & (findings["margin"] > 0) & (findings["threshold"] != 0)].copy()
     if findings.empty:
         return findings.assign(relative_margin=pd.Series(dtype=float), text=pd.Series(dtype=object))
     findings["relative_margin"] = (findings["margin"] / findings["threshold"].abs()).abs()
