@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime as dt
 import json
 
 import pytest
@@ -99,3 +100,25 @@ def test_unknown_criteria_and_patient_are_clear_errors(demo_db, capsys):
     assert code == 1 and "Unknown criteria set" in err
     code, _, err = run_cli(capsys, "--db", demo_db, "check", "DEMO-1")
     assert code == 1 and "did you mean 'DEMO-01'" in err
+
+
+def test_annotate_records_wrist_entrapment_and_keeps_history(demo_db, sessions, capsys):
+    from tracker.db.models import AuditEvent, Visit, VisitRevision
+
+    # Before: DEMO-01's first visit has a median distal latency of 7.05 ms, met for EFNS/PNS 2010 (a).
+    code, out, _ = run_cli(capsys, "--db", demo_db, "check", "DEMO-01", "--visit", "2023-02-14", "--criteria", "efns-pns-2010-cidp", "--format", "json")
+    median = lambda payload: next(f for n in payload["nerves"] if n["nerve"] == "median" and n["modality"] == "motor" for f in n["findings"] if f["item"] == "dml")
+    assert median(json.loads(out))["status"] == "met"
+    code, out, err = run_cli(capsys, "--db", demo_db, "annotate", "DEMO-01", "--visit", "2023-02-14", "--wrist-entrapment", "right=yes")
+    assert code == 0, err and "right median wrist entrapment" in out
+    code, out, _ = run_cli(capsys, "--db", demo_db, "check", "DEMO-01", "--visit", "2023-02-14", "--criteria", "efns-pns-2010-cidp", "--format", "json")
+    after = median(json.loads(out))
+    assert after["status"] == "not_evaluable" and "wrist" in after["reason"]
+    with sessions() as session:
+        visit = session.scalar(select(Visit).where(Visit.visit_date == dt.date(2023, 2, 14)))
+        assert visit.version == 2
+        assert session.scalar(select(func.count()).select_from(VisitRevision).where(VisitRevision.visit_id == visit.id)) == 1
+        assert "set_clinician_inputs" in session.scalars(select(AuditEvent.action)).all()
+    # Re-importing the original file now conflicts (the stored visit differs) instead of silently undoing it.
+    code, _, err = run_cli(capsys, "--db", demo_db, "import", str(DEMO / "measurements.csv"))
+    assert code == 1 and "--replace" in err

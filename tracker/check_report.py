@@ -38,6 +38,13 @@ def text(check: VisitCheck) -> str:
         f"Normal limits: {check.limits.name} v{check.limits.version}" + (f" — {check.limits.description}" if check.limits.description else ""),
     ]
     sources: dict[str, int] = {}
+    if len(check.results) > 1:
+        rows = []
+        for criteria_id, result in check.results.items():
+            outcome = result.outcomes.iloc[0]
+            extra = ", ".join(f"{k.replace('_', ' ')}: {outcome[k]}" for k in result.extra_keys)
+            rows.append([criteria_id, str(outcome["outcome"]), extra])
+        lines += ["", "Side by side:"] + _table(["criteria", "outcome", "details"], rows, indent="  ")
     for criteria_id, result in check.results.items():
         outcome = result.outcomes.iloc[0]
         lines += ["", f"== {TITLES.get(criteria_id, criteria_id)} ({criteria_id}, table version {result.version}) =="]

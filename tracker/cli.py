@@ -189,6 +189,29 @@ def check_command(context: Context, patient: str, visit_date: str | None, criter
         click.echo(text(result))
 
 
+@cli.command("annotate")
+@click.argument("patient")
+@click.option("--visit", "visit_date", metavar="YYYY-MM-DD", required=True, help="The visit to annotate.")
+@click.option("--phenotype", type=click.Choice(["typical", "distal", "multifocal", "focal", "motor", "sensory"]), help="CIDP phenotype at this visit.")
+@click.option("--wrist-entrapment", "wrist", multiple=True, metavar="SIDE=yes|no",
+              help="Median distal latency explained by neuropathy at the wrist on that side (repeatable), e.g. right=yes.")
+@pass_context
+def annotate_command(context: Context, patient: str, visit_date: str, phenotype: str | None, wrist: tuple[str, ...]) -> None:
+    """Record clinician inputs the criteria need (phenotype, wrist entrapment); earlier values are kept."""
+    from tracker.domain.vocabulary import YES_NO
+    from tracker.services.visits import set_clinician_inputs
+
+    entrapment = {}
+    for item in wrist:
+        side, _, answer = item.partition("=")
+        if answer.strip().lower() not in YES_NO or side.strip().lower() not in ("left", "right"):
+            raise click.BadParameter(f"expected SIDE=yes|no such as right=yes, got {item!r}", param_hint="--wrist-entrapment")
+        entrapment[side.strip().lower()] = YES_NO[answer.strip().lower()]
+    with context.session_factory().begin() as session:
+        changes = set_clinician_inputs(session, patient, _parse_date(visit_date), username=context.user, phenotype=phenotype, wrist_entrapment=entrapment)
+    click.echo("\n".join(changes) if changes else "Nothing changed.")
+
+
 @cli.command("evaluate")
 @click.option("--limits", "limits_name", metavar="NAME", help="Normal-limit set (default: the one marked default).")
 @pass_context

@@ -407,7 +407,7 @@ def _snapshot(session: Session, visit_ids: list[int]) -> dict[int, dict[str, Any
     return {v: {"visit": visits.get(v, {}), "nerve_tests": tests_by_visit[v]} for v in visit_ids}
 
 
-def _keep_history(session: Session, changed: pd.DataFrame, *, username: str) -> None:
+def _keep_history(session: Session, changed: pd.DataFrame, *, username: str, reason: str = "import --replace") -> None:
     visit_ids = [int(v) for v in changed["visit_id"]]
     snapshots = _snapshot(session, visit_ids)
     now = utc_now()
@@ -424,7 +424,7 @@ def _keep_history(session: Session, changed: pd.DataFrame, *, username: str) -> 
                     "snapshot": snapshots[visit_id],
                     "replaced_at": now,
                     "replaced_by": username,
-                    "reason": "import --replace",
+                    "reason": reason,
                 }
             ],
         )
