@@ -8,7 +8,6 @@ from __future__ import annotations
 import itertools
 from dataclasses import dataclass, field
 
-import numpy as np
 import pandas as pd
 
 from tracker.criteria import engine, limits
