@@ -8,7 +8,7 @@ import importlib
 import numpy as np
 import pandas as pd
 
-from tracker.criteria import features
+from tracker.criteria import features, memo
 from tracker.criteria.model import MET, NOT_MET, SetResult, Settings
 
 # Criteria id → module under tracker.criteria.sets (each has ID and evaluate()).
@@ -46,11 +46,13 @@ def evaluate(
     settings = settings or Settings()
     nerves, paths = features.build(visits, tests, sites, limits)
     results = {}
-    for criteria_id in criteria_ids or available():
-        if criteria_id not in REGISTRY:
-            raise KeyError(f"Unknown criteria set {criteria_id!r}; known: {', '.join(REGISTRY)}")
-        module = importlib.import_module(f"tracker.criteria.sets.{REGISTRY[criteria_id]}")
-        results[criteria_id] = module.evaluate(nerves, paths, visits, settings)
+    # The sets share derived frames (motor nerve tests, best paths…): each is computed once here.
+    with memo.shared():
+        for criteria_id in criteria_ids or available():
+            if criteria_id not in REGISTRY:
+                raise KeyError(f"Unknown criteria set {criteria_id!r}; known: {', '.join(REGISTRY)}")
+            module = importlib.import_module(f"tracker.criteria.sets.{REGISTRY[criteria_id]}")
+            results[criteria_id] = module.evaluate(nerves, paths, visits, settings)
     return results
 
 

@@ -99,31 +99,51 @@ def attach_limits(nerves: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
     """
     limits = normalise(limits)
     # Described once per limit row (a handful), not once per nerve test.
-    limits["stratum"] = [_describe_stratum(row) for row in limits.rename(columns={"sex": "sex_limit"}).itertuples()] if len(limits) else []
-    keyed = nerves[["nerve", "modality", "age_years", "height_cm", "sex"]].reset_index().rename(columns={"index": "row"})
-    merged = keyed.merge(limits, on=["nerve", "modality"], how="inner", suffixes=("", "_limit"))
+    strata = [_describe_stratum(row) for row in limits.rename(columns={"sex": "sex_limit"}).itertuples()]
+    n = len(nerves)
+    # Which (nerve, modality) each nerve test has, as small integer codes the limit rows can be matched on.
+    pairs = pd.MultiIndex.from_arrays([nerves["nerve"].to_numpy(dtype=object), nerves["modality"].to_numpy(dtype=object)])
+    pair_codes, pair_values = pd.factorize(pairs)
+    pair_code = {value: code for code, value in enumerate(pair_values)}
+    age = nerves["age_years"].to_numpy(dtype=float)
+    height = nerves["height_cm"].to_numpy(dtype=float)
+    sex_codes, sex_values = pd.factorize(nerves["sex"].to_numpy(dtype=object))  # unknown sex: -1, matches no row
+    sex_code = {value: code for code, value in enumerate(sex_values)}
 
-    def within(value, low, high):
-        v = merged[value].astype(float)
-        lo, hi = merged[low], merged[high]
-        ok_low = lo.isna() | (v >= lo)
-        ok_high = hi.isna() | (v < hi)
-        return ok_low & ok_high
+    def within(values: np.ndarray, low: float, high: float) -> np.ndarray | bool:
+        ok = True
+        with np.errstate(invalid="ignore"):
+            if not _missing(low):
+                ok = ok & (values >= low)
+            if not _missing(high):
+                ok = ok & (values < high)
+        return ok
 
-    applies = within("age_years", "age_min", "age_max") & within("height_cm", "height_min_cm", "height_max_cm")
-    applies &= merged["sex_limit"].isna() | (merged["sex_limit"] == merged["sex"])
-    merged = merged[applies].copy()
-    merged["specificity"] = (
-        merged[["age_min", "age_max", "height_min_cm", "height_max_cm"]].notna().sum(axis=1) + merged["sex_limit"].notna()
-    )
-    merged = merged.sort_values(["row", "parameter", "bound", "specificity"]).drop_duplicates(["row", "parameter", "bound"], keep="last")
     result = nerves.copy()
     for (parameter, bound), column in LIMIT_FIELDS.items():
-        part = merged[(merged["parameter"] == parameter) & (merged["bound"] == bound)].set_index("row")
-        result[column] = part["value"].reindex(result.index)
-        result[f"{column}_source"] = part["source"].reindex(result.index)
-        result[f"{column}_status"] = part["status"].reindex(result.index)
-        result[f"{column}_stratum"] = part["stratum"].reindex(result.index)
+        # Per nerve test, the applicable row with the most stratum conditions; among equally specific rows
+        # the later one in the limit set (refused at import anyway).
+        chosen = np.full(n, -1, dtype=np.int64)
+        best = np.full(n, -1, dtype=np.int64)
+        for position, row in enumerate(limits.itertuples(index=False)):
+            if row.parameter != parameter or row.bound != bound or (row.nerve, row.modality) not in pair_code:
+                continue
+            applies = pair_codes == pair_code[(row.nerve, row.modality)]
+            applies = applies & within(age, row.age_min, row.age_max) & within(height, row.height_min_cm, row.height_max_cm)
+            if not _missing(row.sex):
+                applies = applies & (sex_codes == sex_code.get(row.sex, -2))
+            specificity = sum(not _missing(v) for v in (row.age_min, row.age_max, row.height_min_cm, row.height_max_cm, row.sex))
+            take = applies & (specificity >= best)
+            chosen[take] = position
+            best[take] = specificity
+        found = chosen >= 0
+        value = np.full(n, np.nan)
+        value[found] = limits["value"].to_numpy(dtype=float)[chosen[found]]
+        result[column] = pd.Series(value, index=result.index)
+        for suffix, values in (("source", limits["source"]), ("status", limits["status"]), ("stratum", strata)):
+            text = np.full(n, np.nan, dtype=object)
+            text[found] = np.asarray(values, dtype=object)[chosen[found]]
+            result[f"{column}_{suffix}"] = pd.Series(text, index=result.index, dtype=object)
     return result
 
 

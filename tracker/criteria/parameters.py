@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from tracker.criteria import rules
+from tracker.criteria import memo, rules
 from tracker.criteria.model import Settings
 from tracker.criteria.thresholds import ThresholdTable
 
@@ -18,11 +18,13 @@ COMPARATOR_WORDS = {"ge": "at least", "gt": "above", "le": "at most", "lt": "bel
 
 
 def motor(nerves: pd.DataFrame) -> pd.DataFrame:
-    return nerves[nerves["modality"] == "motor"]
+    """The motor nerve tests (computed once per evaluation, see :mod:`tracker.criteria.memo`)."""
+    return memo.once("motor", (nerves,), lambda: nerves[nerves["modality"] == "motor"])
 
 
 def sensory(nerves: pd.DataFrame) -> pd.DataFrame:
-    return nerves[nerves["modality"] == "sensory"]
+    """The sensory nerve tests (computed once per evaluation)."""
+    return memo.once("sensory", (nerves,), lambda: nerves[nerves["modality"] == "sensory"])
 
 
 def limit_provenance(frame: pd.DataFrame, column: str) -> dict[str, pd.Series]:
@@ -41,13 +43,7 @@ def _threshold(table: ThresholdTable, item: str, frame: pd.DataFrame, limit: np.
 
 
 def _limit_name(reference: pd.Series, factor: pd.Series) -> np.ndarray:
-    return np.array(
-        [
-            f"{f * 100:g} % of {LIMIT_NAMES.get(r, r)}" if r in LIMIT_NAMES else "fixed"
-            for r, f in zip(reference, factor)
-        ],
-        dtype=object,
-    )
+    return rules.per_distinct(lambda r, f: f"{f * 100:g} % of {LIMIT_NAMES.get(r, r)}" if r in LIMIT_NAMES else "fixed", reference, factor)
 
 
 def _excluded(frame: pd.DataFrame, table: ThresholdTable, item: str) -> tuple[np.ndarray, str]:
@@ -110,7 +106,7 @@ def f_latency(nerves, table: ThresholdTable, item: str, low_item: str, switch_it
     low, known = amplitude_switch(frame, table, switch_item)
     threshold = np.where(low, low_threshold, normal_threshold)
     factor = np.where(low, low_rows["value"], normal_rows["value"])
-    names = np.array([f"{f * 100:g} % of ULN" + (" (distal CMAP below the switch)" if l else "") for f, l in zip(factor, low)], dtype=object)
+    names = rules.per_distinct(lambda f, l: f"{f * 100:g} % of ULN" + (" (distal CMAP below the switch)" if l else ""), factor, low)
     absent = frame["f_absent"].to_numpy(dtype=bool)
     return rules.item_findings(
         frame, criteria=criteria, item=item, parameter="F-wave latency", unit="ms",
@@ -157,13 +153,26 @@ def best_path(nerves: pd.DataFrame, paths: pd.DataFrame, measure: str, eligible:
     return best.set_index("test_key").reindex(motor(nerves)["test_key"])
 
 
+def eligible_paths(paths: pd.DataFrame, block_path: str, exclude_labels: tuple[str, ...] = ()) -> pd.Series:
+    """Paths the block items may use under the ``block_path`` setting, without sites labelled ``exclude_labels``."""
+    eligible = paths["path_outside_entrapment"] if block_path == "outside_entrapment" else paths["path_standard"]
+    if exclude_labels:
+        eligible = eligible & ~paths["label"].isin(exclude_labels)
+    return eligible
+
+
+def best_eligible_path(nerves: pd.DataFrame, paths: pd.DataFrame, measure: str, block_path: str, exclude_labels: tuple[str, ...] = ()) -> pd.DataFrame:
+    """:func:`best_path` over :func:`eligible_paths` (several sets ask for the same one: computed once)."""
+    return memo.once(
+        ("best_path", measure, block_path, tuple(exclude_labels)), (nerves, paths),
+        lambda: best_path(nerves, paths, measure, eligible_paths(paths, block_path, exclude_labels)),
+    )
+
+
 def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: str, settings: Settings, *, criteria: str, exclude_labels: tuple[str, ...] = (), measure: str = "amplitude_reduction_pct") -> pd.DataFrame:
     """Largest proximal-versus-distal reduction over the eligible paths, with the distal CMAP precondition."""
     frame = motor(nerves)
-    eligible = paths["path_outside_entrapment"] if settings.block_path == "outside_entrapment" else paths["path_standard"]
-    if exclude_labels:
-        eligible = eligible & ~paths["label"].isin(exclude_labels)
-    best = best_path(nerves, paths, measure, eligible)
+    best = best_eligible_path(nerves, paths, measure, settings.block_path, exclude_labels)
     rows, threshold = _threshold(table, item, frame, None)
     lln = frame["lln_amplitude"].to_numpy(dtype=float)
     pre_rows, pre_threshold = _threshold(table, precondition_item, frame, lln)
@@ -174,11 +183,18 @@ def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: st
     no_path = np.isnan(value)
     no_response = frame["no_response"].to_numpy(dtype=bool)
     fraction = pre_rows["value"].to_numpy(dtype=float)
-    failed = np.array([f"amplitude precondition failed: distal CMAP {a:g} mV is not {COMPARATOR_WORDS.get(c, c)} {f * 100:g} % of LLN"
-                       for a, c, f in zip(amplitude, pre_rows["comparator"], fraction)], dtype=object)
-    eligible_sites = paths.loc[eligible, "test_key"].unique()
-    has_site = frame["test_key"].isin(eligible_sites).to_numpy()
+    has_site = memo.once(
+        ("eligible_site", settings.block_path, tuple(exclude_labels)), (nerves, paths),
+        lambda: frame["test_key"].isin(paths.loc[eligible_paths(paths, settings.block_path, exclude_labels), "test_key"].unique()).to_numpy(),
+    )
     no_amplitude = np.isnan(amplitude) & ~no_response
+    # The failed-precondition text is only read where that block applies: written there alone.
+    failing = ~precondition & ~no_path & ~np.isnan(pre_threshold) & ~no_amplitude
+    failed = np.empty(len(frame), dtype=object)
+    failed[failing] = rules.per_distinct(
+        lambda a, c, f: f"amplitude precondition failed: distal CMAP {a:g} mV is not {COMPARATOR_WORDS.get(c, c)} {f * 100:g} % of LLN",
+        amplitude[failing], pre_rows["comparator"].to_numpy(dtype=object)[failing], fraction[failing],
+    )
     return rules.item_findings(
         frame, criteria=criteria, item=item, parameter="conduction block (amplitude reduction)" if "amplitude" in measure else "conduction block (area reduction)",
         unit="%", value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
@@ -189,7 +205,7 @@ def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: st
             (no_path & ~excluded & ~no_response & ~has_site, "no proximal stimulation outside entrapment sites"),
             (no_path & ~excluded & ~no_response & has_site, "amplitude (or area) missing at a site"),
             (no_response & ~excluded, "no recordable response at the distal site"),
-            (~precondition & ~no_path & ~np.isnan(pre_threshold) & ~no_amplitude, failed),
+            (failing, failed),
             (no_amplitude & ~no_path & ~excluded, "distal CMAP amplitude missing (needed for the precondition)"),
             (np.isnan(pre_threshold) & ~no_path, "no LLN for the distal CMAP precondition"),
         ],
@@ -199,8 +215,7 @@ def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: st
 def dispersion(nerves, paths, table: ThresholdTable, item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
     """Largest proximal-versus-distal negative-peak duration increase over the eligible paths."""
     frame = motor(nerves)
-    eligible = paths["path_outside_entrapment"] if settings.block_path == "outside_entrapment" else paths["path_standard"]
-    best = best_path(nerves, paths, "duration_increase_pct", eligible)
+    best = best_eligible_path(nerves, paths, "duration_increase_pct", settings.block_path)
     rows, threshold = _threshold(table, item, frame, None)
     value = best["duration_increase_pct"].to_numpy(dtype=float)
     return rules.item_findings(

@@ -12,26 +12,62 @@ from tracker.criteria.thresholds import COMPARATORS
 from tracker.domain.conduction import quantise_array
 
 
+_OPERATORS = {"ge": np.greater_equal, "gt": np.greater, "le": np.less_equal, "lt": np.less}
+
+
+def _uniform(comparator: str | np.ndarray, shape: tuple[int, ...]):
+    """The comparator shared by every row (a scalar), or the broadcast array when rows differ.
+
+    Most items compare every nerve the same way; one scalar comparison is then far cheaper than testing
+    each row's comparator."""
+    if isinstance(comparator, str):
+        return comparator
+    comparators = np.asarray(comparator, dtype=object)
+    if comparators.ndim == 0:
+        return comparators.item()
+    comparators = np.broadcast_to(comparators, shape)
+    if comparators.size:
+        head = comparators.flat[0]
+        if isinstance(head, str) and bool((comparators == head).all()):
+            return head
+    return comparators
+
+
+def _objects(values: list) -> np.ndarray:
+    """A 1-D object array of exactly these values (``np.array`` would unpack tuples or nested lists)."""
+    array = np.empty(len(values), dtype=object)
+    for position, value in enumerate(values):
+        array[position] = value
+    return array
+
+
 def compare(values: np.ndarray, thresholds: np.ndarray, comparator: str | np.ndarray) -> np.ndarray:
     """Element-wise comparison under the quantised rule; False where either side is NaN."""
     v = quantise_array(values)
     t = quantise_array(thresholds)
-    comparators = np.broadcast_to(np.asarray(comparator, dtype=object), v.shape)
+    comparators = _uniform(comparator, v.shape)
     with np.errstate(invalid="ignore"):
-        result = np.select(
-            [comparators == "ge", comparators == "gt", comparators == "le", comparators == "lt"],
-            [v >= t, v > t, v <= t, v < t],
-            default=False,
-        )
+        if isinstance(comparators, np.ndarray):
+            result = np.select(
+                [comparators == "ge", comparators == "gt", comparators == "le", comparators == "lt"],
+                [v >= t, v > t, v <= t, v < t],
+                default=False,
+            )
+        elif comparators in _OPERATORS:
+            result = _OPERATORS[comparators](v, t)
+        else:
+            result = np.zeros(np.broadcast_shapes(v.shape, t.shape), dtype=bool)
     return result & ~np.isnan(v) & ~np.isnan(t)
 
 
 def margin(values: np.ndarray, thresholds: np.ndarray, comparator: str | np.ndarray) -> np.ndarray:
     """How far a value is from meeting its threshold, in the parameter's unit (≤ 0 once met)."""
     v, t = np.asarray(values, dtype=float), np.asarray(thresholds, dtype=float)
-    comparators = np.broadcast_to(np.asarray(comparator, dtype=object), v.shape)
-    upward = np.isin(comparators, ["ge", "gt"])
-    return quantise_array(np.where(upward, t - v, v - t))
+    comparators = _uniform(comparator, v.shape)
+    if isinstance(comparators, np.ndarray):
+        upward = np.isin(comparators, ["ge", "gt"])
+        return quantise_array(np.where(upward, t - v, v - t))
+    return quantise_array(t - v if comparators in ("ge", "gt") else v - t)
 
 
 def item_findings(
@@ -62,61 +98,107 @@ def item_findings(
     else ``not_met``.
     """
     n = len(frame)
-    value = np.asarray(value, dtype=float)
+    # Copies: these arrays become columns of the findings frame as they are (see the end).
+    value = np.array(value, dtype=float)
     threshold = np.asarray(threshold, dtype=float)
-    limit = np.asarray(limit, dtype=float)
+    limit = np.array(limit, dtype=float)
     holds = compare(value, threshold, comparator)
     if requirement is not None:
         holds &= np.asarray(requirement, dtype=bool)
-    status = np.where(holds, MET, NOT_MET).astype(object)
-    reason = np.full(n, "", dtype=object)
+    # Status and reason as small integer codes into the few distinct words, turned into text once at the
+    # end (assigning strings into object arrays mask by mask costs more than the comparisons).
+    words = [MET, NOT_MET, NOT_EVALUABLE]
+    status_code = np.where(holds, 0, 1).astype(np.int8)
+    reasons = ["", "no normal limit or threshold for this nerve", "value missing"]
+    reason_code = np.zeros(n, dtype=np.int32)
     no_limit = np.isnan(threshold) & ~np.isnan(value)
-    status[no_limit] = NOT_EVALUABLE
-    reason[no_limit] = "no normal limit or threshold for this nerve"
+    status_code[no_limit] = 2
+    reason_code[no_limit] = 1
     missing = np.isnan(value)
-    status[missing] = NOT_EVALUABLE
-    reason[missing] = "value missing"
+    status_code[missing] = 2
+    reason_code[missing] = 2
+    # Reasons given row by row (an array): code -1, the text kept aside.
+    own_reason: np.ndarray | None = None
     for mask, why in reversed(blocked or []):
         mask = np.asarray(mask, dtype=bool)
-        status[mask] = NOT_EVALUABLE
-        reason[mask] = why[mask] if isinstance(why, np.ndarray) else why
+        status_code[mask] = 2
+        if isinstance(why, np.ndarray):
+            if own_reason is None:
+                own_reason = np.empty(n, dtype=object)
+            own_reason[mask] = why[mask]
+            reason_code[mask] = -1
+        else:
+            reasons.append(why)
+            reason_code[mask] = len(reasons) - 1
+    status = _objects(words)[status_code]
+    reason = _objects(reasons + [None])[reason_code]
+    if own_reason is not None:
+        own = reason_code == -1
+        reason[own] = own_reason[own]
     def text(values) -> pd.Series:
         # Plain Python objects: letting pandas infer a string column for each of millions of findings
         # costs more than the rules themselves.
+        # Always a new array (a caller's array, or a read-only view of a frame's column, must not end up
+        # inside the findings, which the sets edit in place).
         if isinstance(values, pd.Series):
-            values = values.to_numpy(dtype=object)
+            values = values.to_numpy(dtype=object, copy=True)
         if values is None or isinstance(values, str):
             array = np.empty(n, dtype=object)
             array[:] = values
             return pd.Series(array, dtype=object, copy=False)
-        return pd.Series(np.asarray(values, dtype=object), dtype=object, copy=False)
+        return pd.Series(np.array(values, dtype=object), dtype=object, copy=False)
 
-    result = pd.DataFrame(
-        {
-            "visit_key": frame["visit_key"].to_numpy(),
-            "criteria": text(criteria),
-            "nerve": text(frame["nerve"]),
-            "side": text(frame["side"]),
-            "modality": text(frame["modality"] if "modality" in frame else "motor"),
-            "item": text(item),
-            "parameter": text(parameter),
-            "segment": text(segment),
-            "value": value,
-            "unit": text(unit),
-            "limit": limit,
-            "limit_name": text(limit_name),
-            "threshold": quantise_array(threshold),
-            "comparator": text(comparator),
-            "status": text(status),
-            "reason": text(reason),
-            "source": text(source),
-            "source_status": text(source_status),
-            "limit_source": text(limit_source),
-            "limit_status": text(limit_status),
-            "margin": margin(value, threshold, comparator),
-        }
-    )
-    return result[FINDING_COLUMNS]
+    columns = {
+        "visit_key": frame["visit_key"].to_numpy(copy=True),
+        "criteria": text(criteria),
+        "nerve": text(frame["nerve"]),
+        "side": text(frame["side"]),
+        "modality": text(frame["modality"] if "modality" in frame else "motor"),
+        "item": text(item),
+        "parameter": text(parameter),
+        "segment": text(segment),
+        "value": value,
+        "unit": text(unit),
+        "limit": limit,
+        "limit_name": text(limit_name),
+        "threshold": quantise_array(threshold),
+        "comparator": text(comparator),
+        "status": text(status),
+        "reason": text(reason),
+        "source": text(source),
+        "source_status": text(source_status),
+        "limit_source": text(limit_source),
+        "limit_status": text(limit_status),
+        "margin": margin(value, threshold, comparator),
+    }
+    # Every array above is new and owned here, so the frame takes them without a copy: copying and
+    # consolidating the text columns of every item cost more than the comparisons themselves.
+    return pd.DataFrame({column: columns[column] for column in FINDING_COLUMNS}, copy=False)
+
+
+def per_distinct(function, *columns) -> np.ndarray:
+    """``function(*values)`` for every row of ``columns`` (equal-length arrays), called once per distinct
+    combination of values and spread over the rows (an object array).
+
+    Texts built row by row cost far more than the comparisons, and a cohort has few distinct label, nerve
+    or reason combinations. Float columns are told apart by their bits (``-0.0`` stays apart from ``0.0``);
+    in text columns ``None`` and NaN fall together, so ``function`` must treat every missing value alike.
+    """
+    n = len(columns[0]) if columns else 0
+    arrays = [c.to_numpy() if isinstance(c, pd.Series) else np.asarray(c) for c in columns]
+    combined = np.zeros(n, dtype=np.int64)
+    for values in arrays:
+        if values.dtype.kind == "f":
+            values = values.astype(np.float64).view(np.int64)
+        codes, uniques = pd.factorize(values, use_na_sentinel=False)
+        # Keep the combined codes small: renumber (by first appearance) after each column.
+        combined, _ = pd.factorize(combined * len(uniques) + codes)
+    # Codes count up in order of first appearance, so a code first appears where the running maximum grows.
+    first = np.flatnonzero(np.r_[True, combined[1:] > np.maximum.accumulate(combined)[:-1]]) if n else np.zeros(0, dtype=np.int64)
+    results = np.empty(len(first), dtype=object)
+    for position, row in enumerate(first):
+        results[position] = function(*(a[row] for a in arrays))  # one by one: a result may be a tuple
+    return results[combined]
 
 
 def common_blocks(nerves: pd.DataFrame, settings: Settings) -> list[tuple[np.ndarray, str]]:
@@ -137,7 +219,8 @@ def nerve_identity(findings: pd.DataFrame, settings: Settings) -> pd.Series:
 def met_sets(findings: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     """Per visit and nerve (identity): which items are met — a boolean table indexed by
     (``visit_key``, ``identity``) with one column per item met anywhere."""
-    met = findings[findings["status"] == MET]
+    # Only the four columns the table needs: filtering every column of millions of findings is wasted.
+    met = findings.loc[findings["status"].to_numpy(dtype=object) == MET, ["visit_key", "nerve", "side", "item"]]
     if met.empty:
         return pd.DataFrame(index=pd.MultiIndex.from_arrays([[], []], names=["visit_key", "identity"]))
     met = met.assign(identity=nerve_identity(met, settings).to_numpy())

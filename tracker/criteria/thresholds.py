@@ -65,22 +65,39 @@ class ThresholdTable:
         rows = [r for r in self.rows if r.item == item]
         if not rows:
             raise KeyError(f"{self.criteria_id}: no threshold rows for {item!r}")
-        result = pd.DataFrame(index=nerves.index, columns=["value", "source", "status", "description", "comparator", "reference"], dtype=object)
-        result["value"] = np.nan
-        lff = lff_hz if lff_hz is not None else pd.Series(np.nan, index=nerves.index)
-        # Generic rows first, then specific rows overwrite them.
+        # A cohort has a handful of distinct (nerve, filter) pairs among its many rows: decide each pair
+        # once, then spread the answers over the rows.
+        names = nerves.to_numpy(dtype=object)
+        lff = np.full(len(names), np.nan) if lff_hz is None else np.asarray(lff_hz, dtype=float)
+        name_codes, name_values = pd.factorize(names, use_na_sentinel=False)
+        lff_codes, lff_values = pd.factorize(lff, use_na_sentinel=False)
+        width = max(len(lff_values), 1)
+        pairs, inverse = np.unique(name_codes.astype(np.int64) * width + lff_codes, return_inverse=True)
+        decided = [self._decide(rows, name_values[pair // width], lff_values[pair % width]) for pair in pairs]
+        inverse = inverse.reshape(-1)
+        columns = {"value": np.array([d[0] for d in decided], dtype=float)[inverse]}
+        for position, column in enumerate(("source", "status", "description", "comparator", "reference"), start=1):
+            column_values = np.empty(len(decided), dtype=object)
+            column_values[:] = [d[position] for d in decided]
+            columns[column] = pd.Series(column_values[inverse], index=nerves.index, dtype=object, copy=False)
+        return pd.DataFrame(columns, index=nerves.index, copy=False)
+
+    @staticmethod
+    def _decide(rows: list[Threshold], nerve, lff: float) -> tuple:
+        """(value, source, status, description, comparator, reference) for one nerve and filter setting:
+        generic rows first, then specific rows overwrite them; NaN where no row applies."""
+        found = (np.nan, np.nan, np.nan, np.nan, np.nan, np.nan)
         for row in sorted(rows, key=lambda r: (r.nerve != "*", r.lff_hz is not None)):
-            mask = pd.Series(True, index=nerves.index) if row.nerve == "*" else nerves == row.nerve
+            applies = row.nerve == "*" or (isinstance(nerve, str) and nerve == row.nerve)
             if row.lff_hz is not None:
-                mask &= np.isclose(lff.astype(float), row.lff_hz)
-            result.loc[mask, ["value", "source", "status", "description", "comparator", "reference"]] = [
-                row.value, row.source, row.status, row.description, row.comparator, row.reference
-            ]
-            if row.excluded_nerves:
+                applies = applies and bool(np.isclose(float(lff), row.lff_hz))
+            if not applies:
+                continue
+            found = (row.value, row.source, row.status, row.description, row.comparator, row.reference)
+            if row.excluded_nerves and nerve in row.excluded_nerves:
                 # An excluded nerve has no threshold, but the trace still cites the rule that excludes it.
-                result.loc[mask & nerves.isin(row.excluded_nerves), "value"] = np.nan
-        result["value"] = result["value"].astype(float)
-        return result
+                found = (np.nan, *found[1:])
+        return found
 
 
 @cache

@@ -52,7 +52,7 @@ def cv_column(settings: Settings) -> str:
 
 
 def eligible_paths(paths: pd.DataFrame, settings: Settings) -> pd.Series:
-    return paths["path_outside_entrapment"] if settings.block_path == "outside_entrapment" else paths["path_standard"]
+    return p.eligible_paths(paths, settings.block_path)
 
 
 def limit_text(reference: str, factor: float) -> str:
@@ -159,7 +159,7 @@ def _excluded(frame: pd.DataFrame, table: ThresholdTable, item: str) -> tuple[np
 
 def best_reduction(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     """Per motor nerve test, the eligible path with the largest amplitude fall (the lowest proximal CMAP)."""
-    return p.best_path(nerves, paths, "amplitude_reduction_pct", eligible_paths(paths, settings))
+    return p.best_eligible_path(nerves, paths, "amplitude_reduction_pct", settings.block_path)
 
 
 def block(

@@ -100,22 +100,29 @@ def segment_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settin
     duration_ok = rules.compare(duration, np.full(n, short_max.value), short_max.comparator)
     dispersed = rules.compare(duration, np.full(n, dispersed_min.value), dispersed_min.comparator)
     no_duration = np.isnan(duration)
-    area_reason = np.array(
-        [
-            "negative-peak area not recorded: block is defined by area"
-            + ("" if np.isnan(a) else f" (amplitude drop {pct(a)} % not used)")
-            for a in amplitude_drop
-        ],
-        dtype=object,
+    # Texts are written only for the rows that will show them, from the few distinct numbers of each
+    # column (a cohort has tens of thousands of segments).
+    no_area = np.isnan(area)
+    area_reason = np.empty(n, dtype=object)
+    area_reason[no_area] = rules.per_distinct(
+        lambda a: "negative-peak area not recorded: block is defined by area" + ("" if np.isnan(a) else f" (amplitude drop {pct(a)} % not used)"),
+        amplitude_drop[no_area],
     )
-    details = np.array(
-        [
-            f"area drop {pct(a)} %; CMAP at the distal end {c:g} mV (needs > {pct(t)} mV = 20 % of LLN and > 1 mV); "
-            + ("duration not measured" if np.isnan(d) else f"duration change {pct(d, sign=True)} %")
-            for a, c, t, d in zip(area, cmap, lln_threshold, duration)
-        ],
-        dtype=object,
-    )
+    details = np.empty(n, dtype=object)
+    described = np.zeros(n, dtype=bool)
+
+    def describe(rows: np.ndarray) -> np.ndarray:
+        """The measured values of the segments in ``rows`` (a mask), as the reason of a judged finding."""
+        todo = rows & ~described
+        if todo.any():
+            details[todo] = (
+                "area drop " + rules.per_distinct(pct, area[todo]) + " %; CMAP at the distal end "
+                + rules.per_distinct(lambda c: f"{c:g}", cmap[todo]) + " mV (needs > " + rules.per_distinct(pct, lln_threshold[todo])
+                + " mV = 20 % of LLN and > 1 mV); "
+                + rules.per_distinct(lambda d: "duration not measured" if np.isnan(d) else f"duration change {pct(d, sign=True)} %", duration[todo])
+            )
+            described[todo] = True
+        return details[rows]
 
     def item(name: str, requirement: np.ndarray, binds_precondition: bool, scope: list[tuple[np.ndarray, str]], duration_rule: str):
         rows = table.per_nerve(name, seg["nerve"])
@@ -139,15 +146,20 @@ def segment_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settin
             limit_source=seg.get("lln_amplitude_source"), limit_status=seg.get("lln_amplitude_status"),
             blocked=blocked,
         )
-        for column in ("status", "reason", "item", "segment", "nerve", "side"):
-            found[column] = found[column].astype(object)  # the engine may hand text over as categories
-        evaluable = found["status"].isin([MET, NOT_MET]).to_numpy()
-        found.loc[evaluable, "reason"] = details[evaluable]
+        status = found["status"].to_numpy(dtype=object)
+        reason = found["reason"].to_numpy(dtype=object, copy=True)
+        evaluable = (status == MET) | (status == NOT_MET)
+        reason[evaluable] = describe(evaluable)
         short_of_duration = evaluable & reaches & ~requirement
-        found.loc[short_of_duration, "reason"] = found.loc[short_of_duration, "reason"] + f" — area criterion reached, duration is not {duration_rule}"
+        reason[short_of_duration] = reason[short_of_duration] + f" — area criterion reached, duration is not {duration_rule}"
+        found["reason"] = pd.Series(reason, index=found.index, dtype=object)
         found["test_key"] = seg["test_key"].to_numpy()
         found["site_order"] = seg["site_order"].to_numpy()
-        found["wanting"] = (found["status"] == NOT_EVALUABLE).to_numpy() & found["reason"].astype(str).str.startswith(WANTING).to_numpy()
+        not_evaluable = status == NOT_EVALUABLE
+        wanting = np.zeros(len(found), dtype=bool)
+        # Few distinct reasons among the not-evaluable rows: each is tested once.
+        wanting[not_evaluable] = rules.per_distinct(lambda why: str(why).startswith(WANTING), reason[not_evaluable]).astype(bool)
+        found["wanting"] = wanting
         return found
 
     def unnamed(name: str) -> np.ndarray:
@@ -166,20 +178,38 @@ def per_nerve(segments: pd.DataFrame, nerves: pd.DataFrame, settings: Settings) 
     other segments that could not be assessed are named in the reason."""
     table = load(ID)
     frame = p.motor(nerves)
-    rank = segments["status"].map({MET: 0, NOT_MET: 1, NOT_EVALUABLE: 2})
-    ordered = segments.assign(rank=rank).sort_values(
-        ["test_key", "item", "rank", "value", "site_order"], ascending=[True, True, True, False, True], na_position="last"
-    )
-    best = ordered.drop_duplicates(["test_key", "item"]).copy()
-    rest = ordered[~ordered.index.isin(best.index) & (ordered["status"] == NOT_EVALUABLE)]
-    if len(rest):
-        notes: dict[tuple, list[str]] = {}
-        for key, name, seg, why in zip(rest["test_key"], rest["item"], rest["segment"], rest["reason"]):
-            notes.setdefault((key, name), []).append(f"{seg} ({why})")
-        best["reason"] = [
-            why if (key, name) not in notes else f"{why}; other segments not assessed: " + "; ".join(notes[(key, name)])
-            for key, name, why in zip(best["test_key"], best["item"], best["reason"].astype(str))
-        ]
+    status = segments["status"].to_numpy(dtype=object)
+    rank = np.select([status == MET, status == NOT_MET, status == NOT_EVALUABLE], [0, 1, 2], default=3)
+    value = segments["value"].to_numpy(dtype=float)
+    missing = np.isnan(value)
+    test_key = segments["test_key"].to_numpy()
+    item_code = pd.factorize(segments["item"].to_numpy(dtype=object), sort=True)[0]
+    # Per nerve test and item: met first, then not met, then not evaluable; the largest value first (missing
+    # values last); then the most distal site. A stable sort keeps equal rows in their order.
+    order = np.lexsort((segments["site_order"].to_numpy(), np.where(missing, 0.0, -value), missing, rank, item_code, test_key))
+    sorted_key, sorted_item = test_key[order], item_code[order]
+    opens = np.r_[True, (sorted_key[1:] != sorted_key[:-1]) | (sorted_item[1:] != sorted_item[:-1])] if len(order) else np.zeros(0, dtype=bool)
+    group = np.cumsum(opens) - 1
+    best = segments.iloc[order[opens]].assign(rank=rank[order[opens]])
+    # Segments that could not be assessed, other than the deciding one, are listed in the reason.
+    others = ~opens & (status[order] == NOT_EVALUABLE)
+    if others.any():
+        rows = order[others]
+        pieces = rules.per_distinct(lambda seg, why: f"{seg} ({why})", segments["segment"].to_numpy(dtype=object)[rows],
+                                    segments["reason"].to_numpy(dtype=object)[rows])
+        owner = group[others]
+        notes = np.empty(int(opens.sum()), dtype=object)
+        # Join the pieces of each nerve test and item in order: one pass per position within the group.
+        position = np.arange(len(owner)) - np.maximum.accumulate(np.where(np.r_[True, owner[1:] != owner[:-1]], np.arange(len(owner)), 0))
+        first = position == 0
+        notes[owner[first]] = pieces[first]
+        for step in range(1, int(position.max()) + 1):
+            at = position == step
+            notes[owner[at]] = notes[owner[at]] + "; " + pieces[at]
+        noted = pd.notna(notes)
+        reason = best["reason"].to_numpy(dtype=object, copy=True)  # always text (item_findings)
+        reason[noted] = reason[noted] + "; other segments not assessed: " + notes[noted]
+        best["reason"] = pd.Series(reason, index=best.index, dtype=object)
     parts = [best]
     for name in LEVELS:
         without = frame[~frame["test_key"].isin(best.loc[best["item"] == name, "test_key"])]
