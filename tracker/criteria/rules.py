@@ -210,10 +210,17 @@ def common_blocks(nerves: pd.DataFrame, settings: Settings) -> list[tuple[np.nda
 
 
 def nerve_identity(findings: pd.DataFrame, settings: Settings) -> pd.Series:
-    """What counts as "a nerve" for the combination rules: nerve and side, or the nerve name alone."""
+    """What counts as "a nerve" for the combination rules: nerve and side, or the nerve name alone.
+
+    Plain objects (text, NaN where the nerve or its side is missing), built once per distinct nerve and
+    side: a string-typed column costs far more to build and to group by than the rules themselves."""
+    nerve = findings["nerve"].to_numpy(dtype=object)
     if settings.sides_are_separate_nerves:
-        return findings["nerve"].astype(str) + " " + findings["side"].astype(str)
-    return findings["nerve"].astype(str)
+        side = findings["side"].to_numpy(dtype=object)
+        identity = per_distinct(lambda n, s: np.nan if pd.isna(n) or pd.isna(s) else f"{n} {s}", nerve, side)
+    else:
+        identity = per_distinct(lambda n: np.nan if pd.isna(n) else str(n), nerve)
+    return pd.Series(identity, index=findings.index, dtype=object, copy=False)
 
 
 def met_sets(findings: pd.DataFrame, settings: Settings) -> pd.DataFrame:

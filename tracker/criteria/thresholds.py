@@ -65,16 +65,24 @@ class ThresholdTable:
         rows = [r for r in self.rows if r.item == item]
         if not rows:
             raise KeyError(f"{self.criteria_id}: no threshold rows for {item!r}")
-        # A cohort has a handful of distinct (nerve, filter) pairs among its many rows: decide each pair
-        # once, then spread the answers over the rows.
+        # Decide each (nerve, filter) class once, then spread the answers over the rows. A row applies to
+        # every nerve ("*") or to the nerve it names, and excludes only nerves it names: every nerve the rows
+        # do not name is decided alike (class 0), so only the named ones need telling apart.
         names = nerves.to_numpy(dtype=object)
-        lff = np.full(len(names), np.nan) if lff_hz is None else np.asarray(lff_hz, dtype=float)
-        name_codes, name_values = pd.factorize(names, use_na_sentinel=False)
-        lff_codes, lff_values = pd.factorize(lff, use_na_sentinel=False)
-        width = max(len(lff_values), 1)
-        pairs, inverse = np.unique(name_codes.astype(np.int64) * width + lff_codes, return_inverse=True)
-        decided = [self._decide(rows, name_values[pair // width], lff_values[pair % width]) for pair in pairs]
-        inverse = inverse.reshape(-1)
+        named = sorted({r.nerve for r in rows if r.nerve != "*"} | {n for r in rows for n in r.excluded_nerves})
+        nerve_class = np.zeros(len(names), dtype=np.intp)
+        for position, name in enumerate(named, start=1):
+            nerve_class[_equal(names, name)] = position
+        if lff_hz is None or all(r.lff_hz is None for r in rows):
+            # The filter setting only matters to rows that name one.
+            lff_codes, lff_values = np.zeros(len(names), dtype=np.intp), np.array([np.nan])
+        else:
+            lff_codes, lff_values = pd.factorize(np.asarray(lff_hz, dtype=float), use_na_sentinel=False)
+            if not len(lff_values):
+                lff_values = np.array([np.nan])
+        width = len(lff_values)
+        decided = [self._decide(rows, nerve, lff) for nerve in (None, *named) for lff in lff_values]
+        inverse = nerve_class * width + lff_codes
         columns = {"value": np.array([d[0] for d in decided], dtype=float)[inverse]}
         for position, column in enumerate(("source", "status", "description", "comparator", "reference"), start=1):
             column_values = np.empty(len(decided), dtype=object)
@@ -98,6 +106,15 @@ class ThresholdTable:
                 # An excluded nerve has no threshold, but the trace still cites the rule that excludes it.
                 found = (np.nan, *found[1:])
         return found
+
+
+def _equal(values: np.ndarray, name: str) -> np.ndarray:
+    """``values == name`` element-wise over an object array; a missing value (``None``, NaN, ``pd.NA``) is
+    never equal."""
+    try:
+        return np.asarray(values == name, dtype=bool)
+    except TypeError:  # pd.NA has no truth value: compare through pandas, where missing is never equal
+        return pd.Series(values, dtype=object).eq(name).fillna(False).to_numpy(dtype=bool)
 
 
 @cache

@@ -90,12 +90,9 @@ def _switched(frame: pd.DataFrame, table: ThresholdTable, item: str, low_item: s
     low, known = p.amplitude_switch(frame, table, "cmap_switch")
     factor = np.where(low, low_rows["value"].to_numpy(dtype=float), normal["value"].to_numpy(dtype=float))
     threshold = factor * limit
-    names = np.array(
-        [
-            f"{f * 100:g} % of {str(r).upper()}" + (" (distal CMAP < 80 % of LLN)" if lo else "")
-            for f, r, lo in zip(factor, normal["reference"], low)
-        ],
-        dtype=object,
+    names = rules.per_distinct(
+        lambda f, r, lo: f"{f * 100:g} % of {str(r).upper()}" + (" (distal CMAP < 80 % of LLN)" if lo else ""),
+        factor, normal["reference"].to_numpy(dtype=object), np.asarray(low, dtype=bool),
     )
     return threshold, normal, names, known
 
@@ -191,25 +188,32 @@ def block_or_dispersion(nerves, paths, table, settings):
         blocked=rules.common_blocks(frame, settings)
         + [(~block_nerve, NOT_A_BLOCK_NERVE), (no_response, NO_RESPONSE), (no_site & ~no_response, NO_STANDARD_SITE)],
     )
-    met = (findings["status"] == MET).to_numpy()
-    details = []
-    for amp, ar, dur, disp, hit in zip(amplitude, area, duration, dispersed, met):
-        parts = [
-            "amplitude not measured" if np.isnan(amp) else f"amplitude drop {pct(amp)} %",
-            "area not recorded (judged on amplitude alone)" if np.isnan(ar) else f"area drop {pct(ar)} %",
-        ]
+    status = findings["status"].to_numpy(dtype=object)
+    # The details replace the reason of evaluable findings only; each part is written once per distinct value.
+    evaluable = (status == MET) | (status == NOT_MET)
+    hit = status[evaluable] == MET
+
+    def drop(amp):
+        return "amplitude not measured" if np.isnan(amp) else f"amplitude drop {pct(amp)} %"
+
+    def area_drop(ar):
+        return "area not recorded (judged on amplitude alone)" if np.isnan(ar) else f"area drop {pct(ar)} %"
+
+    def label(dur, hit, disp):
         if np.isnan(dur):
-            label = "duration not measured" + (": block or dispersion not distinguished (both count)" if hit else "")
-        elif not hit:
-            label = f"duration change {pct(dur, sign=True)} %"
-        elif disp:
-            label = f"duration change {pct(dur, sign=True)} % (> {dispersion.value:g} %): abnormal temporal dispersion and possible block"
-        else:
-            label = f"duration change {pct(dur, sign=True)} % (≤ {dispersion.value:g} %): partial conduction block"
-        details.append(", ".join(parts) + "; " + label)
+            return "duration not measured" + (": block or dispersion not distinguished (both count)" if hit else "")
+        if not hit:
+            return f"duration change {pct(dur, sign=True)} %"
+        if disp:
+            return f"duration change {pct(dur, sign=True)} % (> {dispersion.value:g} %): abnormal temporal dispersion and possible block"
+        return f"duration change {pct(dur, sign=True)} % (≤ {dispersion.value:g} %): partial conduction block"
+
+    details = (
+        rules.per_distinct(drop, amplitude[evaluable]) + ", " + rules.per_distinct(area_drop, area[evaluable])
+        + "; " + rules.per_distinct(label, duration[evaluable], hit, dispersed[evaluable])
+    )
     findings = _editable(findings, "reason")
-    evaluable = findings["status"].isin([MET, NOT_MET]).to_numpy()
-    findings.loc[evaluable, "reason"] = np.asarray(details, dtype=object)[evaluable]
+    findings.loc[evaluable, "reason"] = details
     return findings
 
 
@@ -230,14 +234,14 @@ def findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> p
 def _item_counts(found: pd.DataFrame, items: tuple[str, ...], settings: Settings, keys: pd.Index) -> tuple[pd.Series, pd.Series]:
     """Per visit: the number of nerves (identities, see ``rules.nerve_identity``) meeting any of ``items``, and
     the number not meeting them where one is not evaluable for want of data (more data could still count)."""
-    part = found[found["item"].astype(str).isin(items)]
-    status = part["status"].astype(str).to_numpy()
+    part = found[np.isin(found["item"].to_numpy(dtype=object), list(items))]
+    status = part["status"].to_numpy(dtype=object)
     per_nerve = pd.DataFrame(
         {
             "visit_key": part["visit_key"].to_numpy(),
-            "identity": rules.nerve_identity(part, settings).astype(str).to_numpy(),
+            "identity": rules.nerve_identity(part, settings).to_numpy(),
             "met": status == MET,
-            "wanting": (status == NOT_EVALUABLE) & ~part["reason"].astype(str).isin(SETTLED).to_numpy(),
+            "wanting": (status == NOT_EVALUABLE) & ~part["reason"].isin(SETTLED).to_numpy(dtype=bool),
         }
     ).groupby(["visit_key", "identity"])[["met", "wanting"]].any()
     per_visit = pd.DataFrame({"met": per_nerve["met"], "open": per_nerve["wanting"] & ~per_nerve["met"]}).groupby(level="visit_key").sum()
@@ -258,16 +262,24 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     outcome = np.where(items_met >= ITEMS_NEEDED, "met", "not_met")
     open_count = np.sum([u.astype(int) for u in undecided.values()], axis=0).reshape(len(keys))
     studied = keys.isin(found["visit_key"].unique())
-    texts = []
-    for i in range(len(keys)):
-        if not studied[i]:
-            texts.append("no motor nerve studied: the items cannot be judged")
-            continue
-        names = [f"{n} ({ITEMS[n][2]})" for n in ITEMS if met_items[n][i]]
-        text = f"{items_met[i]} of 4 items met" + (f": {', '.join(names)}" if names else "") + f"; ≥ {ITEMS_NEEDED} needed"
-        if outcome[i] == "not_met" and open_count[i] and items_met[i] + open_count[i] >= ITEMS_NEEDED:
-            open_items = [f"{n} ({ITEMS[n][2]})" for n in ITEMS if undecided[n][i]]
+
+    def rule_text(studied, met_count, open_count, *flags):
+        """The rule text of one visit, from its deciding flags (met items, then undecided items, in order)."""
+        if not studied:
+            return "no motor nerve studied: the items cannot be judged"
+        met_flags, open_flags = flags[: len(ITEMS)], flags[len(ITEMS) :]
+        names = [f"{n} ({ITEMS[n][2]})" for n, hit in zip(ITEMS, met_flags) if hit]
+        text = f"{met_count} of 4 items met" + (f": {', '.join(names)}" if names else "") + f"; ≥ {ITEMS_NEEDED} needed"
+        if met_count < ITEMS_NEEDED and open_count and met_count + open_count >= ITEMS_NEEDED:
+            open_items = [f"{n} ({ITEMS[n][2]})" for n, hit in zip(ITEMS, open_flags) if hit]
             text += f"; outcome not settled: item {', '.join(open_items)} not evaluable in enough nerves for want of data"
-        texts.append(text)
-    outcomes = pd.DataFrame({"visit_key": keys, "outcome": outcome, "rule": texts, "items_met": items_met})
+        return text
+
+    # Few visits differ in these flags: each combination's text is written once and spread over the visits.
+    texts = rules.per_distinct(
+        rule_text, np.asarray(studied, dtype=bool), items_met, open_count,
+        *(np.asarray(met_items[n], dtype=bool).reshape(len(keys)) for n in ITEMS),
+        *(np.asarray(undecided[n], dtype=bool).reshape(len(keys)) for n in ITEMS),
+    )
+    outcomes = pd.DataFrame({"visit_key": keys, "outcome": outcome, "rule": list(texts), "items_met": items_met})
     return SetResult(ID, load(ID).version, found, outcomes, extra_keys=("items_met",))

@@ -175,7 +175,10 @@ def sensory_cidp_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFr
     low_rows, low_threshold = _scaled(table, "sensory_cidp_cv_low_snap", frame, lln_cv)
     low, known = p.amplitude_switch(frame, table, "sensory_cidp_switch")
     factor = np.where(low, low_rows["value"], normal_rows["value"])
-    names = np.array([f"{f * 100:g} % of LLN" + (" (SNAP below 80 % of LLN)" if l else "") for f, l in zip(factor, low)], dtype=object)
+    names = rules.per_distinct(
+        lambda f, l: f"{f * 100:g} % of LLN" + (" (SNAP below 80 % of LLN)" if l else ""),
+        np.asarray(factor, dtype=float), np.asarray(low, dtype=bool),
+    )
     cv = rules.item_findings(
         frame, criteria=ID, item="sensory_cidp_cv", parameter="sensory conduction velocity", unit="m/s",
         value=frame["sensory_cv"].to_numpy(dtype=float), threshold=np.where(low, low_threshold, normal_threshold), comparator="lt",
@@ -206,14 +209,15 @@ def sensory_cidp_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFr
 def _nerve_table(findings: pd.DataFrame, settings: Settings, keys: pd.Index, status: str | None = MET) -> pd.DataFrame:
     """Boolean table indexed by (visit_key, nerve identity), one column per item: the item has ``status``
     there (any judged status — met or not met — when ``status`` is None)."""
-    chosen = findings[findings["status"] == status] if status else findings[findings["status"] != NOT_EVALUABLE]
+    statuses = findings["status"].to_numpy(dtype=object)
+    chosen = findings[statuses == status] if status else findings[statuses != NOT_EVALUABLE]
     if chosen.empty:
         return pd.DataFrame(index=pd.MultiIndex.from_arrays([[], []], names=["visit_key", "identity"]))
     rows = pd.DataFrame(
         {
             "visit_key": chosen["visit_key"].to_numpy(),
-            "identity": rules.nerve_identity(chosen, settings).astype(str).to_numpy(),
-            "item": chosen["item"].astype(str).to_numpy(),
+            "identity": rules.nerve_identity(chosen, settings).to_numpy(),
+            "item": chosen["item"].to_numpy(dtype=object),
         }
     )
     table = rows.groupby(["visit_key", "identity", "item"]).size().unstack("item", fill_value=0) > 0
@@ -301,7 +305,7 @@ def sensory_counts(findings: pd.DataFrame, settings: Settings, keys: pd.Index) -
     """(abnormal nerves, normal nerves) per visit. A nerve is abnormal when any item is met; normal when none
     is met and the amplitude plus at least one latency measure (velocity or peak latency) were judged."""
     met = _nerve_table(findings, settings, keys, MET)
-    judged_not_met = _nerve_table(findings[findings["status"] == NOT_MET], settings, keys, None)
+    judged_not_met = _nerve_table(findings[findings["status"].to_numpy(dtype=object) == NOT_MET], settings, keys, None)
     abnormal = _column(met, *SENSORY_ITEMS)
     judged = _column(judged_not_met, "snap_amplitude") & _column(judged_not_met, "sensory_cv", "sensory_peak_latency")
     normal = judged & ~abnormal.reindex(judged.index, fill_value=False)
@@ -393,20 +397,18 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     # Sensory CIDP items only for visits recorded with the sensory phenotype (elsewhere they would be noise).
     cidp_sensory = sensory_cidp_findings(nerves[nerves["visit_key"].isin(phenotypes.index[phenotypes == "sensory"])], settings)
     level, motor_rule = motor_levels(_nerve_table(motor, settings, keys, MET), keys)
-    motor_judged = keys.isin(motor.loc[motor["status"] != NOT_EVALUABLE, "visit_key"].unique())
+    motor_judged = keys.isin(motor.loc[motor["status"].to_numpy(dtype=object) != NOT_EVALUABLE, "visit_key"].unique())
     abnormal, normal = sensory_counts(sensory, settings, keys)
     cidp_met, cidp_text = sensory_cidp(cidp_sensory, settings, keys)
-    decided = [
-        decide(*row)
-        for row in zip(phenotypes, level, motor_rule, motor_judged, abnormal, normal, cidp_met, cidp_text)
-    ]
+    # Visits share few combinations of these inputs: each combination is decided once.
+    decided = rules.per_distinct(decide, phenotypes, level, motor_rule, motor_judged, abnormal, normal, cidp_met, cidp_text)
     outcomes = pd.DataFrame(
         {
             "visit_key": keys,
             "outcome": [d[0] for d in decided],
             "rule": [d[1] for d in decided],
             "motor": level.to_numpy(),
-            "sensory": [sensory_category(a, n) for a, n in zip(abnormal, normal)],
+            "sensory": list(rules.per_distinct(sensory_category, abnormal, normal)),
             "phenotype": phenotypes.to_numpy(),
         }
     )

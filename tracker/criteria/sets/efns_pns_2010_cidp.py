@@ -110,14 +110,20 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
         fire = hit & (outcome != "definite")
         outcome[fire], rule[fire] = "definite", name
 
-    sensory_met = (sensory["status"] == MET)[sensory["item"] == "sensory_cv"].groupby(sensory["visit_key"]).any()
-    reduced = sensory[(sensory["item"] == "snap_reduced") & (sensory["status"] == MET)].groupby("visit_key").size()
-    sural_normal = sensory[(sensory["item"] == "sural_normal") & (sensory["status"] == MET)].groupby("visit_key").size()
-    evaluable = sensory[sensory["status"] != NOT_EVALUABLE].groupby("visit_key").size()
+    # Per visit: whether some sensory finding of the kind exists (plain arrays: the findings are many).
+    item = sensory["item"].to_numpy(dtype=object)
+    status = sensory["status"].to_numpy(dtype=object)
+    visit = sensory["visit_key"].to_numpy()
+
+    def any_where(mask: np.ndarray) -> np.ndarray:
+        return keys.isin(visit[mask])
+
+    met = status == MET
     supportive = pd.Series(NOT_EVALUABLE, index=keys, dtype=object)
-    supportive[evaluable.reindex(keys).fillna(0).to_numpy() > 0] = NOT_MET
-    hit = sensory_met.reindex(keys).fillna(False).astype(bool) | (
-        (reduced.reindex(keys).fillna(0) > 0) & (sural_normal.reindex(keys).fillna(0) > 0)
+    supportive[any_where(status != NOT_EVALUABLE)] = NOT_MET
+    hit = pd.Series(
+        any_where(met & (item == "sensory_cv")) | (any_where(met & (item == "snap_reduced")) & any_where(met & (item == "sural_normal"))),
+        index=keys,
     )
     supportive[hit.to_numpy()] = MET
     outcomes = pd.DataFrame({"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "sensory_supportive": supportive.to_numpy()})

@@ -245,7 +245,7 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
 
 
 def _sensory_key(sensory: pd.DataFrame, keys: pd.Index) -> pd.Series:
-    status = sensory["status"].astype(str)
+    status = sensory["status"].to_numpy(dtype=object)
     by_visit = pd.DataFrame({"abnormal": status == NOT_MET, "normal": status == MET}).groupby(sensory["visit_key"].to_numpy())
     abnormal = by_visit["abnormal"].any().reindex(keys, fill_value=False).to_numpy(dtype=bool)
     normal = by_visit["normal"].all().reindex(keys, fill_value=False).to_numpy(dtype=bool)
@@ -253,6 +253,27 @@ def _sensory_key(sensory: pd.DataFrame, keys: pd.Index) -> pd.Series:
     result[normal] = "normal"
     result[abnormal] = "abnormal"
     return pd.Series(result, index=keys)
+
+
+def _join_per_visit(visit_keys: np.ndarray, texts: np.ndarray, sep: str) -> pd.Series:
+    """Per visit (index, ascending): its distinct ``texts`` in sorted order, joined by ``sep``.
+
+    Vectorised over visits: the texts are ranked once, each (visit, text) pair kept once, and the pieces
+    joined one position within the visit at a time."""
+    visit_codes, visit_values = pd.factorize(np.asarray(visit_keys), sort=True)
+    text_codes, text_values = pd.factorize(np.asarray(texts, dtype=object), sort=True)
+    order = np.lexsort((text_codes, visit_codes))
+    visit_codes, text_codes = visit_codes[order], text_codes[order]
+    keep = np.r_[True, (visit_codes[1:] != visit_codes[:-1]) | (text_codes[1:] != text_codes[:-1])] if len(order) else np.zeros(0, dtype=bool)
+    visit_codes, pieces = visit_codes[keep], np.asarray(text_values, dtype=object)[text_codes[keep]]
+    starts = np.r_[True, visit_codes[1:] != visit_codes[:-1]] if len(visit_codes) else np.zeros(0, dtype=bool)
+    position = np.arange(len(visit_codes)) - np.maximum.accumulate(np.where(starts, np.arange(len(visit_codes)), 0))
+    joined = np.empty(len(visit_values), dtype=object)
+    joined[visit_codes[starts]] = pieces[starts]
+    for step in range(1, int(position.max()) + 1 if len(position) else 1):
+        at = position == step
+        joined[visit_codes[at]] = joined[visit_codes[at]] + sep + pieces[at]
+    return pd.Series(joined, index=visit_values, dtype=object)
 
 
 def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings) -> SetResult:
@@ -263,16 +284,17 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     outcome = pd.Series("not_met", index=keys, dtype=object)
     rule = pd.Series("no segment outside entrapment sites meets definite or probable block", index=keys, dtype=object)
     rule[~keys.isin(segments["visit_key"].unique())] = "no motor segment with proximal stimulation: block cannot be assessed"
-    met = segments[segments["status"] == MET]
+    met = segments[segments["status"].to_numpy(dtype=object) == MET]
     for level in ("probable", "definite"):
-        hits = met[met["item"].isin([i for i, lv in LEVELS.items() if lv == level])]
+        hits = met[np.isin(met["item"].to_numpy(dtype=object), [i for i, lv in LEVELS.items() if lv == level])]
         if hits.empty:
             continue
-        where = pd.Series(
-            [f"{n} {s} {seg} (area drop {pct(v)} %)" for n, s, seg, v in zip(hits["nerve"], hits["side"], hits["segment"], hits["value"])],
-            index=hits.index,
+        where = rules.per_distinct(
+            lambda n, s, seg, v: f"{n} {s} {seg} (area drop {pct(v)} %)",
+            hits["nerve"].to_numpy(dtype=object), hits["side"].to_numpy(dtype=object),
+            hits["segment"].to_numpy(dtype=object), hits["value"].to_numpy(dtype=float),
         )
-        text = where.groupby(hits["visit_key"].to_numpy()).agg(lambda w: f"{level} conduction block: " + "; ".join(sorted(set(w))))
+        text = f"{level} conduction block: " + _join_per_visit(hits["visit_key"].to_numpy(), where, "; ")
         outcome[text.index] = level
         rule[text.index] = text
     # Segments not evaluable for want of data, at a level above the visit's outcome, leave the outcome open.
@@ -281,8 +303,11 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     above = (level_of_visit == "not_met") | ((level_of_visit == "probable") & (wanting["item"] == "definite_cb").to_numpy())
     wanting = wanting[above]
     if len(wanting):
-        where = pd.Series([f"{n} {s} {seg}" for n, s, seg in zip(wanting["nerve"], wanting["side"], wanting["segment"])], index=wanting.index)
-        note = where.groupby(wanting["visit_key"].to_numpy()).agg(lambda w: "; not settled: " + ", ".join(sorted(set(w))) + " not evaluable for want of data")
+        where = rules.per_distinct(
+            lambda n, s, seg: f"{n} {s} {seg}",
+            wanting["nerve"].to_numpy(dtype=object), wanting["side"].to_numpy(dtype=object), wanting["segment"].to_numpy(dtype=object),
+        )
+        note = "; not settled: " + _join_per_visit(wanting["visit_key"].to_numpy(), where, ", ") + " not evaluable for want of data"
         rule[note.index] = rule[note.index] + note
     outcomes = pd.DataFrame(
         {"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "sensory": _sensory_key(sensory, keys).to_numpy()}
