@@ -131,3 +131,14 @@ def test_overlapping_strata_are_detected():
         {"nerve": "median", "modality": "motor", "parameter": "distal_latency_ms", "bound": "uln", "value": 4.6, "age_min": 60, "age_max": 90, "sex": "male"},
     ])
     assert limits.overlapping_strata(rows) == [(0, 1)]
+
+
+def test_the_trace_names_the_stratum_used():
+    # Invented laboratory limits for a test: an age band for the median distal latency.
+    rows = limits.default_limits()
+    young = rows[(rows.nerve == "median") & (rows.modality == "motor") & (rows.parameter == "distal_latency_ms")].assign(
+        value=4.0, age_min=18.0, age_max=60.0, source="invented laboratory limit"
+    )
+    result = evaluate([Visit([Motor("median", dml=6.2)], age_years=40)], "efns-pns-2010-cidp", limit_rows=pd.concat([rows, young], ignore_index=True))
+    source = result.findings[result.findings.item == "dml"].iloc[0]["limit_source"]
+    assert source == "invented laboratory limit — stratum: age 18–60 y"

@@ -61,7 +61,10 @@ def text(check: VisitCheck) -> str:
                 threshold = f"{COMPARATORS.get(f.comparator, f.comparator) if isinstance(f.comparator, str) else ''} {_number(f.threshold, f.unit)}"
                 verdict = VERDICT[f.status] + (f" ({f.reason})" if f.reason else "")
                 value = _number(f.value, f.unit) + (f" [{f.segment}]" if isinstance(f.segment, str) and f.segment else "")
-                rows.append([f.item, f.parameter, value, limit or "—", threshold.strip(), verdict, f"[{number}]{mark}" if number else ""])
+                limit_source = f.limit_source if isinstance(f.limit_source, str) else ""
+                limit_number = sources.setdefault(limit_source, len(sources) + 1) if limit_source else None
+                refs = (f"[{number}]" if number else "") + (f"[{limit_number}]" if limit_number else "")
+                rows.append([f.item, f.parameter, value, limit or "—", threshold.strip(), verdict, f"{refs}{mark}"])
             lines += ["", f"  {nerve} {side} ({modality})"]
             lines += _table(["item", "parameter", "value", "limit", "threshold", "verdict", "source"], rows)
         miss = check.closest.get(criteria_id)
@@ -77,7 +80,7 @@ def text(check: VisitCheck) -> str:
     if len(check.warnings):
         lines += ["", "Warnings:"] + [f"  {m}" for m in check.warnings["message"]]
     if sources:
-        lines += ["", "Sources (* = the threshold or the normal limit is from memory, not verified against the publication):"]
+        lines += ["", "Sources — criteria, then normal limit with the stratum chosen (* = the threshold or the normal limit is from memory, not verified):"]
         lines += [f"  [{n}] {s}" for s, n in sources.items()]
     lines += ["", CAUTION]
     return "\n".join(lines)

@@ -28,8 +28,16 @@ def sensory(nerves: pd.DataFrame) -> pd.DataFrame:
 
 
 def limit_provenance(frame: pd.DataFrame, column: str) -> dict[str, pd.Series]:
-    """Keyword arguments naming where a nerve's normal limit came from (for the trace)."""
-    return {"limit_source": frame[f"{column}_source"], "limit_status": frame[f"{column}_status"]}
+    """Keyword arguments naming where a nerve's normal limit came from, and the stratum (age, height,
+    sex band) that was chosen for this patient (for the trace)."""
+    source = frame[f"{column}_source"]
+    stratum = frame[f"{column}_stratum"]
+    with_stratum = rules.per_distinct(
+        lambda s, st: s if not isinstance(s, str) else (f"{s} — stratum: {st}" if isinstance(st, str) else s),
+        source,
+        stratum,
+    )
+    return {"limit_source": pd.Series(with_stratum, index=frame.index), "limit_status": frame[f"{column}_status"]}
 
 
 def _threshold(table: ThresholdTable, item: str, frame: pd.DataFrame, limit: np.ndarray | None) -> tuple[pd.DataFrame, np.ndarray]:
