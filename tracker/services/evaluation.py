@@ -18,7 +18,7 @@ from tracker.criteria.model import Settings, SetResult
 from tracker.db.models import Evaluation, NerveTest, Patient, StimulationSite, Visit, utc_now
 from tracker.errors import NotFound, TrackerError
 from tracker.services.limit_sets import LimitSetInfo, resolve
-from tracker.services.records import _patient_or_hint
+from tracker.services.records import find_patient
 
 # The set a visit is checked against when none is asked for, by the visit's working diagnosis.
 DEFAULT_CRITERIA = {"cidp": "ean-pns-2021-cidp", "mmn": "efns-pns-2010-mmn", "gbs": "hadden-1998-gbs"}
@@ -88,7 +88,7 @@ class VisitCheck:
 
 def check_visit(session: Session, code: str, *, visit_date: dt.date | None, criteria: list[str] | None, limits_name: str | None, settings: Settings | None = None) -> VisitCheck:
     """Evaluate one visit (the latest when no date is given) and save the evaluations."""
-    patient = _patient_or_hint(session, code)
+    patient = find_patient(session, code)
     visits = session.execute(select(Visit.id, Visit.visit_date, Visit.diagnosis).where(Visit.patient_id == patient.id).order_by(Visit.visit_date)).all()
     if not visits:
         raise NotFound(f"Patient {code} has no visits yet.")

@@ -299,7 +299,7 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
 
     replaced_ids = [int(v) for v in visits.loc[changed, "visit_id"]]
     if replaced_ids:
-        _keep_history(session, visits[changed], username=username)
+        keep_history(session, visits[changed], username=username)
         for part in _chunks(replaced_ids):
             session.execute(delete(NerveTest).where(NerveTest.visit_id.in_(part)))
         for row in _records(visits[changed], ["visit_id", "height_cm", "diagnosis", "phenotype", "fingerprint", "version"]):
@@ -407,7 +407,9 @@ def _snapshot(session: Session, visit_ids: list[int]) -> dict[int, dict[str, Any
     return {v: {"visit": visits.get(v, {}), "nerve_tests": tests_by_visit[v]} for v in visit_ids}
 
 
-def _keep_history(session: Session, changed: pd.DataFrame, *, username: str, reason: str = "import --replace") -> None:
+def keep_history(session: Session, changed: pd.DataFrame, *, username: str, reason: str = "import --replace") -> None:
+    """Snapshot each visit in ``changed`` (``visit_id``, ``version``, ``status``, fingerprints, ``patient``,
+    ``visit_date``) into ``visit_revisions`` before it is amended, and audit the replacement."""
     visit_ids = [int(v) for v in changed["visit_id"]]
     snapshots = _snapshot(session, visit_ids)
     now = utc_now()

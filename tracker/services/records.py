@@ -66,7 +66,8 @@ class PatientRecord:
 NERVE_ORDER = {"motor": 0, "sensory": 1}
 
 
-def _patient_or_hint(session: Session, code: str) -> Patient:
+def find_patient(session: Session, code: str) -> Patient:
+    """The patient with this pseudonymous code, or :class:`NotFound` with a "did you mean" hint."""
     patient = session.scalar(select(Patient).where(Patient.code == code))
     if patient is not None:
         return patient
@@ -77,7 +78,7 @@ def _patient_or_hint(session: Session, code: str) -> Patient:
 
 def patient_record(session: Session, code: str, *, visit_date: dt.date | None = None) -> PatientRecord:
     """The patient's record (all visits, or the one on ``visit_date``). Raises :class:`NotFound`."""
-    patient = _patient_or_hint(session, code)
+    patient = find_patient(session, code)
     query = select(Visit).where(Visit.patient_id == patient.id).order_by(Visit.visit_date)
     if visit_date is not None:
         query = query.where(Visit.visit_date == visit_date)

@@ -16,8 +16,8 @@ from tracker.db.models import NerveTest, Visit, utc_now
 from tracker.domain.vocabulary import PHENOTYPES, SIDES
 from tracker.errors import NotFound, TrackerError
 from tracker.services import audit
-from tracker.services.importing import _keep_history, stored_fingerprints
-from tracker.services.records import _patient_or_hint
+from tracker.services.importing import keep_history, stored_fingerprints
+from tracker.services.records import find_patient
 
 
 def set_clinician_inputs(
@@ -30,7 +30,7 @@ def set_clinician_inputs(
     wrist_entrapment: dict[str, bool] | None = None,
 ) -> list[str]:
     """Record the inputs; return a line per change (empty when nothing changed)."""
-    patient = _patient_or_hint(session, code)
+    patient = find_patient(session, code)
     visit = session.scalar(select(Visit).where(Visit.patient_id == patient.id, Visit.visit_date == visit_date))
     if visit is None:
         raise NotFound(f"Patient {code} has no visit on {visit_date.isoformat()}.")
@@ -61,7 +61,7 @@ def set_clinician_inputs(
         [{"visit_id": visit.id, "version": visit.version, "status": visit.status, "db_fingerprint": visit.content_sha256,
           "fingerprint": "", "patient": code, "visit_date": visit.visit_date}]
     )
-    _keep_history(session, history, username=username, reason="clinician inputs changed")
+    keep_history(session, history, username=username, reason="clinician inputs changed")
     if new_values:
         session.execute(update(Visit).where(Visit.id == visit.id).values(**new_values))
     for side, value in median_updates:
