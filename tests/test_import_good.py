@@ -213,7 +213,7 @@ def test_no_response_is_stored_as_a_finding(db_url, sessions, capsys):
 
 
 def test_fingerprints_recomputed_from_stored_rows_equal_the_import_ones(db_url, sessions, capsys):
-    from tracker.services.importing import stored_fingerprints
+    from tracker.services.history import stored_fingerprints
 
     assert run_cli(capsys, "--db", db_url, "import", str(DEMO_FILES[0]))[0] == 0
     with sessions() as session:

@@ -16,7 +16,7 @@ from tracker.db.models import NerveTest, Visit, utc_now
 from tracker.domain.vocabulary import PHENOTYPES, SIDES
 from tracker.errors import NotFound, TrackerError
 from tracker.services import audit
-from tracker.services.importing import keep_history, stored_fingerprints
+from tracker.services.history import keep_history, stored_fingerprints
 from tracker.services.records import find_patient
 
 
