@@ -385,3 +385,14 @@ class AuditEvent(Base):
     before: Mapped[dict[str, Any] | None] = mapped_column()
     after: Mapped[dict[str, Any] | None] = mapped_column()
     detail: Mapped[str | None] = mapped_column(Text)
+
+
+class AppSetting(Base):
+    """One setting of this database (key → text): the default criteria set, the temperature policy, the
+    secret that keys pseudonymous export ids. Kept in the database so that every user of it shares them."""
+
+    __tablename__ = "app_settings"
+
+    key: Mapped[str] = mapped_column(String(64), primary_key=True)
+    value: Mapped[str] = mapped_column(Text)
+    updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utc_now, onupdate=utc_now)
