@@ -270,30 +270,56 @@ def limits_default(context: Context, name: str) -> None:
 
 @cli.command("demo")
 @click.option("--path", "db_path", type=click.Path(path_type=Path, dir_okay=False), help="Where to build the demo database (default: the user data folder).")
-@click.option("--port", type=int, help="Port of the dashboard. The dashboard is not built yet: accepted, and ignored for now.")
+@click.option("--port", type=int, default=8501, show_default=True, help="Port of the dashboard (the next free one if taken).")
+@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (only this machine by default).")
+@click.option("--no-serve", is_flag=True, help="Build the demo database and print the patients, without starting the dashboard.")
 @pass_context
-def demo_command(context: Context, db_path: Path | None, port: int | None) -> None:
-    """Build a fresh demo database from the invented clinic in demo_data/ and print every patient."""
+def demo_command(context: Context, db_path: Path | None, port: int, host: str, no_serve: bool) -> None:
+    """Build a fresh demo database from the invented clinic in demo_data/ and open the dashboard on it."""
+    from tracker.db.session import make_session_factory
     from tracker.services.demo import build_demo_database
+    from tracker.services.evaluation import refresh_evaluations
     from tracker.services.records import patient_codes, patient_record
     from tracker.text_report import patient_lines
 
-    if port is not None:
-        click.echo("Note: the dashboard is not built yet; --port is ignored and the demo is printed instead.", err=True)
     path = db_path or user_data_dir() / "demo.sqlite3"
     url = sqlite_url(path)
     engine, reports = build_demo_database(path, username=context.user)
     for report in reports:
         click.echo(report.summary(), err=True)
-    from tracker.db.session import make_session_factory
-
-    with make_session_factory(engine)() as session:
-        for code in patient_codes(session):
-            click.echo("\n".join(patient_lines(patient_record(session, code))[:-1]))
-            click.echo("=" * 100)
+    with make_session_factory(engine).begin() as session:
+        counts = refresh_evaluations(session)
+    click.echo(f"Evaluated {counts['visits']} visits against every criteria set.", err=True)
+    if no_serve:
+        with make_session_factory(engine)() as session:
+            for code in patient_codes(session):
+                click.echo("\n".join(patient_lines(patient_record(session, code))[:-1]))
+                click.echo("=" * 100)
     engine.dispose()
-    click.echo(CAUTION)
-    click.echo(f"Demo database (invented patients): {path}\nExplore it with: ncs-tracker --db {url} show DEMO-01")
+    click.echo(f"Demo database (invented patients): {path}")
+    if no_serve:
+        click.echo(CAUTION)
+        click.echo(f"Explore it with: ncs-tracker --db {url} show DEMO-01")
+        return
+    _serve(url, host=host, port=port, user=context.user)
+
+
+@cli.command("serve")
+@click.option("--port", type=int, default=8501, show_default=True, help="Port of the dashboard (the next free one if taken).")
+@click.option("--host", default="127.0.0.1", show_default=True, help="Address to listen on (only this machine by default).")
+@pass_context
+def serve_command(context: Context, port: int, host: str) -> None:
+    """Start the dashboard on the chosen database; runs until stopped (Ctrl+C)."""
+    context.engine()  # refuse early, with one line, when the schema is missing or outdated
+    url = context.url
+    context.close()
+    _serve(url, host=host, port=port, user=context.user)
+
+
+def _serve(url: str, *, host: str, port: int, user: str) -> None:
+    from tracker.serving import run_dashboard
+
+    run_dashboard(url, host=host, port=port, user=user, announce=lambda line: click.echo(line))
 
 
 def _parse_date(text: str) -> dt.date:

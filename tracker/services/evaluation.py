@@ -176,17 +176,26 @@ def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult],
             session.execute(insert(Evaluation), rows)
 
 
-def refresh_evaluations(session: Session, criteria: list[str] | None = None, limits_name: str | None = None, settings: Settings | None = None) -> dict[str, int]:
-    """Recompute, in one vectorised pass, every evaluation whose inputs changed; return counts."""
+def refresh_evaluations(
+    session: Session,
+    criteria: list[str] | None = None,
+    limits_name: str | None = None,
+    settings: Settings | None = None,
+    visit_ids: list[int] | None = None,
+) -> dict[str, int]:
+    """Recompute, in one vectorised pass, every evaluation whose inputs changed (of the given visits, or of
+    all); return counts."""
     settings = settings or Settings()
     info, limits = resolve(session, limits_name)
-    visits, tests, sites = load_frames(session)
+    visits, tests, sites = load_frames(session, visit_ids)
     criteria_ids = criteria or engine.available()
     counts = {"visits": len(visits), "recomputed": 0, "unchanged": 0}
     stored = {
         (visit_id, criteria_id): fingerprint
         for visit_id, criteria_id, fingerprint in session.execute(
-            select(Evaluation.visit_id, Evaluation.criteria_id, Evaluation.input_sha256).where(Evaluation.limit_set_id == info.id)
+            select(Evaluation.visit_id, Evaluation.criteria_id, Evaluation.input_sha256).where(
+                Evaluation.limit_set_id == info.id, *([Evaluation.visit_id.in_(visit_ids)] if visit_ids is not None else [])
+            )
         )
     }
     results = engine.evaluate(visits, tests, sites, limits, criteria_ids, settings)

@@ -37,7 +37,7 @@ from tracker.services.measurement_file import (
 )
 from tracker.services.history import keep_history, stored_fingerprints
 from tracker.services.rows import chunks as _chunks, clean as _clean
-from tracker.services.tables import ROW, read_table
+from tracker.services.tables import ROW, InputTable, read_table
 
 
 
@@ -142,7 +142,20 @@ def import_file(
     today: dt.date | None = None,
 ) -> ImportReport:
     """Import one file (kind recognised from its header). Raises :class:`InputRejected` on any problem."""
-    table = read_table(path)
+    return import_table(session, read_table(path), username=username, dry_run=dry_run, replace=replace, allow_unusual=allow_unusual, today=today)
+
+
+def import_table(
+    session: Session,
+    table: InputTable,
+    *,
+    username: str,
+    dry_run: bool = False,
+    replace: bool = False,
+    allow_unusual: bool = False,
+    today: dt.date | None = None,
+) -> ImportReport:
+    """Import a parsed table (from a file, an upload or the entry form): the same checks and storage."""
     if table.kind == "measurements":
         batch = validate_measurements(table.cells, allow_unusual=allow_unusual, today=today)
         report = _store_measurements(session, batch, username=username, dry_run=dry_run, replace=replace)

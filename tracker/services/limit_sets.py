@@ -21,7 +21,7 @@ from tracker.domain.vocabulary import LIMIT_BOUNDS, LIMIT_PARAMETERS, MODALITIES
 from tracker.errors import InputRejected, NotFound, Problem
 from tracker.services import audit, checks
 from tracker.services.checks import Collector
-from tracker.services.tables import ROW, read_table
+from tracker.services.tables import ROW, InputTable, read_table
 
 REQUIRED = ["nerve", "modality", "parameter", "bound", "value"]
 OPTIONAL = ["age_min", "age_max", "height_min_cm", "height_max_cm", "sex", "source", "status", "recording_site"]
@@ -87,7 +87,13 @@ def validate_limits(cells: pd.DataFrame) -> pd.DataFrame:
 
 def import_limit_set(session: Session, path: Path, *, name: str, username: str, description: str | None = None) -> LimitSetInfo:
     """Store a laboratory's limits as a new set, or as the next version of the set with that name."""
-    table = read_table(path, allowed_kinds=("limits",))
+    return import_limit_table(session, read_table(path, allowed_kinds=("limits",)), name=name, username=username, description=description)
+
+
+def import_limit_table(session: Session, table: InputTable, *, name: str, username: str, description: str | None = None) -> LimitSetInfo:
+    """As :func:`import_limit_set`, from a parsed table (an upload: ``parse_table(raw, suffix, ("limits",))``)."""
+    if not name.strip():
+        raise InputRejected("The limit set needs a name", [Problem(None, "name", name, "give the set a short name, e.g. your laboratory's")])
     frame = validate_limits(table.cells)
     version = (session.scalar(select(func.max(LimitSet.version)).where(LimitSet.name == name)) or 0) + 1
     set_id = session.scalar(

@@ -134,8 +134,13 @@ def read_table(path: Path, allowed_kinds: tuple[str, ...] = ("measurements", "tr
         raw = path.read_bytes()
     except OSError as error:
         raise InputRejected("The file could not be read", [Problem(None, None, str(path), error.strerror or "unreadable")]) from None
+    return parse_table(raw, path.suffix, allowed_kinds)
+
+
+def parse_table(raw: bytes, suffix: str, allowed_kinds: tuple[str, ...] = ("measurements", "treatments", "scores")) -> InputTable:
+    """Parse a file's bytes (an upload, say); ``suffix`` is its extension (``.csv``, ``.xlsx``)."""
     sha = hashlib.sha256(raw).hexdigest()
-    suffix = path.suffix.lower()
+    suffix = suffix.lower()
     trimmed = False
     if suffix == ".xlsx":
         frame = _read_xlsx(raw)
@@ -155,7 +160,7 @@ def read_table(path: Path, allowed_kinds: tuple[str, ...] = ("measurements", "tr
     else:
         raise InputRejected(
             "Unsupported file type",
-            [Problem(None, None, path.suffix, "expected a .csv (UTF-8, comma-separated) or .xlsx file")],
+            [Problem(None, None, suffix, "expected a .csv (UTF-8, comma-separated) or .xlsx file")],
         )
     headers = [normalise_word(str(h)) if h is not None else "" for h in frame.columns]
     problems = [

@@ -1,0 +1,64 @@
+"""Cached reads for the pages: hashable arguments in, plain data out (never ORM objects).
+
+Each takes the database URL first so that two databases never share a cache entry; every write goes
+through :func:`tracker.dashboard.state.writing`, which clears these caches.
+"""
+
+from __future__ import annotations
+
+import pandas as pd
+import streamlit as st
+
+from tracker.criteria.model import Settings
+from tracker.dashboard.state import reading
+from tracker.services import cohort, preferences
+from tracker.services.follow_up import FollowUp, follow_up
+from tracker.services.limit_sets import LimitSetInfo, list_limit_sets
+from tracker.services.records import PatientRecord, patient_codes, patient_record
+
+TTL = 600  # s: another user's writes show up at the latest after this
+
+
+@st.cache_data(ttl=TTL, show_spinner=False)
+def codes(url: str) -> list[str]:
+    with reading() as session:
+        return patient_codes(session)
+
+
+@st.cache_data(ttl=TTL, show_spinner=False)
+def record(url: str, code: str) -> PatientRecord:
+    with reading() as session:
+        return patient_record(session, code)
+
+
+@st.cache_data(ttl=TTL, show_spinner="Computing the follow-up…")
+def trend(url: str, code: str, parameter: str, criteria: str | None, limits_name: str | None, cold_limbs: str) -> FollowUp:
+    with reading() as session:
+        return follow_up(session, code, parameter=parameter, criteria=criteria, limits_name=limits_name, settings=Settings(cold_limbs=cold_limbs))
+
+
+@st.cache_data(ttl=TTL, show_spinner=False)
+def patients(url: str, criteria: str, limits_name: str | None, search: str, diagnosis: str | None, outcome: str | None) -> pd.DataFrame:
+    with reading() as session:
+        return cohort.patient_list(session, criteria=criteria, limits_name=limits_name, search=search, diagnosis=diagnosis, outcome=outcome)
+
+
+@st.cache_data(ttl=TTL, show_spinner=False)
+def visits(url: str, criteria: tuple[str, ...], limits_name: str | None, diagnosis: str | None, start, end) -> pd.DataFrame:
+    with reading() as session:
+        return cohort.visit_table(session, criteria=list(criteria), limits_name=limits_name, diagnosis=diagnosis, start=start, end=end)
+
+
+@st.cache_data(ttl=TTL, show_spinner=False)
+def limit_sets(url: str) -> list[LimitSetInfo]:
+    with reading() as session:
+        sets = list_limit_sets(session)
+        session.commit()  # the shipped default set is stored on first use
+        return sets
+
+
+@st.cache_data(ttl=TTL, show_spinner=False)
+def clinic_settings(url: str) -> tuple[str | None, str]:
+    """(default criteria set or None, temperature policy)."""
+    with reading() as session:
+        return preferences.default_criteria(session) or None, preferences.cold_limbs(session)

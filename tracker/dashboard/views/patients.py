@@ -1,0 +1,47 @@
+"""Patients: find a patient by code, filter by diagnosis and by the latest visit's outcome of a criteria set."""
+
+from __future__ import annotations
+
+import streamlit as st
+
+from tracker.dashboard import reads
+from tracker.dashboard.state import choose_patient, database_url, user, writing
+from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker
+from tracker.domain.vocabulary import DIAGNOSES
+from tracker.services.cohort import NOT_EVALUATED
+from tracker.services.evaluation import FALLBACK_CRITERIA, refresh_evaluations
+
+st.title("Patients")
+url = database_url()
+left, middle, right = st.columns([2, 1, 2])
+search = left.text_input("Search by code", key="patients_search", placeholder="e.g. DEMO-0")
+diagnosis = middle.selectbox("Diagnosis", [None, *DIAGNOSES], key="patients_diagnosis", format_func=lambda d: "all" if d is None else d)
+with right:
+    criteria = criteria_picker("Outcome column: criteria set", key="patients_criteria") or FALLBACK_CRITERIA
+limits_name = limits_picker(key="patients_limits")
+table = reads.patients(url, criteria, limits_name, search, diagnosis, None)
+outcomes = sorted(set(table["latest_outcome"]))
+outcome = st.selectbox("Latest outcome", [None, *outcomes], key="patients_outcome", format_func=lambda o: "any" if o is None else o.replace("_", " "))
+if outcome:
+    table = table[table["latest_outcome"] == outcome]
+
+st.caption(f"{len(table)} patients · latest outcome = {criteria_title(criteria)} at the latest visit, from saved evaluations")
+st.dataframe(
+    table.rename(columns={"latest_outcome": f"latest outcome ({criteria})"}),
+    hide_index=True, width="stretch",
+    column_config={"first_visit": st.column_config.DateColumn("first visit"), "last_visit": st.column_config.DateColumn("last visit"), "current_treatment": "current treatment"},
+)
+if (table["latest_outcome"] == NOT_EVALUATED).any():
+    st.warning("Some latest visits have no saved evaluation with these normal limits; they are shown as “not evaluated”, never as normal.")
+    if st.button("Evaluate all visits now", key="patients_evaluate"):
+        with st.spinner("Evaluating every visit against every criteria set…"), writing() as session:
+            counts = refresh_evaluations(session, limits_name=limits_name)
+        st.success(f"{counts['recomputed']} evaluations computed, {counts['unchanged']} already current.")
+        st.rerun()
+
+if len(table):
+    chosen = st.selectbox("Open a patient", list(table["patient"]), key="patients_open")
+    if st.button("Show follow-up", key="patients_go", type="primary"):
+        choose_patient(chosen)
+        st.switch_page("views/follow_up.py")
+st.caption(f"Signed in as {user()}.")

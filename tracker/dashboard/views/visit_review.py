@@ -1,0 +1,83 @@
+"""Visit review: one visit's measurements, derived segments and the criteria trace nerve by nerve, with
+warnings, the closest miss and what changed since the previous visit."""
+
+from __future__ import annotations
+
+import pandas as pd
+import streamlit as st
+
+from tracker.criteria.model import Settings
+from tracker.dashboard import reads, style
+from tracker.dashboard.state import database_url, writing
+from tracker.dashboard.widgets import CRITERIA_TITLES, criteria_title, limits_picker, patient_picker
+from tracker.services import review
+from tracker.services.evaluation import check_visit, default_criteria
+
+st.title("Visit review")
+url = database_url()
+top = st.columns([1, 1, 2])
+with top[0]:
+    code = patient_picker(key="review_patient")
+if code:
+    record = reads.record(url, code)
+    dates = [v.visit_date for v in record.visits]
+    if not dates:
+        st.info(f"{code} has no visits yet.")
+        st.stop()
+    visit_date = top[1].selectbox("Visit", list(reversed(dates)), key="review_visit", format_func=lambda d: d.isoformat())
+    default, cold_limbs = reads.clinic_settings(url)
+    chosen_default = default or default_criteria(record.diagnosis)
+    with top[2]:
+        criteria = st.multiselect("Criteria sets", list(CRITERIA_TITLES), default=[chosen_default], key="review_criteria", format_func=criteria_title)
+    limits_name = limits_picker(key="review_limits")
+    if not criteria:
+        st.info("Choose at least one criteria set.")
+        st.stop()
+    with writing() as session:  # the evaluation is saved with its versions
+        check = check_visit(session, code, visit_date=visit_date, criteria=criteria, limits_name=limits_name, settings=Settings(cold_limbs=cold_limbs))
+    st.info("Decision support only: every verdict below must be reviewed by a qualified clinician.", icon=":material/info:")
+    st.markdown(f"**{check.patient}** · visit **{check.visit_date.isoformat()}** · phenotype {check.phenotype or 'not stated'} · normal limits {check.limits.name} v{check.limits.version}")
+
+    cards = st.columns(len(check.results))
+    for card, (criteria_id, result) in zip(cards, check.results.items()):
+        outcome = result.outcomes.iloc[0]
+        group, shape, colour = style.outcome_group(str(outcome["outcome"]))
+        extra = " · ".join(f"{k.replace('_', ' ')}: {outcome[k]}" for k in result.extra_keys)
+        card.markdown(
+            f"<div class='ncs-badge' style='border-color:{colour}'>{criteria_title(criteria_id)}</div>"
+            f"<h3 style='color:{colour};margin:0.2rem 0'>{shape} {str(outcome['outcome']).replace('_', ' ')}</h3>"
+            f"<small>{outcome.get('rule', '')}{'<br>' + extra if extra else ''}</small>",
+            unsafe_allow_html=True,
+        )
+
+    if len(check.warnings):
+        for message in check.warnings["message"]:
+            st.warning(message, icon=":material/thermostat:")
+    for criteria_id in check.results:
+        miss = check.closest.get(criteria_id)
+        if miss is not None and len(miss):
+            st.markdown(f"**Closest miss ({criteria_id}):** {miss.iloc[0]['text']}")
+        changes = check.changes.get(criteria_id)
+        if check.previous_date is None:
+            st.caption(f"{criteria_id}: first visit, nothing to compare.")
+        elif changes is not None and len(changes):
+            st.markdown(f"**Changed since {check.previous_date.isoformat()} ({criteria_id}):** " + "; ".join(f"{c.nerve} {c.side} {c.item} {c.change}" for c in changes.itertuples()))
+        else:
+            st.caption(f"{criteria_id}: no finding changed since {check.previous_date.isoformat()}.")
+
+    visit = next(v for v in record.visits if v.visit_date == visit_date)
+    measured, segments = review.measurement_tables(visit)
+    tab_trace, tab_measured = st.tabs(["Criteria trace", "Measurements and segments"])
+    with tab_trace:
+        for criteria_id, result in check.results.items():
+            st.subheader(criteria_title(criteria_id))
+            trace = review.trace_table(result.findings)
+            for nerve_label, rows in trace.groupby("nerve", sort=True):
+                st.markdown(f"**{nerve_label}**")
+                st.dataframe(rows.drop(columns=["nerve"]), hide_index=True, width="stretch")
+            st.caption("Status: ▲ met · ○ not met · ? not evaluable (missing data or a precondition not fulfilled — never read as normal). * = value from memory, not verified against the publication.")
+    with tab_measured:
+        st.markdown("**Stimulation sites**")
+        st.dataframe(measured, hide_index=True, width="stretch")
+        st.markdown("**Segments (derived)**")
+        st.dataframe(segments if len(segments) else pd.DataFrame({"segment": ["none (one site per nerve)"]}), hide_index=True, width="stretch")

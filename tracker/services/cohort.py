@@ -1,0 +1,131 @@
+"""The clinic's view of all its patients: the patient list and cohort counts, from saved evaluations.
+
+Outcomes here are the evaluations saved by ``check``/``evaluate`` (or the dashboard's "evaluate" button) with
+the default normal-limit set; a visit without one is shown as ``not evaluated`` — never as normal.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import pandas as pd
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from tracker.db.models import Evaluation, Patient, Treatment, Visit
+from tracker.services.follow_up import treatment_label
+from tracker.services.limit_sets import resolve
+
+NOT_EVALUATED = "not evaluated"
+
+PATIENT_COLUMNS = ["patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit", "current_treatment", "latest_outcome"]
+
+
+def _evaluations(session: Session, criteria: str, limits_name: str | None, visit_ids: list[int] | None = None) -> pd.DataFrame:
+    info, _ = resolve(session, limits_name)
+    query = select(Evaluation.visit_id, Evaluation.outcome).where(Evaluation.criteria_id == criteria, Evaluation.limit_set_id == info.id)
+    if visit_ids is not None:
+        query = query.where(Evaluation.visit_id.in_(visit_ids))
+    return pd.DataFrame(session.execute(query).all(), columns=["visit_id", "outcome"])
+
+
+def patient_list(
+    session: Session,
+    *,
+    criteria: str,
+    limits_name: str | None = None,
+    search: str = "",
+    diagnosis: str | None = None,
+    outcome: str | None = None,
+    today: dt.date | None = None,
+) -> pd.DataFrame:
+    """One row per patient (``PATIENT_COLUMNS``), filtered by code (substring, any case), diagnosis and the
+    latest visit's outcome of ``criteria``."""
+    stats = (
+        select(Visit.patient_id, func.count(Visit.id).label("visits"), func.min(Visit.visit_date).label("first_visit"), func.max(Visit.visit_date).label("last_visit"))
+        .group_by(Visit.patient_id)
+        .subquery()
+    )
+    query = select(Patient.id, Patient.code, Patient.diagnosis, Patient.phenotype, stats.c.visits, stats.c.first_visit, stats.c.last_visit).outerjoin(
+        stats, stats.c.patient_id == Patient.id
+    )
+    if search.strip():
+        query = query.where(func.lower(Patient.code).contains(search.strip().lower(), autoescape=True))
+    if diagnosis:
+        query = query.where(Patient.diagnosis == diagnosis)
+    frame = pd.DataFrame(session.execute(query.order_by(Patient.code)).all(), columns=["id", "patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit"])
+    frame["visits"] = frame["visits"].fillna(0).astype(int)
+    latest = pd.DataFrame(
+        session.execute(
+            select(Visit.id, Visit.patient_id).join(stats, (stats.c.patient_id == Visit.patient_id) & (stats.c.last_visit == Visit.visit_date))
+        ).all(),
+        columns=["visit_id", "id"],
+    )
+    outcomes = _evaluations(session, criteria, limits_name).merge(latest, on="visit_id")
+    frame = frame.merge(outcomes[["id", "outcome"]], on="id", how="left")
+    frame["latest_outcome"] = frame["outcome"].astype(object).where(frame["outcome"].notna(), NOT_EVALUATED)
+    frame.loc[frame["visits"] == 0, "latest_outcome"] = "no visits"
+    frame["current_treatment"] = _current_treatments(session, frame, today or dt.date.today())
+    if outcome:
+        frame = frame[frame["latest_outcome"] == outcome]
+    return frame[PATIENT_COLUMNS].reset_index(drop=True)
+
+
+def _current_treatments(session: Session, patients: pd.DataFrame, today: dt.date) -> list[str]:
+    """Treatments running today (no end date, or ending today or later), in words; '' when none."""
+    rows = session.execute(
+        select(Treatment.patient_id, Treatment.therapy, Treatment.dose, Treatment.dose_unit, Treatment.interval_days, Treatment.start_date, Treatment.end_date)
+        .where(Treatment.start_date <= today, (Treatment.end_date.is_(None)) | (Treatment.end_date >= today))
+        .order_by(Treatment.patient_id, Treatment.start_date)
+    ).all()
+    running: dict[int, list[str]] = {}
+    for r in rows:
+        running.setdefault(r.patient_id, []).append(treatment_label(r.therapy, r.dose, r.dose_unit, r.interval_days))
+    return ["; ".join(running.get(int(pid), [])) for pid in patients["id"]]
+
+
+def visit_table(
+    session: Session,
+    *,
+    criteria: list[str],
+    limits_name: str | None = None,
+    diagnosis: str | None = None,
+    start: dt.date | None = None,
+    end: dt.date | None = None,
+) -> pd.DataFrame:
+    """One row per visit: patient code, visit date, diagnosis, phenotype, and the saved outcome of each set."""
+    query = select(Visit.id.label("visit_id"), Patient.code.label("patient"), Visit.visit_date, Visit.diagnosis, Visit.phenotype).join(Patient, Patient.id == Visit.patient_id)
+    if diagnosis:
+        query = query.where(Visit.diagnosis == diagnosis)
+    if start:
+        query = query.where(Visit.visit_date >= start)
+    if end:
+        query = query.where(Visit.visit_date <= end)
+    frame = pd.DataFrame(session.execute(query.order_by(Patient.code, Visit.visit_date)).all(), columns=["visit_id", "patient", "visit_date", "diagnosis", "phenotype"])
+    for cid in criteria:
+        saved = _evaluations(session, cid, limits_name).rename(columns={"outcome": cid})
+        frame = frame.merge(saved, on="visit_id", how="left")
+        frame[cid] = frame[cid].astype(object).where(frame[cid].notna(), NOT_EVALUATED)
+    return frame.drop(columns=["visit_id"])
+
+
+def counts_by_diagnosis(visits: pd.DataFrame) -> pd.DataFrame:
+    """Patients and visits per diagnosis of a :func:`visit_table`."""
+    if visits.empty:
+        return pd.DataFrame(columns=["diagnosis", "patients", "visits"])
+    table = visits.assign(diagnosis=visits["diagnosis"].astype(object).fillna("unspecified"))
+    return (
+        table.groupby("diagnosis").agg(patients=("patient", "nunique"), visits=("patient", "size")).reset_index().sort_values("diagnosis").reset_index(drop=True)
+    )
+
+
+def outcome_shares(visits: pd.DataFrame, criteria: list[str]) -> pd.DataFrame:
+    """Per criteria set and outcome: number and share (%) of the table's visits."""
+    rows = []
+    for cid in criteria:
+        if cid not in visits:
+            continue
+        counts = visits[cid].value_counts()
+        for outcome_value, count in counts.items():
+            rows.append({"criteria": cid, "outcome": outcome_value, "visits": int(count), "share_pct": round(100.0 * count / len(visits), 1)})
+    return pd.DataFrame(rows, columns=["criteria", "outcome", "visits", "share_pct"])

@@ -1,0 +1,63 @@
+"""Run the Streamlit dashboard as a child process: bound to one address, usage statistics off, no error
+details in the browser, our theme; the database URL and user pass through the environment."""
+
+from __future__ import annotations
+
+import os
+import socket
+import subprocess
+import sys
+from collections.abc import Callable
+from pathlib import Path
+
+from tracker import CAUTION
+from tracker.config import ENV_DB, ENV_USER
+from tracker.dashboard import style
+from tracker.errors import TrackerError
+
+APP = Path(__file__).resolve().parent / "dashboard" / "app.py"
+
+
+def free_port(host: str, wanted: int, tries: int = 50) -> int:
+    """``wanted`` if nothing listens there, else the next free port."""
+    for port in range(wanted, wanted + tries):
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
+            probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+            try:
+                probe.bind((host, port))
+            except OSError:
+                continue
+            return port
+    raise TrackerError(f"No free port between {wanted} and {wanted + tries - 1} on {host}; choose one with --port.")
+
+
+def streamlit_command(host: str, port: int) -> list[str]:
+    return [
+        sys.executable, "-m", "streamlit", "run", str(APP),
+        "--server.address", host, "--server.port", str(port), "--server.headless", "true",
+        "--browser.gatherUsageStats", "false", "--client.showErrorDetails", "none", "--client.toolbarMode", "minimal",
+        "--server.fileWatcherType", "none", "--server.runOnSave", "false",
+        "--theme.base", "light", "--theme.primaryColor", style.ACCENT, "--theme.textColor", style.INK,
+        "--theme.secondaryBackgroundColor", style.PAPER,
+    ]
+
+
+def run_dashboard(url: str, *, host: str, port: int, user: str, announce: Callable[[str], None]) -> None:
+    """Start the dashboard and wait until it stops (Ctrl+C stops it)."""
+    port = free_port(host, port)
+    environment = {**os.environ, ENV_DB: url, ENV_USER: user, "STREAMLIT_BROWSER_GATHER_USAGE_STATS": "false"}
+    process = subprocess.Popen(streamlit_command(host, port), env=environment, stdout=subprocess.DEVNULL)
+    shown_host = "127.0.0.1" if host in ("127.0.0.1", "localhost") else host
+    announce(f"Dashboard: http://{shown_host}:{port}  (press Ctrl+C to stop)")
+    announce(CAUTION)
+    try:
+        code = process.wait()
+    except KeyboardInterrupt:
+        process.terminate()
+        try:
+            process.wait(10)
+        except subprocess.TimeoutExpired:
+            process.kill()
+        return
+    if code != 0:
+        raise TrackerError(f"The dashboard stopped with exit code {code}.")
