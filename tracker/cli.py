@@ -322,6 +322,61 @@ def _serve(url: str, *, host: str, port: int, user: str) -> None:
     run_dashboard(url, host=host, port=port, user=user, announce=lambda line: click.echo(line))
 
 
+@cli.command("export")
+@click.option("--level", type=click.Choice(["visit", "nerve", "segment", "long"]), default="visit", show_default=True,
+              help="One row per visit, per nerve test, per segment, or per measured or derived quantity.")
+@click.option("--format", "file_format", type=click.Choice(["csv", "parquet", "xlsx"]), default="csv", show_default=True)
+@click.option("--out", type=click.Path(), metavar="PATH",
+              help="A folder (files named ncs-export-LEVEL.*) or a file stem. Default: the current folder.")
+@click.option("--diagnosis", "diagnoses", multiple=True, type=click.Choice(["cidp", "mmn", "gbs", "other"]),
+              help="Only visits with this working diagnosis (repeatable).")
+@click.option("--from", "date_from", metavar="YYYY-MM-DD", help="Only visits on or after this date.")
+@click.option("--to", "date_to", metavar="YYYY-MM-DD", help="Only visits on or before this date.")
+@click.option("--criteria", "criteria", metavar="ID", multiple=True, help="Criteria set whose verdicts to include (repeatable; default: all).")
+@click.option("--outcome", "outcomes", metavar="ID=VALUE", multiple=True,
+              help="Only visits where criteria set ID has this outcome (repeatable; values of one set are alternatives).")
+@click.option("--patients", metavar="CODE,...", help="Only these patients (comma-separated clinic codes).")
+@click.option("--dates", type=click.Choice(["shifted", "relative"]), default="shifted", show_default=True,
+              help="Dates moved by a secret per-patient shift, or only days since the patient's first visit.")
+@click.option("--limits", "limits_name", metavar="NAME", help="Normal-limit set (default: the one marked default).")
+@click.option("--identified", is_flag=True,
+              help="Include codes, names, record numbers, birth dates and real dates (role coordinator or admin only; audited).")
+@click.option("--overwrite", is_flag=True, help="Replace files of an earlier export at the same place.")
+@pass_context
+def export_command(context: Context, level: str, file_format: str, out: str | None, diagnoses: tuple[str, ...], date_from: str | None,
+                   date_to: str | None, criteria: tuple[str, ...], outcomes: tuple[str, ...], patients: str | None, dates: str,
+                   limits_name: str | None, identified: bool, overwrite: bool) -> None:
+    """Export the cohort for research: de-identified tables with a data dictionary and a manifest."""
+    from tracker.services.export import write_export
+    from tracker.services.export_tables import ExportOptions
+
+    pairs = []
+    for item in outcomes:
+        criteria_id, sep, value = item.partition("=")
+        if not sep or not criteria_id.strip() or not value.strip():
+            raise click.BadParameter(f"expected ID=VALUE such as efns-pns-2010-cidp=definite, got {item!r}", param_hint="--outcome")
+        pairs.append((criteria_id.strip(), value.strip()))
+    options = ExportOptions(
+        level=level, criteria=tuple(criteria), diagnoses=tuple(diagnoses),
+        date_from=_parse_date(date_from) if date_from else None, date_to=_parse_date(date_to) if date_to else None,
+        outcomes=tuple(pairs), patients=tuple(c.strip() for c in (patients or "").split(",") if c.strip()),
+        dates=dates, identified=identified, limits_name=limits_name,
+    )
+
+    def progress(done: int, total: int) -> None:
+        if total > options.chunk_visits:  # a one-chunk export needs no progress line
+            click.echo(f"  {done:,} of {total:,} visits exported", err=True)
+
+    with context.session_factory().begin() as session:
+        result = write_export(session, options, file_format=file_format, out=out, username=context.user, overwrite=overwrite, progress=progress)
+    kind = "IDENTIFIED export (recorded in the audit trail)" if identified else "de-identified export"
+    click.echo(f"{kind}: {result.visits} visits, {result.rows} rows at level {level}")
+    for written in result.files:
+        rows = f", {written.rows} rows" if written.rows is not None else ""
+        click.echo(f"  {written.role}: {written.path} ({written.size:,} bytes{rows}; sha256 {written.sha256[:16]}…)")
+    click.echo(CAUTION)
+
+
 def _parse_date(text: str) -> dt.date:
     try:
         return dt.date.fromisoformat(text)

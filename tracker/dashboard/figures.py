@@ -110,11 +110,12 @@ def trend_figure(fu: FollowUp, *, columns: int = 2) -> go.Figure:
     _shade_treatments(figure, fu)
     window = time_range(fu)
     figure.update_xaxes(range=list(window) if window else None, gridcolor=style.GRID, type="date")
+    treatments = len(fu.treatments)
     figure.update_layout(
-        template="plotly_white", height=250 * rows + 110, margin={"l": 50, "r": 20, "t": 80, "b": 40},
-        font={"color": style.INK}, hovermode="closest",
-        legend={"orientation": "h", "yanchor": "bottom", "y": 1.02, "x": 0},
-        title={"text": f"{fu.patient} — {fu.parameter.label} ({unit})", "x": 0, "font": {"size": 16}},
+        template="plotly_white", height=250 * rows + 120 + 14 * min(treatments, 3), font={"color": style.INK}, hovermode="closest",
+        margin={"l": 50, "r": 20, "t": 90, "b": 50 + 14 * min(treatments, 3)},
+        legend={"orientation": "h", "yanchor": "bottom", "y": 1.0 + 60 / (250 * rows), "x": 0},
+        meta={"patient": fu.patient, "parameter": fu.parameter.key, "criteria": fu.criteria},
     )
     return figure
 
@@ -130,10 +131,10 @@ def _shade_treatments(figure: go.Figure, fu: FollowUp) -> None:
         figure.add_vrect(
             x0=t.start_date, x1=end, fillcolor=style.TREATMENT_FILL, line_width=0, layer="below", row="all", col="all",
         )
-        # The label once, on the top edge of the figure (annotations in paper coordinates span every panel).
+        # The label once, under the bottom axis, staggered so that close starts do not overlap.
         figure.add_annotation(
-            x=t.start_date, y=1.0, xref="x", yref="paper", text=t.label, showarrow=False, xanchor="left", yanchor="bottom",
-            font={"size": 10, "color": style.ACCENT}, yshift=-14 * (number % 2),
+            x=t.start_date, y=0, xref="x", yref="paper", text=f"▸ {t.label}", showarrow=False, xanchor="left", yanchor="top",
+            font={"size": 10, "color": style.ACCENT}, yshift=-24 - 13 * (number % 3),
         )
 
 

@@ -6,13 +6,15 @@ through :func:`tracker.dashboard.state.writing`, which clears these caches.
 
 from __future__ import annotations
 
+import dataclasses
+
 import pandas as pd
 import streamlit as st
 
 from tracker.criteria.model import Settings
 from tracker.dashboard.state import reading
 from tracker.services import cohort, preferences
-from tracker.services.follow_up import FollowUp, follow_up
+from tracker.services.follow_up import FollowUp, follow_up, outcome_history
 from tracker.services.limit_sets import LimitSetInfo, list_limit_sets
 from tracker.services.records import PatientRecord, patient_codes, patient_record
 
@@ -34,7 +36,15 @@ def record(url: str, code: str) -> PatientRecord:
 @st.cache_data(ttl=TTL, show_spinner="Computing the follow-up…")
 def trend(url: str, code: str, parameter: str, criteria: str | None, limits_name: str | None, cold_limbs: str) -> FollowUp:
     with reading() as session:
-        return follow_up(session, code, parameter=parameter, criteria=criteria, limits_name=limits_name, settings=Settings(cold_limbs=cold_limbs))
+        fu = follow_up(session, code, parameter=parameter, criteria=criteria, limits_name=limits_name, settings=Settings(cold_limbs=cold_limbs), strip_criteria=[])
+    # The outcome strip does not depend on the parameter: cached on its own, so a parameter switch is quick.
+    return dataclasses.replace(fu, outcomes=strip(url, code, limits_name, cold_limbs))
+
+
+@st.cache_data(ttl=TTL, show_spinner=False)
+def strip(url: str, code: str, limits_name: str | None, cold_limbs: str) -> pd.DataFrame:
+    with reading() as session:
+        return outcome_history(session, code, limits_name=limits_name, settings=Settings(cold_limbs=cold_limbs))
 
 
 @st.cache_data(ttl=TTL, show_spinner=False)

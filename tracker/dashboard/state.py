@@ -29,7 +29,11 @@ def database_url() -> str:
     return resolve_database_url(None)[0]
 
 
-@st.cache_resource(show_spinner=False)
+def _release(engine: Engine) -> None:
+    engine.dispose()  # close pooled connections when the cache lets go of the engine
+
+
+@st.cache_resource(show_spinner=False, on_release=_release)
 def _engine(url: str) -> Engine:
     engine = make_engine(url)
     require_current_schema(engine)

@@ -29,6 +29,10 @@ def patient_picker(label: str = "Patient", *, key: str) -> str | None:
         st.info("No patients yet. Enter a study on the **New study** page, or import files.")
         return None
     current = current_patient()
+    linked = st.query_params.get("patient")  # a link such as /follow-up?patient=DEMO-04
+    if linked in codes and linked != st.session_state.get("_linked_patient"):
+        st.session_state["_linked_patient"] = current = linked
+        choose_patient(linked)
     index = codes.index(current) if current in codes else 0
     code = st.selectbox(label, codes, index=index, key=key, help="The clinic's pseudonymous patient code.")
     if code != st.session_state.get(PATIENT_KEY):

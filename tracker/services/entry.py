@@ -18,6 +18,7 @@ from sqlalchemy.orm import Session
 
 from tracker.errors import InputRejected, Problem
 from tracker.services.importing import ImportReport, import_table
+from tracker.services.records import patient_record
 from tracker.services.measurement_file import AMPLITUDES, OPTIONAL, REQUIRED
 from tracker.services.tables import parse_table
 
@@ -104,3 +105,21 @@ def import_upload(
     """Import an uploaded file (CSV or .xlsx) with the importer; raises :class:`InputRejected`."""
     suffix = "." + filename.rsplit(".", 1)[-1] if "." in filename else ""
     return import_table(session, parse_table(raw, suffix), username=username, dry_run=dry_run, replace=replace, allow_unusual=allow_unusual)
+
+
+def layout_from_latest_visit(session: Session, code: str) -> pd.DataFrame:
+    """The site table of the patient's latest visit with the layout kept (nerve, side, modality, site order,
+    label, distance) and the measured values emptied, to start the next study from. Raises NotFound."""
+    record = patient_record(session, code)
+    rows = []
+    if record.visits:
+        for nerve in record.visits[-1].nerves:
+            for site in nerve.sites:
+                rows.append({"nerve": nerve.nerve, "side": nerve.side, "modality": nerve.modality, "site_order": site.order, "site": site.label, "distance_mm": site.distance_mm})
+    frame = pd.DataFrame(rows).reindex(columns=SITE_COLUMNS)
+    for column in SITE_COLUMNS:
+        if column not in ("nerve", "side", "modality", "site", "site_order"):
+            frame[column] = frame[column].astype(float)
+    for column in ("nerve", "side", "modality", "site"):
+        frame[column] = frame[column].astype(object)
+    return frame

@@ -98,7 +98,8 @@ def follow_up(
     """The follow-up of patient ``code`` for one parameter (a key of :data:`PARAMETERS`).
 
     ``criteria``: the set whose thresholds are drawn (default: by the patient's diagnosis);
-    ``strip_criteria``: the sets shown in the per-visit outcome strip (default: all).
+    ``strip_criteria``: the sets shown in the per-visit outcome strip (default: all; ``[]``: none, when the
+    caller gets the strip from :func:`outcome_history`).
     """
     if parameter not in PARAMETERS:
         raise ValueError(f"Unknown parameter {parameter!r}; choose one of {', '.join(PARAMETERS)}")
@@ -110,19 +111,13 @@ def follow_up(
     info, limits = resolve(session, limits_name)
     visits, tests, sites = load_frames(session, visit_ids)
     dates = dict(zip(visits["visit_key"].astype(int), visits["visit_date"]))
-    strip = list(dict.fromkeys([criteria, *(strip_criteria or engine.available())]))
+    strip = list(dict.fromkeys([criteria, *(engine.available() if strip_criteria is None else strip_criteria)]))
     results = engine.evaluate(visits, tests, sites, limits, strip, settings) if len(tests) else {}
     nerves, paths = features.build(visits, tests, sites, limits) if len(tests) else (pd.DataFrame(), pd.DataFrame())
     points = _points(chosen, nerves, paths, results.get(criteria), dates)
     references = _references(chosen, nerves, results.get(criteria), dates)
-    outcomes = pd.DataFrame(
-        [
-            {"visit_date": dates[int(row.visit_key)], "criteria": cid, "outcome": str(row.outcome)}
-            for cid, result in results.items()
-            for row in result.outcomes.itertuples()
-        ],
-        columns=["visit_date", "criteria", "outcome"],
-    )
+    shown = results if strip_criteria is None else {cid: r for cid, r in results.items() if cid in strip_criteria}
+    outcomes = _outcome_rows(shown, dates)
     version = results[criteria].version if criteria in results else engine.REGISTRY[criteria].VERSION
     return FollowUp(
         patient=patient.code,
@@ -136,8 +131,34 @@ def follow_up(
         references=references,
         treatments=_treatments(session, patient.id),
         scores=_scores(session, patient.id),
-        outcomes=outcomes.sort_values(["criteria", "visit_date"], kind="stable").reset_index(drop=True),
+        outcomes=outcomes,
     )
+
+
+def _outcome_rows(results: dict, dates: dict[int, dt.date]) -> pd.DataFrame:
+    frame = pd.DataFrame(
+        [
+            {"visit_date": dates[int(row.visit_key)], "criteria": cid, "outcome": str(row.outcome)}
+            for cid, result in results.items()
+            for row in result.outcomes.itertuples()
+        ],
+        columns=["visit_date", "criteria", "outcome"],
+    )
+    return frame.sort_values(["criteria", "visit_date"], kind="stable").reset_index(drop=True)
+
+
+def outcome_history(
+    session: Session, code: str, *, criteria: list[str] | None = None, limits_name: str | None = None, settings: Settings | None = None
+) -> pd.DataFrame:
+    """Per visit of patient ``code``, the outcome of each criteria set (all by default): the outcome strip."""
+    patient = find_patient(session, code)
+    visit_ids = list(session.scalars(select(Visit.id).where(Visit.patient_id == patient.id)))
+    _, limits = resolve(session, limits_name)
+    visits, tests, sites = load_frames(session, visit_ids)
+    if not len(tests):
+        return _outcome_rows({}, {})
+    results = engine.evaluate(visits, tests, sites, limits, criteria or engine.available(), settings or Settings())
+    return _outcome_rows(results, dict(zip(visits["visit_key"].astype(int), visits["visit_date"])))
 
 
 def _points(chosen: Parameter, nerves: pd.DataFrame, paths: pd.DataFrame, result, dates: dict[int, dt.date]) -> pd.DataFrame:

@@ -8,12 +8,14 @@ import datetime as dt
 import pandas as pd
 import streamlit as st
 
-from tracker.dashboard.state import choose_patient, user, writing
+from tracker.dashboard.state import choose_patient, reading, user, writing
 from tracker.domain.vocabulary import DIAGNOSES, PHENOTYPES, SEXES
 from tracker.errors import InputRejected
-from tracker.services.entry import SITE_COLUMNS, enter_visit, import_upload
+from tracker.services.entry import SITE_COLUMNS, enter_visit, import_upload, layout_from_latest_visit
 
 PROBLEMS_KEY = "entry_problems"
+TEMPLATE_KEY = "entry_template"  # the site table the editor starts from (a copied layout)
+TEMPLATE_VERSION_KEY = "entry_template_version"
 st.title("New study")
 tab_form, tab_upload = st.tabs(["Enter by hand", "Upload a file"])
 
@@ -33,6 +35,13 @@ EMPTY = pd.DataFrame(
 
 with tab_form:
     st.caption("One row per stimulation site, distal site = 1. Motor amplitude in mV, sensory in µV; no response: amplitude 0 and latency empty.")
+    with st.expander("Start from the layout of a patient's latest visit (nerves, sites, distances)"):
+        layout_code = st.text_input("Patient code", key="entry_layout_code")
+        if st.button("Copy layout", key="entry_layout_go") and layout_code.strip():
+            with reading() as session:
+                st.session_state[TEMPLATE_KEY] = layout_from_latest_visit(session, layout_code.strip())
+            st.session_state[TEMPLATE_VERSION_KEY] = st.session_state.get(TEMPLATE_VERSION_KEY, 0) + 1
+            st.rerun()
     with st.form("entry_form", clear_on_submit=False):
         cols = st.columns(4)
         with cols[0]:
@@ -60,7 +69,7 @@ with tab_form:
         with cols[3]:
             allow_unusual = st.checkbox("Accept unusual values (recorded)", key="entry_unusual")
         sites = st.data_editor(
-            EMPTY, key="entry_sites", num_rows="dynamic", hide_index=False, width="stretch",
+            st.session_state.get(TEMPLATE_KEY, EMPTY), key=f"entry_sites_{st.session_state.get(TEMPLATE_VERSION_KEY, 0)}", num_rows="dynamic", hide_index=False, width="stretch",
             column_config={
                 "site_order": st.column_config.NumberColumn("site order", min_value=1, step=1),
                 "distance_mm": st.column_config.NumberColumn("distance (mm)"), "latency_ms": st.column_config.NumberColumn("latency (ms)"),

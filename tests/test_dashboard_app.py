@@ -1,0 +1,229 @@
+"""The dashboard driven by Streamlit's testing API (AppTest): every page renders on the demo clinic,
+a patient can be chosen, the parameter switched, a study entered (refused, then saved), settings changed.
+
+Caches are cleared between tests (Streamlit keeps them per process); runs get a generous timeout.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from pathlib import Path
+
+import pandas as pd
+import pytest
+import streamlit as st
+from sqlalchemy import func, select
+from streamlit.testing.v1 import AppTest
+
+from conftest import fingerprint, new_database
+from dashboard_support import fill_demo
+from tracker.db.models import AuditEvent, Patient, Visit
+from tracker.db.session import make_engine, make_session_factory
+from tracker.services import preferences
+from tracker.services.entry import SITE_COLUMNS
+
+APP = str(Path(__file__).resolve().parent.parent / "tracker" / "dashboard" / "app.py")
+PAGES = ["views/patients.py", "views/follow_up.py", "views/visit_review.py", "views/visit_entry.py", "views/cohort.py", "views/settings.py"]
+TITLES = ["Patients", "Follow-up", "Visit review", "New study", "Cohort", "Settings"]
+
+
+@pytest.fixture(scope="module", params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
+def demo_url(request, tmp_path_factory):
+    generator = new_database(request.param, tmp_path_factory.mktemp("apptest"))
+    url = next(generator)
+    fill_demo(url)
+    yield url
+    next(generator, None)
+
+
+@pytest.fixture
+def fresh_url(tmp_path):
+    """A demo database of its own, for tests that write (SQLite)."""
+    url = f"sqlite:///{tmp_path / 'entry.sqlite3'}"
+    fill_demo(url)
+    return url
+
+
+@pytest.fixture(autouse=True)
+def clean_streamlit():
+    st.cache_data.clear()
+    st.cache_resource.clear()
+    yield
+    st.cache_data.clear()
+    st.cache_resource.clear()
+
+
+def open_page(monkeypatch, url: str, page: str | None = None, *, patient: str | None = None) -> AppTest:
+    monkeypatch.setenv("NCS_TRACKER_DB", url)
+    monkeypatch.setenv("NCS_TRACKER_USER", "apptest")
+    at = AppTest.from_file(APP, default_timeout=120)
+    if patient:
+        at.session_state["ncs_patient"] = patient
+    at.run()
+    if page and page != PAGES[0]:
+        at.switch_page(page)
+        at.run()
+    assert not at.exception, [e.message for e in at.exception]
+    return at
+
+
+def plotly_specs(at: AppTest) -> list[dict]:
+    return [json.loads(chart.proto.spec) for chart in at.get("plotly_chart")]
+
+
+def page_text(at: AppTest) -> str:
+    parts = [m.value for m in at.markdown] + [c.value for c in at.caption] + [i.value for i in at.info] + [e.value for e in at.error]
+    return "\n".join(str(p) for p in parts)
+
+
+@pytest.mark.parametrize(("page", "title"), list(zip(PAGES, TITLES)))
+def test_every_page_renders_with_the_caution(monkeypatch, demo_url, page, title):
+    at = open_page(monkeypatch, demo_url, page)
+    assert [t.value for t in at.title] == [title]
+    assert not at.error, [e.value for e in at.error]
+    assert "must be reviewed by a qualified clinician" in page_text(at)
+
+
+def test_patient_list_search_filter_and_open(monkeypatch, demo_url):
+    at = open_page(monkeypatch, demo_url)
+    table = at.dataframe[0].value
+    assert list(table["patient"]) == [f"DEMO-0{i}" for i in range(1, 7)]
+    assert not table.filter(like="latest outcome").iloc[:, 0].str.contains("not evaluated").any()
+    at.text_input(key="patients_search").input("demo-04").run()
+    assert list(at.dataframe[0].value["patient"]) == ["DEMO-04"]
+    at.text_input(key="patients_search").input("").run()
+    at.selectbox(key="patients_diagnosis").select("gbs").run()
+    assert list(at.dataframe[0].value["patient"]) == ["DEMO-05"]
+    at.selectbox(key="patients_diagnosis").select(None).run()
+    at.selectbox(key="patients_open").select("DEMO-04").run()
+    at.button(key="patients_go").click().run()
+    assert not at.exception
+    assert [t.value for t in at.title] == ["Follow-up"]
+    assert at.selectbox(key="follow_patient").value == "DEMO-04"
+    [strip, trend, *_] = plotly_specs(at)
+    assert trend["layout"]["meta"]["patient"] == "DEMO-04"
+
+
+def test_latest_outcome_filter(monkeypatch, demo_url):
+    at = open_page(monkeypatch, demo_url)
+    at.selectbox(key="patients_criteria").select("efns-pns-2010-mmn").run()
+    everyone = at.dataframe[0].value
+    outcomes = everyone.filter(like="latest outcome").iloc[:, 0]
+    # The MMN patient (DEMO-04, invented) still shows a block at the latest visit; the others do not.
+    positive = sorted(everyone.loc[outcomes.isin(["definite", "probable"]), "patient"])
+    assert positive == ["DEMO-04"]
+    wanted = outcomes[everyone["patient"] == "DEMO-04"].iloc[0]
+    at.selectbox(key="patients_outcome").select(wanted).run()
+    shown = at.dataframe[0].value
+    assert list(shown["patient"]) == list(everyone.loc[outcomes == wanted, "patient"])
+
+
+def test_follow_up_switches_parameter(monkeypatch, demo_url):
+    at = open_page(monkeypatch, demo_url, "views/follow_up.py", patient="DEMO-01")
+    trend = plotly_specs(at)[1]
+    assert trend["layout"]["meta"]["parameter"] == "cv"
+    at.radio(key="follow_parameter").set_value("distal_latency").run()
+    assert not at.exception
+    trend = plotly_specs(at)[1]
+    assert trend["layout"]["meta"]["parameter"] == "distal_latency"
+    median = [t for t in trend["data"] if t.get("meta", {}).get("panel") == "median right (motor)" and t["meta"]["kind"] == "measured"][0]
+    # First value = the demo file's distal latency of that visit (demo_data/measurements.csv, invented): 7.05 ms.
+    assert median["customdata"][0][:2] == ["2023-02-14", "7.05"]
+
+
+def test_visit_review_shows_trace_and_outcome(monkeypatch, demo_url):
+    at = open_page(monkeypatch, demo_url, "views/visit_review.py", patient="DEMO-01")
+    at.selectbox(key="review_visit").select(dt.date(2023, 2, 14)).run()
+    at.multiselect(key="review_criteria").set_value(["efns-pns-2010-cidp"]).run()
+    assert not at.exception and not at.error
+    text = page_text(at)
+    # Hand-checked in tests/test_demo_outcomes.py: EFNS/PNS 2010 definite by distal latencies at this visit.
+    assert "▲ definite" in text
+    traces = [d.value for d in at.dataframe]
+    median = next(t for t in traces if "item" in t and (t["item"] == "dml").any() and t["value"].str.contains("7.05").any())
+    row = median[median["item"] == "dml"].iloc[0]
+    assert row["status"].startswith("▲ met") and "6.60" in row["threshold"] and "Van den Bergh" in row["source"]
+
+
+def entry_sites(latency_elbow: float) -> pd.DataFrame:
+    frame = pd.DataFrame(
+        {
+            "nerve": ["median", "median"], "side": ["right", "right"], "modality": ["motor", "motor"], "site_order": [1, 2],
+            "site": ["wrist", "elbow"], "distance_mm": [70.0, 230.0], "latency_ms": [3.8, latency_elbow], "amplitude_mv": [8.2, 7.9],
+            "temperature_c": [33.0, 33.0],
+        }
+    )
+    return frame.reindex(columns=SITE_COLUMNS)
+
+
+def fill_entry(at: AppTest, sites: pd.DataFrame) -> None:
+    # The site table is an st.data_editor, which AppTest cannot type into; the page starts the editor from
+    # its template state (what "Copy layout" fills), so the test sets that state and submits the form.
+    at.session_state["entry_template"] = sites
+    at.session_state["entry_template_version"] = at.session_state["entry_template_version"] + 1 if "entry_template_version" in at.session_state else 1
+    at.run()
+    at.text_input(key="entry_patient").input("TEST-NEW")
+    at.date_input(key="entry_date").set_value(dt.date(2026, 6, 1))
+    at.selectbox(key="entry_diagnosis").select("cidp")
+
+
+def test_entry_refused_then_saved_and_shown(monkeypatch, fresh_url):
+    engine = make_engine(fresh_url)
+    before = fingerprint(engine)
+    at = open_page(monkeypatch, fresh_url, "views/visit_entry.py")
+    # Elbow latency earlier than the wrist's: impossible (latencies grow proximally) — refused, nothing saved.
+    fill_entry(at, entry_sites(latency_elbow=3.0))
+    submit = next(b for b in at.button if b.label == "Check and save")
+    submit.click().run()
+    assert not at.exception
+    assert any("Nothing was saved" in e.value for e in at.error)
+    problems = next(d.value for d in at.dataframe if list(d.value.columns) == ["row", "field", "problem"])
+    assert problems.iloc[0]["row"] == 2 and problems.iloc[0]["field"] == "latency_ms"
+    assert fingerprint(engine) == before
+    # Corrected: 230 mm in 4.6 ms → 50.0 m/s; saved, and visible on the follow-up page.
+    fill_entry(at, entry_sites(latency_elbow=8.4))
+    submit = next(b for b in at.button if b.label == "Check and save")
+    submit.click().run()
+    assert not at.exception and not at.error, [e.value for e in at.error]
+    assert any("Saved: TEST-NEW 2026-06-01" in s.value for s in at.success)
+    with make_session_factory(engine)() as session:
+        assert session.scalar(select(func.count()).select_from(Visit).join(Patient).where(Patient.code == "TEST-NEW")) == 1
+    engine.dispose()
+    at.switch_page("views/follow_up.py")
+    at.run()
+    assert not at.exception
+    assert at.selectbox(key="follow_patient").value == "TEST-NEW"
+    trend = plotly_specs(at)[1]
+    [line] = [t for t in trend["data"] if t.get("meta", {}).get("kind") == "measured"]
+    assert line["customdata"][0][1] == "50.00"
+
+
+def test_settings_change_is_saved_and_audited(monkeypatch, fresh_url):
+    at = open_page(monkeypatch, fresh_url, "views/settings.py")
+    at.radio(key="settings_cold").set_value("exclude")
+    at.selectbox(key="settings_criteria").select("efns-pns-2010-cidp")
+    at.button(key="settings_save").click().run()
+    assert not at.exception
+    engine = make_engine(fresh_url)
+    with make_session_factory(engine)() as session:
+        assert preferences.cold_limbs(session) == "exclude"
+        assert preferences.default_criteria(session) == "efns-pns-2010-cidp"
+        users = set(session.scalars(select(AuditEvent.username).where(AuditEvent.entity == "setting")))
+    engine.dispose()
+    assert users == {"apptest"}
+
+
+def test_cohort_counts_match_the_database(monkeypatch, demo_url):
+    at = open_page(monkeypatch, demo_url, "views/cohort.py")
+    counts = at.dataframe[0].value.set_index("diagnosis")
+    engine = make_engine(demo_url)
+    with make_session_factory(engine)() as session:
+        visits = session.scalar(select(func.count()).select_from(Visit))
+        by_diagnosis = dict(session.execute(select(Visit.diagnosis, func.count()).group_by(Visit.diagnosis)).all())
+    engine.dispose()
+    assert int(counts["visits"].sum()) == visits == 29
+    assert {k: int(v) for k, v in counts["visits"].items()} == by_diagnosis
+    at.selectbox(key="cohort_diagnosis").select("mmn").run()
+    visits_table = at.dataframe[1].value
+    assert set(visits_table["diagnosis"]) == {"mmn"} and len(visits_table) == by_diagnosis["mmn"]

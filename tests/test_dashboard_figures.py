@@ -1,0 +1,206 @@
+"""Figure builders and the follow-up service, without Streamlit: what is drawn equals what is stored and what
+the criteria engine used."""
+
+from __future__ import annotations
+
+import datetime as dt
+
+import pytest
+from sqlalchemy import select
+
+from dashboard_support import demo_csv_rows, fill_demo
+from tracker.criteria import engine as criteria_engine
+from tracker.criteria.model import Settings
+from tracker.dashboard import figures, style
+from tracker.db.models import NerveTest, OutcomeScore, Patient, StimulationSite, Treatment, Visit
+from tracker.db.session import make_engine, make_session_factory
+from tracker.services.evaluation import load_frames
+from tracker.services.follow_up import PARAMETERS, follow_up
+from tracker.services.limit_sets import resolve
+
+from conftest import new_database
+
+
+@pytest.fixture(scope="module", params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
+def demo_sessions(request, tmp_path_factory):
+    generator = new_database(request.param, tmp_path_factory.mktemp("figures"))
+    url = next(generator)
+    fill_demo(url)
+    engine = make_engine(url)
+    yield make_session_factory(engine)
+    engine.dispose()
+    next(generator, None)
+
+
+def traces(figure, panel: str, kind: str):
+    return [t for t in figure.data if t.meta and t.meta.get("panel") == panel and t.meta.get("kind") == kind]
+
+
+def stored_sites(session, code: str, nerve: str, side: str, modality: str) -> dict[dt.date, list]:
+    rows = session.execute(
+        select(Visit.visit_date, StimulationSite.site_order, StimulationSite.distance_mm, StimulationSite.latency_ms, StimulationSite.amplitude_mv)
+        .join(NerveTest, NerveTest.id == StimulationSite.nerve_test_id)
+        .join(Visit, Visit.id == NerveTest.visit_id)
+        .join(Patient, Patient.id == Visit.patient_id)
+        .where(Patient.code == code, NerveTest.nerve == nerve, NerveTest.side == side, NerveTest.modality == modality)
+        .order_by(Visit.visit_date, StimulationSite.site_order)
+    ).all()
+    by_date: dict[dt.date, list] = {}
+    for row in rows:
+        by_date.setdefault(row.visit_date, []).append(row)
+    return by_date
+
+
+def test_forearm_velocity_by_hand_from_the_demo_file(demo_sessions):
+    # Conduction velocity = distance between two stimulation sites / difference of their onset latencies
+    # (mm/ms = m/s) — the standard definition (Preston DC, Shapiro BE, Electromyography and Neuromuscular
+    # Disorders, 3rd ed., 2013, ch. 3). Cells from demo_data/measurements.csv (invented data):
+    # DEMO-01 2023-02-14 median right motor: wrist 7.05 ms, elbow 14.00 ms, 222 mm apart.
+    rows = demo_csv_rows("DEMO-01", "2023-02-14", "median", "right", "motor")
+    assert [r["latency_ms"] for r in rows] == ["7.05", "14.00"] and rows[1]["distance_mm"] == "222"
+    by_hand = 222 / (14.00 - 7.05)  # = 31.94 m/s
+    with demo_sessions() as session:
+        fu = follow_up(session, "DEMO-01", parameter="cv", criteria="efns-pns-2010-cidp")
+    figure = figures.trend_figure(fu)
+    [measured] = traces(figure, "median right (motor)", "measured")
+    assert measured.x[0] == dt.date(2023, 2, 14)
+    assert measured.y[0] == pytest.approx(by_hand, abs=1e-6)
+    assert measured.y[0] == pytest.approx(31.94, abs=0.005)
+
+
+@pytest.mark.parametrize("parameter", ["cv", "distal_latency", "distal_cmap"])
+def test_plotted_values_equal_the_database(demo_sessions, parameter):
+    with demo_sessions() as session:
+        fu = follow_up(session, "DEMO-01", parameter=parameter, criteria="efns-pns-2010-cidp")
+        stored = stored_sites(session, "DEMO-01", "ulnar", "right", "motor")
+    figure = figures.trend_figure(fu)
+    plotted = traces(figure, "ulnar right (motor)", "measured")
+    if parameter == "cv":
+        # The ulnar nerve has two segments (forearm, across the elbow): one line each, arithmetic from stored rows.
+        forearm = next(t for t in plotted if t.meta["series"] == "wrist → below_elbow")
+        expected = [s[1].distance_mm / (s[1].latency_ms - s[0].latency_ms) for s in stored.values()]
+        assert list(forearm.y) == pytest.approx(expected, abs=1e-6)
+        across = next(t for t in plotted if t.meta["series"] == "below_elbow → above_elbow")
+        assert list(across.y) == pytest.approx([s[2].distance_mm / (s[2].latency_ms - s[1].latency_ms) for s in stored.values()], abs=1e-6)
+    else:
+        [line] = plotted
+        column = "latency_ms" if parameter == "distal_latency" else "amplitude_mv"
+        assert list(line.x) == list(stored)
+        assert list(line.y) == pytest.approx([getattr(s[0], column) for s in stored.values()])
+
+
+@pytest.mark.parametrize(
+    ("parameter", "item", "criteria", "published_fraction"),
+    [
+        # EFNS/PNS 2010 CIDP: motor CV ≤ 70 % of LLN; distal latency ≥ 150 % of ULN (Van den Bergh et al.,
+        # Eur J Neurol 2010;17:356–363).
+        ("cv", "cv", "efns-pns-2010-cidp", 0.70),
+        ("distal_latency", "dml", "efns-pns-2010-cidp", 1.50),
+        # Hadden et al., Ann Neurol 1998;44:780–788: F latency > 120 % of ULN (demyelinating criteria).
+        ("f_latency", "f_latency", "hadden-1998-gbs", 1.20),
+    ],
+)
+def test_reference_lines_are_the_limits_the_engine_used(demo_sessions, parameter, item, criteria, published_fraction):
+    with demo_sessions() as session:
+        fu = follow_up(session, "DEMO-01", parameter=parameter, criteria=criteria)
+        info, limits = resolve(session, None)
+        visits, tests, sites = load_frames(session, [v for v in session.scalars(select(Visit.id).join(Patient).where(Patient.code == "DEMO-01"))])
+    findings = criteria_engine.evaluate(visits, tests, sites, limits, [criteria], Settings())[criteria].findings
+    figure = figures.trend_figure(fu)
+    for panel in ("median right (motor)", "ulnar right (motor)"):
+        nerve = panel.split()[0]
+        rows = findings[(findings["item"] == item) & (findings["nerve"] == nerve)].drop_duplicates("visit_key")
+        [limit_line] = traces(figure, panel, "normal limit")
+        [threshold_line] = traces(figure, panel, "criteria threshold")
+        assert set(limit_line.y) == set(rows["limit"])
+        assert set(threshold_line.y) == set(rows["threshold"])
+        assert list(threshold_line.y) == pytest.approx([published_fraction * v for v in limit_line.y])
+
+
+def test_median_cv_lines_match_the_handbook_limit(demo_sessions):
+    # Median motor CV LLN 49 m/s (Preston & Shapiro, 3rd ed. 2013, appendix, adults); EFNS/PNS 2010:
+    # ≤ 70 % of LLN → 34.3 m/s.
+    with demo_sessions() as session:
+        fu = follow_up(session, "DEMO-03", parameter="cv", criteria="efns-pns-2010-cidp")
+    figure = figures.trend_figure(fu)
+    assert set(traces(figure, "median right (motor)", "normal limit")[0].y) == {49.0}
+    threshold = traces(figure, "median right (motor)", "criteria threshold")[0].y
+    assert list(threshold) == pytest.approx([34.3] * len(threshold))
+
+
+def test_treatments_shaded_and_scores_plotted(demo_sessions):
+    with demo_sessions() as session:
+        fu = follow_up(session, "DEMO-02", parameter="cv")
+        treatments = session.execute(select(Treatment.start_date).join(Patient).where(Patient.code == "DEMO-02")).all()
+        scores = session.execute(
+            select(OutcomeScore.score_date, OutcomeScore.value).join(Patient).where(Patient.code == "DEMO-02", OutcomeScore.scale == "incat").order_by(OutcomeScore.score_date)
+        ).all()
+    figure = figures.trend_figure(fu)
+    spans = [s for s in figure.layout.shapes if s.type == "rect"]
+    assert len(treatments) > 0
+    assert {str(s.x0)[:10] for s in spans} == {t.start_date.isoformat() for t in treatments}
+    labels = [a.text for a in figure.layout.annotations if a.text.startswith("▸")]
+    assert len(labels) == len(treatments)
+    score_figure = figures.scores_figure(fu)
+    [incat] = [t for t in score_figure.data if t.meta["scale"] == "incat"]
+    assert list(incat.y) == [s.value for s in scores]
+    assert list(incat.x) == [s.score_date for s in scores]
+    # One time axis: the trends, the scores and the outcome strip share the same range.
+    assert figure.layout.xaxis.range == score_figure.layout.xaxis.range == figures.outcome_strip(fu).layout.xaxis.range
+
+
+def test_cold_limb_is_marked_in_shape_and_hover(demo_sessions):
+    # DEMO-06's last visit has a cold foot (invented story); the lower-limb minimum is in the criteria tables.
+    with demo_sessions() as session:
+        fu = follow_up(session, "DEMO-06", parameter="distal_latency")
+    cold = fu.points[fu.points["cold"]]
+    assert len(cold) >= 1
+    figure = figures.trend_figure(fu)
+    row = cold.iloc[0]
+    [line] = traces(figure, row["panel"], "measured")
+    position = list(line.x).index(row["visit_date"])
+    assert line.marker.symbol[position] == "circle-open-dot"
+    assert "COLD" in line.customdata[position][3]
+    warm = [i for i in range(len(line.x)) if i != position]
+    assert all(line.marker.symbol[i] == "circle" for i in warm)
+
+
+def test_outcome_strip_words_and_shapes(demo_sessions):
+    with demo_sessions() as session:
+        fu = follow_up(session, "DEMO-01", parameter="cv")
+    strip = figures.outcome_strip(fu)
+    shown = {(str(x), y, text) for trace in strip.data for x, y, text in zip(trace.x, trace.y, trace.text)}
+    expected = {(str(r.visit_date), r.criteria, r.outcome.replace("_", " ")) for r in fu.outcomes.itertuples()}
+    assert shown == expected
+    assert len(expected) == len(fu.visit_dates) * len(criteria_engine.available())
+    # Status never by colour alone: every group has its own marker shape.
+    symbols = {trace.name: trace.marker.symbol for trace in strip.data}
+    assert len(set(symbols.values())) == len(symbols)
+    assert style.outcome_group("definite")[0] == "positive" and style.outcome_group("not_met")[0] == "negative"
+
+
+def test_every_parameter_builds_for_each_diagnosis(demo_sessions):
+    # A CIDP, an MMN and a GBS patient of the demo clinic (invented): every parameter, every panel.
+    with demo_sessions() as session:
+        for code in ("DEMO-01", "DEMO-04", "DEMO-05"):
+            for parameter in PARAMETERS:
+                fu = follow_up(session, code, parameter=parameter, strip_criteria=[])
+                figure = figures.trend_figure(fu)
+                measured = [t for t in figure.data if t.meta and t.meta.get("kind") == "measured"]
+                assert sum(len(t.y) for t in measured) == int(fu.points["value"].notna().sum())
+
+
+def test_unknown_parameter_is_refused(demo_sessions):
+    with demo_sessions() as session, pytest.raises(ValueError, match="Unknown parameter"):
+        follow_up(session, "DEMO-01", parameter="velocity")
+
+
+def test_outcome_history_equals_the_strip_of_follow_up(demo_sessions):
+    from tracker.services.follow_up import outcome_history
+
+    with demo_sessions() as session:
+        together = follow_up(session, "DEMO-04", parameter="block").outcomes
+        apart = outcome_history(session, "DEMO-04")
+        none = follow_up(session, "DEMO-04", parameter="block", strip_criteria=[]).outcomes
+    assert together.equals(apart)
+    assert none.empty

@@ -1,0 +1,205 @@
+"""Cohort export for research (``ncs-tracker export``): tidy tables at visit, nerve-test, segment or long
+level, de-identified by default, with a data dictionary and a manifest beside every file.
+
+- :func:`export_frame` returns the whole table as one pandas DataFrame (small cohorts, the dashboard, tests);
+- :func:`write_export` streams it to CSV, Parquet or Excel chunk by chunk (bounded memory), writes the
+  dictionary and the manifest, and records the export in the audit trail.
+
+What is removed by default, and how ids, dates and ages are made, is in :mod:`tracker.services.deidentify`;
+the columns and their meanings are in :mod:`tracker.services.export_columns`; the tables are built in
+:mod:`tracker.services.export_tables`; files are written by :mod:`tracker.services.export_files`.
+"""
+
+from __future__ import annotations
+
+import json
+import platform
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import openpyxl
+import pandas as pd
+import pyarrow
+import sqlalchemy
+from sqlalchemy.orm import Session
+
+from tracker import CAUTION, __version__
+from tracker.errors import TrackerError
+from tracker.services import audit, deidentify
+from tracker.services.export_columns import SCORE_WINDOW_DAYS, dictionary_frame, empty_frame
+from tracker.services.export_files import (
+    ExcelTable,
+    open_table,
+    output_paths,
+    sha256_of,
+    write_dictionary_csv,
+)
+from tracker.services.export_tables import ExportOptions, ExportPlan, prepare
+
+REMOVED_FIELDS = [
+    "patient code", "hospital record number", "name", "birth date", "birth year", "real visit dates", "examiner",
+    "laboratory", "treatment notes and every other free-text note",
+]
+
+
+@dataclass(frozen=True)
+class WrittenFile:
+    """One file written by an export: where, its SHA-256, size in bytes, and rows (None for the manifest)."""
+
+    role: str
+    path: Path
+    sha256: str
+    size: int
+    rows: int | None
+
+
+@dataclass(frozen=True)
+class ExportResult:
+    files: list[WrittenFile]
+    visits: int
+    rows: int
+    manifest: dict[str, Any]
+
+
+def export_frame(session: Session, options: ExportOptions, *, username: str) -> pd.DataFrame:
+    """The whole export table as one DataFrame (columns and order as in the files; not neutralised for spreadsheets)."""
+    plan = prepare(session, options, username=username)
+    chunks = list(plan.frames(session))
+    if not chunks:
+        return empty_frame(plan.columns)
+    return pd.concat(chunks, ignore_index=True)
+
+
+def write_export(
+    session: Session,
+    options: ExportOptions,
+    *,
+    file_format: str,
+    out: Path | str | None,
+    username: str,
+    overwrite: bool = False,
+    progress: Callable[[int, int], None] | None = None,
+) -> ExportResult:
+    """Write the export table, its dictionary and its manifest; audit the export; return what was written.
+
+    Files are written under temporary names and renamed only when everything succeeded; on any error the
+    partial files are removed. An identified export refused by :func:`deidentify.require_identified_permission`
+    writes nothing at all.
+    """
+    paths = output_paths(out, options.level, file_format)
+    existing = [p for p in paths.values() if p.exists()]
+    if existing and not overwrite:
+        raise TrackerError(f"{existing[0]} already exists; choose another --out or add --overwrite.")
+    plan = prepare(session, options, username=username)
+    for path in paths.values():
+        path.parent.mkdir(parents=True, exist_ok=True)
+    partial = {role: path.with_name(path.name + ".partial") for role, path in paths.items()}
+    try:
+        table = open_table(file_format, partial["data"], plan.columns)
+        try:
+            for frame in plan.frames(session, progress):
+                table.append(frame)
+        finally:
+            dictionary = dictionary_frame(plan.columns, caution=CAUTION)
+            if isinstance(table, ExcelTable):
+                table.close(dictionary)
+            else:
+                table.close()
+        written = [_file("data", partial["data"], paths["data"], table.rows)]
+        if "dictionary" in paths:
+            write_dictionary_csv(partial["dictionary"], dictionary)
+            written.append(_file("dictionary", partial["dictionary"], paths["dictionary"], len(dictionary)))
+        manifest = build_manifest(plan, file_format, written)
+        partial["manifest"].write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
+        _audit(session, plan, file_format, written, username)
+        for role, path in paths.items():
+            partial[role].replace(path)
+    except BaseException:
+        for path in partial.values():
+            path.unlink(missing_ok=True)
+        raise
+    files = [WrittenFile(f.role, paths[f.role], f.sha256, f.size, f.rows) for f in written]
+    files.append(WrittenFile("manifest", paths["manifest"], sha256_of(paths["manifest"]), paths["manifest"].stat().st_size, None))
+    return ExportResult(files, plan.visit_count, table.rows, manifest)
+
+
+def _file(role: str, written_path: Path, final_path: Path, rows: int) -> WrittenFile:
+    return WrittenFile(role, final_path, sha256_of(written_path), written_path.stat().st_size, rows)
+
+
+def _filters(plan: ExportPlan) -> dict[str, Any]:
+    options = plan.options
+    patients: dict[str, Any] | None = None
+    if plan.patients_filter:
+        # Patient codes are not written into a de-identified export, not even here: the export ids stand in.
+        patients = {"count": len(plan.patients_filter),
+                    "export_ids": sorted(deidentify.export_id(plan.secret, c) for c in plan.patients_filter)}
+        if options.identified:
+            patients["codes"] = plan.patients_filter
+    return {
+        "diagnosis": sorted(options.diagnoses) or None,
+        "from": options.date_from.isoformat() if options.date_from else None,
+        "to": options.date_to.isoformat() if options.date_to else None,
+        "outcome": [f"{c}={v}" for c, v in sorted(options.outcomes)] or None,
+        "patients": patients,
+    }
+
+
+def build_manifest(plan: ExportPlan, file_format: str, written: list[WrittenFile]) -> dict[str, Any]:
+    """The manifest: versions, what the values depend on, filters, row counts and file hashes. It holds no
+    timestamp, so it is byte-identical too when the database and the options are the same."""
+    options = plan.options
+    return {
+        "tool": "ncs-tracker",
+        "tool_version": __version__,
+        "caution": CAUTION,
+        "level": options.level,
+        "format": file_format,
+        "identified": options.identified,
+        "de_identification": None if options.identified else {
+            "export_id": "HMAC-SHA256 of the patient code keyed by this database's secret export key, first 16 hex digits",
+            "dates": ("visit_date_shifted: real date moved by a secret per-patient offset of 1 to 365 days (earlier or later), "
+                      "plus days_since_first_visit" if options.dates == "shifted" else "days_since_first_visit only"),
+            "ages": "age_at_visit over 89 shown as 90+ (HIPAA Safe Harbor, 45 CFR 164.514(b)(2)(i)(C))",
+            "removed": REMOVED_FIELDS,
+        },
+        "criteria": [{"id": s.criteria, "version": s.version, "column_prefix": s.alias} for s in plan.sets],
+        "criteria_settings": {k: getattr(options.settings, k) for k in ("cold_limbs", "sides_are_separate_nerves", "cv_segments", "block_path")},
+        "limits": {"name": plan.limits_info.name, "version": plan.limits_info.version},
+        "scores_rule": f"score on the visit date, else the nearest within ±{SCORE_WINDOW_DAYS} days (earlier on a tie)",
+        "filters": _filters(plan),
+        "visits_selected": plan.visit_count,
+        "chunk_visits": options.chunk_visits,
+        "files": [{"role": f.role, "name": f.path.name, "sha256": f.sha256, "bytes": f.size, "rows": f.rows} for f in written],
+        "identity_promise": (
+            "The same database, options and library versions give byte-identical data and dictionary files, and this "
+            "manifest (it holds no timestamp). The manifest's own hash is not listed in it."
+        ),
+        "library_versions": {
+            "python": platform.python_version(), "pandas": pd.__version__, "pyarrow": pyarrow.__version__,
+            "openpyxl": openpyxl.__version__, "sqlalchemy": sqlalchemy.__version__,
+        },
+    }
+
+
+def _audit(session: Session, plan: ExportPlan, file_format: str, written: list[WrittenFile], username: str) -> None:
+    options = plan.options
+    audit.record(
+        session,
+        username=username,
+        action="export_identified" if options.identified else "export",
+        entity="export",
+        entity_key=f"{options.level} {file_format}",
+        after={
+            "identified": options.identified,
+            "level": options.level,
+            "format": file_format,
+            "visits": plan.visit_count,
+            "filters": _filters(plan),
+            "files": {f.path.name: f.sha256 for f in written},
+            "rows": {f.path.name: f.rows for f in written},
+        },
+        detail="identified research export" if options.identified else "de-identified research export",
+    )
