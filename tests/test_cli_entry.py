@@ -80,7 +80,14 @@ def test_bad_input_gives_a_message_not_a_traceback(tmp_path):
 def test_demo_builds_a_fresh_database_each_time(tmp_path):
     path = tmp_path / "demo.sqlite3"
     for _ in range(2):
-        result = _run("demo", "--path", str(path))
+        result = _run("demo", "--path", str(path), "--no-serve")
         assert result.returncode == 0, result.stderr
         assert "added 29 visits" in result.stderr  # fresh each time: never "unchanged"
     assert "DEMO-06" in result.stdout and "invented" in result.stdout
+
+
+def test_serve_refuses_a_database_without_schema(tmp_path):
+    # Before starting a server: one line naming the command to run, exit 1, no traceback.
+    result = _run("--db", f"sqlite:///{tmp_path / 'missing.sqlite3'}", "serve", "--port", "8599")
+    assert result.returncode == 1
+    assert "ncs-tracker db upgrade" in result.stderr and "Traceback" not in result.stderr

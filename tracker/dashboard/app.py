@@ -21,14 +21,14 @@ st.markdown(style.CSS, unsafe_allow_html=True)
 
 PAGES = {
     "Clinic": [
-        st.Page(VIEWS / "patients.py", title="Patients", icon=":material/groups:", default=True, url_path="patients"),
-        st.Page(VIEWS / "follow_up.py", title="Follow-up", icon=":material/timeline:", url_path="follow-up"),
-        st.Page(VIEWS / "visit_review.py", title="Visit review", icon=":material/fact_check:", url_path="visit-review"),
-        st.Page(VIEWS / "visit_entry.py", title="New study", icon=":material/edit_note:", url_path="new-study"),
+        st.Page(VIEWS / "patients.py", title="Patients", default=True, url_path="patients"),
+        st.Page(VIEWS / "follow_up.py", title="Follow-up", url_path="follow-up"),
+        st.Page(VIEWS / "visit_review.py", title="Visit review", url_path="visit-review"),
+        st.Page(VIEWS / "visit_entry.py", title="New study", url_path="new-study"),
     ],
     "Research and set-up": [
-        st.Page(VIEWS / "cohort.py", title="Cohort", icon=":material/table_chart:", url_path="cohort"),
-        st.Page(VIEWS / "settings.py", title="Settings", icon=":material/tune:", url_path="settings"),
+        st.Page(VIEWS / "cohort.py", title="Cohort", url_path="cohort"),
+        st.Page(VIEWS / "settings.py", title="Settings", url_path="settings"),
     ],
 }
 page = st.navigation(PAGES)

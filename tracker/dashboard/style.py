@@ -29,7 +29,7 @@ OUTCOME_GROUPS = {
 }
 
 # Series colours for segments within one panel (Okabe–Ito, without the status colours first).
-SERIES = ["#0f6e74", "#CC79A7", "#56B4E9", "#009E73", "#F0E442", "#000000"]
+SERIES = ["#0f6e74", "#CC79A7", "#56B4E9", "#009E73", "#7a5195", "#000000"]
 LIMIT_COLOUR = "#009E73"  # normal limit: bluish green, dashed
 THRESHOLD_COLOUR = "#D55E00"  # criteria threshold: vermillion, dotted
 TREATMENT_FILL = "rgba(86, 180, 233, 0.16)"

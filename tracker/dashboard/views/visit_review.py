@@ -35,7 +35,7 @@ if code:
         st.stop()
     with writing() as session:  # the evaluation is saved with its versions
         check = check_visit(session, code, visit_date=visit_date, criteria=criteria, limits_name=limits_name, settings=Settings(cold_limbs=cold_limbs))
-    st.info("Decision support only: every verdict below must be reviewed by a qualified clinician.", icon=":material/info:")
+    st.info("Decision support only: every verdict below must be reviewed by a qualified clinician.")
     st.markdown(f"**{check.patient}** · visit **{check.visit_date.isoformat()}** · phenotype {check.phenotype or 'not stated'} · normal limits {check.limits.name} v{check.limits.version}")
 
     cards = st.columns(len(check.results))
@@ -52,7 +52,7 @@ if code:
 
     if len(check.warnings):
         for message in check.warnings["message"]:
-            st.warning(message, icon=":material/thermostat:")
+            st.warning(message)
     for criteria_id in check.results:
         miss = check.closest.get(criteria_id)
         if miss is not None and len(miss):

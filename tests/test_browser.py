@@ -1,0 +1,130 @@
+"""The dashboard in a real browser: Debian's headless Chromium driven by Playwright (never a downloaded
+browser) against ``ncs-tracker serve`` on a free local port.
+
+Skipped with a reason when Chromium is absent; required (fails instead) when the ``CI`` variable is set.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import shutil
+import signal
+import socket
+import subprocess
+import sys
+import time
+import urllib.request
+from pathlib import Path
+
+import pytest
+
+from dashboard_support import fill_demo
+from tracker.db.session import make_engine, make_session_factory
+from tracker.services.follow_up import follow_up
+
+pytestmark = pytest.mark.browser
+CHROMIUM_FLAGS = [
+    "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update",
+    "--disable-sync", "--no-first-run", "--disable-quic",
+]
+
+
+def chromium_path() -> str:
+    path = os.environ.get("NCS_TRACKER_CHROMIUM") or shutil.which("chromium") or ("/usr/bin/chromium" if Path("/usr/bin/chromium").exists() else None)
+    if path is None:
+        reason = "Debian's chromium is not installed (apt-get install -y chromium); the browser test needs it"
+        if os.environ.get("CI"):
+            pytest.fail(reason + " — required in CI")
+        pytest.skip(reason)
+    return path
+
+
+def free_port() -> int:
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        return probe.getsockname()[1]
+
+
+@pytest.fixture(scope="module")
+def served(tmp_path_factory):
+    """``ncs-tracker serve`` on the invented demo clinic; yields (base address, database URL)."""
+    chromium_path()
+    folder = tmp_path_factory.mktemp("browser")
+    url = f"sqlite:///{folder / 'demo.sqlite3'}"
+    fill_demo(url)
+    port = free_port()
+    log = (folder / "serve.log").open("w")
+    process = subprocess.Popen(
+        [sys.executable, "-c", "from tracker.cli import main; main()", "--db", url, "--user", "browser-test", "serve", "--port", str(port)],
+        stdout=log, stderr=subprocess.STDOUT, start_new_session=True,
+    )
+    base = f"http://127.0.0.1:{port}"
+    try:
+        deadline = time.monotonic() + 60
+        while True:
+            try:
+                with urllib.request.urlopen(f"{base}/_stcore/health", timeout=2) as answer:
+                    if answer.read().strip() == b"ok":
+                        break
+            except OSError:
+                pass
+            if process.poll() is not None or time.monotonic() > deadline:
+                log.flush()
+                pytest.fail(f"the dashboard did not start: {(folder / 'serve.log').read_text()[-2000:]}")
+            time.sleep(0.3)
+        yield base, url
+    finally:
+        # The server runs streamlit as a child: stop the whole process group.
+        try:
+            os.killpg(process.pid, signal.SIGTERM)
+            process.wait(15)
+        except (ProcessLookupError, subprocess.TimeoutExpired):
+            os.killpg(process.pid, signal.SIGKILL)
+            process.wait(5)
+        log.close()
+
+
+def test_follow_up_page_draws_and_hover_shows_the_value(served, tmp_path):
+    from playwright.sync_api import sync_playwright
+
+    base, url = served
+    engine = make_engine(url)
+    with make_session_factory(engine)() as session:
+        expected = follow_up(session, "DEMO-04", parameter="cv", strip_criteria=[]).points
+    engine.dispose()
+    shown_values = {f"{v:.2f}" for v in expected["value"]}
+
+    with sync_playwright() as playwright:
+        browser = playwright.chromium.launch(executable_path=chromium_path(), args=CHROMIUM_FLAGS)
+        try:
+            page = browser.new_page(viewport={"width": 1400, "height": 1800})
+            outside: list[str] = []
+            page.on("request", lambda request: outside.append(request.url) if not request.url.startswith(("http://127.0.0.1", "data:", "blob:")) else None)
+            started = time.perf_counter()
+            page.goto(f"{base}/follow-up?patient=DEMO-04")
+            page.wait_for_selector(".js-plotly-plot .scatterlayer path.js-line", timeout=60_000)
+            drawn = time.perf_counter() - started
+            page.get_by_text("DEMO-04", exact=False).first.wait_for(timeout=30_000)
+            assert page.get_by_text("must be reviewed by a qualified clinician", exact=False).count() >= 1
+
+            # Hover the first measured point of the trend chart (the second chart; the first is the outcome strip).
+            trend = page.locator(".js-plotly-plot").nth(1)
+            point = trend.locator(".scatterlayer .trace .points path").first
+            point.scroll_into_view_if_needed()
+            point.hover(force=True)
+            hover = trend.locator(".hoverlayer .hovertext").first
+            hover.wait_for(timeout=15_000)
+            text = hover.text_content() or ""  # SVG text: no innerText
+            numbers = set(re.findall(r"\d+\.\d{2}", text))
+            assert re.search(r"\d{4}-\d{2}-\d{2}", text), text
+            assert "m/s" in text and "limb temperature" in text, text
+            assert numbers & shown_values, (text, sorted(shown_values)[:5])
+
+            shot = tmp_path / "follow_up.png"
+            page.screenshot(path=str(shot), full_page=True)
+            assert shot.stat().st_size > 20_000
+            assert not outside, f"the page asked for outside addresses: {outside[:3]}"
+            print(f"follow-up page drawn in {drawn:.2f} s; screenshot {shot}")
+        finally:
+            browser.close()
