@@ -204,3 +204,16 @@ def test_outcome_history_equals_the_strip_of_follow_up(demo_sessions):
         none = follow_up(session, "DEMO-04", parameter="block", strip_criteria=[]).outcomes
     assert together.equals(apart)
     assert none.empty
+
+
+def test_visit_review_warns_once_per_cold_nerve_of_that_visit(demo_sessions):
+    # The previous visit is loaded too (for "changed since"), but its cold limbs are not this visit's.
+    from tracker.services.evaluation import check_visit
+
+    with demo_sessions() as session:
+        check = check_visit(session, "DEMO-06", visit_date=dt.date(2025, 9, 30), criteria=["ean-pns-2021-cidp"], limits_name=None)
+        session.rollback()
+    warnings = check.warnings
+    assert len(warnings) >= 1
+    assert set(warnings["visit_key"]) == {check.visit_key}
+    assert not warnings.duplicated(["nerve", "side", "modality"]).any()

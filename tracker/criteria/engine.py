@@ -41,10 +41,16 @@ def evaluate(
     limits: pd.DataFrame,
     criteria_ids: list[str] | None = None,
     settings: Settings | None = None,
+    *,
+    built: tuple[pd.DataFrame, pd.DataFrame] | None = None,
 ) -> dict[str, SetResult]:
-    """Every requested criteria set over every visit, in one vectorised pass per set."""
+    """Every requested criteria set over every visit, in one vectorised pass per set.
+
+    ``built``: the ``(nerves, paths)`` that :func:`features.build` gave for these same frames, when the
+    caller needs them too (the research export), so that they are not built twice.
+    """
     settings = settings or Settings()
-    nerves, paths = features.build(visits, tests, sites, limits)
+    nerves, paths = built if built is not None else features.build(visits, tests, sites, limits)
     results = {}
     # The sets share derived frames (motor nerve tests, best paths…): each is computed once here.
     with memo.shared():
@@ -57,8 +63,10 @@ def evaluate(
 
 
 def temperature_warnings(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
-    """Nerve tests recorded from a limb colder than the guideline minimum (no correction is applied)."""
-    nerves, _ = features.build(visits, tests, sites, limits)
+    """Nerve tests of ``visits`` recorded from a limb colder than the guideline minimum (no correction is
+    applied). Tests of other visits in ``tests`` are ignored."""
+    tests = tests[tests["visit_key"].isin(visits["visit_key"])]
+    nerves, _ = features.build(visits, tests, sites[sites["test_key"].isin(tests["test_key"])], limits)
     cold = nerves[nerves["cold"].fillna(False).astype(bool)]
     minimums = features.temperature_minimums()
     return pd.DataFrame(

@@ -51,8 +51,7 @@ if code:
         )
 
     if len(check.warnings):
-        for message in check.warnings["message"]:
-            st.warning(message)
+        st.warning("**Temperature** — " + "\n".join(f"\n- {m}" for m in check.warnings["message"]))
     for criteria_id in check.results:
         miss = check.closest.get(criteria_id)
         if miss is not None and len(miss):
