@@ -6,7 +6,7 @@ from __future__ import annotations
 import datetime as dt
 
 import pytest
-from sqlalchemy import select
+from sqlalchemy import func, select
 
 from dashboard_support import demo_csv_rows, fill_demo
 from tracker.criteria import engine as criteria_engine
@@ -217,3 +217,20 @@ def test_visit_review_warns_once_per_cold_nerve_of_that_visit(demo_sessions):
     assert len(warnings) >= 1
     assert set(warnings["visit_key"]) == {check.visit_key}
     assert not warnings.duplicated(["nerve", "side", "modality"]).any()
+
+
+def test_cohort_shares_add_up_per_criteria_set(demo_sessions):
+    from tracker.services.cohort import outcome_shares, visit_table
+
+    with demo_sessions() as session:
+        visits = visit_table(session, criteria=criteria_engine.available())
+        total = session.scalar(select(func.count()).select_from(Visit))
+    shares = outcome_shares(visits, criteria_engine.available())
+    figure = figures.outcome_share_figure(shares)
+    for criteria in criteria_engine.available():
+        bars = [(t.meta["outcome"], t.x[list(t.y).index(criteria)], t.customdata[list(t.y).index(criteria)]) for t in figure.data if criteria in t.y]
+        assert sum(count for _, _, count in bars) == total == 29
+        assert sum(share for _, share, _ in bars) == pytest.approx(100.0, abs=0.5)
+        # Every segment is the number of visits with that saved outcome.
+        for outcome, _, count in bars:
+            assert count == int((visits[criteria] == outcome).sum())

@@ -21,7 +21,7 @@ st.markdown(style.CSS, unsafe_allow_html=True)
 
 PAGES = {
     "Clinic": [
-        st.Page(VIEWS / "patients.py", title="Patients", default=True, url_path="patients"),
+        st.Page(VIEWS / "patients.py", title="Patients", default=True),  # the root address
         st.Page(VIEWS / "follow_up.py", title="Follow-up", url_path="follow-up"),
         st.Page(VIEWS / "visit_review.py", title="Visit review", url_path="visit-review"),
         st.Page(VIEWS / "visit_entry.py", title="New study", url_path="new-study"),

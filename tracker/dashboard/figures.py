@@ -189,15 +189,21 @@ def outcome_share_figure(shares: pd.DataFrame) -> go.Figure:
         figure.update_layout(title="No saved evaluations yet", template="plotly_white", height=200)
         return figure
     shares = shares.assign(group=[style.outcome_group(o)[0] for o in shares["outcome"]])
-    for outcome_value, group in shares.groupby("outcome", sort=True):
-        group_name = group["group"].iloc[0]
+    patterns = {"positive": "/", "negative": "", "other finding": "x", "not evaluable": "."}
+    legend_shown: set[str] = set()
+    # One trace per outcome value (each segment names its outcome), coloured and patterned by group.
+    for (group_name, outcome_value), group in shares.groupby(["group", "outcome"], sort=True):
+        word = str(outcome_value).replace("_", " ")
         figure.add_trace(
             go.Bar(
-                y=list(group["criteria"]), x=[float(v) for v in group["share_pct"]], orientation="h", name=str(outcome_value).replace("_", " "),
-                marker={"color": style.OUTCOME_GROUPS[group_name][2], "pattern": {"shape": {"positive": "/", "negative": "", "other finding": "x", "not evaluable": "."}[group_name]}},
-                customdata=list(group["visits"]), hovertemplate="%{y}: %{x:.1f} % (%{customdata} visits)<extra>" + str(outcome_value) + "</extra>",
-                meta={"panel": "cohort", "kind": "share"},
+                y=list(group["criteria"]), x=[float(v) for v in group["share_pct"]], orientation="h", name=group_name,
+                legendgroup=group_name, showlegend=group_name not in legend_shown, text=[word] * len(group), textposition="inside",
+                insidetextanchor="middle", textfont={"color": "white", "size": 11},
+                marker={"color": style.OUTCOME_GROUPS[group_name][2], "pattern": {"shape": patterns[group_name]}, "line": {"color": "white", "width": 1}},
+                customdata=list(group["visits"]), hovertemplate="%{y}: " + word + " %{x:.1f} % (%{customdata} visits)<extra></extra>",
+                meta={"panel": "cohort", "kind": "share", "outcome": str(outcome_value)},
             )
         )
+        legend_shown.add(group_name)
     figure.update_layout(barmode="stack", template="plotly_white", height=120 + 40 * shares["criteria"].nunique(), xaxis_title="% of visits", margin={"l": 160, "r": 20, "t": 30, "b": 40})
     return figure
