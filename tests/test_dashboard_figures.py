@@ -234,3 +234,33 @@ def test_cohort_shares_add_up_per_criteria_set(demo_sessions):
         # Every segment is the number of visits with that saved outcome.
         for outcome, _, count in bars:
             assert count == int((visits[criteria] == outcome).sum())
+
+
+def test_unusual_values_accepted_at_entry_are_flagged_in_review(tmp_path):
+    # Motor CV outside 10–100 m/s is refused as a probable unit error unless waived (DESIGN.md §4.1 rule;
+    # "common practice, no source" in tracker/reference/plausibility.csv). 230 mm over 1.9 ms = 121 m/s.
+    import pandas as pd
+
+    from dashboard_support import fill_demo
+    from tracker.services.entry import SITE_COLUMNS, enter_visit
+    from tracker.services.records import patient_record
+    from tracker.services.review import unusual_values
+
+    url = f"sqlite:///{tmp_path / 'unusual.sqlite3'}"
+    fill_demo(url)
+    sites = pd.DataFrame(
+        {"nerve": ["ulnar", "ulnar"], "side": ["left", "left"], "modality": ["motor", "motor"], "site_order": [1, 2], "site": ["wrist", "below_elbow"],
+         "distance_mm": [70.0, 230.0], "latency_ms": [3.1, 5.0], "amplitude_mv": [9.0, 8.8]}
+    ).reindex(columns=SITE_COLUMNS)
+    visit = {"patient": "TEST-UNUSUAL", "visit_date": dt.date(2026, 5, 4)}
+    engine = make_engine(url)
+    with make_session_factory(engine).begin() as session:
+        refused = enter_visit(session, visit, sites, username="test")
+        assert not refused.saved and refused.row_problems[0][1] == "distance_mm"
+        accepted = enter_visit(session, visit, sites, username="test", allow_unusual=True)
+        assert accepted.saved
+    with make_session_factory(engine)() as session:
+        record = patient_record(session, "TEST-UNUSUAL")
+    engine.dispose()
+    [message] = unusual_values(record.visits[0])
+    assert "121.1 m/s" in message and "ulnar left motor" in message

@@ -5,6 +5,7 @@ from __future__ import annotations
 import pandas as pd
 
 from tracker.criteria.thresholds import COMPARATORS
+from tracker.domain.plausibility import ranges
 from tracker.services.records import VisitRecord
 
 STATUS_WORDS = {"met": "▲ met", "not_met": "○ not met", "not_evaluable": "? not evaluable"}
@@ -66,3 +67,20 @@ def trace_table(findings: pd.DataFrame) -> pd.DataFrame:
             }
         )
     return pd.DataFrame(rows, columns=["nerve", "item", "parameter", "value", "normal limit", "threshold", "status", "source"])
+
+
+def unusual_values(visit: VisitRecord) -> list[str]:
+    """Stored values outside the plausibility ranges that an import may waive (``--allow-unusual``): they
+    were accepted on purpose, and a reviewer should know."""
+    limits = ranges()
+    messages = []
+    for nerve in visit.nerves:
+        name = f"{nerve.nerve} {nerve.side} {nerve.modality}"
+        checks = [("motor_velocity_m_per_s", g.name, g.velocity_m_per_s) for g in nerve.summary.segments if nerve.modality == "motor"]
+        if nerve.summary.sensory_velocity_m_per_s is not None:
+            checks.append(("sensory_velocity_m_per_s", "stimulation → recording", nerve.summary.sensory_velocity_m_per_s))
+        for quantity, where, value in checks:
+            rule = limits[quantity]
+            if value is not None and rule.outside([value])[0]:
+                messages.append(f"{name} {where}: {value:.1f} m/s is outside {rule.describe()} — accepted as an unusual value at import; check distance and latency")
+    return messages

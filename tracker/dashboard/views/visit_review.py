@@ -50,6 +50,10 @@ if code:
             unsafe_allow_html=True,
         )
 
+    visit = next(v for v in record.visits if v.visit_date == visit_date)
+    unusual = review.unusual_values(visit)
+    if unusual:
+        st.warning("**Unusual values** — " + "\n".join(f"\n- {m}" for m in unusual))
     if len(check.warnings):
         st.warning("**Temperature** — " + "\n".join(f"\n- {m}" for m in check.warnings["message"]))
     for criteria_id in check.results:
@@ -64,7 +68,6 @@ if code:
         else:
             st.caption(f"{criteria_id}: no finding changed since {check.previous_date.isoformat()}.")
 
-    visit = next(v for v in record.visits if v.visit_date == visit_date)
     measured, segments = review.measurement_tables(visit)
     tab_trace, tab_measured = st.tabs(["Criteria trace", "Measurements and segments"])
     with tab_trace:
