@@ -151,6 +151,7 @@ def build_manifest(plan: ExportPlan, file_format: str, written: list[WrittenFile
     """The manifest: versions, what the values depend on, filters, row counts and file hashes. It holds no
     timestamp, so it is byte-identical too when the database and the options are the same."""
     options = plan.options
+    filtering = {c for c, _ in options.outcomes}
     return {
         "tool": "ncs-tracker",
         "tool_version": __version__,
@@ -165,7 +166,11 @@ def build_manifest(plan: ExportPlan, file_format: str, written: list[WrittenFile
             "ages": "age_at_visit over 89 shown as 90+ (HIPAA Safe Harbor, 45 CFR 164.514(b)(2)(i)(C))",
             "removed": REMOVED_FIELDS,
         },
-        "criteria": [{"id": s.criteria, "version": s.version, "column_prefix": s.alias} for s in plan.sets],
+        "criteria": [
+            {"id": s.criteria, "version": s.version, "column_prefix": s.alias if s in plan.sets else None,
+             "used_for": (["columns"] if s in plan.sets else []) + (["outcome filter"] if s.criteria in filtering else [])}
+            for s in plan.evaluated_sets
+        ],
         "criteria_settings": {k: getattr(options.settings, k) for k in ("cold_limbs", "sides_are_separate_nerves", "cv_segments", "block_path")},
         "limits": {"name": plan.limits_info.name, "version": plan.limits_info.version},
         "scores_rule": f"score on the visit date, else the nearest within ±{SCORE_WINDOW_DAYS} days (earlier on a tie)",

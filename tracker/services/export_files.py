@@ -39,6 +39,7 @@ FIXED_DOCUMENT_TIME = dt.datetime(1980, 1, 1)
 # Excel's row limit (1,048,576 rows) less the header row.
 EXCEL_MAX_DATA_ROWS = 1_048_575
 COPY_BLOCK_BYTES = 1 << 20
+CSV_LINE_END = "\r\n"
 
 
 def neutralise_text(value: Any) -> Any:
@@ -62,19 +63,21 @@ def neutralise_frame(frame: pd.DataFrame, columns: list[Column]) -> pd.DataFrame
 
 
 class CsvTable:
-    """UTF-8 CSV without byte-order mark, ``\\n`` line ends, ISO dates, empty cells for missing values."""
+    """UTF-8 CSV without byte-order mark, ISO dates, empty cells for missing values, and CRLF line ends as
+    RFC 4180 has them: Python's CSV writer then quotes every cell that holds a line break or a carriage
+    return (with bare ``\\n`` line ends a carriage return inside a cell would split the row for some readers)."""
 
     def __init__(self, path: Path, columns: list[Column]):
         self.path = path
         self.columns = columns
         self.rows = 0
         self._handle = open(path, "w", encoding="utf-8", newline="")
-        pd.DataFrame(columns=[c.name for c in columns]).to_csv(self._handle, index=False, lineterminator="\n")
+        pd.DataFrame(columns=[c.name for c in columns]).to_csv(self._handle, index=False, lineterminator=CSV_LINE_END)
 
     def append(self, frame: pd.DataFrame) -> None:
         if frame.empty:
             return
-        neutralise_frame(frame, self.columns).to_csv(self._handle, header=False, index=False, lineterminator="\n")
+        neutralise_frame(frame, self.columns).to_csv(self._handle, header=False, index=False, lineterminator=CSV_LINE_END)
         self.rows += len(frame)
 
     def close(self) -> None:
@@ -180,7 +183,7 @@ def write_dictionary_csv(path: Path, dictionary: pd.DataFrame) -> None:
     """The data dictionary as UTF-8 CSV (text neutralised as in the data file)."""
     safe = dictionary.map(neutralise_text)
     with open(path, "w", encoding="utf-8", newline="") as handle:
-        safe.to_csv(handle, index=False, lineterminator="\n")
+        safe.to_csv(handle, index=False, lineterminator=CSV_LINE_END)
 
 
 def open_table(file_format: str, path: Path, columns: list[Column]) -> CsvTable | ParquetTable | ExcelTable:

@@ -1,0 +1,149 @@
+"""Peak memory of the research export: 100,000 visits against 10,000 visits (target ratio ≤ 1.5).
+
+Two SQLite databases of invented patients (the import benchmark's generator: 5 visits per patient, 4 motor
+nerves × 3 sites per visit, a fixed random state) are built with the tool's own importer, in a process of
+their own, and cached in a temporary folder (``$TMPDIR/ncs-export-benchmark``; delete it to rebuild).
+Then a lean measuring process (it imports neither pandas nor the tool: on Linux a child's max RSS starts
+from its parent's RSS at fork time) runs each export in a fresh child (``ncs-tracker``'s service, every
+criteria set, default chunk size) and reads that child's peak resident memory (max RSS) from ``os.wait4``;
+``resource.getrusage(RUSAGE_CHILDREN)`` of the measuring process (the largest of its children, which are
+only the exports) is printed beside it. The children also report the peak of Python-level allocations
+traced by ``tracemalloc`` when ``--tracemalloc`` is given (it slows the export down several-fold, so it is
+off by default).
+
+Run: ``python benchmarks/export_memory_benchmark.py [--level nerve] [--format parquet] [--tracemalloc]``.
+The benchmark is not part of the test suite; its figures are printed as measured.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+SIZES = (10_000, 100_000)
+VISITS_PER_PATIENT = 5
+CACHE = Path(tempfile.gettempdir()) / "ncs-export-benchmark"
+
+
+def database_for(visits: int) -> Path:
+    """The cached database of ``visits`` invented visits, built on first use."""
+    from import_benchmark import write_file  # the import benchmark's generator (same folder)
+
+    from tracker.db import migrate
+    from tracker.db.session import make_engine, make_session_factory
+    from tracker.services.importing import import_file
+
+    CACHE.mkdir(parents=True, exist_ok=True)
+    path = CACHE / f"visits{visits}.sqlite3"
+    done = path.with_suffix(".complete")
+    if path.exists() and done.exists():
+        return path
+    for leftover in (path, path.with_name(path.name + "-wal"), path.with_name(path.name + "-shm")):
+        leftover.unlink(missing_ok=True)
+    started = time.perf_counter()
+    csv_path = CACHE / f"visits{visits}.csv"
+    rows = write_file(csv_path, visits // VISITS_PER_PATIENT, VISITS_PER_PATIENT)
+    url = f"sqlite:///{path}"
+    migrate.upgrade(url)
+    engine = make_engine(url)
+    with make_session_factory(engine).begin() as session:
+        import_file(session, csv_path, username="benchmark")
+    engine.dispose()
+    csv_path.unlink()
+    done.write_text(f"{visits} visits, {rows} site rows\n", encoding="utf-8")
+    print(f"built {path.name}: {visits:,} visits, {rows:,} stimulation-site rows in {time.perf_counter() - started:.0f} s", flush=True)
+    return path
+
+
+def child(database: Path, out: Path, level: str, file_format: str, trace: bool) -> None:
+    """Run one export and print a JSON line with what it wrote (runs in a fresh process)."""
+    if trace:
+        import tracemalloc
+
+        tracemalloc.start()
+    from tracker.db.session import make_engine, make_session_factory
+    from tracker.services.export import write_export
+    from tracker.services.export_tables import ExportOptions
+
+    started = time.perf_counter()
+    engine = make_engine(f"sqlite:///{database}")
+    with make_session_factory(engine).begin() as session:
+        result = write_export(session, ExportOptions(level=level), file_format=file_format, out=f"{out}/", username="benchmark",
+                              overwrite=True)
+    engine.dispose()
+    report = {"visits": result.visits, "rows": result.rows, "seconds": time.perf_counter() - started,
+              "bytes": result.files[0].size, "chunk_visits": result.manifest["chunk_visits"]}
+    if trace:
+        report["tracemalloc_peak_mb"] = tracemalloc.get_traced_memory()[1] / 2**20
+    print(json.dumps(report), flush=True)
+
+
+def measure(database: Path, level: str, file_format: str, trace: bool) -> dict:
+    out = CACHE / f"out-{database.stem}"
+    command = [sys.executable, __file__, "--child", str(database), str(out), level, file_format] + (["--tracemalloc"] if trace else [])
+    process = subprocess.Popen(command, stdout=subprocess.PIPE, text=True)
+    output = process.stdout.read()
+    _, status, usage = os.wait4(process.pid, 0)
+    process.returncode = os.waitstatus_to_exitcode(status)
+    if process.returncode != 0:
+        raise SystemExit(f"export of {database.name} failed with exit code {process.returncode}")
+    report = json.loads(output.strip().splitlines()[-1])
+    report["max_rss_mb"] = usage.ru_maxrss / 1024  # Linux: kilobytes
+    return report
+
+
+def _run(arguments: list[str]) -> None:
+    """Run this script again with ``arguments`` in a fresh process; stop if it fails."""
+    finished = subprocess.run([sys.executable, __file__, *arguments])
+    if finished.returncode != 0:
+        raise SystemExit(f"{' '.join(arguments)} failed with exit code {finished.returncode}")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--level", default="nerve", choices=["visit", "nerve", "segment", "long"])
+    parser.add_argument("--format", dest="file_format", default="parquet", choices=["csv", "parquet", "xlsx"])
+    parser.add_argument("--tracemalloc", action="store_true", help="also trace Python allocations in the children (slow)")
+    parser.add_argument("--build", action="store_true", help=argparse.SUPPRESS)
+    parser.add_argument("--measure", action="store_true", help=argparse.SUPPRESS)
+    parser.add_argument("--child", nargs=4, metavar=("DATABASE", "OUT", "LEVEL", "FORMAT"), help=argparse.SUPPRESS)
+    args = parser.parse_args()
+    if args.child:
+        database, out, level, file_format = args.child
+        child(Path(database), Path(out), level, file_format, args.tracemalloc)
+        return
+    if args.build:
+        for size in SIZES:
+            database_for(size)
+        return
+    if not args.measure:
+        _run(["--build"])
+        _run(["--measure", "--level", args.level, "--format", args.file_format] + (["--tracemalloc"] if args.tracemalloc else []))
+        return
+    databases = {size: CACHE / f"visits{size}.sqlite3" for size in SIZES}
+    print(f"measuring process max RSS before the exports: {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB", flush=True)
+    results = {}
+    for size, database in databases.items():
+        report = measure(database, args.level, args.file_format, args.tracemalloc)
+        results[size] = report
+        traced = f", tracemalloc peak {report['tracemalloc_peak_mb']:.0f} MB" if "tracemalloc_peak_mb" in report else ""
+        print(f"{size:>7,} visits: level {args.level}, {args.file_format}, {report['rows']:,} rows, {report['bytes'] / 1e6:.1f} MB "
+              f"written in {report['seconds']:.1f} s (chunks of {report['chunk_visits']:,} visits); "
+              f"child max RSS {report['max_rss_mb']:.0f} MB{traced}", flush=True)
+    children = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+    print(f"getrusage(RUSAGE_CHILDREN).ru_maxrss (largest child): {children:.0f} MB")
+    small, large = (results[size] for size in SIZES)
+    print(f"ratio max RSS 100k / 10k: {large['max_rss_mb'] / small['max_rss_mb']:.2f} (target ≤ 1.5)")
+    if "tracemalloc_peak_mb" in small:
+        print(f"ratio tracemalloc peak 100k / 10k: {large['tracemalloc_peak_mb'] / small['tracemalloc_peak_mb']:.2f}")
+
+
+if __name__ == "__main__":
+    main()
