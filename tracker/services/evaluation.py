@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import datetime as dt
 import hashlib
+import math
 from dataclasses import dataclass
 from typing import Any
 
@@ -155,6 +156,7 @@ def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult],
         keys = list(fingerprints)
         session.execute(delete(Evaluation).where(Evaluation.visit_id.in_(keys), Evaluation.criteria_id == criteria_id, Evaluation.limit_set_id == info.id))
         outcomes = result.outcomes.set_index("visit_key")
+        payloads = to_json_many(result, [k for k in keys if k in outcomes.index])
         rows = []
         for key in keys:
             if key not in outcomes.index:
@@ -168,7 +170,7 @@ def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult],
                     "limit_set_version": info.version,
                     "input_sha256": fingerprints[key],
                     "outcome": str(outcomes.loc[key, "outcome"]),
-                    "result": to_json(result, key),
+                    "result": payloads[key],
                     "computed_at": utc_now(),
                 }
             )
@@ -223,43 +225,67 @@ def _plain(value: Any) -> Any:
 
 def to_json(result: SetResult, visit_key: int) -> dict[str, Any]:
     """The evaluation of one visit in the interchange shape of DESIGN.md §5 (without patient and date)."""
-    outcome = result.outcomes[result.outcomes["visit_key"] == visit_key].iloc[0]
-    findings = result.findings[result.findings["visit_key"] == visit_key]
-    nerves = []
-    for (nerve, side, modality), group in findings.groupby(["nerve", "side", "modality"], sort=True):
-        nerves.append(
+    return to_json_many(result, [visit_key])[visit_key]
+
+
+FINDING_TEXT = ("parameter", "item", "unit", "comparator", "status", "source", "source_status", "limit_source", "limit_status")
+
+
+def _text_or_none(value: Any) -> str | None:
+    return value if isinstance(value, str) and value else None
+
+
+def _number_or_none(value: Any) -> float | None:
+    if value is None or value is pd.NA:
+        return None
+    number = float(value)
+    return None if math.isnan(number) else round(number, 6)
+
+
+def to_json_many(result: SetResult, visit_keys: list[int]) -> dict[int, dict[str, Any]]:
+    """:func:`to_json` of many visits in one pass over the findings (a per-visit filter of the whole table
+    would make saving a cohort's evaluations quadratic)."""
+    wanted = set(int(k) for k in visit_keys)
+    findings = result.findings[result.findings["visit_key"].isin(wanted)]
+    # Nerves sorted as groupby(sort=True) would; findings keep their order within a nerve.
+    findings = findings.sort_values(["visit_key", "nerve", "side", "modality"], kind="stable")
+    columns = {c: findings[c].to_numpy(dtype=object) for c in ("visit_key", "nerve", "side", "modality", "segment", "value", "limit", "limit_name", "threshold", "reason", *FINDING_TEXT)}
+    nerves: dict[int, list[dict[str, Any]]] = {k: [] for k in wanted}
+    current: tuple | None = None
+    for i in range(len(findings)):
+        key = (int(columns["visit_key"][i]), columns["nerve"][i], columns["side"][i], columns["modality"][i])
+        if key != current:
+            current = key
+            nerves[key[0]].append({"nerve": key[1], "side": key[2], "modality": key[3], "findings": []})
+        nerves[key[0]][-1]["findings"].append(
             {
-                "nerve": nerve,
-                "side": side,
-                "modality": modality,
-                "findings": [
-                    {
-                        "parameter": row.parameter,
-                        "item": row.item,
-                        "segment": _plain(row.segment) if isinstance(row.segment, str) else None,
-                        "value": _plain(row.value),
-                        "unit": row.unit,
-                        "limit": _plain(row.limit),
-                        "limit_name": row.limit_name if isinstance(row.limit_name, str) and row.limit_name else None,
-                        "threshold": _plain(row.threshold),
-                        "comparator": row.comparator,
-                        "status": row.status,
-                        "reason": row.reason or None,
-                        "source": row.source if isinstance(row.source, str) else None,
-                        "source_status": row.source_status if isinstance(row.source_status, str) else None,
-                        "limit_source": row.limit_source if isinstance(row.limit_source, str) else None,
-                        "limit_status": row.limit_status if isinstance(row.limit_status, str) else None,
-                    }
-                    for row in group.itertuples()
-                ],
+                "parameter": columns["parameter"][i],
+                "item": columns["item"][i],
+                "segment": _text_or_none(columns["segment"][i]),
+                "value": _number_or_none(columns["value"][i]),
+                "unit": _text_or_none(columns["unit"][i]),
+                "limit": _number_or_none(columns["limit"][i]),
+                "limit_name": _text_or_none(columns["limit_name"][i]),
+                "threshold": _number_or_none(columns["threshold"][i]),
+                "comparator": _text_or_none(columns["comparator"][i]),
+                "status": columns["status"][i],
+                "reason": _text_or_none(columns["reason"][i]),
+                "source": _text_or_none(columns["source"][i]),
+                "source_status": _text_or_none(columns["source_status"][i]),
+                "limit_source": _text_or_none(columns["limit_source"][i]),
+                "limit_status": _text_or_none(columns["limit_status"][i]),
             }
         )
-    rule = outcome.get("rule")
-    payload = {"criteria": result.criteria, "criteria_version": result.version, "outcome": outcome["outcome"], "rule": rule if isinstance(rule, str) else None}
-    for key in result.extra_keys:
-        payload[key] = _plain(outcome[key])
-    payload["nerves"] = nerves
-    return _json_safe(payload)
+    payloads: dict[int, dict[str, Any]] = {}
+    for outcome in result.outcomes[result.outcomes["visit_key"].isin(wanted)].to_dict("records"):
+        key = int(outcome["visit_key"])
+        rule = outcome.get("rule")
+        payload = {"criteria": result.criteria, "criteria_version": result.version, "outcome": outcome["outcome"], "rule": rule if isinstance(rule, str) else None}
+        for extra in result.extra_keys:
+            payload[extra] = _json_safe(outcome[extra])
+        payload["nerves"] = nerves[key]
+        payloads[key] = payload
+    return payloads
 
 
 def _json_safe(value: Any) -> Any:
