@@ -161,15 +161,16 @@ def show_command(context: Context, patient: str, visit_date: str | None) -> None
               help="Criteria set id (repeatable), or 'all' for every set side by side. Default: by the visit's diagnosis.")
 @click.option("--limits", "limits_name", metavar="NAME", help="Normal-limit set (default: the one marked default).")
 @click.option("--format", "output", type=click.Choice(["text", "json"]), default="text", show_default=True)
-@click.option("--cold-limbs", type=click.Choice(["warn", "exclude"]), default="warn", show_default=True,
-              help="Limbs colder than the guideline minimum: keep the values and warn, or exclude the nerve.")
+@click.option("--cold-limbs", type=click.Choice(["warn", "exclude"]),
+              help="Limbs colder than the guideline minimum: keep the values and warn, or exclude the nerve "
+                   "(default: the database's setting, else warn).")
 @click.option("--sides-separate/--sides-together", default=True, show_default=True,
               help="Whether left and right of one nerve count as two nerves.")
 @click.option("--cv-segments", type=click.Choice(["standard", "all_outside_entrapment"]), default="standard", show_default=True,
               help="Segments used for conduction velocity.")
 @pass_context
 def check_command(context: Context, patient: str, visit_date: str | None, criteria: tuple[str, ...], limits_name: str | None,
-                  output: str, cold_limbs: str, sides_separate: bool, cv_segments: str) -> None:
+                  output: str, cold_limbs: str | None, sides_separate: bool, cv_segments: str) -> None:
     """Check a visit against published electrodiagnostic criteria, nerve by nerve, with the trace."""
     import json
 
@@ -178,10 +179,15 @@ def check_command(context: Context, patient: str, visit_date: str | None, criter
     from tracker.criteria.model import Settings
     from tracker.services.evaluation import check_visit
 
+    from tracker.services import preferences
+
     chosen = engine.available() if "all" in criteria else list(criteria) or None
-    settings = Settings(cold_limbs=cold_limbs, sides_are_separate_nerves=sides_separate, cv_segments=cv_segments)
     day = _parse_date(visit_date) if visit_date else None
     with context.session_factory().begin() as session:
+        # Unless asked otherwise, the clinic's settings (dashboard → Settings) apply here too.
+        if chosen is None and preferences.default_criteria(session):
+            chosen = [preferences.default_criteria(session)]
+        settings = Settings(cold_limbs=cold_limbs or preferences.cold_limbs(session), sides_are_separate_nerves=sides_separate, cv_segments=cv_segments)
         result = check_visit(session, patient, visit_date=day, criteria=chosen, limits_name=limits_name, settings=settings)
     if output == "json":
         click.echo(json.dumps(json_payload(result), indent=2, ensure_ascii=False))
@@ -217,10 +223,12 @@ def annotate_command(context: Context, patient: str, visit_date: str, phenotype:
 @pass_context
 def evaluate_command(context: Context, limits_name: str | None) -> None:
     """Recompute the saved evaluations of every visit whose data, limits or criteria changed."""
+    from tracker.criteria.model import Settings
+    from tracker.services import preferences
     from tracker.services.evaluation import refresh_evaluations
 
     with context.session_factory().begin() as session:
-        counts = refresh_evaluations(session, limits_name=limits_name)
+        counts = refresh_evaluations(session, limits_name=limits_name, settings=Settings(cold_limbs=preferences.cold_limbs(session)))
     click.echo(f"{counts['visits']} visits: {counts['recomputed']} evaluations recomputed, {counts['unchanged']} unchanged.")
 
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import streamlit as st
 
+from tracker.criteria.model import Settings
 from tracker.dashboard import reads
 from tracker.dashboard.state import choose_patient, database_url, user, writing
 from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker
@@ -35,7 +36,7 @@ if (table["latest_outcome"] == NOT_EVALUATED).any():
     st.warning("Some latest visits have no saved evaluation with these normal limits; they are shown as “not evaluated”, never as normal.")
     if st.button("Evaluate all visits now", key="patients_evaluate"):
         with st.spinner("Evaluating every visit against every criteria set…"), writing() as session:
-            counts = refresh_evaluations(session, limits_name=limits_name)
+            counts = refresh_evaluations(session, limits_name=limits_name, settings=Settings(cold_limbs=reads.clinic_settings(url)[1]))
         st.success(f"{counts['recomputed']} evaluations computed, {counts['unchanged']} already current.")
         st.rerun()
 
