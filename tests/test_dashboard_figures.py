@@ -264,3 +264,18 @@ def test_unusual_values_accepted_at_entry_are_flagged_in_review(tmp_path):
     engine.dispose()
     [message] = unusual_values(record.visits[0])
     assert "121.1 m/s" in message and "ulnar left motor" in message
+
+
+def test_cohort_download_neutralises_formula_like_codes():
+    # Formula injection in spreadsheets: text starting with = + - @ is prefixed with an apostrophe
+    # (common practice, no single source). Patient codes may start with '-' (letters, digits, . _ -).
+    import io
+
+    import pandas as pd
+
+    from tracker.services.cohort import csv_bytes
+
+    frame = pd.DataFrame({"patient": ["-1A", "DEMO-01"], "visit_date": [dt.date(2024, 1, 2), dt.date(2024, 3, 4)], "visits": [3, 4]})
+    back = pd.read_csv(io.BytesIO(csv_bytes(frame)), dtype=str)
+    assert list(back["patient"]) == ["'-1A", "DEMO-01"]
+    assert list(back["visits"]) == ["3", "4"] and list(back["visit_date"]) == ["2024-01-02", "2024-03-04"]

@@ -13,6 +13,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from tracker.db.models import Evaluation, Patient, Treatment, Visit
+from tracker.services.export_files import neutralise_text
 from tracker.services.follow_up import treatment_label
 from tracker.services.limit_sets import resolve
 
@@ -129,3 +130,12 @@ def outcome_shares(visits: pd.DataFrame, criteria: list[str]) -> pd.DataFrame:
         for outcome_value, count in counts.items():
             rows.append({"criteria": cid, "outcome": outcome_value, "visits": int(count), "share_pct": round(100.0 * count / len(visits), 1)})
     return pd.DataFrame(rows, columns=["criteria", "outcome", "visits", "share_pct"])
+
+
+def csv_bytes(frame: pd.DataFrame) -> bytes:
+    """The table as UTF-8 CSV for a download, with text that a spreadsheet would run as a formula neutralised."""
+    safe = frame.copy()
+    for column in safe.columns:
+        if not pd.api.types.is_numeric_dtype(safe[column]):
+            safe[column] = safe[column].astype(object).map(neutralise_text)
+    return safe.to_csv(index=False).encode("utf-8")

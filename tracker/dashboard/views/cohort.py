@@ -12,7 +12,7 @@ from tracker.dashboard import figures, reads
 from tracker.dashboard.state import database_url
 from tracker.dashboard.widgets import criteria_title, limits_picker
 from tracker.domain.vocabulary import DIAGNOSES
-from tracker.services.cohort import counts_by_diagnosis, outcome_shares
+from tracker.services.cohort import counts_by_diagnosis, csv_bytes, outcome_shares
 
 st.title("Cohort")
 url = database_url()
@@ -38,7 +38,7 @@ with right:
 st.subheader(f"Visits ({len(visits)})")
 st.dataframe(visits, hide_index=True, width="stretch", key="cohort_visits")
 st.download_button(
-    "Download this table (CSV, clinic use: contains patient codes)", visits.to_csv(index=False).encode("utf-8"),
+    "Download this table (CSV, clinic use: contains patient codes)", csv_bytes(visits),
     file_name="cohort_visits.csv", mime="text/csv", key="cohort_download",
 )
 st.caption("For research, use the de-identified export: `ncs-tracker export` (export ids instead of codes, shifted dates, a data dictionary and a manifest).")
