@@ -227,3 +227,24 @@ def test_cohort_counts_match_the_database(monkeypatch, demo_url):
     at.selectbox(key="cohort_diagnosis").select("mmn").run()
     visits_table = at.dataframe[1].value
     assert set(visits_table["diagnosis"]) == {"mmn"} and len(visits_table) == by_diagnosis["mmn"]
+
+
+@pytest.mark.parametrize("page", PAGES)
+def test_every_page_works_on_a_new_empty_database(monkeypatch, tmp_path, page):
+    # A clinic's first day: schema only, no patients, no limit sets stored yet.
+    from tracker.db import migrate
+
+    url = f"sqlite:///{tmp_path / 'empty.sqlite3'}"
+    migrate.upgrade(url)
+    at = open_page(monkeypatch, url, page)
+    assert not at.error, [e.value for e in at.error]
+    assert "must be reviewed by a qualified clinician" in page_text(at)
+
+
+def test_outdated_schema_is_explained_not_shown_as_a_traceback(monkeypatch, tmp_path):
+    url = f"sqlite:///{tmp_path / 'none.sqlite3'}"
+    monkeypatch.setenv("NCS_TRACKER_DB", url)
+    at = AppTest.from_file(APP, default_timeout=120)
+    at.run()
+    assert not at.exception
+    assert any("ncs-tracker db upgrade" in e.value for e in at.error)
