@@ -170,7 +170,7 @@ def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult],
                     "limit_set_version": info.version,
                     "input_sha256": fingerprints[key],
                     "outcome": str(outcomes.loc[key, "outcome"]),
-                    "result": payloads[key],
+                    "result": compact_trace(payloads[key]),
                     "computed_at": utc_now(),
                 }
             )
@@ -286,6 +286,50 @@ def to_json_many(result: SetResult, visit_keys: list[int]) -> dict[int, dict[str
         payload["nerves"] = nerves[key]
         payloads[key] = payload
     return payloads
+
+
+STORED_FORMAT = 2
+_SOURCE_FIELDS = ("source", "limit_source")
+
+
+def compact_trace(payload: dict[str, Any]) -> dict[str, Any]:
+    """The trace as stored in ``evaluations.result``: the same content, each citation written once.
+
+    Citations are long and repeated on every finding (about half of a trace's bytes); the stored form keeps
+    them in ``sources`` and refers to them by position. :func:`expand_trace` gives back the full shape.
+    """
+    sources: dict[str, int] = {}
+    nerves = []
+    for nerve in payload["nerves"]:
+        findings = []
+        for finding in nerve["findings"]:
+            item = dict(finding)
+            for name in _SOURCE_FIELDS:
+                text = item.pop(name)
+                item[f"{name}_ref"] = None if text is None else sources.setdefault(text, len(sources))
+            findings.append(item)
+        nerves.append({**nerve, "findings": findings})
+    return {**payload, "stored_format": STORED_FORMAT, "sources": list(sources), "nerves": nerves}
+
+
+def expand_trace(stored: dict[str, Any]) -> dict[str, Any]:
+    """The full trace (the shape of :func:`to_json`) from its stored form."""
+    if stored.get("stored_format") != STORED_FORMAT:
+        return stored
+    sources = stored["sources"]
+    nerves = []
+    for nerve in stored["nerves"]:
+        findings = []
+        for finding in nerve["findings"]:
+            item = {k: v for k, v in finding.items() if not k.endswith("_ref")}
+            for name in _SOURCE_FIELDS:
+                ref = finding[f"{name}_ref"]
+                item[name] = None if ref is None else sources[ref]
+            findings.append(item)
+        nerves.append({**nerve, "findings": findings})
+    payload = {k: v for k, v in stored.items() if k not in ("stored_format", "sources", "nerves")}
+    payload["nerves"] = nerves
+    return payload
 
 
 def _json_safe(value: Any) -> Any:
