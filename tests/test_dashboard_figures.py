@@ -279,3 +279,13 @@ def test_cohort_download_neutralises_formula_like_codes():
     back = pd.read_csv(io.BytesIO(csv_bytes(frame)), dtype=str)
     assert list(back["patient"]) == ["'-1A", "DEMO-01"]
     assert list(back["visits"]) == ["3", "4"] and list(back["visit_date"]) == ["2024-01-02", "2024-03-04"]
+
+
+def test_status_has_word_shape_and_colour_each_distinct():
+    # Colour-blind-safe: Okabe & Ito (2002) colours, and never colour alone (a word and a shape too).
+    words = [w for w, _, _ in style.STATUS.values()]
+    shapes = [s for _, s, _ in style.STATUS.values()]
+    colours = [c for _, _, c in style.STATUS.values()]
+    assert len(set(words)) == len(set(shapes)) == len(set(colours)) == 3
+    assert style.status_css("▲ met") != style.status_css("○ not met — F-waves present") != style.status_css("? not evaluable — missing")
+    assert style.status_css("met") == ""  # a bare word without its shape is not styled as a status

@@ -43,6 +43,14 @@ def outcome_group(outcome: str) -> tuple[str, str, str]:
     return "other finding", "◆", "#E69F00"
 
 
+def status_css(text: str) -> str:
+    """Cell style for a status written as ``▲ met …`` / ``○ not met …`` / ``? not evaluable …``."""
+    for word, shape, colour in STATUS.values():
+        if isinstance(text, str) and text.startswith(f"{shape} {word}"):
+            return f"color: {colour}; font-weight: 600"
+    return ""
+
+
 def status_text(status: str) -> str:
     """``▲ met`` / ``○ not met`` / ``? not evaluable``."""
     word, shape, _ = STATUS.get(status, (status, "", ""))

@@ -76,7 +76,7 @@ if code:
             trace = review.trace_table(result.findings)
             for nerve_label, rows in trace.groupby("nerve", sort=True):
                 st.markdown(f"**{nerve_label}**")
-                st.dataframe(rows.drop(columns=["nerve"]), hide_index=True, width="stretch")
+                st.dataframe(rows.drop(columns=["nerve"]).style.map(style.status_css, subset=["status"]), hide_index=True, width="stretch")
             st.caption("Status: ▲ met · ○ not met · ? not evaluable (missing data or a precondition not fulfilled — never read as normal). * = value from memory, not verified against the publication.")
     with tab_measured:
         st.markdown("**Stimulation sites**")
