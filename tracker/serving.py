@@ -33,7 +33,7 @@ def free_port(host: str, wanted: int, tries: int = 50) -> int:
 
 def streamlit_command(host: str, port: int) -> list[str]:
     return [
-        sys.executable, "-m", "streamlit", "run", str(APP),
+        sys.executable, "-m", "tracker.dashboard.launch", "run", str(APP),
         "--server.address", host, "--server.port", str(port), "--server.headless", "true",
         "--browser.gatherUsageStats", "false", "--client.showErrorDetails", "none", "--client.toolbarMode", "minimal",
         "--server.fileWatcherType", "none", "--server.runOnSave", "false",
