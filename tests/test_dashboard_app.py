@@ -248,3 +248,30 @@ def test_outdated_schema_is_explained_not_shown_as_a_traceback(monkeypatch, tmp_
     at.run()
     assert not at.exception
     assert any("ncs-tracker db upgrade" in e.value for e in at.error)
+
+
+def test_follow_up_says_when_a_set_has_no_threshold_for_the_parameter(monkeypatch, demo_url):
+    # EFNS/PNS 2010 MMN criteria are conduction-block criteria: no velocity threshold (Joint Task Force of the
+    # EFNS and the PNS, J Peripher Nerv Syst 2010;15:295–301).
+    at = open_page(monkeypatch, demo_url, "views/follow_up.py", patient="DEMO-04")
+    at.selectbox(key="follow_criteria").select("efns-pns-2010-mmn").run()
+    assert "sets no threshold on this parameter" in page_text(at)
+    at.radio(key="follow_parameter").set_value("block").run()
+    assert "Dotted vermillion: threshold of MMN" in page_text(at)
+    trend = plotly_specs(at)[1]
+    lines = [t for t in trend["data"] if t.get("meta", {}).get("kind") == "criteria threshold"]
+    # Definite motor conduction block: negative-peak area reduction ≥ 50 % (same publication).
+    assert lines and all(set(_numbers(t["y"])) == {50.0} for t in lines)
+    blocks = [t for t in trend["data"] if t.get("meta", {}).get("kind") == "measured"]
+    assert blocks and all(t["meta"]["series"].startswith("wrist →") or "→" in t["meta"]["series"] for t in blocks)
+
+
+def _numbers(values) -> list[float]:
+    """Plotly 7 sends numeric arrays as base64 ``bdata``; plain lists stay lists."""
+    if isinstance(values, dict) and "bdata" in values:
+        import base64
+
+        import numpy as np
+
+        return list(np.frombuffer(base64.b64decode(values["bdata"]), dtype=values["dtype"]).astype(float))
+    return [float(v) for v in values]

@@ -289,3 +289,23 @@ def test_status_has_word_shape_and_colour_each_distinct():
     assert len(set(words)) == len(set(shapes)) == len(set(colours)) == 3
     assert style.status_css("▲ met") != style.status_css("○ not met — F-waves present") != style.status_css("? not evaluable — missing")
     assert style.status_css("met") == ""  # a bare word without its shape is not styled as a status
+
+
+def test_mmn_block_is_plotted_per_segment_on_negative_peak_area(demo_sessions):
+    # EFNS/PNS 2010 MMN (J Peripher Nerv Syst 2010;15:295–301): definite block = negative-peak area reduced
+    # ≥ 50 % proximal vs distal over a segment. Demo file (invented), DEMO-04 2024-02-20 left ulnar:
+    # wrist area 26.7 mV·ms, below elbow 10.0 → (26.7 − 10.0) / 26.7 = 62.5 % (by hand; tests/test_demo_outcomes).
+    rows = demo_csv_rows("DEMO-04", "2024-02-20", "ulnar", "left", "motor")
+    assert [r["area_mvms"] for r in rows[:2]] == ["26.7", "10.0"]
+    with demo_sessions() as session:
+        mmn = follow_up(session, "DEMO-04", parameter="block", criteria="efns-pns-2010-mmn", strip_criteria=[])
+        cidp = follow_up(session, "DEMO-04", parameter="block", criteria="efns-pns-2010-cidp", strip_criteria=[])
+    point = mmn.points[(mmn.points["panel"] == "ulnar left (motor)") & (mmn.points["visit_date"] == dt.date(2024, 2, 20)) & (mmn.points["series"] == "wrist → below_elbow")]
+    assert point["value"].tolist() == pytest.approx([(26.7 - 10.0) / 26.7 * 100], abs=1e-4)
+    threshold = mmn.references[(mmn.references["panel"] == "ulnar left (motor)") & (mmn.references["kind"] == "criteria threshold")]
+    assert set(threshold["value"]) == {50.0}
+    # The CIDP sets judge block on amplitude from the distal site: the same nerve shows the amplitude drop,
+    # EFNS/PNS 2010 CIDP definite block ≥ 50 % (Van den Bergh et al., Eur J Neurol 2010;17:356–363).
+    amplitude = cidp.points[(cidp.points["panel"] == "ulnar left (motor)") & (cidp.points["visit_date"] == dt.date(2024, 2, 20)) & (cidp.points["series"] == "wrist → below_elbow")]
+    by_hand = (float(rows[0]["amplitude_mv"]) - float(rows[1]["amplitude_mv"])) / float(rows[0]["amplitude_mv"]) * 100
+    assert amplitude["value"].tolist() == pytest.approx([by_hand], abs=1e-4)

@@ -16,7 +16,7 @@ import pandas as pd
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from tracker.criteria import engine, features
+from tracker.criteria import engine, features, thresholds
 from tracker.criteria.model import Settings
 from tracker.db.models import OutcomeScore, Treatment, Visit
 from tracker.services.limit_sets import LimitSetInfo, resolve
@@ -114,11 +114,11 @@ def follow_up(
     strip = list(dict.fromkeys([criteria, *(engine.available() if strip_criteria is None else strip_criteria)]))
     results = engine.evaluate(visits, tests, sites, limits, strip, settings) if len(tests) else {}
     nerves, paths = features.build(visits, tests, sites, limits) if len(tests) else (pd.DataFrame(), pd.DataFrame())
-    points = _points(chosen, nerves, paths, results.get(criteria), dates)
+    points = _points(chosen, nerves, paths, criteria, dates)
     references = _references(chosen, nerves, results.get(criteria), dates)
     shown = results if strip_criteria is None else {cid: r for cid, r in results.items() if cid in strip_criteria}
     outcomes = _outcome_rows(shown, dates)
-    version = results[criteria].version if criteria in results else engine.REGISTRY[criteria].VERSION
+    version = results[criteria].version if criteria in results else thresholds.load(criteria).version
     return FollowUp(
         patient=patient.code,
         diagnosis=patient.diagnosis,
@@ -161,7 +161,7 @@ def outcome_history(
     return _outcome_rows(results, dict(zip(visits["visit_key"].astype(int), visits["visit_date"])))
 
 
-def _points(chosen: Parameter, nerves: pd.DataFrame, paths: pd.DataFrame, result, dates: dict[int, dt.date]) -> pd.DataFrame:
+def _points(chosen: Parameter, nerves: pd.DataFrame, paths: pd.DataFrame, criteria: str, dates: dict[int, dt.date]) -> pd.DataFrame:
     if nerves.empty:
         return pd.DataFrame(columns=POINT_COLUMNS)
     nerves = nerves[nerves["modality"] == chosen.modality]
@@ -170,10 +170,8 @@ def _points(chosen: Parameter, nerves: pd.DataFrame, paths: pd.DataFrame, result
         motor = paths[paths["test_key"].isin(nerves["test_key"])]
         if chosen.key == "cv":
             column, series = "segment_velocity", "segment"
-        elif chosen.key == "block":
-            column, series = _block_column(result), "path"
         else:
-            column, series = "duration_increase_pct", "path"
+            column, series = _path_column(chosen, criteria)
         frame = motor[motor[column].notna()]
         frame = pd.DataFrame(
             {
@@ -210,13 +208,17 @@ def _points(chosen: Parameter, nerves: pd.DataFrame, paths: pd.DataFrame, result
     return frame[POINT_COLUMNS].reset_index(drop=True)
 
 
-def _block_column(result) -> str:
-    """Negative-peak area where the chosen set defines block on area (EFNS/PNS 2010 MMN), else amplitude."""
-    if result is not None and not result.findings.empty:
-        items = result.findings[result.findings["item"].isin(PARAMETERS["block"].items)]
-        if len(items) and items["parameter"].astype(str).str.contains("area").any() and not items["parameter"].astype(str).str.contains("amplitude").any():
-            return "area_reduction_pct"
-    return "amplitude_reduction_pct"
+def _path_column(chosen: Parameter, criteria: str) -> tuple[str, str]:
+    """(paths column, series column) of a block or dispersion parameter: the feature the chosen set's
+    threshold table names for its item (``segment_area_reduction_pct`` for EFNS/PNS 2010 MMN, measured per
+    segment; ``amplitude_reduction_pct`` from the distal site for the CIDP sets …), so the plotted value is
+    the one the threshold applies to."""
+    default = {"block": "amplitude_reduction_pct", "dispersion": "duration_increase_pct"}[chosen.key]
+    table = thresholds.load(criteria)
+    feature = next((r.parameter for item in chosen.items for r in table.rows if r.item == item), default)
+    if feature not in features.PATH_COLUMNS:  # e.g. "either amplitude or area": plot the amplitude reduction
+        feature = default
+    return feature, ("segment" if feature.startswith("segment_") else "path")
 
 
 def _references(chosen: Parameter, nerves: pd.DataFrame, result, dates: dict[int, dt.date]) -> pd.DataFrame:

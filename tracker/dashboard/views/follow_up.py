@@ -32,10 +32,13 @@ if code:
     )
     st.plotly_chart(figures.outcome_strip(fu), key="follow_strip", width="stretch")
     st.plotly_chart(figures.trend_figure(fu), key="follow_trend", width="stretch")
+    has_threshold = (fu.references["kind"] == "criteria threshold").any()
+    has_limit = (fu.references["kind"] == "normal limit").any()
     st.caption(
-        f"Dashed green: normal limit ({fu.limits.name} v{fu.limits.version}). Dotted vermillion: threshold of "
-        f"{criteria_title(fu.criteria)} (version {fu.criteria_version}). Open circles with a dot: limb colder than the "
-        f"guideline minimum (policy: {cold_limbs}). Shaded: treatment periods."
+        (f"Dashed green: normal limit ({fu.limits.name} v{fu.limits.version}). " if has_limit else "No normal limit applies to this parameter. ")
+        + (f"Dotted vermillion: threshold of {criteria_title(fu.criteria)} (version {fu.criteria_version}). " if has_threshold
+           else f"{criteria_title(fu.criteria)} sets no threshold on this parameter. ")
+        + f"Open circles with a dot: limb colder than the guideline minimum (policy: {cold_limbs}). Shaded: treatment periods."
     )
     if len(fu.scores):
         st.plotly_chart(figures.scores_figure(fu), key="follow_scores", width="stretch")
