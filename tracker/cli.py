@@ -276,6 +276,50 @@ def limits_default(context: Context, name: str) -> None:
     click.echo(f"Default normal limits: {info.name} v{info.version}.")
 
 
+@cli.group()
+def users() -> None:
+    """Users and roles: who may receive an identified export (coordinator, admin)."""
+
+
+@users.command("list")
+@pass_context
+def users_list(context: Context) -> None:
+    from tracker.services.users import list_users
+
+    with context.session_factory()() as session:
+        rows = list_users(session)
+    if not rows:
+        click.echo("No users registered. Add one with: ncs-tracker users add NAME --role ROLE")
+    for u in rows:
+        click.echo(f"{u.username:<24} {u.role:<12} {'active' if u.active else 'inactive':<9} {u.display_name or ''}".rstrip())
+
+
+@users.command("add")
+@click.argument("username")
+@click.option("--role", required=True, type=click.Choice(["viewer", "clinician", "coordinator", "admin"]), help="What the user may do.")
+@click.option("--name", "display_name", help="The person's name as shown to colleagues (optional).")
+@pass_context
+def users_add(context: Context, username: str, role: str, display_name: str | None) -> None:
+    """Add a user, or change an existing user's role (audited)."""
+    from tracker.services.users import set_user
+
+    with context.session_factory().begin() as session:
+        user, outcome = set_user(session, username, role=role, display_name=display_name, acting=context.user)
+    click.echo(f"User {user.username}: role {user.role} ({outcome}).")
+
+
+@users.command("deactivate")
+@click.argument("username")
+@pass_context
+def users_deactivate(context: Context, username: str) -> None:
+    """Withdraw a user's rights; the user stays in the audit trail."""
+    from tracker.services.users import deactivate_user
+
+    with context.session_factory().begin() as session:
+        user = deactivate_user(session, username, acting=context.user)
+    click.echo(f"User {user.username}: inactive.")
+
+
 @cli.command("demo")
 @click.option("--path", "db_path", type=click.Path(path_type=Path, dir_okay=False), help="Where to build the demo database (default: the user data folder).")
 @click.option("--port", type=int, default=8501, show_default=True, help="Port of the dashboard (the next free one if taken).")

@@ -88,7 +88,7 @@ def require_identified_permission(session: Session, username: str) -> str:
         raise NotPermitted(
             f"An identified export is refused: user {username!r} is not registered in this database. "
             f"An administrator grants it by adding the user to the users table with role {allowed} "
-            "(for example: INSERT INTO users (username, role, created_at) VALUES ('<name>', 'coordinator', CURRENT_TIMESTAMP)). "
+            f"(ncs-tracker users add {username} --role coordinator). "
             "Without --identified the export is de-identified and needs no role."
         )
     if not user.active or user.role not in IDENTIFIED_EXPORT_ROLES:
