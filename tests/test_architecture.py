@@ -14,6 +14,9 @@ FORBIDDEN = {
     "criteria": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli"),
     "db": ("streamlit", "plotly", "click", "tracker.services", "tracker.cli"),
     "services": ("streamlit", "plotly", "click", "tracker.cli"),
+    # Pages read widgets, call services, render: no SQL, no models, no criteria rules of their own.
+    "dashboard/views": ("sqlalchemy", "tracker.db", "tracker.criteria.rules", "tracker.criteria.sets", "tracker.criteria.features", "click", "tracker.cli"),
+    "dashboard": ("click", "tracker.cli"),
 }
 
 
