@@ -309,3 +309,32 @@ def test_mmn_block_is_plotted_per_segment_on_negative_peak_area(demo_sessions):
     amplitude = cidp.points[(cidp.points["panel"] == "ulnar left (motor)") & (cidp.points["visit_date"] == dt.date(2024, 2, 20)) & (cidp.points["series"] == "wrist → below_elbow")]
     by_hand = (float(rows[0]["amplitude_mv"]) - float(rows[1]["amplitude_mv"])) / float(rows[0]["amplitude_mv"]) * 100
     assert amplitude["value"].tolist() == pytest.approx([by_hand], abs=1e-4)
+
+
+def test_upload_goes_through_the_importer(tmp_path):
+    # The New study page's upload hands the file's bytes to the importer: same checks, same all-or-nothing.
+    from tracker.db import migrate
+    from tracker.errors import InputRejected
+    from tracker.services.demo import demo_data_dir
+    from tracker.services.entry import import_upload
+
+    from conftest import fingerprint
+
+    url = f"sqlite:///{tmp_path / 'upload.sqlite3'}"
+    migrate.upgrade(url)
+    engine = make_engine(url)
+    raw = (demo_data_dir() / "measurements.csv").read_bytes()
+    with make_session_factory(engine).begin() as session:
+        report = import_upload(session, raw, "measurements.csv", username="test", dry_run=True)
+    assert report.dry_run and report.added == 29
+    before = fingerprint(engine)
+    broken = raw.replace(b"DEMO-01,2023-02-14,median,right,motor,2,elbow,222,14.00", b"DEMO-01,2023-02-14,median,right,motor,2,elbow,222,abc", 1)
+    with pytest.raises(InputRejected) as refused, make_session_factory(engine).begin() as session:
+        import_upload(session, broken, "measurements.csv", username="test")
+    assert any(p.row == 3 and p.column == "latency_ms" for p in refused.value.problems)
+    assert fingerprint(engine) == before
+    with make_session_factory(engine).begin() as session:
+        assert import_upload(session, raw, "measurements.csv", username="test").added == 29
+    with pytest.raises(InputRejected, match="Unsupported file type"), make_session_factory(engine).begin() as session:
+        import_upload(session, raw, "measurements.pdf", username="test")
+    engine.dispose()
