@@ -14,6 +14,7 @@ from sqlalchemy import Engine
 
 from tracker import CAUTION, __version__
 from tracker.config import ENV_DB, ENV_USER, acting_user, resolve_database_url, sqlite_url, user_data_dir
+from tracker.domain.vocabulary import DIAGNOSES, PHENOTYPES, USER_ROLES
 from tracker.errors import SchemaNotReady, TrackerError
 
 
@@ -198,7 +199,7 @@ def check_command(context: Context, patient: str, visit_date: str | None, criter
 @cli.command("annotate")
 @click.argument("patient")
 @click.option("--visit", "visit_date", metavar="YYYY-MM-DD", required=True, help="The visit to annotate.")
-@click.option("--phenotype", type=click.Choice(["typical", "distal", "multifocal", "focal", "motor", "sensory"]), help="CIDP phenotype at this visit.")
+@click.option("--phenotype", type=click.Choice(PHENOTYPES), help="CIDP phenotype at this visit.")
 @click.option("--wrist-entrapment", "wrist", multiple=True, metavar="SIDE=yes|no",
               help="Median distal latency explained by neuropathy at the wrist on that side (repeatable), e.g. right=yes.")
 @pass_context
@@ -284,6 +285,7 @@ def users() -> None:
 @users.command("list")
 @pass_context
 def users_list(context: Context) -> None:
+    """The users of this database with their roles."""
     from tracker.services.users import list_users
 
     with context.session_factory()() as session:
@@ -296,7 +298,7 @@ def users_list(context: Context) -> None:
 
 @users.command("add")
 @click.argument("username")
-@click.option("--role", required=True, type=click.Choice(["viewer", "clinician", "coordinator", "admin"]), help="What the user may do.")
+@click.option("--role", required=True, type=click.Choice(USER_ROLES), help="What the user may do.")
 @click.option("--name", "display_name", help="The person's name as shown to colleagues (optional).")
 @pass_context
 def users_add(context: Context, username: str, role: str, display_name: str | None) -> None:
@@ -380,7 +382,7 @@ def _serve(url: str, *, host: str, port: int, user: str) -> None:
 @click.option("--format", "file_format", type=click.Choice(["csv", "parquet", "xlsx"]), default="csv", show_default=True)
 @click.option("--out", type=click.Path(), metavar="PATH",
               help="A folder (files named ncs-export-LEVEL.*) or a file stem. Default: the current folder.")
-@click.option("--diagnosis", "diagnoses", multiple=True, type=click.Choice(["cidp", "mmn", "gbs", "other"]),
+@click.option("--diagnosis", "diagnoses", multiple=True, type=click.Choice(DIAGNOSES),
               help="Only visits with this working diagnosis (repeatable).")
 @click.option("--from", "date_from", metavar="YYYY-MM-DD", help="Only visits on or after this date.")
 @click.option("--to", "date_to", metavar="YYYY-MM-DD", help="Only visits on or before this date.")

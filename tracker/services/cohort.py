@@ -22,11 +22,9 @@ NOT_EVALUATED = "not evaluated"
 PATIENT_COLUMNS = ["patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit", "current_treatment", "latest_outcome"]
 
 
-def _evaluations(session: Session, criteria: str, limits_name: str | None, visit_ids: list[int] | None = None) -> pd.DataFrame:
-    info, _ = resolve(session, limits_name)
-    query = select(Evaluation.visit_id, Evaluation.outcome).where(Evaluation.criteria_id == criteria, Evaluation.limit_set_id == info.id)
-    if visit_ids is not None:
-        query = query.where(Evaluation.visit_id.in_(visit_ids))
+def _evaluations(session: Session, criteria: str, limit_set_id: int) -> pd.DataFrame:
+    """Saved outcomes of ``criteria`` with one normal-limit set: visit_id, outcome."""
+    query = select(Evaluation.visit_id, Evaluation.outcome).where(Evaluation.criteria_id == criteria, Evaluation.limit_set_id == limit_set_id)
     return pd.DataFrame(session.execute(query).all(), columns=["visit_id", "outcome"])
 
 
@@ -62,7 +60,7 @@ def patient_list(
         ).all(),
         columns=["visit_id", "id"],
     )
-    outcomes = _evaluations(session, criteria, limits_name).merge(latest, on="visit_id")
+    outcomes = _evaluations(session, criteria, resolve(session, limits_name)[0].id).merge(latest, on="visit_id")
     frame = frame.merge(outcomes[["id", "outcome"]], on="id", how="left")
     frame["latest_outcome"] = frame["outcome"].astype(object).where(frame["outcome"].notna(), NOT_EVALUATED)
     frame.loc[frame["visits"] == 0, "latest_outcome"] = "no visits"
@@ -103,8 +101,9 @@ def visit_table(
     if end:
         query = query.where(Visit.visit_date <= end)
     frame = pd.DataFrame(session.execute(query.order_by(Patient.code, Visit.visit_date)).all(), columns=["visit_id", "patient", "visit_date", "diagnosis", "phenotype"])
+    limit_set_id = resolve(session, limits_name)[0].id
     for cid in criteria:
-        saved = _evaluations(session, cid, limits_name).rename(columns={"outcome": cid})
+        saved = _evaluations(session, cid, limit_set_id).rename(columns={"outcome": cid})
         frame = frame.merge(saved, on="visit_id", how="left")
         frame[cid] = frame[cid].astype(object).where(frame[cid].notna(), NOT_EVALUATED)
     return frame.drop(columns=["visit_id"])

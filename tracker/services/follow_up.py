@@ -112,8 +112,9 @@ def follow_up(
     visits, tests, sites = load_frames(session, visit_ids)
     dates = dict(zip(visits["visit_key"].astype(int), visits["visit_date"]))
     strip = list(dict.fromkeys([criteria, *(engine.available() if strip_criteria is None else strip_criteria)]))
-    results = engine.evaluate(visits, tests, sites, limits, strip, settings) if len(tests) else {}
     nerves, paths = features.build(visits, tests, sites, limits) if len(tests) else (pd.DataFrame(), pd.DataFrame())
+    # The engine reuses the feature tables the points are read from (built once per page).
+    results = engine.evaluate(visits, tests, sites, limits, strip, settings, built=(nerves, paths)) if len(tests) else {}
     points = _points(chosen, nerves, paths, criteria, dates)
     references = _references(chosen, nerves, results.get(criteria), dates)
     shown = results if strip_criteria is None else {cid: r for cid, r in results.items() if cid in strip_criteria}
@@ -247,7 +248,7 @@ def _references(chosen: Parameter, nerves: pd.DataFrame, result, dates: dict[int
                     {
                         "panel": panel_name(row.nerve, row.side, row.modality), "visit_key": int(row.visit_key),
                         "visit_date": dates[int(row.visit_key)], "kind": "criteria threshold", "value": float(row.threshold),
-                        "label": str(row.limit_name or "fixed") if isinstance(row.limit_name, str) and row.limit_name else "fixed",
+                        "label": row.limit_name if isinstance(row.limit_name, str) and row.limit_name else "fixed",
                         "comparator": str(row.comparator), "source": str(row.source),
                     }
                 )

@@ -23,7 +23,7 @@ def measurement_tables(visit: VisitRecord) -> tuple[pd.DataFrame, pd.DataFrame]:
                     "nerve": name, "site": f"{s.order} {s.label or ''}".strip(), "distance_mm": s.distance_mm, "latency_ms": s.latency_ms,
                     "amplitude": s.amplitude, "unit": unit, "duration_ms": s.duration_ms, "area_mVms": s.area_mvms,
                     "temperature_c": nerve.temperature_c,
-                    "f_latency_ms": "absent" if nerve.f_absent else nerve.f_latency_ms,
+                    "f_latency_ms": "absent" if nerve.f_absent else ("" if nerve.f_latency_ms is None else f"{nerve.f_latency_ms:g}"),
                 }
             )
         for g in nerve.summary.segments:
@@ -36,11 +36,7 @@ def measurement_tables(visit: VisitRecord) -> tuple[pd.DataFrame, pd.DataFrame]:
             )
         if nerve.summary.sensory_velocity_m_per_s is not None:
             segments.append({"nerve": name, "segment": "stimulation → recording", "velocity_m_s": nerve.summary.sensory_velocity_m_per_s})
-    sites_frame = pd.DataFrame(sites)
-    if len(sites_frame):
-        sites_frame["f_latency_ms"] = sites_frame["f_latency_ms"].astype(object).where(sites_frame["f_latency_ms"].notna(), "")
-        sites_frame["f_latency_ms"] = sites_frame["f_latency_ms"].map(lambda v: v if isinstance(v, str) else f"{v:g}")
-    return sites_frame, pd.DataFrame(segments)
+    return pd.DataFrame(sites), pd.DataFrame(segments)
 
 
 def _number(value) -> str:
