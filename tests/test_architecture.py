@@ -11,6 +11,7 @@ PACKAGE = Path(__file__).resolve().parent.parent / "tracker"
 
 FORBIDDEN = {
     "domain": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli", "tracker.criteria"),
+    "response": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli"),
     "criteria": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli"),
     "db": ("streamlit", "plotly", "click", "tracker.services", "tracker.cli"),
     "services": ("streamlit", "plotly", "click", "tracker.cli"),

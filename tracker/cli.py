@@ -196,6 +196,44 @@ def check_command(context: Context, patient: str, visit_date: str | None, criter
         click.echo(text(result))
 
 
+@cli.command("response")
+@click.argument("patient")
+@click.option("--visit", "visit_date", metavar="YYYY-MM-DD", help="Judge as on this visit (default: the latest visit or score).")
+@click.option("--rules", "rules_id", metavar="ID", help="Response rule set (default: trial-aincat; 'ncs-tracker response --list-rules').")
+@click.option("--rules-file", "rules_files", multiple=True, type=click.Path(path_type=Path, dir_okay=False, exists=True),
+              help="A clinic's own rule sets (CSV, columns as tracker/reference/response_rules.csv); repeatable.")
+@click.option("--reproducibility", "reproducibility_file", type=click.Path(path_type=Path, dir_okay=False, exists=True),
+              help="A laboratory's own between-session variability (CSV, as tracker/reference/reproducibility.csv).")
+@click.option("--window", type=click.Choice(["regimen", "all"]), default="regimen", show_default=True,
+              help="Trend window: the current regimen, or all follow-up.")
+@click.option("--all-changes", is_flag=True, help="List every change, not only those beyond their threshold.")
+@click.option("--list-rules", is_flag=True, help="List the rule sets and exit.")
+@click.option("--format", "output", type=click.Choice(["text", "json"]), default="text", show_default=True)
+@pass_context
+def response_command(context: Context, patient: str, visit_date: str | None, rules_id: str | None, rules_files: tuple[Path, ...],
+                     reproducibility_file: Path | None, window: str, all_changes: bool, list_rules: bool, output: str) -> None:
+    """Is the patient better, stable or worse on each treatment regimen — and why (changes against published thresholds)."""
+    import json
+
+    from tracker.response.rules import rule_sets
+
+    if list_rules:
+        for rule_set in rule_sets(rules_files).values():
+            click.echo(f"{rule_set.id} (version {rule_set.version}, {rule_set.origin}): {rule_set.title}")
+        return
+    from tracker.response_report import text
+    from tracker.services.response import patient_response, response_json
+
+    day = _parse_date(visit_date) if visit_date else None
+    with context.session_factory().begin() as session:
+        result = patient_response(session, patient, visit_date=day, rules_id=rules_id, rules_files=rules_files,
+                                  reproducibility_file=reproducibility_file, window=window)
+    if output == "json":
+        click.echo(json.dumps(response_json(result), indent=2, ensure_ascii=False))
+    else:
+        click.echo(text(result, all_changes=all_changes))
+
+
 @cli.command("annotate")
 @click.argument("patient")
 @click.option("--visit", "visit_date", metavar="YYYY-MM-DD", required=True, help="The visit to annotate.")

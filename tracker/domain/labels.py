@@ -1,0 +1,63 @@
+"""Words for people: labels (with units) for the identifiers of the response analysis.
+
+Screens, text output and reports use these; JSON, exports and code keep the identifiers.
+"""
+
+from __future__ import annotations
+
+CLASSIFICATION_LABELS = {
+    "improved": "improved",
+    "stable": "stable",
+    "worsened": "worsened (relapse or deterioration)",
+    "not_assessable": "not assessable",
+}
+# A shape beside every word, so that no state is told by colour alone.
+CLASSIFICATION_SHAPES = {"improved": "▲", "stable": "■", "worsened": "▼", "not_assessable": "?"}
+COURSE_LABELS = {
+    "improved": "▲ improving",
+    "stable": "■ stable",
+    "worsened": "▼ worsening",
+    "not_assessable": "? not assessable",
+}
+CHANGE_VERDICT_LABELS = {
+    "improved": "better, beyond the threshold",
+    "worsened": "worse, beyond the threshold",
+    "within_noise": "within the threshold",
+    "within_threshold": "within the threshold",
+    "no_threshold": "no published threshold",
+    "not_comparable": "not comparable",
+}
+CHANGE_VERDICT_SHAPES = {"improved": "▲", "worsened": "▼", "within_noise": "·", "within_threshold": "·", "no_threshold": "–", "not_comparable": "–"}
+REFERENCE_LABELS = {
+    "regimen_baseline": "since the regimen baseline",
+    "previous": "since the previous visit",
+    "previous = regimen_baseline": "since the previous visit (the regimen baseline)",
+    "best": "since the best earlier score",
+}
+NERVE_PARAMETER_LABELS = {
+    "distal_cmap_amplitude": ("distal CMAP amplitude", "mV"),
+    "proximal_cmap_amplitude": ("proximal CMAP amplitude", "mV"),
+    "distal_latency": ("distal motor latency", "ms"),
+    "segment_velocity": ("motor conduction velocity", "m/s"),
+    "f_latency": ("minimal F-wave latency", "ms"),
+    "block_pct": ("conduction block (amplitude reduction from the distal site)", "%"),
+    "snap_amplitude": ("SNAP amplitude", "µV"),
+    "sensory_velocity": ("sensory conduction velocity", "m/s"),
+}
+SUMMARY_LABELS = {
+    "mean_change_pct_proximal_cmap_amplitude": "mean change of proximally evoked CMAP amplitude (%)",
+    "mean_change_pct_distal_cmap_amplitude": "mean change of distally evoked CMAP amplitude (%)",
+    "changes_beyond_sdc_worse": "changes worse beyond the smallest detectable change",
+    "changes_beyond_sdc_better": "changes better beyond the smallest detectable change",
+}
+
+
+def nerve_parameter_label(parameter: str) -> str:
+    """``motor conduction velocity (m/s)``."""
+    label, unit = NERVE_PARAMETER_LABELS.get(parameter, (parameter.replace("_", " "), ""))
+    return f"{label} ({unit})" if unit else label
+
+
+def words(identifier: str) -> str:
+    """A site or segment identifier in words: ``below_fibular_head`` → ``below fibular head``."""
+    return identifier.replace("_", " ")

@@ -1,0 +1,45 @@
+"""Reading what the response analysis needs: treatments, scores and visit dates (one patient or all)."""
+
+from __future__ import annotations
+
+import pandas as pd
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from tracker.db.models import OutcomeScore, Patient, Treatment, Visit
+from tracker.response.regimens import TreatmentPeriod
+
+
+def treatment_periods(session: Session, patient_ids: list[int] | None = None) -> dict[int, list[TreatmentPeriod]]:
+    query = select(Treatment.patient_id, Treatment.therapy, Treatment.start_date, Treatment.end_date, Treatment.dose,
+                   Treatment.dose_unit, Treatment.interval_days)
+    if patient_ids is not None:
+        query = query.where(Treatment.patient_id.in_(patient_ids))
+    out: dict[int, list[TreatmentPeriod]] = {}
+    for pid, therapy, start, end, dose, unit, interval in session.execute(query):
+        out.setdefault(pid, []).append(TreatmentPeriod(therapy, start, end, dose, unit, interval))
+    return out
+
+
+def scores_frame(session: Session, patient_ids: list[int] | None = None) -> pd.DataFrame:
+    """Recorded scores: ``patient`` (the patient id), ``date``, ``scale``, ``value``."""
+    query = select(OutcomeScore.patient_id, OutcomeScore.score_date, OutcomeScore.scale, OutcomeScore.value)
+    if patient_ids is not None:
+        query = query.where(OutcomeScore.patient_id.in_(patient_ids))
+    rows = session.execute(query).all()
+    frame = pd.DataFrame(rows, columns=["patient", "date", "scale", "value"])
+    frame["value"] = frame["value"].astype(float)
+    return frame
+
+
+def visit_dates(session: Session, patient_ids: list[int] | None = None) -> pd.DataFrame:
+    """``visit_key``, ``patient`` (id), ``visit_date``, sorted by patient and date."""
+    query = select(Visit.id, Visit.patient_id, Visit.visit_date).order_by(Visit.patient_id, Visit.visit_date)
+    if patient_ids is not None:
+        query = query.where(Visit.patient_id.in_(patient_ids))
+    return pd.DataFrame(session.execute(query).all(), columns=["visit_key", "patient", "visit_date"])
+
+
+def patients(session: Session) -> pd.DataFrame:
+    return pd.DataFrame(session.execute(select(Patient.id, Patient.code, Patient.diagnosis).order_by(Patient.code)).all(),
+                        columns=["patient", "code", "diagnosis"])
