@@ -78,4 +78,6 @@ def scales() -> dict[str, Scale]:
             source=row["source"],
         )
         for row in read_reference_csv("scales.csv")
+        # Computed-only scales (e.g. the weaker hand's grip) are never typed into a scores file.
+        if row.get("importable", "yes") == "yes"
     }
