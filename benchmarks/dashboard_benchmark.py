@@ -58,7 +58,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
 APP = ROOT / "tracker" / "dashboard" / "app.py"
-VERSION = "dashboard-bench-v2"  # change it whenever the generator changes: the cached databases are rebuilt
+VERSION = "dashboard-bench-v3"  # change it whenever the generator changes: the cached databases are rebuilt
 CACHE = Path(tempfile.gettempdir()) / f"ncs-tracker-benchmark-{VERSION}"
 TARGET = "BENCH-TARGET"
 TARGET_VISITS = 30
@@ -188,8 +188,11 @@ def target_patient() -> Patient:
         severity = min(1.0, max(0.15, course + rng.uniform(-0.05, 0.05)))
         patient.visits.append((date, severity))
         incat = round(1 + 6 * severity)
+        arm = min(5, round(3 * severity))  # INCAT grades: arm and leg add up to the total
         patient.scores += [
             [TARGET, date.isoformat(), "incat", incat],
+            [TARGET, date.isoformat(), "incat_arm", arm],
+            [TARGET, date.isoformat(), "incat_leg", incat - arm],
             [TARGET, date.isoformat(), "mrc_sum", round(58 - 22 * severity)],
             [TARGET, date.isoformat(), "i_rods", round(85 - 60 * severity)],
             [TARGET, date.isoformat(), "grip_kpa_right", round(95 - 55 * severity + rng.uniform(-4, 4))],
@@ -220,7 +223,10 @@ def cohort_patients(count: int) -> Iterator[Patient]:
         for _ in range(rng.randint(3, 8)):
             patient.visits.append((date, severity))
             if rng.random() < 0.5:
-                patient.scores.append([code, date.isoformat(), "incat", round(6 * severity)])
+                incat, arm = round(6 * severity), min(5, round(2.5 * severity))
+                patient.scores.append([code, date.isoformat(), "incat", incat])
+                patient.scores.append([code, date.isoformat(), "incat_arm", arm])
+                patient.scores.append([code, date.isoformat(), "incat_leg", incat - arm])
                 patient.scores.append([code, date.isoformat(), "mrc_sum", round(58 - 25 * severity)])
             severity = min(1.0, max(0.0, severity + rng.uniform(-0.15, 0.1)))
             date += dt.timedelta(days=rng.randint(90, 300))

@@ -5,13 +5,14 @@ from __future__ import annotations
 import textwrap
 
 from tracker.domain.labels import (
-    CHANGE_VERDICT_LABELS, CHANGE_VERDICT_SHAPES, CLASSIFICATION_LABELS, CLASSIFICATION_SHAPES, REFERENCE_LABELS,
-    SUMMARY_LABELS, nerve_parameter_label, words,
+    CHANGE_VERDICT_LABELS, CHANGE_VERDICT_SHAPES, CLASSIFICATION_LABELS, CLASSIFICATION_SHAPES, NERVE_PARAMETER_SHORT,
+    REFERENCE_LABELS, SUMMARY_LABELS, words,
 )
 from tracker.response.scales import scale_table
 from tracker.services.response import PatientResponse
 
 WIDTH = 120
+COMPARED_SHORT = {"regimen_baseline": "baseline", "previous": "previous", "previous = regimen_baseline": "previous=baseline"}
 
 
 def _wrap(text: str, indent: str = "  ") -> list[str]:
@@ -80,41 +81,53 @@ def _score_lines(result: PatientResponse, scales, all_changes: bool) -> list[str
     frame = result.score_changes
     if frame.empty:
         return ["Clinical scores: none recorded up to this day.", ""]
-    last_day = frame["date"].max()
-    frame = frame if all_changes else frame[frame["date"] == last_day]
-    lines = [f"Clinical score changes on {last_day.isoformat()}" + (" (the latest scored day)" if last_day != at else "")]
-    header = ["scale", "value", "compared", "with", "change", "threshold", "verdict"]
-    rows = []
-    for r in frame.itertuples(index=False):
-        info = scales.get(r.scale)
-        label = f"{info.label} ({info.unit})" if info else r.scale
-        rows.append([label, _number(r.value), REFERENCE_LABELS.get(r.reference, r.reference), f"{_number(r.reference_value)} ({r.reference_date.isoformat()})",
-                     _signed(r.change), r.threshold, f"{CHANGE_VERDICT_SHAPES.get(r.verdict, '')} {CHANGE_VERDICT_LABELS.get(r.verdict, r.verdict)}"])
-    return lines + _table(header, rows) + [""]
+    days = sorted(frame["date"].unique()) if all_changes else [frame["date"].max()]
+    lines = []
+    for day in days:
+        part = frame[frame["date"] == day]
+        lines.append(f"Clinical score changes on {day.isoformat()}" + (" (the latest scored day)" if day != at and not all_changes else "")
+                     + " — ▲ better / ▼ worse beyond the minimal important change, · within it")
+        header = ["scale (unit)", "direction", "now", "vs regimen baseline", "vs previous", "vs best earlier", "threshold"]
+        rows = []
+        for scale, group in part.groupby("scale", sort=True):
+            info = scales.get(scale)
+            label = f"{info.label} ({info.unit})" if info else scale
+            direction = ("higher better" if info.higher_is_better else "higher worse") if info else ""
+            cells = {r.reference: f"{_signed(r.change)} {CHANGE_VERDICT_SHAPES.get(r.verdict, '')} from {_number(r.reference_value)}" for r in group.itertuples(index=False)}
+            rows.append([label, direction, _number(group["value"].iloc[0]), cells.get("regimen_baseline", "—"), cells.get("previous", "—"), cells.get("best", "—"),
+                         group["threshold"].iloc[0]])
+        lines += _table(header, rows) + [""]
+    return lines
 
 
 def _nerve_lines(result: PatientResponse, all_changes: bool) -> list[str]:
     frame = result.nerve_changes
     if frame.empty:
         return ["Nerve conduction changes: no study on this day with an earlier study to compare.", ""]
-    lines = [f"Nerve conduction changes at {result.at.isoformat()} against the smallest detectable change (SDC)"]
-    shown = frame if all_changes else frame[frame["verdict"].isin(["improved", "worsened"]) | (frame["less_certain"] != "")]
+    lines = _wrap(f"Nerve conduction changes at {result.at.isoformat()} against the smallest detectable change (SDC): "
+                  "▲ better / ▼ worse beyond the SDC, · within it, – no published figure; ? less certain (see below)", "")
+    shown = frame if all_changes else frame[frame["verdict"].isin(["improved", "worsened"])]
     hidden = len(frame) - len(shown)
-    header = ["nerve", "parameter", "where", "compared", "then", "now", "change %", "SDC %", "verdict", "less certain because"]
-    rows = []
+    header = ["nerve (side L/R)", "parameter", "where", "compared with", "then", "now", "change", "SDC", "", ""]
+    rows, doubts = [], []
     for r in shown.itertuples(index=False):
-        rows.append([
-            f"{words(r.nerve)} {r.side}", nerve_parameter_label(r.parameter), words(r.where) or "—", REFERENCE_LABELS.get(r.reference, r.reference),
-            _number(r.reference_value, 2), _number(r.value, 2), _signed(r.change_pct), _number(r.sdc) if r.sdc == r.sdc and r.sdc is not None else "—",
-            f"{CHANGE_VERDICT_SHAPES.get(r.verdict, '')} {CHANGE_VERDICT_LABELS.get(r.verdict, r.verdict)}", r.less_certain or "",
-        ])
+        sdc = "—" if r.sdc is None or r.sdc != r.sdc else f"{_number(r.sdc)} %"
+        change_text = f"{_signed(r.change_pct)} %" if r.change_pct is not None and r.change_pct == r.change_pct else "—"
+        rows.append([f"{words(r.nerve)} {r.side[:1].upper()} {r.modality}", NERVE_PARAMETER_SHORT.get(r.parameter, r.parameter), words(r.where) or "—",
+                     f"{COMPARED_SHORT.get(r.reference, r.reference)} {r.reference_date.isoformat()}", _number(r.reference_value, 2),
+                     _number(r.value, 2), change_text, sdc, CHANGE_VERDICT_SHAPES.get(r.verdict, ""), "?" if r.less_certain else ""])
+        if r.less_certain:
+            doubts.append(f"{words(r.nerve)} {r.side} {NERVE_PARAMETER_SHORT.get(r.parameter, r.parameter)} {words(r.where)}: less certain — {r.less_certain}")
     if rows:
         lines += _table(header, rows)
+    for doubt in doubts:
+        lines += _wrap(doubt)
     if hidden:
-        lines.append(f"  … and {hidden} changes within the SDC or without a threshold (--all-changes lists them)")
+        lines.append(f"  … and {hidden} changes within the SDC or without a published figure (--all-changes lists them)")
     for s in result.nerve_summary:
-        lines.append(f"  {REFERENCE_LABELS.get(s['reference'], s['reference'])}: {SUMMARY_LABELS.get(s['measure'], s['measure'])}: "
-                     f"{_number(s['value'])} over {s['nerves']} {'nerves' if s['measure'].startswith('mean') else 'comparisons'}")
+        unit = "nerves" if s["measure"].startswith("mean") else "comparisons"
+        lines += _wrap(f"{REFERENCE_LABELS.get(s['reference'], s['reference'])}: {SUMMARY_LABELS.get(s['measure'], s['measure'])}: "
+                       f"{_number(s['value'])} over {s['nerves']} {unit}")
     return lines + [""]
 
 
@@ -128,7 +141,7 @@ def _trend_lines(result: PatientResponse, scales) -> list[str]:
         if t.kind == "score":
             name = scales[t.name].label if t.name in scales else t.name
         else:
-            name = f"{words(t.nerve)} {t.side} {nerve_parameter_label(t.parameter if hasattr(t, 'parameter') else t.name)} {words(t.where)}".strip()
+            name = f"{words(t.nerve)} {t.side} {NERVE_PARAMETER_SHORT.get(t.name, t.name)} {words(t.where)}".strip()
         if t.trend.slope is None:
             rows.append([name, str(t.trend.points), t.trend.reason, "", ""])
         else:
@@ -138,7 +151,7 @@ def _trend_lines(result: PatientResponse, scales) -> list[str]:
 
 def _table(header: list[str], rows: list[list[str]], indent: str = "  ") -> list[str]:
     # Long free-text cells (sources, reasons) are cut to keep the table within 120 columns.
-    widths = [min(max(len(header[i]), *(len(r[i]) for r in rows)) if rows else len(header[i]), 44) for i in range(len(header))]
+    widths = [min(max(len(header[i]), *(len(r[i]) for r in rows)) if rows else len(header[i]), 60) for i in range(len(header))]
     while sum(widths) + 2 * len(widths) + len(indent) > WIDTH and max(widths) > 12:
         widths[widths.index(max(widths))] -= 1
 

@@ -61,3 +61,17 @@ def nerve_parameter_label(parameter: str) -> str:
 def words(identifier: str) -> str:
     """A site or segment identifier in words: ``below_fibular_head`` → ``below fibular head``."""
     return identifier.replace("_", " ")
+
+# Short forms with units for narrow tables (terminal, report tables).
+NERVE_PARAMETER_SHORT = {
+    "distal_cmap_amplitude": "distal CMAP, mV",
+    "proximal_cmap_amplitude": "proximal CMAP, mV",
+    "distal_latency": "distal latency, ms",
+    "segment_velocity": "motor CV, m/s",
+    "f_latency": "F-wave latency, ms",
+    "block_pct": "block, %",
+    "snap_amplitude": "SNAP, µV",
+    "sensory_velocity": "sensory CV, m/s",
+}
+REFERENCE_SHORT = {"regimen_baseline": "regimen baseline", "previous": "previous visit",
+                   "previous = regimen_baseline": "previous visit (= baseline)", "best": "best earlier"}

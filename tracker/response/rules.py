@@ -49,6 +49,7 @@ class Rule:
 
     def threshold_words(self, unit: str) -> str:
         symbol = "≥" if self.comparator == ">=" else ">"
+        unit = "point" if unit == "points" and self.threshold == 1 else unit
         return f"{symbol} {self.threshold:g}{'%' if self.change_kind == 'percent' else ' ' + unit}"
 
 

@@ -54,7 +54,7 @@ class ScaleInfo:
         """``≥ 1 point`` — the minimal important change as the source states it."""
         if self.mic is None:
             return "no published minimal important change"
-        unit = "%" if self.mic_kind == "percent" else f" {self.unit}"
+        unit = "%" if self.mic_kind == "percent" else f" {'point' if self.unit == 'points' and self.mic == 1 else self.unit}"
         return f"{_SYMBOL[self.mic_comparator or '>=']} {self.mic:g}{unit}"
 
 

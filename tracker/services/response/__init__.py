@@ -5,7 +5,7 @@ worse?). Entry points: :func:`patient_response` (command ``response``, follow-up
 The arithmetic is pure and lives in :mod:`tracker.response`; this package loads the data and assembles it.
 """
 
-from tracker.services.response.cohort import cohort_course
+from tracker.services.response.cohort import cohort_course, cohort_response
 from tracker.services.response.patient import PatientResponse, TrendRow, patient_response, response_json
 
-__all__ = ["PatientResponse", "TrendRow", "cohort_course", "patient_response", "response_json"]
+__all__ = ["PatientResponse", "TrendRow", "cohort_course", "cohort_response", "patient_response", "response_json"]

@@ -53,3 +53,36 @@ def cohort_course(session: Session, *, rules_id: str | None = None, settings: Re
         rows.append({"code": code, "course": result.classification, "rules": rule_set.id, "rules_version": rule_set.version,
                      "regimen": chosen.label(), "since": chosen.start_date, "why": why})
     return pd.DataFrame(rows, columns=COURSE_COLUMNS)
+
+
+def cohort_response(session: Session, *, rules_id: str | None = None, settings: ResponseSettings | None = None,
+                    limits_name: str | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The course of every patient (:func:`cohort_course`) and, per patient, the nerve conduction changes of
+    the latest study against the previous one (:data:`tracker.response.change.NERVE_CHANGE_COLUMNS` plus
+    ``code``): the whole response question for a cohort in one pass over the measurements."""
+    from tracker.criteria import features
+    from tracker.response import change, reproducibility
+    from tracker.services.evaluation import load_frames
+    from tracker.services.limit_sets import resolve
+
+    settings = settings or ResponseSettings()
+    course = cohort_course(session, rules_id=rules_id, settings=settings)
+    visits, tests, sites = load_frames(session)
+    if tests.empty:
+        return course, pd.DataFrame(columns=["code", *change.NERVE_CHANGE_COLUMNS])
+    _, limits = resolve(session, limits_name)
+    nerves, paths = features.build(visits, tests, sites, limits)
+    values = change.nerve_values(nerves, paths, sites)
+    studied = visits[visits["visit_key"].isin(values["visit_key"].unique())].sort_values(["patient", "visit_date"], kind="stable")
+    last_two = studied.groupby("patient", sort=False).tail(2)
+    pairs = last_two.groupby("patient", sort=False)
+    table = reproducibility.shipped()
+    parts = []
+    for code, pair in pairs:
+        if len(pair) < 2:
+            continue
+        (ref_key, cur_key), (ref_date, _) = pair["visit_key"].tolist(), pair["visit_date"].tolist()
+        scope = values[values["visit_key"].isin([ref_key, cur_key])]
+        parts.append(change.nerve_changes(scope, cur_key, ref_key, "previous", ref_date, table, settings).assign(code=code))
+    changes = pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=["code", *change.NERVE_CHANGE_COLUMNS])
+    return course, changes[["code", *change.NERVE_CHANGE_COLUMNS]]
