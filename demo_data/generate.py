@@ -11,7 +11,7 @@ The script is deterministic: it uses only the standard library and one fixed ran
 Output (next to this file):
     measurements.csv  one row per stimulation site of every nerve test
     treatments.csv    one row per treatment period
-    scores.csv        one row per clinical score
+    scores.csv        one row per clinical score (INCAT with its arm and leg grades, I-RODS, MRC sum, grip)
 
 Usage:  python demo_data/generate.py
 
@@ -204,51 +204,62 @@ TREATMENTS = [
     ("DEMO-06", "corticosteroid", "2024-10-28", "2025-03-30", "5", "mg", "1", "taper then stopped"),
 ]
 
-# date -> (incat, i_rods centile, mrc_sum, grip left kPa, grip right kPa); None = not recorded
+# date -> (incat, INCAT arm grade, INCAT leg grade, i_rods centile, mrc_sum, grip left kPa, grip right kPa);
+# None = not recorded. The typed INCAT total always equals arm + leg when both grades are recorded
+# (checked in score_rows), so the tool never finds a typed total that disagrees with its grades.
+# The adjusted INCAT (leg + max(arm - 1, 0)) is not written: the tool computes it from the grades.
+# Invented stories (see README.md): DEMO-01 improves; DEMO-02 improves, then worsens on the 35-day
+# interval (adjusted INCAT 2 -> 3; its arm grade also goes 0 -> 1 on 2024-05-21, which the adjusted
+# INCAT does not count) and improves again on 21 days; DEMO-03 is stable on SCIG (scored at the last
+# IVIg infusion of 2023-01-09 so that the SCIG regimen has a baseline); DEMO-05's grades were not
+# recorded in the first week, so its IVIg course cannot be assessed; DEMO-06 is scored during the last
+# prednisolone step (2025-02-18) so that the end of the taper can be judged.
 SCORES = {
     "DEMO-01": [
-        ("2023-02-14", 5, 31, 44, 34, 38),
-        ("2023-03-17", None, None, None, 41, 45),
-        ("2023-05-16", 4, 45, 49, 48, 53),
-        ("2023-10-10", 3, 58, 53, 58, 63),
-        ("2024-04-09", 2, 66, 55, 63, 68),
-        ("2025-03-18", 2, 70, 56, 66, 71),
+        ("2023-02-14", 5, 2, 3, 31, 44, 34, 38),
+        ("2023-03-17", None, None, None, None, None, 41, 45),
+        ("2023-05-16", 4, 2, 2, 45, 49, 48, 53),
+        ("2023-10-10", 3, 1, 2, 58, 53, 58, 63),
+        ("2024-04-09", 2, 1, 1, 66, 55, 63, 68),
+        ("2025-03-18", 2, 1, 1, 70, 56, 66, 71),
     ],
     "DEMO-02": [
-        ("2023-06-06", 4, 38, 47, 56, 60),
-        ("2023-09-12", 3, 55, 52, 78, 82),
-        ("2024-01-16", 2, 64, 55, 90, 95),
-        ("2024-05-21", 3, 52, None, None, None),
-        ("2024-07-09", 4, 41, 49, 62, 66),
-        ("2024-11-19", 2, 62, 55, 88, 90),
-        ("2025-06-10", 2, 66, 56, 93, 96),
+        ("2023-06-06", 4, 1, 3, 38, 47, 56, 60),
+        ("2023-09-12", 3, 1, 2, 55, 52, 78, 82),
+        ("2024-01-16", 2, 0, 2, 64, 55, 90, 95),
+        ("2024-05-21", 3, 1, 2, 52, None, None, None),
+        ("2024-07-09", 4, 1, 3, 41, 49, 62, 66),
+        ("2024-11-19", 2, 0, 2, 62, 55, 88, 90),
+        ("2025-06-10", 2, 0, 2, 66, 56, 93, 96),
     ],
     "DEMO-03": [
-        ("2023-03-21", 2, 68, 56, 70, 73),
-        ("2023-11-07", 2, 66, 55, 68, 72),
-        ("2024-06-18", 2, 69, 56, 71, 74),
-        ("2025-02-11", 1, 70, 56, 69, 75),
-        ("2025-10-14", 2, 67, 56, 70, 72),
-        ("2026-06-23", 2, 68, 55, 68, 73),
+        ("2023-01-09", 2, 1, 1, 67, 56, 69, 73),
+        ("2023-03-21", 2, 1, 1, 68, 56, 70, 73),
+        ("2023-11-07", 2, 1, 1, 66, 55, 68, 72),
+        ("2024-06-18", 2, 1, 1, 69, 56, 71, 74),
+        ("2025-02-11", 1, 0, 1, 70, 56, 69, 75),
+        ("2025-10-14", 2, 1, 1, 67, 56, 70, 72),
+        ("2026-06-23", 2, 1, 1, 68, 55, 68, 73),
     ],
     "DEMO-04": [
-        ("2024-02-20", 2, 72, 53, 46, 112),
-        ("2024-05-28", 1, 80, 55, 60, 115),
-        ("2024-11-26", 1, 83, 56, 68, 114),
-        ("2025-06-03", 1, 84, 56, 70, 116),
+        ("2024-02-20", 2, 2, 0, 72, 53, 46, 112),
+        ("2024-05-28", 1, 1, 0, 80, 55, 60, 115),
+        ("2024-11-26", 1, 1, 0, 83, 56, 68, 114),
+        ("2025-06-03", 1, 1, 0, 84, 56, 70, 116),
     ],
     "DEMO-05": [
-        ("2025-09-01", 7, 10, 38, 22, 25),
-        ("2025-09-08", None, None, 40, None, None),
-        ("2025-09-24", 5, 28, 46, 40, 44),
-        ("2025-11-23", 2, 64, 56, 70, 74),
+        ("2025-09-01", 7, None, None, 10, 38, 22, 25),
+        ("2025-09-08", None, None, None, None, 40, None, None),
+        ("2025-09-24", 5, 2, 3, 28, 46, 40, 44),
+        ("2025-11-23", 2, 1, 1, 64, 56, 70, 74),
     ],
     "DEMO-06": [
-        ("2023-09-05", 4, 40, 48, 66, 70),
-        ("2023-12-12", 3, 55, 53, 86, 90),
-        ("2024-04-23", 2, 63, 55, 98, 102),
-        ("2024-10-15", 1, 72, 57, 106, 110),
-        ("2025-09-30", 1, 74, 58, 108, 112),
+        ("2023-09-05", 4, 1, 3, 40, 48, 66, 70),
+        ("2023-12-12", 3, 1, 2, 55, 53, 86, 90),
+        ("2024-04-23", 2, 1, 1, 63, 55, 98, 102),
+        ("2024-10-15", 1, 0, 1, 72, 57, 106, 110),
+        ("2025-02-18", 1, 0, 1, 73, 58, 107, 111),
+        ("2025-09-30", 1, 0, 1, 74, 58, 108, 112),
     ],
 }
 
@@ -430,10 +441,13 @@ def measurement_rows() -> list[dict]:
 
 
 def score_rows() -> list[dict]:
-    scales = ("incat", "i_rods", "mrc_sum", "grip_kpa_left", "grip_kpa_right")
+    scales = ("incat", "incat_arm", "incat_leg", "i_rods", "mrc_sum", "grip_kpa_left", "grip_kpa_right")
     out = []
     for patient, entries in SCORES.items():
         for date, *values in entries:
+            incat, arm, leg = values[:3]
+            if arm is not None and leg is not None:
+                assert incat == arm + leg, f"{patient} {date}: INCAT {incat} is not arm {arm} + leg {leg}"
             for scale, value in zip(scales, values):
                 if value is not None:
                     out.append(dict(patient=patient, date=date, scale=scale, value=value))
