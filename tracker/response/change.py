@@ -18,7 +18,7 @@ import datetime as dt
 import numpy as np
 import pandas as pd
 
-from tracker.domain.conduction import quantise
+from tracker.domain.conduction import quantise, quantise_array
 from tracker.response.regimens import Regimen
 from tracker.response.reproducibility import Detectable
 from tracker.response.scales import ScaleInfo
@@ -170,52 +170,73 @@ def nerve_values(nerves: pd.DataFrame, paths: pd.DataFrame, sites: pd.DataFrame)
 def nerve_changes(values: pd.DataFrame, current: int, reference: int, reference_kind: str, reference_date: dt.date,
                   table: dict[str, Detectable], settings: ResponseSettings) -> pd.DataFrame:
     """Each parameter of visit ``current`` against visit ``reference`` (visit keys in ``values``)."""
+    pairs = pd.DataFrame({"visit_key": [current], "reference_key": [reference], "reference": [reference_kind], "reference_date": [reference_date]})
+    return nerve_changes_many(values, pairs, table, settings).drop(columns=["visit_key"])
+
+
+def nerve_changes_many(values: pd.DataFrame, pairs: pd.DataFrame, table: dict[str, Detectable], settings: ResponseSettings) -> pd.DataFrame:
+    """Vectorised :func:`nerve_changes` over many (visit, earlier visit) ``pairs`` (columns ``visit_key``,
+    ``reference_key``, ``reference``, ``reference_date``): one row per parameter found at both visits, with
+    ``visit_key`` first."""
     key = ["nerve", "side", "modality", "parameter", "where"]
-    now = values[values["visit_key"] == current]
-    then = values[values["visit_key"] == reference]
-    merged = now.merge(then, on=key, suffixes=("", "_ref"), how="inner")
-    rows: list[dict] = []
-    for row in merged.itertuples(index=False):
-        info = table.get(row.parameter)
-        doubts: list[str] = []
-        if row.absent or row.absent_ref:
-            verdict = NOT_COMPARABLE if row.absent and row.absent_ref else (WORSENED if row.absent else IMPROVED)
-            rows.append(_nerve_row(row, reference_kind, reference_date, None, None, verdict, info, "F-waves absent at " + ("both visits" if row.absent and row.absent_ref else ("this visit" if row.absent else "the earlier visit"))))
-            continue
-        change = float(row.value) - float(row.value_ref)
-        pct = _pct(float(row.value), float(row.value_ref))
-        if info is None:
-            verdict = NO_THRESHOLD
-        else:
-            verdict = judge(change, pct, info.higher_is_better, info.sdc, ">=", info.change_kind)
-        if _far(row.temperature_c, row.temperature_c_ref, settings.temperature_delta_c):
-            doubts.append(f"limb temperature {row.temperature_c_ref:g} → {row.temperature_c:g} °C (more than {settings.temperature_delta_c:g} °C apart)")
-        if settings.filter_must_match and _differs(row.lff_hz, row.lff_hz_ref):
-            doubts.append(f"low-frequency filter {_hz(row.lff_hz_ref)} → {_hz(row.lff_hz)}")
-        if row.distance_mm == row.distance_mm and row.distance_mm_ref == row.distance_mm_ref and row.distance_mm_ref > 0:
-            if abs(row.distance_mm - row.distance_mm_ref) / row.distance_mm_ref * 100.0 > settings.distance_delta_pct:
-                doubts.append(f"distance {row.distance_mm_ref:g} → {row.distance_mm:g} mm (more than {settings.distance_delta_pct:g} % apart)")
-        rows.append(_nerve_row(row, reference_kind, reference_date, change, pct, verdict, info, "; ".join(doubts)))
-    frame = pd.DataFrame(rows, columns=NERVE_CHANGE_COLUMNS)
-    return frame.sort_values(["nerve", "side", "modality", "parameter", "where"], kind="stable").reset_index(drop=True)
-
-
-def _nerve_row(row, kind, ref_date, change, pct, verdict, info: Detectable | None, doubt: str) -> dict:
-    return {
-        "nerve": row.nerve, "side": row.side, "modality": row.modality, "parameter": row.parameter, "where": row.where,
-        "reference": kind, "reference_date": ref_date,
-        "reference_value": None if row.absent_ref else float(row.value_ref), "value": None if row.absent else float(row.value),
-        "change": None if change is None else quantise(change), "change_pct": None if pct is None else quantise(pct),
-        "verdict": verdict, "sdc": None if info is None else info.sdc, "less_certain": doubt,
-    }
-
-
-def _far(a: float, b: float, limit: float) -> bool:
-    return a == a and b == b and quantise(abs(a - b)) > quantise(limit)
-
-
-def _differs(a: float, b: float) -> bool:
-    return (a == a) != (b == b) or (a == a and b == b and a != b)
+    columns = ["visit_key", *NERVE_CHANGE_COLUMNS]
+    now = values[values["visit_key"].isin(pairs["visit_key"])].merge(pairs, on="visit_key")
+    then = values[values["visit_key"].isin(pairs["reference_key"])][["visit_key", *key, "value", "absent", "temperature_c", "lff_hz", "distance_mm"]]
+    then = then.rename(columns={"visit_key": "reference_key", "value": "value_ref", "absent": "absent_ref", "temperature_c": "temperature_c_ref",
+                                "lff_hz": "lff_hz_ref", "distance_mm": "distance_mm_ref"})
+    m = now.merge(then, on=["reference_key", *key], how="inner")
+    if m.empty:
+        return pd.DataFrame(columns=columns)
+    value = m["value"].to_numpy(dtype=float)
+    ref = m["value_ref"].to_numpy(dtype=float)
+    absent = m["absent"].to_numpy(dtype=bool)
+    absent_ref = m["absent_ref"].to_numpy(dtype=bool)
+    either = absent | absent_ref
+    delta = np.where(either, np.nan, value - ref)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pct = np.where(either | (ref == 0), np.nan, delta / np.abs(ref) * 100.0)
+    parameter = m["parameter"].to_numpy(dtype=object)
+    known = {p: d for p, d in table.items()}
+    sdc = np.array([known[p].sdc if p in known and known[p].sdc is not None else np.nan for p in parameter], dtype=float)
+    percent = np.array([known[p].change_kind == "percent" if p in known else True for p in parameter], dtype=bool)
+    better_high = np.array([known[p].higher_is_better if p in known else True for p in parameter], dtype=bool)
+    size = np.where(percent, pct, delta)
+    with np.errstate(invalid="ignore"):
+        beyond = quantise_array(np.abs(size)) >= quantise_array(sdc)
+    verdict = np.where(np.isnan(size), NOT_COMPARABLE, np.where(np.isnan(sdc), NO_THRESHOLD, WITHIN)).astype(object)
+    verdict[beyond & ((size > 0) == better_high)] = IMPROVED
+    verdict[beyond & ((size > 0) != better_high)] = WORSENED
+    # An absence is a finding: present → absent is worse, absent → present better, absent at both not comparable.
+    verdict[absent & ~absent_ref] = WORSENED
+    verdict[~absent & absent_ref] = IMPROVED
+    verdict[absent & absent_ref] = NOT_COMPARABLE
+    t, t_ref = m["temperature_c"].to_numpy(dtype=float), m["temperature_c_ref"].to_numpy(dtype=float)
+    f, f_ref = m["lff_hz"].to_numpy(dtype=float), m["lff_hz_ref"].to_numpy(dtype=float)
+    d, d_ref = m["distance_mm"].to_numpy(dtype=float), m["distance_mm_ref"].to_numpy(dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        warm = quantise_array(np.abs(t - t_ref)) > quantise(settings.temperature_delta_c)
+        filt = (np.isnan(f) != np.isnan(f_ref)) | (~np.isnan(f) & ~np.isnan(f_ref) & (f != f_ref)) if settings.filter_must_match else np.zeros(len(m), bool)
+        far = (d_ref > 0) & (np.abs(d - d_ref) / d_ref * 100.0 > settings.distance_delta_pct)
+    doubt = np.full(len(m), "", dtype=object)
+    for i in np.flatnonzero((warm | filt | far) & ~either):
+        reasons = []
+        if warm[i]:
+            reasons.append(f"limb temperature {t_ref[i]:g} → {t[i]:g} °C (more than {settings.temperature_delta_c:g} °C apart)")
+        if filt[i]:
+            reasons.append(f"low-frequency filter {_hz(f_ref[i])} → {_hz(f[i])}")
+        if far[i]:
+            reasons.append(f"distance {d_ref[i]:g} → {d[i]:g} mm (more than {settings.distance_delta_pct:g} % apart)")
+        doubt[i] = "; ".join(reasons)
+    for i in np.flatnonzero(either):
+        doubt[i] = "F-waves absent at " + ("both visits" if absent[i] and absent_ref[i] else ("this visit" if absent[i] else "the earlier visit"))
+    out = pd.DataFrame({
+        "visit_key": m["visit_key"].to_numpy(), "nerve": m["nerve"].to_numpy(dtype=object), "side": m["side"].to_numpy(dtype=object),
+        "modality": m["modality"].to_numpy(dtype=object), "parameter": parameter, "where": m["where"].to_numpy(dtype=object),
+        "reference": m["reference"].to_numpy(dtype=object), "reference_date": m["reference_date"].to_numpy(dtype=object),
+        "reference_value": np.where(absent_ref, np.nan, ref), "value": np.where(absent, np.nan, value),
+        "change": quantise_array(delta), "change_pct": quantise_array(pct), "verdict": verdict, "sdc": sdc, "less_certain": doubt,
+    })
+    return out.sort_values(["visit_key", "nerve", "side", "modality", "parameter", "where"], kind="stable").reset_index(drop=True)[columns]
 
 
 def _hz(value: float) -> str:

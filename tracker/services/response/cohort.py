@@ -15,17 +15,20 @@ from tracker.services.response.loading import patients, scores_frame, treatment_
 COURSE_COLUMNS = ["code", "course", "rules", "rules_version", "regimen", "since", "why"]
 
 
-def cohort_course(session: Session, *, rules_id: str | None = None, settings: ResponseSettings | None = None) -> pd.DataFrame:
+def cohort_course(session: Session, *, rules_id: str | None = None, settings: ResponseSettings | None = None,
+                  loaded: tuple[pd.DataFrame, pd.DataFrame] | None = None) -> pd.DataFrame:
     """One row per patient: ``course`` (improved / stable / worsened / not_assessable), the rule set and its
-    version, the regimen (words), since when it runs, and ``why`` (the deciding change or the missing data)."""
+    version, the regimen (words), since when it runs, and ``why`` (the deciding change or the missing data).
+    ``loaded``: (patients, visit dates) when the caller has read them already."""
     settings = settings or ResponseSettings()
     available = rules.rule_sets()
     rule_set = available[rules_id or rules.DEFAULT_RULES]
-    people = patients(session)
+    people, visits = loaded if loaded is not None else (patients(session), visit_dates(session))
     periods = treatment_periods(session)
     scores, _ = with_computed(scores_frame(session))
-    visits = visit_dates(session)
-    last_visit = visits.groupby("patient")["visit_date"].max().to_dict() if len(visits) else {}
+    last_visit: dict[int, object] = {}
+    for pid, day in zip(visits["patient"], visits["visit_date"]):  # sorted by patient and date
+        last_visit[pid] = day
     table = scale_table()
     by_patient: dict[int, dict[str, list]] = {}
     for pid, scale, day, value in zip(scores["patient"], scores["scale"], scores["date"], scores["value"]):
@@ -56,33 +59,63 @@ def cohort_course(session: Session, *, rules_id: str | None = None, settings: Re
 
 
 def cohort_response(session: Session, *, rules_id: str | None = None, settings: ResponseSettings | None = None,
-                    limits_name: str | None = None) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """The course of every patient (:func:`cohort_course`) and, per patient, the nerve conduction changes of
-    the latest study against the previous one (:data:`tracker.response.change.NERVE_CHANGE_COLUMNS` plus
-    ``code``): the whole response question for a cohort in one pass over the measurements."""
+                    limits_name: str | None = None, chunk_visits: int = 5000) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The course of every patient (:func:`cohort_course`) and the nerve conduction changes of each patient's
+    latest visit against the previous visit and against the running regimen's baseline visit
+    (:data:`tracker.response.change.NERVE_CHANGE_COLUMNS` plus ``code``). Only those (at most three) visits per
+    patient are read and turned into features, ``chunk_visits`` at a time."""
+    import datetime as dt
+
     from tracker.criteria import features
     from tracker.response import change, reproducibility
     from tracker.services.evaluation import load_frames
     from tracker.services.limit_sets import resolve
 
     settings = settings or ResponseSettings()
-    course = cohort_course(session, rules_id=rules_id, settings=settings)
-    visits, tests, sites = load_frames(session)
-    if tests.empty:
-        return course, pd.DataFrame(columns=["code", *change.NERVE_CHANGE_COLUMNS])
+    people, visits = patients(session), visit_dates(session)
+    course = cohort_course(session, rules_id=rules_id, settings=settings, loaded=(people, visits))
+    since = dict(zip(course["code"], course["since"]))
+    by_patient: dict[int, list[tuple[object, int]]] = {}
+    for pid, day, key in zip(visits["patient"], visits["visit_date"], visits["visit_key"]):
+        by_patient.setdefault(pid, []).append((day, int(key)))
+    lookback = dt.timedelta(days=settings.baseline_lookback_days)
+    grace = dt.timedelta(days=settings.baseline_grace_days)
+    pairs: list[tuple[int, int, str, object, str]] = []
+    for pid, code in zip(people["patient"], people["code"]):
+        studied = by_patient.get(pid, [])
+        if len(studied) < 2:
+            continue
+        (day, key), (previous_day, previous_key) = studied[-1], studied[-2]
+        start = since.get(code)
+        baseline = None
+        if start is not None and start == start:
+            before = [v for v in studied if start - lookback <= v[0] <= start]
+            after = [v for v in studied if start < v[0] <= start + grace]
+            baseline = before[-1] if before else (after[0] if after else None)
+        if baseline is not None and baseline[1] == previous_key:
+            pairs.append((key, previous_key, "previous = regimen_baseline", previous_day, code))
+            continue
+        pairs.append((key, previous_key, "previous", previous_day, code))
+        if baseline is not None and baseline[0] < day:
+            pairs.append((key, baseline[1], "regimen_baseline", baseline[0], code))
+    pair_frame = pd.DataFrame(pairs, columns=["visit_key", "reference_key", "reference", "reference_date", "code"])
+    needed = sorted(set(pair_frame["visit_key"]) | set(pair_frame["reference_key"]))
+    empty = pd.DataFrame(columns=["code", *change.NERVE_CHANGE_COLUMNS])
+    if not needed:
+        return course, empty
     _, limits = resolve(session, limits_name)
-    nerves, paths = features.build(visits, tests, sites, limits)
-    values = change.nerve_values(nerves, paths, sites)
-    studied = visits[visits["visit_key"].isin(values["visit_key"].unique())].sort_values(["patient", "visit_date"], kind="stable")
-    last_two = studied.groupby("patient", sort=False).tail(2)
-    pairs = last_two.groupby("patient", sort=False)
     table = reproducibility.shipped()
     parts = []
-    for code, pair in pairs:
-        if len(pair) < 2:
+    # Chunks by patient pair (a pair's two visits always in one chunk), so memory stays bounded.
+    for start in range(0, len(pair_frame), chunk_visits):
+        chunk = pair_frame.iloc[start:start + chunk_visits]
+        keys = sorted(set(chunk["visit_key"]) | set(chunk["reference_key"]))
+        frames = load_frames(session, [int(k) for k in keys])
+        if frames[1].empty:
             continue
-        (ref_key, cur_key), (ref_date, _) = pair["visit_key"].tolist(), pair["visit_date"].tolist()
-        scope = values[values["visit_key"].isin([ref_key, cur_key])]
-        parts.append(change.nerve_changes(scope, cur_key, ref_key, "previous", ref_date, table, settings).assign(code=code))
-    changes = pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=["code", *change.NERVE_CHANGE_COLUMNS])
+        nerves, paths = features.build(*frames, limits)
+        values = change.nerve_values(nerves, paths, frames[2])
+        found = change.nerve_changes_many(values, chunk.drop(columns=["code"]), table, settings)
+        parts.append(found.merge(chunk[["visit_key", "reference_key", "reference", "code"]].drop(columns=["reference_key"]), on=["visit_key", "reference"]))
+    changes = pd.concat(parts, ignore_index=True) if parts else empty
     return course, changes[["code", *change.NERVE_CHANGE_COLUMNS]]
