@@ -229,6 +229,8 @@ def test_no_identifying_string_in_any_file(demo, tmp_path, file_format):
     for level in ("visit", "nerve", "segment", "long"):
         written += [f.path for f in demo.write(tmp_path / level, file_format, level=level).files]
     assert len(written) == 4 * (3 if file_format != "xlsx" else 2)
+    # The visit level's treatment-response columns (regimen, response, score changes) are among the scanned bytes.
+    assert any(b"response_trial_aincat" in text and b"regimen_start_days_since_first_visit" in text for text in _file_texts(written[0]))
     for path in written:
         for text in _file_texts(path):
             lowered = text.lower()

@@ -36,6 +36,7 @@ from tracker.services.export_files import (
     sha256_of,
     write_dictionary_csv,
 )
+from tracker.services.export_response import manifest_entry as response_manifest
 from tracker.services.export_tables import ExportOptions, ExportPlan, prepare
 
 REMOVED_FIELDS = [
@@ -174,6 +175,7 @@ def build_manifest(plan: ExportPlan, file_format: str, written: list[WrittenFile
         "criteria_settings": {k: getattr(options.settings, k) for k in ("cold_limbs", "sides_are_separate_nerves", "cv_segments", "block_path")},
         "limits": {"name": plan.limits_info.name, "version": plan.limits_info.version},
         "scores_rule": f"score on the visit date, else the nearest within ±{SCORE_WINDOW_DAYS} days (earlier on a tie)",
+        "response": None if plan.response is None else response_manifest(plan.response),
         "filters": _filters(plan),
         "visits_selected": plan.visit_count,
         "chunk_visits": options.chunk_visits,

@@ -14,6 +14,7 @@ import pandas as pd
 import pyarrow as pa
 
 from tracker.domain.plausibility import scales
+from tracker.response.scales import ScaleInfo
 
 # Kind of a column → pandas dtype and Parquet type. Dates are plain ``datetime.date`` objects in pandas.
 PANDAS_DTYPES: dict[str, object] = {"text": "str", "float": "float64", "int": "Int64", "bool": "boolean", "date": object}
@@ -28,6 +29,10 @@ TYPE_WORDS = {
 
 # Scores are looked for on the visit date, else the nearest date within this many days (earlier on a tie).
 SCORE_WINDOW_DAYS = 30
+# The response columns read a score on the visit date, else the latest within this many days before it and after
+# the patient's previous visit (never after the visit: a judgement on the visit day cannot see later scores; never
+# one score at two visits, so that changes from the previous visit are not counted twice).
+RESPONSE_SCORE_DAYS = SCORE_WINDOW_DAYS
 
 
 @dataclass(frozen=True)
@@ -159,6 +164,97 @@ def visit_columns(sets: list[SetColumns], limits_label: str, *, identified: bool
                                   "the criteria engine (extra key of the outcome)", depends))
         columns.append(Column(f"{found.alias}__rule", "text", "", f"{found.criteria}: which combination rule decided the outcome",
                               "the criteria engine", depends))
+    return columns
+
+
+# How the scales with change columns are made (tracker/response/scales.py).
+_COMPUTED_WORDS = {
+    "adjusted_incat": "leg grade + max(arm grade − 1, 0) from the INCAT grades of the same day when both are recorded "
+                      "(an arm change between 0 and 1 is not counted: ICE, Hughes RAC et al. Lancet Neurol 2008), else the "
+                      "typed adjusted INCAT",
+    "grip_kpa_weaker": "the lower of the left and right hands' Vigorimeter grip of the same day (both needed)",
+}
+
+
+def response_column(rule_set_id: str) -> str:
+    """``trial-aincat`` → ``response_trial_aincat``."""
+    return "response_" + rule_set_id.replace("-", "_")
+
+
+def response_columns(rules: list[tuple[str, str, str]], change_scales: list[ScaleInfo], *, identified: bool,
+                     dates: str) -> list[Column]:
+    """Visit-level columns of treatment response: the regimen running on the visit day, its classification by each
+    rule set in ``rules`` ((id, version, title)), and the value and changes of each scale in ``change_scales``."""
+    settings = "response settings as listed in the manifest (tracker/response/settings.py)"
+    running = "the regimen running on the visit day (regimen start ≤ visit ≤ regimen end)"
+    columns = [
+        Column("regimen_therapy", "text", "", f"therapy of {running}; when several run, the latest started",
+               "treatment periods → regimens: one therapy at one dose and interval; a change of dose or interval starts "
+               "a new regimen; a single course followed within the induction window by the same therapy is that "
+               "regimen's induction (tracker/response/regimens.py); empty when none runs", settings),
+        Column("regimen_dose", "float", "", "dose per administration of that regimen (unit in regimen_dose_unit)",
+               "stored value of the regimen's first treatment period (the maintenance dose when it had an induction)"),
+        Column("regimen_dose_unit", "text", "", "unit of regimen_dose (e.g. g/kg)", "stored value"),
+        Column("regimen_interval_days", "int", "days", "days between administrations of that regimen", "stored value"),
+        Column("regimen_induction", "bool", "", "the regimen began with a single induction course (its start is the induction's start)",
+               "see regimen_therapy", settings),
+        Column("regimens_running", "int", "", "number of regimens running on the visit day (0 when none)",
+               "count of regimens with start ≤ visit ≤ end", settings),
+        Column("regimen_start_days_since_first_visit", "int", "days",
+               "start of that regimen (of its induction when it had one), in days since the patient's first visit; negative "
+               "when it started before the first visit", "regimen start − date of the patient's first visit in the database",
+               settings),
+    ]
+    if identified:
+        columns.append(Column("regimen_start_date", "date", "", "start of that regimen (real date; identified export only)",
+                              "see regimen_start_days_since_first_visit", settings))
+    elif dates == "shifted":
+        columns.append(Column("regimen_start_date_shifted", "date", "", "start of that regimen moved by the patient's secret shift",
+                              "regimen start + the same per-patient offset as visit_date_shifted, so that "
+                              "visit_date_shifted − regimen_start_date_shifted = regimen_days_since_start", settings))
+    columns.append(Column("regimen_days_since_start", "int", "days", "days from the start of that regimen to the visit",
+                          "visit date − regimen start", settings))
+    for rule_set_id, version, title in rules:
+        columns.append(Column(
+            response_column(rule_set_id), "text", "",
+            f"response of the regimen running on the visit day as judged on that day by rule set {rule_set_id} ({title}): "
+            "improved, stable, worsened or not_assessable",
+            f"tracker.response.rules.classify at the visit date (scores after the visit are not seen). Empty when no regimen "
+            f"runs, or when no score of the rule set's scales is at the visit (as for the *_at_visit columns): a visit "
+            "without scores is never judged stable. not_assessable: no baseline score for the "
+            "regimen, or no score after it",
+            f"response rule set {rule_set_id} version {version}; {settings}"))
+    for scale in change_scales:
+        name, unit = scale.name, scale.unit
+        mic = scale.mic_words()
+        at_visit = (f"the score on the visit date, else the latest within {RESPONSE_SCORE_DAYS} days before it and after the "
+                    f"patient's previous visit (one score never stands at two visits); "
+                    f"{_COMPUTED_WORDS.get(name, 'stored value')} (tracker/response/scales.py); empty when none")
+        meets = (f"|change| {mic} (minimal important change, tracker/reference/scales.csv: {scale.mic_source}); "
+                 "the sign of the change gives its direction; empty when the change is empty")
+        columns += [
+            Column(f"{name}_at_visit", "float", unit, f"{scale.label} at the visit ({scale.direction_words})", at_visit,
+                   "tracker/reference/scales.csv"),
+            Column(f"{name}_offset_days", "int", "days", f"score date − visit date of {name}_at_visit (0 or negative)",
+                   "see that column"),
+            Column(f"{name}_change_from_baseline", "float", unit,
+                   f"{name}_at_visit − the score at the baseline of the regimen running on the visit day",
+                   "baseline: the latest score from the regimen-start look-back up to the regimen start, else the first "
+                   "score within the grace days after it (tracker.response.change.baseline); empty when no regimen runs, "
+                   "without a baseline, or when the baseline is the score at the visit", settings),
+            Column(f"{name}_baseline_offset_days", "int", "days", f"regimen baseline score date − visit date of {name}",
+                   "see the change column", settings),
+            Column(f"{name}_change_from_baseline_meets_mic", "bool", "", f"{name}_change_from_baseline meets the minimal important change",
+                   meets, "tracker/reference/scales.csv"),
+            Column(f"{name}_change_from_previous", "float", unit,
+                   f"{name}_at_visit − the same at the patient's previous visit with such a score",
+                   "previous: the latest earlier visit of the patient (also outside the filters) with a score at it; "
+                   "empty at the first scored visit"),
+            Column(f"{name}_previous_offset_days", "int", "days", f"previous visit's score date − visit date of {name}",
+                   "see the change column"),
+            Column(f"{name}_change_from_previous_meets_mic", "bool", "", f"{name}_change_from_previous meets the minimal important change",
+                   meets, "tracker/reference/scales.csv"),
+        ]
     return columns
 
 

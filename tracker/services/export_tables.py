@@ -25,6 +25,7 @@ from tracker.db.models import NerveTest, OutcomeScore, Patient, PatientIdentity,
 from tracker.domain.plausibility import scales
 from tracker.domain.vocabulary import DIAGNOSES
 from tracker.errors import NotFound, TrackerError
+from tracker.response.settings import ResponseSettings
 from tracker.services import deidentify
 from tracker.services.evaluation import load_frames
 from tracker.services.export_columns import (
@@ -37,9 +38,11 @@ from tracker.services.export_columns import (
     key_columns,
     long_columns,
     nerve_columns,
+    response_columns,
     segment_columns,
     visit_columns,
 )
+from tracker.services.export_response import ResponseSpec, response_spec, with_response
 from tracker.services.limit_sets import LimitSetInfo, resolve
 
 LEVELS = ("visit", "nerve", "segment", "long")
@@ -77,6 +80,7 @@ class ExportOptions:
     limits_name: str | None = None
     chunk_visits: int = CHUNK_VISITS
     settings: Settings = field(default_factory=Settings)
+    response_settings: ResponseSettings = field(default_factory=ResponseSettings)
 
 
 def validate(options: ExportOptions) -> None:
@@ -184,6 +188,7 @@ class ExportPlan:
     columns: list[Column]
     order: pd.DataFrame  # visit_key, patient_id, export_id, shift_days — sorted by export id, date, key
     patients_filter: list[str]
+    response: ResponseSpec | None = None  # the response columns' rule sets and settings (visit level only)
 
     @property
     def limits_label(self) -> str:
@@ -225,8 +230,10 @@ def prepare(session: Session, options: ExportOptions, *, username: str) -> Expor
     limits_label = f"{info.name} version {info.version}"
     chosen_sets = [s for s in sets if s.criteria in shown]
     keys = key_columns(identified=options.identified, dates=options.dates)
+    response = response_spec(options.response_settings) if options.level == "visit" else None
     per_level = {
-        "visit": lambda: visit_columns(chosen_sets, limits_label, identified=options.identified),
+        "visit": lambda: visit_columns(chosen_sets, limits_label, identified=options.identified)
+        + response_columns(response.rules_info, list(response.scales), identified=options.identified, dates=options.dates),
         "nerve": lambda: nerve_columns(chosen_sets, limits_label),
         "segment": lambda: segment_columns(chosen_sets, limits_label),
         "long": long_columns,
@@ -239,7 +246,7 @@ def prepare(session: Session, options: ExportOptions, *, username: str) -> Expor
     order["shift_days"] = order["code"].map({c: deidentify.date_shift_days(secret, c) for c in codes}).astype("int64")
     order = order.sort_values(["export_id", "visit_date", "visit_key"], kind="stable").reset_index(drop=True)
     return ExportPlan(options, secret, info, limits, chosen_sets, sets, columns,
-                      order[["visit_key", "patient_id", "export_id", "shift_days"]], sorted(set(options.patients)))
+                      order[["visit_key", "patient_id", "export_id", "shift_days"]], sorted(set(options.patients)), response)
 
 
 def _visit_order(session: Session, options: ExportOptions) -> pd.DataFrame:
@@ -398,6 +405,8 @@ def _visit_level(plan: ExportPlan, session: Session, context: pd.DataFrame, visi
         frame = _with_identity(session, frame, context)
     frame = _with_treatments(session, frame, context)
     frame = _with_scores(session, frame, context)
+    frame = with_response(session, frame, context, plan.response, shifted=plan.options.dates == "shifted",
+                          identified=identified)
     for found in plan.sets:
         if found.criteria not in results:
             continue
