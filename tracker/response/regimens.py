@@ -10,7 +10,7 @@ designs measure the response to maintenance from the baseline before the inducti
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 from tracker.response.settings import ResponseSettings
 
@@ -31,7 +31,8 @@ class TreatmentPeriod:
 @dataclass(frozen=True)
 class Regimen:
     """A regimen. ``start_date`` is the induction's start when there is one (the baseline lies before it);
-    ``end_date`` is the recorded end, or the day before the same therapy changes; None while ongoing."""
+    ``end_date`` is the recorded end, or the day before the same therapy changes; None while ongoing.
+    Build regimens with :func:`regimens`, which also sets ``assessed_until``."""
 
     therapy: str
     start_date: dt.date
@@ -41,6 +42,10 @@ class Regimen:
     interval_days: int | None
     induction: TreatmentPeriod | None = None
     periods: tuple[TreatmentPeriod, ...] = field(default=())
+    # Until when a change is attributed to this regimen: its end, except for a single course (no repeat
+    # interval), whose effect is followed until the next regimen of any therapy starts (None: open).
+    assessed_until: dt.date | None = None
+    single_course: bool = False
 
     @property
     def key(self) -> str:
@@ -58,7 +63,12 @@ class Regimen:
         return text
 
     def covers(self, day: dt.date) -> bool:
+        """Whether the regimen runs on ``day``."""
         return self.start_date <= day and (self.end_date is None or day <= self.end_date)
+
+    def attributes(self, day: dt.date) -> bool:
+        """Whether a change seen on ``day`` is attributed to this regimen (see ``assessed_until``)."""
+        return self.start_date <= day and (self.assessed_until is None or day <= self.assessed_until)
 
 
 def dose_words(therapy: str, dose: float | None, dose_unit: str | None, interval_days: int | None) -> str:
@@ -124,7 +134,16 @@ def regimens(periods: list[TreatmentPeriod], settings: ResponseSettings | None =
                     periods=tuple(group),
                 )
             )
-    return sorted(out, key=lambda r: (r.start_date, r.therapy))
+    out = sorted(out, key=lambda r: (r.start_date, r.therapy))
+    finished = []
+    for index, regimen in enumerate(out):
+        single = regimen.induction is None and len(regimen.periods) == 1 and _is_single_course(regimen.periods[0])
+        until = regimen.end_date
+        if single:
+            later = [r.start_date for r in out[index + 1:] if r.start_date > regimen.start_date]
+            until = min(later) - dt.timedelta(days=1) if later else None
+        finished.append(replace(regimen, assessed_until=until, single_course=single))
+    return finished
 
 
 def _is_single_course(period: TreatmentPeriod) -> bool:

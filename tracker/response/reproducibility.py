@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import csv
 import io
-import math
 from dataclasses import dataclass
 from functools import cache
 from pathlib import Path
@@ -17,7 +16,7 @@ from pathlib import Path
 from tracker.domain.reference_files import read_reference_csv
 from tracker.errors import InputRejected, Problem
 
-SDC_FACTOR = 1.96 * math.sqrt(2.0)  # ≈ 2.77; normatives.md §3.1
+SDC_FACTOR = 2.77  # 1.96 × √2 rounded as normatives.md §3.1 states it; the shipped sdc_pct column uses the same factor
 PARAMETERS = (
     "distal_cmap_amplitude", "proximal_cmap_amplitude", "distal_latency", "segment_velocity", "f_latency",
     "sensory_velocity", "snap_amplitude", "block_pct",

@@ -183,7 +183,7 @@ def classify(regimen: Regimen, scores: dict[str, list[tuple[dt.date, float]]], r
     """
     settings = settings or ResponseSettings()
     scales = scales or scale_table()
-    until = at if regimen.end_date is None else min(at, regimen.end_date)
+    until = at if regimen.assessed_until is None else min(at, regimen.assessed_until)
     result = Classification(regimen, rule_set.id, rule_set.version, rule_set.title, at, "not_assessable")
     seen = {scale: [p for p in points if p[0] <= at] for scale, points in scores.items()}
     outcomes: dict[str, str] = {}

@@ -44,7 +44,7 @@ def cohort_course(session: Session, *, rules_id: str | None = None, settings: Re
             days.append(last_visit[pid])
         at = max(days) if days else None
         plan = [r for r in regimens(periods.get(pid, []), settings) if at is not None and r.start_date <= at]
-        running = [r for r in plan if r.covers(at)] if at else []
+        running = [r for r in plan if r.attributes(at)] if at else []
         chosen = running[-1] if running else (plan[-1] if plan else None)
         if chosen is None:
             rows.append({"code": code, "course": "not_assessable", "rules": rule_set.id, "rules_version": rule_set.version,

@@ -121,8 +121,8 @@ def patient_response(
 
 
 def _running(plan: list[Regimen], day: dt.date) -> Regimen | None:
-    """The regimen running on ``day`` (the latest started when several overlap)."""
-    running = [r for r in plan if r.covers(day)]
+    """The regimen a change on ``day`` is attributed to (the latest started when several overlap)."""
+    running = [r for r in plan if r.attributes(day)]
     return running[-1] if running else None
 
 
@@ -208,6 +208,8 @@ def _regimen_dict(regimen: Regimen) -> dict:
         "end_date": regimen.end_date.isoformat() if regimen.end_date else None, "dose": regimen.dose,
         "dose_unit": regimen.dose_unit, "interval_days": regimen.interval_days, "label": regimen.label(),
         "maintenance_start_date": regimen.maintenance_start.isoformat(),
+        "assessed_until": regimen.assessed_until.isoformat() if regimen.assessed_until else None,
+        "single_course": regimen.single_course,
         "induction": None if regimen.induction is None else {
             "start_date": regimen.induction.start_date.isoformat(),
             "end_date": regimen.induction.end_date.isoformat() if regimen.induction.end_date else None,
