@@ -6,11 +6,24 @@ from __future__ import annotations
 import pandas as pd
 from sqlalchemy.orm import Session
 
+from tracker.errors import NotFound
 from tracker.response import rules
 from tracker.response.regimens import regimens
 from tracker.response.scales import scale_table, with_computed
 from tracker.response.settings import ResponseSettings
 from tracker.services.response.loading import patients, scores_frame, treatment_periods, visit_dates
+
+# The recorded scales each rule scale is read or computed from.
+_SOURCES = {
+    "adjusted_incat": ("adjusted_incat", "incat_arm", "incat_leg"),
+    "incat": ("incat", "incat_arm", "incat_leg"),
+    rules.AFFECTED_GRIP: ("grip_kpa_left", "grip_kpa_right"),
+}
+
+
+def _inputs(rule_set: rules.RuleSet) -> list[str]:
+    return sorted({name for rule in rule_set.rules for name in _SOURCES.get(rule.scale, (rule.scale,))})
+
 
 COURSE_COLUMNS = ["code", "course", "rules", "rules_version", "regimen", "since", "why"]
 
@@ -22,22 +35,24 @@ def cohort_course(session: Session, *, rules_id: str | None = None, settings: Re
     ``loaded``: (patients, visit dates) when the caller has read them already."""
     settings = settings or ResponseSettings()
     available = rules.rule_sets()
+    if (rules_id or rules.DEFAULT_RULES) not in available:
+        raise NotFound(f"Unknown response rule set {rules_id!r}; choose one of {', '.join(available)}")
     rule_set = available[rules_id or rules.DEFAULT_RULES]
     people, visits = loaded if loaded is not None else (patients(session), visit_dates(session))
     periods = treatment_periods(session)
-    scores, _ = with_computed(scores_frame(session))
+    scores, _ = with_computed(scores_frame(session, scales=_inputs(rule_set)))
     last_visit: dict[int, object] = {}
-    for pid, day in zip(visits["patient"], visits["visit_date"]):  # sorted by patient and date
+    for pid, day in zip(visits["patient"].tolist(), visits["visit_date"].tolist()):  # sorted by patient and date
         last_visit[pid] = day
     table = scale_table()
     by_patient: dict[int, dict[str, list]] = {}
-    for pid, scale, day, value in zip(scores["patient"], scores["scale"], scores["date"], scores["value"]):
+    for pid, scale, day, value in zip(scores["patient"].tolist(), scores["scale"].tolist(), scores["date"].tolist(), scores["value"].tolist()):
         by_patient.setdefault(pid, {}).setdefault(scale, []).append((day, float(value)))
     for series in by_patient.values():
         for points in series.values():
             points.sort()
     rows = []
-    for pid, code in zip(people["patient"], people["code"]):
+    for pid, code in zip(people["patient"].tolist(), people["code"].tolist()):
         series = by_patient.get(pid, {})
         days = [points[-1][0] for points in series.values()]
         if pid in last_visit:

@@ -21,13 +21,15 @@ def treatment_periods(session: Session, patient_ids: list[int] | None = None) ->
     return out
 
 
-def scores_frame(session: Session, patient_ids: list[int] | None = None) -> pd.DataFrame:
-    """Recorded scores: ``patient`` (the patient id), ``date``, ``scale``, ``value``."""
+def scores_frame(session: Session, patient_ids: list[int] | None = None, scales: list[str] | None = None) -> pd.DataFrame:
+    """Recorded scores: ``patient`` (the patient id), ``date``, ``scale``, ``value`` (only ``scales`` if given)."""
     # Dates as ISO text, parsed vectorised below: the per-row date conversion of the driver layer cost more
     # than the query itself on a 5,000-patient database.
     query = select(OutcomeScore.patient_id, cast(OutcomeScore.score_date, String), OutcomeScore.scale, OutcomeScore.value)
     if patient_ids is not None:
         query = query.where(OutcomeScore.patient_id.in_(patient_ids))
+    if scales is not None:
+        query = query.where(OutcomeScore.scale.in_(scales))
     frame = pd.read_sql(query, session.connection())
     frame.columns = ["patient", "date", "scale", "value"]
     frame["date"] = _dates(frame["date"])
