@@ -128,3 +128,44 @@ def test_follow_up_page_draws_and_hover_shows_the_value(served, tmp_path):
             print(f"follow-up page drawn in {drawn:.2f} s; screenshot {shot}")
         finally:
             browser.close()
+
+
+def test_follow_up_page_shows_the_treatment_response(served, tmp_path):
+    from playwright.sync_api import sync_playwright
+
+    from tracker.domain.labels import CLASSIFICATION_LABELS, CLASSIFICATION_SHAPES
+    from tracker.services.response import patient_response
+
+    base, url = served
+    engine = make_engine(url)
+    with make_session_factory(engine)() as session:
+        expected = patient_response(session, "DEMO-02")
+    engine.dispose()
+    assert expected.classifications
+    current = next(c for c in reversed(expected.classifications) if c.regimen == expected.current)
+    word = f"{CLASSIFICATION_SHAPES[current.classification]} {CLASSIFICATION_LABELS[current.classification]}"
+
+    with sync_playwright() as playwright:
+        browser = playwright.chromium.launch(executable_path=chromium_path(), args=CHROMIUM_FLAGS)
+        try:
+            page = browser.new_page(viewport={"width": 1400, "height": 2400})
+            outside: list[str] = []
+            page.on("request", lambda request: outside.append(request.url) if not request.url.startswith(("http://127.0.0.1", "data:", "blob:")) else None)
+            page.goto(f"{base}/follow-up?patient=DEMO-02")
+            page.get_by_text("Treatment response", exact=True).wait_for(timeout=60_000)
+            assert page.get_by_text("defers to the treating clinician", exact=False).count() >= 1
+            # The running regimen's card: the classification word and shape, then the regimen in words.
+            card = page.locator("p").filter(has_text=word).first
+            card.wait_for(timeout=30_000)
+            assert current.regimen.label() in (card.text_content() or "")
+            # The score panels are drawn: one subplot title per scale.
+            page.wait_for_function("document.querySelectorAll('.js-plotly-plot').length >= 3", timeout=60_000)
+            scores = page.locator(".js-plotly-plot").nth(2)
+            titles = scores.locator(".annotation-text").all_text_contents()
+            assert sum("higher is" in t for t in titles) == expected.scores["scale"].nunique(), titles
+            shot = tmp_path / "follow_up_response.png"
+            page.screenshot(path=str(shot), full_page=True)
+            assert not outside, f"the page asked for outside addresses: {outside[:3]}"
+            print(f"screenshot {shot}")
+        finally:
+            browser.close()

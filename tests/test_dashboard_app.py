@@ -275,3 +275,63 @@ def _numbers(values) -> list[float]:
 
         return list(np.frombuffer(base64.b64decode(values["bdata"]), dtype=values["dtype"]).astype(float))
     return [float(v) for v in values]
+
+
+def _service(url: str, call):
+    engine = make_engine(url)
+    try:
+        with make_session_factory(engine)() as session:
+            return call(session)
+    finally:
+        engine.dispose()
+
+
+def test_follow_up_shows_score_panels_and_the_response(monkeypatch, demo_url):
+    from tracker.domain.labels import CLASSIFICATION_LABELS, CLASSIFICATION_SHAPES
+    from tracker.response.rules import DEFAULT_RULES
+    from tracker.services.response import patient_response
+
+    at = open_page(monkeypatch, demo_url, "views/follow_up.py", patient="DEMO-02")
+    expected = _service(demo_url, lambda session: patient_response(session, "DEMO-02"))
+    assert expected.rule_set.id == DEFAULT_RULES == at.selectbox(key="follow_rules").value
+    # One score panel per scale (recorded and computed), each on a y-axis of its own.
+    scores = plotly_specs(at)[2]
+    score_lines = [t for t in scores["data"] if t.get("meta", {}).get("kind") == "score"]
+    assert {t["meta"]["scale"] for t in score_lines} == set(expected.scores["scale"])
+    assert len({t.get("yaxis", "y") for t in score_lines}) == len(score_lines) > 1
+    # The response panel: every regimen's classification in words with its shape, and the deference.
+    assert [s.value for s in at.subheader] == ["Treatment response"]
+    text = page_text(at)
+    for c in expected.classifications:
+        assert f"{CLASSIFICATION_SHAPES[c.classification]} {CLASSIFICATION_LABELS[c.classification]}" in text
+        assert c.regimen.label() in text
+        for missing in c.missing:
+            assert missing in text
+    assert "defers to the treating clinician" in text and expected.rule_set.title in text
+    # Another rule set: the panel follows the service.
+    at.selectbox(key="follow_rules").select("trial-composite").run()
+    assert not at.exception and not at.error
+    composite = _service(demo_url, lambda session: patient_response(session, "DEMO-02", rules_id="trial-composite"))
+    text = page_text(at)
+    assert composite.rule_set.title in text
+    for c in composite.classifications:
+        assert f"{CLASSIFICATION_SHAPES[c.classification]} {CLASSIFICATION_LABELS[c.classification]}" in text
+    evidence = [d.value for d in at.dataframe if "threshold" in d.value.columns and "source" in d.value.columns]
+    assert sum(len(e) for e in evidence) == sum(len(c.evidence) for c in composite.classifications)
+
+
+def test_patients_page_has_the_course_column(monkeypatch, demo_url):
+    from tracker.domain.labels import COURSE_LABELS
+    from tracker.services.response import cohort_course
+
+    at = open_page(monkeypatch, demo_url)
+    for rules_id in ("trial-aincat", "trial-composite"):
+        if rules_id != "trial-aincat":
+            at.selectbox(key="patients_rules").select(rules_id).run()
+            assert not at.exception
+        expected = _service(demo_url, lambda session: cohort_course(session, rules_id=rules_id)).set_index("code")
+        table = at.dataframe[0].value.set_index("patient")
+        assert set(COURSE_LABELS.values()) >= set(table["course"])
+        assert table["course"].to_dict() == {code: COURSE_LABELS[c] for code, c in expected["course"].items()}
+        assert table["course rule set"].to_dict() == {code: f"{r} v{v}" for code, r, v in zip(expected.index, expected["rules"], expected["rules_version"])}
+        assert set(table["course rule set"].str.split().str[0]) == {rules_id}

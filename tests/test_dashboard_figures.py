@@ -17,6 +17,7 @@ from tracker.db.session import make_engine, make_session_factory
 from tracker.services.evaluation import load_frames
 from tracker.services.follow_up import PARAMETERS, follow_up
 from tracker.services.limit_sets import resolve
+from tracker.services.response_view import response_view
 
 from conftest import new_database
 
@@ -30,6 +31,9 @@ def demo_sessions(request, tmp_path_factory):
     yield make_session_factory(engine)
     engine.dispose()
     next(generator, None)
+
+
+DEMO_CODES = [f"DEMO-0{i}" for i in range(1, 7)]  # the invented demo clinic
 
 
 def traces(figure, panel: str, kind: str):
@@ -131,22 +135,218 @@ def test_median_cv_lines_match_the_handbook_limit(demo_sessions):
 def test_treatments_shaded_and_scores_plotted(demo_sessions):
     with demo_sessions() as session:
         fu = follow_up(session, "DEMO-02", parameter="cv")
+        view = response_view(session, "DEMO-02")
         treatments = session.execute(select(Treatment.start_date).join(Patient).where(Patient.code == "DEMO-02")).all()
         scores = session.execute(
             select(OutcomeScore.score_date, OutcomeScore.value).join(Patient).where(Patient.code == "DEMO-02", OutcomeScore.scale == "incat").order_by(OutcomeScore.score_date)
         ).all()
+    # Without the response analysis, one span per stored treatment row (as before).
     figure = figures.trend_figure(fu)
     spans = [s for s in figure.layout.shapes if s.type == "rect"]
     assert len(treatments) > 0
     assert {str(s.x0)[:10] for s in spans} == {t.start_date.isoformat() for t in treatments}
     labels = [a.text for a in figure.layout.annotations if a.text.startswith("▸")]
     assert len(labels) == len(treatments)
-    score_figure = figures.scores_figure(fu)
-    [incat] = [t for t in score_figure.data if t.meta["scale"] == "incat"]
+    window = figures.time_range(fu)
+    score_figure = figures.scores_figure(view, window=window)
+    [incat] = [t for t in score_figure.data if t.meta["kind"] == "score" and t.meta["scale"] == "incat"]
     assert list(incat.y) == [s.value for s in scores]
     assert list(incat.x) == [s.score_date for s in scores]
     # One time axis: the trends, the scores and the outcome strip share the same range.
-    assert figure.layout.xaxis.range == score_figure.layout.xaxis.range == figures.outcome_strip(fu).layout.xaxis.range
+    with_regimens = figures.trend_figure(fu, regimens=view.response.regimens, steps=view.steps)
+    assert with_regimens.layout.xaxis.range == score_figure.layout.xaxis.range == figures.outcome_strip(fu).layout.xaxis.range
+    assert {tuple(a["range"]) for name, a in score_figure.layout.to_plotly_json().items() if name.startswith("xaxis")} == {tuple(score_figure.layout.xaxis.range)}
+
+
+def reference_scales() -> dict[str, dict[str, str]]:
+    """tracker/reference/scales.csv read as text, apart from the code that uses it; every row names its source."""
+    import csv
+    from pathlib import Path
+
+    import tracker
+
+    with (Path(tracker.__file__).parent / "reference" / "scales.csv").open(encoding="utf-8") as handle:
+        return {row["scale"]: row for row in csv.DictReader(handle)}
+
+
+def score_traces(figure, kind: str = "score") -> dict[str, object]:
+    return {t.meta["panel"]: t for t in figure.data if t.meta and t.meta.get("kind") == kind}
+
+
+@pytest.mark.parametrize("code", DEMO_CODES)
+def test_one_score_panel_per_scale_on_its_own_range(demo_sessions, code):
+    # Ranges and directions from the scales' own publications, as listed in tracker/reference/scales.csv: INCAT
+    # 0–10, higher is worse (Ellrichmann G et al. Ther Adv Neurol Disord 2017); I-RODS centile 0–100, higher is
+    # better (van Nes SI et al. Neurology 2011); MRC sum 0–60, higher is better (Kleyweg RP et al. 1991);
+    # Vigorimeter grip in kPa, higher is better (Merkies ISJ et al. Muscle Nerve 2000).
+    reference = reference_scales()
+    with demo_sessions() as session:
+        fu = follow_up(session, code, parameter="cv", strip_criteria=[])
+        view = response_view(session, code)
+        stored = session.execute(
+            select(OutcomeScore.scale, OutcomeScore.score_date, OutcomeScore.value).join(Patient).where(Patient.code == code)
+        ).all()
+    figure = figures.scores_figure(view, window=figures.time_range(fu))
+    traces_by_scale = score_traces(figure)
+    assert set(traces_by_scale) == set(view.response.scores["scale"])
+    # Every recorded score of the database is drawn where it belongs (computed scales come on top).
+    for scale in {row.scale for row in stored}:
+        rows = sorted((row.score_date, row.value) for row in stored if row.scale == scale)
+        assert list(zip(traces_by_scale[scale].x, traces_by_scale[scale].y)) == rows
+    # One panel each: a y-axis of its own, its range the scale's range (plus the drawing margin), a title that
+    # names the label, the unit and the direction.
+    layout = figure.layout.to_plotly_json()
+    axes = [t.yaxis for t in traces_by_scale.values()]
+    assert len(set(axes)) == len(axes)
+    titles = [a.text for a in figure.layout.annotations if not a.text.startswith("▸")]
+    for scale, trace in traces_by_scale.items():
+        row = reference[scale]
+        low, high = float(row["minimum"]), float(row["maximum"])
+        pad = (high - low) * figures.SCALE_PAD
+        axis = layout["yaxis" + trace.yaxis[1:]]
+        assert axis["range"] == pytest.approx([low - pad, high + pad])
+        direction = "higher is better" if row["direction"] == "higher_better" else "higher is worse"
+        assert f"{row['label']} ({row['unit']}) — {direction}" in titles
+    assert len(titles) == len(traces_by_scale)
+
+
+def expected_baseline(series: list[tuple[dt.date, float]], start: dt.date, end: dt.date | None) -> tuple[dt.date, float] | None:
+    """The regimen baseline as the trials define it — the last score before the regimen starts (ICE, Hughes RAC
+    et al. Lancet Neurol 2008; PATH, van Schaik IN et al. Lancet Neurol 2018) — within a look-back of 90 days,
+    else the first score up to 14 days after the start (both windows: common practice, no source)."""
+    before = [p for p in series if start - dt.timedelta(days=90) <= p[0] <= start]
+    if before:
+        return before[-1]
+    latest = start + dt.timedelta(days=14) if end is None else min(start + dt.timedelta(days=14), end)
+    after = [p for p in series if start < p[0] <= latest]
+    return after[0] if after else None
+
+
+def test_mic_band_is_the_regimen_baseline_plus_minus_the_published_mic(demo_sessions):
+    # Minimal important changes as published (tracker/reference/scales.csv, each row with its source): INCAT
+    # and adjusted INCAT 1 point (ICE, Hughes RAC et al. Lancet Neurol 2008;7:136–144); I-RODS 4 centile points
+    # (ADHERE, Allen JA et al. Lancet Neurol 2024); MRC sum 2 points (secondary table, Practical Neurology);
+    # Vigorimeter grip 8 kPa (Vanhoutte EK et al. Eur J Neurol 2013;20:748–755).
+    reference = reference_scales()
+    published = {"incat": 1.0, "adjusted_incat": 1.0, "i_rods": 4.0, "mrc_sum": 2.0, "grip_kpa_left": 8.0, "grip_kpa_right": 8.0}
+    for scale, mic in published.items():
+        assert float(reference[scale]["mic"]) == mic and reference[scale]["mic_kind"] == "absolute"
+    drawn = 0
+    with demo_sessions() as session:
+        for code in DEMO_CODES:
+            fu = follow_up(session, code, parameter="cv", strip_criteria=[])
+            view = response_view(session, code)
+            current = view.response.current
+            figure = figures.scores_figure(view, window=figures.time_range(fu))
+            bands = score_traces(figure, "mic band")
+            if current is None:
+                assert bands == {}, code
+                continue
+            scores = view.response.scores
+            for scale in set(scores["scale"]):
+                part = scores[scores["scale"] == scale].sort_values("date")
+                base = expected_baseline(list(zip(part["date"], part["value"].astype(float))), current.start_date, current.end_date)
+                mic = reference[scale]["mic"]
+                if base is None or not mic:
+                    assert scale not in bands, (code, scale)
+                    continue
+                size = float(mic) if reference[scale]["mic_kind"] == "absolute" else abs(base[1]) * float(mic) / 100
+                band = bands[scale]
+                assert min(band.y) == pytest.approx(base[1] - size) and max(band.y) == pytest.approx(base[1] + size), (code, scale)
+                assert min(band.x) == base[0] and band.meta["baseline"] == base[1]
+                # The band runs over the running regimen, up to the latest day seen.
+                assert max(band.x) == (current.end_date or view.response.at)
+                drawn += 1
+    assert drawn >= 3  # the invented demo clinic has patients with a running regimen and scores before it
+
+
+@pytest.mark.parametrize("code", DEMO_CODES)
+def test_each_regimen_is_one_labelled_span_over_its_stored_treatments(demo_sessions, code):
+    with demo_sessions() as session:
+        fu = follow_up(session, code, parameter="cv", strip_criteria=[])
+        view = response_view(session, code)
+        stored = session.execute(
+            select(Treatment.therapy, Treatment.start_date, Treatment.end_date, Treatment.dose, Treatment.dose_unit, Treatment.interval_days)
+            .join(Patient).where(Patient.code == code)
+        ).all()
+    window = figures.time_range(fu)
+    for figure in (figures.trend_figure(fu, regimens=view.response.regimens, steps=view.steps), figures.scores_figure(view, window=window)):
+        spans = {(str(s.x0)[:10], str(s.x1)[:10], s.name) for s in figure.layout.shapes if s.type == "rect"}
+        assert len(spans) == len(view.response.regimens) == len({name for _, _, name in spans})
+        labels = [a.text for a in figure.layout.annotations if a.text.startswith("▸")]
+        assert sorted(labels) == sorted(f"▸ {name.removeprefix('regimen: ')}" for _, _, name in spans)
+        # Every span starts on a stored start date; every stored treatment lies inside one span whose words
+        # name its therapy, dose and interval.
+        assert {start for start, _, _ in spans} <= {t.start_date.isoformat() for t in stored}
+        for t in stored:
+            end = (t.end_date or window[1]).isoformat()
+            holders = [name for start, stop, name in spans if start <= t.start_date.isoformat() and end <= stop]
+            assert len(holders) >= 1, (code, t)
+            words = f"{t.dose:g} {t.dose_unit}" + (f" every {t.interval_days} days" if t.interval_days and t.interval_days > 1 else "")
+            assert any(name.startswith(f"regimen: {t.therapy.replace('_', ' ')}") and words in name for name in holders), (code, t, holders)
+
+
+def reference_sdc() -> dict[str, tuple[float | None, bool]]:
+    """tracker/reference/reproducibility.csv read as text: {parameter: (SDC %, higher is better)}."""
+    import csv
+    from pathlib import Path
+
+    import tracker
+
+    with (Path(tracker.__file__).parent / "reference" / "reproducibility.csv").open(encoding="utf-8") as handle:
+        return {row["parameter"]: (float(row["sdc_pct"]) if row["sdc_pct"] else None, row["better"] == "higher") for row in csv.DictReader(handle)}
+
+
+@pytest.mark.parametrize("code", DEMO_CODES)
+def test_nerve_changes_beyond_the_sdc_are_marked_by_shape_and_word(demo_sessions, code):
+    # Smallest detectable change (95 %) = 1.96 × √2 × between-session CoV: 27.1 % for latencies and velocities,
+    # 54.8 % for amplitudes, from the CoVs of Kong X, Lesser EA, Gozani SN, BioMed Eng OnLine 2009;8:33
+    # (tracker/reference/reproducibility.csv). Block has no published figure: never marked.
+    sdc = reference_sdc()
+    # The file applies the factor rounded to 2.77, as its source column says.
+    assert sdc["segment_velocity"][0] == pytest.approx(2.77 * 9.8, abs=0.05)
+    assert sdc["distal_cmap_amplitude"][0] == pytest.approx(2.77 * 19.8, abs=0.05)
+    mapped = {"cv": "segment_velocity", "distal_latency": "distal_latency", "distal_cmap": "distal_cmap_amplitude", "block": "block_pct",
+              "f_latency": "f_latency", "sensory_cv": "sensory_velocity", "snap": "snap_amplitude", "dispersion": None}
+    marked_anywhere = 0
+    with demo_sessions() as session:
+        view = response_view(session, code)
+        for parameter, name in mapped.items():
+            fu = follow_up(session, code, parameter=parameter, criteria="efns-pns-2010-cidp", strip_criteria=[])
+            figure = figures.trend_figure(fu, regimens=view.response.regimens, steps=view.steps)
+            marks = {
+                (t.meta["panel"], x, y): (t.meta["verdict"], t.marker.symbol, text)
+                for t in figure.data if t.meta and t.meta.get("kind") == "change beyond SDC"
+                for x, y, text in zip(t.x, t.y, t.customdata)
+            }
+            marked_anywhere += len(marks)
+            if name is None or sdc[name][0] is None:
+                assert marks == {}, (code, parameter)
+                continue
+            limit, higher_better = sdc[name]
+            expected = {}
+            for line in [t for t in figure.data if t.meta and t.meta.get("kind") == "measured"]:
+                points = list(zip(line.x, line.y))
+                for (day, value), (previous_day, previous) in zip(points[1:], points[:-1]):
+                    previous_visit = max(d for d in fu.visit_dates if d < day)
+                    if previous_day != previous_visit or previous == 0:
+                        continue
+                    pct = (value - previous) / abs(previous) * 100
+                    if round(abs(pct), 6) >= limit:
+                        expected[(line.meta["panel"], day, value)] = "improved" if (pct > 0) == higher_better else "worsened"
+            for key, verdict in expected.items():
+                assert key in marks and marks[key][0] == verdict, (code, parameter, key)
+                symbol = "triangle-up-open" if verdict == "improved" else "triangle-down-open"
+                assert marks[key][1] == symbol and "beyond SDC" in marks[key][2]
+            # A mark without a change computed here: F-waves absent at one of the two visits (no latency drawn).
+            for key in set(marks) - set(expected):
+                assert parameter == "f_latency" and "F-waves absent" in marks[key][2], (code, parameter, key, marks[key])
+            # The measured point's own hover carries the same words.
+            for line in [t for t in figure.data if t.meta and t.meta.get("kind") == "measured"]:
+                for x, y, custom in zip(line.x, line.y, line.customdata):
+                    assert (("beyond SDC" in custom[6]) or ("F-waves absent" in custom[6])) == ((line.meta["panel"], x, y) in marks)
+    if code in ("DEMO-01", "DEMO-02"):
+        assert marked_anywhere > 0  # treated patients of the invented clinic with a change beyond the SDC
 
 
 def test_cold_limb_is_marked_in_shape_and_hover(demo_sessions):

@@ -1,7 +1,8 @@
 """Plotly figures as pure functions of service results (testable without Streamlit).
 
 Every trace carries ``meta = {"panel": …, "kind": …}`` (kind: ``measured``, ``normal limit``,
-``criteria threshold``, ``score``, ``outcome``) so that tests and readers can find what a line stands for.
+``criteria threshold``, ``change beyond SDC``, ``score``, ``mic band``, ``baseline``, ``outcome``) so that tests
+and readers can find what a line stands for. Treatment spans are layout shapes named ``regimen: <words>``.
 """
 
 from __future__ import annotations
@@ -14,10 +15,14 @@ import plotly.graph_objects as go
 from plotly.subplots import make_subplots
 
 from tracker.dashboard import style
+from tracker.domain.labels import SDC_STEP_LABELS
+from tracker.response.regimens import Regimen
 from tracker.services.follow_up import FollowUp
+from tracker.services.response_view import ResponseView
 
 COMPARATOR_WORDS = {"le": "≤", "lt": "<", "ge": "≥", "gt": ">"}
 OUTCOME_SYMBOLS = {"positive": "triangle-up", "other finding": "diamond", "negative": "circle-open", "not evaluable": "square-open"}
+SCALE_PAD = 0.05  # share of a scale's range added above and below, so points at its ends stay visible
 
 
 def time_range(fu: FollowUp) -> tuple[dt.date, dt.date] | None:
@@ -42,10 +47,15 @@ def _temperature_text(row) -> str:
     return text
 
 
-def trend_figure(fu: FollowUp, *, columns: int = 2) -> go.Figure:
+def trend_figure(fu: FollowUp, *, regimens: list[Regimen] | None = None, steps: pd.DataFrame | None = None, columns: int = 2) -> go.Figure:
     """Small multiples, one panel per nerve and side: the chosen parameter over visit dates, with the normal
     limit (dashed) and the chosen criteria set's threshold (dotted) drawn on every panel, and treatment
-    periods shaded across all panels."""
+    periods shaded across all panels — one span per regimen when ``regimens`` are given (the response
+    analysis's), else one per stored treatment row.
+
+    ``steps``: :data:`tracker.services.response_view.STEP_COLUMNS` rows; a plotted point whose change since the
+    previous study is beyond the smallest detectable change gets an open triangle around it (down: worse,
+    up: better) and the words in its hover."""
     points, references = fu.points, fu.references
     panels = sorted(set(points["panel"]) | set(references["panel"]))
     unit = fu.parameter.unit
@@ -61,16 +71,21 @@ def trend_figure(fu: FollowUp, *, columns: int = 2) -> go.Figure:
     )
     series_colour: dict[str, str] = {}
     shown_in_legend: set[str] = set()
+    step_of = _steps_by_point(steps, fu.parameter.key)
     for index, panel in enumerate(panels):
         row, col = index // columns + 1, index % columns + 1
+        beyond: dict[str, list[tuple]] = {}
         for series, group in points[points["panel"] == panel].groupby("series", sort=True):
             colour = series_colour.setdefault(series, style.SERIES[len(series_colour) % len(style.SERIES)])
             group = group.sort_values("visit_date")
             plotted = group[group["value"].notna()]
-            custom = [
-                [d.isoformat(), f"{v:.2f}", unit, _temperature_text(r), series, r.note or ""]
-                for d, v, r in zip(plotted["visit_date"], plotted["value"], plotted.itertuples())
-            ]
+            custom = []
+            for d, v, r in zip(plotted["visit_date"], plotted["value"], plotted.itertuples()):
+                step = _step_of(step_of, panel, str(series), d, float(v))
+                if step is not None:
+                    beyond.setdefault(step["verdict"], []).append((d, float(v), step["words"]))
+                change = f"<br>{step['words']}" if step is not None else ""
+                custom.append([d.isoformat(), f"{v:.2f}", unit, _temperature_text(r), series, r.note or "", change])
             figure.add_trace(
                 go.Scatter(
                     x=list(plotted["visit_date"]), y=[float(v) for v in plotted["value"]], mode="lines+markers", name=str(series),
@@ -78,12 +93,25 @@ def trend_figure(fu: FollowUp, *, columns: int = 2) -> go.Figure:
                     line={"color": colour, "width": 2},
                     marker={"size": 9, "color": colour, "symbol": ["circle-open-dot" if c else "circle" for c in plotted["cold"]], "line": {"width": 2, "color": colour}},
                     customdata=custom,
-                    hovertemplate="<b>%{customdata[0]}</b><br>%{customdata[4]}: %{customdata[1]} %{customdata[2]}<br>%{customdata[3]}<extra>" + panel + "</extra>",
+                    hovertemplate="<b>%{customdata[0]}</b><br>%{customdata[4]}: %{customdata[1]} %{customdata[2]}<br>%{customdata[3]}%{customdata[6]}<extra>" + panel + "</extra>",
                     meta={"panel": panel, "kind": "measured", "series": str(series)},
                 ),
                 row=row, col=col,
             )
             shown_in_legend.add(series)
+        for verdict, marks in sorted(beyond.items()):
+            symbol, colour = style.SDC_MARKERS[verdict]
+            figure.add_trace(
+                go.Scatter(
+                    x=[m[0] for m in marks], y=[m[1] for m in marks], mode="markers", name=SDC_STEP_LABELS[verdict],
+                    legendgroup=f"sdc-{verdict}", showlegend=f"sdc-{verdict}" not in shown_in_legend,
+                    marker={"symbol": symbol, "size": 19, "color": colour, "line": {"width": 2.4, "color": colour}},
+                    customdata=[m[2] for m in marks], hovertemplate="%{x|%Y-%m-%d}<br>%{customdata}<extra>" + panel + "</extra>",
+                    meta={"panel": panel, "kind": "change beyond SDC", "verdict": verdict},
+                ),
+                row=row, col=col,
+            )
+            shown_in_legend.add(f"sdc-{verdict}")
         for kind, dash, colour in (("normal limit", "dash", style.LIMIT_COLOUR), ("criteria threshold", "dot", style.THRESHOLD_COLOUR)):
             lines = references[(references["panel"] == panel) & (references["kind"] == kind)].sort_values("visit_date")
             if lines.empty:
@@ -107,10 +135,11 @@ def trend_figure(fu: FollowUp, *, columns: int = 2) -> go.Figure:
             )
             shown_in_legend.add(kind)
         figure.update_yaxes(title_text=unit, row=row, col=col, gridcolor=style.GRID)
-    _shade_treatments(figure, fu)
     window = time_range(fu)
+    spans = _regimen_spans(regimens, window) if regimens is not None else _treatment_spans(fu, window)
+    _shade(figure, spans)
     figure.update_xaxes(range=list(window) if window else None, gridcolor=style.GRID, type="date")
-    treatments = len(fu.treatments)
+    treatments = len(spans)
     figure.update_layout(
         template="plotly_white", height=250 * rows + 120 + 14 * min(treatments, 3), font={"color": style.INK}, hovermode="closest",
         margin={"l": 50, "r": 20, "t": 90, "b": 50 + 14 * min(treatments, 3)},
@@ -120,39 +149,123 @@ def trend_figure(fu: FollowUp, *, columns: int = 2) -> go.Figure:
     return figure
 
 
-def _shade_treatments(figure: go.Figure, fu: FollowUp) -> None:
-    if fu.treatments.empty:
-        return
-    window = time_range(fu)
-    for number, t in enumerate(fu.treatments.itertuples()):
+def _steps_by_point(steps: pd.DataFrame | None, parameter: str) -> dict[tuple, list[dict]]:
+    if steps is None or steps.empty:
+        return {}
+    out: dict[tuple, list[dict]] = {}
+    for step in steps[(steps["follow_parameter"] == parameter) & (steps["words"] != "")].to_dict("records"):
+        series = step["series"] if isinstance(step["series"], str) else None
+        out.setdefault((step["panel"], series, step["visit_date"]), []).append(step)
+    return out
+
+
+def _step_of(step_of: dict[tuple, list[dict]], panel: str, series: str, day: dt.date, value: float) -> dict | None:
+    """The step of a plotted point: same panel, day (and segment where it has one), and the same value — a mark
+    never lands on a number the change was not computed from."""
+    for step in step_of.get((panel, series, day), []) + step_of.get((panel, None, day), []):
+        if step["value"] is not None and abs(float(step["value"]) - value) <= 1e-6 * max(1.0, abs(value)):
+            return step
+    return None
+
+
+def _treatment_spans(fu: FollowUp, window) -> list[tuple[dt.date, dt.date, str]]:
+    spans = []
+    for t in fu.treatments.itertuples():
         end = t.end_date if t.end_date is not None and not pd.isna(t.end_date) else (window[1] if window else t.start_date)
-        if end == t.start_date:
-            end = t.start_date + dt.timedelta(days=1)
+        spans.append((t.start_date, end, t.label))
+    return spans
+
+
+def _regimen_spans(regimens: list[Regimen], window) -> list[tuple[dt.date, dt.date, str]]:
+    """(start, end, words) per regimen; a running regimen reaches the end of the time axis."""
+    return [(r.start_date, r.end_date or (window[1] if window else r.start_date), r.label()) for r in regimens]
+
+
+def _shade(figure: go.Figure, spans: list[tuple[dt.date, dt.date, str]]) -> None:
+    """One shaded span per treatment period or regimen, consecutive ones in alternating fills, each labelled
+    in words once under the bottom axis (staggered so that close starts do not overlap)."""
+    for number, (start, end, label) in enumerate(spans):
+        if end <= start:
+            end = start + dt.timedelta(days=1)
         figure.add_vrect(
-            x0=t.start_date, x1=end, fillcolor=style.TREATMENT_FILL, line_width=0, layer="below", row="all", col="all",
+            x0=start, x1=end, fillcolor=style.REGIMEN_FILLS[number % len(style.REGIMEN_FILLS)], line_width=0, layer="below",
+            row="all", col="all", name=f"regimen: {label}",
         )
-        # The label once, under the bottom axis, staggered so that close starts do not overlap.
         figure.add_annotation(
-            x=t.start_date, y=0, xref="x", yref="paper", text=f"▸ {t.label}", showarrow=False, xanchor="left", yanchor="top",
+            x=start, y=0, xref="x", yref="paper", text=f"▸ {label}", showarrow=False, xanchor="left", yanchor="top",
             font={"size": 10, "color": style.ACCENT}, yshift=-24 - 13 * (number % 3),
         )
 
 
-def scores_figure(fu: FollowUp) -> go.Figure:
-    """Clinical scores over time on the same time axis as the trends (one line per scale)."""
-    figure = go.Figure()
-    for scale, group in fu.scores.groupby("scale", sort=True):
+def scores_figure(view: ResponseView, *, window: tuple[dt.date, dt.date] | None = None, columns: int = 3) -> go.Figure:
+    """Clinical scores, one panel per scale on its own scale range (``scales.csv``), titled with label, unit and
+    direction; for scales with a minimal important change, the band baseline ± MIC around the running
+    regimen's baseline; every regimen shaded and labelled, on the same time axis as the trends."""
+    panels, scores = view.panels, view.points
+    if panels.empty:
+        figure = go.Figure()
+        figure.update_layout(title="No clinical scores recorded", template="plotly_white", height=200)
+        return figure
+    columns = max(1, min(columns, len(panels)))
+    rows = math.ceil(len(panels) / columns)
+    figure = make_subplots(
+        rows=rows, cols=columns, subplot_titles=list(panels["title"]), shared_xaxes="all",
+        vertical_spacing=min(0.16, 0.6 / rows), horizontal_spacing=0.06,
+    )
+    legend: set[str] = set()
+    for index, panel in enumerate(panels.itertuples(index=False)):
+        row, col = index // columns + 1, index % columns + 1
+        group = scores[scores["scale"] == panel.scale].sort_values("date", kind="stable")
+        unit = panel.unit if isinstance(panel.unit, str) else ""
+        if pd.notna(panel.band_low):
+            x0, x1 = panel.band_start, panel.band_end
+            band = f"minimal important change {panel.mic_words} around the regimen baseline {panel.baseline_value:g} ({panel.baseline_date.isoformat()})"
+            figure.add_trace(
+                go.Scatter(
+                    x=[x0, x1, x1, x0, x0], y=[panel.band_low, panel.band_low, panel.band_high, panel.band_high, panel.band_low],
+                    mode="lines", fill="toself", fillcolor=style.MIC_FILL, line={"width": 0}, hoveron="fills",
+                    name="± minimal important change around the regimen baseline", legendgroup="mic", showlegend="mic" not in legend,
+                    text=band + f"; source: {panel.mic_source}", hoverinfo="text",
+                    meta={"panel": panel.scale, "kind": "mic band", "baseline": float(panel.baseline_value)},
+                ),
+                row=row, col=col,
+            )
+            figure.add_trace(
+                go.Scatter(
+                    x=[x0, x1], y=[panel.baseline_value] * 2, mode="lines", line={"color": style.LIMIT_COLOUR, "dash": "dot", "width": 1.4},
+                    name="regimen baseline", legendgroup="baseline", showlegend="baseline" not in legend,
+                    hovertemplate=f"regimen baseline {panel.baseline_value:g} {unit} ({panel.baseline_date.isoformat()})<extra>{panel.label}</extra>",
+                    meta={"panel": panel.scale, "kind": "baseline"},
+                ),
+                row=row, col=col,
+            )
+            legend.update({"mic", "baseline"})
+        computed = group["computed"].astype(bool).tolist()
         figure.add_trace(
             go.Scatter(
-                x=list(group["score_date"]), y=[float(v) for v in group["value"]], mode="lines+markers", name=str(scale),
-                hovertemplate="%{x|%Y-%m-%d}: %{y}<extra>" + str(scale) + "</extra>", meta={"panel": "scores", "kind": "score", "scale": str(scale)},
-            )
+                x=list(group["date"]), y=[float(v) for v in group["value"]], mode="lines+markers", name=panel.label, showlegend=False,
+                line={"color": style.SCORE_COLOUR, "width": 2},
+                marker={"size": 8, "color": style.SCORE_COLOUR, "symbol": ["diamond-open" if c else "circle" for c in computed], "line": {"width": 2, "color": style.SCORE_COLOUR}},
+                customdata=[[unit, f" ({n})" if n else "", f"<br>{w}" if w else ""] for n, w in zip(group["note"], group["change_words"])],
+                hovertemplate="%{x|%Y-%m-%d}: %{y:g} %{customdata[0]}%{customdata[1]}%{customdata[2]}<extra>" + panel.label + "</extra>",
+                meta={"panel": panel.scale, "kind": "score", "scale": panel.scale},
+            ),
+            row=row, col=col,
         )
-    window = time_range(fu)
+        if pd.notna(panel.minimum) and pd.notna(panel.maximum):
+            pad = (panel.maximum - panel.minimum) * SCALE_PAD
+            figure.update_yaxes(range=[panel.minimum - pad, panel.maximum + pad], row=row, col=col)
+        figure.update_yaxes(gridcolor=style.GRID, row=row, col=col)
+    _shade(figure, _regimen_spans(view.response.regimens, window))
     figure.update_xaxes(range=list(window) if window else None, type="date", gridcolor=style.GRID)
+    figure.update_annotations(font_size=11, selector={"yref": "paper", "showarrow": False, "xanchor": "center"})
+    spans = len(view.response.regimens)
     figure.update_layout(
-        template="plotly_white", height=260, margin={"l": 50, "r": 20, "t": 40, "b": 30}, title={"text": "Clinical scores", "x": 0, "font": {"size": 14}},
-        legend={"orientation": "h", "y": -0.25},
+        template="plotly_white", height=210 * rows + 110 + 14 * min(spans, 3), font={"color": style.INK}, hovermode="closest",
+        margin={"l": 50, "r": 20, "t": 80, "b": 50 + 14 * min(spans, 3)},
+        title={"text": "Clinical scores", "x": 0, "font": {"size": 14}},
+        legend={"orientation": "h", "yanchor": "bottom", "y": 1.0 + 40 / (210 * rows), "x": 0.2},
+        meta={"patient": view.response.patient, "panels": list(panels["scale"])},
     )
     return figure
 

@@ -17,6 +17,8 @@ from tracker.services import cohort, preferences
 from tracker.services.follow_up import FollowUp, follow_up, outcome_history
 from tracker.services.limit_sets import LimitSetInfo, list_limit_sets
 from tracker.services.records import PatientRecord, patient_codes, patient_record
+from tracker.services.response import cohort_course
+from tracker.services.response_view import ResponseView, response_view
 
 TTL = 600  # s: another user's writes show up at the latest after this
 
@@ -72,3 +74,17 @@ def clinic_settings(url: str) -> tuple[str | None, str]:
     """(default criteria set or None, temperature policy)."""
     with reading() as session:
         return preferences.default_criteria(session) or None, preferences.cold_limbs(session)
+
+
+@st.cache_data(ttl=TTL, show_spinner="Judging the treatment response…")
+def response(url: str, code: str, rules_id: str | None, limits_name: str | None) -> ResponseView:
+    """One patient's treatment response under one rule set (follow-up page)."""
+    with reading() as session:
+        return response_view(session, code, rules_id=rules_id, limits_name=limits_name)
+
+
+@st.cache_data(ttl=TTL, show_spinner=False)
+def course(url: str, rules_id: str | None) -> pd.DataFrame:
+    """Every patient's course under one rule set (patients page): one call per database and rule set."""
+    with reading() as session:
+        return cohort_course(session, rules_id=rules_id)

@@ -33,6 +33,20 @@ SERIES = ["#0f6e74", "#CC79A7", "#56B4E9", "#009E73", "#7a5195", "#000000"]
 LIMIT_COLOUR = "#009E73"  # normal limit: bluish green, dashed
 THRESHOLD_COLOUR = "#D55E00"  # criteria threshold: vermillion, dotted
 TREATMENT_FILL = "rgba(86, 180, 233, 0.16)"
+# Consecutive regimens alternate two fills (sky blue, orange); each span is also labelled in words.
+REGIMEN_FILLS = ("rgba(86, 180, 233, 0.16)", "rgba(230, 159, 0, 0.13)")
+MIC_FILL = "rgba(0, 158, 115, 0.14)"  # the minimal-important-change band around a regimen baseline
+SCORE_COLOUR = ACCENT
+
+# Treatment response of a regimen: (shape, colour); the word comes from tracker.domain.labels.
+CLASSIFICATION = {
+    "improved": ("▲", "#009E73"),
+    "stable": ("■", "#0072B2"),
+    "worsened": ("▼", "#D55E00"),
+    "not_assessable": ("?", "#6b6b6b"),
+}
+# A nerve value beyond the smallest detectable change since the previous study: (marker symbol, colour).
+SDC_MARKERS = {"worsened": ("triangle-down-open", "#D55E00"), "improved": ("triangle-up-open", "#0072B2")}
 
 
 def outcome_group(outcome: str) -> tuple[str, str, str]:

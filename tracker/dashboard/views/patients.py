@@ -1,4 +1,5 @@
-"""Patients: find a patient by code, filter by diagnosis and by the latest visit's outcome of a criteria set."""
+"""Patients: find a patient by code, filter by diagnosis and by the latest visit's outcome of a criteria set;
+each patient's course (improving / stable / worsening / not assessable) under a response rule set."""
 
 from __future__ import annotations
 
@@ -11,6 +12,7 @@ from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_pi
 from tracker.domain.vocabulary import DIAGNOSES
 from tracker.services.cohort import NOT_EVALUATED
 from tracker.services.evaluation import FALLBACK_CRITERIA, refresh_evaluations
+from tracker.services.response_view import rule_set_choices, with_course
 
 st.title("Patients")
 url = database_url()
@@ -19,14 +21,27 @@ search = left.text_input("Search by code", key="patients_search", placeholder="e
 diagnosis = middle.selectbox("Diagnosis", [None, *DIAGNOSES], key="patients_diagnosis", format_func=lambda d: "all" if d is None else d)
 with right:
     criteria = criteria_picker("Outcome column: criteria set", key="patients_criteria") or FALLBACK_CRITERIA
-limits_name = limits_picker(key="patients_limits")
+below = st.columns(2)
+with below[0]:
+    limits_name = limits_picker(key="patients_limits")
+with below[1]:
+    choices = rule_set_choices()
+    rules_id = st.selectbox(
+        "Course column: response rule set", list(choices), index=0, key="patients_rules", format_func=lambda r: choices[r],
+        help="The running regimen of each patient, classified by this rule set at the latest visit or score.",
+    )
 table = reads.patients(url, criteria, limits_name, search, diagnosis, None)
 outcomes = sorted(set(table["latest_outcome"]))
 outcome = st.selectbox("Latest outcome", [None, *outcomes], key="patients_outcome", format_func=lambda o: "any" if o is None else o.replace("_", " "))
 if outcome:
     table = table[table["latest_outcome"] == outcome]
 
-st.caption(f"{len(table)} patients · latest outcome = {criteria_title(criteria)} at the latest visit, from saved evaluations")
+table = with_course(table, reads.course(url, rules_id))
+st.caption(
+    f"{len(table)} patients · latest outcome = {criteria_title(criteria)} at the latest visit, from saved evaluations · "
+    "course = the regimen running at (or last before) the latest visit or score, judged by the response rule set "
+    "(decision support: the classification defers to the treating clinician)"
+)
 st.dataframe(
     table.rename(columns={"latest_outcome": f"latest outcome ({criteria})"}),
     hide_index=True, width="stretch",
