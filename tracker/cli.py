@@ -234,6 +234,34 @@ def response_command(context: Context, patient: str, visit_date: str | None, rul
         click.echo(text(result, all_changes=all_changes))
 
 
+@cli.command("report")
+@click.argument("patient")
+@click.option("--visit", "visit_date", metavar="YYYY-MM-DD", help="The visit to report (default: the latest).")
+@click.option("--out", "out", required=True, type=click.Path(path_type=Path, dir_okay=False), metavar="FILE.pdf|FILE.html",
+              help="Where to write the report; the extension chooses PDF or a self-contained HTML page.")
+@click.option("--criteria", "criteria", metavar="ID", multiple=True,
+              help="Criteria set id (repeatable). Default: the clinic's default set, else by the visit's diagnosis.")
+@click.option("--limits", "limits_name", metavar="NAME", help="Normal-limit set (default: the one marked default).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing file.")
+@pass_context
+def report_command(context: Context, patient: str, visit_date: str | None, out: Path, criteria: tuple[str, ...],
+                   limits_name: str | None, overwrite: bool) -> None:
+    """Write the printable follow-up report of one visit: criteria outcome, treatment response, changes, trend.
+
+    The file holds patient data: it is created readable by you only (mode 0600).
+    """
+    from tracker import report
+
+    file_format = report.format_of(out)
+    report.output.refuse_existing(out, overwrite)
+    day = _parse_date(visit_date) if visit_date else None
+    with context.session_factory().begin() as session:
+        content = report.build(session, patient, visit_date=day, criteria=list(criteria) or None, limits_name=limits_name)
+    report.write_private(out, report.render(content, file_format), overwrite=overwrite)
+    click.echo(f"Report of {content.patient}, visit {content.visit_date.isoformat()}: {out} ({file_format.upper()})")
+    click.echo(CAUTION)
+
+
 @cli.command("annotate")
 @click.argument("patient")
 @click.option("--visit", "visit_date", metavar="YYYY-MM-DD", required=True, help="The visit to annotate.")

@@ -78,3 +78,13 @@ REFERENCE_SHORT = {"regimen_baseline": "regimen baseline", "previous": "previous
 
 # A nerve value whose change since the previous study is beyond the smallest detectable change (SDC).
 SDC_STEP_LABELS = {"improved": "▲ better beyond SDC", "worsened": "▼ worse beyond SDC"}
+
+# Short verdicts for tables whose title already says "beyond the threshold" (printable report).
+CHANGE_VERDICT_SHORT = {"improved": "better", "worsened": "worse", "within_noise": "within", "within_threshold": "within",
+                        "no_threshold": "no threshold", "not_comparable": "not comparable"}
+DIAGNOSIS_LABELS = {
+    "cidp": "CIDP (chronic inflammatory demyelinating polyradiculoneuropathy)",
+    "mmn": "MMN (multifocal motor neuropathy)",
+    "gbs": "GBS (Guillain–Barré syndrome)",
+    "other": "other",
+}
