@@ -226,3 +226,57 @@ def test_identifiers_stay_out_of_the_report(demo_db, sessions):
         for value in ("MRN-INVENTED-5521", "Ottoline", "Quarrington", "1957-08-19", "19.08.1957"):
             assert value not in shown
 
+
+# ------------------------------------------------------------------------------- dashboard: Visit review
+
+APP = str(Path(__file__).resolve().parent.parent / "tracker" / "dashboard" / "app.py")
+
+
+@pytest.fixture
+def dashboard_db(db_url):
+    import streamlit as st
+
+    from dashboard_support import fill_demo
+
+    fill_demo(db_url)  # the invented demo clinic with its saved evaluations
+    st.cache_data.clear()
+    st.cache_resource.clear()
+    yield db_url
+    st.cache_data.clear()
+    st.cache_resource.clear()
+
+
+def test_visit_review_offers_the_pdf_of_the_chosen_visit(dashboard_db, monkeypatch):
+    from streamlit.testing.v1 import AppTest
+
+    monkeypatch.setenv("NCS_TRACKER_DB", dashboard_db)
+    monkeypatch.setenv("NCS_TRACKER_USER", "apptest")
+    at = AppTest.from_file(APP, default_timeout=120)
+    at.session_state["ncs_patient"] = "DEMO-01"
+    at.run()
+    at.switch_page("views/visit_review.py")
+    at.run()
+    at.selectbox(key="review_visit").select(dt.date(2023, 2, 14)).run()
+    assert not at.exception and not at.error
+    [button] = [b for b in at.get("download_button") if b.proto.id.endswith("review_report_download")]
+    assert "PDF" in button.proto.label and button.proto.url.endswith(".pdf")
+    first = button.proto.url
+    at.selectbox(key="review_visit").select(dt.date(2023, 5, 16)).run()
+    [button] = [b for b in at.get("download_button") if b.proto.id.endswith("review_report_download")]
+    assert button.proto.url.endswith(".pdf") and button.proto.url != first  # another visit, another file
+
+
+def test_dashboard_pdf_is_the_command_line_pdf_and_saves_nothing(dashboard_db, engine, reports, capsys, monkeypatch):
+    from conftest import fingerprint
+    from tracker.dashboard import reads
+
+    monkeypatch.setenv("NCS_TRACKER_DB", dashboard_db)
+    monkeypatch.setenv("SOURCE_DATE_EPOCH", FIXED_EPOCH)
+    before = fingerprint(engine)
+    served = reads.report_pdf(dashboard_db, "DEMO-01", dt.date(2023, 2, 14), ("efns-pns-2010-cidp",), None, "warn")
+    assert fingerprint(engine) == before
+    out = reports / "cli.pdf"
+    code, _, err = run_cli(capsys, "--db", dashboard_db, "report", "DEMO-01", "--visit", "2023-02-14", "--criteria", "efns-pns-2010-cidp",
+                           "--out", str(out))
+    assert code == 0, err
+    assert served == out.read_bytes()

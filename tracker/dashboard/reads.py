@@ -88,3 +88,13 @@ def course(url: str, rules_id: str | None) -> pd.DataFrame:
     """Every patient's course under one rule set (patients page): one call per database and rule set."""
     with reading() as session:
         return cohort_course(session, rules_id=rules_id)
+
+
+@st.cache_data(ttl=TTL, show_spinner="Preparing the printable report…")
+def report_pdf(url: str, code: str, visit_date, criteria: tuple[str, ...], limits_name: str | None, cold_limbs: str) -> bytes:
+    """The printable follow-up report of one visit as PDF bytes (Visit review download); nothing is saved."""
+    from tracker import report
+
+    with reading() as session:  # the evaluation the report runs is rolled back: the page has saved it already
+        content = report.build(session, code, visit_date=visit_date, criteria=list(criteria), limits_name=limits_name, cold_limbs=cold_limbs)
+    return report.render(content, "pdf")

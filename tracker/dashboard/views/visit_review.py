@@ -37,6 +37,12 @@ if code:
         check = check_visit(session, code, visit_date=visit_date, criteria=criteria, limits_name=limits_name, settings=Settings(cold_limbs=cold_limbs))
     st.info("Decision support only: every verdict below must be reviewed by a qualified clinician.")
     st.markdown(f"**{check.patient}** · visit **{check.visit_date.isoformat()}** · phenotype {check.phenotype or 'not stated'} · normal limits {check.limits.name} v{check.limits.version}")
+    st.download_button(
+        "Printable report (PDF)", reads.report_pdf(url, code, visit_date, tuple(criteria), limits_name, cold_limbs),
+        file_name=f"{check.patient}_{check.visit_date.isoformat()}_report.pdf", mime="application/pdf", key="review_report_download",
+        help="This visit with the criteria chosen here, the treatment response, the changes that count and a trend figure. "
+             "It holds patient data (the pseudonymous code): keep it within the clinic.",
+    )
 
     cards = st.columns(len(check.results))
     for card, (criteria_id, result) in zip(cards, check.results.items()):
