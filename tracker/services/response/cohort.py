@@ -68,8 +68,11 @@ def cohort_course(session: Session, *, rules_id: str | None = None, settings: Re
         result = rules.classify(chosen, series, rule_set, at=at, settings=settings, scales=table)
         deciding = [e for e in result.evidence if e["outcome"] == result.classification]
         why = "; ".join(f"{e['label']} {e['baseline_value']:g} → {e['value']:g}" for e in deciding) or "; ".join(result.missing)
+        regimen = chosen.label()
+        if not chosen.attributes(at):  # the last regimen has ended: say so beside its course
+            regimen += f" (ended {chosen.end_date.isoformat()}; no treatment since)" if chosen.end_date else " (ended)"
         rows.append({"code": code, "course": result.classification, "rules": rule_set.id, "rules_version": rule_set.version,
-                     "regimen": chosen.label(), "since": chosen.start_date, "why": why})
+                     "regimen": regimen, "since": chosen.start_date, "why": why})
     return pd.DataFrame(rows, columns=COURSE_COLUMNS)
 
 
