@@ -25,7 +25,7 @@ CLASSIFICATIONS = {"improved", "stable", "worsened", "not_assessable"}
 # Invented studies: one median motor nerve test (wrist, elbow) per visit, in the measurements format of DESIGN.md §4.1.
 # INV-RELAPSE: forearm velocity 228 mm / (10.00 − 4.00) ms = 38.0 m/s, then 228 / (11.35 − 4.00) = 31.02 m/s;
 # block (distal − proximal) / distal = (6.00 − 4.44) / 6.00 = 26 %, then (5.00 − 2.20) / 5.00 = 56 %.
-MEASUREMENT_HEADER = "patient,visit_date,nerve,side,modality,site_order,site,distance_mm,latency_ms,amplitude_mv,temperature_c,lff_hz,sex,birth_year,diagnosis"
+MEASUREMENT_HEADER = "patient,visit_date,nerve,side,modality,site_order,site,distance_mm,latency_ms,amplitude_mv,temperature_c,lff_hz,diagnosis"
 RELAPSE_STUDIES = [
     ("INV-RELAPSE", "2024-05-15", "4.00", "6.00", "10.00", "4.44", "33.0"),
     ("INV-RELAPSE", "2024-09-10", "4.00", "5.00", "11.35", "2.20", "33.2"),
@@ -46,8 +46,8 @@ OTHER_STUDIES = [
 def measurements(studies) -> str:
     lines = [MEASUREMENT_HEADER]
     for code, day, distal_latency, distal_amp, proximal_latency, proximal_amp, temperature in studies:
-        lines.append(f"{code},{day},median,right,motor,1,wrist,70,{distal_latency},{distal_amp},{temperature},2,male,1960,cidp")
-        lines.append(f"{code},{day},median,right,motor,2,elbow,228,{proximal_latency},{proximal_amp},{temperature},2,male,1960,cidp")
+        lines.append(f"{code},{day},median,right,motor,1,wrist,70,{distal_latency},{distal_amp},{temperature},2,cidp")
+        lines.append(f"{code},{day},median,right,motor,2,elbow,228,{proximal_latency},{proximal_amp},{temperature},2,cidp")
     return "\n".join(lines) + "\n"
 
 
