@@ -622,7 +622,7 @@ def test_absent_f_waves_are_a_change_not_a_number():
     )
     frame = change.nerve_changes(values, 2, 1, "previous", D("2024-01-10"), reproducibility.shipped(), ResponseSettings())
     assert frame["verdict"].tolist() == ["worsened"] and pd.isna(frame["value"].iloc[0])
-    assert frame["reference_value"].tolist() == [52.0] and "F-waves absent at this visit" in frame["less_certain"].iloc[0]
+    assert frame["reference_value"].tolist() == [52.0] and frame["absent"].tolist() == [True] and frame["less_certain"].iloc[0] == ""
 
 
 def test_every_classification_is_one_of_the_four_words():

@@ -114,8 +114,8 @@ def _nerve_lines(result: PatientResponse, all_changes: bool) -> list[str]:
         sdc = "—" if r.sdc is None or r.sdc != r.sdc else f"{_number(r.sdc)} %"
         change_text = f"{_signed(r.change_pct)} %" if r.change_pct is not None and r.change_pct == r.change_pct else "—"
         rows.append([f"{words(r.nerve)} {r.side[:1].upper()} {r.modality}", NERVE_PARAMETER_SHORT.get(r.parameter, r.parameter), words(r.where) or "—",
-                     f"{COMPARED_SHORT.get(r.reference, r.reference)} {r.reference_date.isoformat()}", _number(r.reference_value, 2),
-                     _number(r.value, 2), change_text, sdc, CHANGE_VERDICT_SHAPES.get(r.verdict, ""), "?" if r.less_certain else ""])
+                     f"{COMPARED_SHORT.get(r.reference, r.reference)} {r.reference_date.isoformat()}",
+                     "absent" if r.reference_absent else _number(r.reference_value, 2), "absent" if r.absent else _number(r.value, 2), change_text, sdc, CHANGE_VERDICT_SHAPES.get(r.verdict, ""), "?" if r.less_certain else ""])
         if r.less_certain:
             doubts.append(f"{words(r.nerve)} {r.side} {NERVE_PARAMETER_SHORT.get(r.parameter, r.parameter)} {words(r.where)}: less certain — {r.less_certain}")
     if rows:
@@ -125,7 +125,7 @@ def _nerve_lines(result: PatientResponse, all_changes: bool) -> list[str]:
     if hidden:
         lines.append(f"  … and {hidden} changes within the SDC or without a published figure (--all-changes lists them)")
     for s in result.nerve_summary:
-        unit = "nerves" if s["measure"].startswith("mean") else "comparisons"
+        unit = ("nerve" if s["nerves"] == 1 else "nerves") if s["measure"].startswith("mean") else ("comparison" if s["nerves"] == 1 else "comparisons")
         lines += _wrap(f"{REFERENCE_LABELS.get(s['reference'], s['reference'])}: {SUMMARY_LABELS.get(s['measure'], s['measure'])}: "
                        f"{_number(s['value'])} over {s['nerves']} {unit}")
     return lines + [""]

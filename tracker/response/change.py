@@ -34,7 +34,7 @@ NERVE_VALUE_COLUMNS = [
 ]
 NERVE_CHANGE_COLUMNS = [
     "nerve", "side", "modality", "parameter", "where", "reference", "reference_date", "reference_value", "value",
-    "change", "change_pct", "verdict", "sdc", "less_certain",
+    "change", "change_pct", "verdict", "sdc", "less_certain", "absent", "reference_absent",
 ]
 
 # Verdict words (identifiers; labels for people live in tracker.domain.labels).
@@ -206,7 +206,8 @@ def nerve_changes_many(values: pd.DataFrame, pairs: pd.DataFrame, table: dict[st
     verdict = np.where(np.isnan(size), NOT_COMPARABLE, np.where(np.isnan(sdc), NO_THRESHOLD, WITHIN)).astype(object)
     verdict[beyond & ((size > 0) == better_high)] = IMPROVED
     verdict[beyond & ((size > 0) != better_high)] = WORSENED
-    # An absence is a finding: present → absent is worse, absent → present better, absent at both not comparable.
+    # An absence is a finding: present → absent is worse, absent → present better, absent at both not comparable
+    # (the value columns are then empty and ``absent``/``reference_absent`` say why).
     verdict[absent & ~absent_ref] = WORSENED
     verdict[~absent & absent_ref] = IMPROVED
     verdict[absent & absent_ref] = NOT_COMPARABLE
@@ -227,14 +228,13 @@ def nerve_changes_many(values: pd.DataFrame, pairs: pd.DataFrame, table: dict[st
         if far[i]:
             reasons.append(f"distance {d_ref[i]:g} → {d[i]:g} mm (more than {settings.distance_delta_pct:g} % apart)")
         doubt[i] = "; ".join(reasons)
-    for i in np.flatnonzero(either):
-        doubt[i] = "F-waves absent at " + ("both visits" if absent[i] and absent_ref[i] else ("this visit" if absent[i] else "the earlier visit"))
     out = pd.DataFrame({
         "visit_key": m["visit_key"].to_numpy(), "nerve": m["nerve"].to_numpy(dtype=object), "side": m["side"].to_numpy(dtype=object),
         "modality": m["modality"].to_numpy(dtype=object), "parameter": parameter, "where": m["where"].to_numpy(dtype=object),
         "reference": m["reference"].to_numpy(dtype=object), "reference_date": m["reference_date"].to_numpy(dtype=object),
         "reference_value": np.where(absent_ref, np.nan, ref), "value": np.where(absent, np.nan, value),
         "change": quantise_array(delta), "change_pct": quantise_array(pct), "verdict": verdict, "sdc": sdc, "less_certain": doubt,
+        "absent": absent, "reference_absent": absent_ref,
     })
     return out.sort_values(["visit_key", "nerve", "side", "modality", "parameter", "where"], kind="stable").reset_index(drop=True)[columns]
 

@@ -141,6 +141,8 @@ def _parse(rows: list[dict[str, str]], name: str, *, origin: str) -> dict[str, R
         for number, row in members:
             if scales_seen.count(row["scale"]) > 1:
                 problems.append(Problem(number, "scale", row["scale"], f"scale listed twice in rule set {rule_set}"))
+    if not rows:
+        problems.append(Problem(None, None, None, "the file has no rule rows"))
     if problems:
         raise InputRejected(f"The rule-set file {name} was refused", problems)
     return {
@@ -224,6 +226,13 @@ def classify(regimen: Regimen, scores: dict[str, list[tuple[dt.date, float]]], r
                 f"(the rule set asks for confirmation); counted as stable until confirmed"
             )
         outcomes[rule.scale] = outcome
+        # A worsening met earlier in the regimen (and confirmed as the rule asks) stays visible after recovery.
+        for index in range(len(verdicts) - 1):
+            run = [v[4] for v in verdicts[max(0, index - rule.confirm_visits + 1): index + 1]]
+            if len(run) == rule.confirm_visits and all(v == WORSENED for v in run) and outcome != WORSENED:
+                result.notes.append(f"{label}: worsened on {verdicts[index][0].isoformat()} earlier in this regimen "
+                                    f"({verdicts[index][1]:g} against a baseline of {base_value:g}), since recovered")
+                break
         compared.update([base_date, *[v[0] for v in verdicts[-rule.confirm_visits:]]])
         result.evidence.append(
             {

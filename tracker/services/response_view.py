@@ -201,7 +201,8 @@ def _step_words(row) -> str:
         return ""
     if row.value is None or row.reference_value is None or row.value != row.value or row.reference_value != row.reference_value:
         shape = CHANGE_VERDICT_SHAPES[row.verdict]
-        return f"{shape} {'better' if row.verdict == change.IMPROVED else 'worse'}: {row.less_certain} ({row.reference_date.isoformat()})"
+        where = "this visit" if getattr(row, "absent", False) else "the earlier visit"
+        return f"{shape} {'better' if row.verdict == change.IMPROVED else 'worse'}: F-waves absent at {where} ({row.reference_date.isoformat()})"
     size = f"{row.change_pct:+.1f} %" if row.change_pct == row.change_pct and row.change_pct is not None else f"{row.change:+.2f}"
     text = f"{SDC_STEP_LABELS[row.verdict]}: {row.reference_value:.2f} → {row.value:.2f} ({size}; SDC {row.sdc:g} %) since {row.reference_date.isoformat()}"
     if row.less_certain:
