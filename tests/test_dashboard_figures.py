@@ -17,7 +17,7 @@ from tracker.db.session import make_engine, make_session_factory
 from tracker.services.evaluation import load_frames
 from tracker.services.follow_up import PARAMETERS, follow_up
 from tracker.services.limit_sets import resolve
-from tracker.services.response_view import response_view
+from tracker.services.response import response_view
 
 from conftest import new_database
 

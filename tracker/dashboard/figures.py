@@ -18,7 +18,7 @@ from tracker.dashboard import style
 from tracker.domain.labels import SDC_STEP_LABELS
 from tracker.response.regimens import Regimen
 from tracker.services.follow_up import FollowUp
-from tracker.services.response_view import ResponseView
+from tracker.services.response import ResponseView
 
 COMPARATOR_WORDS = {"le": "≤", "lt": "<", "ge": "≥", "gt": ">"}
 OUTCOME_SYMBOLS = {"positive": "triangle-up", "other finding": "diamond", "negative": "circle-open", "not evaluable": "square-open"}
@@ -53,7 +53,7 @@ def trend_figure(fu: FollowUp, *, regimens: list[Regimen] | None = None, steps: 
     periods shaded across all panels — one span per regimen when ``regimens`` are given (the response
     analysis's), else one per stored treatment row.
 
-    ``steps``: :data:`tracker.services.response_view.STEP_COLUMNS` rows; a plotted point whose change since the
+    ``steps``: :data:`tracker.services.response.STEP_COLUMNS` rows; a plotted point whose change since the
     previous study is beyond the smallest detectable change gets an open triangle around it (down: worse,
     up: better) and the words in its hover."""
     points, references = fu.points, fu.references

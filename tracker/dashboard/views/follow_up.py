@@ -12,7 +12,7 @@ from tracker.dashboard import figures, reads, style
 from tracker.dashboard.state import database_url
 from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker, patient_picker
 from tracker.services.follow_up import PARAMETERS
-from tracker.services.response_view import RegimenCard, rule_set_choices, sdc_words
+from tracker.services.response import RegimenCard, rule_set_choices, sdc_words
 
 
 def regimen_card(card: RegimenCard) -> None:

@@ -12,7 +12,7 @@ from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_pi
 from tracker.domain.vocabulary import DIAGNOSES
 from tracker.services.cohort import NOT_EVALUATED
 from tracker.services.evaluation import FALLBACK_CRITERIA, refresh_evaluations
-from tracker.services.response_view import rule_set_choices, with_course
+from tracker.services.response import rule_set_choices, with_course
 
 st.title("Patients")
 url = database_url()

@@ -21,7 +21,7 @@ from tracker.domain.labels import (
 from tracker.response import change, rules
 from tracker.response.scales import ScaleInfo, scale_table
 from tracker.services.follow_up import panel_name
-from tracker.services.response import PatientResponse, patient_response
+from tracker.services.response.patient import PatientResponse, patient_response
 
 # Follow-up page parameter → the response analysis's nerve parameter (same value, same feature table).
 NERVE_PARAMETER_OF = {
