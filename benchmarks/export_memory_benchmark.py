@@ -70,7 +70,7 @@ def child(database: Path, out: Path, level: str, file_format: str, trace: bool) 
         tracemalloc.start()
     from tracker.db.session import make_engine, make_session_factory
     from tracker.services.export import write_export
-    from tracker.services.export_tables import ExportOptions
+    from tracker.services.export.tables import ExportOptions
 
     started = time.perf_counter()
     engine = make_engine(f"sqlite:///{database}")

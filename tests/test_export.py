@@ -27,9 +27,10 @@ from tracker.db import migrate
 from tracker.db.models import NerveTest, OutcomeScore, Patient, PatientIdentity, StimulationSite, Treatment, Visit
 from tracker.db.session import make_engine, make_session_factory
 from tracker.errors import TrackerError
-from tracker.services import deidentify, export_files, preferences
+from tracker.services import preferences
+from tracker.services.export import deidentify, files as export_files
 from tracker.services.export import export_frame, write_export
-from tracker.services.export_tables import ExportOptions
+from tracker.services.export.tables import ExportOptions
 from tracker.services.importing import import_file
 
 DEMO_FILES = ("measurements.csv", "treatments.csv", "scores.csv")

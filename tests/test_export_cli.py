@@ -12,7 +12,7 @@ from sqlalchemy import select
 
 from conftest import DEMO, fingerprint, run_cli
 from tracker.db.models import AuditEvent, Patient, PatientIdentity, User
-from tracker.services import export_files
+from tracker.services.export import files as export_files
 from tracker.services.demo import build_demo_database
 
 DEMO_FILES = [str(DEMO / n) for n in ("measurements.csv", "treatments.csv", "scores.csv")]

@@ -25,10 +25,11 @@ from tracker.db import migrate
 from tracker.db.models import Patient
 from tracker.db.session import make_engine, make_session_factory
 from tracker.response.rules import DEFAULT_RULES, rule_sets
-from tracker.services import deidentify, preferences, users
+from tracker.services import preferences, users
+from tracker.services.export import deidentify
 from tracker.services.export import export_frame, write_export
-from tracker.services.export_response import score_at
-from tracker.services.export_tables import ExportOptions
+from tracker.services.export.response import score_at
+from tracker.services.export.tables import ExportOptions
 from tracker.services.importing import import_file
 
 USER = "response-export-tester"

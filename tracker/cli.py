@@ -472,7 +472,7 @@ def export_command(context: Context, level: str, file_format: str, out: str | No
     import dataclasses
 
     from tracker.services.export import write_export
-    from tracker.services.export_tables import ExportOptions
+    from tracker.services.export import ExportOptions
 
     pairs = []
     for item in outcomes:

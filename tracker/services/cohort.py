@@ -13,7 +13,7 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from tracker.db.models import Evaluation, Patient, Treatment, Visit
-from tracker.services.export_files import neutralise_text
+from tracker.services.export import neutralise_text
 from tracker.services.follow_up import treatment_label
 from tracker.services.limit_sets import resolve
 

@@ -28,7 +28,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from tracker.errors import TrackerError
-from tracker.services.export_columns import Column, arrow_schema
+from tracker.services.export.columns import Column, arrow_schema
 
 FORMATS = ("csv", "parquet", "xlsx")
 FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")

@@ -26,9 +26,9 @@ from tracker.domain.plausibility import scales
 from tracker.domain.vocabulary import DIAGNOSES
 from tracker.errors import NotFound, TrackerError
 from tracker.response.settings import ResponseSettings
-from tracker.services import deidentify
+from tracker.services.export import deidentify
 from tracker.services.evaluation import load_frames
-from tracker.services.export_columns import (
+from tracker.services.export.columns import (
     SCORE_WINDOW_DAYS,
     Column,
     SetColumns,
@@ -42,7 +42,7 @@ from tracker.services.export_columns import (
     segment_columns,
     visit_columns,
 )
-from tracker.services.export_response import ResponseSpec, response_spec, with_response
+from tracker.services.export.response import ResponseSpec, response_spec, with_response
 from tracker.services.limit_sets import LimitSetInfo, resolve
 
 LEVELS = ("visit", "nerve", "segment", "long")
@@ -216,7 +216,7 @@ class ExportPlan:
 def prepare(session: Session, options: ExportOptions, *, username: str) -> ExportPlan:
     """Check the options and the permission, create the export secret if needed, pick the visits.
 
-    Raises :class:`~tracker.services.deidentify.NotPermitted` before anything is written when an identified
+    Raises :class:`~tracker.services.export.deidentify.NotPermitted` before anything is written when an identified
     export is asked for by a user whose role does not allow it.
     """
     validate(options)

@@ -25,7 +25,7 @@ from tracker.response.change import baseline, meets
 from tracker.response.regimens import Regimen, TreatmentPeriod, regimens
 from tracker.response.scales import ScaleInfo, scale_table, with_computed
 from tracker.response.settings import ResponseSettings
-from tracker.services.export_columns import RESPONSE_SCORE_DAYS, response_column
+from tracker.services.export.columns import RESPONSE_SCORE_DAYS, response_column
 from tracker.services.response.loading import scores_frame, treatment_periods, visit_dates
 
 # Scales whose value and changes are columns: the adjusted INCAT (ICE, Hughes RAC et al. Lancet Neurol 2008) and

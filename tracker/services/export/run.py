@@ -5,9 +5,9 @@ level, de-identified by default, with a data dictionary and a manifest beside ev
 - :func:`write_export` streams it to CSV, Parquet or Excel chunk by chunk (bounded memory), writes the
   dictionary and the manifest, and records the export in the audit trail.
 
-What is removed by default, and how ids, dates and ages are made, is in :mod:`tracker.services.deidentify`;
-the columns and their meanings are in :mod:`tracker.services.export_columns`; the tables are built in
-:mod:`tracker.services.export_tables`; files are written by :mod:`tracker.services.export_files`.
+What is removed by default, and how ids, dates and ages are made, is in :mod:`tracker.services.export.deidentify`;
+the columns and their meanings are in :mod:`tracker.services.export.columns`; the tables are built in
+:mod:`tracker.services.export.tables`; files are written by :mod:`tracker.services.export.files`.
 """
 
 from __future__ import annotations
@@ -27,17 +27,18 @@ from sqlalchemy.orm import Session
 
 from tracker import CAUTION, __version__
 from tracker.errors import TrackerError
-from tracker.services import audit, deidentify
-from tracker.services.export_columns import SCORE_WINDOW_DAYS, dictionary_frame, empty_frame
-from tracker.services.export_files import (
+from tracker.services import audit
+from tracker.services.export import deidentify
+from tracker.services.export.columns import SCORE_WINDOW_DAYS, dictionary_frame, empty_frame
+from tracker.services.export.files import (
     ExcelTable,
     open_table,
     output_paths,
     sha256_of,
     write_dictionary_csv,
 )
-from tracker.services.export_response import manifest_entry as response_manifest
-from tracker.services.export_tables import ExportOptions, ExportPlan, prepare
+from tracker.services.export.response import manifest_entry as response_manifest
+from tracker.services.export.tables import ExportOptions, ExportPlan, prepare
 
 REMOVED_FIELDS = [
     "patient code", "hospital record number", "name", "birth date", "birth year", "real visit dates", "examiner",

@@ -49,7 +49,7 @@ class Column:
 
 @dataclass(frozen=True)
 class VerdictItem:
-    """One item of a criteria set whose per-nerve verdict is exported (found by :func:`export_tables.catalogue`)."""
+    """One item of a criteria set whose per-nerve verdict is exported (found by :func:`tracker.services.export.tables.catalogue`)."""
 
     criteria: str
     alias: str
