@@ -347,3 +347,42 @@ def test_the_demo_shows_every_classification(db_url, capsys):
     assert (by_day[("2024-01-16", "incat_arm")], by_day[("2024-05-21", "incat_arm")]) == (0.0, 1.0)
     assert by_day[("2024-05-21", "incat")] - by_day[("2024-01-16", "incat")] == 1.0
     assert by_day[("2024-05-21", "adjusted_incat")] == by_day[("2024-01-16", "adjusted_incat")] == 2.0
+
+
+# -- What was shown is kept: rule set, version, visits compared (saved by the response command, audited) ----------
+
+def test_response_command_saves_each_classification_once_and_audits_changes(relapse_db, tmp_path, capsys):
+    from sqlalchemy import select
+
+    from tracker.db.models import AuditEvent, ResponseAssessment
+
+    payload = response(capsys, relapse_db, "INV-RELAPSE")
+    response(capsys, relapse_db, "INV-RELAPSE")  # the same judgement again: nothing new is written
+    engine = make_engine(relapse_db)
+    try:
+        with make_session_factory(engine)() as session:
+            rows = session.scalars(select(ResponseAssessment).order_by(ResponseAssessment.regimen_start)).all()
+            saved = {(r.regimen_start.isoformat(), r.classification, r.rule_set, r.rule_set_version, r.judged_on.isoformat(), tuple(r.visits_compared)) for r in rows}
+            shown = {(g["start_date"], g["classification"], payload["rules"], payload["rules_version"], payload["visit_date"], tuple(g["visits_compared"]))
+                     for g in payload["regimens"]}
+            assert saved == shown and len(rows) == len(payload["regimens"])
+            events = session.scalars(select(AuditEvent).where(AuditEvent.action == "save_response")).all()
+            assert len(events) == len(rows) and all(e.username and e.after["classification"] in CLASSIFICATIONS for e in events)
+    finally:
+        engine.dispose()
+    # A corrected score changes the judgement of the same day: the saved row is updated, before → after audited.
+    day = payload["visit_date"]
+    (tmp_path / "fix.csv").write_text(f"patient,date,scale,value\nINV-RELAPSE,{day},incat_leg,1\n", encoding="utf-8")
+    code, _, err = run_cli(capsys, "--db", relapse_db, "import", "--replace", str(tmp_path / "fix.csv"))
+    assert code == 0, err
+    after = response(capsys, relapse_db, "INV-RELAPSE")
+    stretched = next(g for g in after["regimens"] if g["interval_days"] == 42)
+    engine = make_engine(relapse_db)
+    try:
+        with make_session_factory(engine)() as session:
+            row = session.scalars(select(ResponseAssessment).where(ResponseAssessment.regimen_start == dt.date.fromisoformat(stretched["start_date"]))).one()
+            assert row.classification == stretched["classification"]
+            changed = [e for e in session.scalars(select(AuditEvent).where(AuditEvent.action == "save_response")) if e.before]
+            assert changed and all(e.before["classification"] != e.after["classification"] or e.before["visits_compared"] != e.after["visits_compared"] for e in changed)
+    finally:
+        engine.dispose()

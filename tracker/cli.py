@@ -222,12 +222,14 @@ def response_command(context: Context, patient: str, visit_date: str | None, rul
             click.echo(f"{rule_set.id} (version {rule_set.version}, {rule_set.origin}): {rule_set.title}")
         return
     from tracker.response_report import text
-    from tracker.services.response import patient_response, response_json
+    from tracker.services.response import patient_response, response_json, save_assessments
 
     day = _parse_date(visit_date) if visit_date else None
     with context.session_factory().begin() as session:
         result = patient_response(session, patient, visit_date=day, rules_id=rules_id, rules_files=rules_files,
                                   reproducibility_file=reproducibility_file, window=window)
+        # What was shown is kept (rule set, version, visits compared, evidence), as check keeps evaluations.
+        save_assessments(session, result, username=context.user)
     if output == "json":
         click.echo(json.dumps(response_json(result), indent=2, ensure_ascii=False))
     else:

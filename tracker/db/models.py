@@ -396,3 +396,30 @@ class AppSetting(Base):
     key: Mapped[str] = mapped_column(String(64), primary_key=True)
     value: Mapped[str] = mapped_column(Text)
     updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utc_now, onupdate=utc_now)
+
+
+RESPONSE_CLASSIFICATIONS = ("improved", "stable", "worsened", "not_assessable")
+
+
+class ResponseAssessment(Base):
+    """A saved treatment-response classification of one regimen, as judged on one day by one rule set: what
+    was shown, with the rule set's version, the visits compared and the evidence (issue: treatment response)."""
+
+    __tablename__ = "response_assessments"
+    __table_args__ = (
+        UniqueConstraint("patient_id", "therapy", "regimen_start", "rule_set", "rule_set_version", "judged_on"),
+        CheckConstraint(_in("classification", RESPONSE_CLASSIFICATIONS), name="classification_known"),
+    )
+
+    id: Mapped[IntPk]
+    patient_id: Mapped[int] = mapped_column(ForeignKey("patients.id", ondelete="CASCADE"), index=True)
+    therapy: Mapped[str] = mapped_column(String(40))
+    regimen_start: Mapped[dt.date] = mapped_column(Date, comment="first day of the regimen (of its induction when there is one)")
+    regimen: Mapped[str] = mapped_column(String(200), comment="the regimen in words: therapy, dose, interval")
+    rule_set: Mapped[str] = mapped_column(String(64))
+    rule_set_version: Mapped[str] = mapped_column(String(20))
+    judged_on: Mapped[dt.date] = mapped_column(Date, comment="the day the classification describes (scores after it unseen)")
+    classification: Mapped[str] = mapped_column(String(20))
+    visits_compared: Mapped[list[Any]] = mapped_column(comment="ISO dates of the scores compared")
+    evidence: Mapped[dict[str, Any]] = mapped_column(comment="evidence, missing data, notes and settings")
+    computed_at: Mapped[CreatedAt]
