@@ -33,7 +33,7 @@ def upgrade() -> None:
     sa.CheckConstraint("classification IN ('improved', 'stable', 'worsened', 'not_assessable')", name=op.f('ck_response_assessments_classification_known')),
     sa.ForeignKeyConstraint(['patient_id'], ['patients.id'], name=op.f('fk_response_assessments_patient_id_patients'), ondelete='CASCADE'),
     sa.PrimaryKeyConstraint('id', name=op.f('pk_response_assessments')),
-    sa.UniqueConstraint('patient_id', 'therapy', 'regimen_start', 'rule_set', 'rule_set_version', 'judged_on', name=op.f('uq_response_assessments_patient_id'))
+    sa.UniqueConstraint('patient_id', 'therapy', 'regimen_start', 'rule_set', 'rule_set_version', 'judged_on', name=op.f('uq_response_assessments_one_per_day'))
     )
     with op.batch_alter_table('response_assessments', schema=None) as batch_op:
         batch_op.create_index(batch_op.f('ix_response_assessments_patient_id'), ['patient_id'], unique=False)

@@ -407,7 +407,7 @@ class ResponseAssessment(Base):
 
     __tablename__ = "response_assessments"
     __table_args__ = (
-        UniqueConstraint("patient_id", "therapy", "regimen_start", "rule_set", "rule_set_version", "judged_on"),
+        UniqueConstraint("patient_id", "therapy", "regimen_start", "rule_set", "rule_set_version", "judged_on", name="uq_response_assessments_one_per_day"),
         CheckConstraint(_in("classification", RESPONSE_CLASSIFICATIONS), name="classification_known"),
     )
 
