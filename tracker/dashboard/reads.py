@@ -56,6 +56,14 @@ def patients(url: str, criteria: str, limits_name: str | None, search: str, diag
 
 
 @st.cache_data(ttl=TTL, show_spinner=False)
+def patient_page(url: str, criteria: str, limits_name: str | None, search: str, diagnosis: str | None, outcome: str | None,
+                 page: int, page_rows: int) -> cohort.PatientPage:
+    with reading() as session:
+        return cohort.patient_page(session, criteria=criteria, limits_name=limits_name, search=search, diagnosis=diagnosis,
+                                   outcome=outcome, page=page, page_rows=page_rows)
+
+
+@st.cache_data(ttl=TTL, show_spinner=False)
 def visits(url: str, criteria: tuple[str, ...], limits_name: str | None, diagnosis: str | None, start, end) -> pd.DataFrame:
     with reading() as session:
         return cohort.visit_table(session, criteria=list(criteria), limits_name=limits_name, diagnosis=diagnosis, start=start, end=end)
@@ -84,10 +92,10 @@ def response(url: str, code: str, rules_id: str | None, limits_name: str | None)
 
 
 @st.cache_data(ttl=TTL, show_spinner=False)
-def course(url: str, rules_id: str | None) -> pd.DataFrame:
-    """Every patient's course under one rule set (patients page): one call per database and rule set."""
+def course(url: str, rules_id: str | None, codes: tuple[str, ...]) -> pd.DataFrame:
+    """The course of these patients (one page of the patient list) under one rule set."""
     with reading() as session:
-        return cohort_course(session, rules_id=rules_id)
+        return cohort_course(session, rules_id=rules_id, codes=list(codes))
 
 
 @st.cache_data(ttl=TTL, show_spinner="Preparing the printable report…")

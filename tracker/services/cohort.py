@@ -7,9 +7,10 @@ the default normal-limit set; a visit without one is shown as ``not evaluated`` 
 from __future__ import annotations
 
 import datetime as dt
+from dataclasses import dataclass
 
 import pandas as pd
-from sqlalchemy import func, select
+from sqlalchemy import case, func, literal, select
 from sqlalchemy.orm import Session
 
 from tracker.db.models import Evaluation, Patient, Treatment, Visit
@@ -70,13 +71,79 @@ def patient_list(
     return frame[PATIENT_COLUMNS].reset_index(drop=True)
 
 
+@dataclass
+class PatientPage:
+    """One page of the patient list: ``rows`` (``PATIENT_COLUMNS``), how many patients pass the filters, and
+    which latest outcomes occur among them (for the outcome filter)."""
+
+    rows: pd.DataFrame
+    total: int
+    outcomes: list[str]
+
+
+def patient_page(
+    session: Session,
+    *,
+    criteria: str,
+    limits_name: str | None = None,
+    search: str = "",
+    diagnosis: str | None = None,
+    outcome: str | None = None,
+    page: int = 1,
+    page_rows: int = 50,
+    today: dt.date | None = None,
+) -> PatientPage:
+    """The patient list as :func:`patient_list`, but filtered, counted and cut into pages by the database, so
+    that a page costs the same for 10 or 5,000 patients (the rows of one page only are read into Python)."""
+    limit_set_id = resolve(session, limits_name)[0].id
+    # Correlated subqueries, each answered from an index (visits by patient and date, evaluations by visit):
+    # the database touches one patient's rows per patient, and Python only the rows of one page.
+    mine = Visit.patient_id == Patient.id
+    visits = select(func.count(Visit.id)).where(mine).scalar_subquery()
+    first = select(func.min(Visit.visit_date)).where(mine).scalar_subquery()
+    last = select(func.max(Visit.visit_date)).where(mine).scalar_subquery()
+    latest_visit = select(Visit.id).where(mine).order_by(Visit.visit_date.desc()).limit(1).correlate(Patient).scalar_subquery()
+    saved = (
+        select(Evaluation.outcome)
+        .where(Evaluation.visit_id == latest_visit, Evaluation.criteria_id == criteria, Evaluation.limit_set_id == limit_set_id)
+        .limit(1)
+        .scalar_subquery()
+    )
+    word = case((visits == 0, literal("no visits")), else_=func.coalesce(saved, literal(NOT_EVALUATED))).label("latest_outcome")
+    query = select(
+        Patient.id, Patient.code, Patient.diagnosis, Patient.phenotype, visits.label("visits"), first.label("first_visit"),
+        last.label("last_visit"), word,
+    )
+    if search.strip():
+        query = query.where(func.lower(Patient.code).contains(search.strip().lower(), autoescape=True))
+    if diagnosis:
+        query = query.where(Patient.diagnosis == diagnosis)
+    filtered = query.subquery()
+    outcomes = sorted(session.scalars(select(filtered.c.latest_outcome).distinct()).all())
+    if outcome:
+        filtered_rows = select(filtered).where(filtered.c.latest_outcome == outcome)
+    else:
+        filtered_rows = select(filtered)
+    total = session.scalar(select(func.count()).select_from(filtered_rows.subquery())) or 0
+    rows = session.execute(filtered_rows.order_by(filtered.c.code).limit(page_rows).offset(max(0, page - 1) * page_rows)).all()
+    frame = pd.DataFrame([tuple(r) for r in rows], columns=["id", "patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit", "latest_outcome"])
+    frame["visits"] = frame["visits"].fillna(0).astype(int)
+    for column in ("first_visit", "last_visit"):
+        frame[column] = [d if d is None or isinstance(d, dt.date) else dt.date.fromisoformat(str(d)) for d in frame[column]]
+    frame["current_treatment"] = _current_treatments(session, frame, today or dt.date.today())
+    return PatientPage(frame[PATIENT_COLUMNS].reset_index(drop=True), int(total), outcomes)
+
+
 def _current_treatments(session: Session, patients: pd.DataFrame, today: dt.date) -> list[str]:
     """Treatments running today (no end date, or ending today or later), in words; '' when none."""
-    rows = session.execute(
+    query = (
         select(Treatment.patient_id, Treatment.therapy, Treatment.dose, Treatment.dose_unit, Treatment.interval_days, Treatment.start_date, Treatment.end_date)
         .where(Treatment.start_date <= today, (Treatment.end_date.is_(None)) | (Treatment.end_date >= today))
         .order_by(Treatment.patient_id, Treatment.start_date)
-    ).all()
+    )
+    if len(patients) <= 500:  # a page of the list: only its patients' treatments
+        query = query.where(Treatment.patient_id.in_([int(i) for i in patients["id"]]))
+    rows = session.execute(query).all()
     running: dict[int, list[str]] = {}
     for r in rows:
         running.setdefault(r.patient_id, []).append(treatment_label(r.therapy, r.dose, r.dose_unit, r.interval_days))

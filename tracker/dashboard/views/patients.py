@@ -14,6 +14,8 @@ from tracker.services.cohort import NOT_EVALUATED
 from tracker.services.evaluation import FALLBACK_CRITERIA, refresh_evaluations
 from tracker.services.response import rule_set_choices, with_course
 
+PAGE_ROWS = 50
+
 st.title("Patients")
 url = database_url()
 left, middle, right = st.columns([2, 1, 2])
@@ -30,15 +32,25 @@ with below[1]:
         "Course column: response rule set", list(choices), index=0, key="patients_rules", format_func=lambda r: choices[r],
         help="The running regimen of each patient, classified by this rule set at the latest visit or score.",
     )
-table = reads.patients(url, criteria, limits_name, search, diagnosis, None)
-outcomes = sorted(set(table["latest_outcome"]))
-outcome = st.selectbox("Latest outcome", [None, *outcomes], key="patients_outcome", format_func=lambda o: "any" if o is None else o.replace("_", " "))
-if outcome:
-    table = table[table["latest_outcome"] == outcome]
-
-table = with_course(table, reads.course(url, rules_id))
+# The database filters, counts and cuts the list into pages: a page costs the same for 10 or 5,000 patients.
+outcome = st.session_state.get("patients_outcome")
+page = int(st.session_state.get("patients_page") or 1)
+listing = reads.patient_page(url, criteria, limits_name, search, diagnosis, outcome, page, PAGE_ROWS)
+if outcome is not None and outcome not in listing.outcomes:  # e.g. after another criteria set was chosen
+    st.session_state["patients_outcome"] = outcome = None
+    listing = reads.patient_page(url, criteria, limits_name, search, diagnosis, None, page, PAGE_ROWS)
+pages = max(1, -(-listing.total // PAGE_ROWS))
+if page > pages:
+    st.session_state["patients_page"] = page = pages
+    listing = reads.patient_page(url, criteria, limits_name, search, diagnosis, outcome, page, PAGE_ROWS)
+st.selectbox("Latest outcome", [None, *listing.outcomes], key="patients_outcome", format_func=lambda o: "any" if o is None else o.replace("_", " "))
+if pages > 1:
+    st.number_input(f"Page (of {pages}, {PAGE_ROWS} patients each)", min_value=1, max_value=pages, step=1, key="patients_page")
+total = listing.total
+table = listing.rows
+table = with_course(table, reads.course(url, rules_id, tuple(table["patient"])))
 st.caption(
-    f"{len(table)} patients · latest outcome = {criteria_title(criteria)} at the latest visit, from saved evaluations · "
+    f"{total} patients{f' (page {int(page)} of {pages})' if pages > 1 else ''} · latest outcome = {criteria_title(criteria)} at the latest visit, from saved evaluations · "
     "course = the regimen running at (or last before) the latest visit or score, judged by the response rule set "
     "(decision support: the classification defers to the treating clinician)"
 )
@@ -47,7 +59,7 @@ st.dataframe(
     hide_index=True, width="stretch",
     column_config={"first_visit": st.column_config.DateColumn("first visit"), "last_visit": st.column_config.DateColumn("last visit"), "current_treatment": "current treatment"},
 )
-if (table["latest_outcome"] == NOT_EVALUATED).any():
+if NOT_EVALUATED in listing.outcomes:
     st.warning("Some latest visits have no saved evaluation with these normal limits; they are shown as “not evaluated”, never as normal.")
     if st.button("Evaluate all visits now", key="patients_evaluate"):
         with st.spinner("Evaluating every visit against every criteria set…"), writing() as session:
@@ -56,7 +68,7 @@ if (table["latest_outcome"] == NOT_EVALUATED).any():
         st.rerun()
 
 if len(table):
-    chosen = st.selectbox("Open a patient", list(table["patient"]), key="patients_open")
+    chosen = st.selectbox("Open a patient (this page; search by code for others)", list(table["patient"]), key="patients_open")
     if st.button("Show follow-up", key="patients_go", type="primary"):
         choose_patient(chosen)
         st.switch_page("views/follow_up.py")

@@ -29,18 +29,22 @@ COURSE_COLUMNS = ["code", "course", "rules", "rules_version", "regimen", "since"
 
 
 def cohort_course(session: Session, *, rules_id: str | None = None, settings: ResponseSettings | None = None,
-                  loaded: tuple[pd.DataFrame, pd.DataFrame] | None = None) -> pd.DataFrame:
+                  loaded: tuple[pd.DataFrame, pd.DataFrame] | None = None, codes: list[str] | None = None) -> pd.DataFrame:
     """One row per patient: ``course`` (improved / stable / worsened / not_assessable), the rule set and its
     version, the regimen (words), since when it runs, and ``why`` (the deciding change or the missing data).
-    ``loaded``: (patients, visit dates) when the caller has read them already."""
+    ``loaded``: (patients, visit dates) when the caller has read them already; ``codes``: only these patients
+    (a page of the patient list: then only their rows are read)."""
     settings = settings or ResponseSettings()
     available = rules.rule_sets()
     if (rules_id or rules.DEFAULT_RULES) not in available:
         raise NotFound(f"Unknown response rule set {rules_id!r}; choose one of {', '.join(available)}")
     rule_set = available[rules_id or rules.DEFAULT_RULES]
-    people, visits = loaded if loaded is not None else (patients(session), visit_dates(session))
-    periods = treatment_periods(session)
-    scores, _ = with_computed(scores_frame(session, scales=_inputs(rule_set)))
+    people, visits = loaded if loaded is not None else (patients(session, codes), None)
+    ids = None if codes is None else [int(i) for i in people["patient"]]
+    if visits is None:
+        visits = visit_dates(session, ids)
+    periods = treatment_periods(session, ids)
+    scores, _ = with_computed(scores_frame(session, ids, scales=_inputs(rule_set)))
     last_visit: dict[int, object] = {}
     for pid, day in zip(visits["patient"].tolist(), visits["visit_date"].tolist()):  # sorted by patient and date
         last_visit[pid] = day

@@ -55,6 +55,9 @@ def _dates(column: pd.Series) -> pd.Series:
     return pd.Series(pd.to_datetime(column, format="ISO8601").dt.date, index=column.index, dtype=object)
 
 
-def patients(session: Session) -> pd.DataFrame:
-    return pd.DataFrame(session.execute(select(Patient.id, Patient.code, Patient.diagnosis).order_by(Patient.code)).all(),
-                        columns=["patient", "code", "diagnosis"])
+def patients(session: Session, codes: list[str] | None = None) -> pd.DataFrame:
+    """``patient`` (id), ``code``, ``diagnosis`` of every patient, or of those with these ``codes``."""
+    query = select(Patient.id, Patient.code, Patient.diagnosis).order_by(Patient.code)
+    if codes is not None:
+        query = query.where(Patient.code.in_(codes))
+    return pd.DataFrame(session.execute(query).all(), columns=["patient", "code", "diagnosis"])

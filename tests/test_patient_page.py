@@ -1,0 +1,49 @@
+"""The paged patient list (Patients page) is the whole list cut by the database: same rows, same order, same
+counts and outcomes as :func:`tracker.services.cohort.patient_list`, on both backends (demo clinic, invented)."""
+
+from __future__ import annotations
+
+import pytest
+
+from conftest import DEMO, run_cli
+from tracker.db.session import make_engine, make_session_factory
+from tracker.services.cohort import patient_list, patient_page
+
+
+@pytest.fixture
+def demo_url(db_url, capsys) -> str:
+    files = [str(DEMO / n) for n in ("measurements.csv", "treatments.csv", "scores.csv")]
+    assert run_cli(capsys, "--db", db_url, "import", *files)[0] == 0
+    # Evaluate the first visits only, so that the latest outcome mixes saved outcomes and "not evaluated".
+    assert run_cli(capsys, "--db", db_url, "check", "DEMO-02", "--criteria", "all")[0] == 0
+    assert run_cli(capsys, "--db", db_url, "check", "DEMO-04", "--criteria", "all")[0] == 0
+    return db_url
+
+
+def _text(frame):
+    """Rows as text; a missing value is missing however pandas holds it (None or NaN)."""
+    return [["" if v is None or v != v else str(v) for v in row] for row in frame.itertuples(index=False)]
+
+
+@pytest.mark.parametrize("criteria", ["efns-pns-2010-cidp", "ean-pns-2021-cidp", "efns-pns-2010-mmn"])
+def test_pages_join_up_to_the_whole_list(demo_url, criteria):
+    engine = make_engine(demo_url)
+    try:
+        with make_session_factory(engine)() as session:
+            for search, diagnosis in (("", None), ("demo-0", None), ("", "cidp"), ("05", None)):
+                whole = patient_list(session, criteria=criteria, search=search, diagnosis=diagnosis)
+                first = patient_page(session, criteria=criteria, search=search, diagnosis=diagnosis, page=1, page_rows=2)
+                assert first.total == len(whole) and first.outcomes == sorted(set(whole["latest_outcome"]))
+                rows = []
+                for page in range(1, -(-len(whole) // 2) + 1):
+                    rows += _text(patient_page(session, criteria=criteria, search=search, diagnosis=diagnosis, page=page, page_rows=2).rows)
+                assert rows == _text(whole)
+                for outcome in first.outcomes:
+                    chosen = patient_page(session, criteria=criteria, search=search, diagnosis=diagnosis, outcome=outcome, page_rows=50)
+                    assert _text(chosen.rows) == _text(whole[whole["latest_outcome"] == outcome])
+                    assert chosen.total == int((whole["latest_outcome"] == outcome).sum())
+            # Saved outcomes exist for the two checked patients, and the rest are "not evaluated", never normal.
+            everyone = patient_page(session, criteria=criteria, page_rows=50).rows.set_index("patient")["latest_outcome"]
+            assert everyone["DEMO-01"] == "not evaluated" and everyone["DEMO-02"] != "not evaluated"
+    finally:
+        engine.dispose()
