@@ -22,6 +22,7 @@ def demo_url(db_url, capsys) -> str:
 
 def _text(frame):
     """Rows as text; a missing value is missing however pandas holds it (None or NaN)."""
+    frame = frame.drop(columns=["latest_criteria"], errors="ignore")  # the page also names the set that judged
     return [["" if v is None or v != v else str(v) for v in row] for row in frame.itertuples(index=False)]
 
 
@@ -45,5 +46,25 @@ def test_pages_join_up_to_the_whole_list(demo_url, criteria):
             # Saved outcomes exist for the two checked patients, and the rest are "not evaluated", never normal.
             everyone = patient_page(session, criteria=criteria, page_rows=50).rows.set_index("patient")["latest_outcome"]
             assert everyone["DEMO-01"] == "not evaluated" and everyone["DEMO-02"] != "not evaluated"
+    finally:
+        engine.dispose()
+
+
+def test_by_diagnosis_judges_each_patient_by_the_set_of_its_diagnosis(demo_url):
+    """The outcome column "by diagnosis" uses the mapping of check and evaluate (MMN → the MMN set, CIDP → EAN/PNS
+    2021, GBS → Hadden 1998): each row equals the whole list of that patient's own set."""
+    from tracker.services.evaluation import default_criteria
+
+    engine = make_engine(demo_url)
+    try:
+        with make_session_factory(engine)() as session:
+            page = patient_page(session, criteria=None, page_rows=50).rows.set_index("patient")
+            assert page.loc["DEMO-04", "latest_criteria"] == "efns-pns-2010-mmn"  # DEMO-04: MMN (invented)
+            assert page.loc["DEMO-02", "latest_criteria"] == "ean-pns-2021-cidp"
+            for code, row in page.iterrows():
+                wanted = default_criteria(row["diagnosis"])
+                assert row["latest_criteria"] == wanted
+                own = patient_list(session, criteria=wanted, search=code).set_index("patient")
+                assert row["latest_outcome"] == own.loc[code, "latest_outcome"]
     finally:
         engine.dispose()

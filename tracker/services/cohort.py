@@ -16,6 +16,7 @@ from sqlalchemy.orm import Session
 from tracker.db.models import Evaluation, Patient, Treatment, Visit
 from tracker.services.export import neutralise_text
 from tracker.services.follow_up import treatment_label
+from tracker.services.evaluation import DEFAULT_CRITERIA, FALLBACK_CRITERIA
 from tracker.services.limit_sets import resolve
 
 NOT_EVALUATED = "not evaluated"
@@ -73,7 +74,8 @@ def patient_list(
 
 @dataclass
 class PatientPage:
-    """One page of the patient list: ``rows`` (``PATIENT_COLUMNS``), how many patients pass the filters, and
+    """One page of the patient list: ``rows`` (``PATIENT_COLUMNS`` and ``latest_criteria``, the set that judged
+    the latest outcome), how many patients pass the filters, and
     which latest outcomes occur among them (for the outcome filter)."""
 
     rows: pd.DataFrame
@@ -84,7 +86,7 @@ class PatientPage:
 def patient_page(
     session: Session,
     *,
-    criteria: str,
+    criteria: str | None,
     limits_name: str | None = None,
     search: str = "",
     diagnosis: str | None = None,
@@ -94,7 +96,11 @@ def patient_page(
     today: dt.date | None = None,
 ) -> PatientPage:
     """The patient list as :func:`patient_list`, but filtered, counted and cut into pages by the database, so
-    that a page costs the same for 10 or 5,000 patients (the rows of one page only are read into Python)."""
+    that a page costs the same for 10 or 5,000 patients (the rows of one page only are read into Python).
+
+    ``criteria`` None: each patient's latest visit is judged by the set its diagnosis maps to (the visit's
+    diagnosis, else the patient's), as ``check`` and ``evaluate`` choose it; the rows then name the set in
+    ``latest_criteria``."""
     limit_set_id = resolve(session, limits_name)[0].id
     # Correlated subqueries, each answered from an index (visits by patient and date, evaluations by visit):
     # the database touches one patient's rows per patient, and Python only the rows of one page.
@@ -103,16 +109,22 @@ def patient_page(
     first = select(func.min(Visit.visit_date)).where(mine).scalar_subquery()
     last = select(func.max(Visit.visit_date)).where(mine).scalar_subquery()
     latest_visit = select(Visit.id).where(mine).order_by(Visit.visit_date.desc()).limit(1).correlate(Patient).scalar_subquery()
+    if criteria is None:
+        latest_diagnosis = select(Visit.diagnosis).where(mine).order_by(Visit.visit_date.desc()).limit(1).correlate(Patient).scalar_subquery()
+        diagnosis_used = func.coalesce(latest_diagnosis, Patient.diagnosis)
+        chosen = case(*[(diagnosis_used == d, literal(c)) for d, c in DEFAULT_CRITERIA.items()], else_=literal(FALLBACK_CRITERIA))
+    else:
+        chosen = literal(criteria)
     saved = (
         select(Evaluation.outcome)
-        .where(Evaluation.visit_id == latest_visit, Evaluation.criteria_id == criteria, Evaluation.limit_set_id == limit_set_id)
+        .where(Evaluation.visit_id == latest_visit, Evaluation.criteria_id == chosen, Evaluation.limit_set_id == limit_set_id)
         .limit(1)
         .scalar_subquery()
     )
     word = case((visits == 0, literal("no visits")), else_=func.coalesce(saved, literal(NOT_EVALUATED))).label("latest_outcome")
     query = select(
         Patient.id, Patient.code, Patient.diagnosis, Patient.phenotype, visits.label("visits"), first.label("first_visit"),
-        last.label("last_visit"), word,
+        last.label("last_visit"), word, chosen.label("latest_criteria"),
     )
     if search.strip():
         query = query.where(func.lower(Patient.code).contains(search.strip().lower(), autoescape=True))
@@ -126,12 +138,12 @@ def patient_page(
         filtered_rows = select(filtered)
     total = session.scalar(select(func.count()).select_from(filtered_rows.subquery())) or 0
     rows = session.execute(filtered_rows.order_by(filtered.c.code).limit(page_rows).offset(max(0, page - 1) * page_rows)).all()
-    frame = pd.DataFrame([tuple(r) for r in rows], columns=["id", "patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit", "latest_outcome"])
+    frame = pd.DataFrame([tuple(r) for r in rows], columns=["id", "patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit", "latest_outcome", "latest_criteria"])
     frame["visits"] = frame["visits"].fillna(0).astype(int)
     for column in ("first_visit", "last_visit"):
         frame[column] = [d if d is None or isinstance(d, dt.date) else dt.date.fromisoformat(str(d)) for d in frame[column]]
     frame["current_treatment"] = _current_treatments(session, frame, today or dt.date.today())
-    return PatientPage(frame[PATIENT_COLUMNS].reset_index(drop=True), int(total), outcomes)
+    return PatientPage(frame[[*PATIENT_COLUMNS, "latest_criteria"]].reset_index(drop=True), int(total), outcomes)
 
 
 def _current_treatments(session: Session, patients: pd.DataFrame, today: dt.date) -> list[str]:

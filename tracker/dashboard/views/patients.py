@@ -11,7 +11,7 @@ from tracker.dashboard.state import choose_patient, database_url, user, writing
 from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker
 from tracker.domain.vocabulary import DIAGNOSES
 from tracker.services.cohort import NOT_EVALUATED
-from tracker.services.evaluation import FALLBACK_CRITERIA, refresh_evaluations
+from tracker.services.evaluation import refresh_evaluations
 from tracker.services.response import rule_set_choices, with_course
 
 PAGE_ROWS = 50
@@ -22,7 +22,8 @@ left, middle, right = st.columns([2, 1, 2])
 search = left.text_input("Search by code", key="patients_search", placeholder="e.g. DEMO-0")
 diagnosis = middle.selectbox("Diagnosis", [None, *DIAGNOSES], key="patients_diagnosis", format_func=lambda d: "all" if d is None else d)
 with right:
-    criteria = criteria_picker("Outcome column: criteria set", key="patients_criteria") or FALLBACK_CRITERIA
+    # None: each patient's latest visit judged by the set its diagnosis maps to (as check and evaluate do).
+    criteria = criteria_picker("Outcome column: criteria set", key="patients_criteria")
 below = st.columns(2)
 with below[0]:
     limits_name = limits_picker(key="patients_limits")
@@ -47,15 +48,17 @@ st.selectbox("Latest outcome", [None, *listing.outcomes], key="patients_outcome"
 if pages > 1:
     st.number_input(f"Page (of {pages}, {PAGE_ROWS} patients each)", min_value=1, max_value=pages, step=1, key="patients_page")
 total = listing.total
-table = listing.rows
+table = listing.rows.copy()
+table["latest_criteria"] = [criteria_title(c) for c in table["latest_criteria"]]
 table = with_course(table, reads.course(url, rules_id, tuple(table["patient"])))
 st.caption(
-    f"{total} patients{f' (page {int(page)} of {pages})' if pages > 1 else ''} · latest outcome = {criteria_title(criteria)} at the latest visit, from saved evaluations · "
+    f"{total} patients{f' (page {int(page)} of {pages})' if pages > 1 else ''} · latest outcome = "
+    f"{criteria_title(criteria) if criteria else 'the criteria set of each patient’s diagnosis'} at the latest visit, from saved evaluations · "
     "course = the regimen running at (or last before) the latest visit or score, judged by the response rule set "
     "(decision support: the classification defers to the treating clinician)"
 )
 st.dataframe(
-    table.rename(columns={"latest_outcome": f"latest outcome ({criteria})"}),
+    table.rename(columns={"latest_outcome": "latest outcome", "latest_criteria": "judged by"}),
     hide_index=True, width="stretch",
     column_config={"first_visit": st.column_config.DateColumn("first visit"), "last_visit": st.column_config.DateColumn("last visit"), "current_treatment": "current treatment"},
 )
