@@ -4,6 +4,7 @@ details in the browser, our theme; the database URL and user pass through the en
 from __future__ import annotations
 
 import os
+import signal
 import socket
 import subprocess
 import sys
@@ -43,21 +44,41 @@ def streamlit_command(host: str, port: int) -> list[str]:
 
 
 def run_dashboard(url: str, *, host: str, port: int, user: str, announce: Callable[[str], None]) -> None:
-    """Start the dashboard and wait until it stops (Ctrl+C stops it)."""
+    """Start the dashboard and wait until it stops. Ctrl+C, SIGTERM and SIGHUP stop the Streamlit child too, so
+    that no dashboard keeps serving patient data after ``serve`` itself was stopped."""
     port = free_port(host, port)
     environment = {**os.environ, ENV_DB: url, ENV_USER: user, "STREAMLIT_BROWSER_GATHER_USAGE_STATS": "false"}
     process = subprocess.Popen(streamlit_command(host, port), env=environment, stdout=subprocess.DEVNULL)
     shown_host = "127.0.0.1" if host in ("127.0.0.1", "localhost") else host
-    announce(f"Dashboard: http://{shown_host}:{port}  (press Ctrl+C to stop)")
-    announce(CAUTION)
+
+    def stop(signum, _frame) -> None:
+        raise _Stopped(signum)
+
+    previous = {sig: signal.signal(sig, stop) for sig in (signal.SIGTERM, signal.SIGHUP)}
     try:
+        announce(f"Dashboard: http://{shown_host}:{port}  (press Ctrl+C to stop)")
+        announce(CAUTION)
         code = process.wait()
-    except KeyboardInterrupt:
-        process.terminate()
-        try:
-            process.wait(10)
-        except subprocess.TimeoutExpired:
-            process.kill()
+    except (KeyboardInterrupt, _Stopped):
+        _stop_child(process)
         return
+    finally:
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+        if process.poll() is None:  # any other way out (an error while announcing): never leave it serving
+            _stop_child(process)
     if code != 0:
         raise TrackerError(f"The dashboard stopped with exit code {code}.")
+
+
+class _Stopped(Exception):
+    """``serve`` received SIGTERM or SIGHUP."""
+
+
+def _stop_child(process: subprocess.Popen) -> None:
+    process.terminate()
+    try:
+        process.wait(10)
+    except subprocess.TimeoutExpired:
+        process.kill()
+        process.wait()
