@@ -558,3 +558,44 @@ def test_misspelt_nerve_is_not_blamed_on_other_columns(shared, tmp_path, capsys)
     lines = _refused_base(shared, tmp_path, capsys, M, cell(5, "nerve", "medain"))
     assert any(line.startswith("row 5, column 'nerve': ") for line in lines), lines
     assert not any(line.startswith("row 5, column 'wrist_entrapment': ") for line in lines), lines
+
+
+# --- every problem of a treatments or scores file is listed, unknown patients included (issue 10, item 16) -----
+
+
+def _add_row(copy_of: int, **values: str) -> Mutation:
+    """Append a copy of spreadsheet row ``copy_of`` with some cells changed (invented values)."""
+
+    def apply(sheet: Sheet) -> None:
+        sheet.rows.append({**sheet.rows[copy_of - 2], **values})
+
+    return apply
+
+
+@pytest.mark.parametrize(
+    ("base", "mutation", "expected"),
+    [
+        pytest.param(
+            TR,
+            both(_add_row(2, patient="T-999", start_date="2024-07-01"), _add_row(2, patient="T-998", dose="0", start_date="2024-08-01"), cell(2, "therapy", "ivgi")),
+            [(2, "therapy", "did you mean 'ivig'?"), (3, "patient", "unknown patient"), (4, "patient", "unknown patient"), (4, "dose", "above 0")],
+            id="treatments",
+        ),
+        pytest.param(
+            SC,
+            both(cell(2, "value", "11"), cell(3, "patient", "T-999"), cell(4, "patient", "T-999"), cell(4, "value", "101")),
+            [(2, "value", "outside the incat range"), (3, "patient", "unknown patient"), (4, "patient", "unknown patient"), (4, "value", "outside the i_rods range")],
+            id="scores",
+        ),
+    ],
+)
+def test_unknown_patients_are_listed_with_every_other_problem(shared, tmp_path, capsys, base, mutation, expected):
+    """DESIGN.md §4.1 (import is all-or-nothing with "a list of every problem"), applied to §4.2 files: an
+    unknown patient is reported beside the file's other defects, not only when it is the sole problem."""
+    url, engine = shared
+    sheet = Sheet.from_base(base)
+    mutation(sheet)
+    err = refused(capsys, url, engine, sheet.write(tmp_path))
+    for row, column, words in expected:
+        assert_reported(err, row, column, words)
+    assert len(problem_lines(err)) == len(expected), err

@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import datetime as dt
+from collections.abc import Callable, Iterable
 
 import numpy as np
 import pandas as pd
 
+from tracker.domain.catalogue import suggest
 from tracker.domain.plausibility import scales
 from tracker.domain.vocabulary import THERAPIES
 from tracker.errors import InputRejected
@@ -22,6 +24,28 @@ SCORE_KEY = ["patient", "date", "scale"]
 DOSE_UNITS = ("g/kg", "mg/kg", "g", "mg", "ml", "mL/kg", "exchanges", "mg/m2", "other")
 
 
+KnownPatients = Callable[[list[str]], Iterable[str]]
+"""Given patient codes, the ones that are stored (a database look-up supplied by the importer)."""
+
+
+def _unknown_patients(collect: Collector, patient: pd.Series, known_patients: KnownPatients | None) -> None:
+    """Every row whose (well-formed) patient code is not stored, listed with the other problems of the file."""
+    if known_patients is None:
+        return
+    valid = patient[patient.str.match(checks.CODE).to_numpy(dtype=bool)]
+    codes = sorted(set(valid))
+    known = set(known_patients(codes)) if codes else set()
+    unknown = sorted(set(codes) - known)
+    for code in unknown:
+        hint = suggest(code, sorted(known))
+        collect.add(
+            (patient == code).to_numpy(),
+            "patient",
+            "unknown patient; import the patient's measurements first"
+            + (f" (did you mean {hint!r}?)" if hint else " (or check the code)"),
+        )
+
+
 def _duplicates(collect: Collector, frame: pd.DataFrame, key: list[str], what: str) -> None:
     dup = frame[frame.duplicated(key, keep=False)]
     for _, rows in dup.groupby(key, sort=False)[ROW]:
@@ -29,8 +53,13 @@ def _duplicates(collect: Collector, frame: pd.DataFrame, key: list[str], what: s
         collect.add_one(int(rows.iloc[-1]), key[-1], None, f"the same {what} appears on rows {listed}")
 
 
-def validate_treatments(cells: pd.DataFrame, *, today: dt.date | None = None) -> pd.DataFrame:
-    """Return one typed row per treatment period, or raise :class:`InputRejected` with every problem."""
+def validate_treatments(
+    cells: pd.DataFrame, *, today: dt.date | None = None, known_patients: KnownPatients | None = None
+) -> pd.DataFrame:
+    """Return one typed row per treatment period, or raise :class:`InputRejected` with every problem.
+
+    ``known_patients`` (codes → the stored ones) adds a problem for every row of a patient not stored yet.
+    """
     today = today or dt.date.today()
     collect = Collector(cells)
     checks.unknown_columns(collect, TREATMENT_REQUIRED + TREATMENT_OPTIONAL)
@@ -39,6 +68,7 @@ def validate_treatments(cells: pd.DataFrame, *, today: dt.date | None = None) ->
             collect.add_one(None, None, None, "the file has a header but no data rows")
         raise InputRejected("The treatments file was refused", collect.sorted_problems())
     patient = checks.patient_codes(collect)
+    _unknown_patients(collect, patient, known_patients)
     therapy = checks.vocabulary(collect, "therapy", {t: t for t in THERAPIES}, required=True)
     start = checks.iso_dates(collect, "start_date", required=True, not_after=today)
     end = checks.iso_dates(collect, "end_date", required=False, not_after=None)
@@ -73,8 +103,11 @@ def validate_treatments(cells: pd.DataFrame, *, today: dt.date | None = None) ->
     return frame
 
 
-def validate_scores(cells: pd.DataFrame, *, today: dt.date | None = None) -> pd.DataFrame:
-    """Return one typed row per score, or raise :class:`InputRejected` with every problem."""
+def validate_scores(
+    cells: pd.DataFrame, *, today: dt.date | None = None, known_patients: KnownPatients | None = None
+) -> pd.DataFrame:
+    """Return one typed row per score, or raise :class:`InputRejected` with every problem (``known_patients``:
+    as for :func:`validate_treatments`)."""
     today = today or dt.date.today()
     collect = Collector(cells)
     checks.unknown_columns(collect, SCORE_REQUIRED)
@@ -84,6 +117,7 @@ def validate_scores(cells: pd.DataFrame, *, today: dt.date | None = None) -> pd.
         raise InputRejected("The scores file was refused", collect.sorted_problems())
     known = scales()
     patient = checks.patient_codes(collect)
+    _unknown_patients(collect, patient, known_patients)
     date = checks.iso_dates(collect, "date", required=True, not_after=today)
     scale = checks.vocabulary(collect, "scale", {s: s for s in known}, required=True)
     value, _ = checks.number(collect, "value", required=True)

@@ -27,7 +27,6 @@ from tracker.db.models import (
     Visit,
     utc_now,
 )
-from tracker.domain.catalogue import suggest
 from tracker.errors import InputRejected, Problem
 from tracker.services import audit
 from tracker.services.clinical_file import SCORE_KEY, TREATMENT_KEY, validate_scores, validate_treatments
@@ -160,10 +159,10 @@ def import_table(
         batch = validate_measurements(table.cells, allow_unusual=allow_unusual, today=today)
         report = _store_measurements(session, batch, username=username, dry_run=dry_run, replace=replace)
     elif table.kind == "treatments":
-        frame = validate_treatments(table.cells, today=today)
+        frame = validate_treatments(table.cells, today=today, known_patients=lambda codes: _stored_codes(session, codes))
         report = _store_records(session, frame, kind="treatments", username=username, dry_run=dry_run, replace=replace)
     else:
-        frame = validate_scores(table.cells, today=today)
+        frame = validate_scores(table.cells, today=today, known_patients=lambda codes: _stored_codes(session, codes))
         report = _store_records(session, frame, kind="scores", username=username, dry_run=dry_run, replace=replace)
     report.rows = len(table.cells)
     if not dry_run:
@@ -198,6 +197,10 @@ def _existing_patients(session: Session, codes: list[str]) -> pd.DataFrame:
             select(Patient.id, Patient.code, Patient.sex, Patient.birth_year).where(Patient.code.in_(part))
         ).all()
     return pd.DataFrame(found, columns=["patient_id", "patient", "db_sex", "db_birth_year"])
+
+
+def _stored_codes(session: Session, codes: list[str]) -> list[str]:
+    return _existing_patients(session, codes)["patient"].tolist()
 
 
 def _existing_visits(session: Session, patient_ids: list[int]) -> pd.DataFrame:
@@ -394,19 +397,9 @@ def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username
 
     codes = sorted(frame["patient"].unique())
     ids = _existing_patients(session, codes).set_index("patient")["patient_id"]
-    problems = []
-    for row in frame[~frame["patient"].isin(ids.index)].to_dict("records"):
-        hint = suggest(row["patient"], list(ids.index))
-        problems.append(
-            Problem(
-                int(row[ROW]),
-                "patient",
-                row["patient"],
-                "unknown patient; import the patient's measurements first"
-                + (f" (did you mean {hint!r}?)" if hint else " (or check the code)"),
-            )
-        )
-    if problems:
+    unknown = frame[~frame["patient"].isin(ids.index)]
+    if len(unknown):  # validated without ``known_patients``: still refuse, row by row
+        problems = [Problem(int(r), "patient", p, "unknown patient; import the patient's measurements first") for r, p in zip(unknown[ROW], unknown["patient"])]
         raise InputRejected(f"The {kind} file was refused", problems)
     frame = frame.assign(patient_id=frame["patient"].map(ids).astype(int))
     key_db = ["patient_id"] + key[1:]
