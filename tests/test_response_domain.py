@@ -473,9 +473,10 @@ CONFIRM_SCORES = [*graded("2024-01-05", 1, 1), *graded("2024-04-05", 1, 2), *gra
 
 
 def test_confirmation_a_single_worsening_is_not_yet_worsened():
+    # The confirming visit is missing data: not assessable, never "stable" (and not yet "worsened").
     [once] = classify_all(CONFIRM_PERIODS, CONFIRM_SCORES, "2024-04-05", "trial-aincat-confirmed")
-    assert once.classification == "stable"
-    assert once.notes and "not yet at 2 consecutive visits" in once.notes[0]
+    assert once.classification == "not_assessable"
+    assert once.missing and "confirming visit is not recorded yet" in once.missing[0] and "2024-04-05" in once.missing[0]
     [unconfirmed] = classify_all(CONFIRM_PERIODS, CONFIRM_SCORES, "2024-04-05", "trial-aincat")
     assert unconfirmed.classification == "worsened"  # without confirmation one score is enough
 
@@ -489,7 +490,9 @@ def test_confirmation_two_consecutive_worsenings_are_worsened():
 def test_confirmation_a_worsening_then_a_return_is_not_confirmed():
     rows = [*graded("2024-01-05", 1, 1), *graded("2024-04-05", 1, 2), *graded("2024-07-05", 1, 1), *graded("2024-10-05", 1, 2)]
     [result] = classify_all(CONFIRM_PERIODS, rows, "2024-10-05", "trial-aincat-confirmed")
-    assert result.classification == "stable"
+    assert result.classification == "not_assessable"  # worse again on 2024-10-05, awaiting its confirming visit
+    [back] = classify_all(CONFIRM_PERIODS, rows, "2024-07-05", "trial-aincat-confirmed")
+    assert back.classification == "stable"  # 2024-04-05 was not confirmed: back at baseline on 2024-07-05
 
 
 # Composite: ADHERE-style evidence of improvement by adjusted INCAT, I-RODS or grip (Allen JA et al. Lancet Neurol 2024;

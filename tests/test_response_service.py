@@ -236,8 +236,8 @@ def test_confirmation_rule_set(clinic, capsys):
     # ADVANCE-CIDP 1 (NCT02549170 registry record): ≥1-point increase on 2 consecutive adjusted INCAT scores.
     once = response(capsys, clinic, "INV-CONFIRM", "--visit", "2024-04-05", "--rules", "trial-aincat-confirmed")
     [regimen] = once["regimens"]
-    assert regimen["classification"] == "stable"  # a single worsening is not yet "worsened"
-    assert "not yet at 2 consecutive visits" in regimen["notes"][0]
+    assert regimen["classification"] == "not_assessable"  # a single worsening awaits its confirming visit
+    assert "confirming visit is not recorded yet" in regimen["missing"][0]
     single = response(capsys, clinic, "INV-CONFIRM", "--visit", "2024-04-05")
     assert [r["classification"] for r in single["regimens"]] == ["worsened"]  # trial-aincat: one score is enough
     twice = response(capsys, clinic, "INV-CONFIRM", "--rules", "trial-aincat-confirmed")

@@ -58,7 +58,8 @@ def text(result: PatientResponse, *, all_changes: bool = False) -> str:
         if c.compared:
             lines += _wrap("visits compared: " + ", ".join(d.isoformat() for d in c.compared))
         lines.append("")
-    lines.append("* from memory, not verified against the publication")
+    if any(e["status"] != "verified" for c in result.classifications for e in c.evidence):
+        lines.append("* from memory, not verified against the publication")
     lines.append("")
     lines += _score_lines(result, scales, all_changes)
     lines += _nerve_lines(result, all_changes)
@@ -94,9 +95,12 @@ def _score_lines(result: PatientResponse, scales, all_changes: bool) -> list[str
             label = f"{info.label} ({info.unit})" if info else scale
             direction = ("higher better" if info.higher_is_better else "higher worse") if info else ""
             cells = {r.reference: f"{_signed(r.change)} {CHANGE_VERDICT_SHAPES.get(r.verdict, '')} from {_number(r.reference_value)}" for r in group.itertuples(index=False)}
+            star = "" if info is None or info.mic_status == "verified" else " *"
             rows.append([label, direction, _number(group["value"].iloc[0]), cells.get("regimen_baseline", "—"), cells.get("previous", "—"), cells.get("best", "—"),
-                         group["threshold"].iloc[0]])
+                         group["threshold"].iloc[0] + star])
         lines += _table(header, rows) + [""]
+    if any(info.mic_status != "verified" for info in scales.values() if info.name in set(frame["scale"])):
+        lines += ["  * minimal important change from memory, not verified against the publication", ""]
     return lines
 
 
@@ -117,7 +121,8 @@ def _nerve_lines(result: PatientResponse, all_changes: bool) -> list[str]:
                      f"{COMPARED_SHORT.get(r.reference, r.reference)} {r.reference_date.isoformat()}",
                      "absent" if r.reference_absent else _number(r.reference_value, 2), "absent" if r.absent else _number(r.value, 2), change_text, sdc, CHANGE_VERDICT_SHAPES.get(r.verdict, ""), "?" if r.less_certain else ""])
         if r.less_certain:
-            doubts.append(f"{words(r.nerve)} {r.side} {NERVE_PARAMETER_SHORT.get(r.parameter, r.parameter)} {words(r.where)}: less certain — {r.less_certain}")
+            place = " ".join(part for part in (words(r.nerve), r.side, NERVE_PARAMETER_SHORT.get(r.parameter, r.parameter), words(r.where)) if part)
+            doubts.append(f"{place}: less certain — {r.less_certain}")
     if rows:
         lines += _table(header, rows)
     for doubt in doubts:
@@ -145,7 +150,8 @@ def _trend_lines(result: PatientResponse, scales) -> list[str]:
         if t.trend.slope is None:
             rows.append([name, str(t.trend.points), t.trend.reason, "", ""])
         else:
-            rows.append([name, str(t.trend.points), f"{_signed(t.trend.slope, 2)} {t.unit}/year", _signed(t.trend.low, 2), _signed(t.trend.high, 2)])
+            unit = "percentage points" if t.unit == "%" else t.unit  # a change of a percentage is in points
+            rows.append([name, str(t.trend.points), f"{_signed(t.trend.slope, 2)} {unit}/year", _signed(t.trend.low, 2), _signed(t.trend.high, 2)])
     return lines + _table(["what", "points", "slope", "95 % CI low", "high"], rows) + [""]
 
 

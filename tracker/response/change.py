@@ -37,6 +37,8 @@ NERVE_CHANGE_COLUMNS = [
     "change", "change_pct", "verdict", "sdc", "less_certain", "absent", "reference_absent",
 ]
 
+# Parameters whose value depends on a measured distance (a latency over a distance, a velocity).
+DISTANCE_PARAMETERS = ("distal_latency", "segment_velocity", "sensory_velocity")
 # Verdict words (identifiers; labels for people live in tracker.domain.labels).
 IMPROVED, WORSENED, WITHIN, NO_THRESHOLD, NOT_COMPARABLE = "improved", "worsened", "within_noise", "no_threshold", "not_comparable"
 
@@ -69,6 +71,9 @@ def baseline(series: list[tuple[dt.date, float]], regimen: Regimen, settings: Re
     before the start within the look-back, else the first within the grace days after the start."""
     start = regimen.start_date
     earliest = start - dt.timedelta(days=settings.baseline_lookback_days)
+    if settings.baseline_after_previous_regimen and regimen.previous_start is not None:
+        # A score from before the previous regimen began describes neither regimen.
+        earliest = max(earliest, regimen.previous_start)
     before = [point for point in series if earliest <= point[0] <= start]
     if before:
         return before[-1]
@@ -215,17 +220,25 @@ def nerve_changes_many(values: pd.DataFrame, pairs: pd.DataFrame, table: dict[st
     f, f_ref = m["lff_hz"].to_numpy(dtype=float), m["lff_hz_ref"].to_numpy(dtype=float)
     d, d_ref = m["distance_mm"].to_numpy(dtype=float), m["distance_mm_ref"].to_numpy(dtype=float)
     with np.errstate(invalid="ignore", divide="ignore"):
-        warm = quantise_array(np.abs(t - t_ref)) > quantise(settings.temperature_delta_c)
+        # Not recorded at either visit: the condition cannot be checked, so the change is less certain too.
+        unknown_t = np.isnan(t) | np.isnan(t_ref)
+        warm = (quantise_array(np.abs(t - t_ref)) > quantise(settings.temperature_delta_c)) | unknown_t
         filt = (np.isnan(f) != np.isnan(f_ref)) | (~np.isnan(f) & ~np.isnan(f_ref) & (f != f_ref)) if settings.filter_must_match else np.zeros(len(m), bool)
-        far = (d_ref > 0) & (np.abs(d - d_ref) / d_ref * 100.0 > settings.distance_delta_pct)
+        distance_used = np.isin(parameter, list(DISTANCE_PARAMETERS))
+        unknown_d = distance_used & (np.isnan(d) | np.isnan(d_ref))
+        far = ((d_ref > 0) & (np.abs(d - d_ref) / d_ref * 100.0 > settings.distance_delta_pct)) | unknown_d
     doubt = np.full(len(m), "", dtype=object)
     for i in np.flatnonzero((warm | filt | far) & ~either):
         reasons = []
-        if warm[i]:
+        if warm[i] and unknown_t[i]:
+            reasons.append(f"limb temperature not recorded ({_celsius(t_ref[i])} → {_celsius(t[i])})")
+        elif warm[i]:
             reasons.append(f"limb temperature {t_ref[i]:g} → {t[i]:g} °C (more than {settings.temperature_delta_c:g} °C apart)")
         if filt[i]:
             reasons.append(f"low-frequency filter {_hz(f_ref[i])} → {_hz(f[i])}")
-        if far[i]:
+        if far[i] and unknown_d[i]:
+            reasons.append("distance not recorded at both visits")
+        elif far[i]:
             reasons.append(f"distance {d_ref[i]:g} → {d[i]:g} mm (more than {settings.distance_delta_pct:g} % apart)")
         doubt[i] = "; ".join(reasons)
     out = pd.DataFrame({
@@ -237,6 +250,10 @@ def nerve_changes_many(values: pd.DataFrame, pairs: pd.DataFrame, table: dict[st
         "absent": absent, "reference_absent": absent_ref,
     })
     return out.sort_values(["visit_key", "nerve", "side", "modality", "parameter", "where"], kind="stable").reset_index(drop=True)[columns]
+
+
+def _celsius(value: float) -> str:
+    return "not recorded" if value != value else f"{value:g} °C"
 
 
 def _hz(value: float) -> str:

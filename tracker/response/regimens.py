@@ -42,10 +42,12 @@ class Regimen:
     interval_days: int | None
     induction: TreatmentPeriod | None = None
     periods: tuple[TreatmentPeriod, ...] = field(default=())
-    # Until when a change is attributed to this regimen: its end, except for a single course (no repeat
-    # interval), whose effect is followed until the next regimen of any therapy starts (None: open).
+    # Until when a change is attributed to this regimen: its end, or the day before the next regimen of any
+    # therapy starts if that is earlier; a single course (no repeat interval) until that next start (None: open).
     assessed_until: dt.date | None = None
     single_course: bool = False
+    # The start of the regimen (any therapy) that began before this one; a baseline may not predate it.
+    previous_start: dt.date | None = None
 
     @property
     def key(self) -> str:
@@ -138,11 +140,15 @@ def regimens(periods: list[TreatmentPeriod], settings: ResponseSettings | None =
     finished = []
     for index, regimen in enumerate(out):
         single = regimen.induction is None and len(regimen.periods) == 1 and _is_single_course(regimen.periods[0])
-        until = regimen.end_date
-        if single:
-            later = [r.start_date for r in out[index + 1:] if r.start_date > regimen.start_date]
-            until = min(later) - dt.timedelta(days=1) if later else None
-        finished.append(replace(regimen, assessed_until=until, single_course=single))
+        # A change after another regimen (of any therapy) has begun is that regimen's to explain: an open
+        # regimen is followed until the next one starts (a single course, too, which has no end of effect).
+        later = [r.start_date for r in out if r.start_date > regimen.start_date]
+        handover = min(later) - dt.timedelta(days=1) if later else None
+        until = regimen.end_date if not single else None
+        if handover is not None and (until is None or handover < until):
+            until = handover
+        earlier = [r.start_date for r in out if r.start_date < regimen.start_date]
+        finished.append(replace(regimen, assessed_until=until, single_course=single, previous_start=max(earlier) if earlier else None))
     return finished
 
 

@@ -70,6 +70,16 @@ def _parse(rows: list[dict[str, str]], name: str, base: dict[str, Detectable] | 
         sdc = _number(row.get("sdc_pct", ""), number, "sdc_pct", problems)
         if sdc is None and cov is not None:
             sdc = round(SDC_FACTOR * cov, 1)
+        if base is not None and sdc is None:
+            problems.append(Problem(number, "sdc_pct", "", "give sdc_pct or cov_pct (a row without a figure would remove the shipped one)"))
+        better = row.get("better", "").lower()
+        if better and better not in ("higher", "lower"):
+            problems.append(Problem(number, "better", row.get("better"), "expected higher or lower"))
+        if known is not None and better and (better == "higher") != known.higher_is_better:
+            problems.append(Problem(number, "better", row.get("better"), f"the direction of {parameter} is fixed ({'higher' if known.higher_is_better else 'lower'} is better)"))
+        kind = row.get("change_kind", "").lower()
+        if kind and kind not in ("percent", "points"):
+            problems.append(Problem(number, "change_kind", row.get("change_kind"), "expected percent or points"))
         source = row.get("source", "")
         if base is not None and not source:
             problems.append(Problem(number, "source", "", "every laboratory figure needs its source (a study, or 'our laboratory, <date>')"))
@@ -77,10 +87,10 @@ def _parse(rows: list[dict[str, str]], name: str, base: dict[str, Detectable] | 
             parameter=parameter,
             label=row.get("label") or (known.label if known else parameter),
             unit=row.get("unit") or (known.unit if known else ""),
-            higher_is_better=(row.get("better") or ("higher" if known is None or known.higher_is_better else "lower")) == "higher",
+            higher_is_better=(better or ("higher" if known is None or known.higher_is_better else "lower")) == "higher",
             cov_pct=cov,
             sdc=sdc,
-            change_kind=row.get("change_kind") or (known.change_kind if known else "percent"),
+            change_kind=kind or (known.change_kind if known else "percent"),
             source=source,
             status=row.get("status") or "laboratory",
         )

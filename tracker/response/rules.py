@@ -24,7 +24,7 @@ import pandas as pd
 
 from tracker.domain.reference_files import read_reference_csv
 from tracker.errors import InputRejected, Problem
-from tracker.response.change import IMPROVED, WITHIN, WORSENED, baseline, judge
+from tracker.response.change import IMPROVED, NOT_COMPARABLE, WITHIN, WORSENED, baseline, judge
 from tracker.response.regimens import Regimen
 from tracker.response.scales import ScaleInfo, scale_table
 from tracker.response.settings import ResponseSettings
@@ -130,8 +130,10 @@ def _parse(rows: list[dict[str, str]], name: str, *, origin: str) -> dict[str, R
             problems.append(Problem(number, "source", "", "every rule needs its source (a publication, or 'local rule, <who>, <date>')"))
         if row["status"] not in ("verified", "memory", "local"):
             problems.append(Problem(number, "status", row["status"], "expected verified, memory or local"))
-        if not row["version"]:
-            problems.append(Problem(number, "version", "", "a rule set needs a version"))
+        if not row["version"] or len(row["version"]) > 20:
+            problems.append(Problem(number, "version", row["version"], "a rule set needs a version of at most 20 characters"))
+        if len(row["title"]) > 200:
+            problems.append(Problem(number, "title", row["title"][:40] + "…", "a title of at most 200 characters"))
         grouped.setdefault(row["rule_set"], []).append((number, row))
     for rule_set, members in grouped.items():
         versions = {r["version"] for _, r in members}
@@ -171,7 +173,7 @@ def series_by_scale(scores: pd.DataFrame) -> dict[str, list[tuple[dt.date, float
 def _affected_hand(scores: dict[str, list[tuple[dt.date, float]]], regimen: Regimen, settings: ResponseSettings) -> tuple[str, str]:
     """(scale, words) of the hand weaker at the regimen baseline; the weaker hand of each day on a tie."""
     left = baseline(scores.get("grip_kpa_left", []), regimen, settings)
-    right = baseline(scores.get("grip_kpa_right", []), regimen, settings)
+    right = baseline(scores.get("grip_kpa_right", []), regimen, settings)  # noqa: the same floor rule as every scale
     if left is not None and right is not None and left[0] == right[0] and left[1] != right[1]:
         return ("grip_kpa_left", "left hand, weaker at baseline") if left[1] < right[1] else ("grip_kpa_right", "right hand, weaker at baseline")
     return "grip_kpa_weaker", "weaker hand of each day"
@@ -200,9 +202,12 @@ def classify(regimen: Regimen, scores: dict[str, list[tuple[dt.date, float]]], r
         base = baseline(series, regimen, settings)
         if base is None:
             outcomes[rule.scale] = "missing"
+            floor = ""
+            if settings.baseline_after_previous_regimen and regimen.previous_start is not None:
+                floor = f", and not before the previous regimen began ({regimen.previous_start.isoformat()})"
             result.missing.append(
                 f"{label}: no score from {settings.baseline_lookback_days} days before the regimen started "
-                f"({regimen.start_date.isoformat()}) to {settings.baseline_grace_days} days after (baseline)"
+                f"({regimen.start_date.isoformat()}) to {settings.baseline_grace_days} days after (baseline){floor}"
             )
             continue
         base_date, base_value = base
@@ -219,12 +224,19 @@ def classify(regimen: Regimen, scores: dict[str, list[tuple[dt.date, float]]], r
         day, value, change, pct, verdict = verdicts[-1]
         last_k = [v[4] for v in verdicts[-rule.confirm_visits:]]
         confirmed = len(last_k) == rule.confirm_visits and all(v == verdict for v in last_k)
-        outcome = verdict if verdict in (IMPROVED, WORSENED) and confirmed else "stable"
-        if verdict in (IMPROVED, WORSENED) and not confirmed:
-            result.notes.append(
-                f"{label}: {verdict} on {day.isoformat()} but not yet at {rule.confirm_visits} consecutive visits "
-                f"(the rule set asks for confirmation); counted as stable until confirmed"
+        if verdict == NOT_COMPARABLE:
+            # e.g. a percent threshold on a baseline of 0: no change can be computed, which is not "stable".
+            outcome = "missing"
+            result.missing.append(f"{label}: the change from a baseline of {base_value:g} cannot be computed as the rule asks ({rule.threshold_words(info.unit)})")
+        elif verdict in (IMPROVED, WORSENED) and not confirmed:
+            # The confirming visit has not happened yet: want of data, never "stable".
+            outcome = "missing"
+            result.missing.append(
+                f"{label}: {verdict} on {day.isoformat()} ({base_value:g} → {value:g}); the rule set asks for the same at "
+                f"{rule.confirm_visits} consecutive visits and the confirming visit is not recorded yet"
             )
+        else:
+            outcome = verdict if verdict in (IMPROVED, WORSENED) else "stable"
         outcomes[rule.scale] = outcome
         # A worsening met earlier in the regimen (and confirmed as the rule asks) stays visible after recovery.
         for index in range(len(verdicts) - 1):

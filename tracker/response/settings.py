@@ -24,6 +24,8 @@ class ResponseSettings:
     ``filter_must_match``: … or with a different low-frequency filter setting (Hz).
     ``mixed_changes``: what a regimen is when one scale meets its worsening threshold and another its
     improvement threshold: ``worsened`` (default: a relapse must not be hidden) or ``not_assessable``.
+    ``baseline_after_previous_regimen``: a baseline score must not predate the start of the regimen before
+    this one (else the earlier regimen's effect would be credited to this one).
     """
 
     baseline_lookback_days: int = 90
@@ -33,6 +35,7 @@ class ResponseSettings:
     distance_delta_pct: float = 10.0
     filter_must_match: bool = True
     mixed_changes: str = "worsened"
+    baseline_after_previous_regimen: bool = True
 
     def __post_init__(self) -> None:
         if self.mixed_changes not in ("worsened", "not_assessable"):
@@ -64,4 +67,5 @@ SETTING_ORIGINS: dict[str, str] = {
     "distance_delta_pct": "common practice, no source",
     "filter_must_match": "common practice, no source (the low-frequency filter changes negative-peak duration and amplitude)",
     "mixed_changes": "a rule of ours: no publication defines a regimen where one scale improves and another worsens",
+    "baseline_after_previous_regimen": "a rule of ours: trials measure from a baseline taken on the treatment being changed (normatives.md §4.2); a score from before the previous regimen describes neither",
 }

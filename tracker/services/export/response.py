@@ -188,7 +188,7 @@ def _scores_at_visits(points: list[Point], days: list[dt.date]) -> dict[dt.date,
 
 
 def _running(plan: list[Regimen], day: dt.date) -> list[Regimen]:
-    return [r for r in plan if r.covers(day)]
+    return [r for r in plan if r.attributes(day)]
 
 
 def _visit_row(day: dt.date, first: dt.date | None, plan: list[Regimen], by_scale: dict[str, list[Point]],

@@ -25,7 +25,7 @@ def _inputs(rule_set: rules.RuleSet) -> list[str]:
     return sorted({name for rule in rule_set.rules for name in _SOURCES.get(rule.scale, (rule.scale,))})
 
 
-COURSE_COLUMNS = ["code", "course", "rules", "rules_version", "regimen", "since", "why"]
+COURSE_COLUMNS = ["code", "course", "rules", "rules_version", "regimen", "since", "ongoing", "why"]
 
 
 def cohort_course(session: Session, *, rules_id: str | None = None, settings: ResponseSettings | None = None,
@@ -67,7 +67,7 @@ def cohort_course(session: Session, *, rules_id: str | None = None, settings: Re
         chosen = running[-1] if running else (plan[-1] if plan else None)
         if chosen is None:
             rows.append({"code": code, "course": "not_assessable", "rules": rule_set.id, "rules_version": rule_set.version,
-                         "regimen": "", "since": None, "why": "no treatment recorded"})
+                         "regimen": "", "since": None, "ongoing": False, "why": "no treatment recorded"})
             continue
         result = rules.classify(chosen, series, rule_set, at=at, settings=settings, scales=table)
         deciding = [e for e in result.evidence if e["outcome"] == result.classification]
@@ -76,7 +76,7 @@ def cohort_course(session: Session, *, rules_id: str | None = None, settings: Re
         if not chosen.attributes(at):  # the last regimen has ended: say so beside its course
             regimen += f" (ended {chosen.end_date.isoformat()}; no treatment since)" if chosen.end_date else " (ended)"
         rows.append({"code": code, "course": result.classification, "rules": rule_set.id, "rules_version": rule_set.version,
-                     "regimen": regimen, "since": chosen.start_date, "why": why})
+                     "regimen": regimen, "since": chosen.start_date, "ongoing": chosen.attributes(at), "why": why})
     return pd.DataFrame(rows, columns=COURSE_COLUMNS)
 
 
@@ -96,7 +96,8 @@ def cohort_response(session: Session, *, rules_id: str | None = None, settings: 
     settings = settings or ResponseSettings()
     people, visits = patients(session), visit_dates(session)
     course = cohort_course(session, rules_id=rules_id, settings=settings, loaded=(people, visits))
-    since = dict(zip(course["code"], course["since"]))
+    # As the patient view: a regimen baseline study only for a regimen the latest visit is attributed to.
+    since = {code: day for code, day, ongoing in zip(course["code"], course["since"], course["ongoing"]) if ongoing}
     by_patient: dict[int, list[tuple[object, int]]] = {}
     for pid, day, key in zip(visits["patient"], visits["visit_date"], visits["visit_key"]):
         by_patient.setdefault(pid, []).append((day, int(key)))

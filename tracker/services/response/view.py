@@ -263,6 +263,8 @@ def with_course(table: pd.DataFrame, course: pd.DataFrame) -> pd.DataFrame:
     out = table.copy()
     known = out["patient"].isin(found.index)
     out["course"] = [COURSE_LABELS[found.at[p, "course"]] if k else COURSE_LABELS["not_assessable"] for p, k in zip(out["patient"], known)]
-    out["course rule set"] = [f"{found.at[p, 'rules']} v{found.at[p, 'rules_version']}" if k else "" for p, k in zip(out["patient"], known)]
+    titles = {rule_set.id: rule_set.title for rule_set in rules.rule_sets().values()}
+    out["course rule set"] = [f"{titles.get(found.at[p, 'rules'], found.at[p, 'rules'])} (version {found.at[p, 'rules_version']})" if k else ""
+                              for p, k in zip(out["patient"], known)]
     out["course basis"] = [found.at[p, "why"] if k else "" for p, k in zip(out["patient"], known)]
     return out
