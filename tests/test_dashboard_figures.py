@@ -538,3 +538,39 @@ def test_upload_goes_through_the_importer(tmp_path):
     with pytest.raises(InputRejected, match="Unsupported file type"), make_session_factory(engine).begin() as session:
         import_upload(session, raw, "measurements.pdf", username="test")
     engine.dispose()
+
+
+@pytest.mark.parametrize(
+    ("criteria", "item", "words", "series", "by_hand"),
+    [
+        # EFNS/PNS 2010 MMN (J Peripher Nerv Syst 2010;15:295–301): definite block = negative-peak CMAP AREA
+        # reduced ≥ 50 % proximal vs distal over a segment. Demo file (invented), DEMO-01 2023-02-14 right
+        # ulnar areas 26.5 (below elbow), 25.6 mV·ms (above elbow): (26.5 − 25.6) / 26.5 over that segment.
+        ("efns-pns-2010-mmn", "definite_cb", ("area", "over the segment"), "below_elbow → above_elbow", (26.5 - 25.6) / 26.5 * 100),
+        # EFNS/PNS 2010 CIDP (Van den Bergh et al., Eur J Neurol 2010;17:356–363): partial block = proximal CMAP
+        # AMPLITUDE ≥ 50 % lower than DISTAL. Same nerve, amplitudes 5.6 (wrist), 3.8 mV (above elbow).
+        ("efns-pns-2010-cidp", "cb", ("amplitude", "from the distal site"), "wrist → above_elbow", (5.6 - 3.8) / 5.6 * 100),
+    ],
+)
+def test_block_plot_says_what_it_plots_and_names_the_block_threshold(demo_sessions, criteria, item, words, series, by_hand):
+    from tracker.criteria import thresholds
+
+    rows = demo_csv_rows("DEMO-01", "2023-02-14", "ulnar", "right", "motor")
+    assert [r["amplitude_mv"] for r in rows] == ["5.6", "4.4", "3.8"] and [r["area_mvms"] for r in rows] == ["28.2", "26.5", "25.6"]
+    with demo_sessions() as session:
+        fu = follow_up(session, "DEMO-01", parameter="block", criteria=criteria, strip_criteria=[])
+    figure = figures.trend_figure(fu)
+    label = figure.layout.title.text
+    other = {"area": "amplitude", "amplitude": "area", "over the segment": "from the distal site", "from the distal site": "over the segment"}
+    for word in words:
+        assert word in label and other[word] not in label
+    # The plotted value is the one the label names (by hand from the invented demo cells).
+    [line] = [t for t in traces(figure, "ulnar right (motor)", "measured") if t.meta["series"] == series]
+    assert line.y[list(line.x).index(dt.date(2023, 2, 14))] == pytest.approx(by_hand, abs=1e-4)
+    # The dotted line is the block threshold of the set's table (50 % in both publications), named as such.
+    [published] = [r for r in thresholds.load(criteria).rows if r.item == item and r.nerve in ("ulnar", "*")]
+    assert (published.comparator, published.value) == ("ge", 50.0)
+    [threshold] = traces(figure, "ulnar right (motor)", "criteria threshold")
+    assert set(threshold.y) == {published.value}
+    assert threshold.name.endswith("block threshold: ≥ 50 % reduction")
+    assert "LLN" not in threshold.name and "precondition" not in threshold.name

@@ -15,12 +15,11 @@ import plotly.graph_objects as go
 from plotly.subplots import make_subplots
 
 from tracker.dashboard import style
-from tracker.domain.labels import SDC_STEP_LABELS
+from tracker.domain.labels import SDC_STEP_LABELS, criteria_title
 from tracker.response.regimens import Regimen
 from tracker.services.follow_up import FollowUp
 from tracker.services.response import ResponseView
 
-COMPARATOR_WORDS = {"le": "≤", "lt": "<", "ge": "≥", "gt": ">"}
 OUTCOME_SYMBOLS = {"positive": "triangle-up", "other finding": "diamond", "negative": "circle-open", "not evaluable": "square-open"}
 SCALE_PAD = 0.05  # share of a scale's range added above and below, so points at its ends stay visible
 
@@ -119,7 +118,7 @@ def trend_figure(fu: FollowUp, *, regimens: list[Regimen] | None = None, steps: 
             first = lines.iloc[0]
             name = (
                 f"{first['label']} (normal limit)" if kind == "normal limit"
-                else f"{fu.criteria}: {COMPARATOR_WORDS.get(first['comparator'], '')} {first['label']}".strip()
+                else f"{criteria_title(fu.criteria)}: {first['label']}"
             )
             x, y = list(lines["visit_date"]), [float(v) for v in lines["value"]]
             if len(x) == 1:  # one visit: draw the line a little either side so it is visible
@@ -141,10 +140,11 @@ def trend_figure(fu: FollowUp, *, regimens: list[Regimen] | None = None, steps: 
     figure.update_xaxes(range=list(window) if window else None, gridcolor=style.GRID, type="date")
     treatments = len(spans)
     figure.update_layout(
-        template="plotly_white", height=250 * rows + 120 + 14 * min(treatments, 3), font={"color": style.INK}, hovermode="closest",
-        margin={"l": 50, "r": 20, "t": 90, "b": 50 + 14 * min(treatments, 3)},
+        template="plotly_white", height=250 * rows + 150 + 14 * min(treatments, 3), font={"color": style.INK}, hovermode="closest",
+        margin={"l": 50, "r": 20, "t": 120, "b": 50 + 14 * min(treatments, 3)},
+        title={"text": f"{fu.parameter.label} ({unit})", "x": 0, "y": 0.995, "yanchor": "top", "font": {"size": 14}},
         legend={"orientation": "h", "yanchor": "bottom", "y": 1.0 + 60 / (250 * rows), "x": 0},
-        meta={"patient": fu.patient, "parameter": fu.parameter.key, "criteria": fu.criteria},
+        meta={"patient": fu.patient, "parameter": fu.parameter.key, "criteria": fu.criteria, "label": fu.parameter.label},
     )
     return figure
 

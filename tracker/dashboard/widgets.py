@@ -7,20 +7,7 @@ import streamlit as st
 from tracker.criteria import engine
 from tracker.dashboard import reads
 from tracker.dashboard.state import PATIENT_KEY, choose_patient, current_patient, database_url
-
-CRITERIA_TITLES = {
-    "efns-pns-2010-cidp": "CIDP — EFNS/PNS 2010",
-    "ean-pns-2021-cidp": "CIDP — EAN/PNS 2021",
-    "aan-1991-cidp": "CIDP — AAN 1991",
-    "efns-pns-2010-mmn": "MMN — EFNS/PNS 2010 (conduction block)",
-    "hadden-1998-gbs": "GBS — Hadden 1998",
-    "rajabally-2015-gbs": "GBS — Rajabally 2015",
-}
-
-
-def criteria_title(criteria_id: str) -> str:
-    return CRITERIA_TITLES.get(criteria_id, criteria_id)
-
+from tracker.domain.labels import CRITERIA_TITLES, criteria_title  # noqa: F401 (pages import them from here)
 
 def patient_picker(label: str = "Patient", *, key: str) -> str | None:
     """Choose a patient by code; the choice is shared with the other pages."""

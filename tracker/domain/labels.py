@@ -88,3 +88,46 @@ DIAGNOSIS_LABELS = {
     "gbs": "GBS (Guillain–Barré syndrome)",
     "other": "other",
 }
+
+# Criteria sets by title (screens, text output); the ids stay in JSON and exports.
+CRITERIA_TITLES = {
+    "efns-pns-2010-cidp": "CIDP — EFNS/PNS 2010",
+    "ean-pns-2021-cidp": "CIDP — EAN/PNS 2021",
+    "aan-1991-cidp": "CIDP — AAN 1991",
+    "efns-pns-2010-mmn": "MMN — EFNS/PNS 2010 (conduction block)",
+    "hadden-1998-gbs": "GBS — Hadden 1998",
+    "rajabally-2015-gbs": "GBS — Rajabally 2015",
+}
+
+
+def criteria_title(criteria_id: str) -> str:
+    """``CIDP — EFNS/PNS 2010``; an unknown set keeps its id in words."""
+    return CRITERIA_TITLES.get(criteria_id, words(str(criteria_id)))
+
+
+# What a block or dispersion plot shows, by the feature actually plotted (the one the set's threshold names).
+PLOTTED_FEATURE_LABELS = {
+    "amplitude_reduction_pct": "Conduction block: CMAP amplitude reduction from the distal site",
+    "area_reduction_pct": "Conduction block: CMAP area reduction from the distal site",
+    "segment_amplitude_reduction_pct": "Conduction block: CMAP amplitude reduction over the segment",
+    "segment_area_reduction_pct": "Conduction block: CMAP area reduction over the segment",
+    "duration_increase_pct": "Temporal dispersion: CMAP duration increase from the distal site",
+    "segment_duration_increase_pct": "Temporal dispersion: CMAP duration increase over the segment",
+}
+COMPARATOR_SIGNS = {"ge": "≥", "gt": ">", "le": "≤", "lt": "<"}
+# A threshold line in words, by the quantity it cuts: (name of the line, what the percentage is).
+THRESHOLD_KINDS = {"block": ("block threshold", "reduction"), "dispersion": ("dispersion threshold", "duration increase")}
+
+
+def threshold_label(parameter: str, comparator: str, value: float, reference: str, unit: str = "") -> str:
+    """A criteria threshold line in words: ``block threshold: ≥ 50 % reduction``, ``≤ 70 % of LLN``.
+
+    ``reference`` as in the threshold tables: ``uln``/``lln`` (``value`` is a factor of that limit),
+    ``percent`` or ``absolute`` (``value`` is the threshold itself)."""
+    sign = COMPARATOR_SIGNS.get(comparator, "")
+    if reference in ("uln", "lln"):
+        return f"threshold: {sign} {value * 100:g} % of {reference.upper()}"
+    name, quantity = THRESHOLD_KINDS.get(parameter, ("threshold", ""))
+    if reference == "percent":
+        return f"{name}: {sign} {value:g} % {quantity}".rstrip()
+    return f"{name}: {sign} {value:g} {unit}".rstrip()

@@ -9,7 +9,7 @@ and its line are the numbers the criteria were applied to.
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
@@ -19,6 +19,7 @@ from sqlalchemy.orm import Session
 from tracker.criteria import engine, features, thresholds
 from tracker.criteria.model import Settings
 from tracker.db.models import OutcomeScore, Treatment, Visit
+from tracker.domain.labels import COMPARATOR_SIGNS, PLOTTED_FEATURE_LABELS, threshold_label
 from tracker.services.limit_sets import LimitSetInfo, resolve
 from tracker.services.records import find_patient
 from tracker.services.evaluation import default_criteria, load_frames
@@ -48,8 +49,10 @@ PARAMETERS: dict[str, Parameter] = {
         Parameter("cv", "Motor conduction velocity", "m/s", "motor", "lln_cv", "LLN", ("cv",)),
         Parameter("distal_latency", "Distal motor latency", "ms", "motor", "uln_distal_latency_ms", "ULN", ("dml",)),
         Parameter("distal_cmap", "Distal CMAP amplitude", "mV", "motor", "lln_amplitude", "LLN", ("axonal_low_cmap",)),
-        Parameter("block", "Conduction block (reduction from the distal site)", "%", "motor", None, None, ("cb", "definite_cb", "cb_td")),
-        Parameter("dispersion", "Temporal dispersion (duration increase from the distal site)", "%", "motor", None, None, ("td",)),
+        # Block and dispersion: the chosen set decides amplitude or area, from the distal site or over the segment;
+        # follow_up() gives the parameter the label of the feature it plots (labels.PLOTTED_FEATURE_LABELS).
+        Parameter("block", "Conduction block (CMAP reduction)", "%", "motor", None, None, ("cb", "definite_cb", "cb_td")),
+        Parameter("dispersion", "Temporal dispersion (CMAP duration increase)", "%", "motor", None, None, ("td",)),
         Parameter("f_latency", "Minimal F-wave latency", "ms", "motor", "uln_f_latency_ms", "ULN", ("f_latency",)),
         Parameter("sensory_cv", "Sensory conduction velocity", "m/s", "sensory", "lln_cv", "LLN", ("sensory_cv",)),
         Parameter("snap", "SNAP amplitude", "µV", "sensory", "lln_amplitude", "LLN", ("snap_reduced", "snap_amplitude", "snap_normal")),
@@ -115,8 +118,10 @@ def follow_up(
     nerves, paths = features.build(visits, tests, sites, limits) if len(tests) else (pd.DataFrame(), pd.DataFrame())
     # The engine reuses the feature tables the points are read from (built once per page).
     results = engine.evaluate(visits, tests, sites, limits, strip, settings, built=(nerves, paths)) if len(tests) else {}
+    if chosen.key in ("block", "dispersion"):  # say what is plotted: amplitude or area, from distal or per segment
+        chosen = replace(chosen, label=PLOTTED_FEATURE_LABELS[_path_column(chosen, criteria)[0]])
     points = _points(chosen, nerves, paths, criteria, dates)
-    references = _references(chosen, nerves, results.get(criteria), dates)
+    references = _references(chosen, nerves, results.get(criteria), dates, thresholds.load(criteria))
     shown = results if strip_criteria is None else {cid: r for cid, r in results.items() if cid in strip_criteria}
     outcomes = _outcome_rows(shown, dates)
     version = results[criteria].version if criteria in results else thresholds.load(criteria).version
@@ -222,7 +227,24 @@ def _path_column(chosen: Parameter, criteria: str) -> tuple[str, str]:
     return feature, ("segment" if feature.startswith("segment_") else "path")
 
 
-def _references(chosen: Parameter, nerves: pd.DataFrame, result, dates: dict[int, dt.date]) -> pd.DataFrame:
+def _threshold_row(table: thresholds.ThresholdTable, item: str, nerve: str) -> thresholds.Threshold | None:
+    """The threshold-table row an item applies to this nerve (a nerve-specific row wins over ``*``)."""
+    rows = [r for r in table.rows if r.item == item and r.nerve in (nerve, "*")]
+    return min(rows, key=lambda r: r.nerve == "*") if rows else None
+
+
+def _threshold_words(chosen: Parameter, table: thresholds.ThresholdTable, item: str, row) -> str:
+    """The threshold line in words, from the threshold table (never from a precondition's limit name)."""
+    found = _threshold_row(table, item, row.nerve)
+    if found is None:  # an item whose threshold is a normal limit itself (e.g. SNAP below LLN)
+        sign = COMPARATOR_SIGNS.get(str(row.comparator), "")
+        named = row.limit_name if isinstance(row.limit_name, str) and row.limit_name else f"{float(row.threshold):g} {chosen.unit}"
+        return f"threshold: {sign} {named}"
+    value = float(row.threshold) if found.reference in ("percent", "absolute") else found.value
+    return threshold_label(chosen.key, str(row.comparator), value, found.reference, chosen.unit)
+
+
+def _references(chosen: Parameter, nerves: pd.DataFrame, result, dates: dict[int, dt.date], table: thresholds.ThresholdTable) -> pd.DataFrame:
     rows: list[dict] = []
     if nerves.empty:
         return pd.DataFrame(columns=REFERENCE_COLUMNS)
@@ -248,7 +270,7 @@ def _references(chosen: Parameter, nerves: pd.DataFrame, result, dates: dict[int
                     {
                         "panel": panel_name(row.nerve, row.side, row.modality), "visit_key": int(row.visit_key),
                         "visit_date": dates[int(row.visit_key)], "kind": "criteria threshold", "value": float(row.threshold),
-                        "label": row.limit_name if isinstance(row.limit_name, str) and row.limit_name else "fixed",
+                        "label": _threshold_words(chosen, table, item, row),
                         "comparator": str(row.comparator), "source": str(row.source),
                     }
                 )
