@@ -599,3 +599,51 @@ def test_unknown_patients_are_listed_with_every_other_problem(shared, tmp_path, 
     for row, column, words in expected:
         assert_reported(err, row, column, words)
     assert len(problem_lines(err)) == len(expected), err
+
+
+# --- a refused re-import names what it would change (issue 10, item 16) ------------------------------------------
+
+
+def _demo_row(sheet: Sheet, nerve: str, modality: str, site_order: str) -> int:
+    """Spreadsheet row of one site of the stored demo visit (header = row 1)."""
+    for index, row in enumerate(sheet.rows):
+        if (row["nerve"], row["modality"], row["site_order"]) == (nerve, modality, site_order):
+            return index + 2
+    raise AssertionError((nerve, modality, site_order))
+
+
+def test_refused_reimport_names_each_changed_value(shared, tmp_path, capsys):
+    """DESIGN.md §4.1 ("a file that changes values of a stored visit is refused unless --replace"): the refusal
+    names every value that differs, old → new with its unit, at the row and column that hold it. The stored
+    visit is the invented demo visit of DEMO-01 on 2023-02-14 (fibular site 1 amplitude 1.9 mV, height 164 cm,
+    median motor site 1 latency 7.05 ms, a sural test)."""
+    url, engine = shared
+    sheet = Sheet.from_base("demo_visit")
+    fibular = _demo_row(sheet, "fibular", "motor", "1")
+    median = _demo_row(sheet, "median", "motor", "1")
+    tibial_2 = _demo_row(sheet, "tibial", "motor", "2")
+    cell(fibular, "amplitude_mv", "2.3")(sheet)
+    cell(median, "latency_ms", "7.15")(sheet)
+    cell(ALL, "height_cm", "165")(sheet)
+    sheet.rows = [row for row in sheet.rows if row["nerve"] != "sural" and not (row["nerve"] == "tibial" and row["site_order"] == "2")]
+    err = refused(capsys, url, engine, sheet.write(tmp_path))
+    assert_reported(err, 2, "visit_date", "already stored with different values (5 listed); import with --replace")
+    assert_reported(err, fibular, "amplitude_mv", "fibular right site 1 amplitude 1.9 → 2.3 mV")
+    assert_reported(err, median, "latency_ms", "median right motor site 1 latency 7.05 → 7.15 ms")
+    assert_reported(err, 2, "height_cm", "height 164 → 165 cm")
+    assert_reported(err, 2, "nerve", "the sural right nerve test is stored but not in the file")
+    assert_reported(err, tibial_2 - 1, "site_order", "tibial right site 2 is stored but not in the file")
+    assert len(problem_lines(err)) == 6, err
+
+
+def test_refused_reimport_names_a_new_nerve_test_and_a_changed_nerve_value(shared, tmp_path, capsys):
+    """As above: a nerve test the stored visit lacks, and a nerve-level value (temperature) stated on one row."""
+    url, engine = shared
+    sheet = Sheet.from_base("demo_visit")
+    ulnar = _demo_row(sheet, "ulnar", "motor", "1")
+    sheet.rows.append({**sheet.rows[ulnar - 2], "side": "left"})  # an invented left ulnar study, row 15
+    for number in range(ulnar, ulnar + 3):
+        cell(number, "temperature_c", "32.0")(sheet)
+    err = refused(capsys, url, engine, sheet.write(tmp_path))
+    assert_reported(err, len(sheet.rows) + 1, "nerve", "the ulnar left motor nerve test is not in the stored visit")
+    assert_reported(err, ulnar, "temperature_c", "ulnar right motor temperature 33.5 → 32 °C")

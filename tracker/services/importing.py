@@ -34,7 +34,7 @@ from tracker.services.measurement_file import (
     MeasurementBatch,
     validate_measurements,
 )
-from tracker.services.history import keep_history, stored_fingerprints
+from tracker.services.history import describe_changes, keep_history, stored_fingerprints
 from tracker.services.rows import chunks as _chunks, clean as _clean
 from tracker.services.tables import ROW, InputTable, read_table
 
@@ -250,18 +250,9 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     unchanged = is_stored & (visits["db_fingerprint"] == visits["fingerprint"])
     changed = is_stored & ~unchanged
     if not replace:
-        for row in visits[changed].itertuples():
-            conflicts.append(
-                Problem(
-                    int(getattr(row, ROW)),
-                    "visit_date",
-                    row.visit_date.isoformat(),
-                    f"the visit of {row.patient} on this date is already stored with different values; "
-                    "import with --replace to replace it (the earlier values are kept in its history)",
-                )
-            )
+        conflicts += describe_changes(session, visits[changed], batch)
     if conflicts:
-        raise InputRejected("The file conflicts with stored data", sorted(conflicts, key=lambda p: p.row or 0))
+        raise InputRejected("The file conflicts with stored data", sorted(conflicts, key=lambda p: p.row or 0))  # stable: a visit's line first
 
     new_patients = patients[patients["patient_id"].isna()]
     report.patients_added = len(new_patients)

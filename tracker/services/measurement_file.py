@@ -65,6 +65,7 @@ class MeasurementBatch:
     visits: pd.DataFrame
     patients: pd.DataFrame
     unusual: list[Problem] = field(default_factory=list)
+    rows: pd.DataFrame | None = None  # every validated row (keys, all values, ``ROW``): to locate a value
 
 
 def _word_map(words) -> dict[str, str]:
@@ -401,6 +402,7 @@ def _assemble(frame: pd.DataFrame, unusual: list[Problem]) -> MeasurementBatch:
         visits=visits,
         patients=patients,
         unusual=unusual,
+        rows=frame,
     )
 
 
