@@ -351,6 +351,8 @@ CASES = [
     case("sensory-velocity-distance-in-cm", M, cell(5, "distance_mm", "13"), 5, "distance_mm", "sensory conduction velocity would be"),
     # --- agreement between rows (DESIGN.md §4.1: "rows that disagree are an error") ---------------------------
     case("nerve-level-disagreement", M, cell(4, "temperature_c", "31"), 4, "temperature_c", "rows of the same nerve test disagree"),
+    # 'absent' on one row and a latency on another: the same disagreement, in words and numbers
+    case("f-wave-absent-and-latency-disagree", M, cell(3, "f_latency_ms", "absent"), 4, "f_latency_ms", "(row 2: 29.5, row 3: absent, row 4: 29.5)"),
     case("visit-level-disagreement", M, cell(5, "height_cm", "175"), 5, "height_cm", "rows of the same visit disagree"),
     case("patient-level-disagreement", M, cell(5, "sex", "male"), 5, "sex", "rows of the same patient disagree"),
     # DESIGN.md §4.1: phenotype "for CIDP"

@@ -145,6 +145,25 @@ def _consistency(collect: Collector, frame: pd.DataFrame, group: np.ndarray, col
             )
 
 
+def _f_wave_words_and_numbers(collect: Collector, frame: pd.DataFrame, group: np.ndarray) -> None:
+    """'absent' on one row of a nerve test and a minimal F-wave latency on another also disagree."""
+    number = frame["f_latency_ms"].notna().to_numpy()
+    word = frame["f_absent"].notna().to_numpy()
+    has_number = pd.Series(number).groupby(group).transform("any").to_numpy()
+    has_word = pd.Series(word).groupby(group).transform("any").to_numpy()
+    for group_id in np.unique(group[has_number & has_word]):
+        stated = np.flatnonzero((group == group_id) & (number | word))
+        shown = ", ".join(
+            f"row {collect.rows[i]}: {'absent' if word[i] else _plain(frame['f_latency_ms'].iloc[i])}" for i in stated
+        )
+        collect.add_one(
+            int(collect.rows[stated[-1]]),
+            "f_latency_ms",
+            None,
+            f"rows of the same nerve test disagree ({shown}); a nerve test-level value must be the same on every row",
+        )
+
+
 def _group_ids(frame: pd.DataFrame, keys: list[str]) -> np.ndarray:
     return frame.groupby(keys, sort=False, dropna=False).ngroup().to_numpy()
 
@@ -307,6 +326,7 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
     sub.add(gap & (valid["site_order"].to_numpy() == highest), "site_order", "site orders of this nerve test are not 1, 2, 3… without gaps")
 
     _consistency(sub, valid, test_group, NERVE_LEVEL, "nerve test")
+    _f_wave_words_and_numbers(sub, valid, test_group)
     _consistency(sub, valid, _group_ids(valid, VISIT_KEY), VISIT_LEVEL, "visit")
     _consistency(sub, valid, _group_ids(valid, ["patient"]), PATIENT_LEVEL, "patient")
 
