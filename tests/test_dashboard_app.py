@@ -337,3 +337,20 @@ def test_patients_page_has_the_course_column(monkeypatch, demo_url):
 
         title = rule_sets()[rules_id].title  # the rule set in words, with its version (ids stay in JSON and exports)
         assert table["course rule set"].to_dict() == {code: f"{title} (version {v})" for code, v in zip(expected.index, expected["rules_version"])}
+
+
+def test_visit_review_criteria_follow_the_patients_diagnosis(monkeypatch, demo_url):
+    # The set shown by default is the one check uses for the patient's diagnosis (the project's mapping,
+    # tracker.services.evaluation.default_criteria; common practice, no source): switching from a CIDP
+    # patient to an MMN one, then a GBS one (the invented demo clinic), switches the sets with it.
+    from tracker.domain.labels import criteria_title
+    from tracker.services.evaluation import default_criteria
+
+    at = open_page(monkeypatch, demo_url, "views/visit_review.py", patient="DEMO-01")
+    assert at.multiselect(key="review_criteria").value == [default_criteria("cidp")]
+    for code, diagnosis in (("DEMO-04", "mmn"), ("DEMO-05", "gbs"), ("DEMO-02", "cidp")):
+        at.selectbox(key="review_patient").select(code).run()
+        assert not at.exception and not at.error
+        assert at.multiselect(key="review_criteria").value == [default_criteria(diagnosis)]
+        assert criteria_title(default_criteria(diagnosis)) in page_text(at)
+    assert default_criteria("mmn") != default_criteria("cidp") != default_criteria("gbs")

@@ -26,9 +26,13 @@ if code:
         st.stop()
     visit_date = top[1].selectbox("Visit", list(reversed(dates)), key="review_visit", format_func=lambda d: d.isoformat())
     default, cold_limbs = reads.clinic_settings(url)
-    chosen_default = default or default_criteria(record.diagnosis)
+    chosen_default = default or default_criteria(record.diagnosis)  # as check does: clinic default, else by diagnosis
+    if st.session_state.get("_review_default") != chosen_default:
+        # Another patient whose diagnosis maps to another set (CIDP → MMN …): the choice follows the new default.
+        st.session_state["_review_default"] = chosen_default
+        st.session_state["review_criteria"] = [chosen_default]
     with top[2]:
-        criteria = st.multiselect("Criteria sets", list(CRITERIA_TITLES), default=[chosen_default], key="review_criteria", format_func=criteria_title)
+        criteria = st.multiselect("Criteria sets", list(CRITERIA_TITLES), key="review_criteria", format_func=criteria_title)
     limits_name = limits_picker(key="review_limits")
     if not criteria:
         st.info("Choose at least one criteria set.")
