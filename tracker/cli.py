@@ -138,6 +138,8 @@ def import_command(context: Context, files: tuple[Path, ...], dry_run: bool, rep
             click.echo(report.summary())
             for problem in report.unusual:
                 click.echo(f"  accepted: {problem}")
+            for warning in report.warnings:
+                click.echo(f"  warning: {warning}", err=True)
 
 
 @cli.command("show")

@@ -52,6 +52,7 @@ class ImportReport:
     unchanged: int = 0
     patients_added: int = 0
     unusual: list[Problem] = field(default_factory=list)
+    warnings: list[Problem] = field(default_factory=list)  # imported all the same; worth a look
 
     def summary(self) -> str:
         noun = {"measurements": "visits", "treatments": "treatment periods", "scores": "scores"}[self.kind]
@@ -182,6 +183,7 @@ def import_table(
                 "replace": replace,
                 "allow_unusual": allow_unusual,
                 "unusual_values_accepted": [str(p) for p in report.unusual],
+                "warnings": [str(p) for p in report.warnings],
             },
         )
     return report
@@ -259,6 +261,9 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     report.unchanged = int(unchanged.sum())
     report.replaced = int(changed.sum())
     report.added = int((~is_stored).sum())
+    written = ~unchanged
+    stored_dates = stored.assign(patient=stored["patient_id"].map(patients.set_index("patient_id")["patient"].to_dict()))
+    report.warnings = _single_nerve_visits(batch, visits[written]) + _date_slips(visits[written], batch.visits, stored_dates)
     if dry_run:
         return report
 
@@ -316,6 +321,69 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     known = patients.drop(new_patients.index)["patient_id"]
     _refresh_patient_diagnosis(session, [int(i) for i in known])
     return report
+
+
+SLIP_WINDOW_DAYS = 14
+
+
+def _single_nerve_visits(batch: MeasurementBatch, written: pd.DataFrame) -> list[Problem]:
+    """A visit of one nerve (one side of one nerve, motor and/or sensory) is imported, with a warning: the
+    criteria sets need several nerves, so it may be part of a study exported in pieces."""
+    nerves = batch.nerve_tests.drop_duplicates(["patient", "visit_date", "nerve", "side"])
+    counts = nerves.groupby(["patient", "visit_date"]).agg(count=("nerve", "size"), nerve=("nerve", "first"), side=("side", "first"))
+    single = written.merge(counts[counts["count"] == 1].reset_index(), on=["patient", "visit_date"], how="inner")
+    return [
+        Problem(
+            int(getattr(row, ROW)),
+            "nerve",
+            None,
+            f"the visit of {row.patient} on {row.visit_date.isoformat()} holds a single nerve ({row.nerve.replace('_', ' ')} "
+            f"{row.side}); the criteria need several nerves — check that the whole study is in the file",
+        )
+        for row in single.itertuples()
+    ]
+
+
+def _swapped(day: dt.date) -> dt.date | None:
+    """The date with day and month exchanged, when that is another real date (2024-02-12 → 2024-12-02)."""
+    if day.day == day.month or day.day > 12:
+        return None
+    try:
+        return dt.date(day.year, day.day, day.month)
+    except ValueError:
+        return None
+
+
+def _date_slips(written: pd.DataFrame, file_visits: pd.DataFrame, stored: pd.DataFrame) -> list[Problem]:
+    """A visit within 14 days of another visit of the same patient, whose day and month swapped would be a real
+    date, may carry a date-entry slip: imported, with a warning naming both dates."""
+    candidates = [(row, _swapped(row.visit_date)) for row in written.itertuples()]
+    candidates = [(row, swapped) for row, swapped in candidates if swapped is not None]
+    if not candidates:
+        return []
+    dates: dict[str, set[dt.date]] = {}
+    for frame in (file_visits, stored):
+        for patient, day in zip(frame["patient"], frame["visit_date"]):
+            if isinstance(patient, str):
+                dates.setdefault(patient, set()).add(day)
+    warnings = []
+    for row, swapped in candidates:
+        near = sorted(d for d in dates.get(row.patient, ()) if 0 < abs((d - row.visit_date).days) <= SLIP_WINDOW_DAYS)
+        if not near:
+            continue
+        other = min(near, key=lambda d: abs((d - row.visit_date).days))
+        gap = abs((other - row.visit_date).days)
+        warnings.append(
+            Problem(
+                int(getattr(row, ROW)),
+                "visit_date",
+                None,
+                f"the visit of {row.patient} on {row.visit_date.isoformat()} is {gap} day{'s' if gap != 1 else ''} from "
+                f"their visit on {other.isoformat()}; with day and month swapped it would be {swapped.isoformat()} "
+                "— check the date for an entry slip",
+            )
+        )
+    return warnings
 
 
 def _latest_stated(visits: pd.DataFrame) -> dict[str, pd.Series]:
