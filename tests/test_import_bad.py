@@ -320,6 +320,12 @@ CASES = [
     # invented name-like text, as a clerk might type by mistake
     case("patient-code-name-like", M, cell(ALL, "patient", "Anna Example"), 2, "patient", "never a name or record number"),
     case("patient-code-missing", M, cell(4, "patient", ""), 4, "patient", "required patient code is missing"),
+    # the message names the characters that are not allowed and the allowed ones (issue 10, item 16)
+    case("patient-code-accented-letter", M, cell(ALL, "patient", "MÖ-1"), 2, "patient", "'Ö' is not allowed; a patient code has 1–40 characters: letters A–Z or a–z (without accents), digits 0–9, '.', '_' or '-'"),
+    case("patient-code-space-named", M, cell(ALL, "patient", "T 100"), 2, "patient", "' ' (a space) is not allowed"),
+    case("patient-code-leading-hyphen", M, cell(ALL, "patient", "-T100"), 2, "patient", "it begins with '-'"),
+    case("patient-code-too-long", M, cell(ALL, "patient", "T" * 41), 2, "patient", "it has 41 characters"),
+    case("treatment-patient-code-accented", TR, cell(2, "patient", "DEMO-Ö1"), 2, "patient", "'Ö' is not allowed"),
     # --- amplitudes and responses (DESIGN.md §4.1: mV motor, µV sensory; no response = amplitude 0) ------------
     case("motor-row-with-amplitude-uv", M, both(cell(2, "amplitude_mv", ""), cell(2, "amplitude_uv", "8.1")), 2, "amplitude_uv", "a motor row gives its amplitude in amplitude_mv"),
     case("sensory-row-with-amplitude-mv", M, both(cell(5, "amplitude_uv", ""), cell(5, "amplitude_mv", "22")), 5, "amplitude_mv", "a sensory row gives its amplitude in amplitude_uv"),

@@ -174,17 +174,41 @@ def iso_dates(collect: Collector, column: str, *, required: bool, not_after: dt.
     return parsed
 
 
+CODE_RULE = (
+    "a patient code has 1–40 characters: letters A–Z or a–z (without accents), digits 0–9, '.', '_' or '-', "
+    "and begins with a letter or digit"
+)
+
+
+def _code_fault(code: str) -> str:
+    """What makes ``code`` invalid, in words: the characters not allowed, a wrong first character, the length."""
+    faults = []
+    odd = list(dict.fromkeys(c for c in code if not (c.isascii() and (c.isalnum() or c in "._-"))))
+    if odd:
+        shown = ", ".join("' ' (a space)" if c == " " else repr(c) for c in odd)
+        faults.append(f"{shown} {'is' if len(odd) == 1 else 'are'} not allowed")
+    if code[:1] in (".", "_", "-"):
+        faults.append(f"it begins with {code[0]!r}")
+    if len(code) > 40:
+        faults.append(f"it has {len(code)} characters")
+    return "; ".join(faults)
+
+
 def patient_codes(collect: Collector, column: str = "patient") -> pd.Series:
     raw = text(collect.cells, column)
     empty = (raw == "").to_numpy()
     collect.add(empty, column, "required patient code is missing")
     bad = ~empty & ~raw.str.match(CODE).to_numpy(dtype=bool)
-    collect.add(
-        bad,
-        column,
-        "not a valid patient code; expected 1–40 letters, digits, '.', '_' or '-' (a pseudonymous code, "
-        "never a name or record number)",
-    )
+    if bad.any():
+        faults = map_unique(raw[bad], _code_fault)
+        for fault in pd.unique(faults):
+            mask = np.zeros(len(raw), dtype=bool)
+            mask[np.flatnonzero(bad)[(faults == fault).to_numpy()]] = True
+            collect.add(
+                mask,
+                column,
+                f"not a valid patient code: {fault}; {CODE_RULE} (a pseudonymous code, never a name or record number)",
+            )
     return raw
 
 
