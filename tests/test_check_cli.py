@@ -32,7 +32,7 @@ def test_check_json_follows_the_contract(demo_db, capsys):
     finding = payload["nerves"][0]["findings"][0]
     for key in ("parameter", "value", "limit", "threshold", "status", "source"):
         assert key in finding
-    assert {f["status"] for n in payload["nerves"] for f in n["findings"]} <= {"met", "not_met", "not_evaluable"}
+    assert {f["status"] for n in payload["nerves"] for f in n["findings"]} <= {"met", "not_met", "not_evaluable", "not_applicable"}  # DESIGN.md §5
     assert "qualified clinician" in payload["caution"]
 
 
@@ -113,7 +113,7 @@ def test_annotate_records_wrist_entrapment_and_keeps_history(demo_db, sessions, 
     assert code == 0, err and "right median wrist entrapment" in out
     code, out, _ = run_cli(capsys, "--db", demo_db, "check", "DEMO-01", "--visit", "2023-02-14", "--criteria", "efns-pns-2010-cidp", "--format", "json")
     after = median(json.loads(out))
-    assert after["status"] == "not_evaluable" and "wrist" in after["reason"]
+    assert after["status"] == "not_applicable" and "wrist" in after["reason"]
     with sessions() as session:
         visit = session.scalar(select(Visit).where(Visit.visit_date == dt.date(2023, 2, 14)))
         assert visit.version == 2

@@ -14,7 +14,7 @@ from __future__ import annotations
 import pytest
 
 from criteria_cases import Motor, Sensory, Visit, evaluate, finding, healthy_four_nerves, outcome
-from tracker.criteria.model import MET, NOT_EVALUABLE, NOT_MET, Settings
+from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, Settings
 
 ID = "aan-1991-cidp"
 ULNAR = dict(amplitudes=(9.0, 8.6, 8.4), durations=(5.5, 5.8, 6.0))
@@ -105,7 +105,7 @@ def test_distal_latency_amplitude_switch_at_eighty_percent_of_lln(distal, status
 def test_wrist_entrapment_removes_the_median_latency():
     # AAN 1991 (Neurology 1991) has no such exclusion; project rule shared with the EFNS/PNS sets
     row = finding(evaluate([Visit([Motor("median", dml=7.0, wrist_entrapment=True)])], ID), "median", "dml")
-    assert row["status"] == NOT_EVALUABLE
+    assert row["status"] == NOT_APPLICABLE
     assert "wrist" in row["reason"]
 
 
@@ -139,14 +139,14 @@ def test_absent_f_waves_count_with_a_recordable_cmap():
     # AAN 1991 (Neurology 1991): "F-waves absent" counts for item 4 (no amplitude condition in the text)
     low = evaluate([Visit([Motor("median", f_absent=True, amplitudes=(0.5, 0.4))])], ID)
     assert finding(low, "median", "f_absent")["status"] == MET
-    assert finding(low, "median", "f_latency")["status"] == NOT_EVALUABLE
+    assert finding(low, "median", "f_latency")["status"] == NOT_APPLICABLE
 
 
 def test_absent_f_waves_without_a_motor_response_are_not_counted():
     # project rule: no distal CMAP at all is inexcitability, not an AAN 1991 (Neurology 1991) F-wave finding
     dead = Motor("median", f_absent=True, dml=None, cv=None, amplitudes=(0.0, 0.0))
     row = finding(evaluate([Visit([dead])], ID), "median", "f_absent")
-    assert row["status"] == NOT_EVALUABLE
+    assert row["status"] == NOT_APPLICABLE
     assert "no recordable response" in row["reason"]
 
 
@@ -252,7 +252,7 @@ def test_tibial_block_is_outside_the_item():
     # AAN 1991 (Neurology 1991) names peroneal, median and ulnar segments only
     tibial = Motor("tibial", amplitudes=(10.0, 4.0), durations=(5.5, 6.0), cv=46, segment_mm=400, dml=4.5)
     row = finding(evaluate([Visit([tibial])], ID), "tibial", "cb_td")
-    assert row["status"] == NOT_EVALUABLE
+    assert row["status"] == NOT_APPLICABLE
     assert "only peroneal, median and ulnar" in row["reason"]
 
 

@@ -14,7 +14,7 @@ from __future__ import annotations
 import pytest
 
 from criteria_cases import Motor, Sensory, Visit, evaluate, finding, healthy_four_nerves, outcome
-from tracker.criteria.model import MET, NOT_EVALUABLE, NOT_MET, Settings
+from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, Settings
 from tracker.criteria.thresholds import load
 
 ID = "ean-pns-2021-cidp"
@@ -83,7 +83,7 @@ def test_distal_latency_edge(dml, status):
 # (a) median excluded for neuropathy at the wrist. Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
 def test_wrist_entrapment_removes_the_median_latency():
     row = finding(run([Motor("median", dml=7.0, wrist_entrapment=True)]), "median", "dml")
-    assert row["status"] == NOT_EVALUABLE and "wrist" in row["reason"]
+    assert row["status"] == NOT_APPLICABLE and "wrist" in row["reason"]
 
 
 # (b) CV ≤ 70 % of LLN (median LLN 49 → 34.3 m/s). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
@@ -116,7 +116,7 @@ def test_f_latency_low_cmap_edge(f, status):
 
 
 # (d) absent F counted only with distal CMAP ≥ 20 % of LLN (0.8 mV). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
-@pytest.mark.parametrize("distal, status", [(0.79, NOT_EVALUABLE), (0.8, MET), (0.81, MET)])
+@pytest.mark.parametrize("distal, status", [(0.79, NOT_APPLICABLE), (0.8, MET), (0.81, MET)])
 def test_absent_f_waves_precondition_edge(distal, status):
     row = finding(run([Motor("median", f_absent=True, amplitudes=(distal, 0.7))]), "median", "f_absent")
     assert row["status"] == status
@@ -137,7 +137,7 @@ def test_block_edge(proximal, status):
 
 
 # (e) CB precondition: distal CMAP ≥ 20 % of LLN (0.8 mV). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
-@pytest.mark.parametrize("distal, status", [(0.79, NOT_EVALUABLE), (0.8, MET), (0.81, MET)])
+@pytest.mark.parametrize("distal, status", [(0.79, NOT_APPLICABLE), (0.8, MET), (0.81, MET)])
 def test_block_precondition_edge(distal, status):
     row = finding(run([Motor("median", amplitudes=(distal, 0.3), durations=(5.5, 5.8))]), "median", "cb")
     assert row["status"] == status
@@ -149,7 +149,7 @@ def test_block_precondition_edge(distal, status):
 def test_tibial_block_is_excluded():
     result = run([Motor("tibial", **{**TIBIAL, "amplitudes": (10.0, 4.0)})])  # 60 % fall
     row = finding(result, "tibial", "cb")
-    assert row["status"] == NOT_EVALUABLE and "tibial" in row["reason"]
+    assert row["status"] == NOT_APPLICABLE and "tibial" in row["reason"]
     assert motor(result) == NOT_MET
 
 
@@ -168,7 +168,7 @@ def test_erb_block_across_the_elbow_is_not_evaluable():
     ulnar = Motor("ulnar", dml=2.8, labels=("wrist", "below_elbow", "above_elbow", "axilla", "erb"),
                   amplitudes=(9.0, 8.8, 8.6, 8.4, 3.6), durations=(5.5, 5.6, 5.7, 5.8, 5.9))
     row = finding(run([ulnar]), "ulnar", "cb_erb")
-    assert row["status"] == NOT_EVALUABLE and "entrapment" in row["reason"]
+    assert row["status"] == NOT_APPLICABLE and "entrapment" in row["reason"]
 
 
 def test_erb_block_is_reported_only_where_erbs_point_was_stimulated():
@@ -220,15 +220,17 @@ def test_the_filter_setting_changes_the_verdict():
     assert finding(run([Motor("median", lff=2, durations=(8.0, 8.0))]), "median", "dcmap_duration")["status"] == NOT_MET
 
 
-@pytest.mark.parametrize("lff, words", [(None, "not recorded"), (3.0, "3 Hz")])
-def test_distal_duration_without_a_tabled_filter_is_not_evaluable(lff, words):
+# filter not recorded = want of data (not evaluable); a recorded filter the table has no cut-off for = the item
+# does not apply to that recording (not applicable). Project reading of Van den Bergh et al., Eur J Neurol 2021.
+@pytest.mark.parametrize("lff, words, status", [(None, "not recorded", NOT_EVALUABLE), (3.0, "3 Hz", NOT_APPLICABLE)])
+def test_distal_duration_without_a_tabled_filter_is_not_evaluable(lff, words, status):
     row = finding(run([Motor("median", lff=lff, durations=(12.0, 12.0))]), "median", "dcmap_duration")
-    assert row["status"] == NOT_EVALUABLE and words in row["reason"]
+    assert row["status"] == status and words in row["reason"]
 
 
 def test_distal_duration_of_a_nerve_without_a_cutoff_is_not_evaluable():
     row = finding(run([Motor("radial", amplitudes=(5.0, 4.8), durations=(12.0, 12.0))]), "radial", "dcmap_duration")
-    assert row["status"] == NOT_EVALUABLE and "no distal CMAP duration cut-off" in row["reason"]
+    assert row["status"] == NOT_APPLICABLE and "no distal CMAP duration cut-off" in row["reason"]
 
 
 # ---------------------------------------------------------------- motor combinations (strongly / weakly supportive)
@@ -379,13 +381,13 @@ def test_missing_sensory_values_are_not_evaluable_never_normal():
 def test_an_absent_snap_is_abnormal_not_missing():
     result = run([Sensory("median", amplitude=0, cv=None), Sensory("ulnar", amplitude=0, cv=None)])
     assert finding(result, "median", "snap_amplitude")["status"] == MET
-    assert finding(result, "median", "sensory_cv")["status"] == NOT_EVALUABLE
+    assert finding(result, "median", "sensory_cv")["status"] == NOT_APPLICABLE
     assert sensory(result) == "abnormal_2_nerves"
 
 
 def test_median_with_wrist_entrapment_is_not_counted():
     result = run([Sensory("median", amplitude=10, wrist_entrapment=True), Sensory("ulnar", amplitude=8)])
-    assert finding(result, "median", "snap_amplitude")["status"] == NOT_EVALUABLE
+    assert finding(result, "median", "snap_amplitude")["status"] == NOT_APPLICABLE
     assert sensory(result) == "abnormal_1_nerve"
 
 

@@ -7,7 +7,7 @@ from __future__ import annotations
 import pytest
 
 from criteria_cases import Motor, Sensory, Visit, evaluate, finding, healthy_four_nerves, outcome
-from tracker.criteria.model import MET, NOT_EVALUABLE, NOT_MET
+from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET
 
 ID = "efns-pns-2010-cidp"
 
@@ -40,7 +40,7 @@ def test_one_nerve_is_possible():
 def test_wrist_entrapment_removes_the_median_latency():
     result = evaluate([Visit([Motor("median", dml=7.0, wrist_entrapment=True)])], ID)
     row = finding(result, "median", "dml")
-    assert row["status"] == NOT_EVALUABLE and "wrist" in row["reason"]
+    assert row["status"] == NOT_APPLICABLE and "wrist" in row["reason"]
 
 
 def test_missing_latency_is_not_evaluable_never_normal():
@@ -68,14 +68,14 @@ def test_block_precondition_twenty_percent_of_lln():
     # distal CMAP must be ≥ 20 % of LLN 4.0 mV = 0.8 mV
     below = evaluate([Visit([Motor("median", amplitudes=(0.79, 0.3), durations=(5.5, 5.8))])], ID)
     at = evaluate([Visit([Motor("median", amplitudes=(0.8, 0.3), durations=(5.5, 5.8))])], ID)
-    assert finding(below, "median", "cb")["status"] == NOT_EVALUABLE
+    assert finding(below, "median", "cb")["status"] == NOT_APPLICABLE
     assert "precondition" in finding(below, "median", "cb")["reason"]
     assert finding(at, "median", "cb")["status"] == MET
 
 
 def test_probable_block_excludes_the_tibial_nerve():
     result = evaluate([Visit([Motor("tibial", amplitudes=(10.0, 6.0), durations=(5.5, 6.0), segment_mm=400, cv=46)])], ID)
-    assert finding(result, "tibial", "probable_cb")["status"] == NOT_EVALUABLE
+    assert finding(result, "tibial", "probable_cb")["status"] == NOT_APPLICABLE
     assert "tibial" in finding(result, "tibial", "probable_cb")["reason"]
 
 
@@ -107,7 +107,7 @@ def test_absent_f_waves_need_twenty_percent_of_lln():
     counted = evaluate([Visit([Motor("median", f_absent=True, amplitudes=(0.8, 0.7))])], ID)
     not_counted = evaluate([Visit([Motor("median", f_absent=True, amplitudes=(0.79, 0.7))])], ID)
     assert finding(counted, "median", "f_absent")["status"] == MET
-    assert finding(not_counted, "median", "f_absent")["status"] == NOT_EVALUABLE
+    assert finding(not_counted, "median", "f_absent")["status"] == NOT_APPLICABLE
 
 
 def test_distal_duration_cut_offs_per_nerve():

@@ -142,3 +142,16 @@ def test_the_trace_names_the_stratum_used():
     result = evaluate([Visit([Motor("median", dml=6.2)], age_years=40)], "efns-pns-2010-cidp", limit_rows=pd.concat([rows, young], ignore_index=True))
     source = result.findings[result.findings.item == "dml"].iloc[0]["limit_source"]
     assert source == "invented laboratory limit — stratum: age 18–60 y"
+
+
+@pytest.mark.parametrize("criteria", SETS)
+def test_statuses_are_the_contract_words_and_every_gap_says_why(cohort, criteria):
+    # DESIGN.md §5 (project contract): met / not_met / not_evaluable (want of data) / not_applicable (exclusion,
+    # precondition, pattern); both of the last two always name their reason.
+    from tracker.criteria.model import NOT_APPLICABLE, STATUSES
+
+    result = engine.evaluate(*frames(cohort), limits.default_limits(), [criteria])[criteria]
+    statuses = result.findings["status"]
+    assert set(statuses) <= set(STATUSES)
+    gaps = result.findings[statuses.isin([NOT_EVALUABLE, NOT_APPLICABLE])]
+    assert gaps["reason"].map(lambda r: isinstance(r, str) and r.strip() != "").all()

@@ -14,7 +14,7 @@ from __future__ import annotations
 import pytest
 
 from criteria_cases import Motor, Sensory, Visit, evaluate, finding, healthy_four_nerves, outcome
-from tracker.criteria.model import MET, NOT_EVALUABLE, NOT_MET, Settings
+from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, Settings
 from tracker.criteria.sets import efns_pns_2010_mmn
 
 ID = "efns-pns-2010-mmn"
@@ -56,7 +56,7 @@ def test_duration_increase_of_thirty_percent(proximal_duration, level):
     assert dispersed == (MET if level == "probable" else NOT_MET)
 
 
-@pytest.mark.parametrize("distal, status", [(1.2, NOT_EVALUABLE), (1.21, MET)])
+@pytest.mark.parametrize("distal, status", [(1.2, NOT_APPLICABLE), (1.21, MET)])
 def test_precondition_twenty_percent_of_lln(distal, status):
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): distal CMAP of the segment > 20 % of LLN and > 1 mV.
     # Ulnar LLN 6.0 mV: 20 % = 1.2 mV, which binds here (above 1 mV). Area 3.0 → 1.2 = 60 %.
@@ -67,7 +67,7 @@ def test_precondition_twenty_percent_of_lln(distal, status):
         assert "precondition" in row["reason"]
 
 
-@pytest.mark.parametrize("distal, status", [(1.0, NOT_EVALUABLE), (1.01, MET)])
+@pytest.mark.parametrize("distal, status", [(1.0, NOT_APPLICABLE), (1.01, MET)])
 def test_precondition_one_millivolt(distal, status):
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): > 1 mV. Median LLN 4.0 mV: 20 % = 0.8 mV, so 1 mV binds.
     row = finding(evaluate([Visit([median(areas=(3.0, 1.2), amplitudes=(distal, 0.4))])], ID), "median", "definite_cb")
@@ -109,7 +109,7 @@ def test_probable_long_segment_block_is_for_upper_limb_nerves_only():
     # of definite block and not eligible for probable (i), which is for upper-limb nerves
     fibular = Motor("fibular", amplitudes=(5.0, 3.0, 3.0), areas=(12.5, 7.5, 7.5), durations=(5.5, 5.8, 5.9), dml=4.5, cv=48)
     result = evaluate([Visit([fibular])], ID)
-    assert finding(result, "fibular", "probable_cb_long")["status"] == NOT_EVALUABLE
+    assert finding(result, "fibular", "probable_cb_long")["status"] == NOT_APPLICABLE
     assert "upper-limb" in finding(result, "fibular", "probable_cb_long")["reason"]
     assert outcome(result) == "not_met"
 
@@ -129,7 +129,7 @@ def test_precondition_binds_the_probable_items(monkeypatch):
     # it binds the probable items too. Median CMAP 1.0 mV, area 40 % over the forearm.
     nerve = median(areas=(2.5, 1.5), amplitudes=(1.0, 0.6))
     bound = evaluate([Visit([nerve])], ID)
-    assert finding(bound, "median", "probable_cb_long")["status"] == NOT_EVALUABLE
+    assert finding(bound, "median", "probable_cb_long")["status"] == NOT_APPLICABLE
     assert outcome(bound) == "not_met"
     monkeypatch.setattr(efns_pns_2010_mmn, "PRECONDITION_BINDS_PROBABLE", False)
     unbound = evaluate([Visit([nerve])], ID)
@@ -167,7 +167,7 @@ def test_tibial_nerve_is_not_named_for_definite_block():
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): definite block "whatever the segment length (median, ulnar, peroneal)"
     tibial = Motor("tibial", amplitudes=(10.0, 4.0), areas=(25.0, 10.0), durations=(5.5, 6.0), cv=46, segment_mm=400, dml=4.5)
     result = evaluate([Visit([tibial])], ID)
-    assert finding(result, "tibial", "definite_cb")["status"] == NOT_EVALUABLE
+    assert finding(result, "tibial", "definite_cb")["status"] == NOT_APPLICABLE
     assert outcome(result) == "not_met"
 
 

@@ -82,7 +82,7 @@ def test_demo_06_last_visit_meets_no_item(demo_db, capsys):
     result = check(capsys, demo_db, "DEMO-06", "2025-09-30", "efns-pns-2010-cidp")
     assert result["outcome"] == "not_met"
     median_dml = next(f for n in result["nerves"] if n["nerve"] == "median" and n["modality"] == "motor" for f in n["findings"] if f["item"] == "dml")
-    assert median_dml["status"] == "not_evaluable" and "wrist" in median_dml["reason"]
+    assert median_dml["status"] == "not_applicable" and "wrist" in median_dml["reason"]
     assert result["closest_miss"]  # the nearest not-met finding is named
 
 

@@ -504,7 +504,7 @@ def test_every_criteria_set_gives_outcomes_and_verdicts(demo):
         verdicts = [c for c in nerves.columns if c.startswith(prefix) and "__" in c]
         assert verdicts, criteria_id
     statuses = set(pd.unique(nerves.filter(like="__").to_numpy().ravel()))
-    assert {s for s in statuses if isinstance(s, str)} == {"met", "not_met", "not_evaluable"}
+    assert {s for s in statuses if isinstance(s, str)} == {"met", "not_met", "not_evaluable", "not_applicable"}  # DESIGN.md §5
     # EFNS/PNS 2010 outcome values (DESIGN.md §5) and the hand-checked definite of DEMO-01's first visit.
     assert set(visits["efns2010_cidp__outcome"].dropna()) <= {"definite", "probable", "possible", "not_met"}
     ids = demo.export_ids()

@@ -9,7 +9,7 @@ from tracker import CAUTION
 from tracker.criteria.thresholds import COMPARATORS
 from tracker.services.evaluation import VisitCheck, to_json
 
-VERDICT = {"met": "● met", "not_met": "○ not met", "not_evaluable": "? not evaluable"}
+VERDICT = {"met": "● met", "not_met": "○ not met", "not_evaluable": "? not evaluable", "not_applicable": "– not applicable"}
 TITLES = {
     "efns-pns-2010-cidp": "EFNS/PNS 2010 CIDP",
     "ean-pns-2021-cidp": "EAN/PNS 2021 CIDP",

@@ -7,6 +7,10 @@ from dataclasses import dataclass, field
 import pandas as pd
 
 MET, NOT_MET, NOT_EVALUABLE = "met", "not_met", "not_evaluable"
+# The item does not apply to this nerve (published exclusion or precondition, entrapment segment, not part
+# of the pattern, no recordable response): not want of data, so it never leaves an outcome undecided.
+NOT_APPLICABLE = "not_applicable"
+STATUSES = (MET, NOT_MET, NOT_EVALUABLE, NOT_APPLICABLE)
 
 # Columns of a findings table (one row per nerve × parameter × criteria item).
 FINDING_COLUMNS = [

@@ -54,6 +54,15 @@ def _limit_name(reference: pd.Series, factor: pd.Series) -> np.ndarray:
     return rules.per_distinct(lambda r, f: f"{f * 100:g} % of {LIMIT_NAMES.get(r, r)}" if r in LIMIT_NAMES else "fixed", reference, factor)
 
 
+NO_ROW = "the criterion gives no threshold for this nerve"
+NO_RESPONSE_DISTAL = "no recordable response at the distal site"
+
+
+def no_row(rows: pd.DataFrame) -> tuple[np.ndarray, str]:
+    """Rows of a nerve the criterion has no threshold for: the item does not apply (not want of data)."""
+    return np.isnan(rows["value"].to_numpy(dtype=float)), NO_ROW
+
+
 def _excluded(frame: pd.DataFrame, table: ThresholdTable, item: str) -> tuple[np.ndarray, str]:
     excluded = {n for r in table.rows if r.item == item for n in r.excluded_nerves}
     mask = frame["nerve"].isin(excluded).to_numpy()
@@ -71,10 +80,11 @@ def distal_latency(nerves, table: ThresholdTable, item: str, settings: Settings,
         comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
         limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
         **limit_provenance(frame, "uln_distal_latency_ms"),
-        blocked=rules.common_blocks(frame, settings)
-        + [
+        blocked=rules.common_blocks(frame, settings),
+        inapplicable=[
             (wrist, "median distal latency not counted: neuropathy at the wrist judged by the clinician"),
-            (frame["no_response"].to_numpy(dtype=bool), "no recordable response at the distal site"),
+            (frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE_DISTAL),
+            no_row(rows),
         ],
     )
 
@@ -90,8 +100,8 @@ def velocity(nerves, table: ThresholdTable, item: str, settings: Settings, *, cr
         comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
         limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
         segment=frame[f"{column}_segment"].to_numpy(dtype=object), requirement=requirement, **limit_provenance(frame, "lln_cv"),
-        blocked=rules.common_blocks(frame, settings)
-        + [(frame["no_response"].to_numpy(dtype=bool), "no recordable response")],
+        blocked=rules.common_blocks(frame, settings),
+        inapplicable=[(frame["no_response"].to_numpy(dtype=bool), "no recordable response"), no_row(rows)],
     )
 
 
@@ -123,9 +133,9 @@ def f_latency(nerves, table: ThresholdTable, item: str, low_item: str, switch_it
         source=normal_rows["source"], source_status=normal_rows["status"], **limit_provenance(frame, "uln_f_latency_ms"),
         blocked=rules.common_blocks(frame, settings)
         + [
-            (absent, "F-waves absent (judged by the absent-F item)"),
             (~known & ~absent & ~np.isnan(frame["f_latency_ms"].to_numpy(dtype=float)), "distal CMAP amplitude or its LLN missing: the F-wave threshold cannot be chosen"),
         ],
+        inapplicable=[(absent, "F-waves absent (judged by the absent-F item)"), no_row(normal_rows)],
     )
 
 
@@ -143,14 +153,15 @@ def f_absent(nerves, table: ThresholdTable, item: str, settings: Settings, *, cr
         value=amplitude, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
         limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
         requirement=absent, **limit_provenance(frame, "lln_amplitude"),
-        blocked=rules.common_blocks(frame, settings)
-        + [
-            (frame["no_response"].to_numpy(dtype=bool), "no recordable response at the distal site"),
-            (~absent & ~present, "F-waves not recorded"),
+        blocked=rules.common_blocks(frame, settings) + [(~absent & ~present, "F-waves not recorded")],
+        inapplicable=[
+            (frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE_DISTAL),
             (absent & ~precondition & ~np.isnan(amplitude) & ~np.isnan(threshold), "amplitude precondition failed: distal CMAP below the required fraction of LLN"),
+            no_row(rows),
         ],
     )
-    findings.loc[present & ~absent, "reason"] = "F-waves present"
+    # Only where the item was judged (a cold limb excluded by the setting keeps its own reason).
+    findings.loc[present & ~absent & (findings["status"] == "not_met").to_numpy(), "reason"] = "F-waves present"
     return findings
 
 
@@ -196,6 +207,8 @@ def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: st
         lambda: frame["test_key"].isin(paths.loc[eligible_paths(paths, settings.block_path, exclude_labels), "test_key"].unique()).to_numpy(),
     )
     no_amplitude = np.isnan(amplitude) & ~no_response
+    # Proximal sites recorded, but every path to them crosses an entrapment (or unlabelled) segment.
+    any_path = frame["test_key"].isin(paths["test_key"].unique()).to_numpy()
     # The failed-precondition text is only read where that block applies: written there alone.
     failing = ~precondition & ~no_path & ~np.isnan(pre_threshold) & ~no_amplitude
     failed = np.empty(len(frame), dtype=object)
@@ -209,13 +222,17 @@ def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: st
         limit_name="", source=rows["source"], source_status=rows["status"], segment=best["path"].to_numpy(dtype=object),
         blocked=rules.common_blocks(frame, settings)
         + [
-            (excluded, why),
-            (no_path & ~excluded & ~no_response & ~has_site, "no proximal stimulation outside entrapment sites"),
-            (no_path & ~excluded & ~no_response & has_site, "amplitude (or area) missing at a site"),
-            (no_response & ~excluded, "no recordable response at the distal site"),
-            (failing, failed),
-            (no_amplitude & ~no_path & ~excluded, "distal CMAP amplitude missing (needed for the precondition)"),
+            (no_path & ~no_response & ~has_site & ~any_path, "no proximal stimulation recorded"),
+            (no_path & ~no_response & has_site, "amplitude (or area) missing at a site"),
+            (no_amplitude & ~no_path, "distal CMAP amplitude missing (needed for the precondition)"),
             (np.isnan(pre_threshold) & ~no_path, "no LLN for the distal CMAP precondition"),
+        ],
+        inapplicable=[
+            (excluded, why),
+            (no_response, NO_RESPONSE_DISTAL),
+            (no_path & ~has_site & any_path, "no proximal stimulation outside entrapment sites"),
+            (failing, failed),
+            no_row(rows),
         ],
     )
 
@@ -230,7 +247,8 @@ def dispersion(nerves, paths, table: ThresholdTable, item: str, settings: Settin
         frame, criteria=criteria, item=item, parameter="temporal dispersion (duration increase)", unit="%",
         value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
         limit_name="", source=rows["source"], source_status=rows["status"], segment=best["path"].to_numpy(dtype=object),
-        blocked=rules.common_blocks(frame, settings) + [(np.isnan(value) & frame["no_response"].to_numpy(dtype=bool), "no recordable response")],
+        blocked=rules.common_blocks(frame, settings),
+        inapplicable=[(np.isnan(value) & frame["no_response"].to_numpy(dtype=bool), "no recordable response"), no_row(rows)],
     )
 
 
@@ -243,5 +261,6 @@ def distal_duration(nerves, table: ThresholdTable, item: str, settings: Settings
         value=frame["distal_duration_ms"].to_numpy(dtype=float), threshold=threshold,
         comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
         limit_name=np.where(np.isnan(threshold), "", "fixed cut-off"), source=rows["source"], source_status=rows["status"],
-        blocked=rules.common_blocks(frame, settings) + [(frame["no_response"].to_numpy(dtype=bool), "no recordable response at the distal site")],
+        blocked=rules.common_blocks(frame, settings),
+        inapplicable=[(frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE_DISTAL), no_row(rows)],
     )

@@ -7,7 +7,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from tracker.criteria.model import FINDING_COLUMNS, MET, NOT_EVALUABLE, NOT_MET, Settings
+from tracker.criteria.model import FINDING_COLUMNS, MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, Settings
 from tracker.criteria.thresholds import COMPARATORS
 from tracker.domain.conduction import quantise_array
 
@@ -89,13 +89,16 @@ def item_findings(
     blocked: list[tuple[np.ndarray, str | np.ndarray]] | None = None,
     limit_source: pd.Series | np.ndarray | str | None = None,
     limit_status: pd.Series | np.ndarray | str | None = None,
+    inapplicable: list[tuple[np.ndarray, str | np.ndarray]] | None = None,
 ) -> pd.DataFrame:
     """Findings for one item over the rows of ``frame`` (``visit_key``, ``nerve``, ``side``, ``modality``).
 
-    Status, in order: ``not_evaluable`` where a ``blocked`` mask is true (its reason: excluded nerve,
-    entrapment, cold limb, failed precondition…); ``not_evaluable`` where the value or the threshold is
-    missing; otherwise ``met`` when the comparison holds (and ``requirement``, if given, is true),
-    else ``not_met``.
+    Status, in order: ``not_applicable`` where an ``inapplicable`` mask is true (its reason: excluded
+    nerve, entrapment, failed published precondition, not part of the pattern, no recordable response);
+    ``not_evaluable`` where a ``blocked`` mask is true (want of usable data: value or limit missing, cold
+    limb excluded…); ``not_evaluable`` where the value or the threshold is missing; otherwise ``met`` when
+    the comparison holds (and ``requirement``, if given, is true), else ``not_met``. In each list the first
+    mask that holds gives the reason.
     """
     n = len(frame)
     # Copies: these arrays become columns of the findings frame as they are (see the end).
@@ -107,7 +110,7 @@ def item_findings(
         holds &= np.asarray(requirement, dtype=bool)
     # Status and reason as small integer codes into the few distinct words, turned into text once at the
     # end (assigning strings into object arrays mask by mask costs more than the comparisons).
-    words = [MET, NOT_MET, NOT_EVALUABLE]
+    words = [MET, NOT_MET, NOT_EVALUABLE, NOT_APPLICABLE]
     status_code = np.where(holds, 0, 1).astype(np.int8)
     reasons = ["", "no normal limit or threshold for this nerve", "value missing"]
     reason_code = np.zeros(n, dtype=np.int32)
@@ -119,9 +122,11 @@ def item_findings(
     reason_code[missing] = 2
     # Reasons given row by row (an array): code -1, the text kept aside.
     own_reason: np.ndarray | None = None
-    for mask, why in reversed(blocked or []):
+    # Inapplicable masks last, so that they override every want of data.
+    masks = [(mask, why, 2) for mask, why in reversed(blocked or [])] + [(mask, why, 3) for mask, why in reversed(inapplicable or [])]
+    for mask, why, code in masks:
         mask = np.asarray(mask, dtype=bool)
-        status_code[mask] = 2
+        status_code[mask] = code
         if isinstance(why, np.ndarray):
             if own_reason is None:
                 own_reason = np.empty(n, dtype=object)

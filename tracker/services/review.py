@@ -8,7 +8,7 @@ from tracker.criteria.thresholds import COMPARATORS
 from tracker.domain.plausibility import ranges
 from tracker.services.records import VisitRecord
 
-STATUS_WORDS = {"met": "▲ met", "not_met": "○ not met", "not_evaluable": "? not evaluable"}
+STATUS_WORDS = {"met": "▲ met", "not_met": "○ not met", "not_evaluable": "? not evaluable", "not_applicable": "– not applicable"}
 
 
 def measurement_tables(visit: VisitRecord) -> tuple[pd.DataFrame, pd.DataFrame]:

@@ -67,8 +67,6 @@ NO_STANDARD_SITE = "no stimulation at the proximal end of the standard segment"
 F_ABSENT_ELSEWHERE = "F-waves absent (judged by the absent-F item)"
 F_PRESENT = "F-waves present (judged by the F-latency item)"
 F_NOT_RECORDED = "F-waves not recorded"
-# Not-evaluable reasons that more data would not change (the nerve can never meet the item as studied).
-SETTLED = {NO_RESPONSE, WRIST, NOT_A_BLOCK_NERVE, F_ABSENT_ELSEWHERE, "cold limb excluded (setting)"}
 
 
 def _editable(frame: pd.DataFrame, *columns: str) -> pd.DataFrame:
@@ -97,7 +95,7 @@ def _switched(frame: pd.DataFrame, table: ThresholdTable, item: str, low_item: s
     return threshold, normal, names, known
 
 
-def _switched_item(nerves, table, settings, *, item, low_item, parameter, unit, value_column, limit_column, segment=None, extra_blocks=()):
+def _switched_item(nerves, table, settings, *, item, low_item, parameter, unit, value_column, limit_column, segment=None, extra_blocks=(), not_applicable=()):
     frame = p.motor(nerves)
     limit = frame[limit_column].to_numpy(dtype=float)
     value = frame[value_column].to_numpy(dtype=float)
@@ -109,9 +107,9 @@ def _switched_item(nerves, table, settings, *, item, low_item, parameter, unit, 
         source=rows["source"], source_status=rows["status"], segment=segment,
         **p.limit_provenance(frame, limit_column),
         blocked=rules.common_blocks(frame, settings)
-        + [(no_response, NO_RESPONSE)]
         + [(mask(frame), why) for mask, why in extra_blocks]
         + [(~known & ~np.isnan(value) & ~no_response, SWITCH_UNKNOWN)],
+        inapplicable=[(no_response, NO_RESPONSE)] + [(mask(frame), why) for mask, why in not_applicable],
     )
 
 
@@ -127,7 +125,7 @@ def distal_latency(nerves, table, settings):
         return (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(bool).to_numpy()
 
     return _switched_item(nerves, table, settings, item="dml", low_item="dml_low_cmap", parameter="distal latency", unit="ms",
-                          value_column="distal_latency_ms", limit_column="uln_distal_latency_ms", extra_blocks=[(wrist, WRIST)])
+                          value_column="distal_latency_ms", limit_column="uln_distal_latency_ms", not_applicable=[(wrist, WRIST)])
 
 
 def f_latency(nerves, table, settings):
@@ -135,7 +133,7 @@ def f_latency(nerves, table, settings):
         return frame["f_absent"].to_numpy(dtype=bool)
 
     return _switched_item(nerves, table, settings, item="f_latency", low_item="f_latency_low_cmap", parameter="F-wave latency", unit="ms",
-                          value_column="f_latency_ms", limit_column="uln_f_latency_ms", extra_blocks=[(absent, F_ABSENT_ELSEWHERE)])
+                          value_column="f_latency_ms", limit_column="uln_f_latency_ms", not_applicable=[(absent, F_ABSENT_ELSEWHERE)])
 
 
 def f_absent(nerves, table, settings):
@@ -154,9 +152,9 @@ def f_absent(nerves, table, settings):
         blocked=rules.common_blocks(frame, settings)
         + [
             (~absent & ~present, F_NOT_RECORDED),
-            (absent & frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE),
-            (absent & np.isnan(amplitude), "distal CMAP amplitude missing: absent F-waves cannot be interpreted"),
+            (absent & np.isnan(amplitude) & ~frame["no_response"].to_numpy(dtype=bool), "distal CMAP amplitude missing: absent F-waves cannot be interpreted"),
         ],
+        inapplicable=[(absent & frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE)],
     )
     findings = _editable(findings, "status", "reason")
     cold = (findings["reason"] == "cold limb excluded (setting)").to_numpy()
@@ -185,8 +183,8 @@ def block_or_dispersion(nerves, paths, table, settings):
         frame, criteria=ID, item="cb_td", parameter="block or dispersion (negative-peak area or amplitude drop)", unit="%",
         value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
         limit_name="", source=rows["source"], source_status=rows["status"], segment=seg["segment"].to_numpy(dtype=object),
-        blocked=rules.common_blocks(frame, settings)
-        + [(~block_nerve, NOT_A_BLOCK_NERVE), (no_response, NO_RESPONSE), (no_site & ~no_response, NO_STANDARD_SITE)],
+        blocked=rules.common_blocks(frame, settings) + [(no_site & ~no_response, NO_STANDARD_SITE)],
+        inapplicable=[(~block_nerve, NOT_A_BLOCK_NERVE), (no_response, NO_RESPONSE)],
     )
     status = findings["status"].to_numpy(dtype=object)
     # The details replace the reason of evaluable findings only; each part is written once per distinct value.
@@ -241,7 +239,7 @@ def _item_counts(found: pd.DataFrame, items: tuple[str, ...], settings: Settings
             "visit_key": part["visit_key"].to_numpy(),
             "identity": rules.nerve_identity(part, settings).to_numpy(),
             "met": status == MET,
-            "wanting": (status == NOT_EVALUABLE) & ~part["reason"].isin(SETTLED).to_numpy(dtype=bool),
+            "wanting": status == NOT_EVALUABLE,
         }
     ).groupby(["visit_key", "identity"])[["met", "wanting"]].any()
     per_visit = pd.DataFrame({"met": per_nerve["met"], "open": per_nerve["wanting"] & ~per_nerve["met"]}).groupby(level="visit_key").sum()

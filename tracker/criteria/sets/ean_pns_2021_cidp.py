@@ -112,10 +112,10 @@ def distal_duration(nerves: pd.DataFrame, table: ThresholdTable, settings: Setti
         value=frame["distal_duration_ms"].to_numpy(dtype=float), threshold=threshold, comparator=comparator,
         limit=np.full(len(frame), np.nan), limit_name=names, source=rows["source"], source_status=rows["status"],
         blocked=rules.common_blocks(frame, settings)
-        + [
+        + [(no_filter, f"low-frequency filter setting not recorded: the cut-off depends on it ({filters} Hz)")],
+        inapplicable=[
             (frame["no_response"].to_numpy(dtype=bool), "no recordable response"),
             (~in_table, "no distal CMAP duration cut-off for this nerve"),
-            (no_filter, f"low-frequency filter setting not recorded: the cut-off depends on it ({filters} Hz)"),
             (other_filter, other_reason),
         ],
     )
@@ -140,7 +140,7 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     frame = p.sensory(nerves)
     frame = frame[frame["nerve"].isin(SENSORY_NERVES)]
     no_response = frame["no_response"].to_numpy(dtype=bool)
-    base = rules.common_blocks(frame, settings) + [(_wrist(frame), WRIST)]
+    base = rules.common_blocks(frame, settings)
     parts = []
     for item, parameter, unit, value, limit_column, limit_label in (
         ("snap_amplitude", "SNAP amplitude", "µV", "distal_amplitude", "lln_amplitude", "LLN"),
@@ -150,13 +150,13 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
         limit = frame[limit_column].to_numpy(dtype=float)
         rows, threshold = _scaled(table, item, frame, limit)
         # An absent SNAP is a finding for the amplitude (0 < LLN); latency and velocity cannot be measured.
-        blocked = base if item == "snap_amplitude" else base + [(no_response, "no recordable SNAP (judged by the amplitude item)")]
+        inapplicable = [(_wrist(frame), WRIST)] + ([] if item == "snap_amplitude" else [(no_response, "no recordable SNAP (judged by the amplitude item)")])
         parts.append(
             rules.item_findings(
                 frame, criteria=ID, item=item, parameter=parameter, unit=unit, value=frame[value].to_numpy(dtype=float),
                 threshold=threshold, comparator=rows["comparator"].fillna("lt" if limit_label == "LLN" else "gt").to_numpy(dtype=object),
                 limit=limit, limit_name=limit_label, source=rows["source"], source_status=rows["status"],
-                **p.limit_provenance(frame, limit_column), blocked=blocked,
+                **p.limit_provenance(frame, limit_column), blocked=base, inapplicable=inapplicable,
             )
         )
     return pd.concat(parts, ignore_index=True)
@@ -185,7 +185,8 @@ def sensory_cidp_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFr
         limit=lln_cv, limit_name=names, source=normal_rows["source"], source_status=normal_rows["status"],
         **p.limit_provenance(frame, "lln_cv"),
         blocked=rules.common_blocks(frame, settings)
-        + [(wrist, WRIST), (no_response, "no recordable SNAP"), (~known & ~no_response, "SNAP amplitude or its LLN missing: the threshold cannot be chosen")],
+        + [(~known & ~no_response, "SNAP amplitude or its LLN missing: the threshold cannot be chosen")],
+        inapplicable=[(wrist, WRIST), (no_response, "no recordable SNAP")],
     )
     # Sural sparing: the median/radial rows ask "below LLN", the sural row asks "at or above LLN".
     sparing = table.one("sural_sparing")
@@ -198,7 +199,7 @@ def sensory_cidp_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFr
                 pattern, criteria=ID, item=item, parameter="SNAP amplitude (sural-sparing pattern)", unit="µV",
                 value=pattern["distal_amplitude"].to_numpy(dtype=float), threshold=sparing.value * lln, comparator=comparator,
                 limit=lln, limit_name="LLN", source=sparing.source, source_status=sparing.status,
-                **p.limit_provenance(pattern, "lln_amplitude"), blocked=rules.common_blocks(pattern, settings) + [(_wrist(pattern), WRIST)],
+                **p.limit_provenance(pattern, "lln_amplitude"), blocked=rules.common_blocks(pattern, settings), inapplicable=[(_wrist(pattern), WRIST)],
             )
         )
     return pd.concat(parts, ignore_index=True)
@@ -210,7 +211,7 @@ def _nerve_table(findings: pd.DataFrame, settings: Settings, keys: pd.Index, sta
     """Boolean table indexed by (visit_key, nerve identity), one column per item: the item has ``status``
     there (any judged status — met or not met — when ``status`` is None)."""
     statuses = findings["status"].to_numpy(dtype=object)
-    chosen = findings[statuses == status] if status else findings[statuses != NOT_EVALUABLE]
+    chosen = findings[statuses == status] if status else findings[(statuses == MET) | (statuses == NOT_MET)]
     if chosen.empty:
         return pd.DataFrame(index=pd.MultiIndex.from_arrays([[], []], names=["visit_key", "identity"]))
     rows = pd.DataFrame(
@@ -397,7 +398,7 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     # Sensory CIDP items only for visits recorded with the sensory phenotype (elsewhere they would be noise).
     cidp_sensory = sensory_cidp_findings(nerves[nerves["visit_key"].isin(phenotypes.index[phenotypes == "sensory"])], settings)
     level, motor_rule = motor_levels(_nerve_table(motor, settings, keys, MET), keys)
-    motor_judged = keys.isin(motor.loc[motor["status"].to_numpy(dtype=object) != NOT_EVALUABLE, "visit_key"].unique())
+    motor_judged = keys.isin(motor.loc[np.isin(motor["status"].to_numpy(dtype=object), [MET, NOT_MET]), "visit_key"].unique())
     abnormal, normal = sensory_counts(sensory, settings, keys)
     cidp_met, cidp_text = sensory_cidp(cidp_sensory, settings, keys)
     # Visits share few combinations of these inputs: each combination is decided once.

@@ -50,7 +50,8 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
         value=frame["sensory_cv"].to_numpy(dtype=float), threshold=threshold, comparator="lt", limit=limit,
         limit_name=names, source=normal.source, source_status=normal.status, **p.limit_provenance(frame, "lln_cv"),
         blocked=rules.common_blocks(frame, settings)
-        + [(frame["no_response"].to_numpy(dtype=bool), "no recordable SNAP"), (~known & ~frame["no_response"].to_numpy(dtype=bool), "SNAP amplitude or its LLN missing")],
+        + [(~known & ~frame["no_response"].to_numpy(dtype=bool), "SNAP amplitude or its LLN missing")],
+        inapplicable=[(frame["no_response"].to_numpy(dtype=bool), "no recordable SNAP")],
     )
     # Sural sparing: median (not explained by the wrist) or radial SNAP below LLN, sural SNAP normal.
     sparing = table.one("sural_sparing")
@@ -63,8 +64,8 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
         frame, criteria=ID, item="snap_reduced", parameter="SNAP amplitude", unit="µV", value=amplitude, threshold=lln,
         comparator=np.where(is_sural, "ge", "lt"), limit=lln, limit_name="LLN", source=sparing.source, source_status=sparing.status,
         **p.limit_provenance(frame, "lln_amplitude"),
-        blocked=rules.common_blocks(frame, settings)
-        + [(wrist, "median SNAP not counted: neuropathy at the wrist judged by the clinician"), (frame["nerve"] == "ulnar", "not part of the sural-sparing pattern")],
+        blocked=rules.common_blocks(frame, settings),
+        inapplicable=[(wrist, "median SNAP not counted: neuropathy at the wrist judged by the clinician"), ((frame["nerve"] == "ulnar").to_numpy(), "not part of the sural-sparing pattern")],
     )
     snap.loc[is_sural, "item"] = "sural_normal"
     del reduced
@@ -120,7 +121,7 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
 
     met = status == MET
     supportive = pd.Series(NOT_EVALUABLE, index=keys, dtype=object)
-    supportive[any_where(status != NOT_EVALUABLE)] = NOT_MET
+    supportive[any_where((status == MET) | (status == NOT_MET))] = NOT_MET
     hit = pd.Series(
         any_where(met & (item == "sensory_cv")) | (any_where(met & (item == "snap_reduced")) & any_where(met & (item == "sural_normal"))),
         index=keys,

@@ -44,7 +44,7 @@ import pandas as pd
 
 from tracker.criteria import parameters as p
 from tracker.criteria import rules
-from tracker.criteria.model import MET, NOT_EVALUABLE, NOT_MET, SetResult, Settings
+from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, SetResult, Settings
 from tracker.criteria.thresholds import load
 
 ID = "efns-pns-2010-mmn"
@@ -58,8 +58,6 @@ NOT_UPPER = "not an upper-limb nerve (probable block (i) is for upper-limb nerve
 SHORT = "short segment (probable block (i) needs a long segment)"
 PRECONDITION = "amplitude precondition failed: CMAP at the distal end of the segment not > 20 % of LLN and > 1 mV"
 NO_PROXIMAL = "no proximal stimulation: block cannot be assessed"
-# Reasons that more data could change (prefixes).
-WANTING = ("CMAP at the distal end of the segment or its LLN missing", "negative-peak area not recorded", "duration not measured", "value missing")
 
 
 def pct(value: float, sign: bool = False) -> str:
@@ -128,13 +126,11 @@ def segment_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settin
         rows = table.per_nerve(name, seg["nerve"])
         threshold = rows["value"].to_numpy(dtype=float)
         reaches = rules.compare(area, threshold, rows["comparator"].to_numpy(dtype=object))
-        blocked = (
-            rules.common_blocks(seg, settings)
-            + [(kind == "entrapment", ENTRAPMENT), (~np.isin(kind, ["standard", "proximal", "entrapment"]), UNKNOWN)]
-            + scope
-        )
+        blocked = rules.common_blocks(seg, settings) + [(~np.isin(kind, ["standard", "proximal", "entrapment"]), UNKNOWN)]
+        inapplicable = [(kind == "entrapment", ENTRAPMENT)] + scope
         if binds_precondition:
-            blocked += [(failed, PRECONDITION), (unknown_pre, "CMAP at the distal end of the segment or its LLN missing: the amplitude precondition cannot be checked")]
+            inapplicable += [(failed, PRECONDITION)]
+            blocked += [(unknown_pre, "CMAP at the distal end of the segment or its LLN missing: the amplitude precondition cannot be checked")]
         blocked += [(np.isnan(area), area_reason)]
         blocked += [(reaches & no_duration, "duration not measured: needed once the area criterion is reached")]
         found = rules.item_findings(
@@ -144,7 +140,7 @@ def segment_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settin
             segment=seg["segment"].to_numpy(dtype=object),
             requirement=requirement & (precondition if binds_precondition else True),
             limit_source=seg.get("lln_amplitude_source"), limit_status=seg.get("lln_amplitude_status"),
-            blocked=blocked,
+            blocked=blocked, inapplicable=inapplicable,
         )
         status = found["status"].to_numpy(dtype=object)
         reason = found["reason"].to_numpy(dtype=object, copy=True)
@@ -155,11 +151,8 @@ def segment_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settin
         found["reason"] = pd.Series(reason, index=found.index, dtype=object)
         found["test_key"] = seg["test_key"].to_numpy()
         found["site_order"] = seg["site_order"].to_numpy()
-        not_evaluable = status == NOT_EVALUABLE
-        wanting = np.zeros(len(found), dtype=bool)
-        # Few distinct reasons among the not-evaluable rows: each is tested once.
-        wanting[not_evaluable] = rules.per_distinct(lambda why: str(why).startswith(WANTING), reason[not_evaluable]).astype(bool)
-        found["wanting"] = wanting
+        # Not evaluable is want of data (the not-applicable reasons are apart): more data could change it.
+        found["wanting"] = status == NOT_EVALUABLE
         return found
 
     def unnamed(name: str) -> np.ndarray:
@@ -179,7 +172,7 @@ def per_nerve(segments: pd.DataFrame, nerves: pd.DataFrame, settings: Settings) 
     table = load(ID)
     frame = p.motor(nerves)
     status = segments["status"].to_numpy(dtype=object)
-    rank = np.select([status == MET, status == NOT_MET, status == NOT_EVALUABLE], [0, 1, 2], default=3)
+    rank = np.select([status == MET, status == NOT_MET, status == NOT_EVALUABLE, status == NOT_APPLICABLE], [0, 1, 2, 3], default=4)
     value = segments["value"].to_numpy(dtype=float)
     missing = np.isnan(value)
     test_key = segments["test_key"].to_numpy()
@@ -192,7 +185,7 @@ def per_nerve(segments: pd.DataFrame, nerves: pd.DataFrame, settings: Settings) 
     group = np.cumsum(opens) - 1
     best = segments.iloc[order[opens]].assign(rank=rank[order[opens]])
     # Segments that could not be assessed, other than the deciding one, are listed in the reason.
-    others = ~opens & (status[order] == NOT_EVALUABLE)
+    others = ~opens & np.isin(status[order], [NOT_EVALUABLE, NOT_APPLICABLE])
     if others.any():
         rows = order[others]
         pieces = rules.per_distinct(lambda seg, why: f"{seg} ({why})", segments["segment"].to_numpy(dtype=object)[rows],

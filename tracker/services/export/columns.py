@@ -269,7 +269,7 @@ def _verdict_columns(sets: list[SetColumns], limits_label: str, *, segment_only:
                      if segment_only else "for this nerve test; empty when the item does not apply to it")
             columns.append(Column(item.column, "text", "",
                                   f"verdict of {found.criteria} item {item.item} ({item.parameter}, {item.unit or 'no unit'}): "
-                                  f"met, not_met or not_evaluable", f"the criteria engine, {where}", depends))
+                                  f"met, not_met, not_evaluable (want of data) or not_applicable (exclusion, precondition, not part of the pattern)", f"the criteria engine, {where}", depends))
     return columns
 
 
