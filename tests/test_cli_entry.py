@@ -91,3 +91,23 @@ def test_serve_refuses_a_database_without_schema(tmp_path):
     result = _run("--db", f"sqlite:///{tmp_path / 'missing.sqlite3'}", "serve", "--port", "8599")
     assert result.returncode == 1
     assert "ncs-tracker db upgrade" in result.stderr and "Traceback" not in result.stderr
+
+
+def test_import_help_cites_only_what_the_repository_holds():
+    """Issue 10, item 16: `import --help` must not send the reader to a file absent from the repository."""
+    import re
+
+    from conftest import ROOT
+
+    result = _run("import", "--help")
+    assert result.returncode == 0, result.stderr
+    text = " ".join(result.stdout.split())
+    cited = set(re.findall(r"[\w./-]+\.(?:md|csv|py|toml|txt)\b", text)) | set(re.findall(r"\b[\w.-]+/(?=\s|$)", text))
+    if "README" in text:
+        cited.add("README.md")
+    assert cited, text  # the help does point somewhere: the check below is not vacuous
+    for name in cited:
+        assert (ROOT / name).exists() or (ROOT / "tracker" / name).exists(), f"{name} is cited but not in the repository"
+    for heading in re.findall(r'README \("([^"]+)"\)', text):
+        assert re.search(rf"^#+ {re.escape(heading)}$", (ROOT / "README.md").read_text(encoding="utf-8"), re.M), heading
+    assert "§" not in text, text  # a section sign points into a document the repository does not hold

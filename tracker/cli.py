@@ -124,9 +124,16 @@ def db_status(context: Context) -> None:
 @click.option("--allow-unusual", is_flag=True, help="Accept conduction velocities outside 10–100 m/s (the override is recorded).")
 @pass_context
 def import_command(context: Context, files: tuple[Path, ...], dry_run: bool, replace: bool, allow_unusual: bool) -> None:
-    """Import measurements, treatments or scores (CSV or .xlsx; DESIGN.md §4.1–4.2).
+    """Import measurements, treatments or scores (UTF-8 CSV, or the first sheet of an .xlsx).
 
-    All files are imported in one transaction: if any file has a problem, nothing is written.
+    The kind of file is recognised from its header: a 'nerve' column for measurements, 'therapy' for
+    treatments, 'scale' for scores. The columns and the accepted nerve and site names are listed in the
+    README ("File formats"); demo_data/ holds a complete example of each kind.
+
+    All files are imported in one transaction: if any file has a problem, every problem is listed (row as a
+    spreadsheet shows it, column, what was expected), nothing is written and the exit code is 1. Warnings
+    (a visit of a single nerve, a visit date that may have day and month swapped) are printed and the import
+    goes ahead.
     """
     from tracker.services.importing import import_file
 
