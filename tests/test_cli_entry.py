@@ -111,3 +111,27 @@ def test_import_help_cites_only_what_the_repository_holds():
     for heading in re.findall(r'README \("([^"]+)"\)', text):
         assert re.search(rf"^#+ {re.escape(heading)}$", (ROOT / "README.md").read_text(encoding="utf-8"), re.M), heading
     assert "§" not in text, text  # a section sign points into a document the repository does not hold
+
+
+@pytest.mark.slow
+def test_demo_without_serving_prints_commands_that_work_on_the_demo_database(tmp_path):
+    """Issue 10, item 16: the printed `show` and `check` commands name the demo database (`check DEMO-01`
+    alone answered "no database file"); run exactly as printed, from a folder with a space in its name."""
+    import shlex
+
+    path = tmp_path / "demo folder" / "demo.sqlite3"
+    result = _run("demo", "--path", str(path), "--no-serve")
+    assert result.returncode == 0, result.stderr
+    printed = [shlex.split(line) for line in result.stdout.splitlines() if line.startswith("  ncs-tracker ")]
+    commands = {words[3]: words for words in printed}
+    assert set(commands) == {"show", "check", "serve"}, result.stdout
+    elsewhere = {"XDG_DATA_HOME": str(tmp_path / "elsewhere"), "NCS_TRACKER_DB": ""}
+    for name in ("show", "check"):
+        ran = _run(*commands[name][1:], env=elsewhere)
+        assert ran.returncode == 0, (commands[name], ran.stderr)
+        assert "DEMO-01" in ran.stdout and "no database file" not in ran.stderr, ran.stderr
+    exported = [line for line in result.stdout.splitlines() if "export NCS_TRACKER_DB=" in line]
+    assert len(exported) == 1, result.stdout
+    url = shlex.split(exported[0].split("export ", 1)[1])[0].split("=", 1)[1]
+    ran = _run("check", "DEMO-01", env={**elsewhere, "NCS_TRACKER_DB": url})
+    assert ran.returncode == 0 and "no database file" not in ran.stderr, ran.stderr

@@ -421,16 +421,27 @@ def demo_command(context: Context, db_path: Path | None, port: int, host: str, n
     with make_session_factory(engine).begin() as session:
         counts = refresh_evaluations(session)
     click.echo(f"Evaluated {counts['visits']} visits against every criteria set.", err=True)
+    codes: list[str] = []
     if no_serve:
         with make_session_factory(engine)() as session:
-            for code in patient_codes(session):
+            codes = patient_codes(session)
+            for code in codes:
                 click.echo("\n".join(patient_lines(patient_record(session, code))[:-1]))
                 click.echo("=" * 100)
     engine.dispose()
     click.echo(f"Demo database (invented patients): {path}")
     if no_serve:
+        import shlex
+
         click.echo(CAUTION)
-        click.echo(f"Explore it with: ncs-tracker --db {url} show DEMO-01")
+        # The demo database is not the default one: every command needs --db (or the environment variable).
+        first = shlex.quote(codes[0] if codes else "DEMO-01")
+        db_option = f"--db {shlex.quote(url)}"
+        click.echo("The demo database is not your default database; name it in each command:")
+        click.echo(f"  ncs-tracker {db_option} show {first}")
+        click.echo(f"  ncs-tracker {db_option} check {first}")
+        click.echo(f"  ncs-tracker {db_option} serve")
+        click.echo(f"or set it once for this shell (POSIX shells): export {ENV_DB}={shlex.quote(url)}")
         return
     _serve(url, host=host, port=port, user=context.user)
 
