@@ -286,6 +286,9 @@ CASES = [
     case("unknown-nerve-in-xlsx", M, both(suffix(".xlsx"), cell(5, "nerve", "medain")), 5, "nerve", "did you mean 'median'?"),
     # site labels per nerve: tracker/reference/sites.csv
     case("unknown-site-did-you-mean", M, cell(3, "site", "elbw"), 3, "site", "did you mean 'elbow'?"),
+    # without a close match the message still reads as sentences and lists the known names
+    case("unknown-nerve-without-hint", M, cell(5, "nerve", "xq"), 5, "nerve", "unknown nerve. Known nerves: axillary, dorsal_ulnar_cutaneous"),
+    case("unknown-site-without-hint", M, cell(3, "site", "xq"), 3, "site", "unknown stimulation site for the motor median nerve. Known sites: axilla, elbow, erb, wrist"),
     case("bad-side", M, cell(5, "side", "both"), 5, "side", "expected one of left, right, L, R"),
     case("missing-side", M, cell(5, "side", ""), 5, "side", "required value is missing; expected one of left, right"),
     case("bad-modality-did-you-mean", M, cell(5, "modality", "sensroy"), 5, "modality", "did you mean 'sensory'?"),

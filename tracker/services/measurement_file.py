@@ -81,7 +81,7 @@ def _nerve_mapping(collect: Collector) -> pd.Series:
     unknown = (raw != "").to_numpy() & mapped.isna().to_numpy()
     for word in pd.unique(words[unknown]):
         hint = catalogue.suggest(word, catalogue.known_nerve_words())
-        hint_text = f"; did you mean {catalogue.canonical_nerve(hint)!r}?" if hint else ""
+        hint_text = f"; did you mean {catalogue.canonical_nerve(hint)!r}?" if hint else "."
         collect.add(
             unknown & (words == word).to_numpy(),
             "nerve",
@@ -105,7 +105,7 @@ def _site_labels(collect: Collector, nerve: pd.Series, modality: pd.Series) -> p
             continue
         known = catalogue.known_site_words(n, m)
         hint = catalogue.suggest(w, known)
-        hint_text = f"; did you mean {catalogue.canonical_site(n, m, hint)!r}?" if hint else ""
+        hint_text = f"; did you mean {catalogue.canonical_site(n, m, hint)!r}?" if hint else "."
         mask = np.zeros(len(raw), dtype=bool)
         mask[collect.cells.index.get_indexer(index)] = True
         collect.add(
@@ -196,7 +196,7 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     known_pair = checks.map_unique(
         pairs, lambda p: "" in p.split("|") or p.split("|")[1] in catalogue.nerves()[p.split("|")[0]].modalities
     ).to_numpy(dtype=bool)
-    collect.add(~known_pair, "modality", "this nerve is not studied in this modality here (see reference/nerves.csv)")
+    collect.add(~known_pair, "modality", "this nerve is not studied in this modality here (see tracker/reference/nerves.csv and the README's nerve table)")
 
     site_order, _ = checks.number(collect, "site_order", required=True)
     bad_order = ~np.isnan(site_order) & ((site_order < 1) | (site_order != np.floor(site_order)) | (site_order > 20))
