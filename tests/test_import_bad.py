@@ -658,3 +658,31 @@ def test_refused_reimport_names_a_new_nerve_test_and_a_changed_nerve_value(share
     err = refused(capsys, url, engine, sheet.write(tmp_path))
     assert_reported(err, len(sheet.rows) + 1, "nerve", "the ulnar left motor nerve test is not in the stored visit")
     assert_reported(err, ulnar, "temperature_c", "ulnar right motor temperature 33.5 → 32 °C")
+
+
+@pytest.mark.parametrize(
+    ("base", "mutation", "column", "expected"),
+    [
+        pytest.param(
+            "demo_treatment", cell(2, "interval_days", "28"), "interval_days",
+            "differs from the stored treatment of DEMO-01 (ivig from 2023-03-17): interval days 21 → 28 days; import with --replace",
+            id="treatment-interval",
+        ),
+        pytest.param(
+            "demo_treatment", cell(2, "end_date", "2023-09-01"), "end_date",
+            "differs from the stored treatment of DEMO-01 (ivig from 2023-03-17): end date empty → 2023-09-01",
+            id="treatment-end-date",
+        ),
+        pytest.param(
+            "demo_score", cell(2, "value", "6"), "value",
+            "differs from the stored score of DEMO-01 (incat on 2023-02-14): value 5 → 6; import with --replace",
+            id="score-value",
+        ),
+    ],
+)
+def test_refused_treatment_or_score_names_the_stored_and_the_new_value(shared, tmp_path, capsys, base, mutation, column, expected):
+    """DESIGN.md §4.1–4.2 (changed stored values refused unless --replace), as for visits: old → new. The stored
+    rows are the invented demo ones: DEMO-01's IVIg period from 2023-03-17 (every 21 days, no end date) and
+    INCAT 5 on 2023-02-14."""
+    lines = _refused_base(shared, tmp_path, capsys, base, mutation)
+    assert [line for line in lines if line.startswith(f"row 2, column '{column}': ") and expected in line], lines

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import datetime as dt
 from typing import Any
 
 import pandas as pd
@@ -131,10 +132,13 @@ def _same(a: Any, b: Any) -> bool:
     return a == b
 
 
-def _shown(value: Any, column: str) -> str:
+def shown_value(value: Any, column: str = "") -> str:
+    """A stored or given value as a person reads it: 7.15 (shortest exact text), 'empty', yes/no, words."""
     value = _value(value)
     if value is None:
         return "empty"
+    if isinstance(value, dt.date):
+        return value.isoformat()
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, float):
@@ -146,7 +150,7 @@ def _shown(value: Any, column: str) -> str:
 def _change(what: str, old: Any, new: Any, column: str) -> str:
     """``'fibular right site 1 amplitude 0.7 → 0.8 mV'``"""
     unit = f" {_UNITS[column]}" if column in _UNITS else ""
-    return f"{_PREFIX}{what} {_shown(old, column)} → {_shown(new, column)}{unit}"
+    return f"{_PREFIX}{what} {shown_value(old, column)} → {shown_value(new, column)}{unit}"
 
 
 def _f_wave(values: dict[str, Any]) -> Any:
@@ -198,6 +202,12 @@ def describe_changes(session: Session, changed: pd.DataFrame, batch: Measurement
     """
     if changed.empty:
         return []
+    if batch.rows is None:  # a batch assembled without its rows: say that the visit differs, not where
+        return [
+            Problem(int(getattr(v, ROW)), "visit_date", v.visit_date.isoformat(), f"the visit of {v.patient} on this date is already stored "
+                    "with different values; import with --replace to replace it (the earlier values are kept in its history)")
+            for v in changed.itertuples()
+        ]
     keys = changed[[*VISIT_KEY, "visit_id"]]
     stored_visits, stored_tests, stored_sites = _stored_content(session, [int(v) for v in keys["visit_id"]])
     rows = batch.rows.merge(keys, on=VISIT_KEY, how="inner")

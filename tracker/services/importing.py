@@ -34,7 +34,7 @@ from tracker.services.measurement_file import (
     MeasurementBatch,
     validate_measurements,
 )
-from tracker.services.history import describe_changes, keep_history, stored_fingerprints
+from tracker.services.history import describe_changes, keep_history, shown_value, stored_fingerprints
 from tracker.services.rows import chunks as _chunks, clean as _clean
 from tracker.services.tables import ROW, InputTable, read_table
 
@@ -483,13 +483,19 @@ def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username
             for column in value_columns:
                 given, stored = _jsonable(r[column]), _jsonable(r[f"db_{column}"])
                 if given != stored:
+                    record = (
+                        f"{r['therapy'].replace('_', ' ')} from {r['start_date'].isoformat()}"
+                        if kind == "treatments"
+                        else f"{r['scale']} on {r['score_date'].isoformat()}"
+                    )
+                    unit = " days" if column == "interval_days" else ""
                     problems.append(
                         Problem(
                             int(r[ROW]),
                             column,
-                            "" if given is None else str(given),
-                            f"this {kind[:-1]} of {r['patient']} is stored with {column} {stored!r}; "
-                            "import with --replace to replace it",
+                            None,
+                            f"differs from the stored {kind[:-1]} of {r['patient']} ({record}): {column.replace('_', ' ')} "
+                            f"{shown_value(stored)} → {shown_value(given)}{unit}; import with --replace to replace it",
                         )
                     )
         raise InputRejected("The file conflicts with stored data", problems)
