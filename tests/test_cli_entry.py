@@ -61,8 +61,8 @@ def test_upgrade_import_show_round_trip(tmp_path):
     assert "added 29 visits" in result.stdout
     result = _run("--db", url, "show", "DEMO-04")
     assert result.returncode == 0, result.stderr
-    assert "ulnar left: wrist → below_elbow" in result.stdout
-    assert "CV m/s" in result.stdout
+    assert "ulnar left: wrist → below elbow" in result.stdout  # sites in words (issue 10, item 12)
+    assert "CV (m/s)" in result.stdout
 
 
 def test_bad_input_gives_a_message_not_a_traceback(tmp_path):

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import re
 from pathlib import Path
 
 import pandas as pd
@@ -141,9 +142,12 @@ def test_visit_review_shows_trace_and_outcome(monkeypatch, demo_url):
     # Hand-checked in tests/test_demo_outcomes.py: EFNS/PNS 2010 definite by distal latencies at this visit.
     assert "▲ definite" in text
     traces = [d.value for d in at.dataframe]
-    median = next(t for t in traces if "item" in t and (t["item"] == "dml").any() and t["value"].str.contains("7.05").any())
-    row = median[median["item"] == "dml"].iloc[0]
-    assert row["status"].startswith("▲ met") and "6.60" in row["threshold"] and "Van den Bergh" in row["source"]
+    median = next(t for t in traces if "criterion" in t and (t["criterion"] == "distal motor latency").any() and t["value"].str.contains("7.05").any())
+    row = median[median["criterion"] == "distal motor latency"].iloc[0]
+    assert row["verdict"].startswith("▲ met") and "6.60" in row["threshold"]
+    # The source is a footnote number; the footnote names the publication.
+    number = re.match(r"\[(\d+)\]", row["source"]).group(1)
+    assert re.search(rf"\[{number}\] Van den Bergh", text)
 
 
 def entry_sites(latency_elbow: float) -> pd.DataFrame:
@@ -196,7 +200,7 @@ def test_entry_refused_then_saved_and_shown(monkeypatch, fresh_url):
     assert at.selectbox(key="follow_patient").value == "TEST-NEW"
     trend = plotly_specs(at)[1]
     [line] = [t for t in trend["data"] if t.get("meta", {}).get("kind") == "measured"]
-    assert line["customdata"][0][1] == "50.00"
+    assert line["customdata"][0][1] == "50.0"  # velocity at clinical precision, 1 decimal (issue 10, item 12)
 
 
 def test_settings_change_is_saved_and_audited(monkeypatch, fresh_url):
@@ -223,10 +227,13 @@ def test_cohort_counts_match_the_database(monkeypatch, demo_url):
         by_diagnosis = dict(session.execute(select(Visit.diagnosis, func.count()).group_by(Visit.diagnosis)).all())
     engine.dispose()
     assert int(counts["visits"].sum()) == visits == 29
-    assert {k: int(v) for k, v in counts["visits"].items()} == by_diagnosis
+    # Diagnoses in words on screen (labels.DIAGNOSIS_SHORT: "mmn" → "MMN"), ids in the database.
+    from tracker.domain.labels import DIAGNOSIS_SHORT
+
+    assert {k: int(v) for k, v in counts["visits"].items()} == {DIAGNOSIS_SHORT[k]: v for k, v in by_diagnosis.items()}
     at.selectbox(key="cohort_diagnosis").select("mmn").run()
     visits_table = at.dataframe[1].value
-    assert set(visits_table["diagnosis"]) == {"mmn"} and len(visits_table) == by_diagnosis["mmn"]
+    assert set(visits_table["diagnosis"]) == {"MMN"} and len(visits_table) == by_diagnosis["mmn"]
 
 
 @pytest.mark.parametrize("page", PAGES)
@@ -354,3 +361,103 @@ def test_visit_review_criteria_follow_the_patients_diagnosis(monkeypatch, demo_u
         assert at.multiselect(key="review_criteria").value == [default_criteria(diagnosis)]
         assert criteria_title(default_criteria(diagnosis)) in page_text(at)
     assert default_criteria("mmn") != default_criteria("cidp") != default_criteria("gbs")
+
+
+# --- words, not identifiers, on every page ------------------------------------------------------------------
+# Issue 10, item 12: screens show labels (tracker/domain/labels.py); identifiers stay in JSON and exports.
+# Common practice, no source. The regex finds any snake_case identifier ("below_elbow", "not_met").
+IDENTIFIER = re.compile(r"\b[a-z]+_[a-z_]+\b")
+ALLOWED_IDENTIFIERS: set[str] = set()  # none needed today
+
+
+def _plotly_words(spec: dict) -> list[str]:
+    layout = spec.get("layout", {})
+    title = lambda t: (t.get("text") or "") if isinstance(t, dict) else (t or "")
+    out = [title(layout.get("title"))] + [a.get("text") or "" for a in layout.get("annotations", []) or []]
+    out += [title(v.get("title")) for k, v in layout.items() if k[:5] in ("xaxis", "yaxis") and isinstance(v, dict)]
+    for trace in spec.get("data", []):
+        out.append(str(trace.get("name") or ""))
+        for key in ("text", "x", "y"):  # category axes (criteria sets) and marker words
+            value = trace.get(key)
+            out += [value] if isinstance(value, str) else [v for v in value or [] if isinstance(v, str)]
+        out.append(re.sub(r"%\{[^}]*\}", "", trace.get("hovertemplate") or ""))
+        for row in trace.get("customdata") or []:
+            out += [v for v in (row if isinstance(row, list) else [row]) if isinstance(v, str)]
+    return out
+
+
+def shown_words(at: AppTest) -> list[str]:
+    """Every text a person reads on the page: markdown, captions, alerts, widget labels and options, table
+    headers (as column_config names them) and cells, and the words of every chart."""
+    out: list[str] = []
+
+    def walk(node) -> None:
+        kind = type(node).__name__
+        if kind in ("Markdown", "Caption", "Title", "Header", "Subheader", "Info", "Warning", "Error", "Success", "Text", "Code"):
+            out.append(str(node.value))
+        if kind in ("Selectbox", "Radio", "Multiselect"):
+            out.append(node.label)
+            out.extend(str(o) for o in node.options)
+        elif getattr(node, "label", None) and kind not in ("Dataframe",):
+            out.append(str(node.label))
+        if kind == "Dataframe":
+            config = json.loads(node.proto.columns) if node.proto.columns else {}
+            named = {k: v.get("label") for k, v in config.items() if isinstance(v, dict) and v.get("label")}
+            frame = node.value
+            out.extend(named.get(str(c), str(c)) for c in frame.columns)
+            out.extend(v for c in frame.columns for v in frame[c].tolist() if isinstance(v, str))
+        if kind == "UnknownElement" and getattr(node, "type", "") == "plotly_chart":
+            out.extend(_plotly_words(json.loads(node.proto.spec)))
+        children = getattr(node, "children", None)
+        for child in children.values() if isinstance(children, dict) else []:
+            walk(child)
+
+    walk(at._tree)
+    return [t for t in out if t]
+
+
+def identifiers_in(at: AppTest) -> dict[str, str]:
+    found = {}
+    for text in shown_words(at):
+        for token in IDENTIFIER.findall(text):
+            if token not in ALLOWED_IDENTIFIERS:
+                found.setdefault(token, text[:160])
+    return found
+
+
+def test_the_word_collector_sees_identifiers():
+    # The check below must be able to fail: a page that prints an identifier is caught, in text and in tables.
+    at = AppTest.from_string(
+        "import streamlit as st, pandas as pd\nst.caption('ulnar left: wrist → below_elbow')\n"
+        "st.dataframe(pd.DataFrame({'velocity_m_s': [50.1], 'outcome': ['not_met']}))"
+    ).run()
+    assert set(identifiers_in(at)) == {"below_elbow", "velocity_m_s", "not_met"}
+
+
+@pytest.mark.parametrize("code", ["DEMO-01", "DEMO-04", "DEMO-05"])  # invented CIDP, MMN and GBS patients
+def test_no_identifier_on_any_page(monkeypatch, demo_url, code):
+    for page in PAGES:
+        at = open_page(monkeypatch, demo_url, page, patient=code)
+        if page == "views/visit_review.py":  # every criteria set, so every item and outcome is worded
+            from tracker.criteria import engine
+
+            at.multiselect(key="review_criteria").set_value(engine.available()).run()
+        assert not at.exception and not at.error
+        assert identifiers_in(at) == {}, page
+        if page == "views/follow_up.py":
+            for parameter in ("block", "dispersion", "snap"):
+                at.radio(key="follow_parameter").set_value(parameter).run()
+                assert identifiers_in(at) == {}, (page, parameter)
+
+
+def test_visit_review_changes_since_the_previous_visit_as_a_table(monkeypatch, demo_url):
+    # Issue 10, item 14: "Changed since" is a short table (nerve, criterion, before, now), not a run-on line.
+    from tracker.dashboard.tables import CHANGE_COLUMNS
+
+    at = open_page(monkeypatch, demo_url, "views/visit_review.py", patient="DEMO-01")
+    at.multiselect(key="review_criteria").set_value(["ean-pns-2021-cidp", "efns-pns-2010-cidp", "aan-1991-cidp"]).run()
+    assert not at.exception
+    changed = [d.value for d in at.dataframe if list(d.value.columns) == CHANGE_COLUMNS]
+    assert changed and all(len(t) for t in changed)
+    assert all(set(t["now"]) <= {"▲ met", "○ not met", "? not evaluable", "– not applicable"} for t in changed)
+    assert any(m.value.startswith("**Changed since") for m in at.markdown)

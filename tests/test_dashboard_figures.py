@@ -370,7 +370,11 @@ def test_outcome_strip_words_and_shapes(demo_sessions):
         fu = follow_up(session, "DEMO-01", parameter="cv")
     strip = figures.outcome_strip(fu)
     shown = {(str(x), y, text) for trace in strip.data for x, y, text in zip(trace.x, trace.y, trace.text)}
-    expected = {(str(r.visit_date), r.criteria, r.outcome.replace("_", " ")) for r in fu.outcomes.itertuples()}
+    # In words: the set by its title, the outcome as labels.py words it ("possible CIDP", "not met").
+    from tracker.domain.labels import criteria_title, outcome_label
+
+    expected = {(str(r.visit_date), criteria_title(r.criteria), outcome_label(r.outcome)) for r in fu.outcomes.itertuples()}
+    assert all("_" not in text for _, _, text in expected)
     assert shown == expected
     assert len(expected) == len(fu.visit_dates) * len(criteria_engine.available())
     # Status never by colour alone: every group has its own marker shape.
@@ -428,7 +432,7 @@ def test_cohort_shares_add_up_per_criteria_set(demo_sessions):
     shares = outcome_shares(visits, criteria_engine.available())
     figure = figures.outcome_share_figure(shares)
     for criteria in criteria_engine.available():
-        bars = [(t.meta["outcome"], t.x[list(t.y).index(criteria)], t.customdata[list(t.y).index(criteria)]) for t in figure.data if criteria in t.y]
+        bars = [(t.meta["outcome"], t.x[t.meta["criteria"].index(criteria)], t.customdata[t.meta["criteria"].index(criteria)]) for t in figure.data if criteria in t.meta["criteria"]]
         assert sum(count for _, _, count in bars) == total == 29
         assert sum(share for _, share, _ in bars) == pytest.approx(100.0, abs=0.5)
         # Every segment is the number of visits with that saved outcome.
@@ -486,7 +490,7 @@ def test_status_has_word_shape_and_colour_each_distinct():
     words = [w for w, _, _ in style.STATUS.values()]
     shapes = [s for _, s, _ in style.STATUS.values()]
     colours = [c for _, _, c in style.STATUS.values()]
-    assert len(set(words)) == len(set(shapes)) == len(set(colours)) == 3
+    assert len(set(words)) == len(set(shapes)) == len(set(colours)) == len(style.STATUS) >= 4  # met, not met, not evaluable, not applicable
     assert style.status_css("▲ met") != style.status_css("○ not met — F-waves present") != style.status_css("? not evaluable — missing")
     assert style.status_css("met") == ""  # a bare word without its shape is not styled as a status
 
@@ -574,3 +578,56 @@ def test_block_plot_says_what_it_plots_and_names_the_block_threshold(demo_sessio
     assert set(threshold.y) == {published.value}
     assert threshold.name.endswith("block threshold: ≥ 50 % reduction")
     assert "LLN" not in threshold.name and "precondition" not in threshold.name
+
+
+def test_trace_table_puts_the_verdict_beside_the_value_and_sources_in_footnotes():
+    # Issue 10, item 14 (common practice, no source). Invented findings: a velocity judged against a threshold,
+    # and an item with no threshold (a precondition that is not a number): it never reads "≥ %".
+    import pandas as pd
+
+    from tracker.criteria.model import FINDING_COLUMNS
+    from tracker.dashboard import tables
+
+    base = {"visit_key": 1, "criteria": "x", "nerve": "ulnar", "side": "left", "modality": "motor", "limit_status": "verified",
+            "source_status": "verified", "limit_source": "", "margin": None, "reason": ""}
+    findings = pd.DataFrame(
+        [
+            {**base, "item": "cv", "parameter": "conduction velocity", "segment": "wrist → below_elbow", "value": 31.946, "unit": "m/s",
+             "limit": 49.0, "limit_name": "LLN", "threshold": 34.3, "comparator": "le", "status": "met", "source": "Publication A"},
+            {**base, "item": "cb_precondition", "parameter": "conduction block", "segment": "", "value": None, "unit": "%",
+             "limit": None, "limit_name": "", "threshold": None, "comparator": "ge", "status": "not_applicable", "source": "Publication B"},
+            {**base, "item": "dml", "parameter": "distal motor latency", "segment": "", "value": 4.126, "unit": "ms",
+             "limit": 3.6, "limit_name": "ULN", "threshold": 5.4, "comparator": "ge", "status": "not_met", "source": "Publication A"},
+        ]
+    ).reindex(columns=FINDING_COLUMNS)
+    by_nerve, footnotes = tables.trace_tables(findings)
+    [(nerve, table)] = by_nerve.items()
+    assert nerve == "ulnar left (motor)"
+    columns = list(table.columns)
+    assert columns.index("verdict") == columns.index("value") + 1
+    assert list(table["value"]) == ["31.9 m/s", "—", "4.13 ms"]  # velocity 1 decimal, latency 2
+    assert list(table["verdict"]) == ["▲ met", "– not applicable", "○ not met"]
+    assert list(table["threshold"]) == ["≤ 34.3 m/s", "—", "≥ 5.40 ms"]
+    assert not table["threshold"].str.contains("%").any()
+    assert footnotes == ["Publication A", "Publication B"] and list(table["source"]) == ["[1]", "[2]", "[1]"]
+    assert table["measured"].iloc[0] == "conduction velocity, wrist → below elbow"
+
+
+def test_changes_since_is_a_short_table_in_words():
+    import pandas as pd
+
+    from tracker.dashboard import tables
+
+    # Invented: one finding that turned not met, and one that (in a newer engine) lost its data.
+    changes = pd.DataFrame(
+        [
+            {"nerve": "ulnar", "side": "right", "modality": "sensory", "item": "sensory_cv", "status": "not_met", "previous_status": "met",
+             "value": 44.04, "previous_value": 38.96, "unit": "m/s", "change": "turned not met"},
+            {"nerve": "median", "side": "left", "modality": "motor", "item": "dml", "status": "not_evaluable", "previous_status": "met",
+             "value": None, "previous_value": 6.712, "unit": "ms", "change": "met → not evaluable"},
+        ]
+    )
+    table = tables.changes_table(changes)
+    assert list(table.columns) == tables.CHANGE_COLUMNS
+    assert table.iloc[0].tolist() == ["ulnar right", "sensory conduction velocity", "▲ met", "○ not met", "39.0 m/s", "44.0 m/s"]
+    assert table.iloc[1].tolist() == ["median left", "distal motor latency", "▲ met", "? not evaluable", "6.71 ms", "—"]

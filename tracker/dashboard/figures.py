@@ -15,12 +15,13 @@ import plotly.graph_objects as go
 from plotly.subplots import make_subplots
 
 from tracker.dashboard import style
-from tracker.domain.labels import SDC_STEP_LABELS, criteria_title
+from tracker.domain.labels import PRECISION, SDC_STEP_LABELS, criteria_title, outcome_label, segment_words
 from tracker.response.regimens import Regimen
 from tracker.services.follow_up import FollowUp
 from tracker.services.response import ResponseView
 
-OUTCOME_SYMBOLS = {"positive": "triangle-up", "other finding": "diamond", "negative": "circle-open", "not evaluable": "square-open"}
+OUTCOME_SYMBOLS = {"positive": "triangle-up", "other finding": "diamond", "negative": "circle-open", "not evaluable": "square-open",
+                   "undecided": "diamond-open"}
 SCALE_PAD = 0.05  # share of a scale's range added above and below, so points at its ends stay visible
 
 
@@ -84,10 +85,10 @@ def trend_figure(fu: FollowUp, *, regimens: list[Regimen] | None = None, steps: 
                 if step is not None:
                     beyond.setdefault(step["verdict"], []).append((d, float(v), step["words"]))
                 change = f"<br>{step['words']}" if step is not None else ""
-                custom.append([d.isoformat(), f"{v:.2f}", unit, _temperature_text(r), series, r.note or "", change])
+                custom.append([d.isoformat(), f"{v:.{PRECISION.get(unit, 2)}f}", unit, _temperature_text(r), segment_words(series), r.note or "", change])
             figure.add_trace(
                 go.Scatter(
-                    x=list(plotted["visit_date"]), y=[float(v) for v in plotted["value"]], mode="lines+markers", name=str(series),
+                    x=list(plotted["visit_date"]), y=[float(v) for v in plotted["value"]], mode="lines+markers", name=segment_words(series),
                     legendgroup=str(series), showlegend=series not in shown_in_legend,
                     line={"color": colour, "width": 2},
                     marker={"size": 9, "color": colour, "symbol": ["circle-open-dot" if c else "circle" for c in plotted["cold"]], "line": {"width": 2, "color": colour}},
@@ -279,17 +280,17 @@ def outcome_strip(fu: FollowUp) -> go.Figure:
         colour = style.OUTCOME_GROUPS[group_name][2]
         figure.add_trace(
             go.Scatter(
-                x=list(group["visit_date"]), y=list(group["criteria"]), mode="markers+text", name=group_name,
-                text=[o.replace("_", " ") for o in group["outcome"]], textposition="top center", textfont={"size": 10},
+                x=list(group["visit_date"]), y=[criteria_title(c) for c in group["criteria"]], mode="markers+text", name=group_name,
+                text=[outcome_label(o) for o in group["outcome"]], textposition="top center", textfont={"size": 10},
                 marker={"symbol": OUTCOME_SYMBOLS[group_name], "size": 12, "color": colour, "line": {"width": 2, "color": colour}},
                 hovertemplate="%{x|%Y-%m-%d} — %{y}: %{text}<extra></extra>", meta={"panel": "outcomes", "kind": "outcome"},
             )
         )
     window = time_range(fu)
     figure.update_xaxes(range=list(window) if window else None, type="date", gridcolor=style.GRID)
-    figure.update_yaxes(categoryorder="array", categoryarray=sorted(set(outcomes["criteria"]), reverse=True))
+    figure.update_yaxes(categoryorder="array", categoryarray=[criteria_title(c) for c in sorted(set(outcomes["criteria"]), reverse=True)])
     figure.update_layout(
-        template="plotly_white", height=90 + 42 * max(1, outcomes["criteria"].nunique()), margin={"l": 150, "r": 20, "t": 40, "b": 30},
+        template="plotly_white", height=90 + 42 * max(1, outcomes["criteria"].nunique()), margin={"l": 270, "r": 20, "t": 40, "b": 30},
         title={"text": "Outcome of each criteria set per visit", "x": 0, "font": {"size": 14}}, legend={"orientation": "h", "y": -0.3},
     )
     return figure
@@ -302,21 +303,21 @@ def outcome_share_figure(shares: pd.DataFrame) -> go.Figure:
         figure.update_layout(title="No saved evaluations yet", template="plotly_white", height=200)
         return figure
     shares = shares.assign(group=[style.outcome_group(o)[0] for o in shares["outcome"]])
-    patterns = {"positive": "/", "negative": "", "other finding": "x", "not evaluable": "."}
+    patterns = {"positive": "/", "negative": "", "other finding": "x", "not evaluable": ".", "undecided": "-"}
     legend_shown: set[str] = set()
     # One trace per outcome value (each segment names its outcome), coloured and patterned by group.
     for (group_name, outcome_value), group in shares.groupby(["group", "outcome"], sort=True):
-        word = str(outcome_value).replace("_", " ")
+        word = outcome_label(outcome_value)
         figure.add_trace(
             go.Bar(
-                y=list(group["criteria"]), x=[float(v) for v in group["share_pct"]], orientation="h", name=group_name,
+                y=[criteria_title(c) for c in group["criteria"]], x=[float(v) for v in group["share_pct"]], orientation="h", name=group_name,
                 legendgroup=group_name, showlegend=group_name not in legend_shown, text=[word] * len(group), textposition="inside",
                 insidetextanchor="middle", textfont={"color": "white", "size": 11},
                 marker={"color": style.OUTCOME_GROUPS[group_name][2], "pattern": {"shape": patterns[group_name]}, "line": {"color": "white", "width": 1}},
                 customdata=list(group["visits"]), hovertemplate="%{y}: " + word + " %{x:.1f} % (%{customdata} visits)<extra></extra>",
-                meta={"panel": "cohort", "kind": "share", "outcome": str(outcome_value)},
+                meta={"panel": "cohort", "kind": "share", "outcome": str(outcome_value), "criteria": list(group["criteria"])},
             )
         )
         legend_shown.add(group_name)
-    figure.update_layout(barmode="stack", template="plotly_white", height=120 + 40 * shares["criteria"].nunique(), xaxis_title="% of visits", margin={"l": 160, "r": 20, "t": 30, "b": 40})
+    figure.update_layout(barmode="stack", template="plotly_white", height=120 + 40 * shares["criteria"].nunique(), xaxis_title="% of visits", margin={"l": 270, "r": 20, "t": 30, "b": 40})
     return figure

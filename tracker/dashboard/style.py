@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 from tracker import CAUTION
+from tracker.domain.labels import STATUS_LABELS
 
 TITLE = "ncs-tracker"
 SUBTITLE = "Nerve conduction follow-up"
@@ -14,11 +15,8 @@ PAPER = "#f6f8f7"
 GRID = "#dde3e1"
 
 # Okabe–Ito colours; status = (word, shape, colour). Shapes are plain Unicode so they survive copy-paste.
-STATUS = {
-    "met": ("met", "▲", "#D55E00"),
-    "not_met": ("not met", "○", "#0072B2"),
-    "not_evaluable": ("not evaluable", "?", "#6b6b6b"),
-}
+STATUS_COLOURS = {"met": "#D55E00", "not_met": "#0072B2", "not_evaluable": "#6b6b6b", "not_applicable": "#8c8c8c"}
+STATUS = {key: (*STATUS_LABELS[key], colour) for key, colour in STATUS_COLOURS.items()}  # words and shapes: labels.py
 
 # Per-visit outcomes of a criteria set, grouped by what they mean for the clinician.
 OUTCOME_GROUPS = {
@@ -26,6 +24,8 @@ OUTCOME_GROUPS = {
     "other finding": (("axonal", "inexcitable", "equivocal", "weakly_supportive", "abnormal_1_nerve", "abnormal_2_nerves"), "◆", "#E69F00"),
     "negative": (("not_met", "normal"), "○", "#0072B2"),
     "not evaluable": (("not_evaluable", "not evaluated"), "?", "#6b6b6b"),
+    # Items that could make the set met lack data: its own state, never read as negative.
+    "undecided": (("undecided",), "◇", "#CC79A7"),
 }
 
 # Series colours for segments within one panel (Okabe–Ito, without the status colours first).

@@ -131,3 +131,112 @@ def threshold_label(parameter: str, comparator: str, value: float, reference: st
     if reference == "percent":
         return f"{name}: {sign} {value:g} % {quantity}".rstrip()
     return f"{name}: {sign} {value:g} {unit}".rstrip()
+
+
+# Outcome values of the criteria sets, in words (DESIGN.md §5 lists the ids). An unknown value is shown in words.
+OUTCOME_LABELS = {
+    "definite": "definite", "probable": "probable", "possible": "possible", "met": "met", "not_met": "not met",
+    "cidp": "CIDP", "possible_cidp": "possible CIDP",
+    "strongly_supportive": "strongly supportive", "weakly_supportive": "weakly supportive",
+    "abnormal_2_nerves": "abnormal in ≥ 2 nerves", "abnormal_1_nerve": "abnormal in 1 nerve", "normal": "normal",
+    "demyelinating": "demyelinating", "axonal": "axonal", "inexcitable": "inexcitable", "equivocal": "equivocal",
+    "not_evaluable": "not evaluable", "not evaluated": "not evaluated", "undecided": "undecided (missing data)",
+}
+# Item statuses of a criteria trace: (word, shape). Never a state by colour alone.
+STATUS_LABELS = {
+    "met": ("met", "▲"),
+    "not_met": ("not met", "○"),
+    "not_evaluable": ("not evaluable", "?"),
+    "not_applicable": ("not applicable", "–"),
+    "undecided": ("undecided (missing data)", "◇"),
+}
+
+
+def outcome_label(outcome: object) -> str:
+    """``possible_cidp`` → ``possible CIDP``; a value this module does not know yet is shown in words."""
+    text = str(outcome)
+    return OUTCOME_LABELS.get(text, words(text))
+
+
+def status_label(status: object) -> str:
+    """``▲ met`` / ``– not applicable``; an unknown status in words with no shape."""
+    word, shape = STATUS_LABELS.get(str(status), (words(str(status)), ""))
+    return f"{shape} {word}".strip()
+
+
+def segment_words(segment: object) -> str:
+    """``wrist → below_elbow`` → ``wrist → below elbow`` (any site or segment identifier)."""
+    return words(str(segment)) if isinstance(segment, str) else ""
+
+
+def nerve_words(nerve: str, side: str | None = None, modality: str | None = None) -> str:
+    """``superficial fibular left (sensory)``."""
+    text = words(nerve) + (f" {side}" if side else "")
+    return text + (f" ({modality})" if modality else "")
+
+
+# Criteria items (the sets' own codes) in words, for trace tables; unknown items fall back to words().
+ITEM_LABELS = {
+    "dml": "distal motor latency", "dml_low_cmap": "distal motor latency (low CMAP)", "dml_switch": "low-CMAP switch (latency)",
+    "cv": "motor conduction velocity", "cv_low_cmap": "motor conduction velocity (low CMAP)", "cv_switch": "low-CMAP switch (velocity)",
+    "f_latency": "F-wave latency", "f_latency_low_cmap": "F-wave latency (low CMAP)", "f_switch": "low-CMAP switch (F-wave)",
+    "f_absent": "F-waves absent", "cb": "conduction block", "cb_erb": "conduction block to Erb's point",
+    "cb_precondition": "block precondition (distal CMAP)", "cb_td": "block or abnormal dispersion", "td": "temporal dispersion",
+    "td_duration": "temporal dispersion (duration)", "dcmap_duration": "distal CMAP duration",
+    "definite_cb": "definite conduction block", "probable_cb": "probable conduction block",
+    "probable_cb_long": "probable block (long segment)", "probable_cb_dispersed": "probable block (dispersed)",
+    "axonal_low_cmap": "low distal CMAP (axonal)", "very_low_cmap": "very low distal CMAP", "cmap_switch": "low-CMAP switch",
+    "sensory_cv": "sensory conduction velocity", "sensory_cv_low_snap": "sensory conduction velocity (low SNAP)",
+    "sensory_switch": "low-SNAP switch", "sensory_peak_latency": "sensory peak latency", "snap_amplitude": "SNAP amplitude",
+    "snap_normal": "SNAP normal (exclusion check)", "snap_reduced": "SNAP reduced", "sural_sparing": "sural sparing",
+    "sural_normal": "sural SNAP normal", "sensory_cidp_cv": "sensory CIDP: velocity", "sensory_cidp_cv_low_snap": "sensory CIDP: velocity (low SNAP)",
+    "sensory_cidp_switch": "sensory CIDP: low-SNAP switch", "normal_cv": "velocity normal", "normal_dml": "distal latency normal",
+    "normal_f": "F-wave normal", "normal_dcmap": "distal CMAP normal", "normal_pcmap": "proximal CMAP normal",
+    "normal_ratio": "proximal/distal ratio normal", "one_nerve_floor": "one-nerve floor", "amplitude_lln": "amplitude ≥ LLN",
+    "amplitude_mv": "CMAP amplitude", "duration_dispersed": "duration (dispersion)", "duration_max": "duration limit",
+}
+
+
+def item_label(item: object) -> str:
+    return ITEM_LABELS.get(str(item), words(str(item)))
+
+
+# Table headers with units, by the identifier a table column has in code.
+COLUMN_LABELS = {
+    "visit_date": "visit date", "patient": "patient", "diagnosis": "diagnosis", "phenotype": "phenotype",
+    "nerve": "nerve", "side": "side", "modality": "modality", "site_order": "site (1 = distal)", "site": "site",
+    "segment": "segment", "series": "segment or site", "panel": "nerve", "unit": "unit", "value": "value", "note": "note",
+    "distance_mm": "distance (mm)", "latency_ms": "onset latency (ms)", "peak_latency_ms": "peak latency (ms)",
+    "amplitude_mv": "amplitude (mV, motor)", "amplitude_uv": "amplitude (µV, sensory)", "amplitude": "amplitude",
+    "duration_ms": "duration (ms)", "area_mvms": "area (mV·ms)", "temperature_c": "temperature (°C)", "lff_hz": "low-frequency filter (Hz)",
+    "f_latency_ms": "F-wave latency (ms)", "f_persistence_pct": "F-wave persistence (%)", "recording_site": "recording site",
+    "velocity_m_s": "velocity (m/s)", "amplitude_reduction_pct": "amplitude reduction (%)", "area_reduction_pct": "area reduction (%)",
+    "duration_increase_pct": "duration increase (%)", "height_cm": "height (cm)", "cold": "limb cold",
+    "first_visit": "first visit", "last_visit": "last visit", "current_treatment": "current treatment",
+    "latest_outcome": "latest outcome", "latest_criteria": "judged by", "visits": "visits", "patients": "patients",
+}
+
+
+def column_label(column: str) -> str:
+    return COLUMN_LABELS.get(column, words(column))
+
+
+# Clinical precision of numbers on screens and in text output (decimals), by quantity.
+PRECISION = {"m/s": 1, "ms": 2, "mV": 1, "µV": 1, "%": 1, "mm": 0, "°C": 1, "mV·ms": 1}
+
+
+def clinical_number(value: float | None, unit: str, missing: str = "—") -> str:
+    """``31.9`` (m/s), ``7.05`` (ms): one decimal for velocities and amplitudes, two for latencies."""
+    if value is None or value != value:
+        return missing
+    return f"{float(value):.{PRECISION.get(unit, 2)}f}"
+
+
+THERAPY_LABELS = {"ivig": "IVIg", "scig": "SCIg", "corticosteroid": "corticosteroid", "plasma_exchange": "plasma exchange",
+                  "rituximab": "rituximab", "efgartigimod": "efgartigimod", "other": "other"}
+
+
+def therapy_label(therapy: str) -> str:
+    return THERAPY_LABELS.get(therapy, words(therapy))
+
+DIAGNOSIS_SHORT = {"cidp": "CIDP", "mmn": "MMN", "gbs": "GBS", "other": "other"}

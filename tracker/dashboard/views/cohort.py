@@ -8,16 +8,17 @@ import datetime as dt
 import streamlit as st
 
 from tracker.criteria import engine
-from tracker.dashboard import figures, reads
+from tracker.dashboard import figures, reads, tables
 from tracker.dashboard.state import database_url
 from tracker.dashboard.widgets import criteria_title, limits_picker
+from tracker.domain.labels import DIAGNOSIS_SHORT
 from tracker.domain.vocabulary import DIAGNOSES
 from tracker.services.cohort import counts_by_diagnosis, csv_bytes, outcome_shares
 
 st.title("Cohort")
 url = database_url()
 cols = st.columns([1, 1, 1, 2])
-diagnosis = cols[0].selectbox("Diagnosis", [None, *DIAGNOSES], key="cohort_diagnosis", format_func=lambda d: "all" if d is None else d)
+diagnosis = cols[0].selectbox("Diagnosis", [None, *DIAGNOSES], key="cohort_diagnosis", format_func=lambda d: "all" if d is None else DIAGNOSIS_SHORT.get(d, d))
 start = cols[1].date_input("Visits from", value=None, key="cohort_start", format="YYYY-MM-DD")
 end = cols[2].date_input("Visits to", value=None, key="cohort_end", format="YYYY-MM-DD", max_value=dt.date.today())
 with cols[3]:
@@ -28,7 +29,7 @@ visits = reads.visits(url, tuple(criteria), limits_name, diagnosis, start, end)
 left, right = st.columns([1, 2])
 with left:
     st.subheader("By diagnosis")
-    st.dataframe(counts_by_diagnosis(visits), hide_index=True, width="stretch", key="cohort_counts")
+    st.dataframe(tables.cohort_visits(counts_by_diagnosis(visits)), hide_index=True, width="stretch", key="cohort_counts")
 with right:
     st.subheader("Outcome per criteria set (share of visits)")
     shares = outcome_shares(visits, criteria)
@@ -36,9 +37,9 @@ with right:
     st.caption("From saved evaluations; “not evaluated” visits have none yet (Patients page → Evaluate all visits).")
 
 st.subheader(f"Visits ({len(visits)})")
-st.dataframe(visits, hide_index=True, width="stretch", key="cohort_visits")
+st.dataframe(tables.cohort_visits(visits), hide_index=True, width="stretch", key="cohort_visits")
 st.download_button(
-    "Download this table (CSV, clinic use: contains patient codes)", csv_bytes(visits),
+    "Download this table (CSV with identifiers as columns; clinic use: contains patient codes)", csv_bytes(visits),
     file_name="cohort_visits.csv", mime="text/csv", key="cohort_download",
 )
 st.caption("For research, use the de-identified export: `ncs-tracker export` (export ids instead of codes, shifted dates, a data dictionary and a manifest).")

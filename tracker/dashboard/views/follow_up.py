@@ -8,7 +8,7 @@ import html
 
 import streamlit as st
 
-from tracker.dashboard import figures, reads, style
+from tracker.dashboard import figures, reads, style, tables
 from tracker.dashboard.state import database_url
 from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker, patient_picker
 from tracker.services.follow_up import PARAMETERS
@@ -99,9 +99,7 @@ if code:
     else:
         st.caption("No clinical scores recorded.")
     with st.expander("Values plotted", expanded=False):
-        shown = fu.points.assign(cold=fu.points["cold"].map({True: "cold", False: ""}))
         st.dataframe(
-            shown[["visit_date", "panel", "series", "value", "unit", "temperature_c", "cold", "note"]],
-            hide_index=True, width="stretch", key="follow_values",
-            column_config={"value": st.column_config.NumberColumn(format="%.2f"), "visit_date": st.column_config.DateColumn("visit")},
+            tables.plotted_values(fu), hide_index=True, width="stretch", key="follow_values",
+            column_config={"visit date": st.column_config.DateColumn("visit date")},
         )

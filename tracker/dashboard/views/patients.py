@@ -6,9 +6,10 @@ from __future__ import annotations
 import streamlit as st
 
 from tracker.criteria.model import Settings
-from tracker.dashboard import reads
+from tracker.dashboard import reads, tables
 from tracker.dashboard.state import choose_patient, database_url, user, writing
 from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker
+from tracker.domain.labels import DIAGNOSIS_SHORT, outcome_label
 from tracker.domain.vocabulary import DIAGNOSES
 from tracker.services.cohort import NOT_EVALUATED
 from tracker.services.evaluation import refresh_evaluations
@@ -20,7 +21,7 @@ st.title("Patients")
 url = database_url()
 left, middle, right = st.columns([2, 1, 2])
 search = left.text_input("Search by code", key="patients_search", placeholder="e.g. DEMO-0")
-diagnosis = middle.selectbox("Diagnosis", [None, *DIAGNOSES], key="patients_diagnosis", format_func=lambda d: "all" if d is None else d)
+diagnosis = middle.selectbox("Diagnosis", [None, *DIAGNOSES], key="patients_diagnosis", format_func=lambda d: "all" if d is None else DIAGNOSIS_SHORT.get(d, d))
 with right:
     # None: each patient's latest visit judged by the set its diagnosis maps to (as check and evaluate do).
     criteria = criteria_picker("Outcome column: criteria set", key="patients_criteria")
@@ -44,12 +45,11 @@ pages = max(1, -(-listing.total // PAGE_ROWS))
 if page > pages:
     st.session_state["patients_page"] = page = pages
     listing = reads.patient_page(url, criteria, limits_name, search, diagnosis, outcome, page, PAGE_ROWS)
-st.selectbox("Latest outcome", [None, *listing.outcomes], key="patients_outcome", format_func=lambda o: "any" if o is None else o.replace("_", " "))
+st.selectbox("Latest outcome", [None, *listing.outcomes], key="patients_outcome", format_func=lambda o: "any" if o is None else outcome_label(o))
 if pages > 1:
     st.number_input(f"Page (of {pages}, {PAGE_ROWS} patients each)", min_value=1, max_value=pages, step=1, key="patients_page")
 total = listing.total
 table = listing.rows.copy()
-table["latest_criteria"] = [criteria_title(c) for c in table["latest_criteria"]]
 table = with_course(table, reads.course(url, rules_id, tuple(table["patient"])))
 st.caption(
     f"{total} patients{f' (page {int(page)} of {pages})' if pages > 1 else ''} · latest outcome = "
@@ -58,9 +58,8 @@ st.caption(
     "(decision support: the classification defers to the treating clinician)"
 )
 st.dataframe(
-    table.rename(columns={"latest_outcome": "latest outcome", "latest_criteria": "judged by"}),
-    hide_index=True, width="stretch",
-    column_config={"first_visit": st.column_config.DateColumn("first visit"), "last_visit": st.column_config.DateColumn("last visit"), "current_treatment": "current treatment"},
+    tables.patient_rows(table), hide_index=True, width="stretch",
+    column_config={"first visit": st.column_config.DateColumn("first visit"), "last visit": st.column_config.DateColumn("last visit")},
 )
 if NOT_EVALUATED in listing.outcomes:
     st.warning("Some latest visits have no saved evaluation with these normal limits; they are shown as “not evaluated”, never as normal.")

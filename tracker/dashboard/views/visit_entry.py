@@ -74,7 +74,10 @@ with tab_form:
                 "site_order": st.column_config.NumberColumn("site order", min_value=1, step=1),
                 "distance_mm": st.column_config.NumberColumn("distance (mm)"), "latency_ms": st.column_config.NumberColumn("latency (ms)"),
                 "amplitude_mv": st.column_config.NumberColumn("amplitude (mV, motor)"), "amplitude_uv": st.column_config.NumberColumn("amplitude (µV, sensory)"),
-                "temperature_c": st.column_config.NumberColumn("temperature (°C)"), "f_latency_ms": st.column_config.NumberColumn("F latency (ms)"),
+                "temperature_c": st.column_config.NumberColumn("temperature (°C)"), "f_latency_ms": st.column_config.NumberColumn("F-wave latency (ms)"),
+                "duration_ms": st.column_config.NumberColumn("duration (ms)"), "area_mvms": st.column_config.NumberColumn("area (mV·ms)"),
+                "peak_latency_ms": st.column_config.NumberColumn("peak latency (ms)"), "lff_hz": st.column_config.NumberColumn("low-frequency filter (Hz)"),
+                "f_persistence_pct": st.column_config.NumberColumn("F-wave persistence (%)"),
             },
         )
         submitted = st.form_submit_button("Check and save", type="primary")

@@ -3,13 +3,16 @@ warnings, the closest miss and what changed since the previous visit."""
 
 from __future__ import annotations
 
+import html
+
 import pandas as pd
 import streamlit as st
 
 from tracker.criteria.model import Settings
-from tracker.dashboard import reads, style
+from tracker.dashboard import reads, style, tables
 from tracker.dashboard.state import database_url, writing
 from tracker.dashboard.widgets import CRITERIA_TITLES, criteria_title, limits_picker, patient_picker
+from tracker.domain.labels import STATUS_LABELS, outcome_label, status_label, words
 from tracker.services import review
 from tracker.services.evaluation import check_visit, default_criteria
 
@@ -52,42 +55,54 @@ if code:
     for card, (criteria_id, result) in zip(cards, check.results.items()):
         outcome = result.outcomes.iloc[0]
         group, shape, colour = style.outcome_group(str(outcome["outcome"]))
-        extra = " · ".join(f"{k.replace('_', ' ')}: {outcome[k]}" for k in result.extra_keys)
+        extra = " · ".join(f"{words(k)}: {outcome_label(outcome[k])}" for k in result.extra_keys)
         card.markdown(
-            f"<div class='ncs-badge' style='border-color:{colour}'>{criteria_title(criteria_id)}</div>"
-            f"<h3 style='color:{colour};margin:0.2rem 0'>{shape} {str(outcome['outcome']).replace('_', ' ')}</h3>"
-            f"<small>{outcome.get('rule', '')}{'<br>' + extra if extra else ''}</small>",
+            f"<div class='ncs-badge' style='border-color:{colour}'>{html.escape(criteria_title(criteria_id))}</div>"
+            f"<h3 style='color:{colour};margin:0.2rem 0'>{shape} {html.escape(outcome_label(outcome['outcome']))}</h3>"
+            f"<small>{html.escape(tables.in_words(str(outcome.get('rule', '') or '')))}{'<br>' + html.escape(extra) if extra else ''}</small>",
             unsafe_allow_html=True,
         )
 
     visit = next(v for v in record.visits if v.visit_date == visit_date)
     unusual = review.unusual_values(visit)
     if unusual:
-        st.warning("**Unusual values** — " + "\n".join(f"\n- {m}" for m in unusual))
+        st.warning("**Unusual values** — " + "\n".join(f"\n- {tables.in_words(m)}" for m in unusual))
     if len(check.warnings):
-        st.warning("**Temperature** — " + "\n".join(f"\n- {m}" for m in check.warnings["message"]))
+        st.warning("**Temperature** — " + "\n".join(f"\n- {tables.in_words(m)}" for m in check.warnings["message"]))
     for criteria_id in check.results:
+        title = criteria_title(criteria_id)
         miss = check.closest.get(criteria_id)
         if miss is not None and len(miss):
-            st.markdown(f"**Closest miss ({criteria_id}):** {miss.iloc[0]['text']}")
+            st.markdown(f"**Closest miss ({title}):** {tables.closest_miss_words(miss.iloc[0])}")
         changes = check.changes.get(criteria_id)
         if check.previous_date is None:
-            st.caption(f"{criteria_id}: first visit, nothing to compare.")
+            st.caption(f"{title}: first visit, nothing to compare.")
         elif changes is not None and len(changes):
-            st.markdown(f"**Changed since {check.previous_date.isoformat()} ({criteria_id}):** " + "; ".join(f"{c.nerve} {c.side} {c.item} {c.change}" for c in changes.itertuples()))
+            st.markdown(f"**Changed since {check.previous_date.isoformat()} ({title})**")
+            st.dataframe(tables.changes_table(changes), hide_index=True, width="content", key=f"review_changes_{criteria_id}")
         else:
-            st.caption(f"{criteria_id}: no finding changed since {check.previous_date.isoformat()}.")
+            st.caption(f"{title}: no finding changed since {check.previous_date.isoformat()}.")
 
-    measured, segments = review.measurement_tables(visit)
+    measured, segments = tables.measurement_display(*review.measurement_tables(visit))
     tab_trace, tab_measured = st.tabs(["Criteria trace", "Measurements and segments"])
     with tab_trace:
         for criteria_id, result in check.results.items():
             st.subheader(criteria_title(criteria_id))
-            trace = review.trace_table(result.findings)
-            for nerve_label, rows in trace.groupby("nerve", sort=True):
+            by_nerve, footnotes = tables.trace_tables(result.findings)
+            for nerve_label, rows in by_nerve.items():
                 st.markdown(f"**{nerve_label}**")
-                st.dataframe(rows.drop(columns=["nerve"]).style.map(style.status_css, subset=["status"]), hide_index=True, width="stretch")
-            st.caption("Status: ▲ met · ○ not met · ? not evaluable (missing data or a precondition not fulfilled — never read as normal). * = value from memory, not verified against the publication.")
+                st.dataframe(
+                    rows.style.map(style.status_css, subset=["verdict"]), hide_index=True, width="stretch",
+                    column_config={"criterion": st.column_config.TextColumn(width="medium"), "verdict": st.column_config.TextColumn(width="large"),
+                                   "source": st.column_config.TextColumn(width="small")},
+                )
+            if footnotes:
+                st.caption("Sources: " + " · ".join(f"[{n}] {tables.in_words(text)}" for n, text in enumerate(footnotes, start=1)))
+        st.caption(
+            "Verdict: " + " · ".join(status_label(s) for s in STATUS_LABELS)
+            + " (not evaluable = a measurement is missing, never read as normal; not applicable = an exclusion or a published "
+            "precondition). * = value from memory, not verified against the publication."
+        )
     with tab_measured:
         st.markdown("**Stimulation sites**")
         st.dataframe(measured, hide_index=True, width="stretch")
