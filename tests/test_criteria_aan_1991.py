@@ -26,7 +26,7 @@ def test_healthy_study_meets_no_item():
     assert outcome(result) == "not_met"
     assert outcome(result, "items_met") == 0
     assert not (result.findings["status"] == MET).any()
-    assert list(result.outcomes.columns) == ["visit_key", "outcome", "rule", "items_met"]
+    assert list(result.outcomes.columns) == ["visit_key", "outcome", "rule", "items_met", "undecided_items"]
     assert result.extra_keys == ("items_met",)
 
 
@@ -302,9 +302,11 @@ def test_missing_data_is_not_evaluable_and_leaves_the_outcome_unsettled():
     # AAN 1991 (Neurology 1991): CV and DML met (2 items); F-waves not recorded → item 4 undecided, never normal
     result = evaluate([Visit(_demyelinating(None, None))], ID)
     assert finding(result, "median", "f_latency")["status"] == NOT_EVALUABLE
-    assert outcome(result) == "not_met"
-    assert "not settled" in outcome(result, "rule")
+    # DESIGN.md §5: missing data that could make the set met leave it undecided, the items listed
+    assert outcome(result) == "undecided"
+    assert "undecided" in outcome(result, "rule")
     assert "4 (F-waves)" in outcome(result, "rule")
+    assert {f["item"] for f in outcome(result, "undecided_items")} == {"f_latency", "f_absent"}
 
 
 def test_unknown_distal_amplitude_leaves_the_threshold_unchosen():

@@ -143,3 +143,45 @@ def test_sensory_supportive_item():
     edge = evaluate([Visit([Sensory("median", amplitude=25, cv=40.0)])], ID)
     assert outcome(slow, "sensory_supportive") == MET
     assert outcome(edge, "sensory_supportive") == NOT_MET
+
+
+# ---- undecided (DESIGN.md §5): missing data that could meet an item are never "not met"
+
+def _listed(result) -> set:
+    return {(f["nerve"], f["item"]) for f in outcome(result, "undecided_items")}
+
+
+def test_f_waves_not_recorded_leave_a_normal_study_undecided():
+    # EFNS/PNS 2010 (Van den Bergh et al., Eur J Neurol 2010): one parameter in one nerve is "possible", so an
+    # unrecorded F-wave study could change "not met"; invented study, normal otherwise
+    nerves = healthy_four_nerves()
+    nerves[0] = Motor("median", f_latency=None)
+    result = evaluate([Visit(nerves)], ID)
+    assert outcome(result) == "undecided"
+    assert _listed(result) == {("median", "f_latency"), ("median", "f_absent")}
+    complete = evaluate([Visit(healthy_four_nerves())], ID)
+    assert outcome(complete) == "not_met" and outcome(complete, "undecided_items") == ()
+
+
+@pytest.mark.parametrize("dml, expected", [(6.59, "undecided"), (6.6, "possible"), (6.61, "possible")])
+def test_a_reached_level_stays_and_lists_what_could_raise_it(dml, expected):
+    # EFNS/PNS 2010 (Van den Bergh et al., Eur J Neurol 2010): (a) distal latency ≥ 150 % of ULN (median 4.4 ms
+    # → 6.6 ms) in ≥ 2 nerves is definite; one nerve is possible. The ulnar latency is not recorded: it could
+    # make (a) two nerves, so the level is kept and the ulnar latency listed; below the threshold it is undecided.
+    ulnar = Motor("ulnar", amplitudes=(9.0, 8.6, 8.4), durations=(5.5, 5.8, 6.0), dml=None)
+    result = evaluate([Visit([Motor("median", dml=dml), ulnar])], ID)
+    assert outcome(result) == expected
+    assert ("ulnar", "dml") in _listed(result)
+    recorded = evaluate([Visit([Motor("median", dml=dml), Motor("ulnar", amplitudes=(9.0, 8.6, 8.4), durations=(5.5, 5.8, 6.0), dml=2.8)])], ID)
+    assert outcome(recorded) == ("not_met" if dml < 6.6 else "possible") and outcome(recorded, "undecided_items") == ()
+
+
+def test_not_applicable_items_never_leave_an_outcome_undecided():
+    # EFNS/PNS 2010: tibial probable block is excluded (restated table, Ann Clin Transl Neurol 2021, Table 2) and
+    # a distal CMAP below 20 % of LLN fails the block precondition — both settled, so "not met" stays
+    tibial = Motor("tibial", amplitudes=(10.0, 8.5), durations=(5.5, 6.5), dml=4.5, cv=46, f_latency=50, segment_mm=400)
+    low = Motor("median", amplitudes=(0.79, 0.3), durations=(5.5, 5.8), dml=3.8, cv=55, f_latency=28)
+    result = evaluate([Visit([tibial])], ID)
+    assert finding(result, "tibial", "probable_cb")["status"] == NOT_APPLICABLE
+    assert outcome(result) == "not_met" and outcome(result, "undecided_items") == ()
+    assert finding(evaluate([Visit([low])], ID), "median", "cb")["status"] == NOT_APPLICABLE

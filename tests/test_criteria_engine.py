@@ -155,3 +155,44 @@ def test_statuses_are_the_contract_words_and_every_gap_says_why(cohort, criteria
     assert set(statuses) <= set(STATUSES)
     gaps = result.findings[statuses.isin([NOT_EVALUABLE, NOT_APPLICABLE])]
     assert gaps["reason"].map(lambda r: isinstance(r, str) and r.strip() != "").all()
+
+
+def test_met_turning_not_evaluable_and_outcome_turning_undecided_are_changes():
+    # DESIGN.md §5 (project contract): a met finding lost for want of data is reported, and so is the outcome.
+    # EFNS/PNS 2010 (Van den Bergh et al., Eur J Neurol 2010): median distal latency 7.0 ms ≥ 150 % of ULN 4.4 ms
+    # in one nerve → possible; at the next visit (invented) the latency is not recorded → undecided.
+    from tracker.check_report import json_payload, text
+    from tracker.services.evaluation import VisitCheck
+    from tracker.services.limit_sets import LimitSetInfo
+
+    criteria = "efns-pns-2010-cidp"
+    first = Visit([Motor("median", dml=7.0)], patient="T-9", visit_date="2024-01-10")
+    second = Visit([Motor("median", dml=None)], patient="T-9", visit_date="2024-06-10")
+    v, t, s = frames([first, second])
+    result = engine.evaluate(v, t, s, limits.default_limits(), [criteria])[criteria]
+    assert result.outcomes["outcome"].tolist() == ["possible", "undecided"]
+    later = v["visit_key"].iloc[1]
+    changes = engine.changes_between_visits(v, result)
+    dml = changes[(changes["visit_key"] == later) & (changes["item"] == "dml")]
+    assert dml["change"].tolist() == ["met → not evaluable (want of data)"]
+    moved = engine.outcome_changes(v, result)
+    assert moved[["previous_outcome", "outcome"]].values.tolist() == [["possible", "undecided"]]
+    # check text and JSON say it
+    only = engine.evaluate(v, t, s, limits.default_limits(), [criteria])[criteria]
+    from tracker.services.evaluation import _only
+
+    check = VisitCheck(
+        patient="T-9", visit_date=pd.Timestamp("2024-06-10").date(), visit_key=int(later), phenotype=None,
+        limits=LimitSetInfo(1, "default", 1, 0, True, None), results={criteria: _only(only, int(later))},
+        warnings=pd.DataFrame(columns=["message"]), closest={criteria: pd.DataFrame()},
+        changes={criteria: changes[changes["visit_key"] == later]}, previous_date=pd.Timestamp("2024-01-10").date(),
+        outcome_changes={criteria: ("possible", "undecided")},
+    )
+    words = text(check)
+    assert "outcome: possible → undecided" in words and "met → not evaluable" in words
+    assert "Undecided — not evaluable for want of data" in words
+    payload = json_payload(check)
+    assert payload["outcome"] == "undecided"
+    assert {(f["nerve"], f["item"]) for f in payload["undecided_items"]} >= {("median", "dml")}
+    assert payload["changes_since_previous"][0] == {"nerve": None, "side": None, "item": "outcome", "change": "possible → undecided",
+                                                    "previous": "possible", "current": "undecided"}

@@ -30,7 +30,7 @@ def test_healthy_study_has_no_block():
     result = evaluate([Visit(healthy_four_nerves() + [Sensory("median"), Sensory("sural", amplitude=15)])], ID)
     assert outcome(result) == "not_met"
     assert outcome(result, "sensory") == "normal"
-    assert list(result.outcomes.columns) == ["visit_key", "outcome", "rule", "sensory"]
+    assert list(result.outcomes.columns) == ["visit_key", "outcome", "rule", "sensory", "undecided_items"]
     assert result.extra_keys == ("sensory",)
 
 
@@ -178,8 +178,10 @@ def test_missing_area_is_not_evaluable_even_with_an_amplitude_drop():
     row = finding(result, "median", "definite_cb")
     assert row["status"] == NOT_EVALUABLE
     assert "area not recorded" in row["reason"] and "75" in row["reason"]
-    assert outcome(result) == "not_met"
-    assert "not settled" in outcome(result, "rule")
+    # DESIGN.md §5: the area could show a block, so the outcome is undecided, never "not met"
+    assert outcome(result) == "undecided"
+    assert "undecided" in outcome(result, "rule")
+    assert [(f["nerve"], f["item"]) for f in outcome(result, "undecided_items")][:1] == [("median", "definite_cb")]
 
 
 def test_missing_duration_matters_only_once_the_area_criterion_is_reached():
@@ -246,7 +248,8 @@ def test_cold_limb_exclusion_setting_applies():
     nerve = median(areas=(20.0, 8.0), temperature=31.0)
     assert outcome(evaluate([Visit([nerve])], ID)) == "definite"
     excluded = evaluate([Visit([nerve])], ID, Settings(cold_limbs="exclude"))
-    assert outcome(excluded) == "not_met"
+    # excluded data are wanting data: a warm recording could show the block (DESIGN.md §5, undecided)
+    assert outcome(excluded) == "undecided"
     assert "cold" in finding(excluded, "median", "definite_cb")["reason"]
 
 
@@ -262,5 +265,26 @@ def test_one_finding_per_nerve_and_item():
 def test_visit_without_proximal_stimulation_says_so():
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): block needs a proximal stimulation site in some motor nerve
     result = evaluate([Visit([Motor("median", amplitudes=(8.0,), durations=(5.5,)), Sensory("median")])], ID)
-    assert outcome(result) == "not_met"
+    assert outcome(result) == "undecided"  # DESIGN.md §5: a block could lie in the unstimulated nerve
     assert "no motor segment with proximal stimulation" in outcome(result, "rule")
+
+
+def test_amplitude_drop_without_area_is_undecided_not_negative():
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010) defines block by negative-peak area; a 56.7 % amplitude drop
+    # (6.0 → 2.6 mV, invented) with no area recorded could be a definite block (area ≥ 50 %): undecided, listed
+    result = evaluate([Visit([median(areas=(None, None), amplitudes=(6.0, 2.6))])], ID)
+    assert outcome(result) == "undecided"
+    assert ("median", "definite_cb") in {(f["nerve"], f["item"]) for f in outcome(result, "undecided_items")}
+    # with the area recorded (20 → 18 mV·ms, 10 %) the block is judged and the outcome decided
+    decided = evaluate([Visit([median(areas=(20.0, 18.0), amplitudes=(6.0, 2.6))])], ID)
+    assert outcome(decided) == "not_met" and outcome(decided, "undecided_items") == ()
+
+
+def test_probable_block_stays_and_lists_the_segment_that_could_be_definite():
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): a reached level is kept while missing data could raise it.
+    # Median forearm area 40 % (probable (i), long upper-limb segment) and the ulnar forearm area missing: that
+    # segment could be definite (≥ 50 %), so "probable" stays with it listed. Invented values.
+    ulnar = Motor("ulnar", amplitudes=(9.0, 3.0, 3.0), areas=(25.0, None, None), durations=(5.5, 5.7, 5.9), dml=2.8)
+    result = evaluate([Visit([median(areas=(20.0, 12.0)), ulnar])], ID)
+    assert outcome(result) == "probable"
+    assert ("ulnar", "definite_cb") in {(f["nerve"], f["item"]) for f in outcome(result, "undecided_items")}

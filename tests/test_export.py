@@ -330,7 +330,7 @@ def test_manifest_names_versions_filters_counts_and_hashes(demo, tmp_path):
     import tracker
 
     assert manifest["tool_version"] == tracker.__version__ and manifest["caution"] == tracker.CAUTION
-    assert {c["id"]: c["version"] for c in manifest["criteria"]}["efns-pns-2010-cidp"] == "2010.1"
+    assert {c["id"]: c["version"] for c in manifest["criteria"]}["efns-pns-2010-cidp"] == "2010.2"
     assert manifest["limits"] == {"name": "default", "version": 1}
     assert manifest["filters"]["outcome"] == ["efns-pns-2010-cidp=definite"]
     ids = demo.export_ids()
@@ -354,7 +354,7 @@ def test_excel_opens_with_openpyxl_and_has_the_dictionary_sheet(demo, tmp_path):
     velocity = dict((row[0], row) for row in dictionary[1:])["segment_velocity_m_per_s"]
     assert velocity[2] == "m/s" and velocity[3] == "decimal number"
     verdict = dict((row[0], row) for row in dictionary[1:])["efns2010_cidp__cv"]
-    assert "efns-pns-2010-cidp version 2010.1" in verdict[5] and "normal limits default version 1" in verdict[5]
+    assert "efns-pns-2010-cidp version 2010.2" in verdict[5] and "normal limits default version 1" in verdict[5]
     assert book["data"].max_row == result.rows + 1
     # Fixed document dates (byte-identical files).
     assert book.properties.created == book.properties.modified == dt.datetime(1980, 1, 1)

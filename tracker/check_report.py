@@ -51,6 +51,7 @@ def text(check: VisitCheck) -> str:
         lines.append(f"Outcome: {str(outcome['outcome']).upper()} — {outcome.get('rule', '')}")
         for key in result.extra_keys:
             lines.append(f"{key.replace('_', ' ')}: {outcome[key]}")
+        lines += _undecided_lines(outcome)
         for (nerve, side, modality), group in result.findings.groupby(["nerve", "side", "modality"], sort=True):
             rows = []
             for f in group.itertuples():
@@ -72,9 +73,13 @@ def text(check: VisitCheck) -> str:
             lines += ["", f"Closest miss: {miss.iloc[0]['text']}"]
         changes = check.changes.get(criteria_id)
         if check.previous_date is not None:
-            if changes is not None and len(changes):
+            moved = check.outcome_changes.get(criteria_id)
+            if (changes is not None and len(changes)) or moved:
                 lines += ["", f"Changed since the previous visit ({check.previous_date.isoformat()}):"]
-                lines += [f"  {c.nerve} {c.side} {c.item} ({c.parameter}): {c.change}" for c in changes.itertuples()]
+                if moved:
+                    lines.append(f"  outcome: {moved[0]} → {moved[1]}")
+                if changes is not None:
+                    lines += [f"  {c.nerve} {c.side} {c.item} ({c.parameter}): {c.change}" for c in changes.itertuples()]
             else:
                 lines += ["", f"No finding changed since the previous visit ({check.previous_date.isoformat()})."]
     if len(check.warnings):
@@ -84,6 +89,19 @@ def text(check: VisitCheck) -> str:
         lines += [f"  [{n}] {s}" for s, n in sources.items()]
     lines += ["", CAUTION]
     return "\n".join(lines)
+
+
+def _undecided_lines(outcome) -> list[str]:
+    """The findings not evaluable for want of data that could make the set met or raise its level."""
+    items = outcome.get("undecided_items")
+    if not isinstance(items, (tuple, list)) or not items:
+        return []
+    head = ("Undecided — not evaluable for want of data, and could make the set met:" if outcome["outcome"] == "undecided"
+            else "Level reached; not evaluable for want of data, and could raise it:")
+    return [head] + [
+        f"  {f.get('nerve')} {f.get('side')} {f.get('item')} ({f.get('parameter')}" + (f", {f['segment']}" if f.get("segment") else "") + f"): {f.get('reason')}"
+        for f in items
+    ]
 
 
 def json_payload(check: VisitCheck) -> dict[str, Any] | list[dict[str, Any]]:
@@ -101,9 +119,11 @@ def json_payload(check: VisitCheck) -> dict[str, Any] | list[dict[str, Any]]:
                 **{k: v for k, v in body.items() if k != "criteria"},
                 "warnings": list(check.warnings["message"]) if len(check.warnings) else [],
                 "closest_miss": check.closest[criteria_id].iloc[0]["text"] if len(check.closest.get(criteria_id, [])) else None,
-                "changes_since_previous": [
-                    {"nerve": c.nerve, "side": c.side, "item": c.item, "change": c.change} for c in check.changes.get(criteria_id, []).itertuples()
-                ] if check.previous_date is not None else None,
+                "changes_since_previous": (
+                    [{"nerve": None, "side": None, "item": "outcome", "change": f"{moved[0]} → {moved[1]}", "previous": moved[0], "current": moved[1]}
+                     for moved in [check.outcome_changes.get(criteria_id)] if moved]
+                    + [{"nerve": c.nerve, "side": c.side, "item": c.item, "change": c.change} for c in check.changes.get(criteria_id, []).itertuples()]
+                ) if check.previous_date is not None else None,
                 "caution": CAUTION,
             }
         )

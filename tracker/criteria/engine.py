@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 
 from tracker.criteria import features, memo
-from tracker.criteria.model import MET, NOT_MET, SetResult, Settings
+from tracker.criteria.model import MET, NOT_EVALUABLE, NOT_MET, UNDECIDED, SetResult, Settings
 
 # Criteria id → module under tracker.criteria.sets (each has ID and evaluate()).
 REGISTRY = {
@@ -112,10 +112,11 @@ def describe_miss(row) -> str:
 
 
 def changes_between_visits(visits: pd.DataFrame, result: SetResult) -> pd.DataFrame:
-    """Findings that turned met or not met between consecutive visits of the same patient.
+    """Findings that turned met or not met between consecutive visits of the same patient, and met findings
+    that became not evaluable (or the reverse): a met finding lost for want of data is a change to report.
 
-    ``visits`` needs ``visit_key``, ``patient``, ``visit_date``. Findings not evaluable on either visit are
-    not reported as changes.
+    ``visits`` needs ``visit_key``, ``patient``, ``visit_date``. Other changes involving not-evaluable or
+    not-applicable findings are not reported.
     """
     order = visits[["visit_key", "patient", "visit_date"]].sort_values(["patient", "visit_date"])
     order["previous_key"] = order.groupby("patient")["visit_key"].shift(1)
@@ -125,9 +126,31 @@ def changes_between_visits(visits: pd.DataFrame, result: SetResult) -> pd.DataFr
     current = findings.merge(pairs[["visit_key", "previous_key", "patient", "visit_date"]], on="visit_key")
     previous = findings.rename(columns={"visit_key": "previous_key", "status": "previous_status", "value": "previous_value"})
     merged = current.merge(previous[["previous_key", *key, "previous_status", "previous_value"]], on=["previous_key", *key])
+    status, previous = merged["status"], merged["previous_status"]
     turned = merged[
-        ((merged["status"] == MET) & (merged["previous_status"] == NOT_MET))
-        | ((merged["status"] == NOT_MET) & (merged["previous_status"] == MET))
+        ((status == MET) & previous.isin([NOT_MET, NOT_EVALUABLE])) | (status.isin([NOT_MET, NOT_EVALUABLE]) & (previous == MET))
     ].copy()
-    turned["change"] = np.where(turned["status"] == MET, "turned met", "turned not met")
+    turned["change"] = np.select(
+        [(turned["status"] == MET) & (turned["previous_status"] == NOT_MET), turned["status"] == MET, turned["status"] == NOT_MET],
+        ["turned met", "turned met (was not evaluable)", "turned not met"],
+        default="met → not evaluable (want of data)",
+    )
     return turned.reset_index(drop=True)
+
+
+def outcome_changes(visits: pd.DataFrame, result: SetResult) -> pd.DataFrame:
+    """Per visit with a previous visit of the same patient whose outcome differs: ``visit_key``,
+    ``previous_outcome``, ``outcome`` (e.g. definite → undecided)."""
+    order = visits[["visit_key", "patient", "visit_date"]].drop_duplicates("visit_key").sort_values(["patient", "visit_date"])
+    order["previous_key"] = order.groupby("patient")["visit_key"].shift(1)
+    outcome = result.outcomes.drop_duplicates("visit_key").set_index("visit_key")["outcome"]
+    pairs = order.dropna(subset=["previous_key"])
+    frame = pd.DataFrame(
+        {
+            "visit_key": pairs["visit_key"].to_numpy(),
+            "previous_outcome": outcome.reindex(pairs["previous_key"].astype(pairs["visit_key"].dtype)).to_numpy(),
+            "outcome": outcome.reindex(pairs["visit_key"]).to_numpy(),
+        }
+    )
+    frame = frame.dropna()
+    return frame[frame["previous_outcome"] != frame["outcome"]].reset_index(drop=True)

@@ -11,6 +11,8 @@ MET, NOT_MET, NOT_EVALUABLE = "met", "not_met", "not_evaluable"
 # of the pattern, no recordable response): not want of data, so it never leaves an outcome undecided.
 NOT_APPLICABLE = "not_applicable"
 STATUSES = (MET, NOT_MET, NOT_EVALUABLE, NOT_APPLICABLE)
+# Outcome of a CIDP or MMN set when findings not evaluable for want of data could make it met.
+UNDECIDED = "undecided"
 
 # Columns of a findings table (one row per nerve × parameter × criteria item).
 FINDING_COLUMNS = [
@@ -73,7 +75,9 @@ class SetResult:
 
     ``findings``: per-nerve findings (``FINDING_COLUMNS``). ``outcomes``: one row per visit with column
     ``outcome`` and any extra keys of that set (e.g. ``motor``, ``sensory``, ``items_met``) and ``rule``
-    (which combination rule decided the outcome).
+    (which combination rule decided the outcome); the CIDP and MMN sets add ``undecided_items``: per visit a
+    tuple of the findings not evaluable for want of data that could make the set met or raise its level
+    (plain dicts: nerve, side, modality, item, parameter, segment, reason), empty when the outcome is settled.
     """
 
     criteria: str

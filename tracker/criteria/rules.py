@@ -7,7 +7,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from tracker.criteria.model import FINDING_COLUMNS, MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, Settings
+from tracker.criteria.model import FINDING_COLUMNS, MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, UNDECIDED, Settings
 from tracker.criteria.thresholds import COMPARATORS
 from tracker.domain.conduction import quantise_array
 
@@ -300,3 +300,62 @@ def other_outside(sets: pd.DataFrame, item: str, others: list[str], visits: pd.I
 
 def describe(comparator: str) -> str:
     return COMPARATORS[comparator]
+
+
+# ---------------------------------------------------------------- undecided outcomes
+
+def with_status(findings: pd.DataFrame, mask: np.ndarray, status: str) -> pd.DataFrame:
+    """A copy of ``findings`` whose status is ``status`` where ``mask`` holds (a what-if of missing data)."""
+    changed = findings.copy(deep=False)
+    statuses = findings["status"].to_numpy(dtype=object, copy=True)
+    statuses[np.asarray(mask, dtype=bool)] = status
+    changed["status"] = pd.Series(statuses, index=findings.index, dtype=object)
+    return changed
+
+
+def wanting(findings: pd.DataFrame) -> np.ndarray:
+    """Findings not evaluable for want of data (not-applicable findings are settled)."""
+    return findings["status"].to_numpy(dtype=object) == NOT_EVALUABLE
+
+
+ITEM_FIELDS = ("nerve", "side", "modality", "item", "parameter", "segment", "reason")
+
+
+def open_items(findings: pd.DataFrame, keys: pd.Index) -> pd.Series:
+    """Per visit (``keys``): a tuple of plain dicts, one per finding of ``findings`` (empty where none)."""
+    empty = pd.Series([()] * len(keys), index=keys, dtype=object)
+    if findings.empty:
+        return empty
+    columns = [findings[c].to_numpy(dtype=object) if c in findings else np.full(len(findings), None, dtype=object) for c in ITEM_FIELDS]
+    rows = [
+        {field: (value if isinstance(value, str) and value else None) for field, value in zip(ITEM_FIELDS, values)}
+        for values in zip(*columns)
+    ]
+    grouped = pd.Series(rows, index=findings["visit_key"].to_numpy(), dtype=object).groupby(level=0).agg(tuple)
+    return grouped.reindex(keys).where(lambda s: s.notna(), None).combine_first(empty).astype(object)
+
+
+def settle(outcome: pd.Series, rule: pd.Series, best: pd.Series, ranks: dict[str, int], candidates: pd.DataFrame, keys: pd.Index,
+           *, note: bool = True) -> tuple[pd.Series, pd.Series, pd.Series]:
+    """Where ``best`` (the outcome if missing data turned out favourable) ranks above ``outcome``: a not-met
+    outcome becomes ``undecided`` and a reached level stays; the not-evaluable ``candidates`` of those visits
+    are listed (and, with ``note``, named in the rule). Elsewhere nothing changes and nothing is listed.
+
+    Returns (outcome, rule, undecided_items) over ``keys``.
+    """
+    actual = outcome.map(lambda o: ranks.get(o, 0)).to_numpy(dtype=int)
+    possible = best.reindex(keys).map(lambda o: ranks.get(o, 0)).to_numpy(dtype=int)
+    raised = pd.Series(possible > actual, index=keys)
+    outcome, rule = outcome.copy(), rule.copy()
+    lowest = min(ranks, key=ranks.get)
+    outcome[raised & (outcome == lowest)] = UNDECIDED
+    chosen = candidates[candidates["visit_key"].isin(keys[raised.to_numpy()])]
+    items = open_items(chosen, keys)
+    if note and raised.any():
+        def words(found: tuple) -> str:
+            names = [" ".join(str(f[k]) for k in ("nerve", "side", "item") if f.get(k)) for f in found]
+            shown = ", ".join(names[:6]) + (f" and {len(names) - 6} more" if len(names) > 6 else "")
+            return f"; undecided: {len(names)} finding{'s' if len(names) != 1 else ''} not evaluable for want of data could change the outcome ({shown})"
+        where = raised.to_numpy() & (items.map(len).to_numpy() > 0)
+        rule[where] = rule[where].astype(str) + items[where].map(words)
+    return outcome, rule, items

@@ -6,7 +6,7 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
@@ -85,6 +85,8 @@ class VisitCheck:
     closest: dict[str, pd.DataFrame]
     changes: dict[str, pd.DataFrame]
     previous_date: dt.date | None
+    # Criteria id → (previous outcome, outcome) where the outcome differs from the previous visit's.
+    outcome_changes: dict[str, tuple[str, str]] = field(default_factory=dict)
 
 
 def check_visit(session: Session, code: str, *, visit_date: dt.date | None, criteria: list[str] | None, limits_name: str | None, settings: Settings | None = None) -> VisitCheck:
@@ -122,7 +124,14 @@ def check_visit(session: Session, code: str, *, visit_date: dt.date | None, crit
         closest={cid: engine.closest_miss(r) for cid, r in current.items()},
         changes={cid: _changes_at(visit_frame, r, chosen.id) for cid, r in results.items()},
         previous_date=previous.visit_date if previous else None,
+        outcome_changes={cid: _outcome_change_at(visit_frame, r, chosen.id) for cid, r in results.items() if _outcome_change_at(visit_frame, r, chosen.id)},
     )
+
+
+def _outcome_change_at(visits: pd.DataFrame, result: SetResult, visit_key: int) -> tuple[str, str] | None:
+    changed = engine.outcome_changes(visits, result)
+    changed = changed[changed["visit_key"] == visit_key]
+    return (str(changed["previous_outcome"].iloc[0]), str(changed["outcome"].iloc[0])) if len(changed) else None
 
 
 def _changes_at(visits: pd.DataFrame, result: SetResult, visit_key: int) -> pd.DataFrame:
@@ -283,6 +292,9 @@ def to_json_many(result: SetResult, visit_keys: list[int]) -> dict[int, dict[str
         payload = {"criteria": result.criteria, "criteria_version": result.version, "outcome": outcome["outcome"], "rule": rule if isinstance(rule, str) else None}
         for extra in result.extra_keys:
             payload[extra] = _json_safe(outcome[extra])
+        if "undecided_items" in outcome:  # the CIDP and MMN sets (DESIGN.md §5)
+            items = outcome["undecided_items"]
+            payload["undecided_items"] = _json_safe(list(items)) if isinstance(items, (tuple, list)) else []
         payload["nerves"] = nerves[key]
         payloads[key] = payload
     return payloads

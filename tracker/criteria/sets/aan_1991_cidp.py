@@ -270,7 +270,7 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
         text = f"{met_count} of 4 items met" + (f": {', '.join(names)}" if names else "") + f"; ≥ {ITEMS_NEEDED} needed"
         if met_count < ITEMS_NEEDED and open_count and met_count + open_count >= ITEMS_NEEDED:
             open_items = [f"{n} ({ITEMS[n][2]})" for n, hit in zip(ITEMS, open_flags) if hit]
-            text += f"; outcome not settled: item {', '.join(open_items)} not evaluable in enough nerves for want of data"
+            text += f"; undecided: item {', '.join(open_items)} not evaluable in enough nerves for want of data"
         return text
 
     # Few visits differ in these flags: each combination's text is written once and spread over the visits.
@@ -279,5 +279,16 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
         *(np.asarray(met_items[n], dtype=bool).reshape(len(keys)) for n in ITEMS),
         *(np.asarray(undecided[n], dtype=bool).reshape(len(keys)) for n in ITEMS),
     )
-    outcomes = pd.DataFrame({"visit_key": keys, "outcome": outcome, "rule": list(texts), "items_met": items_met})
+    # Undecided: items that more data could still meet, enough of them to reach the 3 needed.
+    best = pd.Series(np.where(items_met + open_count >= ITEMS_NEEDED, "met", outcome), index=keys)
+    open_rows = np.zeros(len(found), dtype=bool)
+    visit = found["visit_key"].to_numpy()
+    item = found["item"].to_numpy(dtype=object)
+    for number, (names, _, _) in ITEMS.items():
+        open_rows |= np.isin(item, list(names)) & np.isin(visit, keys[undecided[number]])
+    open_rows &= rules.wanting(found)
+    outcome, rule, items = rules.settle(pd.Series(outcome, index=keys), pd.Series(list(texts), index=keys, dtype=object), best,
+                                        {"not_met": 0, "met": 1}, found[open_rows], keys, note=False)
+    outcomes = pd.DataFrame({"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "items_met": items_met,
+                             "undecided_items": items.to_numpy()})
     return SetResult(ID, load(ID).version, found, outcomes, extra_keys=("items_met",))

@@ -390,6 +390,23 @@ def decide(phenotype: str, level: str, motor_rule: str, motor_judged: bool, abno
     return NOT_MET, f"sensory: {sensory_cidp_text}"
 
 
+RANKS = {NOT_MET: 0, "possible_cidp": 1, "cidp": 2}
+
+
+def combine(motor: pd.DataFrame, sensory: pd.DataFrame, cidp_sensory: pd.DataFrame, phenotypes: pd.Series, keys: pd.Index,
+            settings: Settings) -> tuple[pd.Series, pd.Series, pd.Series, pd.Series, pd.Series]:
+    """(outcome, rule, motor level, abnormal sensory nerves, normal sensory nerves) per visit."""
+    level, motor_rule = motor_levels(_nerve_table(motor, settings, keys, MET), keys)
+    motor_judged = keys.isin(motor.loc[np.isin(motor["status"].to_numpy(dtype=object), [MET, NOT_MET]), "visit_key"].unique())
+    abnormal, normal = sensory_counts(sensory, settings, keys)
+    cidp_met, cidp_text = sensory_cidp(cidp_sensory, settings, keys)
+    # Visits share few combinations of these inputs: each combination is decided once.
+    decided = rules.per_distinct(decide, phenotypes, level, motor_rule, motor_judged, abnormal, normal, cidp_met, cidp_text)
+    outcome = pd.Series([d[0] for d in decided], index=keys, dtype=object)
+    rule = pd.Series([d[1] for d in decided], index=keys, dtype=object)
+    return outcome, rule, level, abnormal, normal
+
+
 def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings) -> SetResult:
     keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
     phenotypes = _phenotypes(visits, keys)
@@ -397,20 +414,29 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     sensory = sensory_findings(nerves, settings)
     # Sensory CIDP items only for visits recorded with the sensory phenotype (elsewhere they would be noise).
     cidp_sensory = sensory_cidp_findings(nerves[nerves["visit_key"].isin(phenotypes.index[phenotypes == "sensory"])], settings)
-    level, motor_rule = motor_levels(_nerve_table(motor, settings, keys, MET), keys)
-    motor_judged = keys.isin(motor.loc[np.isin(motor["status"].to_numpy(dtype=object), [MET, NOT_MET]), "visit_key"].unique())
-    abnormal, normal = sensory_counts(sensory, settings, keys)
-    cidp_met, cidp_text = sensory_cidp(cidp_sensory, settings, keys)
-    # Visits share few combinations of these inputs: each combination is decided once.
-    decided = rules.per_distinct(decide, phenotypes, level, motor_rule, motor_judged, abnormal, normal, cidp_met, cidp_text)
+    outcome, rule, level, abnormal, normal = combine(motor, sensory, cidp_sensory, phenotypes, keys, settings)
+    # Undecided: each way the missing motor and sensory findings could turn out (met or not met, motor and
+    # sensory apart: motor CIDP needs normal sensory nerves, sensory CIDP normal motor nerves).
+    open_motor, open_sensory, open_cidp = rules.wanting(motor), rules.wanting(sensory), rules.wanting(cidp_sensory)
+    best = outcome.copy()
+    if open_motor.any() or open_sensory.any() or open_cidp.any():
+        for motor_as in (MET, NOT_MET):
+            for sensory_as in (MET, NOT_MET):
+                what_if = combine(rules.with_status(motor, open_motor, motor_as), rules.with_status(sensory, open_sensory, sensory_as),
+                                  rules.with_status(cidp_sensory, open_cidp, sensory_as), phenotypes, keys, settings)[0]
+                higher = what_if.map(RANKS).to_numpy() > best.map(RANKS).to_numpy()
+                best[higher] = what_if[higher]
+    candidates = pd.concat([motor[open_motor], sensory[open_sensory], cidp_sensory[open_cidp]], ignore_index=True)
+    outcome, rule, undecided = rules.settle(outcome, rule, best, RANKS, candidates, keys)
     outcomes = pd.DataFrame(
         {
             "visit_key": keys,
-            "outcome": [d[0] for d in decided],
-            "rule": [d[1] for d in decided],
+            "outcome": outcome.to_numpy(),
+            "rule": rule.to_numpy(),
             "motor": level.to_numpy(),
             "sensory": list(rules.per_distinct(sensory_category, abnormal, normal)),
             "phenotype": phenotypes.to_numpy(),
+            "undecided_items": undecided.to_numpy(),
         }
     )
     findings = pd.concat([motor, sensory, cidp_sensory], ignore_index=True)[FINDING_COLUMNS]

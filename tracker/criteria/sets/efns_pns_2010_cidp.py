@@ -72,10 +72,11 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     return pd.concat([cv, snap], ignore_index=True)
 
 
-def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings) -> SetResult:
-    motor = motor_findings(nerves, paths, settings)
-    sensory = sensory_findings(nerves, settings)
-    keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
+RANKS = {"not_met": 0, "possible": 1, "probable": 2, "definite": 3}
+
+
+def combine(motor: pd.DataFrame, keys: pd.Index, settings: Settings) -> tuple[pd.Series, pd.Series]:
+    """(outcome, rule) per visit from the motor findings."""
     sets = rules.met_sets(motor, settings)
 
     def count(item):
@@ -110,6 +111,18 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     for name, hit in definite_rules.items():
         fire = hit & (outcome != "definite")
         outcome[fire], rule[fire] = "definite", name
+    return outcome, rule
+
+
+def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings) -> SetResult:
+    motor = motor_findings(nerves, paths, settings)
+    sensory = sensory_findings(nerves, settings)
+    keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
+    outcome, rule = combine(motor, keys, settings)
+    # Undecided: would the motor findings not evaluable for want of data, if met, give a higher level?
+    open_ = rules.wanting(motor)
+    best = combine(rules.with_status(motor, open_, MET), keys, settings)[0] if open_.any() else outcome
+    outcome, rule, undecided = rules.settle(outcome, rule, best, RANKS, motor[open_], keys)
 
     # Per visit: whether some sensory finding of the kind exists (plain arrays: the findings are many).
     item = sensory["item"].to_numpy(dtype=object)
@@ -127,5 +140,7 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
         index=keys,
     )
     supportive[hit.to_numpy()] = MET
-    outcomes = pd.DataFrame({"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "sensory_supportive": supportive.to_numpy()})
+    outcomes = pd.DataFrame(
+        {"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "sensory_supportive": supportive.to_numpy(), "undecided_items": undecided.to_numpy()}
+    )
     return SetResult(ID, load(ID).version, pd.concat([motor, sensory], ignore_index=True), outcomes, extra_keys=("sensory_supportive",))

@@ -216,6 +216,8 @@ def per_nerve(segments: pd.DataFrame, nerves: pd.DataFrame, settings: Settings) 
             limit_name="LLN of the CMAP amplitude (precondition)", source=rows["source"], source_status=rows["status"],
             limit_source=without.get("lln_amplitude_source"), limit_status=without.get("lln_amplitude_status"),
             blocked=[(np.ones(len(without), dtype=bool), NO_PROXIMAL)],
+            inapplicable=[(np.isnan(rows["value"].to_numpy(dtype=float)), NOT_NAMED)]
+            + ([((without["limb"] != "upper").to_numpy(), NOT_UPPER)] if name == "probable_cb_long" and "limb" in without else []),
         )
         found["test_key"] = without["test_key"].to_numpy()
         parts.append(found)
@@ -291,19 +293,27 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
         outcome[text.index] = level
         rule[text.index] = text
     # Segments not evaluable for want of data, at a level above the visit's outcome, leave the outcome open.
-    wanting = segments[segments["wanting"]]
+    # Nerves without proximal stimulation (want of data) are as open as a segment that could not be judged.
+    unstimulated = motor[(motor["reason"].to_numpy(dtype=object) == NO_PROXIMAL) & rules.wanting(motor)]
+    wanting = pd.concat([segments[segments["wanting"]], unstimulated], ignore_index=True)
     level_of_visit = outcome.reindex(wanting["visit_key"]).to_numpy(dtype=object)
     above = (level_of_visit == "not_met") | ((level_of_visit == "probable") & (wanting["item"] == "definite_cb").to_numpy())
     wanting = wanting[above]
+    best = outcome.copy()
+    for level in ("probable", "definite"):
+        raising = wanting.loc[np.isin(wanting["item"].to_numpy(dtype=object), [i for i, lv in LEVELS.items() if lv == level]), "visit_key"].unique()
+        best[best.index.isin(raising)] = level
+    outcome, rule, undecided = rules.settle(outcome, rule, best, {"not_met": 0, "probable": 1, "definite": 2}, wanting, keys, note=False)
     if len(wanting):
         where = rules.per_distinct(
             lambda n, s, seg: f"{n} {s} {seg}",
             wanting["nerve"].to_numpy(dtype=object), wanting["side"].to_numpy(dtype=object), wanting["segment"].to_numpy(dtype=object),
         )
-        note = "; not settled: " + _join_per_visit(wanting["visit_key"].to_numpy(), where, ", ") + " not evaluable for want of data"
+        note = "; undecided: " + _join_per_visit(wanting["visit_key"].to_numpy(), where, ", ") + " not evaluable for want of data"
         rule[note.index] = rule[note.index] + note
     outcomes = pd.DataFrame(
-        {"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "sensory": _sensory_key(sensory, keys).to_numpy()}
+        {"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "sensory": _sensory_key(sensory, keys).to_numpy(),
+         "undecided_items": undecided.to_numpy()}
     )
     findings = pd.concat([motor.drop(columns=["test_key", "site_order", "wanting", "rank"], errors="ignore"), sensory], ignore_index=True)
     return SetResult(ID, load(ID).version, findings, outcomes, extra_keys=("sensory",))

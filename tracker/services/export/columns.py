@@ -47,6 +47,18 @@ class Column:
     depends_on: str = ""
 
 
+# Outcome values of each criteria set (DESIGN.md §5): the data dictionary lists them, and the export refuses a
+# misspelt --outcome filter. "undecided": findings not evaluable for want of data could make the set met.
+OUTCOME_VALUES = {
+    "efns-pns-2010-cidp": ("definite", "probable", "possible", "not_met", "undecided"),
+    "ean-pns-2021-cidp": ("cidp", "possible_cidp", "not_met", "undecided"),
+    "aan-1991-cidp": ("met", "not_met", "undecided"),
+    "efns-pns-2010-mmn": ("definite", "probable", "not_met", "undecided"),
+    "hadden-1998-gbs": ("demyelinating", "axonal", "inexcitable", "equivocal", "normal"),
+    "rajabally-2015-gbs": ("demyelinating", "axonal", "inexcitable", "equivocal", "normal"),
+}
+
+
 @dataclass(frozen=True)
 class VerdictItem:
     """One item of a criteria set whose per-nerve verdict is exported (found by :func:`tracker.services.export.tables.catalogue`)."""
@@ -155,7 +167,11 @@ def visit_columns(sets: list[SetColumns], limits_label: str, *, identified: bool
         ]
     for found in sets:
         depends = _depends(found, limits_label)
-        columns.append(Column(f"{found.alias}__outcome", "text", "", f"outcome of criteria set {found.criteria}",
+        values = OUTCOME_VALUES.get(found.criteria)
+        vocabulary = f": {', '.join(values)}" if values else ""
+        undecided = (" (undecided: findings not evaluable for want of data could make the set met; named in the rule column)"
+                     if values and "undecided" in values else "")
+        columns.append(Column(f"{found.alias}__outcome", "text", "", f"electrodiagnostic outcome of criteria set {found.criteria}{vocabulary}{undecided}",
                               "the criteria engine over all nerve tests of the visit; empty for a visit without nerve tests",
                               depends))
         for key in found.extra_keys:

@@ -29,6 +29,7 @@ from tracker.response.settings import ResponseSettings
 from tracker.services.export import deidentify
 from tracker.services.evaluation import load_frames
 from tracker.services.export.columns import (
+    OUTCOME_VALUES,
     SCORE_WINDOW_DAYS,
     Column,
     SetColumns,
@@ -52,15 +53,6 @@ DATE_MODES = ("shifted", "relative")
 # (many small pandas steps), so very small chunks are slow; measured on 10,000 invented visits of 4 motor
 # nerves, nerve level, every criteria set: 500 → 23 s and 260 MB peak RSS, 2,000 → 10 s and 480 MB.
 CHUNK_VISITS = 2000
-# Outcome values of each criteria set (DESIGN.md §5), to refuse a misspelt --outcome filter.
-OUTCOME_VALUES = {
-    "efns-pns-2010-cidp": ("definite", "probable", "possible", "not_met"),
-    "ean-pns-2021-cidp": ("cidp", "possible_cidp", "not_met"),
-    "aan-1991-cidp": ("met", "not_met"),
-    "efns-pns-2010-mmn": ("definite", "probable", "not_met"),
-    "hadden-1998-gbs": ("demyelinating", "axonal", "inexcitable", "equivocal", "normal"),
-    "rajabally-2015-gbs": ("demyelinating", "axonal", "inexcitable", "equivocal", "normal"),
-}
 NERVE_KEY = ["visit_key", "nerve", "side", "modality"]
 
 
