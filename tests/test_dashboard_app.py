@@ -183,7 +183,10 @@ def test_entry_refused_then_saved_and_shown(monkeypatch, fresh_url):
     assert not at.exception
     assert any("Nothing was saved" in e.value for e in at.error)
     problems = next(d.value for d in at.dataframe if list(d.value.columns) == ["row", "field", "problem"])
-    assert problems.iloc[0]["row"] == 2 and problems.iloc[0]["field"] == "latency_ms"
+    # The grid's own numbering (1 = first row) and the field in words (issue 10, items 12 and 15).
+    assert problems.iloc[0]["row"] == 2 and problems.iloc[0]["field"] == "onset latency (ms)"
+    [message] = [e.value for e in at.error]
+    assert "fields marked in red" not in message and "grid rows listed below" in message  # no field is marked
     assert fingerprint(engine) == before
     # Corrected: 230 mm in 4.6 ms → 50.0 m/s; saved, and visible on the follow-up page.
     fill_entry(at, entry_sites(latency_elbow=8.4))
@@ -461,3 +464,15 @@ def test_visit_review_changes_since_the_previous_visit_as_a_table(monkeypatch, d
     assert changed and all(len(t) for t in changed)
     assert all(set(t["now"]) <= {"▲ met", "○ not met", "? not evaluable", "– not applicable"} for t in changed)
     assert any(m.value.startswith("**Changed since") for m in at.markdown)
+
+
+def test_entry_layout_copy_keeps_the_patients_details(monkeypatch, demo_url):
+    # Issue 10, item 15: copying a patient's layout also fills the visit fields from that patient's record
+    # (invented demo patient DEMO-04: MMN, male, born 1979, 181 cm — demo_data/measurements.csv).
+    at = open_page(monkeypatch, demo_url, "views/visit_entry.py")
+    at.text_input(key="entry_layout_code").input("DEMO-04")
+    next(b for b in at.button if b.label == "Copy layout").click().run()
+    assert not at.exception
+    assert at.text_input(key="entry_patient").value == "DEMO-04"
+    assert at.selectbox(key="entry_diagnosis").value == "mmn" and at.selectbox(key="entry_sex").value == "male"
+    assert at.number_input(key="entry_birth_year").value == 1979 and at.number_input(key="entry_height").value == 181

@@ -631,3 +631,26 @@ def test_changes_since_is_a_short_table_in_words():
     assert list(table.columns) == tables.CHANGE_COLUMNS
     assert table.iloc[0].tolist() == ["ulnar right", "sensory conduction velocity", "▲ met", "○ not met", "39.0 m/s", "44.0 m/s"]
     assert table.iloc[1].tolist() == ["median left", "distal motor latency", "▲ met", "? not evaluable", "6.71 ms", "—"]
+
+
+def test_entry_problems_name_the_grids_row_number(tmp_path):
+    # Issue 10, item 15: one row numbering everywhere, the grid's. Invented study: grid rows 1–3, row 2 left
+    # empty (a spare row), row 3's elbow latency earlier than the wrist's (impossible: latencies grow proximally).
+    import pandas as pd
+
+    from tracker.db import migrate
+    from tracker.services.entry import SITE_COLUMNS, enter_visit
+
+    url = f"sqlite:///{tmp_path / 'rows.sqlite3'}"
+    migrate.upgrade(url)
+    sites = pd.DataFrame(
+        {"nerve": ["median", None, "median"], "side": ["right", None, "right"], "modality": ["motor", None, "motor"], "site_order": [1, None, 2],
+         "site": ["wrist", None, "elbow"], "distance_mm": [70.0, None, 230.0], "latency_ms": [3.8, None, 3.0], "amplitude_mv": [8.2, None, 7.9]},
+        index=pd.RangeIndex(1, 4),
+    ).reindex(columns=SITE_COLUMNS)
+    engine = make_engine(url)
+    with make_session_factory(engine).begin() as session:
+        result = enter_visit(session, {"patient": "TEST-ROWS", "visit_date": dt.date(2026, 5, 4)}, sites, username="test")
+    engine.dispose()
+    assert not result.saved
+    assert [(row, column) for row, column, _ in result.row_problems] == [(3, "latency_ms")]

@@ -2,7 +2,8 @@
 
 The entry form's cells are written as a measurements table in the interchange format (DESIGN.md §4.1) and
 imported exactly as a file would be: the same validation, the same all-or-nothing rule, the same audit.
-Problems name the form's row (1 = first stimulation-site row) and field instead of a file row.
+Problems name the row by the site grid's own number (the editor's index, 1 = its first row, spare empty rows
+counted as the grid counts them) and the field, instead of a file row.
 """
 
 from __future__ import annotations
@@ -37,7 +38,7 @@ class EntryResult:
 
     report: ImportReport | None
     visit_problems: dict[str, list[str]] = field(default_factory=dict)
-    row_problems: list[tuple[int, str, str]] = field(default_factory=list)  # (form row, column, message)
+    row_problems: list[tuple[int, str, str]] = field(default_factory=list)  # (grid row, column, message)
     other_problems: list[str] = field(default_factory=list)
 
     @property
@@ -77,14 +78,28 @@ def enter_visit(
     raw = entry_csv(visit, sites)
     if raw.count(b"\n") < 2:
         return EntryResult(None, other_problems=["Add at least one stimulation-site row (nerve, side, modality, site order, distance, latency, amplitude)."])
+    # The grid's number of each row written to the table (empty spare rows are skipped by entry_csv).
+    filled = sites.reindex(columns=SITE_COLUMNS)
+    grid_rows = [label for label, row in zip(sites.index, filled.itertuples(index=False)) if any(_cell(v) for v in row)]
     try:
         report = import_table(session, parse_table(raw, ".csv"), username=username, replace=replace, allow_unusual=allow_unusual, today=today)
     except InputRejected as error:
-        return _placed(error.problems)
+        return _placed(error.problems, grid_rows)
     return EntryResult(report)
 
 
-def _placed(problems: list[Problem]) -> EntryResult:
+def patient_details(session: Session, code: str) -> dict[str, Any]:
+    """The visit fields of a patient's latest visit (code, sex, birth year, diagnosis, phenotype, height), to
+    start the next study from; raises NotFound."""
+    record = patient_record(session, code)
+    latest = record.visits[-1] if record.visits else None
+    return {
+        "patient": record.code, "sex": record.sex, "birth_year": record.birth_year, "diagnosis": record.diagnosis,
+        "phenotype": record.phenotype, "height_cm": latest.height_cm if latest is not None else None,
+    }
+
+
+def _placed(problems: list[Problem], grid_rows: list | None = None) -> EntryResult:
     result = EntryResult(None)
     for problem in problems:
         text = problem.message + ("" if problem.value in (None, "") else f" (you entered {problem.value!r})")
@@ -93,7 +108,9 @@ def _placed(problems: list[Problem]) -> EntryResult:
             if text not in result.visit_problems[problem.column]:
                 result.visit_problems[problem.column].append(text)
         elif problem.row is not None and problem.row >= 2:
-            result.row_problems.append((problem.row - 1, problem.column or "", text))
+            written = problem.row - 2  # the table's header is row 1
+            row = grid_rows[written] if grid_rows is not None and written < len(grid_rows) else written + 1
+            result.row_problems.append((row, problem.column or "", text))
         else:
             result.other_problems.append(str(problem))
     return result

@@ -11,6 +11,7 @@ import streamlit as st
 from tracker.dashboard import figures, reads, style, tables
 from tracker.dashboard.state import database_url
 from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker, patient_picker
+from tracker.domain.labels import DIAGNOSIS_SHORT
 from tracker.services.follow_up import PARAMETERS
 from tracker.services.response import RegimenCard, rule_set_choices, sdc_words
 
@@ -52,7 +53,8 @@ if code:
     _, cold_limbs = reads.clinic_settings(url)
     view = reads.response(url, code, rules_id, limits_name)
     running = [c for c in view.cards if c.ongoing]
-    fu_line = f"**{code}** · diagnosis **{view.response.diagnosis or 'not stated'}** · {len(view.response.visit_dates)} visits"
+    diagnosis = view.response.diagnosis
+    fu_line = f"**{code}** · diagnosis **{DIAGNOSIS_SHORT.get(diagnosis, diagnosis) if diagnosis else 'not stated'}** · {len(view.response.visit_dates)} visits"
     if running:
         fu_line += f" · ongoing: {running[0].regimen} · course: **{running[0].word}**"
     st.markdown(fu_line)

@@ -11,18 +11,21 @@ import streamlit as st
 from tracker.dashboard.state import choose_patient, reading, user, writing
 from tracker.domain.vocabulary import DIAGNOSES, PHENOTYPES, SEXES
 from tracker.errors import InputRejected
-from tracker.services.entry import SITE_COLUMNS, enter_visit, import_upload, layout_from_latest_visit
+from tracker.domain.labels import column_label
+from tracker.services.entry import SITE_COLUMNS, enter_visit, import_upload, layout_from_latest_visit, patient_details
 
 PROBLEMS_KEY = "entry_problems"
 TEMPLATE_KEY = "entry_template"  # the site table the editor starts from (a copied layout)
 TEMPLATE_VERSION_KEY = "entry_template_version"
+DETAIL_KEYS = {"patient": "entry_patient", "sex": "entry_sex", "birth_year": "entry_birth_year", "diagnosis": "entry_diagnosis",
+               "phenotype": "entry_phenotype", "height_cm": "entry_height"}
 st.title("New study")
 tab_form, tab_upload = st.tabs(["Enter by hand", "Upload a file"])
 
 
 def _field_errors(name: str) -> None:
     for message in st.session_state.get(PROBLEMS_KEY, {}).get("visit", {}).get(name, []):
-        st.markdown(f":red[**{name}:** {message}]")
+        st.markdown(f":red[**{column_label(name)}:** {message}]")
 
 
 EMPTY = pd.DataFrame(
@@ -40,6 +43,11 @@ with tab_form:
         if st.button("Copy layout", key="entry_layout_go") and layout_code.strip():
             with reading() as session:
                 st.session_state[TEMPLATE_KEY] = layout_from_latest_visit(session, layout_code.strip())
+                details = patient_details(session, layout_code.strip())
+            # The copy keeps the patient's details: code, sex, birth year, diagnosis, phenotype, height.
+            for name, key in DETAIL_KEYS.items():
+                if details.get(name) is not None:
+                    st.session_state[key] = details[name]
             st.session_state[TEMPLATE_VERSION_KEY] = st.session_state.get(TEMPLATE_VERSION_KEY, 0) + 1
             st.rerun()
     with st.form("entry_form", clear_on_submit=False):
@@ -68,8 +76,10 @@ with tab_form:
             _field_errors("phenotype")
         with cols[3]:
             allow_unusual = st.checkbox("Accept unusual values (recorded)", key="entry_unusual")
+        start = st.session_state.get(TEMPLATE_KEY, EMPTY)
+        start = start.set_axis(pd.RangeIndex(1, len(start) + 1))  # the grid numbers rows from 1; problems use that number
         sites = st.data_editor(
-            st.session_state.get(TEMPLATE_KEY, EMPTY), key=f"entry_sites_{st.session_state.get(TEMPLATE_VERSION_KEY, 0)}", num_rows="dynamic", hide_index=False, width="stretch",
+            start, key=f"entry_sites_{st.session_state.get(TEMPLATE_VERSION_KEY, 0)}", num_rows="dynamic", hide_index=False, width="stretch",
             column_config={
                 "site_order": st.column_config.NumberColumn("site order", min_value=1, step=1),
                 "distance_mm": st.column_config.NumberColumn("distance (mm)"), "latency_ms": st.column_config.NumberColumn("latency (ms)"),
@@ -95,11 +105,13 @@ with tab_form:
             st.rerun()
     problems = st.session_state.get(PROBLEMS_KEY)
     if problems:
-        st.error("Nothing was saved. Please correct the fields marked in red and the rows listed below, then save again.")
+        places = (["the fields marked in red"] if problems["visit"] else []) + (["the grid rows listed below (numbered as in the grid)"] if problems["rows"] else [])
+        st.error("Nothing was saved. " + (f"Please correct {' and '.join(places)}, then save again." if places else "Please correct the problems below, then save again."))
         for message in problems["other"]:
             st.markdown(f"- {message}")
         if problems["rows"]:
-            st.dataframe(pd.DataFrame(problems["rows"], columns=["row", "field", "problem"]), hide_index=True, width="stretch", key="entry_row_problems")
+            rows = pd.DataFrame([(r, column_label(f) if f else "", m) for r, f, m in problems["rows"]], columns=["row", "field", "problem"])
+            st.dataframe(rows, hide_index=True, width="stretch", key="entry_row_problems")
     if "entry_saved" in st.session_state:
         st.success(st.session_state["entry_saved"] + ". Open it on the Follow-up or Visit review page.")
 
