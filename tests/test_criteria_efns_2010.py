@@ -185,3 +185,15 @@ def test_not_applicable_items_never_leave_an_outcome_undecided():
     assert finding(result, "tibial", "probable_cb")["status"] == NOT_APPLICABLE
     assert outcome(result) == "not_met" and outcome(result, "undecided_items") == ()
     assert finding(evaluate([Visit([low])], ID), "median", "cb")["status"] == NOT_APPLICABLE
+
+
+def test_closest_miss_ignores_the_supportive_sensory_item():
+    # EFNS/PNS 2010 (Van den Bergh et al., Eur J Neurol 2010): supportive sensory findings never change the
+    # electrodiagnostic level, so they are no near miss of it. Invented: sural sensory velocity 32.1 m/s just
+    # above 80 % of LLN 40 (32 m/s); motor study normal.
+    from tracker.criteria import engine
+
+    result = evaluate([Visit(healthy_four_nerves() + [Sensory("sural", amplitude=10, cv=32.1)])], ID)
+    assert outcome(result) == "not_met"
+    miss = engine.closest_miss(result)
+    assert len(miss) == 1 and miss.iloc[0]["modality"] == "motor"

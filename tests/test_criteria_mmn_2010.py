@@ -288,3 +288,16 @@ def test_probable_block_stays_and_lists_the_segment_that_could_be_definite():
     result = evaluate([Visit([median(areas=(20.0, 12.0)), ulnar])], ID)
     assert outcome(result) == "probable"
     assert ("ulnar", "definite_cb") in {(f["nerve"], f["item"]) for f in outcome(result, "undecided_items")}
+
+
+def test_closest_miss_ignores_the_snap_check():
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): the sensory nerve check supports the diagnosis but cannot change
+    # the conduction-block level, so it is never the closest miss. Invented: median SNAP 19.9 µV just below
+    # LLN 20 µV (a near miss of the SNAP item) and a forearm area drop of 10 % (far from 30 %).
+    from tracker.criteria import engine
+
+    result = evaluate([Visit([median(areas=(20.0, 18.0)), Sensory("median", amplitude=19.9)])], ID)
+    assert outcome(result) == "not_met"
+    miss = engine.closest_miss(result)
+    assert len(miss) == 1 and miss.iloc[0]["item"] in efns_pns_2010_mmn.LEVELS
+    assert miss.iloc[0]["modality"] == "motor"

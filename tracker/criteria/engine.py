@@ -88,9 +88,12 @@ def temperature_warnings(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.Da
 
 
 def closest_miss(result: SetResult) -> pd.DataFrame:
-    """For each visit where the set is not met: the not-met finding nearest its threshold (relative)."""
-    not_met_visits = result.outcomes.loc[result.outcomes["outcome"] == "not_met", "visit_key"]
+    """For each visit where the set is not met (or undecided): the not-met finding nearest its threshold
+    (relative), among the items that can change the outcome (``SetResult.outcome_items``)."""
+    not_met_visits = result.outcomes.loc[result.outcomes["outcome"].isin(["not_met", UNDECIDED]), "visit_key"]
     findings = result.findings[(result.findings["status"] == NOT_MET) & result.findings["visit_key"].isin(not_met_visits)]
+    if result.outcome_items:
+        findings = findings[findings["item"].isin(result.outcome_items)]
     # Only findings whose own value falls short (margin > 0): a value past its threshold that is not met
     # because another condition failed is no "near miss".
     findings = findings[findings["threshold"].notna() & (findings["margin"] > 0) & (findings["threshold"] != 0)].copy()

@@ -85,3 +85,5 @@ class SetResult:
     findings: pd.DataFrame
     outcomes: pd.DataFrame
     extra_keys: tuple[str, ...] = field(default_factory=tuple)
+    # Items that can change the outcome (the closest miss looks at these only); empty = every item.
+    outcome_items: tuple[str, ...] = field(default_factory=tuple)

@@ -145,6 +145,7 @@ def _only(result: SetResult, visit_key: int) -> SetResult:
         result.findings[result.findings["visit_key"] == visit_key].reset_index(drop=True),
         result.outcomes[result.outcomes["visit_key"] == visit_key].reset_index(drop=True),
         result.extra_keys,
+        result.outcome_items,
     )
 
 

@@ -143,4 +143,5 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     outcomes = pd.DataFrame(
         {"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "sensory_supportive": supportive.to_numpy(), "undecided_items": undecided.to_numpy()}
     )
-    return SetResult(ID, load(ID).version, pd.concat([motor, sensory], ignore_index=True), outcomes, extra_keys=("sensory_supportive",))
+    return SetResult(ID, load(ID).version, pd.concat([motor, sensory], ignore_index=True), outcomes, extra_keys=("sensory_supportive",),
+                     outcome_items=(*DEMYELINATING, "probable_cb"))

@@ -316,4 +316,5 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
          "undecided_items": undecided.to_numpy()}
     )
     findings = pd.concat([motor.drop(columns=["test_key", "site_order", "wanting", "rank"], errors="ignore"), sensory], ignore_index=True)
-    return SetResult(ID, load(ID).version, findings, outcomes, extra_keys=("sensory",))
+    # The SNAP check is required for the diagnosis, not for the block level: it is no near miss of the outcome.
+    return SetResult(ID, load(ID).version, findings, outcomes, extra_keys=("sensory",), outcome_items=tuple(LEVELS))
