@@ -102,11 +102,21 @@ def test_distal_latency_amplitude_switch_at_eighty_percent_of_lln(distal, status
     assert finding(evaluate([Visit([median])], ID), "median", "dml")["status"] == status
 
 
-def test_wrist_entrapment_removes_the_median_latency():
-    # AAN 1991 (Neurology 1991) has no such exclusion; project rule shared with the EFNS/PNS sets
+def test_wrist_entrapment_does_not_remove_the_median_latency_by_default():
+    # AAN 1991 (Neurology 1991) item 3 has no wrist-entrapment exclusion (as restated in the JNNP table of the
+    # reference sheet, S13): the publication's reading is the default and the trace says the mark was not applied
     row = finding(evaluate([Visit([Motor("median", dml=7.0, wrist_entrapment=True)])], ID), "median", "dml")
-    assert row["status"] == NOT_APPLICABLE
-    assert "wrist" in row["reason"]
+    assert row["status"] == MET
+    assert "no such exclusion" in row["reason"] and "aan_wrist_exclusion off" in row["reason"]
+
+
+def test_wrist_entrapment_exclusion_is_a_named_setting():
+    # project rule carried over from EFNS/PNS 2010 (Van den Bergh et al., Eur J Neurol 2010), off by default
+    result = evaluate([Visit([Motor("median", dml=7.0, wrist_entrapment=True)])], ID, Settings(aan_wrist_exclusion=True))
+    row = finding(result, "median", "dml")
+    assert row["status"] == NOT_APPLICABLE and "aan_wrist_exclusion on" in row["reason"]
+    unmarked = finding(evaluate([Visit([Motor("median", dml=7.0)])], ID, Settings(aan_wrist_exclusion=True)), "median", "dml")
+    assert unmarked["status"] == MET and unmarked["reason"] in ("", None)
 
 
 # --- item 4: F-waves -------------------------------------------------------------------------------------

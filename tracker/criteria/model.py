@@ -51,12 +51,16 @@ class Settings:
     ``"all_outside_entrapment"`` also uses proximal segments (with the same lower limit).
     ``block_path``: ``"outside_entrapment"`` measures block from the distal site to every proximal site
     whose path avoids entrapment segments; ``"standard"`` uses the forearm/leg segment only.
+    ``aan_wrist_exclusion``: the clinician's wrist-entrapment mark removes the median distal latency from AAN
+    1991 item 3 (a project rule: the AAN 1991 text has no such exclusion, so the default is off — the
+    publication's literal reading; the trace says which applied).
     """
 
     cold_limbs: str = "warn"
     sides_are_separate_nerves: bool = True
     cv_segments: str = "standard"
     block_path: str = "outside_entrapment"
+    aan_wrist_exclusion: bool = False
 
     def __post_init__(self) -> None:
         checks = {

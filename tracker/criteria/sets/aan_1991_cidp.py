@@ -32,8 +32,9 @@ Decisions where the published text leaves a gap (also in the project's decisions
 - Item 2 duration: "15 %" is the increase of negative-peak duration from the distal to the proximal site of the
   standard segment, in percent of the distal duration. It only labels the finding (exactly 15 % → partial
   block; > 15 % strict → dispersion); the item is met on the > 20 % drop alone, also when duration is missing.
-- Item 3: a median distal latency the clinician attributes to neuropathy at the wrist is not counted (project
-  rule carried over from the EFNS/PNS sets; the AAN text has no such exclusion).
+- Item 3: the AAN text has no wrist-entrapment exclusion, so by default a median distal latency is judged
+  also when the clinician marked a neuropathy at the wrist (the trace says so). ``Settings.aan_wrist_exclusion``
+  applies the EFNS/PNS exclusion instead (a project rule; the finding is then not applicable).
 - Item 4: absent F-waves count only when a distal CMAP was recorded (> 0 mV) — absent F-waves with no motor
   response are inexcitability, not demyelination. The criteria set no other amplitude condition.
 """
@@ -61,7 +62,9 @@ BLOCK_SEGMENTS = {"fibular": "ankle → below fibular head", "median": "wrist �
 
 NO_RESPONSE = "no recordable response at the distal site"
 SWITCH_UNKNOWN = "distal CMAP amplitude or its LLN missing: the amplitude-dependent threshold cannot be chosen"
-WRIST = "median distal latency not counted: neuropathy at the wrist judged by the clinician (project rule)"
+WRIST = "median distal latency not counted: neuropathy at the wrist judged by the clinician (project rule, setting aan_wrist_exclusion on)"
+WRIST_COUNTED = ("wrist entrapment recorded, latency counted: the AAN 1991 text has no such exclusion "
+                 "(publication's reading; setting aan_wrist_exclusion off)")
 NOT_A_BLOCK_NERVE = "no AAN 1991 block segment for this nerve (only peroneal, median and ulnar)"
 NO_STANDARD_SITE = "no stimulation at the proximal end of the standard segment"
 F_ABSENT_ELSEWHERE = "F-waves absent (judged by the absent-F item)"
@@ -124,8 +127,16 @@ def distal_latency(nerves, table, settings):
     def wrist(frame):
         return (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(bool).to_numpy()
 
-    return _switched_item(nerves, table, settings, item="dml", low_item="dml_low_cmap", parameter="distal latency", unit="ms",
-                          value_column="distal_latency_ms", limit_column="uln_distal_latency_ms", not_applicable=[(wrist, WRIST)])
+    if settings.aan_wrist_exclusion:
+        return _switched_item(nerves, table, settings, item="dml", low_item="dml_low_cmap", parameter="distal latency", unit="ms",
+                              value_column="distal_latency_ms", limit_column="uln_distal_latency_ms", not_applicable=[(wrist, WRIST)])
+    found = _switched_item(nerves, table, settings, item="dml", low_item="dml_low_cmap", parameter="distal latency", unit="ms",
+                           value_column="distal_latency_ms", limit_column="uln_distal_latency_ms")
+    # The trace says the mark was seen and not applied (judged findings only; a gap keeps its own reason).
+    marked = wrist(p.motor(nerves)) & np.isin(found["status"].to_numpy(dtype=object), [MET, NOT_MET])
+    found = _editable(found, "reason")
+    found.loc[marked, "reason"] = WRIST_COUNTED
+    return found
 
 
 def f_latency(nerves, table, settings):
