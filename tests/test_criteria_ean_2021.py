@@ -531,3 +531,22 @@ def test_visits_are_judged_independently_in_one_pass():
     assert result.outcomes["phenotype"].tolist() == ["typical", "motor", "typical"]
     assert list(result.outcomes.columns) == ["visit_key", "outcome", "rule", "motor", "sensory", "phenotype", "undecided_items"]
     assert result.extra_keys == ("motor", "sensory")
+
+
+def test_phenotype_not_recorded_is_said():
+    # DESIGN.md §5 / project wording: without a recorded phenotype the typical-CIDP rules of Van den Bergh et al.,
+    # Eur J Neurol 2021 (from memory, not verified) apply, and the rule says so instead of "typical:"
+    result = run(STRONG + SENSORY_ABNORMAL_2, phenotype=None)
+    assert outcome(result, "rule").startswith("phenotype not recorded — judged with the typical-CIDP rules:")
+    assert outcome(run(STRONG + SENSORY_ABNORMAL_2), "rule").startswith("typical:")
+
+
+def test_outcomes_are_worded_as_electrodiagnostic_criteria():
+    # project wording: electrodiagnostic criteria, never a diagnosis; the "possible" specificity figure is from
+    # Rajabally et al., J Neurol Neurosurg Psychiatry 2009;80:1364–1368 (69.2 %, 2006 version of the criteria)
+    from tracker.check_report import outcome_words
+
+    assert outcome_words("ean-pns-2021-cidp", "cidp") == "meets the EAN/PNS 2021 electrodiagnostic criteria for CIDP"
+    possible = outcome_words("efns-pns-2010-cidp", "possible")
+    assert possible.startswith("EFNS/PNS 2010 electrodiagnostic category: possible") and "69.2 %" in possible and "Rajabally" in possible
+    assert "undecided" in outcome_words("aan-1991-cidp", "undecided")

@@ -20,6 +20,32 @@ TITLES = {
 }
 
 
+# Outcomes are electrodiagnostic criteria, never a diagnosis of the patient.
+POSSIBLE_SPECIFICITY = ("caution: poor specificity reported for the \"possible\" level (69.2 % against axonal "
+                        "neuropathy controls; Rajabally et al., J Neurol Neurosurg Psychiatry 2009;80:1364–1368, "
+                        "for the 2006 version of the EFNS/PNS criteria)")
+
+
+def outcome_words(criteria_id: str, outcome: str) -> str:
+    """The outcome as electrodiagnostic wording (``check`` text)."""
+    value = str(outcome)
+    if value == "undecided":
+        return f"{TITLES.get(criteria_id, criteria_id)} electrodiagnostic criteria: undecided (data missing that could make them met)"
+    if criteria_id == "efns-pns-2010-cidp":
+        words = f"EFNS/PNS 2010 electrodiagnostic category: {value.replace('_', ' ')}"
+        return words + (f" — {POSSIBLE_SPECIFICITY}" if value == "possible" else "")
+    if criteria_id == "ean-pns-2021-cidp":
+        return {"cidp": "meets the EAN/PNS 2021 electrodiagnostic criteria for CIDP",
+                "possible_cidp": "meets the EAN/PNS 2021 electrodiagnostic criteria for possible CIDP"}.get(
+            value, "does not meet the EAN/PNS 2021 electrodiagnostic criteria for CIDP")
+    if criteria_id == "aan-1991-cidp":
+        return ("meets the AAN 1991 research electrodiagnostic criteria for CIDP" if value == "met"
+                else "does not meet the AAN 1991 research electrodiagnostic criteria for CIDP")
+    if criteria_id == "efns-pns-2010-mmn":
+        return f"EFNS/PNS 2010 MMN electrodiagnostic conduction block: {value.replace('_', ' ')}"
+    return f"{TITLES.get(criteria_id, criteria_id)} electrodiagnostic class: {value.replace('_', ' ')}"
+
+
 def _number(value: Any, unit: str = "") -> str:
     if value is None or (isinstance(value, float) and math.isnan(value)):
         return "—"
@@ -48,7 +74,7 @@ def text(check: VisitCheck) -> str:
     for criteria_id, result in check.results.items():
         outcome = result.outcomes.iloc[0]
         lines += ["", f"== {TITLES.get(criteria_id, criteria_id)} ({criteria_id}, table version {result.version}) =="]
-        lines.append(f"Outcome: {str(outcome['outcome']).upper()} — {outcome.get('rule', '')}")
+        lines.append(f"Outcome: {outcome_words(criteria_id, outcome['outcome'])} — {outcome.get('rule', '')}")
         for key in result.extra_keys:
             lines.append(f"{key.replace('_', ' ')}: {outcome[key]}")
         lines += _undecided_lines(outcome)

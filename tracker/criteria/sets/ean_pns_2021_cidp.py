@@ -340,6 +340,14 @@ def _phenotypes(visits: pd.DataFrame, keys: pd.Index) -> pd.Series:
     return raw.map(lambda v: "typical" if v is None or (isinstance(v, float) and np.isnan(v)) or not str(v).strip() else str(v).strip().lower())
 
 
+def _unrecorded(visits: pd.DataFrame, keys: pd.Index) -> np.ndarray:
+    """Per visit: no phenotype recorded (judged as typical)."""
+    raw = visits.drop_duplicates("visit_key").set_index("visit_key").get("phenotype")
+    if raw is None:
+        return np.ones(len(keys), dtype=bool)
+    return raw.reindex(keys).astype(object).map(lambda v: v is None or (isinstance(v, float) and np.isnan(v)) or not str(v).strip()).to_numpy(dtype=bool)
+
+
 def _motor_text(level: str, motor_rule: str, motor_judged: bool) -> str:
     if level != NOT_MET:
         return f"motor {level.replace('_', ' ')} ({motor_rule})"
@@ -428,6 +436,9 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
                 best[higher] = what_if[higher]
     candidates = pd.concat([motor[open_motor], sensory[open_sensory], cidp_sensory[open_cidp]], ignore_index=True)
     outcome, rule, undecided = rules.settle(outcome, rule, best, RANKS, candidates, keys)
+    # No phenotype recorded: say so instead of "typical:" (the typical-CIDP rules are applied).
+    unrecorded = _unrecorded(visits, keys)
+    rule[unrecorded] = rule[unrecorded].str.replace(r"^typical:", "phenotype not recorded — judged with the typical-CIDP rules:", regex=True)
     outcomes = pd.DataFrame(
         {
             "visit_key": keys,
