@@ -131,12 +131,15 @@ def patient_page(
     if diagnosis:
         query = query.where(Patient.diagnosis == diagnosis)
     filtered = query.subquery()
-    outcomes = sorted(session.scalars(select(filtered.c.latest_outcome).distinct()).all())
+    # One pass gives both the outcomes present (for the filter) and the counts (for the page count).
+    counts = dict(session.execute(select(filtered.c.latest_outcome, func.count()).group_by(filtered.c.latest_outcome)).all())
+    outcomes = sorted(counts)
     if outcome:
         filtered_rows = select(filtered).where(filtered.c.latest_outcome == outcome)
+        total = counts.get(outcome, 0)
     else:
         filtered_rows = select(filtered)
-    total = session.scalar(select(func.count()).select_from(filtered_rows.subquery())) or 0
+        total = sum(counts.values())
     rows = session.execute(filtered_rows.order_by(filtered.c.code).limit(page_rows).offset(max(0, page - 1) * page_rows)).all()
     frame = pd.DataFrame([tuple(r) for r in rows], columns=["id", "patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit", "latest_outcome", "latest_criteria"])
     frame["visits"] = frame["visits"].fillna(0).astype(int)
