@@ -240,3 +240,14 @@ def therapy_label(therapy: str) -> str:
     return THERAPY_LABELS.get(therapy, words(therapy))
 
 DIAGNOSIS_SHORT = {"cidp": "CIDP", "mmn": "MMN", "gbs": "GBS", "other": "other"}
+
+
+def treatment_words(therapy: str, dose: float | None, dose_unit: str | None, interval_days: float | None) -> str:
+    """``ivig 2 g/kg every 21 days``, ``corticosteroid 40 mg daily`` — the words a clinician would write (a
+    missing dose, unit or interval is left out)."""
+    text = therapy.replace("_", " ")
+    if dose is not None and dose == dose:
+        text += f" {dose:g}" + (f" {dose_unit}" if isinstance(dose_unit, str) and dose_unit else "")
+    if interval_days is not None and interval_days == interval_days:
+        text += " daily" if int(interval_days) == 1 else f" every {int(interval_days)} days"
+    return text

@@ -12,6 +12,7 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass, field, replace
 
+from tracker.domain.labels import treatment_words
 from tracker.response.settings import ResponseSettings
 
 
@@ -59,9 +60,9 @@ class Regimen:
 
     def label(self) -> str:
         """``ivig 1 g/kg every 21 days (after a 2 g/kg induction)`` — the words a clinician would write."""
-        text = dose_words(self.therapy, self.dose, self.dose_unit, self.interval_days)
+        text = treatment_words(self.therapy, self.dose, self.dose_unit, self.interval_days)
         if self.induction is not None:
-            text += f" (after a {dose_words('', self.induction.dose, self.induction.dose_unit, None).strip() or 'single'} induction)"
+            text += f" (after a {treatment_words('', self.induction.dose, self.induction.dose_unit, None).strip() or 'single'} induction)"
         return text
 
     def covers(self, day: dt.date) -> bool:
@@ -71,15 +72,6 @@ class Regimen:
     def attributes(self, day: dt.date) -> bool:
         """Whether a change seen on ``day`` is attributed to this regimen (see ``assessed_until``)."""
         return self.start_date <= day and (self.assessed_until is None or day <= self.assessed_until)
-
-
-def dose_words(therapy: str, dose: float | None, dose_unit: str | None, interval_days: int | None) -> str:
-    text = therapy.replace("_", " ")
-    if dose is not None and dose == dose:
-        text += f" {dose:g}" + (f" {dose_unit}" if dose_unit else "")
-    if interval_days is not None and interval_days == interval_days:
-        text += " daily" if int(interval_days) == 1 else f" every {int(interval_days)} days"
-    return text
 
 
 def _same_schedule(a: TreatmentPeriod, b: TreatmentPeriod) -> bool:

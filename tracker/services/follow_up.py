@@ -11,7 +11,6 @@ from __future__ import annotations
 import datetime as dt
 from dataclasses import dataclass, replace
 
-import numpy as np
 import pandas as pd
 from sqlalchemy import select
 from sqlalchemy.orm import Session
@@ -19,7 +18,7 @@ from sqlalchemy.orm import Session
 from tracker.criteria import engine, features, thresholds
 from tracker.criteria.model import Settings
 from tracker.db.models import OutcomeScore, Treatment, Visit
-from tracker.domain.labels import COMPARATOR_SIGNS, PLOTTED_FEATURE_LABELS, threshold_label
+from tracker.domain.labels import COMPARATOR_SIGNS, PLOTTED_FEATURE_LABELS, threshold_label, treatment_words
 from tracker.services.limit_sets import LimitSetInfo, resolve
 from tracker.services.records import find_patient
 from tracker.services.evaluation import default_criteria, load_frames
@@ -290,13 +289,8 @@ def _treatments(session: Session, patient_id: int) -> pd.DataFrame:
 
 
 def treatment_label(therapy: str, dose: float | None, dose_unit: str | None, interval_days: float | None) -> str:
-    """``ivig 2 g/kg every 21 days`` — the words a clinician would write."""
-    text = therapy.replace("_", " ")
-    if dose is not None and not (isinstance(dose, float) and np.isnan(dose)):
-        text += f" {dose:g}" + (f" {dose_unit}" if isinstance(dose_unit, str) and dose_unit else "")
-    if interval_days is not None and not (isinstance(interval_days, float) and np.isnan(interval_days)):
-        text += f" every {int(interval_days)} days"
-    return text
+    """``ivig 2 g/kg every 21 days`` (see :func:`tracker.domain.labels.treatment_words`)."""
+    return treatment_words(therapy, dose, dose_unit, interval_days)
 
 
 def _scores(session: Session, patient_id: int) -> pd.DataFrame:
