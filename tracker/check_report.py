@@ -7,17 +7,11 @@ from typing import Any
 
 from tracker import CAUTION
 from tracker.criteria.thresholds import COMPARATORS
+from tracker.domain.labels import CRITERIA_NAMES
 from tracker.services.evaluation import VisitCheck, to_json
 
 VERDICT = {"met": "● met", "not_met": "○ not met", "not_evaluable": "? not evaluable", "not_applicable": "– not applicable"}
-TITLES = {
-    "efns-pns-2010-cidp": "EFNS/PNS 2010 CIDP",
-    "ean-pns-2021-cidp": "EAN/PNS 2021 CIDP",
-    "aan-1991-cidp": "AAN 1991 CIDP research criteria",
-    "efns-pns-2010-mmn": "EFNS/PNS 2010 MMN conduction block",
-    "hadden-1998-gbs": "Hadden 1998 GBS classification",
-    "rajabally-2015-gbs": "Rajabally 2015 GBS classification",
-}
+TITLES = CRITERIA_NAMES  # the sets' names in sentences (labels.py owns them)
 
 
 # Outcomes are electrodiagnostic criteria, never a diagnosis of the patient.

@@ -8,6 +8,7 @@ from tracker.criteria import engine
 from tracker.dashboard import reads
 from tracker.dashboard.state import PATIENT_KEY, choose_patient, current_patient, database_url
 from tracker.domain.labels import CRITERIA_TITLES, criteria_title  # noqa: F401 (pages import them from here)
+from tracker.services.response import rule_set_choices
 
 def patient_picker(label: str = "Patient", *, key: str) -> str | None:
     """Choose a patient by code; the choice is shared with the other pages."""
@@ -47,3 +48,9 @@ def limits_picker(*, key: str) -> str | None:
         format_func=lambda n: f"default set ({default})" if n is None else n,
         help="Every laboratory should use its own normal values (Settings → normal-limit sets).",
     )
+
+
+def rule_set_picker(label: str, *, key: str, help: str) -> str:
+    """A response rule set by its title (the shipped default first); returns its id."""
+    choices = rule_set_choices()
+    return st.selectbox(label, list(choices), index=0, key=key, format_func=lambda r: choices[r], help=help)

@@ -90,6 +90,16 @@ DIAGNOSIS_LABELS = {
 }
 
 # Criteria sets by title (screens, text output); the ids stay in JSON and exports.
+# Names of the sets as the publications call them, for sentences (check text, reports).
+CRITERIA_NAMES = {
+    "efns-pns-2010-cidp": "EFNS/PNS 2010 CIDP",
+    "ean-pns-2021-cidp": "EAN/PNS 2021 CIDP",
+    "aan-1991-cidp": "AAN 1991 CIDP research criteria",
+    "efns-pns-2010-mmn": "EFNS/PNS 2010 MMN conduction block",
+    "hadden-1998-gbs": "Hadden 1998 GBS classification",
+    "rajabally-2015-gbs": "Rajabally 2015 GBS classification",
+}
+# Titles for pickers and tables, the disease first.
 CRITERIA_TITLES = {
     "efns-pns-2010-cidp": "CIDP — EFNS/PNS 2010",
     "ean-pns-2021-cidp": "CIDP — EAN/PNS 2021",

@@ -10,10 +10,10 @@ import streamlit as st
 
 from tracker.dashboard import figures, reads, style, tables
 from tracker.dashboard.state import database_url
-from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker, patient_picker
+from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker, patient_picker, rule_set_picker
 from tracker.domain.labels import DIAGNOSIS_SHORT
 from tracker.services.follow_up import PARAMETERS
-from tracker.services.response import RegimenCard, rule_set_choices, sdc_words
+from tracker.services.response import RegimenCard, sdc_words
 
 
 def regimen_card(card: RegimenCard) -> None:
@@ -45,10 +45,8 @@ if code:
     with top[2]:
         limits_name = limits_picker(key="follow_limits")
     with top[3]:
-        choices = rule_set_choices()
-        rules_id = st.selectbox(
-            "Response rule set", list(choices), index=0, key="follow_rules", format_func=lambda r: choices[r],
-            help="Which published thresholds classify each regimen as improved, stable or worsened.",
+        rules_id = rule_set_picker(
+            "Response rule set", key="follow_rules", help="Which published thresholds classify each regimen as improved, stable or worsened."
         )
     _, cold_limbs = reads.clinic_settings(url)
     view = reads.response(url, code, rules_id, limits_name)

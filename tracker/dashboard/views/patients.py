@@ -8,12 +8,12 @@ import streamlit as st
 from tracker.criteria.model import Settings
 from tracker.dashboard import reads, tables
 from tracker.dashboard.state import choose_patient, database_url, user, writing
-from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker
+from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker, rule_set_picker
 from tracker.domain.labels import DIAGNOSIS_SHORT, outcome_label
 from tracker.domain.vocabulary import DIAGNOSES
 from tracker.services.cohort import NOT_EVALUATED
 from tracker.services.evaluation import refresh_evaluations
-from tracker.services.response import rule_set_choices, with_course
+from tracker.services.response import with_course
 
 PAGE_ROWS = 50
 
@@ -29,9 +29,8 @@ below = st.columns(2)
 with below[0]:
     limits_name = limits_picker(key="patients_limits")
 with below[1]:
-    choices = rule_set_choices()
-    rules_id = st.selectbox(
-        "Course column: response rule set", list(choices), index=0, key="patients_rules", format_func=lambda r: choices[r],
+    rules_id = rule_set_picker(
+        "Course column: response rule set", key="patients_rules",
         help="The running regimen of each patient, classified by this rule set at the latest visit or score.",
     )
 # The database filters, counts and cuts the list into pages: a page costs the same for 10 or 5,000 patients.
