@@ -73,8 +73,6 @@ NERVE_PARAMETER_SHORT = {
     "snap_amplitude": "SNAP, µV",
     "sensory_velocity": "sensory CV, m/s",
 }
-REFERENCE_SHORT = {"regimen_baseline": "regimen baseline", "previous": "previous visit",
-                   "previous = regimen_baseline": "previous visit (= baseline)", "best": "best earlier"}
 
 # A nerve value whose change since the previous study is beyond the smallest detectable change (SDC).
 SDC_STEP_LABELS = {"improved": "▲ better beyond SDC", "worsened": "▼ worse beyond SDC"}
