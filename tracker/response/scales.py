@@ -47,6 +47,10 @@ class ScaleInfo:
     def direction_words(self) -> str:
         return "higher is better" if self.higher_is_better else "higher is worse"
 
+    def label_with_unit(self) -> str:
+        """``grip strength, left hand (kPa)``."""
+        return f"{self.label} ({self.unit})"
+
     def mic_words(self) -> str:
         """``≥ 1 point`` — the minimal important change as the source states it."""
         if self.mic is None:
