@@ -6,7 +6,9 @@ Caches are cleared between tests (Streamlit keeps them per process); runs get a 
 
 from __future__ import annotations
 
+import csv
 import datetime as dt
+import io
 import json
 import re
 from pathlib import Path
@@ -19,10 +21,10 @@ from streamlit.testing.v1 import AppTest
 
 from conftest import fingerprint, new_database
 from dashboard_support import fill_demo
-from tracker.db.models import AuditEvent, Patient, Visit
+from tracker.db.models import AuditEvent, NerveTest, Patient, StimulationSite, Visit
 from tracker.db.session import make_engine, make_session_factory
 from tracker.services import preferences
-from tracker.services.entry import SITE_COLUMNS
+from tracker.services.entry import empty_layout, entry_table
 
 APP = str(Path(__file__).resolve().parent.parent / "tracker" / "dashboard" / "app.py")
 PAGES = ["views/patients.py", "views/follow_up.py", "views/visit_review.py", "views/visit_entry.py", "views/cohort.py", "views/settings.py"]
@@ -150,52 +152,130 @@ def test_visit_review_shows_trace_and_outcome(monkeypatch, demo_url):
     assert re.search(rf"\[{number}\] Van den Bergh", text)
 
 
-def entry_sites(latency_elbow: float) -> pd.DataFrame:
-    frame = pd.DataFrame(
+@pytest.fixture(params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
+def entry_url(request, tmp_path):
+    """A demo database of its own on either backend, for the New study tests (they write)."""
+    generator = new_database(request.param, tmp_path)
+    url = next(generator)
+    fill_demo(url)
+    yield url
+    next(generator, None)
+
+
+MEDIAN = {"nerve": "median", "side": "right", "modality": "motor"}
+ULNAR = {"nerve": "ulnar", "side": "right", "modality": "motor"}
+
+
+def entry_sites(latency_elbow: float, *, ulnar: bool = False) -> list[dict]:
+    """Invented sites: median right motor (wrist 70 mm, elbow 230 mm), optionally ulnar right motor."""
+    rows = [
         {
-            "nerve": ["median", "median"], "side": ["right", "right"], "modality": ["motor", "motor"], "site_order": [1, 2],
-            "site": ["wrist", "elbow"], "distance_mm": [70.0, 230.0], "latency_ms": [3.8, latency_elbow], "amplitude_mv": [8.2, 7.9],
-            "temperature_c": [33.0, 33.0],
-        }
+            **MEDIAN,
+            "site_order": 1,
+            "site": "wrist",
+            "distance_mm": 70.0,
+            "latency_ms": 3.8,
+            "amplitude_mv": 8.2,
+        },
+        {
+            **MEDIAN,
+            "site_order": 2,
+            "site": "elbow",
+            "distance_mm": 230.0,
+            "latency_ms": latency_elbow,
+            "amplitude_mv": 7.9,
+        },
+    ]
+    if ulnar:  # 220 mm in 4.4 ms: 50.0 m/s
+        rows += [
+            {
+                **ULNAR,
+                "site_order": 1,
+                "site": "wrist",
+                "distance_mm": 70.0,
+                "latency_ms": 3.0,
+                "amplitude_mv": 9.0,
+            },
+            {
+                **ULNAR,
+                "site_order": 2,
+                "site": "below elbow",
+                "distance_mm": 220.0,
+                "latency_ms": 7.4,
+                "amplitude_mv": 8.8,
+            },
+        ]
+    return rows
+
+
+def fill_entry(
+    at: AppTest,
+    sites: list[dict],
+    nerves: list[dict] | None = None,
+    *,
+    patient: str = "TEST-NEW",
+    day: dt.date = dt.date(2026, 6, 1),
+) -> None:
+    # The grids are st.data_editor widgets, which AppTest cannot type into; the page starts the editors from
+    # their template state (what "Copy layout" fills), so the test sets that state and submits the form.
+    layout = empty_layout(nerves if nerves is not None else [{**MEDIAN, "temperature_c": 33.0}], sites)
+    at.session_state["entry_template"] = layout.sites
+    at.session_state["entry_nerve_template"] = layout.nerves
+    at.session_state["entry_template_version"] = (
+        at.session_state["entry_template_version"] + 1 if "entry_template_version" in at.session_state else 1
     )
-    return frame.reindex(columns=SITE_COLUMNS)
-
-
-def fill_entry(at: AppTest, sites: pd.DataFrame) -> None:
-    # The site table is an st.data_editor, which AppTest cannot type into; the page starts the editor from
-    # its template state (what "Copy layout" fills), so the test sets that state and submits the form.
-    at.session_state["entry_template"] = sites
-    at.session_state["entry_template_version"] = at.session_state["entry_template_version"] + 1 if "entry_template_version" in at.session_state else 1
     at.run()
-    at.text_input(key="entry_patient").input("TEST-NEW")
-    at.date_input(key="entry_date").set_value(dt.date(2026, 6, 1))
+    at.text_input(key="entry_patient").input(patient)
+    at.date_input(key="entry_date").set_value(day)
     at.selectbox(key="entry_diagnosis").select("cidp")
 
 
-def test_entry_refused_then_saved_and_shown(monkeypatch, fresh_url):
-    engine = make_engine(fresh_url)
+def press(at: AppTest, label: str) -> None:
+    next(b for b in at.button if b.label == label).click().run()
+    assert not at.exception, [e.message for e in at.exception]
+
+
+def row_problems(at: AppTest) -> pd.DataFrame:
+    return next(d.value for d in at.dataframe if list(d.value.columns) == ["grid", "row", "field", "problem"])
+
+
+def visits_of(engine, code: str) -> int:
+    with make_session_factory(engine)() as session:
+        return session.scalar(
+            select(func.count()).select_from(Visit).join(Patient).where(Patient.code == code)
+        )
+
+
+def test_entry_refused_then_saved_and_shown(monkeypatch, entry_url):
+    engine = make_engine(entry_url)
     before = fingerprint(engine)
-    at = open_page(monkeypatch, fresh_url, "views/visit_entry.py")
+    at = open_page(monkeypatch, entry_url, "views/visit_entry.py")
     # Elbow latency earlier than the wrist's: impossible (latencies grow proximally) — refused, nothing saved.
     fill_entry(at, entry_sites(latency_elbow=3.0))
-    submit = next(b for b in at.button if b.label == "Check and save")
-    submit.click().run()
-    assert not at.exception
+    press(at, "Check and save")
     assert any("Nothing was saved" in e.value for e in at.error)
-    problems = next(d.value for d in at.dataframe if list(d.value.columns) == ["row", "field", "problem"])
+    problems = row_problems(at)
     # The grid's own numbering (1 = first row) and the field in words (issue 10, items 12 and 15).
-    assert problems.iloc[0]["row"] == 2 and problems.iloc[0]["field"] == "onset latency (ms)"
+    assert problems.iloc[0].tolist()[:3] == ["stimulation sites", 2, "onset latency (ms)"]
     [message] = [e.value for e in at.error]
     assert "fields marked in red" not in message and "grid rows listed below" in message  # no field is marked
     assert fingerprint(engine) == before
-    # Corrected: 230 mm in 4.6 ms → 50.0 m/s; saved, and visible on the follow-up page.
+    # Corrected: 230 mm in 4.6 ms → 50.0 m/s. One nerve only: the importer's warning comes first, nothing
+    # is saved yet.
     fill_entry(at, entry_sites(latency_elbow=8.4))
-    submit = next(b for b in at.button if b.label == "Check and save")
-    submit.click().run()
-    assert not at.exception and not at.error, [e.value for e in at.error]
+    press(at, "Check and save")
+    assert not at.error, [e.value for e in at.error]
+    warnings = "\n".join(w.value for w in at.warning)
+    assert "Not saved yet" in warnings and "stimulation sites, row 1, nerve:" in warnings
+    assert "holds a single nerve (median right)" in warnings
+    assert fingerprint(engine) == before
+    press(at, "Save with these warnings")
+    assert not at.error, [e.value for e in at.error]
     assert any("Saved: TEST-NEW 2026-06-01" in s.value for s in at.success)
-    with make_session_factory(engine)() as session:
-        assert session.scalar(select(func.count()).select_from(Visit).join(Patient).where(Patient.code == "TEST-NEW")) == 1
+    assert any(
+        "Saved with these warnings" in w.value and "single nerve" in w.value for w in at.warning
+    )  # not lost
+    assert visits_of(engine, "TEST-NEW") == 1
     engine.dispose()
     at.switch_page("views/follow_up.py")
     at.run()
@@ -204,6 +284,139 @@ def test_entry_refused_then_saved_and_shown(monkeypatch, fresh_url):
     trend = plotly_specs(at)[1]
     [line] = [t for t in trend["data"] if t.get("meta", {}).get("kind") == "measured"]
     assert line["customdata"][0][1] == "50.0"  # velocity at clinical precision, 1 decimal (issue 10, item 12)
+
+
+def test_entry_nerve_values_entered_once_apply_to_every_site(monkeypatch, entry_url):
+    # Issue 10, item 15: temperature, filter and F-waves are entered once per nerve test (invented values) and
+    # written on every site row of that nerve test, as the measurements format wants (DESIGN.md §4.1).
+    nerves = [
+        {**MEDIAN, "temperature_c": 33.5, "lff_hz": 2.0, "f_latency_ms": "28.4", "f_persistence_pct": 80.0},
+        {**ULNAR, "temperature_c": 32.0, "lff_hz": 2.0, "f_latency_ms": "absent"},
+    ]
+    sites = entry_sites(latency_elbow=8.4, ulnar=True)
+    layout = empty_layout(nerves, sites)
+    raw, places, problems = entry_table(
+        {"patient": "TEST-ONCE", "visit_date": dt.date(2026, 6, 1)},
+        layout.sites.set_axis(pd.RangeIndex(1, 5)),
+        layout.nerves.set_axis(pd.RangeIndex(1, 3)),
+    )
+    assert problems == []
+    rows = list(csv.DictReader(io.StringIO(raw.decode("utf-8"))))
+    values = [
+        (r["nerve"], r["site"], r["temperature_c"], r["lff_hz"], r["f_latency_ms"], r["f_persistence_pct"])
+        for r in rows
+    ]
+    assert values == [
+        ("median", "wrist", "33.5", "2", "28.4", "80"),
+        ("median", "elbow", "33.5", "2", "28.4", "80"),
+        ("ulnar", "wrist", "32", "2", "absent", ""),
+        ("ulnar", "below elbow", "32", "2", "absent", ""),
+    ]
+    assert [(p.site_row, p.nerve_row) for p in places] == [(1, 1), (2, 1), (3, 2), (4, 2)]
+    # The same through the page: saved at once (two nerves, nothing to warn of), the values stored per nerve.
+    at = open_page(monkeypatch, entry_url, "views/visit_entry.py")
+    fill_entry(at, sites, nerves, patient="TEST-ONCE")
+    press(at, "Check and save")
+    assert not at.error and not at.warning, [e.value for e in [*at.error, *at.warning]]
+    assert any("Saved: TEST-ONCE 2026-06-01" in s.value for s in at.success)
+    engine = make_engine(entry_url)
+    with make_session_factory(engine)() as session:
+        stored = session.execute(
+            select(
+                NerveTest.nerve,
+                NerveTest.temperature_c,
+                NerveTest.lff_hz,
+                NerveTest.f_latency_ms,
+                NerveTest.f_absent,
+                NerveTest.f_persistence_pct,
+            )
+            .join(Visit)
+            .join(Patient)
+            .where(Patient.code == "TEST-ONCE")
+            .order_by(NerveTest.nerve)
+        ).all()
+        sites_stored = session.scalar(
+            select(func.count())
+            .select_from(StimulationSite)
+            .join(NerveTest)
+            .join(Visit)
+            .join(Patient)
+            .where(Patient.code == "TEST-ONCE")
+        )
+    engine.dispose()
+    assert [tuple(r) for r in stored] == [
+        ("median", 33.5, 2.0, 28.4, False, 80.0),
+        ("ulnar", 32.0, 2.0, None, True, None),
+    ]
+    assert sites_stored == 4
+
+
+def test_entry_warnings_shown_after_a_dry_run_and_before_saving(monkeypatch, entry_url):
+    # Invented demo patient DEMO-01 has a visit on 2023-02-14. A visit entered on 2023-02-10 is 4 days from
+    # it, and 10 February with day and month swapped is 2 October: the importer warns of a possible entry
+    # slip (issue 10, item 16: warn, not refuse). Two nerves, so no single-nerve warning.
+    engine = make_engine(entry_url)
+    before, visits = fingerprint(engine), visits_of(engine, "DEMO-01")
+    at = open_page(monkeypatch, entry_url, "views/visit_entry.py")
+    fill_entry(at, entry_sites(latency_elbow=8.4, ulnar=True), patient="DEMO-01", day=dt.date(2023, 2, 10))
+    press(at, "Check only (nothing saved)")
+    assert not at.error, [e.value for e in at.error]
+    assert any("Check passed; nothing was saved" in i.value for i in at.info)
+    [warning] = [w.value for w in at.warning]
+    assert (
+        "visit date:" in warning
+        and "4 days from their visit on 2023-02-14" in warning
+        and "2023-10-02" in warning
+    )
+    assert fingerprint(engine) == before
+    press(at, "Check and save")
+    assert any("Not saved yet" in w.value for w in at.warning) and fingerprint(engine) == before
+    press(at, "Save with these warnings")
+    assert any("Saved: DEMO-01 2023-02-10" in s.value for s in at.success)
+    assert visits_of(engine, "DEMO-01") == visits + 1
+    engine.dispose()
+
+
+def test_entry_errors_name_the_grid_row_and_the_field(monkeypatch, entry_url):
+    # Invented entry with two mistakes in the nerve-test grid: a limb temperature of 60 °C (outside the
+    # 20–40 °C physical range of tracker/reference/plausibility.csv, common practice, no source) given once
+    # for a nerve test of two sites, and a nerve test (tibial) with no site rows. No visit field is marked.
+    engine = make_engine(entry_url)
+    before = fingerprint(engine)
+    at = open_page(monkeypatch, entry_url, "views/visit_entry.py")
+    nerves = [
+        {**MEDIAN, "temperature_c": 60.0},
+        {"nerve": "tibial", "side": "left", "modality": "motor", "temperature_c": 31.0},
+    ]
+    fill_entry(at, entry_sites(latency_elbow=8.4, ulnar=True), nerves, patient="DEMO-01")
+    press(at, "Check and save")
+    problems = row_problems(at)
+    assert problems[["grid", "row", "field"]].values.tolist() == [
+        ["nerve tests", 1, "temperature (°C)"],  # once, though written on both median site rows
+        ["nerve tests", 2, "nerve"],
+    ]
+    assert (
+        "you entered '60'" in problems.iloc[0]["problem"]
+        and "tibial left (motor)" in problems.iloc[1]["problem"]
+    )
+    [message] = [e.value for e in at.error]
+    assert "fields marked in red" not in message and "grid rows listed below" in message
+    assert not any(m.value.startswith(":red[") for m in at.markdown)
+    assert identifiers_in(at) == {}
+    # Corrected grids, but a sex that differs from the stored patient's (DEMO-01 is female in the invented
+    # demo file): the field is marked, and only then does the message speak of marked fields.
+    fill_entry(
+        at, entry_sites(latency_elbow=8.4, ulnar=True), [{**MEDIAN, "temperature_c": 33.0}], patient="DEMO-01"
+    )
+    at.selectbox(key="entry_sex").select("male")
+    press(at, "Check and save")
+    [message] = [e.value for e in at.error]
+    assert "the fields marked in red" in message and "grid rows" not in message
+    [marked] = [m.value for m in at.markdown if m.value.startswith(":red[")]
+    assert marked.startswith(":red[**sex:**") and "female" in marked and "--" not in marked
+    assert identifiers_in(at) == {}
+    assert fingerprint(engine) == before
+    engine.dispose()
 
 
 def test_settings_change_is_saved_and_audited(monkeypatch, fresh_url):
@@ -466,6 +679,13 @@ def test_visit_review_changes_since_the_previous_visit_as_a_table(monkeypatch, d
     assert any(m.value.startswith("**Changed since") for m in at.markdown)
 
 
+def demo_rows(patient: str, day: str) -> list[dict[str, str]]:
+    """The demo file's rows of one visit (invented data)."""
+    path = Path(__file__).parent.parent / "demo_data" / "measurements.csv"
+    with path.open(encoding="utf-8") as handle:
+        return [r for r in csv.DictReader(handle) if (r["patient"], r["visit_date"]) == (patient, day)]
+
+
 def test_entry_layout_copy_keeps_the_patients_details(monkeypatch, demo_url):
     # Issue 10, item 15: copying a patient's layout also fills the visit fields from that patient's record
     # (invented demo patient DEMO-04: MMN, male, born 1979, 181 cm — demo_data/measurements.csv).
@@ -474,5 +694,38 @@ def test_entry_layout_copy_keeps_the_patients_details(monkeypatch, demo_url):
     next(b for b in at.button if b.label == "Copy layout").click().run()
     assert not at.exception
     assert at.text_input(key="entry_patient").value == "DEMO-04"
-    assert at.selectbox(key="entry_diagnosis").value == "mmn" and at.selectbox(key="entry_sex").value == "male"
-    assert at.number_input(key="entry_birth_year").value == 1979 and at.number_input(key="entry_height").value == 181
+    assert (
+        at.selectbox(key="entry_diagnosis").value == "mmn" and at.selectbox(key="entry_sex").value == "male"
+    )
+    assert (
+        at.number_input(key="entry_birth_year").value == 1979
+        and at.number_input(key="entry_height").value == 181
+    )
+    # The layout itself: one nerve-test row per nerve test of the latest visit, one site row per site (demo
+    # file, invented), identifiers in words, every measured value empty (temperature and F-waves are
+    # measured anew).
+    rows = demo_rows("DEMO-04", "2025-06-03")  # DEMO-04's latest visit
+    nerves, sites = at.session_state["entry_nerve_template"], at.session_state["entry_template"]
+    assert len(sites) == len(rows) and len(nerves) == len(
+        {(r["nerve"], r["side"], r["modality"]) for r in rows}
+    )
+    assert (
+        nerves[["temperature_c", "lff_hz", "f_persistence_pct"]].isna().all().all()
+        and nerves["f_latency_ms"].isna().all()
+    )
+    assert sites[["latency_ms", "amplitude_mv", "amplitude_uv"]].isna().all().all()
+    layout = sorted(
+        zip(sites["nerve"], sites["side"], sites["modality"], sites["site_order"], sites["distance_mm"])
+    )
+    assert layout == sorted(
+        (
+            r["nerve"].replace("_", " "),
+            r["side"],
+            r["modality"],
+            float(r["site_order"]),
+            float(r["distance_mm"]),
+        )
+        for r in rows
+    )
+    assert "below elbow" in set(sites["site"]) and "abductor digiti minimi" in set(nerves["recording_site"])
+    assert identifiers_in(at) == {}

@@ -440,28 +440,52 @@ def test_cohort_shares_add_up_per_criteria_set(demo_sessions):
             assert count == int((visits[criteria] == outcome).sum())
 
 
-def test_unusual_values_accepted_at_entry_are_flagged_in_review(tmp_path):
+def test_unusual_values_accepted_at_entry_are_flagged_in_review(db_url):
     # Motor CV outside 10–100 m/s is refused as a probable unit error unless waived (DESIGN.md §4.1 rule;
     # "common practice, no source" in tracker/reference/plausibility.csv). 230 mm over 1.9 ms = 121 m/s.
     import pandas as pd
 
-    from dashboard_support import fill_demo
     from tracker.services.entry import SITE_COLUMNS, enter_visit
     from tracker.services.records import patient_record
     from tracker.services.review import unusual_values
 
-    url = f"sqlite:///{tmp_path / 'unusual.sqlite3'}"
-    fill_demo(url)
     sites = pd.DataFrame(
-        {"nerve": ["ulnar", "ulnar"], "side": ["left", "left"], "modality": ["motor", "motor"], "site_order": [1, 2], "site": ["wrist", "below_elbow"],
-         "distance_mm": [70.0, 230.0], "latency_ms": [3.1, 5.0], "amplitude_mv": [9.0, 8.8]}
+        {
+            "nerve": ["ulnar", "ulnar"],
+            "side": ["left", "left"],
+            "modality": ["motor", "motor"],
+            "site_order": [1, 2],
+            "site": ["wrist", "below_elbow"],
+            "distance_mm": [70.0, 230.0],
+            "latency_ms": [3.1, 5.0],
+            "amplitude_mv": [9.0, 8.8],
+        },
+        index=pd.RangeIndex(1, 3),
     ).reindex(columns=SITE_COLUMNS)
     visit = {"patient": "TEST-UNUSUAL", "visit_date": dt.date(2026, 5, 4)}
-    engine = make_engine(url)
+    engine = make_engine(db_url)
     with make_session_factory(engine).begin() as session:
         refused = enter_visit(session, visit, sites, username="test")
-        assert not refused.saved and refused.row_problems[0][1] == "distance_mm"
-        accepted = enter_visit(session, visit, sites, username="test", allow_unusual=True)
+        assert not refused.saved and [(n.grid, n.row, n.field) for n in refused.row_problems] == [
+            ("sites", 2, "distance_mm")
+        ]
+        # The form's own words: its checkbox, not the command-line option.
+        assert (
+            "tick “Accept unusual values”" in refused.row_problems[0].message
+            and "--" not in refused.row_problems[0].message
+        )
+        # One nerve: the single-nerve warning must be accepted first (it is shown to the user before saving).
+        checked = enter_visit(session, visit, sites, username="test", allow_unusual=True)
+        assert checked.valid and not checked.saved and [n.field for n in checked.warnings] == ["nerve"]
+        assert [(n.grid, n.row) for n in checked.unusual] == [("sites", 2)]
+        accepted = enter_visit(
+            session,
+            visit,
+            sites,
+            username="test",
+            allow_unusual=True,
+            accepted_warnings=[n.text for n in checked.warnings],
+        )
         assert accepted.saved
     with make_session_factory(engine)() as session:
         record = patient_record(session, "TEST-UNUSUAL")
@@ -633,24 +657,59 @@ def test_changes_since_is_a_short_table_in_words():
     assert table.iloc[1].tolist() == ["median left", "distal motor latency", "▲ met", "? not evaluable", "6.71 ms", "—"]
 
 
-def test_entry_problems_name_the_grids_row_number(tmp_path):
-    # Issue 10, item 15: one row numbering everywhere, the grid's. Invented study: grid rows 1–3, row 2 left
-    # empty (a spare row), row 3's elbow latency earlier than the wrist's (impossible: latencies grow proximally).
+def test_entry_problems_name_the_grids_row_number(db_url):
+    # Issue 10, item 15: one row numbering everywhere, the grid's. Invented study: grid rows 1–5, rows 2 and 3
+    # left empty (spare rows), row 4's elbow latency earlier than the wrist's (impossible: latencies grow
+    # proximally), row 5 the same nerve test and site order as row 4 — a message naming both rows names them
+    # by the grid's numbers (the table written behind the form has them as rows 3 and 4).
     import pandas as pd
 
-    from tracker.db import migrate
     from tracker.services.entry import SITE_COLUMNS, enter_visit
 
-    url = f"sqlite:///{tmp_path / 'rows.sqlite3'}"
-    migrate.upgrade(url)
     sites = pd.DataFrame(
-        {"nerve": ["median", None, "median"], "side": ["right", None, "right"], "modality": ["motor", None, "motor"], "site_order": [1, None, 2],
-         "site": ["wrist", None, "elbow"], "distance_mm": [70.0, None, 230.0], "latency_ms": [3.8, None, 3.0], "amplitude_mv": [8.2, None, 7.9]},
-        index=pd.RangeIndex(1, 4),
+        {
+            "nerve": ["median", None, None, "median", "median"],
+            "side": ["right", None, None, "right", "right"],
+            "modality": ["motor", None, None, "motor", "motor"],
+            "site_order": [1, None, None, 2, 2],
+            "site": ["wrist", None, None, "elbow", "elbow"],
+            "distance_mm": [70.0, None, None, 230.0, 230.0],
+            "latency_ms": [3.8, None, None, 3.0, 8.4],
+            "amplitude_mv": [8.2, None, None, 7.9, 7.9],
+        },
+        index=pd.RangeIndex(1, 6),
     ).reindex(columns=SITE_COLUMNS)
-    engine = make_engine(url)
+    engine = make_engine(db_url)
     with make_session_factory(engine).begin() as session:
-        result = enter_visit(session, {"patient": "TEST-ROWS", "visit_date": dt.date(2026, 5, 4)}, sites, username="test")
+        result = enter_visit(
+            session, {"patient": "TEST-ROWS", "visit_date": dt.date(2026, 5, 4)}, sites, username="test"
+        )
     engine.dispose()
     assert not result.saved
-    assert [(row, column) for row, column, _ in result.row_problems] == [(3, "latency_ms")]
+    by_place = {(n.grid, n.row, n.field): n.message for n in result.row_problems}
+    assert ("sites", 4, "latency_ms") in by_place
+    [duplicate] = [m for (grid, row, field), m in by_place.items() if field == "site_order"]
+    assert "rows 4, 5" in duplicate and "“site (1 = distal)”" in duplicate and "site_order" not in duplicate
+
+
+def test_upload_warnings_are_kept_in_words(db_url):
+    # Issue 10, item 16: a visit of a single nerve is imported with a warning, not refused; the upload tab
+    # lists it with the file's own row (header = row 1) and the column by its label. Invented one-nerve
+    # study.
+    from tracker.services.entry import import_upload, upload_notes
+
+    raw = (
+        "patient,visit_date,nerve,side,modality,site_order,site,distance_mm,latency_ms,amplitude_uv,"
+        "temperature_c\n"
+        "TEST-ONE,2026-05-04,superficial_fibular,left,sensory,1,lateral_leg,100,2.5,9,31\n"
+    )
+    engine = make_engine(db_url)
+    with make_session_factory(engine).begin() as session:
+        report = import_upload(session, raw.encode(), "study.csv", username="test", dry_run=True)
+    engine.dispose()
+    assert report.dry_run and report.added == 1
+    table = upload_notes(report.warnings, "warning")
+    assert list(table.columns) == ["row", "column", "value", "warning"]
+    [row] = table.to_dict("records")
+    assert row["row"] == 2 and row["column"] == "nerve"
+    assert "single nerve (superficial fibular left)" in row["warning"] and "_" not in row["warning"]
