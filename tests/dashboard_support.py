@@ -20,7 +20,7 @@ def fill_demo(url: str) -> None:
         with make_session_factory(engine).begin() as session:
             for name in DEMO_FILES:
                 import_file(session, demo_data_dir() / name, username="test")
-            refresh_evaluations(session)
+            refresh_evaluations(session, username="invented-test-user")
     finally:
         engine.dispose()
 

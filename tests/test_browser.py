@@ -56,7 +56,7 @@ def served(tmp_path_factory):
     port = free_port()
     log = (folder / "serve.log").open("w")
     process = subprocess.Popen(
-        [sys.executable, "-c", "from tracker.cli import main; main()", "--db", url, "--user", "browser-test", "serve", "--port", str(port)],
+        [sys.executable, "-c", "from tracker.cli import main; main()", "--db", url, "serve", "--port", str(port)],
         stdout=log, stderr=subprocess.STDOUT, start_new_session=True,
     )
     base = f"http://127.0.0.1:{port}"

@@ -56,7 +56,7 @@ def test_default_database_path_is_printed_and_env_var_is_honoured(tmp_path):
 def test_upgrade_import_show_round_trip(tmp_path):
     url = f"sqlite:///{tmp_path / 'clinic.sqlite3'}"
     assert _run("--db", url, "db", "upgrade").returncode == 0
-    result = _run("--db", url, "--user", "tester", "import", str(DEMO / "measurements.csv"), str(DEMO / "treatments.csv"))
+    result = _run("--db", url, "import", str(DEMO / "measurements.csv"), str(DEMO / "treatments.csv"))
     assert result.returncode == 0, result.stderr
     assert "added 29 visits" in result.stdout
     result = _run("--db", url, "show", "DEMO-04")

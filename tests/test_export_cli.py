@@ -35,7 +35,7 @@ def test_segment_parquet_on_the_demo_database_writes_table_dictionary_and_manife
     engine, _ = build_demo_database(path, username="tester")
     engine.dispose()
     out = tmp_path / "exports"
-    code, stdout, err = run_cli(capsys, "--db", f"sqlite:///{path}", "--user", "tester", "export", "--level", "segment",
+    code, stdout, err = run_cli(capsys, "--db", f"sqlite:///{path}", "export", "--level", "segment",
                                 "--format", "parquet", "--out", f"{out}/")
     assert code == 0, err
     data = out / "ncs-export-segment.parquet"
@@ -64,28 +64,38 @@ def test_segment_parquet_on_the_demo_database_writes_table_dictionary_and_manife
 def test_identified_export_refused_without_a_role_and_nothing_written(demo_db, engine, tmp_path, capsys):
     before = fingerprint(engine)
     out = tmp_path / "out"
-    code, _, err = run_cli(capsys, "--db", demo_db, "--user", "nobody-registered", "export", "--identified", "--out", f"{out}/")
+    code, _, err = run_cli(capsys, "--db", demo_db, "export", "--identified", "--out", f"{out}/")
     assert code == 1
-    assert "not registered" in err and "coordinator or admin" in err and "Traceback" not in err
+    assert "users init" in err and "Traceback" not in err  # single-user mode: no account may receive identities
     assert not out.exists()
     assert fingerprint(engine) == before  # not even the export secret was created
 
 
-def test_identified_export_refused_for_a_viewer(demo_db, engine, sessions, tmp_path, capsys):
-    with sessions.begin() as session:
-        session.add(User(username="viewer-invented", role="viewer"))
-    before = fingerprint(engine)
-    out = tmp_path / "out"
-    code, _, err = run_cli(capsys, "--db", demo_db, "--user", "viewer-invented", "export", "--identified", "--out", f"{out}/")
-    assert code == 1 and "role 'viewer'" in err
+def test_identified_export_refused_for_a_viewer(demo_db, engine, sessions, tmp_path, capsys, monkeypatch):
+    from access_support import PASSWORD, login, typed
+    from tracker.services.access import accounts
+
+    with login(monkeypatch, demo_db, "viewer-invented") as (url, name):
+        with sessions.begin() as session:
+            session.add(User(username=name, role="viewer", password_hash=accounts.hash_password(PASSWORD)))
+        before = fingerprint(engine)
+        out = tmp_path / "out"
+        typed(monkeypatch, PASSWORD)
+        code, _, err = run_cli(capsys, "--db", url, "export", "--identified", "--out", f"{out}/")
+    assert code == 1 and "coordinator or admin" in err and "role viewer" in err
     assert not out.exists() and fingerprint(engine) == before
 
 
-def test_identified_export_by_a_coordinator_is_written_and_audited(demo_db, sessions, tmp_path, capsys):
-    with sessions.begin() as session:
-        session.add(User(username="coordinator-invented", role="coordinator"))
-    code, out, err = run_cli(capsys, "--db", demo_db, "--user", "coordinator-invented", "export", "--identified",
-                             "--patients", "DEMO-03", "--criteria", "aan-1991-cidp", "--out", str(tmp_path / "cohort.csv"))
+def test_identified_export_by_a_coordinator_is_written_and_audited(demo_db, sessions, tmp_path, capsys, monkeypatch):
+    from access_support import PASSWORD, login, typed
+    from tracker.services.access import accounts
+
+    with login(monkeypatch, demo_db, "coordinator-invented") as (url, name):
+        with sessions.begin() as session:
+            session.add(User(username=name, role="coordinator", password_hash=accounts.hash_password(PASSWORD)))
+        typed(monkeypatch, PASSWORD)
+        code, out, err = run_cli(capsys, "--db", url, "export", "--identified",
+                                 "--patients", "DEMO-03", "--criteria", "aan-1991-cidp", "--out", str(tmp_path / "cohort.csv"))
     assert code == 0, err
     assert "IDENTIFIED" in out
     text = (tmp_path / "cohort.csv").read_text(encoding="utf-8")
@@ -93,13 +103,13 @@ def test_identified_export_by_a_coordinator_is_written_and_audited(demo_db, sess
     assert "2023-03-21" in text  # a real visit date of DEMO-03 (demo file, invented)
     with sessions() as session:
         events = session.scalars(select(AuditEvent).where(AuditEvent.entity == "export")).all()
-    assert [(e.action, e.username) for e in events] == [("export_identified", "coordinator-invented")]
+    assert [(e.action, e.username) for e in events] == [("export_identified", name)]
     assert events[0].after["filters"]["patients"]["codes"] == ["DEMO-03"]
     assert events[0].after["files"]["cohort.csv"] == export_files.sha256_of(tmp_path / "cohort.csv")
 
 
 def test_de_identified_export_is_audited_too(demo_db, sessions, tmp_path, capsys):
-    code, _, err = run_cli(capsys, "--db", demo_db, "--user", "anyone", "export", "--level", "long", "--format", "csv",
+    code, _, err = run_cli(capsys, "--db", demo_db, "export", "--level", "long", "--format", "csv",
                            "--dates", "relative", "--out", str(tmp_path / "long"))
     assert code == 0, err
     with sessions() as session:

@@ -25,7 +25,9 @@ from tracker.db import migrate
 from tracker.db.models import Patient
 from tracker.db.session import make_engine, make_session_factory
 from tracker.response.rules import DEFAULT_RULES, rule_sets
-from tracker.services import preferences, users
+from tracker.db.models import User
+from tracker.services import preferences
+from tracker.services.access.permissions import Actor
 from tracker.services.export import deidentify
 from tracker.services.export import export_frame, write_export
 from tracker.services.export.response import score_at
@@ -232,9 +234,11 @@ def test_shifted_regimen_start_moves_with_the_visit_dates(clinic):
 
 def test_identified_export_gives_the_real_regimen_start(clinic):
     with clinic.sessions.begin() as session:
-        users.set_user(session, COORDINATOR, role="coordinator", acting=USER)
+        session.add(User(username=COORDINATOR, role="coordinator"))
+        session.flush()
+        coordinator = Actor(COORDINATOR, "coordinator", "os-login", authenticated=True)  # as after her password
         frame = export_frame(session, ExportOptions(level="visit", criteria=("efns-pns-2010-cidp",), identified=True,
-                                                    patients=("INV-STRETCH",)), username=COORDINATOR)
+                                                    patients=("INV-STRETCH",)), username=COORDINATOR, actor=coordinator)
     starts = dict(zip(frame["visit_date"], frame["regimen_start_date"]))
     assert starts[_day("2024-08-20")] == _day("2024-06-01")  # treatments file above (invented)
     assert starts[_day("2024-04-10")] == _day("2024-01-15")  # the induction's start

@@ -441,7 +441,7 @@ def assert_reported(stderr: str, row: int | None, column: str | None, expected: 
 def refused(capsys, url: str, engine, path: Path, *options: str) -> str:
     """Import ``path``; assert exit 1 and an unchanged database; return stderr."""
     before = fingerprint(engine)
-    code, _out, err = run_cli(capsys, "--db", url, "--user", "tester", "import", str(path), *options)
+    code, _out, err = run_cli(capsys, "--db", url, "import", str(path), *options)
     assert code == 1, f"exit {code}, stderr:\n{err}"
     assert fingerprint(engine) == before, "the database changed although the file was refused"
     return err

@@ -250,7 +250,6 @@ def test_visit_review_offers_the_pdf_of_the_chosen_visit(dashboard_db, monkeypat
     from streamlit.testing.v1 import AppTest
 
     monkeypatch.setenv("NCS_TRACKER_DB", dashboard_db)
-    monkeypatch.setenv("NCS_TRACKER_USER", "apptest")
     at = AppTest.from_file(APP, default_timeout=120)
     at.session_state["ncs_patient"] = "DEMO-01"
     at.run()

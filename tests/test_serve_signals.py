@@ -37,7 +37,7 @@ def test_stopping_serve_stops_the_dashboard(tmp_path, signum):
     port = _free_port()
     log = (tmp_path / "serve.log").open("w")
     process = subprocess.Popen(
-        [sys.executable, "-c", "from tracker.cli import main; main()", "--db", url, "--user", "signal-test", "serve", "--port", str(port)],
+        [sys.executable, "-c", "from tracker.cli import main; main()", "--db", url, "serve", "--port", str(port)],
         stdout=log, stderr=subprocess.STDOUT, start_new_session=True,
     )
     try:

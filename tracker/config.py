@@ -3,7 +3,8 @@
 | setting | environment variable | default |
 | --- | --- | --- |
 | database URL | ``NCS_TRACKER_DB`` | SQLite file ``ncs-tracker.sqlite3`` in the user data folder |
-| acting user (audit trail) | ``NCS_TRACKER_USER`` | the operating-system login name |
+| acting user (audit trail) | ``NCS_TRACKER_USER`` may only restate it | the login: operating-system account (SQLite), database login (PostgreSQL) |
+| dashboard sign-in | ``NCS_TRACKER_SIGN_IN=required`` (set by ``serve --sign-in``) | off on loopback |
 """
 
 from __future__ import annotations
@@ -14,6 +15,8 @@ from pathlib import Path
 
 ENV_DB = "NCS_TRACKER_DB"
 ENV_USER = "NCS_TRACKER_USER"
+# Set to "required" by ``serve --sign-in`` for the dashboard process.
+ENV_SIGN_IN = "NCS_TRACKER_SIGN_IN"
 
 
 def user_data_dir() -> Path:

@@ -1,5 +1,10 @@
-"""Run the Streamlit dashboard as a child process: bound to one address, usage statistics off, no error
-details in the browser, our theme; the database URL and user pass through the environment."""
+"""Run the Streamlit dashboard as a child process: bound to one address, usage statistics and outside
+lookups off, no error details in the browser, our theme; the database URL and the sign-in requirement pass
+through the environment.
+
+Without sign-in the dashboard acts as the login that started it, which is right only for one person on their
+own machine: on any address other than loopback it refuses to start unless sign-in is on.
+"""
 
 from __future__ import annotations
 
@@ -12,7 +17,9 @@ from collections.abc import Callable
 from pathlib import Path
 
 from tracker import CAUTION
-from tracker.config import ENV_DB, ENV_USER
+import ipaddress
+
+from tracker.config import ENV_DB, ENV_SIGN_IN
 from tracker.dashboard import style
 from tracker.errors import TrackerError
 
@@ -43,11 +50,34 @@ def streamlit_command(host: str, port: int) -> list[str]:
     ]
 
 
-def run_dashboard(url: str, *, host: str, port: int, user: str, announce: Callable[[str], None]) -> None:
+def is_loopback(host: str) -> bool:
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+def check_exposure(host: str, *, sign_in: bool) -> None:
+    """Refuse to serve patient data beyond this machine without sign-in."""
+    if not sign_in and not is_loopback(host):
+        raise TrackerError(
+            f"Refusing to serve on {host} without sign-in: anyone who can reach that address would see every "
+            "patient. Add --sign-in (accounts with passwords: 'ncs-tracker users init', 'users add'), or serve "
+            "on 127.0.0.1 for yourself only."
+        )
+
+
+def run_dashboard(url: str, *, host: str, port: int, sign_in: bool, announce: Callable[[str], None]) -> None:
     """Start the dashboard and wait until it stops. Ctrl+C, SIGTERM and SIGHUP stop the Streamlit child too, so
     that no dashboard keeps serving patient data after ``serve`` itself was stopped."""
+    check_exposure(host, sign_in=sign_in)
     port = free_port(host, port)
-    environment = {**os.environ, ENV_DB: url, ENV_USER: user, "STREAMLIT_BROWSER_GATHER_USAGE_STATS": "false"}
+    environment = {k: v for k, v in os.environ.items() if k != ENV_SIGN_IN}
+    environment.update({ENV_DB: url, "STREAMLIT_BROWSER_GATHER_USAGE_STATS": "false"})
+    if sign_in:
+        environment[ENV_SIGN_IN] = "required"
     process = subprocess.Popen(streamlit_command(host, port), env=environment, stdout=subprocess.DEVNULL)
     shown_host = "127.0.0.1" if host in ("127.0.0.1", "localhost") else host
 

@@ -25,8 +25,19 @@ def main() -> None:
     for module in engine.REGISTRY.values():  # the criteria sets are imported on first use otherwise
         importlib.import_module(f"tracker.criteria.sets.{module}")
 
+    no_outside_lookups()
     sys.argv = ["streamlit", *sys.argv[1:]]
     streamlit_main()
+
+
+def no_outside_lookups() -> None:
+    """Streamlit looks up the machine's public address (an HTTP request to an outside service) when it is
+    bound to every address; a clinic's dashboard never reaches outside the hospital network, so both address
+    lookups answer "unknown" without any network traffic."""
+    from streamlit import net_util
+
+    net_util.get_external_ip = lambda: None
+    net_util.get_internal_ip = lambda: None
 
 
 if __name__ == "__main__":

@@ -71,10 +71,14 @@ CreatedAt = Annotated[dt.datetime, mapped_column(DateTime(timezone=True), defaul
 
 
 class User(Base):
-    """A person who uses the tool (sign-in comes later; the audit trail names users by ``username``)."""
+    """An account: the name is the operating-system login (SQLite) or the database login (PostgreSQL) of
+    command-line use, and the sign-in name of the dashboard. The audit trail names users by ``username``."""
 
     __tablename__ = "users"
-    __table_args__ = (CheckConstraint(_in("role", USER_ROLES), name="role"),)
+    __table_args__ = (
+        CheckConstraint(_in("role", USER_ROLES), name="role"),
+        CheckConstraint("failed_sign_ins >= 0", name="failed_sign_ins_not_negative"),
+    )
 
     id: Mapped[IntPk]
     username: Mapped[str] = mapped_column(String(64), unique=True)
@@ -82,6 +86,10 @@ class User(Base):
     role: Mapped[str] = mapped_column(String(16), server_default="viewer")
     active: Mapped[bool] = mapped_column(Boolean, server_default="1")
     created_at: Mapped[CreatedAt]
+    password_hash: Mapped[str | None] = mapped_column(String(255), comment="argon2id, PHC string; never logged")
+    password_changed_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
+    failed_sign_ins: Mapped[int] = mapped_column(Integer, server_default="0", comment="consecutive failures")
+    locked_until: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
 
 
 class Patient(Base):
@@ -372,7 +380,9 @@ class Evaluation(Base):
 
 
 class AuditEvent(Base):
-    """One write: who, when, what, and the values before and after."""
+    """One write: who, when, what, and the values before and after. Rows are append-only: triggers refuse
+    UPDATE and DELETE once a row is sealed (its ``row_hash`` set), and the hash chain shows any change made
+    around them."""
 
     __tablename__ = "audit_events"
 
@@ -385,6 +395,9 @@ class AuditEvent(Base):
     before: Mapped[dict[str, Any] | None] = mapped_column()
     after: Mapped[dict[str, Any] | None] = mapped_column()
     detail: Mapped[str | None] = mapped_column(Text)
+    # The hash chain (tracker.services.access.audit): SHA-256 hex of the previous row and of this row.
+    prev_hash: Mapped[str | None] = mapped_column(String(64))
+    row_hash: Mapped[str | None] = mapped_column(String(64))
 
 
 class AppSetting(Base):

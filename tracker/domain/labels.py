@@ -5,6 +5,8 @@ Screens, text output and reports use these; JSON, exports and code keep the iden
 
 from __future__ import annotations
 
+import re
+
 CLASSIFICATION_LABELS = {
     "improved": "improved",
     "stable": "stable",
@@ -259,3 +261,113 @@ def treatment_words(therapy: str, dose: float | None, dose_unit: str | None, int
     if interval_days is not None and interval_days == interval_days:
         text += " daily" if int(interval_days) == 1 else f" every {int(interval_days)} days"
     return text
+
+
+# Settings of the criteria engine (tracker/criteria/model.py Settings) and their values, in words for the
+# check text; JSON keeps the identifiers.
+SETTING_LABELS = {
+    "cold_limbs": "cold limbs",
+    "sides_are_separate_nerves": "left and right count as separate nerves",
+    "cv_segments": "velocity segments",
+    "block_path": "block measured",
+    "aan_wrist_exclusion": "AAN wrist exclusion",
+}
+SETTING_VALUE_LABELS = {
+    "warn": "values kept, with a warning", "exclude": "the nerve excluded",
+    "standard": "the standard segment", "all_outside_entrapment": "every segment outside entrapment sites",
+    "outside_entrapment": "over every path outside entrapment sites",
+}
+# Extra keys of a criteria outcome (DESIGN.md §5), e.g. the EAN/PNS 2021 motor and sensory parts.
+OUTCOME_KEY_LABELS = {"motor": "motor", "sensory": "sensory", "sensory_supportive": "sensory supportive", "items_met": "items met"}
+
+
+def setting_words(name: str, value: object) -> str:
+    """``AAN wrist exclusion: off`` — a criteria setting and its value in words."""
+    shown = ("on" if value else "off") if isinstance(value, bool) else SETTING_VALUE_LABELS.get(str(value), words(str(value)))
+    return f"{SETTING_LABELS.get(name, words(name))}: {shown}"
+
+
+def identifiers_in_words(text: object) -> str:
+    """Free text that may hold identifiers (a site, an item, an outcome, a setting), each put in words:
+    ``wrist → below_elbow`` → ``wrist → below elbow``; ``not_met`` → ``not met``."""
+
+    def one(match: re.Match) -> str:
+        token = match.group(0)
+        for table in (OUTCOME_LABELS, ITEM_LABELS, SETTING_LABELS, OUTCOME_KEY_LABELS):
+            if token in table:
+                return table[token]
+        return words(token)
+
+    return re.sub(r"\b[A-Za-z0-9]+(?:_[A-Za-z0-9]+)+\b", one, str(text))
+
+
+# The audit trail in words (``ncs-tracker audit``, the Audit trail page).
+AUDIT_ACTION_LABELS = {
+    "import_measurements": "imported a measurements file",
+    "import_treatments": "imported a treatments file",
+    "import_scores": "imported a scores file",
+    "replace_visit": "replaced a visit's values",
+    "replace_treatment": "replaced a treatment period",
+    "replace_score": "replaced a score",
+    "update_patient": "changed a patient's details",
+    "set_clinician_inputs": "changed a visit's clinician inputs",
+    "save_evaluations": "saved criteria evaluations",
+    "save_response": "saved a treatment-response classification",
+    "import_limits": "imported a normal-limit set",
+    "choose_default_limits": "chose the default normal limits",
+    "set": "changed a setting",
+    "export": "wrote a de-identified export",
+    "export_identified": "wrote an IDENTIFIED export",
+    "init_first_admin": "created the first administrator",
+    "add": "added an account",
+    "change": "changed an account",
+    "deactivate": "deactivated an account",
+    "set_password": "set a password",
+    "sign_in": "signed in",
+    "sign_in_refused": "was refused sign-in",
+    "backup": "made a backup",
+    "restore": "restored a backup",
+}
+
+
+def audit_change_words(before: dict | None, after: dict | None) -> str:
+    """``role: viewer → admin; active: yes`` — what an audit event changed, field by field."""
+
+    def shown(value: object) -> str:
+        if isinstance(value, bool):
+            return "yes" if value else "no"
+        if value is None:
+            return "(none)"
+        if isinstance(value, list):
+            return ", ".join(shown(v) for v in value) or "(none)"
+        if isinstance(value, dict):
+            return "; ".join(f"{words(str(k))} {shown(v)}" for k, v in value.items())
+        return identifiers_in_words(value)
+
+    before, after = before or {}, after or {}
+    parts = []
+    for key in list(dict.fromkeys([*before, *after])):
+        label = words(key)
+        if key in before and key in after:
+            if before[key] == after[key]:
+                continue
+            parts.append(f"{label}: {shown(before[key])} → {shown(after[key])}")
+        elif key in after:
+            parts.append(f"{label}: {shown(after[key])}")
+        else:
+            parts.append(f"{label}: {shown(before[key])} → (removed)")
+    return "; ".join(parts)
+
+
+# Switches of the Settings page for project rules that change a publication's literal result
+# (tracker/criteria/README.md): Settings field → (switch label, one-line explanation). Off = the publication.
+CRITERIA_SWITCH_LABELS = {
+    "aan_wrist_exclusion": (
+        "AAN 1991: leave out a median distal latency marked as wrist entrapment",
+        "Off, the publication's reading: the AAN 1991 text has no such exclusion, so the latency counts.",
+    ),
+    "duration_filter_strict": (
+        "EFNS/PNS 2010: distal CMAP duration not evaluable with another low-frequency filter",
+        "Off, the publication's reading: judged with a warning (cut-offs derived at 20 Hz, from memory, not verified).",
+    ),
+}

@@ -20,7 +20,6 @@ import pandas as pd
 
 from tracker import CAUTION, __version__
 from tracker.check_report import TITLES, VERDICT
-from tracker.criteria.model import Settings
 from tracker.criteria.thresholds import COMPARATORS
 from tracker.domain.labels import (
     CHANGE_VERDICT_LABELS, CHANGE_VERDICT_SHAPES, CHANGE_VERDICT_SHORT, DIAGNOSIS_LABELS, CLASSIFICATION_LABELS, CLASSIFICATION_SHAPES, REFERENCE_LABELS,
@@ -123,19 +122,20 @@ class FollowUpReport:
 
 
 def build(session, code: str, *, visit_date: dt.date | None = None, criteria: list[str] | None = None,
-          limits_name: str | None = None, cold_limbs: str | None = None) -> FollowUpReport:
+          limits_name: str | None = None, cold_limbs: str | None = None, username: str | None = None) -> FollowUpReport:
     """The report of patient ``code`` at the visit ``visit_date`` (default: the latest visit).
 
     ``criteria``: criteria set ids (default: the clinic's default set, else the set for the visit's
-    diagnosis); ``cold_limbs``: temperature policy (default: the clinic's). The criteria evaluation is saved
-    in the caller's transaction, as ``check`` does. Raises :class:`tracker.errors.NotFound` for an unknown
+    diagnosis); ``cold_limbs``: temperature policy (default: the clinic's). With ``username`` the criteria
+    evaluation is saved and audited in the caller's transaction, as ``check`` does. Raises :class:`tracker.errors.NotFound` for an unknown
     patient or visit.
     """
     chosen = list(criteria) if criteria else None
     if chosen is None and preferences.default_criteria(session):
         chosen = [preferences.default_criteria(session)]
-    settings = Settings(cold_limbs=cold_limbs or preferences.cold_limbs(session))
-    check = check_visit(session, code, visit_date=visit_date, criteria=chosen, limits_name=limits_name, settings=settings)
+    settings = preferences.criteria_settings(session, cold_limbs=cold_limbs)
+    check = check_visit(session, code, visit_date=visit_date, criteria=chosen, limits_name=limits_name, settings=settings,
+                        username=username)
     response = patient_response(session, code, visit_date=check.visit_date, limits_name=limits_name)
     record = patient_record(session, code, visit_date=check.visit_date)
     visit = record.visits[0]

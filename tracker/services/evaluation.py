@@ -18,6 +18,7 @@ from tracker.criteria import engine
 from tracker.criteria.model import Settings, SetResult
 from tracker.db.models import Evaluation, NerveTest, Patient, StimulationSite, Visit, utc_now
 from tracker.errors import NotFound, TrackerError
+from tracker.services.access import audit
 from tracker.services.limit_sets import LimitSetInfo, resolve
 from tracker.services.records import find_patient
 
@@ -89,8 +90,10 @@ class VisitCheck:
     outcome_changes: dict[str, tuple[str, str]] = field(default_factory=dict)
 
 
-def check_visit(session: Session, code: str, *, visit_date: dt.date | None, criteria: list[str] | None, limits_name: str | None, settings: Settings | None = None) -> VisitCheck:
-    """Evaluate one visit (the latest when no date is given) and save the evaluations."""
+def check_visit(session: Session, code: str, *, visit_date: dt.date | None, criteria: list[str] | None,
+                limits_name: str | None, settings: Settings | None = None, username: str | None = None) -> VisitCheck:
+    """Evaluate one visit (the latest when no date is given); with ``username``, save the evaluations in the
+    caller's transaction and audit them (outcomes before → after)."""
     patient = find_patient(session, code)
     visits = session.execute(select(Visit.id, Visit.visit_date, Visit.diagnosis).where(Visit.patient_id == patient.id).order_by(Visit.visit_date)).all()
     if not visits:
@@ -112,7 +115,10 @@ def check_visit(session: Session, code: str, *, visit_date: dt.date | None, crit
     settings = settings or Settings()
     results = engine.evaluate(visit_frame, tests, sites, limits, criteria_ids, settings)
     current = {cid: _only(result, chosen.id) for cid, result in results.items()}
-    _save(session, visit_frame[visit_frame["visit_key"] == chosen.id], current, info, settings)
+    if username is not None:  # saved (and audited) for a known user; otherwise only computed
+        chosen_frame = visit_frame[visit_frame["visit_key"] == chosen.id]
+        changes = _save(session, chosen_frame, current, info, settings)
+        _audit_saved(session, changes, chosen_frame, info, settings, username=username, one_visit=True)
     return VisitCheck(
         patient=patient.code,
         visit_date=chosen.visit_date,
@@ -160,17 +166,25 @@ def _input_fingerprints(visits: pd.DataFrame, info: LimitSetInfo, criteria_versi
     return result
 
 
-def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult], info: LimitSetInfo, settings: Settings) -> None:
+def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult], info: LimitSetInfo,
+          settings: Settings) -> list[tuple[int, str, str | None, str]]:
+    """Replace the stored evaluations of these visits; return ``(visit_key, criteria_id, outcome before or
+    None, outcome now)`` for the audit trail."""
+    changes: list[tuple[int, str, str | None, str]] = []
     for criteria_id, result in results.items():
         fingerprints = _input_fingerprints(visits, info, result.version, settings)
         keys = list(fingerprints)
-        session.execute(delete(Evaluation).where(Evaluation.visit_id.in_(keys), Evaluation.criteria_id == criteria_id, Evaluation.limit_set_id == info.id))
+        scope = (Evaluation.visit_id.in_(keys), Evaluation.criteria_id == criteria_id, Evaluation.limit_set_id == info.id)
+        before = {visit: outcome for visit, outcome in session.execute(select(Evaluation.visit_id, Evaluation.outcome).where(*scope))}
+        session.execute(delete(Evaluation).where(*scope))
         outcomes = result.outcomes.set_index("visit_key")
         payloads = to_json_many(result, [k for k in keys if k in outcomes.index])
         rows = []
         for key in keys:
             if key not in outcomes.index:
                 continue
+            outcome = str(outcomes.loc[key, "outcome"])
+            changes.append((key, criteria_id, before.get(key), outcome))
             rows.append(
                 {
                     "visit_id": key,
@@ -179,13 +193,35 @@ def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult],
                     "limit_set_id": info.id,
                     "limit_set_version": info.version,
                     "input_sha256": fingerprints[key],
-                    "outcome": str(outcomes.loc[key, "outcome"]),
+                    "outcome": outcome,
                     "result": compact_trace(payloads[key]),
                     "computed_at": utc_now(),
                 }
             )
         if rows:
             session.execute(insert(Evaluation), rows)
+    return changes
+
+
+def _audit_saved(session: Session, changes: list[tuple[int, str, str | None, str]], visits: pd.DataFrame,
+                 info: LimitSetInfo, settings: Settings, *, username: str, one_visit: bool) -> None:
+    """One audit event per save: for one visit the outcome of each set before → after; for a cohort the
+    counts, and every visit whose outcome changed (code/date: set before → after)."""
+    if not changes:
+        return
+    where = {int(r.visit_key): f"{r.patient}/{r.visit_date.isoformat()}" for r in visits.itertuples()}
+    common = {"limits": f"{info.name} v{info.version}", "settings": str(settings)}
+    if one_visit:
+        key = changes[0][0]
+        audit.record(session, username=username, action="save_evaluations", entity="evaluations",
+                     entity_key=where.get(key), before={c: old for _, c, old, _ in changes if old is not None} or None,
+                     after={**{c: new for _, c, _, new in changes}, **common})
+        return
+    changed = [f"{where.get(k, k)}: {c} {old} → {new}" for k, c, old, new in changes if old is not None and old != new]
+    audit.record(session, username=username, action="save_evaluations", entity="evaluations", entity_key=None,
+                 after={"evaluations": len(changes), "visits": len({k for k, *_ in changes}),
+                        "outcomes_changed": len(changed), "changed": changed[:200], **common},
+                 detail=None if len(changed) <= 200 else f"{len(changed) - 200} more outcome changes not listed")
 
 
 def refresh_evaluations(
@@ -194,9 +230,11 @@ def refresh_evaluations(
     limits_name: str | None = None,
     settings: Settings | None = None,
     visit_ids: list[int] | None = None,
+    *,
+    username: str,
 ) -> dict[str, int]:
     """Recompute, in one vectorised pass, every evaluation whose inputs changed (of the given visits, or of
-    all); return counts."""
+    all); return counts. The save is audited under ``username`` (one event)."""
     settings = settings or Settings()
     info, limits = resolve(session, limits_name)
     visits, tests, sites = load_frames(session, visit_ids)
@@ -211,13 +249,15 @@ def refresh_evaluations(
         )
     }
     results = engine.evaluate(visits, tests, sites, limits, criteria_ids, settings)
+    changes = []
     for criteria_id, result in results.items():
         fingerprints = _input_fingerprints(visits, info, result.version, settings)
         stale = [k for k, h in fingerprints.items() if stored.get((k, criteria_id)) != h]
         counts["unchanged"] += len(fingerprints) - len(stale)
         counts["recomputed"] += len(stale)
         if stale:
-            _save(session, visits[visits["visit_key"].isin(stale)], {criteria_id: result}, info, settings)
+            changes += _save(session, visits[visits["visit_key"].isin(stale)], {criteria_id: result}, info, settings)
+    _audit_saved(session, changes, visits, info, settings, username=username, one_visit=False)
     return counts
 
 

@@ -9,12 +9,14 @@ import streamlit as st
 
 from tracker.criteria import engine
 from tracker.dashboard import figures, reads, tables
-from tracker.dashboard.state import database_url
+from tracker.dashboard.state import database_url, may, require, user, writing
 from tracker.dashboard.widgets import criteria_title, limits_picker
 from tracker.domain.labels import DIAGNOSIS_SHORT
 from tracker.domain.vocabulary import DIAGNOSES
+from tracker.services.export import deidentify
 from tracker.services.cohort import counts_by_diagnosis, csv_bytes, outcome_shares
 
+require("read")  # checked on the server whatever the navigation shows
 st.title("Cohort")
 url = database_url()
 cols = st.columns([1, 1, 1, 2])
@@ -25,6 +27,12 @@ with cols[3]:
     limits_name = limits_picker(key="cohort_limits")
 criteria = st.multiselect("Criteria sets", engine.available(), default=engine.available(), key="cohort_criteria", format_func=criteria_title)
 visits = reads.visits(url, tuple(criteria), limits_name, diagnosis, start, end)
+codes_shown = may("see_patient_codes")
+if not codes_shown:  # a research coordinator sees export ids (as in the research export), never clinic codes
+    with writing("export") as session:  # the export secret is created on first use
+        secret = deidentify.export_secret(session, username=user())
+    visits = visits.assign(patient=[deidentify.export_id(secret, c) for c in visits["patient"]]).rename(
+        columns={"patient": "export_id"})
 
 left, right = st.columns([1, 2])
 with left:
@@ -39,7 +47,8 @@ with right:
 st.subheader(f"Visits ({len(visits)})")
 st.dataframe(tables.cohort_visits(visits), hide_index=True, width="stretch", key="cohort_visits")
 st.download_button(
-    "Download this table (CSV with identifiers as columns; clinic use: contains patient codes)", csv_bytes(visits),
+    "Download this table (CSV; clinic use: contains patient codes)" if codes_shown
+    else "Download this table (CSV with export ids and real visit dates)", csv_bytes(visits),
     file_name="cohort_visits.csv", mime="text/csv", key="cohort_download",
 )
 st.caption("For research, use the de-identified export: `ncs-tracker export` (export ids instead of codes, shifted dates, a data dictionary and a manifest).")

@@ -9,7 +9,7 @@ import html
 import streamlit as st
 
 from tracker.dashboard import figures, reads, style, tables
-from tracker.dashboard.state import database_url
+from tracker.dashboard.state import database_url, require
 from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker, patient_picker, rule_set_picker
 from tracker.domain.labels import DIAGNOSIS_SHORT
 from tracker.services.follow_up import PARAMETERS
@@ -34,6 +34,7 @@ def regimen_card(card: RegimenCard) -> None:
         st.caption("Scores compared: " + ", ".join(d.isoformat() for d in card.compared))
 
 
+require("see_patient_codes")  # checked on the server whatever the navigation shows
 st.title("Follow-up")
 url = database_url()
 top = st.columns([1, 2, 2, 2])

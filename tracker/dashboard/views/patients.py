@@ -5,18 +5,19 @@ from __future__ import annotations
 
 import streamlit as st
 
-from tracker.criteria.model import Settings
 from tracker.dashboard import reads, tables
-from tracker.dashboard.state import choose_patient, database_url, user, writing
+from tracker.dashboard.state import choose_patient, database_url, may, require, user, writing
 from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker, rule_set_picker
 from tracker.domain.labels import DIAGNOSIS_SHORT, outcome_label
 from tracker.domain.vocabulary import DIAGNOSES
+from tracker.services import preferences
 from tracker.services.cohort import NOT_EVALUATED
 from tracker.services.evaluation import refresh_evaluations
 from tracker.services.response import with_course
 
 PAGE_ROWS = 50
 
+require("see_patient_codes")  # checked on the server whatever the navigation shows
 st.title("Patients")
 url = database_url()
 left, middle, right = st.columns([2, 1, 2])
@@ -62,9 +63,10 @@ st.dataframe(
 )
 if NOT_EVALUATED in listing.outcomes:
     st.warning("Some latest visits have no saved evaluation with these normal limits; they are shown as “not evaluated”, never as normal.")
-    if st.button("Evaluate all visits now", key="patients_evaluate"):
+    if st.button("Evaluate all visits now", key="patients_evaluate", disabled=not may("write_clinical")):
         with st.spinner("Evaluating every visit against every criteria set…"), writing() as session:
-            counts = refresh_evaluations(session, limits_name=limits_name, settings=Settings(cold_limbs=reads.clinic_settings(url)[1]))
+            counts = refresh_evaluations(session, limits_name=limits_name, username=user(),
+                                          settings=preferences.criteria_settings(session))
         st.success(f"{counts['recomputed']} evaluations computed, {counts['unchanged']} already current.")
         st.rerun()
 

@@ -8,14 +8,14 @@ import html
 import pandas as pd
 import streamlit as st
 
-from tracker.criteria.model import Settings
 from tracker.dashboard import reads, style, tables
-from tracker.dashboard.state import database_url, writing
+from tracker.dashboard.state import database_url, require, user, writing
 from tracker.dashboard.widgets import CRITERIA_TITLES, criteria_title, limits_picker, patient_picker
 from tracker.domain.labels import STATUS_LABELS, outcome_label, status_label, words
-from tracker.services import review
+from tracker.services import preferences, review
 from tracker.services.evaluation import check_visit, default_criteria
 
+require("see_patient_codes")  # checked on the server whatever the navigation shows
 st.title("Visit review")
 url = database_url()
 top = st.columns([1, 1, 2])
@@ -40,8 +40,9 @@ if code:
     if not criteria:
         st.info("Choose at least one criteria set.")
         st.stop()
-    with writing() as session:  # the evaluation is saved with its versions
-        check = check_visit(session, code, visit_date=visit_date, criteria=criteria, limits_name=limits_name, settings=Settings(cold_limbs=cold_limbs))
+    with writing("read") as session:  # the evaluation is saved with its versions (a cache any reader fills)
+        check = check_visit(session, code, visit_date=visit_date, criteria=criteria, limits_name=limits_name,
+                            settings=preferences.criteria_settings(session, cold_limbs=cold_limbs), username=user())
     st.info("Decision support only: every verdict below must be reviewed by a qualified clinician.")
     st.markdown(f"**{check.patient}** · visit **{check.visit_date.isoformat()}** · phenotype {check.phenotype or 'not stated'} · normal limits {check.limits.name} v{check.limits.version}")
     st.download_button(

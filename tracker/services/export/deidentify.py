@@ -17,7 +17,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from tracker.db.models import User
-from tracker.errors import TrackerError
+from tracker.services.access.permissions import PERMISSIONS, Actor, NotPermitted
 from tracker.services import preferences
 
 # Hex digits of the HMAC kept as the export id: 64 bits, so that the chance of two patients of a cohort of
@@ -31,11 +31,7 @@ TOP_AGE_TEXT = "90+"
 # Roles that may receive an identified export: the research coordinator (who prepares cohort tables under a
 # study approval) and the administrator. Viewers and clinicians see identities in care, one patient at a
 # time, but a bulk identified file is a disclosure, so it needs one of these roles.
-IDENTIFIED_EXPORT_ROLES = ("coordinator", "admin")
-
-
-class NotPermitted(TrackerError):
-    """The acting user may not do this (exit code 1, DESIGN.md §5)."""
+IDENTIFIED_EXPORT_ROLES = PERMISSIONS["export_identified"]
 
 
 def export_secret(session: Session, *, username: str) -> bytes:
@@ -76,25 +72,23 @@ def age_text(age_years: float | None, *, identified: bool) -> str | None:
     return str(age)
 
 
-def require_identified_permission(session: Session, username: str) -> str:
-    """Return the role of ``username`` if it may receive an identified export, else raise :class:`NotPermitted`.
+def require_identified_permission(session: Session, actor: Actor | None) -> str:
+    """Return the role of ``actor`` if it may receive an identified export now, else raise :class:`NotPermitted`.
 
-    A user unknown to this database is refused: the tool has no sign-in yet, so the users table is the only
-    place where an administrator states who may see identities.
+    The role is read again from the database (an account deactivated a moment ago is refused), and the actor
+    must have proved itself with its password in this command or sign-in session.
     """
-    user = session.scalar(select(User).where(User.username == username))
     allowed = " or ".join(IDENTIFIED_EXPORT_ROLES)
-    if user is None:
+    if actor is None or not actor.authenticated:
         raise NotPermitted(
-            f"An identified export is refused: user {username!r} is not registered in this database. "
-            f"An administrator grants it by adding the user to the users table with role {allowed} "
-            f"(ncs-tracker users add {username} --role coordinator). "
-            "Without --identified the export is de-identified and needs no role."
+            f"An identified export needs an account with role {allowed} that signed in with its password. "
+            "Without --identified the export is de-identified."
         )
-    if not user.active or user.role not in IDENTIFIED_EXPORT_ROLES:
-        state = "inactive" if not user.active else f"role {user.role!r}"
+    user = session.scalar(select(User).where(User.username == actor.name))
+    if user is None or not user.active or user.role not in IDENTIFIED_EXPORT_ROLES:
+        state = "no active account" if user is None or not user.active else f"role {user.role!r}"
         raise NotPermitted(
-            f"An identified export is refused: user {username!r} has {state}; it needs an active user with role "
+            f"An identified export is refused: {actor.name} has {state}; it needs an active account with role "
             f"{allowed}. Without --identified the export is de-identified and needs no role."
         )
     return user.role

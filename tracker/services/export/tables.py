@@ -24,6 +24,7 @@ from tracker.criteria.model import SetResult, Settings
 from tracker.db.models import NerveTest, OutcomeScore, Patient, PatientIdentity, Treatment, Visit
 from tracker.domain.plausibility import scales
 from tracker.domain.vocabulary import DIAGNOSES
+from tracker.services.access.permissions import Actor
 from tracker.errors import NotFound, TrackerError
 from tracker.response.settings import ResponseSettings
 from tracker.services.export import deidentify
@@ -205,15 +206,15 @@ class ExportPlan:
                 progress(min(start + size, total), total)
 
 
-def prepare(session: Session, options: ExportOptions, *, username: str) -> ExportPlan:
+def prepare(session: Session, options: ExportOptions, *, username: str, actor: Actor | None = None) -> ExportPlan:
     """Check the options and the permission, create the export secret if needed, pick the visits.
 
-    Raises :class:`~tracker.services.export.deidentify.NotPermitted` before anything is written when an identified
-    export is asked for by a user whose role does not allow it.
+    Raises :class:`~tracker.services.access.permissions.NotPermitted` before anything is written when an
+    identified export is asked for without an authenticated ``actor`` whose role allows it.
     """
     validate(options)
     if options.identified:
-        deidentify.require_identified_permission(session, username)
+        deidentify.require_identified_permission(session, actor)
     info, limits = resolve(session, options.limits_name)
     # The long level holds no verdicts: criteria sets are evaluated there only for an --outcome filter.
     shown = [] if options.level == "long" else list(options.criteria) or engine.available()
