@@ -49,7 +49,7 @@ def test_check_saves_an_evaluation_and_recomputes_after_new_limits(demo_db, sess
         first = session.scalars(select(Evaluation)).all()
         assert len(first) == 1 and first[0].criteria_id == "efns-pns-2010-cidp"
         default_set = session.scalar(select(LimitSet).where(LimitSet.name == "default"))
-        assert first[0].limit_set_id == default_set.id and first[0].limit_set_version == 1
+        assert first[0].limit_set_id == default_set.id and first[0].limit_set_version == 2
     # Invented laboratory limits (not for clinical use): a stricter median motor distal latency.
     lab = tmp_path / "lab.csv"
     lab.write_text("nerve,modality,parameter,bound,value,source\nmedian,motor,distal_latency_ms,uln,4.0,invented for a test\n", encoding="utf-8")
@@ -92,7 +92,7 @@ def test_limits_import_refuses_bad_rows_and_changes_nothing(demo_db, engine, tmp
 
 def test_limits_list_shows_the_default(demo_db, capsys):
     code, out, _ = run_cli(capsys, "--db", demo_db, "limits", "list")
-    assert code == 0 and "* default v1" in out
+    assert code == 0 and "* default v2" in out
 
 
 def test_unknown_criteria_and_patient_are_clear_errors(demo_db, capsys):

@@ -18,7 +18,10 @@ from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, 
 from tracker.criteria.thresholds import load
 
 ID = "ean-pns-2021-cidp"
-CITATION = "Van den Bergh PYK, van Doorn PA, Hadden RDM, et al. EAN/PNS guideline on diagnosis and treatment of CIDP, second revision. Eur J Neurol 2021;28:3556–3583"
+CITATION = (
+    "Van den Bergh PYK, van Doorn PA, Hadden RDM, et al. European Academy of Neurology/Peripheral Nerve "
+    "Society guideline on diagnosis and treatment of chronic inflammatory demyelinating polyradiculoneuropathy"
+)
 
 # Invented building blocks.
 ULNAR = dict(amplitudes=(9.0, 8.6, 8.4), durations=(5.5, 5.8, 6.0))
@@ -57,7 +60,9 @@ def test_every_row_is_cited_and_marked_from_memory():
     table = load(ID)
     assert table.version == "2021.2"
     for row in table.rows:
-        assert CITATION in row.source and "doi:10.1111/ene.14959" in row.source
+        assert row.citations == ("ean-pns-2021-cidp",)
+        assert CITATION in row.source and "Eur J Neurol 2021;28:3556–3583" in row.source
+        assert "doi:10.1111/ene.14959" in row.source
         assert row.status == "memory", f"{row.item} {row.nerve}: update the 'from memory' notes of these tests if verified"
 
 

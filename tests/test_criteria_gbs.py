@@ -70,7 +70,7 @@ def test_registered_and_shaped_as_the_contract_says(criteria):
     assert result.extra_keys == ()
     assert list(result.outcomes.columns) == ["visit_key", "outcome", "rule"]
     assert set(result.outcomes["outcome"]) <= set(_gbs.OUTCOMES)
-    assert result.findings["status"].isin([MET, NOT_MET, NOT_EVALUABLE]).all()
+    assert result.findings["status"].isin([MET, NOT_MET, NOT_EVALUABLE, NOT_APPLICABLE]).all()
     assert result.findings["source"].notna().all() and (result.findings["source"].str.len() > 0).all()
 
 
@@ -149,13 +149,16 @@ def test_hadden_block_ratio_below_one_half(proximal, expected):
     assert status(HADDEN, median(amplitudes=(6.0, proximal)), "cb") == expected
 
 
-@pytest.mark.parametrize("distal, expected", [(0.79, NOT_EVALUABLE), (0.8, NOT_EVALUABLE), (0.81, MET)], ids=EDGE)
+@pytest.mark.parametrize(
+    "distal, expected", [(0.79, NOT_APPLICABLE), (0.8, NOT_APPLICABLE), (0.81, MET)], ids=EDGE
+)
 def test_hadden_block_needs_distal_cmap_above_20_percent_of_lln(distal, expected):
-    # HADDEN (verified): block counted only if distal CMAP > 20 % of LLN 4.0 mV = 0.8 mV (strict).
+    # HADDEN (verified): block counted only if distal CMAP > 20 % of LLN 4.0 mV = 0.8 mV (strict). A published
+    # precondition not fulfilled: the item does not apply (DESIGN.md §5), it is not want of data.
     result = run(HADDEN, [median(amplitudes=(distal, 0.1))])
     row = finding(result, "median", "cb")
     assert row["status"] == expected
-    if expected == NOT_EVALUABLE:
+    if expected == NOT_APPLICABLE:
         assert row["reason"].startswith("amplitude precondition failed") and "> 20 % of LLN" in row["reason"]
 
 
@@ -175,7 +178,7 @@ def test_hadden_f_latency_has_no_amplitude_switch():
 def test_hadden_absent_f_waves_are_not_a_feature():
     # HADDEN (verified): the feature is a prolonged latency; absent F-waves are not listed.
     row = finding(run(HADDEN, [median(f_absent=True)]), "median", "f_latency")
-    assert row["status"] == NOT_EVALUABLE and "not a demyelinating feature" in row["reason"]
+    assert row["status"] == NOT_APPLICABLE and "not a demyelinating feature" in row["reason"]
 
 
 def test_hadden_counts_tibial_block_as_published():
@@ -188,7 +191,7 @@ def test_hadden_wrist_entrapment_removes_the_median_latency():
     # HADDEN (verified) DML > 110 % of ULN; engine choice: a median DML judged due to neuropathy at the wrist
     # is not counted (as in the engine's CIDP sets).
     row = finding(run(HADDEN, [median(dml=6.0, wrist_entrapment=True)]), "median", "dml")
-    assert row["status"] == NOT_EVALUABLE and "wrist" in row["reason"]
+    assert row["status"] == NOT_APPLICABLE and "wrist" in row["reason"]
 
 
 def test_unknown_distal_cmap_decides_only_where_both_thresholds_agree():
@@ -232,13 +235,13 @@ def test_missing_values_are_not_evaluable_never_normal(criteria):
 @pytest.mark.parametrize("criteria", BOTH)
 def test_inexcitable_nerve_findings_say_no_response(criteria):
     # HADDEN / RAJABALLY: an absent response is a finding (amplitude 0 meets "< 10 % of LLN"), while the
-    # latency, velocity and block items of that nerve are not evaluable for that reason.
+    # latency, velocity and block items of that nerve do not apply for that reason (not want of data).
     result = run(criteria, [inexcitable("median"), *healthy_four_nerves()[1:]])
     assert finding(result, "median", "very_low_cmap")["status"] == MET
     assert finding(result, "median", "normal_dcmap")["status"] == NOT_MET
     for item in ("dml", "cv", "cb", "normal_dml"):
         row = finding(result, "median", item)
-        assert row["status"] == NOT_EVALUABLE and row["reason"] == _gbs.NO_RESPONSE, item
+        assert row["status"] == NOT_APPLICABLE and row["reason"] == _gbs.NO_RESPONSE, item
 
 
 # ---------------------------------------------------------------------------------------------------------
@@ -457,7 +460,7 @@ def test_rajabally_block_ratio_below_0_7(proximal, expected):
     assert status(RAJABALLY, median(amplitudes=(10.0, proximal)), "cb") == expected
 
 
-@pytest.mark.parametrize("distal, expected", [(0.79, NOT_EVALUABLE), (0.8, MET), (0.81, MET)], ids=EDGE)
+@pytest.mark.parametrize("distal, expected", [(0.79, NOT_APPLICABLE), (0.8, MET), (0.81, MET)], ids=EDGE)
 def test_rajabally_block_floor_of_20_percent_of_lln(distal, expected):
     # RAJABALLY — from memory, not verified; the ≥ 20 % of LLN floor for block is an engine choice (table row
     # cb_precondition), the floor of this set's absent-F item.
@@ -468,7 +471,7 @@ def test_rajabally_block_excludes_the_tibial_nerve():
     # RAJABALLY — from memory, not verified: block "excluding the tibial nerve"; Hadden counts the same fall.
     tibial_fall = tibial(amplitudes=(10.0, 4.9))
     rajabally = finding(run(RAJABALLY, [tibial_fall]), "tibial", "cb")
-    assert rajabally["status"] == NOT_EVALUABLE and "tibial nerve excluded" in rajabally["reason"]
+    assert rajabally["status"] == NOT_APPLICABLE and "tibial nerve excluded" in rajabally["reason"]
     assert finding(run(HADDEN, [tibial_fall]), "tibial", "cb")["status"] == MET
 
 

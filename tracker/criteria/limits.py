@@ -15,11 +15,21 @@ from importlib import resources
 import numpy as np
 import pandas as pd
 
-LIMIT_COLUMNS = ["nerve", "modality", "parameter", "bound", "value", "age_min", "age_max", "height_min_cm", "height_max_cm", "sex", "source", "status"]
+from tracker.criteria.citations import source_text
+
+LIMIT_COLUMNS = [
+    "nerve", "modality", "parameter", "bound", "value", "age_min", "age_max", "height_min_cm", "height_max_cm",
+    "sex", "source", "status",
+]
 DEFAULT_NAME = "default"
-# Bump with every change to reference/limits_default.csv: saved evaluations name the set and its version.
-DEFAULT_VERSION = 1
-DEFAULT_DESCRIPTION = "Shipped adult limits, Preston & Shapiro appendix (each row marked verified or from memory)"
+# Bump with every change to reference/limits_default.csv: saved evaluations name the set and its version, and
+# the evaluation fingerprint includes it, so saved evaluations are recomputed with the new set.
+# 2: minimal F-wave latency limits by height band (Buschbacher 1999 F-wave series, values from memory).
+DEFAULT_VERSION = 2
+DEFAULT_DESCRIPTION = (
+    "Shipped adult limits, Preston & Shapiro appendix, with F-wave limits by height band "
+    "(each row marked verified or from memory)"
+)
 # (parameter, bound) → the column name the criteria use.
 LIMIT_FIELDS = {
     ("distal_latency_ms", "uln"): "uln_distal_latency_ms",
@@ -33,10 +43,18 @@ LIMIT_FIELDS = {
 
 @cache
 def default_limits() -> pd.DataFrame:
-    """The shipped default limit rows (``tracker/reference/limits_default.csv``)."""
+    """The shipped default limit rows (``tracker/reference/limits_default.csv``).
+
+    Each row names its publication by key (``citation``, see :mod:`tracker.criteria.citations`) with a short
+    ``note``; the returned ``source`` is the full citation text with that note, as traces show it.
+    """
     text = resources.files("tracker.reference").joinpath("limits_default.csv").read_text(encoding="utf-8")
-    frame = pd.DataFrame(list(csv.DictReader(text.splitlines())))
-    return normalise(frame)
+    rows = list(csv.DictReader(text.splitlines(), strict=True))
+    for row in rows:
+        if None in row or None in row.values():
+            raise ValueError(f"limits_default.csv: a row has the wrong number of fields: {row}")
+        row["source"] = source_text(row.pop("citation"), row.pop("note"))
+    return normalise(pd.DataFrame(rows))
 
 
 def normalise(frame: pd.DataFrame) -> pd.DataFrame:
@@ -147,12 +165,22 @@ def attach_limits(nerves: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
     return result
 
 
+def _band(name: str, low, high, unit: str) -> str:
+    """``"height 160–170 cm"``, ``"height below 160 cm"``, ``"height 180 cm or more"`` (lower bound
+    inclusive)."""
+    if _missing(low):
+        return f"{name} below {high:g} {unit}"
+    if _missing(high):
+        return f"{name} {low:g} {unit} or more"
+    return f"{name} {low:g}–{high:g} {unit}"
+
+
 def _describe_stratum(row) -> str:
     parts = []
     if not (_missing(row.age_min) and _missing(row.age_max)):
-        parts.append(f"age {'' if _missing(row.age_min) else f'{row.age_min:g}'}–{'' if _missing(row.age_max) else f'{row.age_max:g}'} y")
+        parts.append(_band("age", row.age_min, row.age_max, "y"))
     if not (_missing(row.height_min_cm) and _missing(row.height_max_cm)):
-        parts.append(f"height {'' if _missing(row.height_min_cm) else f'{row.height_min_cm:g}'}–{'' if _missing(row.height_max_cm) else f'{row.height_max_cm:g}'} cm")
+        parts.append(_band("height", row.height_min_cm, row.height_max_cm, "cm"))
     if not _missing(row.sex_limit):
         parts.append(str(row.sex_limit))
     return ", ".join(parts) or "all adults"

@@ -54,6 +54,10 @@ class Settings:
     ``aan_wrist_exclusion``: the clinician's wrist-entrapment mark removes the median distal latency from AAN
     1991 item 3 (a project rule: the AAN 1991 text has no such exclusion, so the default is off — the
     publication's literal reading; the trace says which applied).
+    ``duration_filter_strict``: a fixed distal CMAP duration cut-off derived at one low-frequency filter
+    setting (EFNS/PNS 2010, and Rajabally 2015 which adopts it) is not evaluable when the nerve test was
+    recorded with another filter or without a recorded filter (a project rule; the publication gives one set
+    of cut-offs, so the default is off: the item is judged and the trace warns).
     """
 
     cold_limbs: str = "warn"
@@ -61,6 +65,7 @@ class Settings:
     cv_segments: str = "standard"
     block_path: str = "outside_entrapment"
     aan_wrist_exclusion: bool = False
+    duration_filter_strict: bool = False
 
     def __post_init__(self) -> None:
         checks = {

@@ -10,7 +10,7 @@ import numpy as np
 import pandas as pd
 
 from tracker.criteria import memo, rules
-from tracker.criteria.model import Settings
+from tracker.criteria.model import MET, NOT_MET, Settings
 from tracker.criteria.thresholds import ThresholdTable
 
 LIMIT_NAMES = {"uln": "ULN", "lln": "LLN"}
@@ -253,14 +253,75 @@ def dispersion(nerves, paths, table: ThresholdTable, item: str, settings: Settin
 
 
 def distal_duration(nerves, table: ThresholdTable, item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
-    """Distal CMAP duration against a fixed (nerve- and possibly filter-specific) cut-off."""
+    """Distal CMAP duration against a fixed (nerve- and possibly filter-specific) cut-off.
+
+    Where the table says at which low-frequency filter (Hz) a fixed cut-off was derived (``derived_lff_hz``)
+    and the nerve test was recorded with another filter, or with none recorded, the finding is judged and its
+    reason warns (the publication's reading: one set of cut-offs); with ``settings.duration_filter_strict`` it
+    is not evaluable instead. The reason names the setting either way.
+    """
     frame = motor(nerves)
     rows, threshold = _threshold(table, item, frame, None)
-    return rules.item_findings(
+    derived, derived_status = _derived_filter(table, item, frame["nerve"])
+    lff = frame["lff_hz"].to_numpy(dtype=float) if "lff_hz" in frame else np.full(len(frame), np.nan)
+    judged_here = ~np.isnan(derived) & ~np.isnan(threshold)
+    with np.errstate(invalid="ignore"):
+        other_filter = judged_here & ~np.isnan(lff) & ~np.isclose(lff, derived)
+    no_filter = judged_here & np.isnan(lff)
+    mismatch = other_filter | no_filter
+    strict = settings.duration_filter_strict
+    words = rules.per_distinct(
+        lambda hz, at, status: filter_warning(hz, at, status, strict), lff, derived, derived_status
+    )
+    findings = rules.item_findings(
         frame, criteria=criteria, item=item, parameter="distal CMAP duration", unit="ms",
         value=frame["distal_duration_ms"].to_numpy(dtype=float), threshold=threshold,
         comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
         limit_name=np.where(np.isnan(threshold), "", "fixed cut-off"), source=rows["source"], source_status=rows["status"],
-        blocked=rules.common_blocks(frame, settings),
+        blocked=rules.common_blocks(frame, settings) + ([(mismatch, words)] if strict else []),
         inapplicable=[(frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE_DISTAL), no_row(rows)],
     )
+    if not strict:
+        # Judged findings only: a value or limb that is not usable keeps its own reason.
+        judged = mismatch & np.isin(findings["status"].to_numpy(dtype=object), [MET, NOT_MET])
+        if judged.any():
+            reason = findings["reason"].to_numpy(dtype=object).copy()
+            reason[judged] = words[judged]
+            findings["reason"] = pd.Series(reason, index=findings.index, dtype=object)
+    return findings
+
+
+FILTER_SETTING = "duration_filter_strict"
+
+
+def filter_warning(lff_hz: float, derived_hz: float, status: str, strict: bool) -> str:
+    """What the trace says when a duration cut-off derived at ``derived_hz`` (Hz) meets a recording made with
+    a ``lff_hz`` (Hz) low-frequency filter (NaN: not recorded)."""
+    if np.isnan(derived_hz):
+        return ""
+    derived = f"{derived_hz:g} Hz" + (" (from memory, not verified)" if status == "memory" else "")
+    if np.isnan(lff_hz):
+        recorded = "low-frequency filter not recorded"
+    else:
+        recorded = f"recorded with a {lff_hz:g} Hz low-frequency filter"
+    if strict:
+        return f"{recorded}; the cut-off was derived at {derived}: not evaluable (setting {FILTER_SETTING} on)"
+    return (
+        f"warning: {recorded}, the cut-off was derived at {derived}; judged as published, one set of "
+        f"cut-offs (setting {FILTER_SETTING} off)"
+    )
+
+
+def _derived_filter(table: ThresholdTable, item: str, nerves: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """Per nerve test, the filter (Hz) the item's fixed cut-off was derived at (NaN where not stated) and
+    whether that filter is verified or from memory."""
+    rows = [r for r in table.rows if r.item == item and r.lff_hz is None]
+    at = {r.nerve: (r.derived_lff_hz, r.derived_lff_status) for r in rows if r.derived_lff_hz is not None}
+    generic = at.get("*", (np.nan, ""))
+    # Series.map with a dict: one hash lookup per row in pandas, not a Python loop over millions of rows.
+    derived = nerves.map({n: v[0] for n, v in at.items()}).to_numpy(dtype=float, copy=True)
+    status = nerves.map({n: v[1] for n, v in at.items()}).to_numpy(dtype=object, copy=True)
+    unnamed = pd.isna(status)
+    derived[unnamed] = generic[0]
+    status[unnamed] = generic[1]
+    return derived, status

@@ -1,10 +1,14 @@
 """Threshold tables: one CSV per criteria set in ``tracker/criteria/tables/``, every row with its source.
 
 Columns: ``item`` (the set's own item code), ``parameter``, ``nerve`` (``*`` for any), ``lff_hz`` (empty for
-any filter), ``comparator`` (``ge``, ``gt``, ``le``, ``lt``), ``reference`` (``uln`` or ``lln``: the value is
-a factor of that normal limit; ``percent`` or ``absolute``: the value is the threshold itself), ``value``,
-``unit``, ``excluded_nerves`` (``|``-separated), ``description``, ``source``, ``status`` (``verified`` or
-``memory``), ``version``.
+any filter), ``derived_lff_hz`` (the low-frequency filter, Hz, at which a fixed cut-off was derived when the
+publication gives one set of cut-offs; empty otherwise) with ``derived_lff_status`` (``verified`` or
+``memory``), ``comparator`` (``ge``, ``gt``, ``le``, ``lt``),
+``reference`` (``uln`` or ``lln``: the value is a factor of that normal limit; ``percent`` or ``absolute``:
+the value is the threshold itself), ``value``, ``unit``, ``excluded_nerves`` (``|``-separated), ``description``,
+``citation`` (keys of ``tracker/reference/citations.csv``, ``|``-separated), ``note`` (what this row adds:
+where the value was read, or that it is from memory), ``status`` (``verified`` or ``memory``), ``version``.
+The loader resolves ``citation`` and ``note`` into the ``source`` text every trace shows.
 """
 
 from __future__ import annotations
@@ -16,6 +20,8 @@ from importlib import resources
 
 import numpy as np
 import pandas as pd
+
+from tracker.criteria.citations import keys_of, source_text
 
 COMPARATORS = {"ge": "≥", "gt": ">", "le": "≤", "lt": "<"}
 
@@ -32,9 +38,12 @@ class Threshold:
     unit: str
     excluded_nerves: tuple[str, ...]
     description: str
-    source: str
+    source: str  # the full citation text with the row's note, as traces show it
     status: str
     version: str
+    citations: tuple[str, ...] = ()  # keys of tracker/reference/citations.csv
+    derived_lff_hz: float | None = None  # filter (Hz) at which a fixed cut-off was derived, when known
+    derived_lff_status: str = ""  # verified / memory
 
 
 class ThresholdTable:
@@ -121,8 +130,18 @@ def _equal(values: np.ndarray, name: str) -> np.ndarray:
 def load(criteria_id: str) -> ThresholdTable:
     """The threshold table of ``criteria_id`` (file ``tables/<criteria_id>.csv``)."""
     text = resources.files("tracker.criteria.tables").joinpath(f"{criteria_id}.csv").read_text(encoding="utf-8")
+    return parse(criteria_id, text)
+
+
+def parse(criteria_id: str, text: str) -> ThresholdTable:
+    """A threshold table from its CSV text (``#`` lines are comments). Malformed quoting and rows with the
+    wrong number of fields are refused (``csv.Error`` / ``ValueError``), as is an unknown citation key
+    (``KeyError``)."""
     rows = []
-    for raw in csv.DictReader(line for line in text.splitlines() if not line.startswith("#")):
+    # strict: text after a closing quote is an error, not silently glued to the field
+    for raw in csv.DictReader((line for line in text.splitlines() if not line.startswith("#")), strict=True):
+        if None in raw or None in raw.values():
+            raise ValueError(f"tables/{criteria_id}.csv: a row has the wrong number of fields: {raw}")
         rows.append(
             Threshold(
                 item=raw["item"],
@@ -135,9 +154,12 @@ def load(criteria_id: str) -> ThresholdTable:
                 unit=raw["unit"],
                 excluded_nerves=tuple(n for n in raw["excluded_nerves"].split("|") if n),
                 description=raw["description"],
-                source=raw["source"],
+                source=source_text(raw["citation"], raw["note"]),
                 status=raw["status"],
                 version=raw["version"],
+                citations=keys_of(raw["citation"]),
+                derived_lff_hz=float(raw["derived_lff_hz"]) if raw.get("derived_lff_hz") else None,
+                derived_lff_status=raw.get("derived_lff_status") or "",
             )
         )
     return ThresholdTable(criteria_id, rows)

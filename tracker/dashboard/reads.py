@@ -11,7 +11,6 @@ import dataclasses
 import pandas as pd
 import streamlit as st
 
-from tracker.criteria.model import Settings
 from tracker.dashboard.state import reading
 from tracker.services import cohort, preferences
 from tracker.services.follow_up import FollowUp, follow_up, outcome_history
@@ -38,7 +37,9 @@ def record(url: str, code: str) -> PatientRecord:
 @st.cache_data(ttl=TTL, show_spinner="Computing the follow-up…")
 def trend(url: str, code: str, parameter: str, criteria: str | None, limits_name: str | None, cold_limbs: str) -> FollowUp:
     with reading() as session:
-        fu = follow_up(session, code, parameter=parameter, criteria=criteria, limits_name=limits_name, settings=Settings(cold_limbs=cold_limbs), strip_criteria=[])
+        settings = preferences.criteria_settings(session, cold_limbs=cold_limbs)
+        fu = follow_up(session, code, parameter=parameter, criteria=criteria, limits_name=limits_name,
+                       settings=settings, strip_criteria=[])
     # The outcome strip does not depend on the parameter: cached on its own, so a parameter switch is quick.
     return dataclasses.replace(fu, outcomes=strip(url, code, limits_name, cold_limbs))
 
@@ -46,7 +47,8 @@ def trend(url: str, code: str, parameter: str, criteria: str | None, limits_name
 @st.cache_data(ttl=TTL, show_spinner=False)
 def strip(url: str, code: str, limits_name: str | None, cold_limbs: str) -> pd.DataFrame:
     with reading() as session:
-        return outcome_history(session, code, limits_name=limits_name, settings=Settings(cold_limbs=cold_limbs))
+        settings = preferences.criteria_settings(session, cold_limbs=cold_limbs)
+        return outcome_history(session, code, limits_name=limits_name, settings=settings)
 
 
 @st.cache_data(ttl=TTL, show_spinner=False)
@@ -82,6 +84,14 @@ def clinic_settings(url: str) -> tuple[str | None, str]:
     """(default criteria set or None, temperature policy)."""
     with reading() as session:
         return preferences.default_criteria(session) or None, preferences.cold_limbs(session)
+
+
+@st.cache_data(ttl=TTL, show_spinner=False)
+def criteria_switches(url: str) -> dict[str, bool]:
+    """The stored criteria switches (``Settings`` field → on), off where never set."""
+    with reading() as session:
+        fields = preferences.CRITERIA_SWITCHES.values()
+        return {field: preferences.criteria_switch(session, field) for field in fields}
 
 
 @st.cache_data(ttl=TTL, show_spinner="Judging the treatment response…")

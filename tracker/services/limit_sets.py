@@ -117,10 +117,15 @@ def ensure_default(session: Session) -> LimitSetInfo:
         select(LimitSet).where(LimitSet.name == limit_rules.DEFAULT_NAME, LimitSet.version == limit_rules.DEFAULT_VERSION)
     )
     if found is None:
-        any_default = session.scalar(select(func.count()).select_from(LimitSet).where(LimitSet.is_default))
+        marked = session.scalars(select(LimitSet.name).where(LimitSet.is_default)).all()
+        # A database that used an older shipped version moves to this one (saved evaluations name the set and
+        # version, so they are recomputed); a laboratory's own default set stays the default.
+        take_mark = not marked or all(name == limit_rules.DEFAULT_NAME for name in marked)
+        if take_mark and marked:
+            session.execute(update(LimitSet).where(LimitSet.is_default).values(is_default=False))
         set_id = session.scalar(
             insert(LimitSet).returning(LimitSet.id),
-            [{"name": limit_rules.DEFAULT_NAME, "version": limit_rules.DEFAULT_VERSION, "description": limit_rules.DEFAULT_DESCRIPTION, "is_default": not any_default, "created_at": utc_now()}],
+            [{"name": limit_rules.DEFAULT_NAME, "version": limit_rules.DEFAULT_VERSION, "description": limit_rules.DEFAULT_DESCRIPTION, "is_default": take_mark, "created_at": utc_now()}],
         )
         rows = limit_rules.default_limits()
         frame = rows.assign(source=[f"{s} [{st}]" for s, st in zip(rows["source"], rows["status"])])

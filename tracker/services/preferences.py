@@ -6,6 +6,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from tracker.criteria import engine
+from tracker.criteria.model import Settings
 from tracker.db.models import AppSetting
 from tracker.errors import TrackerError
 from tracker.services.audit import record
@@ -57,3 +58,38 @@ def set_cold_limbs(session: Session, policy: str, *, username: str) -> None:
     if policy not in COLD_LIMB_POLICIES:
         raise TrackerError(f"Unknown temperature policy {policy!r}; choose {' or '.join(COLD_LIMB_POLICIES)}.")
     put(session, COLD_LIMBS_KEY, policy, username=username)
+
+
+# Project rules that change a publication's literal result (tracker/criteria/README.md): stored switches, off
+# by default (the publication's reading). Key → Settings field.
+CRITERIA_SWITCHES = {
+    "criteria_aan_wrist_exclusion": "aan_wrist_exclusion",
+    "criteria_duration_filter_strict": "duration_filter_strict",
+}
+
+
+def criteria_switch(session: Session, field: str) -> bool:
+    """The stored value of one criteria switch (a field of ``Settings`` listed in ``CRITERIA_SWITCHES``)."""
+    key = _switch_key(field)
+    return get(session, key) == "on"
+
+
+def set_criteria_switch(session: Session, field: str, on: bool, *, username: str) -> None:
+    """Store one criteria switch (audited); ``on=False`` is the publication's reading."""
+    put(session, _switch_key(field), "on" if on else "off", username=username)
+
+
+def criteria_settings(session: Session, **overrides) -> Settings:
+    """The criteria settings of this database: the temperature policy and the stored switches, with
+    ``overrides`` (e.g. a ``cold_limbs`` chosen for one check) taking precedence where not ``None``."""
+    values = {"cold_limbs": cold_limbs(session)}
+    values.update({field: criteria_switch(session, field) for field in CRITERIA_SWITCHES.values()})
+    values.update({k: v for k, v in overrides.items() if v is not None})
+    return Settings(**values)
+
+
+def _switch_key(field: str) -> str:
+    for key, name in CRITERIA_SWITCHES.items():
+        if name == field:
+            return key
+    raise TrackerError(f"Unknown criteria switch {field!r}; known: {', '.join(CRITERIA_SWITCHES.values())}")

@@ -19,7 +19,7 @@ import pandas as pd
 
 from tracker.criteria import parameters as p
 from tracker.criteria import rules
-from tracker.criteria.model import MET, NOT_EVALUABLE, NOT_MET, Settings
+from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, Settings
 from tracker.criteria.thresholds import COMPARATORS, ThresholdTable
 
 OUTCOMES = ("demyelinating", "axonal", "inexcitable", "equivocal", "normal")
@@ -34,6 +34,7 @@ ITEM_PREFIX = "item:"
 NO_RESPONSE = "no recordable response at the distal site"
 SWITCH_UNKNOWN = "distal CMAP amplitude or its LLN missing: the threshold cannot be chosen"
 NO_PATH = "no proximal stimulation on an eligible path"
+NO_PATH_OUTSIDE_ENTRAPMENT = "no proximal stimulation outside entrapment sites"
 PRECONDITION_UNKNOWN = "distal CMAP amplitude or its LLN missing: the amplitude precondition cannot be checked"
 WRIST = "median distal latency not counted: neuropathy at the wrist judged by the clinician"
 # Reasons that mean "a value was not measured or has no limit" (as opposed to a precondition or a setting).
@@ -104,12 +105,15 @@ def switched(
     segment=None,
     blocked: list | None = None,
     block_no_response: bool = True,
+    inapplicable: list | None = None,
 ) -> pd.DataFrame:
     """One per-nerve item over the motor nerve tests in ``frame``.
 
     With ``low_item``/``switch_item`` the threshold of ``low_item`` applies where the distal CMAP meets the
     ``switch_item`` condition. Where the distal CMAP (or its LLN) is unknown, the finding is still decided
-    when both thresholds give the same verdict, and is not evaluable otherwise.
+    when both thresholds give the same verdict, and is not evaluable otherwise. ``blocked``: masks of want of
+    data (not evaluable); ``inapplicable``: masks where the item does not apply (exclusion, a feature judged
+    by another item) — with ``block_no_response`` a nerve without a recordable response is one of them.
     """
     value = np.asarray(value, dtype=float)
     limit = np.full(len(frame), np.nan) if limit is None else np.asarray(limit, dtype=float)
@@ -117,9 +121,10 @@ def switched(
     comparator = rows["comparator"].to_numpy(dtype=object)
     names = _names(rows)
     blocks = rules.common_blocks(frame, settings)
-    if block_no_response:
-        blocks.append((frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE))
     blocks += list(blocked or [])
+    # An inexcitable nerve is a finding, not a gap: its latency and velocity items do not apply.
+    not_applicable = [(frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE)] if block_no_response else []
+    not_applicable += list(inapplicable or [])
     if low_item is not None:
         low_rows, low_threshold = _scaled(table, low_item, frame, limit)
         low_comparator = low_rows["comparator"].to_numpy(dtype=object)
@@ -138,6 +143,7 @@ def switched(
         frame, criteria=criteria, item=item, parameter=parameter, unit=unit, value=value, threshold=threshold,
         comparator=comparator, limit=limit, limit_name=names, source=rows["source"], source_status=rows["status"],
         segment=None if segment is None else np.asarray(segment, dtype=object), blocked=blocks,
+        inapplicable=not_applicable,
     )
 
 
@@ -183,10 +189,20 @@ def block(
     value = best["amplitude_reduction_pct"].to_numpy(dtype=float)
     no_response = frame["no_response"].to_numpy(dtype=bool)
     excluded, why = _excluded(frame, table, item)
+    # Proximal sites recorded, but every path to them crosses an entrapment (or unlabelled) segment: the item
+    # does not apply there (as in the CIDP sets); no proximal site at all is want of data.
+    any_site = frame["test_key"].isin(paths["test_key"].unique()).to_numpy()
+    eligible_keys = paths.loc[eligible_paths(paths, settings), "test_key"].unique()
+    eligible_site = frame["test_key"].isin(eligible_keys).to_numpy()
+    entrapment_only = np.isnan(value) & ~no_response & any_site & ~eligible_site
+    path_words = settings.block_path.replace("_", " ")
     blocks = rules.common_blocks(frame, settings) + [
+        (np.isnan(value) & ~no_response & ~entrapment_only, f"{NO_PATH} ({path_words})"),
+    ]
+    not_applicable = [
         (excluded, why),
         (no_response, NO_RESPONSE),
-        (np.isnan(value) & ~no_response, f"{NO_PATH} ({settings.block_path.replace('_', ' ')})"),
+        (entrapment_only, f"{NO_PATH_OUTSIDE_ENTRAPMENT} ({path_words})"),
     ]
     if precondition_item is not None:
         lln = frame["lln_amplitude"].to_numpy(dtype=float)
@@ -202,7 +218,9 @@ def block(
                 f"amplitude precondition failed: distal CMAP {amplitude[i]:g} mV is not "
                 f"{COMPARATORS[pre_comparator[i]]} {factor[i] * 100:g} % of LLN ({shown[i]:g} mV)"
             )
-        blocks += [(failed & ~no_response, reasons), (unknown & ~no_response, PRECONDITION_UNKNOWN)]
+        # A published precondition not fulfilled: the item does not apply (not want of data).
+        not_applicable.append((failed & ~no_response, reasons))
+        blocks.append((unknown & ~no_response, PRECONDITION_UNKNOWN))
     # Excluded nerves get no row from the table lookup; the exclusion still cites the item's source.
     first = rows_of(table, item)[0]
     source = rows["source"].where(rows["source"].notna(), first.source)
@@ -211,7 +229,7 @@ def block(
         frame, criteria=criteria, item=item, parameter="conduction block (amplitude fall from distal)", unit="%",
         value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object),
         limit=np.full(len(frame), np.nan), limit_name="fixed", source=source, source_status=source_status,
-        segment=best["path"].to_numpy(dtype=object), blocked=blocks,
+        segment=best["path"].to_numpy(dtype=object), blocked=blocks, inapplicable=not_applicable,
     )
 
 
@@ -262,8 +280,9 @@ def class_findings(nerves: pd.DataFrame, paths: pd.DataFrame, table: ThresholdTa
 
 
 def no_response_reasons(parts: list[pd.DataFrame], nerves: pd.DataFrame) -> pd.DataFrame:
-    """Concatenate per-item findings built over ``parameters.motor(nerves)`` (same rows, same order), saying
-    "no recordable response" on the not-evaluable findings of inexcitable nerves, whatever the item."""
+    """Concatenate per-item findings built over ``parameters.motor(nerves)`` (same rows, same order). The
+    findings of an inexcitable nerve that could not be judged do not apply ("no recordable response"): an
+    absent response is a finding, not want of data (the CIDP sets' contract, DESIGN.md §5)."""
     no_response = p.motor(nerves)["no_response"].to_numpy(dtype=bool)
     for part in parts:
         if len(part) != len(no_response):
@@ -272,9 +291,13 @@ def no_response_reasons(parts: list[pd.DataFrame], nerves: pd.DataFrame) -> pd.D
     flag = np.tile(no_response, len(parts))
     status = findings["status"].to_numpy(dtype=object)
     reason = findings["reason"].to_numpy(dtype=object).copy()
-    reason[flag & (status == NOT_EVALUABLE)] = NO_RESPONSE
-    reason[flag & (status != NOT_EVALUABLE) & (reason == "")] = "no recordable response (amplitude 0)"
+    gap = flag & (status == NOT_EVALUABLE)
+    reason[gap] = NO_RESPONSE
+    reason[flag & ~gap & (reason == "")] = "no recordable response (amplitude 0)"
+    status = status.copy()
+    status[gap] = NOT_APPLICABLE
     findings["reason"] = pd.Series(reason, dtype=object, index=findings.index)
+    findings["status"] = pd.Series(status, dtype=object, index=findings.index)
     return findings
 
 

@@ -33,11 +33,12 @@ def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings
                    segment=frame[f"{column}_segment"]),
         g.switched(frame, table, "dml", criteria=ID, parameter="distal latency", unit="ms", value=frame["distal_latency_ms"],
                    limit=frame["uln_distal_latency_ms"], settings=settings, low_item="dml_low_cmap", switch_item="dml_switch",
-                   blocked=[g.wrist_block(frame)]),
+                   inapplicable=[g.wrist_block(frame)]),
         g.block(nerves, paths, table, "cb", settings, criteria=ID, precondition_item="cb_precondition"),
         g.switched(frame, table, "f_latency", criteria=ID, parameter="F-wave latency", unit="ms", value=frame["f_latency_ms"],
                    limit=frame["uln_f_latency_ms"], settings=settings,
-                   blocked=[(frame["f_absent"].to_numpy(dtype=bool), "F-waves absent: not a demyelinating feature in this set")]),
+                   inapplicable=[(frame["f_absent"].to_numpy(dtype=bool),
+                                  "F-waves absent: not a demyelinating feature in this set")]),
         *g.class_findings(nerves, paths, table, settings, criteria=ID),
     ]
     return g.no_response_reasons(parts, nerves)

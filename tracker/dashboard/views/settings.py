@@ -1,4 +1,5 @@
-"""Settings: normal-limit sets (list, import, default), the default criteria set, the temperature policy."""
+"""Settings: normal-limit sets (list, import, default), the default criteria set, the temperature policy and
+the switches for project rules that change a publication's literal result (off: the publication's reading)."""
 
 from __future__ import annotations
 
@@ -9,6 +10,7 @@ from tracker.criteria import engine
 from tracker.dashboard import reads
 from tracker.dashboard.state import database_url, user, writing
 from tracker.dashboard.widgets import criteria_title
+from tracker.domain.labels import CRITERIA_SWITCH_LABELS
 from tracker.errors import InputRejected
 from tracker.services import preferences
 from tracker.services.limit_sets import import_limit_table, set_default
@@ -59,9 +61,18 @@ policy = st.radio(
     key="settings_cold", horizontal=True,
     format_func=lambda p: {"warn": "keep the values and warn", "exclude": "treat the nerve's findings as not evaluable"}[p],
 )
+st.caption("Project rules that change a publication's literal result: off keeps the publication's reading; "
+           "the trace of each check says which applied.")
+stored = reads.criteria_switches(url)
+switches = {}
+for field, (label, explanation) in CRITERIA_SWITCH_LABELS.items():
+    switches[field] = st.toggle(label, value=stored.get(field, False), key=f"settings_{field}")
+    st.caption(explanation)
 if st.button("Save criteria settings", key="settings_save", type="primary"):
     with writing() as session:
         preferences.set_default_criteria(session, picked or None, username=user())
         preferences.set_cold_limbs(session, policy, username=user())
+        for field, on in switches.items():
+            preferences.set_criteria_switch(session, field, on, username=user())
     st.success("Saved.")
     st.rerun()
