@@ -623,3 +623,14 @@ def test_findings_frame_has_one_row_per_nerve_and_item():
         assert (counts == 1).all()
         assert set(findings["nerve"]) == {"median", "ulnar", "fibular", "tibial"}
         assert pd.api.types.is_float_dtype(findings["value"])
+
+
+@pytest.mark.parametrize("criteria", BOTH)
+def test_block_only_across_the_elbow_does_not_apply(criteria):
+    # HADDEN (verified ratio < 0.5) / RAJABALLY (from memory, not verified: < 0.7); engine setting block_path
+    # "outside_entrapment": an ulnar nerve stimulated only below and above the elbow has no block segment
+    # outside the entrapment site — the item does not apply (DESIGN.md §5), it is not want of data.
+    nerve = ulnar(amplitudes=(9.0, 3.0), durations=(5.5, 6.0), labels=("below_elbow", "above_elbow"))
+    row = finding(run(criteria, [nerve]), "ulnar", "cb")
+    assert row["status"] == NOT_APPLICABLE
+    assert row["reason"].startswith(_gbs.NO_PATH_OUTSIDE_ENTRAPMENT)
