@@ -271,6 +271,7 @@ SETTING_LABELS = {
     "cv_segments": "velocity segments",
     "block_path": "block measured",
     "aan_wrist_exclusion": "AAN wrist exclusion",
+    "duration_filter_strict": "2010 duration cut-offs only at their own filter",
 }
 SETTING_VALUE_LABELS = {
     "warn": "values kept, with a warning", "exclude": "the nerve excluded",
@@ -285,6 +286,13 @@ def setting_words(name: str, value: object) -> str:
     """``AAN wrist exclusion: off`` — a criteria setting and its value in words."""
     shown = ("on" if value else "off") if isinstance(value, bool) else SETTING_VALUE_LABELS.get(str(value), words(str(value)))
     return f"{SETTING_LABELS.get(name, words(name))}: {shown}"
+
+
+def settings_in_words(settings: object) -> str:
+    """``cold limbs: values kept, with a warning; …`` — every field of a criteria settings dataclass."""
+    import dataclasses
+
+    return "; ".join(setting_words(f.name, getattr(settings, f.name)) for f in dataclasses.fields(settings))
 
 
 def identifiers_in_words(text: object) -> str:
@@ -350,6 +358,7 @@ def audit_change_words(before: dict | None, after: dict | None) -> str:
         label = words(key)
         if key in before and key in after:
             if before[key] == after[key]:
+                parts.append(f"{label}: {shown(after[key])} (unchanged)")
                 continue
             parts.append(f"{label}: {shown(before[key])} → {shown(after[key])}")
         elif key in after:

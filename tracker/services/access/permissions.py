@@ -36,7 +36,7 @@ PERMISSIONS: dict[str, tuple[str, ...]] = {
 NEED_ACCOUNT = frozenset({"export_identified", "manage_users", "change_own_password"})
 # Privileged actions: on the command line the acting login must prove itself with its password, and a
 # ``--user`` naming someone else is refused.
-PRIVILEGED = frozenset({"export_identified", "manage_users", "change_own_password", "limits", "settings", "restore"})
+PRIVILEGED = frozenset({"export_identified", "manage_users", "change_own_password", "limits", "settings", "backup", "restore"})
 # Read by anyone who can open the database when they have no account (or an inactive one).
 WITHOUT_ACCOUNT = frozenset({"read", "see_patient_codes"})
 
