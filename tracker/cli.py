@@ -471,6 +471,12 @@ def export_command(context: Context, level: str, file_format: str, out: str | No
     click.echo(CAUTION)
 
 
+from tracker.cli_backup import backup_command, restore_command  # noqa: E402
+
+cli.add_command(backup_command)
+cli.add_command(restore_command)
+
+
 def _parse_date(text: str) -> dt.date:
     try:
         return dt.date.fromisoformat(text)
