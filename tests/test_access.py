@@ -205,6 +205,76 @@ def test_environment_variables_do_not_change_the_login_on_sqlite(tmp_path, capsy
     assert f"{real} may not manage accounts" in result.stderr
 
 
+# Every command that needs a permission, with a harmless argument list, and who may run it. The refusal
+# must come before anything is written; the allowed role must get past the permission check.
+COMMANDS = [
+    ("write_clinical", ["import", str(DEMO / "scores.csv")], ("clinician", "admin")),
+    ("write_clinical", ["annotate", "DEMO-01", "--visit", "2023-02-14", "--phenotype", "distal"], ("clinician", "admin")),
+    ("write_clinical", ["evaluate"], ("clinician", "admin")),
+    ("read_audit", ["audit"], ("clinician", "admin")),
+    ("read_audit", ["audit", "verify"], ("clinician", "admin")),
+    ("limits", ["limits", "default", "default"], ("admin",)),
+    ("manage_users", ["users", "list"], ("admin",)),
+    ("manage_users", ["users", "deactivate", "someone-invented"], ("admin",)),
+    ("export", ["export", "--out", "{tmp}/deidentified/"], ("clinician", "coordinator", "admin")),
+    ("export_identified", ["export", "--identified", "--out", "{tmp}/identified/"], ("coordinator", "admin")),
+]
+
+
+@pytest.fixture(scope="module")
+def staffed(tmp_path_factory):
+    """One SQLite database for the whole matrix (the permission rules do not depend on the backend; who the
+    login is does, and the tests above check that on both): demo measurements and a first admin."""
+    from tracker.db import migrate
+    from tracker.db.session import make_engine, make_session_factory
+    from tracker.services.access import accounts
+    from tracker.services.importing import import_file
+
+    url = f"sqlite:///{tmp_path_factory.mktemp('matrix') / 'ncs.sqlite3'}"
+    migrate.upgrade(url)
+    engine = make_engine(url)
+    with make_session_factory(engine).begin() as session:
+        import_file(session, DEMO / "measurements.csv", username="boss-invented")
+        accounts.init_first_admin(session, "boss-invented", PASSWORD, identity="boss-invented")
+    engine.dispose()
+    _grant(url, "boss-invented", "someone-invented", "viewer")
+    return url, "boss-invented"
+
+
+def _grant(url: str, boss: str, name: str, role: str) -> None:
+    from tracker.db.session import make_engine, make_session_factory
+    from tracker.services.access import accounts
+    from tracker.services.access.permissions import Actor
+
+    engine = make_engine(url)
+    with make_session_factory(engine).begin() as session:
+        accounts.set_user(session, name, role=role, acting=Actor(boss, "admin", "os-login", authenticated=True),
+                          password=PASSWORD)
+    engine.dispose()
+
+
+@pytest.mark.parametrize(("permission", "args", "allowed"), COMMANDS, ids=[" ".join(c[1][:2]) for c in COMMANDS])
+@pytest.mark.parametrize("role", ["viewer", "clinician", "coordinator", "admin"])
+def test_every_permission_holds_for_every_role(monkeypatch, staffed, capsys, tmp_path, role, permission, args, allowed):
+    url, boss = staffed
+    out = tmp_path / "exports"
+    args = [a.replace("{tmp}", str(out)) for a in args]
+    acting = again(monkeypatch, url, boss) if role == "admin" else login(monkeypatch, url, f"{role}-invented")
+    with acting as entered:
+        role_url, name = (entered, boss) if role == "admin" else entered
+        if role != "admin":
+            _grant(url, boss, name, role)  # the same role each time: unchanged after the first
+        before = fingerprint_of(url)
+        typed(monkeypatch, PASSWORD)
+        code, _, err = run_cli(capsys, "--db", role_url, *args)
+    if role in allowed:
+        assert "may not" not in err and "Sign-in refused" not in err, err
+    else:
+        assert code == 1 and f"{name} may not" in err, err
+        assert fingerprint_of(url) == before
+        assert not out.exists()
+
+
 def fingerprint_of(url: str) -> str:
     from tracker.db.session import make_engine
 
