@@ -37,10 +37,10 @@ def test_check_json_follows_the_contract(demo_db, capsys):
 
 
 def test_check_text_names_values_limits_and_sources(demo_db, capsys):
-    code, out, err = run_cli(capsys, "--db", demo_db, "check", "DEMO-01", "--criteria", "efns-pns-2010-cidp")
+    code, out, err = run_cli(capsys, "--db", demo_db, "check", "DEMO-01", "--criteria", "efns-pns-2010-cidp", "--detail")
     assert code == 0, err
     assert "Outcome:" in out and "Sources" in out and "qualified clinician" in out
-    assert "ULN 4.4" in out  # the median distal latency limit of the default set
+    assert "ULN 4.40" in out  # the median distal latency limit of the default set, at clinical precision
 
 
 def test_check_saves_an_evaluation_and_recomputes_after_new_limits(demo_db, sessions, tmp_path, capsys):

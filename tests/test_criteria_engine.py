@@ -190,7 +190,7 @@ def test_met_turning_not_evaluable_and_outcome_turning_undecided_are_changes():
     )
     words = text(check)
     assert "outcome: possible → undecided" in words and "met → not evaluable" in words
-    assert "Undecided — not evaluable for want of data" in words
+    assert "data missing that could make the set met" in words and "median right (motor): distal motor latency" in words
     payload = json_payload(check)
     assert payload["outcome"] == "undecided"
     assert {(f["nerve"], f["item"]) for f in payload["undecided_items"]} >= {("median", "dml")}

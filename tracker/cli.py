@@ -124,15 +124,24 @@ def show_command(context: Context, patient: str, visit_date: str | None) -> None
               help="Whether left and right of one nerve count as two nerves.")
 @click.option("--cv-segments", type=click.Choice(["standard", "all_outside_entrapment"]), default="standard", show_default=True,
               help="Segments used for conduction velocity.")
+@click.option("--aan-wrist-exclusion/--no-aan-wrist-exclusion", default=None,
+              help="AAN 1991: a wrist-entrapment mark removes the median distal latency from item 3 (a project "
+                   "rule). Default: the database's setting, off unless changed on the Settings page — the "
+                   "publication's reading, which has no such exclusion.")
+@click.option("--detail", is_flag=True, help="Text: add the per-item trace of every nerve to the summary.")
 @pass_context
 def check_command(context: Context, patient: str, visit_date: str | None, criteria: tuple[str, ...], limits_name: str | None,
-                  output: str, cold_limbs: str | None, sides_separate: bool, cv_segments: str) -> None:
-    """Check a visit against published electrodiagnostic criteria, nerve by nerve, with the trace."""
+                  output: str, cold_limbs: str | None, sides_separate: bool, cv_segments: str,
+                  aan_wrist_exclusion: bool | None, detail: bool) -> None:
+    """Check a visit against published electrodiagnostic criteria, nerve by nerve.
+
+    Text: a summary per criteria set (outcome in words, deciding findings, warnings, closest miss, changes
+    since the previous visit) within 120 columns; --detail adds the per-item trace. JSON: the full trace.
+    """
     import json
 
     from tracker.check_report import json_payload, text
     from tracker.criteria import engine
-    from tracker.criteria.model import Settings
     from tracker.services.evaluation import check_visit
 
     from tracker.services import preferences
@@ -143,12 +152,17 @@ def check_command(context: Context, patient: str, visit_date: str | None, criter
         # Unless asked otherwise, the clinic's settings (dashboard → Settings) apply here too.
         if chosen is None and preferences.default_criteria(session):
             chosen = [preferences.default_criteria(session)]
-        settings = Settings(cold_limbs=cold_limbs or preferences.cold_limbs(session), sides_are_separate_nerves=sides_separate, cv_segments=cv_segments)
-        result = check_visit(session, patient, visit_date=day, criteria=chosen, limits_name=limits_name, settings=settings)
+        # The stored criteria switches too; an option given here takes precedence.
+        settings = preferences.criteria_settings(
+            session, cold_limbs=cold_limbs, sides_are_separate_nerves=sides_separate, cv_segments=cv_segments,
+            aan_wrist_exclusion=aan_wrist_exclusion)
+        # Saved and audited under the acting login (check_visit saves only with a username).
+        result = check_visit(session, patient, visit_date=day, criteria=chosen, limits_name=limits_name,
+                             settings=settings, username=context.user)
     if output == "json":
-        click.echo(json.dumps(json_payload(result), indent=2, ensure_ascii=False))
+        click.echo(json.dumps(json_payload(result, settings=settings), indent=2, ensure_ascii=False))
     else:
-        click.echo(text(result))
+        click.echo(text(result, detail=detail, settings=settings))
 
 
 @cli.command("response")
@@ -280,7 +294,13 @@ def limits_list(context: Context) -> None:
 @click.option("--description", help="What these limits are (population, technique).")
 @pass_context
 def limits_import(context: Context, file: Path, name: str, description: str | None) -> None:
-    """Import a laboratory's normal limits (CSV; DESIGN.md §4.3)."""
+    """Import a laboratory's normal limits from a UTF-8 CSV file with a header row.
+
+    Columns: nerve, modality, parameter (distal_latency_ms, cv_ms, amplitude, f_latency_ms,
+    distal_duration_ms, peak_latency_ms), bound (uln or lln), value; optional age_min, age_max,
+    height_min_cm, height_max_cm, sex, source. The README ("Checking a visit against published criteria")
+    describes them. Every problem is listed and nothing is written when any row is wrong.
+    """
     from tracker.services.limit_sets import import_limit_set
 
     with context.session_factory().begin() as session:
