@@ -41,20 +41,24 @@ def test_ulnar_segment_of_published_gbs_case():
     assert summary.distal_amplitude == 5.2
 
 
-# Same source: left fibular (tibialis anterior), fibular head 4.5 ms → popliteal fossa 7.5 ms, 100 mm; printed CV 33.
+# Same source: left fibular (tibialis anterior), fibular head 4.5 ms → popliteal
+# fossa 7.5 ms, 100 mm; printed CV 33.
 def test_fibular_segment_of_published_gbs_case():
     assert velocity_m_per_s(100.0, 7.5 - 4.5) == pytest.approx(33.33, abs=0.01)
     assert reduction_pct(3.8, 3.8) == 0.0
 
 
 def test_motor_velocity_is_millimetres_per_millisecond():
-    # Common practice, no source: CV (m/s) = distance (mm) / latency difference (ms); 230 mm over 4.6 ms = 50 m/s.
+    # Common practice, no source: CV (m/s) = distance (mm) / latency difference
+    # (ms); 230 mm over 4.6 ms = 50 m/s.
     assert velocity_m_per_s(230.0, 4.6) == 50.0
 
 
 def test_sensory_velocity_uses_onset_latency():
     # Common practice (DESIGN.md §4.1): sensory CV = stimulation-to-recording distance / onset latency.
-    site = Site(order=1, label="wrist", distance_mm=130.0, latency_ms=2.6, amplitude=25.0, peak_latency_ms=3.3)
+    site = Site(
+        order=1, label="wrist", distance_mm=130.0, latency_ms=2.6, amplitude=25.0, peak_latency_ms=3.3
+    )
     summary = summarise_nerve("sensory", [site])
     assert summary.sensory_velocity_m_per_s == 50.0
     assert summary.segments == ()
@@ -87,13 +91,16 @@ def test_no_response_gives_no_latency_and_no_velocity():
 # gives the clinically wrong answer.
 def test_threshold_equal_in_decimal_is_equal_here():
     assert not (1.5 * 4.4 <= 6.6)  # plain float: 6.6000000000000005 > 6.6 — the bug the rule prevents
-    assert at_least(6.6, 1.5 * 4.4)  # EFNS/PNS 2010: DML ≥ 150 % of ULN 4.4 ms (Van den Bergh, Eur J Neurol 2010)
+    assert at_least(
+        6.6, 1.5 * 4.4
+    )  # EFNS/PNS 2010: DML ≥ 150 % of ULN 4.4 ms (Van den Bergh, Eur J Neurol 2010)
     assert at_most(6.6, 1.5 * 4.4)
     assert not greater_than(6.6, 1.5 * 4.4)
 
 
 def test_velocity_at_seventy_percent_of_lln():
-    # EFNS/PNS 2010: CV ≤ 70 % of LLN; fibular LLN 44 m/s (Preston & Shapiro appendix, from memory) → 30.8 m/s.
+    # EFNS/PNS 2010: CV ≤ 70 % of LLN; fibular LLN 44 m/s (Preston & Shapiro
+    # appendix, from memory) → 30.8 m/s.
     assert not (30.8 <= 0.7 * 44)  # plain float: 0.7 × 44 = 30.799999999999997
     assert at_most(30.8, 0.7 * 44)
     assert not at_most(30.81, 0.7 * 44)

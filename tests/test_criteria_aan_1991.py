@@ -103,8 +103,9 @@ def test_distal_latency_amplitude_switch_at_eighty_percent_of_lln(distal, status
 
 
 def test_wrist_entrapment_does_not_remove_the_median_latency_by_default():
-    # AAN 1991 (Neurology 1991) item 3 has no wrist-entrapment exclusion (as restated in the JNNP table of the
-    # reference sheet, S13): the publication's reading is the default and the trace says the mark was not applied
+    # AAN 1991 (Neurology 1991) item 3 has no wrist-entrapment exclusion (as restated in the
+    # JNNP table of the reference sheet, S13): the publication's reading is the default and
+    # the trace says the mark was not applied
     row = finding(evaluate([Visit([Motor("median", dml=7.0, wrist_entrapment=True)])], ID), "median", "dml")
     assert row["status"] == MET
     assert "no such exclusion" in row["reason"] and "aan_wrist_exclusion off" in row["reason"]
@@ -112,10 +113,14 @@ def test_wrist_entrapment_does_not_remove_the_median_latency_by_default():
 
 def test_wrist_entrapment_exclusion_is_a_named_setting():
     # project rule carried over from EFNS/PNS 2010 (Van den Bergh et al., Eur J Neurol 2010), off by default
-    result = evaluate([Visit([Motor("median", dml=7.0, wrist_entrapment=True)])], ID, Settings(aan_wrist_exclusion=True))
+    result = evaluate(
+        [Visit([Motor("median", dml=7.0, wrist_entrapment=True)])], ID, Settings(aan_wrist_exclusion=True)
+    )
     row = finding(result, "median", "dml")
     assert row["status"] == NOT_APPLICABLE and "aan_wrist_exclusion on" in row["reason"]
-    unmarked = finding(evaluate([Visit([Motor("median", dml=7.0)])], ID, Settings(aan_wrist_exclusion=True)), "median", "dml")
+    unmarked = finding(
+        evaluate([Visit([Motor("median", dml=7.0)])], ID, Settings(aan_wrist_exclusion=True)), "median", "dml"
+    )
     assert unmarked["status"] == MET and unmarked["reason"] in ("", None)
 
 
@@ -133,7 +138,9 @@ def test_f_latency_above_120_percent_of_uln(f, status):
 @pytest.mark.parametrize("f, status", [(46.49, NOT_MET), (46.5, NOT_MET), (46.51, MET)])
 def test_f_latency_above_150_percent_of_uln_when_cmap_is_low(f, status):
     # AAN 1991 (Neurology 1991): minimal F > 150 % of ULN when CMAP < 80 % of LLN; 1.5 × 31 = 46.5 ms
-    row = finding(evaluate([Visit([Motor("median", f_latency=f, amplitudes=(3.0, 2.9))])], ID), "median", "f_latency")
+    row = finding(
+        evaluate([Visit([Motor("median", f_latency=f, amplitudes=(3.0, 2.9))])], ID), "median", "f_latency"
+    )
     assert row["status"] == status
     assert row["threshold"] == 46.5
 
@@ -170,7 +177,10 @@ def test_f_waves_not_recorded_are_not_evaluable_never_normal():
 
 def test_absent_and_prolonged_f_waves_pool_to_two_nerves():
     # AAN 1991 (Neurology 1991): "F-waves absent or prolonged in ≥ 2 motor nerves" — one of each counts
-    nerves = [Motor("median", f_absent=True), Motor("ulnar", f_latency=38.5, **ULNAR)]  # ulnar 1.2 × 32 = 38.4 ms
+    nerves = [
+        Motor("median", f_absent=True),
+        Motor("ulnar", f_latency=38.5, **ULNAR),
+    ]  # ulnar 1.2 × 32 = 38.4 ms
     result = evaluate([Visit(nerves)], ID)
     assert outcome(result, "items_met") == 1
     assert "4 (F-waves)" in outcome(result, "rule")
@@ -183,7 +193,11 @@ def test_absent_and_prolonged_f_waves_pool_to_two_nerves():
 def test_block_needs_more_than_twenty_percent_drop(proximal, status):
     # AAN 1991 (Neurology 1991): > 20 % drop of negative-peak area or amplitude, median wrist → elbow.
     # 8.0 → 6.41 / 6.40 / 6.39 mV = 19.875 / 20.0 / 20.125 % (areas follow the amplitudes)
-    row = finding(evaluate([Visit([Motor("median", amplitudes=(8.0, proximal), durations=(5.0, 5.2))])], ID), "median", "cb_td")
+    row = finding(
+        evaluate([Visit([Motor("median", amplitudes=(8.0, proximal), durations=(5.0, 5.2))])], ID),
+        "median",
+        "cb_td",
+    )
     assert row["status"] == status
     assert row["threshold"] == 20
     assert row["segment"] == "wrist → elbow"
@@ -191,15 +205,20 @@ def test_block_needs_more_than_twenty_percent_drop(proximal, status):
 
 @pytest.mark.parametrize("proximal_area, status", [(16.01, NOT_MET), (16.0, NOT_MET), (15.99, MET)])
 def test_block_by_area_alone(proximal_area, status):
-    # AAN 1991 (Neurology 1991): "area or amplitude" — amplitude drop 12.5 % only, area 20.0 → 16.01/16.0/15.99
+    # AAN 1991 (Neurology 1991): "area or amplitude" — amplitude drop 12.5 %
+    # only, area 20.0 → 16.01/16.0/15.99
     median = Motor("median", amplitudes=(8.0, 7.0), areas=(20.0, proximal_area), durations=(5.0, 5.2))
     assert finding(evaluate([Visit([median])], ID), "median", "cb_td")["status"] == status
 
 
-@pytest.mark.parametrize("proximal_duration, label", [(5.74, "partial conduction block"), (5.75, "partial conduction block"), (5.76, "dispersion")])
+@pytest.mark.parametrize(
+    "proximal_duration, label",
+    [(5.74, "partial conduction block"), (5.75, "partial conduction block"), (5.76, "dispersion")],
+)
 def test_duration_change_of_fifteen_percent_labels_block_or_dispersion(proximal_duration, label):
-    # AAN 1991 (Neurology 1991): < 15 % duration change = partial block, > 15 % = dispersion and possible block;
-    # both count. 5.0 → 5.75 ms is exactly +15 %: project decision, labelled block (dispersion needs > 15 %).
+    # AAN 1991 (Neurology 1991): < 15 % duration change = partial block, > 15 % = dispersion
+    # and possible block; both count. 5.0 → 5.75 ms is exactly +15 %: project decision,
+    # labelled block (dispersion needs > 15 %).
     median = Motor("median", amplitudes=(8.0, 6.0), durations=(5.0, proximal_duration))  # 25 % drop
     row = finding(evaluate([Visit([median])], ID), "median", "cb_td")
     assert row["status"] == MET
@@ -214,10 +233,15 @@ def test_missing_area_is_judged_on_amplitude_and_says_so():
     assert "area not recorded" in row["reason"]
 
 
-@pytest.mark.parametrize("nerve, distal, proximal, status", [
-    ("ulnar", 10.0, 8.0, NOT_MET), ("ulnar", 10.0, 7.99, MET),  # exactly 20 % / 20.1 %, wrist → below elbow
-    ("fibular", 5.0, 4.0, NOT_MET), ("fibular", 5.0, 3.99, MET),  # exactly 20 % / 20.2 %, ankle → below fibular head
-])
+@pytest.mark.parametrize(
+    "nerve, distal, proximal, status",
+    [
+        ("ulnar", 10.0, 8.0, NOT_MET),
+        ("ulnar", 10.0, 7.99, MET),  # exactly 20 % / 20.1 %, wrist → below elbow
+        ("fibular", 5.0, 4.0, NOT_MET),
+        ("fibular", 5.0, 3.99, MET),  # exactly 20 % / 20.2 %, ankle → below fibular head
+    ],
+)
 def test_block_threshold_in_the_ulnar_and_peroneal_segments(nerve, distal, proximal, status):
     # AAN 1991 (Neurology 1991): > 20 % drop (strict) in each of the three named segments
     motor = Motor(nerve, amplitudes=(distal, proximal, proximal), durations=(5.0, 5.2, 5.3), dml=3.0, cv=50)
@@ -225,17 +249,19 @@ def test_block_threshold_in_the_ulnar_and_peroneal_segments(nerve, distal, proxi
 
 
 def test_ulnar_stimulated_only_above_the_elbow_is_not_evaluable():
-    # AAN 1991 (Neurology 1991): ulnar block is judged wrist → below elbow only; wrist → above elbow crosses the
-    # elbow, so a 50 % fall there is not used
-    ulnar = Motor("ulnar", amplitudes=(8.0, 4.0), durations=(5.5, 5.8), labels=("wrist", "above_elbow"), dml=2.8)
+    # AAN 1991 (Neurology 1991): ulnar block is judged wrist → below elbow only; wrist → above elbow crosses
+    # the elbow, so a 50 % fall there is not used
+    ulnar = Motor(
+        "ulnar", amplitudes=(8.0, 4.0), durations=(5.5, 5.8), labels=("wrist", "above_elbow"), dml=2.8
+    )
     row = finding(evaluate([Visit([ulnar])], ID), "ulnar", "cb_td")
     assert row["status"] == NOT_EVALUABLE
     assert "standard segment" in row["reason"]
 
 
 def test_block_across_the_ulnar_elbow_does_not_count():
-    # AAN 1991 (Neurology 1991): ulnar only wrist → below elbow. 8.0 → 7.8 mV (2.5 %), then 7.8 → 3.0 mV across
-    # the elbow (61.5 %), which the criteria leave out — also with the wider block-path setting.
+    # AAN 1991 (Neurology 1991): ulnar only wrist → below elbow. 8.0 → 7.8 mV (2.5 %), then 7.8 → 3.0 mV
+    # across the elbow (61.5 %), which the criteria leave out — also with the wider block-path setting.
     ulnar = Motor("ulnar", amplitudes=(8.0, 7.8, 3.0), durations=(5.5, 5.6, 5.8), dml=2.8)
     for settings in (None, Settings(block_path="outside_entrapment"), Settings(block_path="standard")):
         row = finding(evaluate([Visit([ulnar])], ID, settings), "ulnar", "cb_td")
@@ -246,14 +272,20 @@ def test_block_across_the_ulnar_elbow_does_not_count():
 
 def test_block_in_the_upper_arm_does_not_count():
     # AAN 1991 (Neurology 1991): median only wrist → elbow; a fall elbow → axilla is outside the item
-    median = Motor("median", amplitudes=(8.0, 7.8, 3.0), durations=(5.5, 5.6, 5.8), labels=("wrist", "elbow", "axilla"))
+    median = Motor(
+        "median", amplitudes=(8.0, 7.8, 3.0), durations=(5.5, 5.6, 5.8), labels=("wrist", "elbow", "axilla")
+    )
     assert finding(evaluate([Visit([median])], ID), "median", "cb_td")["status"] == NOT_MET
 
 
 def test_peroneal_block_counts_only_below_the_fibular_head():
     # AAN 1991 (Neurology 1991): peroneal ankle → below fibular head
-    below = Motor("fibular", amplitudes=(5.0, 3.5, 3.4), durations=(5.5, 5.8, 5.9), dml=4.5, cv=48)  # 30 % drop
-    across = Motor("fibular", amplitudes=(5.0, 4.8, 2.0), durations=(5.5, 5.8, 5.9), dml=4.5, cv=48)  # fall across the head
+    below = Motor(
+        "fibular", amplitudes=(5.0, 3.5, 3.4), durations=(5.5, 5.8, 5.9), dml=4.5, cv=48
+    )  # 30 % drop
+    across = Motor(
+        "fibular", amplitudes=(5.0, 4.8, 2.0), durations=(5.5, 5.8, 5.9), dml=4.5, cv=48
+    )  # fall across the head
     assert finding(evaluate([Visit([below])], ID), "fibular", "cb_td")["status"] == MET
     assert finding(evaluate([Visit([across])], ID), "fibular", "cb_td")["status"] == NOT_MET
 
@@ -268,7 +300,9 @@ def test_tibial_block_is_outside_the_item():
 
 def test_block_without_proximal_stimulation_is_not_evaluable():
     # AAN 1991 (Neurology 1991) item 2 needs the proximal site of the standard segment
-    row = finding(evaluate([Visit([Motor("median", amplitudes=(8.0,), durations=(5.5,))])], ID), "median", "cb_td")
+    row = finding(
+        evaluate([Visit([Motor("median", amplitudes=(8.0,), durations=(5.5,))])], ID), "median", "cb_td"
+    )
     assert row["status"] == NOT_EVALUABLE
     assert "proximal" in row["reason"]
 
@@ -292,7 +326,8 @@ def test_two_items_are_not_enough():
 
 
 def test_three_items_are_met():
-    # AAN 1991 (Neurology 1991): adding prolonged F in both nerves (38 > 37.2 ms, 39 > 38.4 ms) → 3 items → met
+    # AAN 1991 (Neurology 1991): adding prolonged F in both nerves (38 > 37.2 ms,
+    # 39 > 38.4 ms) → 3 items → met
     result = evaluate([Visit(_demyelinating(38.0, 39.0))], ID)
     assert outcome(result, "items_met") == 3
     assert outcome(result) == "met"
@@ -309,7 +344,8 @@ def test_four_items():
 
 
 def test_missing_data_is_not_evaluable_and_leaves_the_outcome_unsettled():
-    # AAN 1991 (Neurology 1991): CV and DML met (2 items); F-waves not recorded → item 4 undecided, never normal
+    # AAN 1991 (Neurology 1991): CV and DML met (2 items); F-waves not
+    # recorded → item 4 undecided, never normal
     result = evaluate([Visit(_demyelinating(None, None))], ID)
     assert finding(result, "median", "f_latency")["status"] == NOT_EVALUABLE
     # DESIGN.md §5: missing data that could make the set met leave it undecided, the items listed
@@ -329,7 +365,9 @@ def test_unknown_distal_amplitude_leaves_the_threshold_unchosen():
 
 def test_visits_are_evaluated_independently():
     # AAN 1991 (Neurology 1991): one row per visit, each with its own item count
-    result = evaluate([Visit(_demyelinating(38.0, 39.0)), Visit(healthy_four_nerves(), visit_date="2024-06-01")], ID)
+    result = evaluate(
+        [Visit(_demyelinating(38.0, 39.0)), Visit(healthy_four_nerves(), visit_date="2024-06-01")], ID
+    )
     assert sorted(result.outcomes["items_met"].tolist()) == [0, 3]
     assert sorted(result.outcomes["outcome"].tolist()) == ["met", "not_met"]
 

@@ -20,19 +20,29 @@ from tracker.criteria.thresholds import load
 ID = "ean-pns-2021-cidp"
 CITATION = (
     "Van den Bergh PYK, van Doorn PA, Hadden RDM, et al. European Academy of Neurology/Peripheral Nerve "
-    "Society guideline on diagnosis and treatment of chronic inflammatory demyelinating polyradiculoneuropathy"
+    "Society guideline on diagnosis and treatment of chronic inflammatory demyelinating "
+    "polyradiculoneuropathy"
 )
 
 # Invented building blocks.
 ULNAR = dict(amplitudes=(9.0, 8.6, 8.4), durations=(5.5, 5.8, 6.0))
 TIBIAL = dict(amplitudes=(10.0, 9.0), durations=(5.0, 5.5), dml=4.5, cv=46, f_latency=50, segment_mm=400)
 FIBULAR = dict(amplitudes=(5.0, 4.6, 4.5), durations=(5.5, 6.0, 6.1), dml=4.5, cv=48, f_latency=48)
-SENSORY_ABNORMAL_2 = [Sensory("median", amplitude=10), Sensory("ulnar", amplitude=8)]  # both below LLN (20, 17 µV)
+SENSORY_ABNORMAL_2 = [
+    Sensory("median", amplitude=10),
+    Sensory("ulnar", amplitude=8),
+]  # both below LLN (20, 17 µV)
 # Invented; peak latencies below the shipped ULN (median 3.5, ulnar 3.1, sural 4.4 ms) so that every sensory
 # measure is judged and the outcome is decided.
-SENSORY_ABNORMAL_1 = [Sensory("median", amplitude=10, peak_latency=3.0), Sensory("ulnar", amplitude=25, peak_latency=2.8)]
-SENSORY_NORMAL = [Sensory("median", amplitude=30, peak_latency=3.0), Sensory("ulnar", amplitude=25, peak_latency=2.8),
-                  Sensory("sural", amplitude=10, cv=45, peak_latency=3.8)]
+SENSORY_ABNORMAL_1 = [
+    Sensory("median", amplitude=10, peak_latency=3.0),
+    Sensory("ulnar", amplitude=25, peak_latency=2.8),
+]
+SENSORY_NORMAL = [
+    Sensory("median", amplitude=30, peak_latency=3.0),
+    Sensory("ulnar", amplitude=25, peak_latency=2.8),
+    Sensory("sural", amplitude=10, cv=45, peak_latency=3.8),
+]
 
 
 def long_dml(nerve: str = "median", **kw) -> Motor:
@@ -56,6 +66,7 @@ def sensory(result) -> str:
 
 # ---------------------------------------------------------------- the table itself
 
+
 def test_every_row_is_cited_and_marked_from_memory():
     table = load(ID)
     assert table.version == "2021.2"
@@ -63,12 +74,16 @@ def test_every_row_is_cited_and_marked_from_memory():
         assert row.citations == ("ean-pns-2021-cidp",)
         assert CITATION in row.source and "Eur J Neurol 2021;28:3556–3583" in row.source
         assert "doi:10.1111/ene.14959" in row.source
-        assert row.status == "memory", f"{row.item} {row.nerve}: update the 'from memory' notes of these tests if verified"
+        assert row.status == "memory", (
+            f"{row.item} {row.nerve}: update the 'from memory' notes of these tests if verified"
+        )
 
 
 def test_the_duration_table_has_four_filters_by_four_nerves():
     rows = [r for r in load(ID).rows if r.item == "dcmap_duration"]
-    assert sorted((r.lff_hz, r.nerve) for r in rows) == sorted((hz, n) for hz in (2, 5, 10, 20) for n in ("median", "ulnar", "fibular", "tibial"))
+    assert sorted((r.lff_hz, r.nerve) for r in rows) == sorted(
+        (hz, n) for hz in (2, 5, 10, 20) for n in ("median", "ulnar", "fibular", "tibial")
+    )
     assert {r.comparator for r in rows} == {"gt"}
 
 
@@ -81,27 +96,34 @@ def test_healthy_study_meets_nothing():
 
 # ---------------------------------------------------------------- motor thresholds, one nerve
 
-# (a) DML ≥ 150 % of ULN (median ULN 4.4 → 6.6 ms). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+
+# (a) DML ≥ 150 % of ULN (median ULN 4.4 → 6.6 ms). Van den Bergh et al., Eur J
+#     Neurol 2021 — from memory, not verified.
 @pytest.mark.parametrize("dml, status", [(6.59, NOT_MET), (6.6, MET), (6.61, MET)])
 def test_distal_latency_edge(dml, status):
     row = finding(run([Motor("median", dml=dml)]), "median", "dml")
     assert row["status"] == status and row["threshold"] == 6.6
 
 
-# (a) median excluded for neuropathy at the wrist. Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+# (a) median excluded for neuropathy at the wrist. Van den Bergh et al., Eur J Neurol
+#     2021 — from memory, not verified.
 def test_wrist_entrapment_removes_the_median_latency():
     row = finding(run([Motor("median", dml=7.0, wrist_entrapment=True)]), "median", "dml")
     assert row["status"] == NOT_APPLICABLE and "wrist" in row["reason"]
 
 
-# (b) CV ≤ 70 % of LLN (median LLN 49 → 34.3 m/s). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
-@pytest.mark.parametrize("segment_mm, status", [(171.45, MET), (171.5, MET), (171.55, NOT_MET)])  # over 5.0 ms: 34.29, 34.30, 34.31 m/s
+# (b) CV ≤ 70 % of LLN (median LLN 49 → 34.3 m/s). Van den Bergh et al., Eur J Neurol
+#     2021 — from memory, not verified.
+@pytest.mark.parametrize(
+    "segment_mm, status", [(171.45, MET), (171.5, MET), (171.55, NOT_MET)]
+)  # over 5.0 ms: 34.29, 34.30, 34.31 m/s
 def test_velocity_edge(segment_mm, status):
     row = finding(run([Motor("median", latencies=(3.0, 8.0), segment_mm=segment_mm)]), "median", "cv")
     assert row["status"] == status and row["threshold"] == 34.3
 
 
-# (c) F latency ≥ 120 % of ULN (median ULN 31 → 37.2 ms). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+# (c) F latency ≥ 120 % of ULN (median ULN 31 → 37.2 ms). Van den Bergh et al., Eur J
+#     Neurol 2021 — from memory, not verified.
 @pytest.mark.parametrize("f, status", [(37.19, NOT_MET), (37.2, MET), (37.21, MET)])
 def test_f_latency_edge(f, status):
     row = finding(run([Motor("median", f_latency=f)]), "median", "f_latency")
@@ -117,13 +139,18 @@ def test_f_wave_amplitude_switch_edge(distal, threshold):
     assert row["status"] == (MET if threshold == 37.2 else NOT_MET)
 
 
-# (c) the larger factor at its own edge (distal CMAP 3.0 mV, below the switch). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+# (c) the larger factor at its own edge (distal CMAP 3.0 mV, below the switch). Van den Bergh et al., Eur
+#     J Neurol 2021 — from memory, not verified.
 @pytest.mark.parametrize("f, status", [(46.49, NOT_MET), (46.5, MET), (46.51, MET)])
 def test_f_latency_low_cmap_edge(f, status):
-    assert finding(run([Motor("median", f_latency=f, amplitudes=(3.0, 2.8))]), "median", "f_latency")["status"] == status
+    assert (
+        finding(run([Motor("median", f_latency=f, amplitudes=(3.0, 2.8))]), "median", "f_latency")["status"]
+        == status
+    )
 
 
-# (d) absent F counted only with distal CMAP ≥ 20 % of LLN (0.8 mV). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+# (d) absent F counted only with distal CMAP ≥ 20 % of LLN (0.8 mV). Van den Bergh et al., Eur J
+#     Neurol 2021 — from memory, not verified.
 @pytest.mark.parametrize("distal, status", [(0.79, NOT_APPLICABLE), (0.8, MET), (0.81, MET)])
 def test_absent_f_waves_precondition_edge(distal, status):
     row = finding(run([Motor("median", f_absent=True, amplitudes=(distal, 0.7))]), "median", "f_absent")
@@ -138,13 +165,16 @@ def test_f_waves_not_recorded_are_not_evaluable():
 
 
 # (e) CB ≥ 30 % amplitude reduction. Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
-@pytest.mark.parametrize("proximal, status", [(7.01, NOT_MET), (7.0, MET), (6.99, MET)])  # from 10 mV: 29.9 %, 30 %, 30.1 %
+@pytest.mark.parametrize(
+    "proximal, status", [(7.01, NOT_MET), (7.0, MET), (6.99, MET)]
+)  # from 10 mV: 29.9 %, 30 %, 30.1 %
 def test_block_edge(proximal, status):
     row = finding(run([Motor("median", amplitudes=(10.0, proximal), durations=(5.5, 5.8))]), "median", "cb")
     assert row["status"] == status and row["threshold"] == 30
 
 
-# (e) CB precondition: distal CMAP ≥ 20 % of LLN (0.8 mV). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+# (e) CB precondition: distal CMAP ≥ 20 % of LLN (0.8 mV). Van den Bergh et al., Eur J
+#     Neurol 2021 — from memory, not verified.
 @pytest.mark.parametrize("distal, status", [(0.79, NOT_APPLICABLE), (0.8, MET), (0.81, MET)])
 def test_block_precondition_edge(distal, status):
     row = finding(run([Motor("median", amplitudes=(distal, 0.3), durations=(5.5, 5.8))]), "median", "cb")
@@ -161,10 +191,16 @@ def test_tibial_block_is_excluded():
     assert motor(result) == NOT_MET
 
 
-# (e) from Erb's point ≥ 50 % is needed (distal 8.0 mV → 4.0 mV). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+# (e) from Erb's point ≥ 50 % is needed (distal 8.0 mV → 4.0 mV). Van den Bergh et al., Eur J
+#     Neurol 2021 — from memory, not verified.
 @pytest.mark.parametrize("erb, status", [(4.01, NOT_MET), (4.0, MET), (3.99, MET)])
 def test_block_from_erbs_point_needs_fifty_percent(erb, status):
-    median = Motor("median", labels=("wrist", "elbow", "axilla", "erb"), amplitudes=(8.0, 7.8, 7.6, erb), durations=(5.5, 5.6, 5.7, 5.8))
+    median = Motor(
+        "median",
+        labels=("wrist", "elbow", "axilla", "erb"),
+        amplitudes=(8.0, 7.8, 7.6, erb),
+        durations=(5.5, 5.6, 5.7, 5.8),
+    )
     result = run([median])
     assert finding(result, "median", "cb_erb")["status"] == status
     # the 30 % item ignores Erb's point: only the 5 % fall to the axilla is judged there
@@ -173,8 +209,13 @@ def test_block_from_erbs_point_needs_fifty_percent(erb, status):
 
 def test_erb_block_across_the_elbow_is_not_evaluable():
     # ulnar wrist → Erb's point passes the elbow (an entrapment segment): a 60 % fall there is not judged
-    ulnar = Motor("ulnar", dml=2.8, labels=("wrist", "below_elbow", "above_elbow", "axilla", "erb"),
-                  amplitudes=(9.0, 8.8, 8.6, 8.4, 3.6), durations=(5.5, 5.6, 5.7, 5.8, 5.9))
+    ulnar = Motor(
+        "ulnar",
+        dml=2.8,
+        labels=("wrist", "below_elbow", "above_elbow", "axilla", "erb"),
+        amplitudes=(9.0, 8.8, 8.6, 8.4, 3.6),
+        durations=(5.5, 5.6, 5.7, 5.8, 5.9),
+    )
     row = finding(run([ulnar]), "ulnar", "cb_erb")
     assert row["status"] == NOT_APPLICABLE and "entrapment" in row["reason"]
 
@@ -184,13 +225,15 @@ def test_erb_block_is_reported_only_where_erbs_point_was_stimulated():
     assert result.findings[result.findings["item"] == "cb_erb"].empty
 
 
-# (f) TD > 30 % (5.5 ms → 7.15 ms is exactly 30 %). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+# (f) TD > 30 % (5.5 ms → 7.15 ms is exactly 30 %). Van den Bergh et al., Eur J
+#     Neurol 2021 — from memory, not verified.
 @pytest.mark.parametrize("proximal, status", [(7.14, NOT_MET), (7.15, NOT_MET), (7.16, MET)])
 def test_dispersion_edge(proximal, status):
     assert finding(run([Motor("median", durations=(5.5, proximal))]), "median", "td")["status"] == status
 
 
-# (f) TD ≥ 100 % in the tibial nerve (5.0 ms → 10.0 ms). Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+# (f) TD ≥ 100 % in the tibial nerve (5.0 ms → 10.0 ms). Van den Bergh et al., Eur J
+#     Neurol 2021 — from memory, not verified.
 @pytest.mark.parametrize("proximal, status", [(9.99, NOT_MET), (10.0, MET), (10.01, MET)])
 def test_tibial_dispersion_needs_one_hundred_percent(proximal, status):
     row = finding(run([Motor("tibial", **{**TIBIAL, "durations": (5.0, proximal)})]), "tibial", "td")
@@ -198,7 +241,9 @@ def test_tibial_dispersion_needs_one_hundred_percent(proximal, status):
 
 
 def test_forty_percent_dispersion_counts_in_the_median_but_not_the_tibial():
-    result = run([Motor("median", durations=(5.0, 7.0)), Motor("tibial", **{**TIBIAL, "durations": (5.0, 7.0)})])
+    result = run(
+        [Motor("median", durations=(5.0, 7.0)), Motor("tibial", **{**TIBIAL, "durations": (5.0, 7.0)})]
+    )
     assert finding(result, "median", "td")["status"] == MET
     assert finding(result, "tibial", "td")["status"] == NOT_MET
 
@@ -206,10 +251,22 @@ def test_forty_percent_dispersion_counts_in_the_median_but_not_the_tibial():
 # (g) distal CMAP duration, cut-off by low-frequency filter (LFF), "greater than".
 # Van den Bergh et al., Eur J Neurol 2021, cut-offs table — from memory, not verified.
 DURATION_CUTOFFS = [
-    ("median", 2, 8.4), ("ulnar", 2, 9.6), ("fibular", 2, 8.8), ("tibial", 2, 9.2),
-    ("median", 5, 8.0), ("ulnar", 5, 8.6), ("fibular", 5, 8.5), ("tibial", 5, 8.3),
-    ("median", 10, 7.8), ("ulnar", 10, 8.5), ("fibular", 10, 8.3), ("tibial", 10, 8.2),
-    ("median", 20, 7.4), ("ulnar", 20, 7.8), ("fibular", 20, 8.1), ("tibial", 20, 8.0),
+    ("median", 2, 8.4),
+    ("ulnar", 2, 9.6),
+    ("fibular", 2, 8.8),
+    ("tibial", 2, 9.2),
+    ("median", 5, 8.0),
+    ("ulnar", 5, 8.6),
+    ("fibular", 5, 8.5),
+    ("tibial", 5, 8.3),
+    ("median", 10, 7.8),
+    ("ulnar", 10, 8.5),
+    ("fibular", 10, 8.3),
+    ("tibial", 10, 8.2),
+    ("median", 20, 7.4),
+    ("ulnar", 20, 7.8),
+    ("fibular", 20, 8.1),
+    ("tibial", 20, 8.0),
 ]
 
 
@@ -224,25 +281,37 @@ def test_distal_duration_cutoff_per_filter(nerve, lff, cutoff, delta, status):
 
 def test_the_filter_setting_changes_the_verdict():
     # 8.0 ms in the median: above the 20 Hz cut-off (7.4 ms) but not the 2 Hz cut-off (8.4 ms)
-    assert finding(run([Motor("median", lff=20, durations=(8.0, 8.0))]), "median", "dcmap_duration")["status"] == MET
-    assert finding(run([Motor("median", lff=2, durations=(8.0, 8.0))]), "median", "dcmap_duration")["status"] == NOT_MET
+    assert (
+        finding(run([Motor("median", lff=20, durations=(8.0, 8.0))]), "median", "dcmap_duration")["status"]
+        == MET
+    )
+    assert (
+        finding(run([Motor("median", lff=2, durations=(8.0, 8.0))]), "median", "dcmap_duration")["status"]
+        == NOT_MET
+    )
 
 
-# filter not recorded = want of data (not evaluable); a recorded filter the table has no cut-off for = the item
-# does not apply to that recording (not applicable). Project reading of Van den Bergh et al., Eur J Neurol 2021.
-@pytest.mark.parametrize("lff, words, status", [(None, "not recorded", NOT_EVALUABLE), (3.0, "3 Hz", NOT_APPLICABLE)])
+# filter not recorded = want of data (not evaluable); a recorded filter the table has no
+# cut-off for = the item does not apply to that recording (not applicable). Project reading
+# of Van den Bergh et al., Eur J Neurol 2021.
+@pytest.mark.parametrize(
+    "lff, words, status", [(None, "not recorded", NOT_EVALUABLE), (3.0, "3 Hz", NOT_APPLICABLE)]
+)
 def test_distal_duration_without_a_tabled_filter_is_not_evaluable(lff, words, status):
     row = finding(run([Motor("median", lff=lff, durations=(12.0, 12.0))]), "median", "dcmap_duration")
     assert row["status"] == status and words in row["reason"]
 
 
 def test_distal_duration_of_a_nerve_without_a_cutoff_is_not_evaluable():
-    row = finding(run([Motor("radial", amplitudes=(5.0, 4.8), durations=(12.0, 12.0))]), "radial", "dcmap_duration")
+    row = finding(
+        run([Motor("radial", amplitudes=(5.0, 4.8), durations=(12.0, 12.0))]), "radial", "dcmap_duration"
+    )
     assert row["status"] == NOT_APPLICABLE and "no distal CMAP duration cut-off" in row["reason"]
 
 
-# ---------------------------------------------------------------- motor combinations (strongly / weakly supportive)
+# ---------------------------------------------------------- motor combinations (strongly / weakly supportive)
 # Combination rules: Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+
 
 def test_a_in_two_nerves_is_strongly_supportive():
     result = run([long_dml("median"), long_dml("ulnar")] + SENSORY_ABNORMAL_2)
@@ -268,7 +337,11 @@ def test_c_in_two_nerves():
 
 
 def test_d_absent_f_in_two_nerves_plus_another_parameter_in_a_third_nerve():
-    nerves = [Motor("median", f_absent=True), Motor("ulnar", f_absent=True, **ULNAR), Motor("fibular", **{**FIBULAR, "dml": 10.0})]  # fibular DML ≥ 9.75
+    nerves = [
+        Motor("median", f_absent=True),
+        Motor("ulnar", f_absent=True, **ULNAR),
+        Motor("fibular", **{**FIBULAR, "dml": 10.0}),
+    ]  # fibular DML ≥ 9.75
     result = run(nerves)
     assert motor(result) == "strongly_supportive" and "(d)" in outcome(result, "rule")
 
@@ -284,7 +357,9 @@ def test_d_absent_f_in_two_nerves_alone_is_weakly_supportive():
 
 
 def ulnar_block(**kw) -> Motor:
-    return Motor("ulnar", dml=2.8, amplitudes=(9.0, 5.0, 4.9), durations=(5.5, 5.8, 6.0), **kw)  # 44 % wrist → below elbow
+    return Motor(
+        "ulnar", dml=2.8, amplitudes=(9.0, 5.0, 4.9), durations=(5.5, 5.8, 6.0), **kw
+    )  # 44 % wrist → below elbow
 
 
 def median_block(**kw) -> Motor:
@@ -293,13 +368,17 @@ def median_block(**kw) -> Motor:
 
 def test_e_block_in_two_nerves():
     result = run([median_block(), ulnar_block()])
-    assert motor(result) == "strongly_supportive" and "(e) conduction block in ≥ 2 nerves" in outcome(result, "rule")
+    assert motor(result) == "strongly_supportive" and "(e) conduction block in ≥ 2 nerves" in outcome(
+        result, "rule"
+    )
 
 
 def test_e_block_in_one_nerve_plus_another_parameter_in_another_nerve():
     result = run([median_block(), long_dml("ulnar")])
     assert motor(result) == "strongly_supportive"
-    assert "(e) conduction block in 1 nerve plus another parameter (other than absent F-waves)" in outcome(result, "rule")
+    assert "(e) conduction block in 1 nerve plus another parameter (other than absent F-waves)" in outcome(
+        result, "rule"
+    )
 
 
 def test_e_absent_f_does_not_count_as_the_other_parameter_for_block():
@@ -313,13 +392,23 @@ def test_e_block_and_another_parameter_in_the_same_nerve_is_weakly_supportive():
 
 
 def test_e_erb_block_joins_the_block_item():
-    median = Motor("median", labels=("wrist", "elbow", "axilla", "erb"), amplitudes=(8.0, 7.8, 7.6, 3.5), durations=(5.5, 5.6, 5.7, 5.8))
+    median = Motor(
+        "median",
+        labels=("wrist", "elbow", "axilla", "erb"),
+        amplitudes=(8.0, 7.8, 7.6, 3.5),
+        durations=(5.5, 5.6, 5.7, 5.8),
+    )
     result = run([median, long_dml("ulnar")])
     assert motor(result) == "strongly_supportive" and "(e)" in outcome(result, "rule")
 
 
 def test_f_dispersion_in_two_nerves():
-    result = run([Motor("median", durations=(5.0, 7.0)), Motor("ulnar", amplitudes=(9.0, 8.6, 8.4), durations=(5.0, 7.0, 7.1))])
+    result = run(
+        [
+            Motor("median", durations=(5.0, 7.0)),
+            Motor("ulnar", amplitudes=(9.0, 8.6, 8.4), durations=(5.0, 7.0, 7.1)),
+        ]
+    )
     assert motor(result) == "strongly_supportive" and "(f)" in outcome(result, "rule")
 
 
@@ -329,14 +418,20 @@ def test_g_duration_plus_another_parameter_in_another_nerve():
 
 
 def test_g_duration_plus_absent_f_in_another_nerve():
-    # absent F-waves in one eligible nerve counts as "another parameter" for (g) (decision; only (e) excludes it)
+    # absent F-waves in one eligible nerve counts as "another parameter" for
+    # (g) (decision; only (e) excludes it)
     result = run([Motor("median", durations=(8.5, 8.6)), Motor("ulnar", f_absent=True, **ULNAR)])
     assert motor(result) == "strongly_supportive" and "(g)" in outcome(result, "rule")
 
 
 def test_g_duration_alone_or_in_two_nerves_is_weakly_supportive():
     assert motor(run([Motor("median", durations=(8.5, 8.6))])) == "weakly_supportive"
-    two = run([Motor("median", durations=(8.5, 8.6)), Motor("ulnar", amplitudes=(9.0, 8.6, 8.4), durations=(9.7, 9.8, 9.9))])
+    two = run(
+        [
+            Motor("median", durations=(8.5, 8.6)),
+            Motor("ulnar", amplitudes=(9.0, 8.6, 8.4), durations=(9.7, 9.8, 9.9)),
+        ]
+    )
     assert motor(two) == "weakly_supportive"
 
 
@@ -347,11 +442,15 @@ def test_left_and_right_count_as_two_nerves_by_default():
 
 
 # ---------------------------------------------------------------- sensory conduction
-# "Abnormal" = SNAP < LLN, CV < LLN or peak latency > ULN. Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
+# "Abnormal" = SNAP < LLN, CV < LLN or peak latency > ULN. Van den Bergh et al., Eur
+# J Neurol 2021 — from memory, not verified.
+
 
 @pytest.mark.parametrize("amplitude, status", [(19.99, MET), (20.0, NOT_MET), (20.01, NOT_MET)])
 def test_snap_amplitude_edge(amplitude, status):
-    assert finding(run([Sensory("median", amplitude=amplitude)]), "median", "snap_amplitude")["status"] == status
+    assert (
+        finding(run([Sensory("median", amplitude=amplitude)]), "median", "snap_amplitude")["status"] == status
+    )
 
 
 @pytest.mark.parametrize("cv, status", [(49.99, MET), (50.0, NOT_MET), (50.01, NOT_MET)])
@@ -361,7 +460,10 @@ def test_sensory_velocity_edge(cv, status):
 
 @pytest.mark.parametrize("peak, status", [(3.49, NOT_MET), (3.5, NOT_MET), (3.51, MET)])
 def test_sensory_peak_latency_edge(peak, status):
-    assert finding(run([Sensory("median", peak_latency=peak)]), "median", "sensory_peak_latency")["status"] == status
+    assert (
+        finding(run([Sensory("median", peak_latency=peak)]), "median", "sensory_peak_latency")["status"]
+        == status
+    )
 
 
 def test_sensory_categories():
@@ -372,7 +474,11 @@ def test_sensory_categories():
 
 
 def test_each_abnormal_parameter_makes_its_nerve_abnormal():
-    nerves = [Sensory("median", cv=45), Sensory("ulnar", peak_latency=3.2), Sensory("superficial_fibular", amplitude=5)]
+    nerves = [
+        Sensory("median", cv=45),
+        Sensory("ulnar", peak_latency=3.2),
+        Sensory("superficial_fibular", amplitude=5),
+    ]
     result = run(nerves)
     assert sensory(result) == "abnormal_2_nerves"
     assert {finding(result, "superficial_fibular", "snap_amplitude")["status"]} == {MET}
@@ -403,9 +509,12 @@ def test_median_with_wrist_entrapment_is_not_counted():
 # CV < 80 % of LLN, or < 70 % of LLN when the SNAP is < 80 % of LLN; sural sparing.
 # Van den Bergh et al., Eur J Neurol 2021 — from memory, not verified.
 
+
 @pytest.mark.parametrize("cv, status", [(39.99, MET), (40.0, NOT_MET), (40.01, NOT_MET)])
 def test_sensory_cidp_velocity_edge(cv, status):
-    result = run([Sensory("median", amplitude=25, cv=cv)], phenotype="sensory")  # SNAP ≥ 16 µV: 80 % of LLN 50 m/s
+    result = run(
+        [Sensory("median", amplitude=25, cv=cv)], phenotype="sensory"
+    )  # SNAP ≥ 16 µV: 80 % of LLN 50 m/s
     assert finding(result, "median", "sensory_cidp_cv")["status"] == status
 
 
@@ -418,7 +527,11 @@ def test_sensory_cidp_velocity_edge_with_a_low_snap(cv, status):
 
 @pytest.mark.parametrize("amplitude, threshold", [(15.99, 35.0), (16.0, 40.0), (16.01, 40.0)])
 def test_sensory_cidp_amplitude_switch_edge(amplitude, threshold):
-    row = finding(run([Sensory("median", amplitude=amplitude, cv=38.0)], phenotype="sensory"), "median", "sensory_cidp_cv")
+    row = finding(
+        run([Sensory("median", amplitude=amplitude, cv=38.0)], phenotype="sensory"),
+        "median",
+        "sensory_cidp_cv",
+    )
     assert row["threshold"] == threshold
     assert row["status"] == (MET if threshold == 40.0 else NOT_MET)
 
@@ -488,10 +601,17 @@ def test_motor_needs_normal_sensory_conduction():
 
 
 def test_sensory_with_slowing_in_two_nerves_and_normal_motor_conduction_is_possible():
-    nerves = healthy_four_nerves() + [Sensory("median", amplitude=25, cv=38), Sensory("ulnar", amplitude=25, cv=38)]
+    nerves = healthy_four_nerves() + [
+        Sensory("median", amplitude=25, cv=38),
+        Sensory("ulnar", amplitude=25, cv=38),
+    ]
     result = run(nerves, phenotype="sensory")
     assert outcome(result) == "possible_cidp" and "velocity" in outcome(result, "rule")
-    single = run(healthy_four_nerves() + [Sensory("median", amplitude=25, cv=38), Sensory("ulnar", amplitude=25, cv=45)], phenotype="sensory")
+    single = run(
+        healthy_four_nerves()
+        + [Sensory("median", amplitude=25, cv=38), Sensory("ulnar", amplitude=25, cv=45)],
+        phenotype="sensory",
+    )
     assert outcome(single) == "not_met"
 
 
@@ -519,8 +639,11 @@ def test_unknown_phenotype_is_not_met_with_a_reason():
 
 # ---------------------------------------------------------------- missing data, cohorts
 
+
 def test_missing_motor_values_are_not_evaluable_never_normal():
-    blank = Motor("median", dml=None, cv=None, amplitudes=(None, None), durations=(None, None), f_latency=None)
+    blank = Motor(
+        "median", dml=None, cv=None, amplitudes=(None, None), durations=(None, None), f_latency=None
+    )
     result = run([blank] + SENSORY_ABNORMAL_2)
     statuses = set(result.findings.loc[result.findings["modality"] == "motor", "status"])
     assert statuses == {NOT_EVALUABLE}
@@ -529,29 +652,48 @@ def test_missing_motor_values_are_not_evaluable_never_normal():
 
 
 def test_visits_are_judged_independently_in_one_pass():
-    visits = [Visit(STRONG + SENSORY_ABNORMAL_2, visit_date="2024-01-10"), Visit(WEAK + SENSORY_NORMAL, visit_date="2024-06-10", phenotype="motor"),
-              Visit(healthy_four_nerves() + SENSORY_NORMAL, visit_date="2024-12-10")]
+    visits = [
+        Visit(STRONG + SENSORY_ABNORMAL_2, visit_date="2024-01-10"),
+        Visit(WEAK + SENSORY_NORMAL, visit_date="2024-06-10", phenotype="motor"),
+        Visit(healthy_four_nerves() + SENSORY_NORMAL, visit_date="2024-12-10"),
+    ]
     result = evaluate(visits, ID)
     assert result.outcomes["outcome"].tolist() == ["cidp", "possible_cidp", "not_met"]
     assert result.outcomes["phenotype"].tolist() == ["typical", "motor", "typical"]
-    assert list(result.outcomes.columns) == ["visit_key", "outcome", "rule", "motor", "sensory", "phenotype", "undecided_items"]
+    assert list(result.outcomes.columns) == [
+        "visit_key",
+        "outcome",
+        "rule",
+        "motor",
+        "sensory",
+        "phenotype",
+        "undecided_items",
+    ]
     assert result.extra_keys == ("motor", "sensory")
 
 
 def test_phenotype_not_recorded_is_said():
-    # DESIGN.md §5 / project wording: without a recorded phenotype the typical-CIDP rules of Van den Bergh et al.,
-    # Eur J Neurol 2021 (from memory, not verified) apply, and the rule says so instead of "typical:"
+    # DESIGN.md §5 / project wording: without a recorded phenotype the typical-CIDP rules of Van den Bergh et
+    # al., Eur J Neurol 2021 (from memory, not verified) apply, and the rule says so instead of "typical:"
     result = run(STRONG + SENSORY_ABNORMAL_2, phenotype=None)
     assert outcome(result, "rule").startswith("phenotype not recorded — judged with the typical-CIDP rules:")
     assert outcome(run(STRONG + SENSORY_ABNORMAL_2), "rule").startswith("typical:")
 
 
 def test_outcomes_are_worded_as_electrodiagnostic_criteria():
-    # project wording: electrodiagnostic criteria, never a diagnosis; the "possible" specificity figure is from
-    # Rajabally et al., J Neurol Neurosurg Psychiatry 2009;80:1364–1368 (69.2 %, 2006 version of the criteria)
+    # project wording: electrodiagnostic criteria, never a diagnosis; the "possible" specificity
+    # figure is from Rajabally et al., J Neurol Neurosurg Psychiatry 2009;80:1364–1368
+    # (69.2 %, 2006 version of the criteria)
     from tracker.check_report import outcome_words
 
-    assert outcome_words("ean-pns-2021-cidp", "cidp") == "meets the EAN/PNS 2021 electrodiagnostic criteria for CIDP"
+    assert (
+        outcome_words("ean-pns-2021-cidp", "cidp")
+        == "meets the EAN/PNS 2021 electrodiagnostic criteria for CIDP"
+    )
     possible = outcome_words("efns-pns-2010-cidp", "possible")
-    assert possible.startswith("EFNS/PNS 2010 electrodiagnostic category: possible") and "69.2 %" in possible and "Rajabally" in possible
+    assert (
+        possible.startswith("EFNS/PNS 2010 electrodiagnostic category: possible")
+        and "69.2 %" in possible
+        and "Rajabally" in possible
+    )
     assert "undecided" in outcome_words("aan-1991-cidp", "undecided")

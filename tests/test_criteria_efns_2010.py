@@ -27,13 +27,33 @@ def test_distal_latency_edge(dml, status):
 
 
 def test_two_nerves_with_long_latency_are_definite():
-    result = evaluate([Visit([Motor("median", dml=6.7), Motor("ulnar", dml=5.0, amplitudes=(8.0, 7.6, 7.4), durations=(5.5, 5.7, 5.8))])], ID)
+    result = evaluate(
+        [
+            Visit(
+                [
+                    Motor("median", dml=6.7),
+                    Motor("ulnar", dml=5.0, amplitudes=(8.0, 7.6, 7.4), durations=(5.5, 5.7, 5.8)),
+                ]
+            )
+        ],
+        ID,
+    )
     assert outcome(result) == "definite"
     assert outcome(result, "rule") == "(a) distal latency in ≥ 2 nerves"
 
 
 def test_one_nerve_is_possible():
-    result = evaluate([Visit([Motor("median", dml=6.7), Motor("ulnar", dml=2.8, amplitudes=(8.0, 7.6, 7.4), durations=(5.5, 5.7, 5.8))])], ID)
+    result = evaluate(
+        [
+            Visit(
+                [
+                    Motor("median", dml=6.7),
+                    Motor("ulnar", dml=2.8, amplitudes=(8.0, 7.6, 7.4), durations=(5.5, 5.7, 5.8)),
+                ]
+            )
+        ],
+        ID,
+    )
     assert outcome(result) == "possible"
 
 
@@ -55,7 +75,9 @@ def test_one_block_plus_another_parameter_in_another_nerve_is_definite():
     result = evaluate([Visit([block, other])], ID)
     assert finding(result, "median", "cb")["status"] == MET
     assert outcome(result) == "definite"
-    assert outcome(result, "rule") == "(e) conduction block in 1 nerve plus another parameter in another nerve"
+    assert (
+        outcome(result, "rule") == "(e) conduction block in 1 nerve plus another parameter in another nerve"
+    )
 
 
 def test_block_and_other_parameter_in_the_same_nerve_is_only_possible():
@@ -74,7 +96,9 @@ def test_block_precondition_twenty_percent_of_lln():
 
 
 def test_probable_block_excludes_the_tibial_nerve():
-    result = evaluate([Visit([Motor("tibial", amplitudes=(10.0, 6.0), durations=(5.5, 6.0), segment_mm=400, cv=46)])], ID)
+    result = evaluate(
+        [Visit([Motor("tibial", amplitudes=(10.0, 6.0), durations=(5.5, 6.0), segment_mm=400, cv=46)])], ID
+    )
     assert finding(result, "tibial", "probable_cb")["status"] == NOT_APPLICABLE
     assert "tibial" in finding(result, "tibial", "probable_cb")["reason"]
 
@@ -95,7 +119,8 @@ def test_dispersion_is_strictly_above_thirty_percent(proximal, status):
 
 
 def test_f_wave_threshold_switches_below_eighty_percent_of_lln():
-    # median ULN 31 ms: 130 % = 40.3 ms; with distal CMAP < 80 % of 4.0 mV (3.2 mV) the cut-off is 150 % = 46.5 ms
+    # median ULN 31 ms: 130 % = 40.3 ms; with distal CMAP < 80 % of 4.0 mV
+    # (3.2 mV) the cut-off is 150 % = 46.5 ms
     normal_cmap = evaluate([Visit([Motor("median", f_latency=40.3, amplitudes=(3.2, 3.0))])], ID)
     low_cmap = evaluate([Visit([Motor("median", f_latency=40.3, amplitudes=(3.19, 3.0))])], ID)
     assert finding(normal_cmap, "median", "f_latency")["status"] == MET
@@ -112,10 +137,16 @@ def test_absent_f_waves_need_twenty_percent_of_lln():
 
 def test_distal_duration_cut_offs_per_nerve():
     # median ≥ 6.6 ms, ulnar ≥ 6.7, fibular ≥ 7.6, tibial ≥ 8.8 (EFNS/PNS 2010 (g))
-    nerves = [Motor("median", durations=(6.6, 6.8)), Motor("ulnar", durations=(6.69, 6.8, 6.9), amplitudes=(8, 7.8, 7.6)),
-              Motor("fibular", durations=(7.6, 7.8, 7.9), amplitudes=(5, 4.8, 4.7), cv=48), Motor("tibial", durations=(8.79, 9.0), amplitudes=(10, 9), cv=46, segment_mm=400)]
+    nerves = [
+        Motor("median", durations=(6.6, 6.8)),
+        Motor("ulnar", durations=(6.69, 6.8, 6.9), amplitudes=(8, 7.8, 7.6)),
+        Motor("fibular", durations=(7.6, 7.8, 7.9), amplitudes=(5, 4.8, 4.7), cv=48),
+        Motor("tibial", durations=(8.79, 9.0), amplitudes=(10, 9), cv=46, segment_mm=400),
+    ]
     result = evaluate([Visit(nerves)], ID)
-    assert [finding(result, n, "dcmap_duration")["status"] for n in ("median", "ulnar", "fibular", "tibial")] == [MET, NOT_MET, MET, NOT_MET]
+    assert [
+        finding(result, n, "dcmap_duration")["status"] for n in ("median", "ulnar", "fibular", "tibial")
+    ] == [MET, NOT_MET, MET, NOT_MET]
 
 
 def test_left_and_right_count_as_two_nerves_by_default():
@@ -147,6 +178,7 @@ def test_sensory_supportive_item():
 
 # ---- undecided (DESIGN.md §5): missing data that could meet an item are never "not met"
 
+
 def _listed(result) -> set:
     return {(f["nerve"], f["item"]) for f in outcome(result, "undecided_items")}
 
@@ -165,21 +197,37 @@ def test_f_waves_not_recorded_leave_a_normal_study_undecided():
 
 @pytest.mark.parametrize("dml, expected", [(6.59, "undecided"), (6.6, "possible"), (6.61, "possible")])
 def test_a_reached_level_stays_and_lists_what_could_raise_it(dml, expected):
-    # EFNS/PNS 2010 (Van den Bergh et al., Eur J Neurol 2010): (a) distal latency ≥ 150 % of ULN (median 4.4 ms
-    # → 6.6 ms) in ≥ 2 nerves is definite; one nerve is possible. The ulnar latency is not recorded: it could
-    # make (a) two nerves, so the level is kept and the ulnar latency listed; below the threshold it is undecided.
+    # EFNS/PNS 2010 (Van den Bergh et al., Eur J Neurol 2010): (a) distal latency ≥ 150 % of ULN
+    # (median 4.4 ms → 6.6 ms) in ≥ 2 nerves is definite; one nerve is possible. The ulnar latency
+    # is not recorded: it could make (a) two nerves, so the level is kept and the ulnar latency
+    # listed; below the threshold it is undecided.
     ulnar = Motor("ulnar", amplitudes=(9.0, 8.6, 8.4), durations=(5.5, 5.8, 6.0), dml=None)
     result = evaluate([Visit([Motor("median", dml=dml), ulnar])], ID)
     assert outcome(result) == expected
     assert ("ulnar", "dml") in _listed(result)
-    recorded = evaluate([Visit([Motor("median", dml=dml), Motor("ulnar", amplitudes=(9.0, 8.6, 8.4), durations=(5.5, 5.8, 6.0), dml=2.8)])], ID)
-    assert outcome(recorded) == ("not_met" if dml < 6.6 else "possible") and outcome(recorded, "undecided_items") == ()
+    recorded = evaluate(
+        [
+            Visit(
+                [
+                    Motor("median", dml=dml),
+                    Motor("ulnar", amplitudes=(9.0, 8.6, 8.4), durations=(5.5, 5.8, 6.0), dml=2.8),
+                ]
+            )
+        ],
+        ID,
+    )
+    assert (
+        outcome(recorded) == ("not_met" if dml < 6.6 else "possible")
+        and outcome(recorded, "undecided_items") == ()
+    )
 
 
 def test_not_applicable_items_never_leave_an_outcome_undecided():
-    # EFNS/PNS 2010: tibial probable block is excluded (restated table, Ann Clin Transl Neurol 2021, Table 2) and
-    # a distal CMAP below 20 % of LLN fails the block precondition — both settled, so "not met" stays
-    tibial = Motor("tibial", amplitudes=(10.0, 8.5), durations=(5.5, 6.5), dml=4.5, cv=46, f_latency=50, segment_mm=400)
+    # EFNS/PNS 2010: tibial probable block is excluded (restated table, Ann Clin Transl Neurol 2021, Table 2)
+    # and a distal CMAP below 20 % of LLN fails the block precondition — both settled, so "not met" stays
+    tibial = Motor(
+        "tibial", amplitudes=(10.0, 8.5), durations=(5.5, 6.5), dml=4.5, cv=46, f_latency=50, segment_mm=400
+    )
     low = Motor("median", amplitudes=(0.79, 0.3), durations=(5.5, 5.8), dml=3.8, cv=55, f_latency=28)
     result = evaluate([Visit([tibial])], ID)
     assert finding(result, "tibial", "probable_cb")["status"] == NOT_APPLICABLE

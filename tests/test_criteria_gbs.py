@@ -17,7 +17,17 @@ from __future__ import annotations
 import pandas as pd
 import pytest
 
-from criteria_cases import Motor, Sensory, Visit, evaluate, exact_velocity, finding, healthy_four_nerves, inexcitable, outcome
+from criteria_cases import (
+    Motor,
+    Sensory,
+    Visit,
+    evaluate,
+    exact_velocity,
+    finding,
+    healthy_four_nerves,
+    inexcitable,
+    outcome,
+)
 from tracker.criteria import engine
 from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, Settings
 from tracker.criteria.sets import _gbs
@@ -38,11 +48,32 @@ def ulnar(**kw) -> Motor:
 
 
 def fibular(**kw) -> Motor:
-    return Motor("fibular", **{"amplitudes": (5.0, 4.6, 4.5), "durations": (5.5, 6.0, 6.1), "dml": 4.5, "cv": 48, "f_latency": 48, **kw})
+    return Motor(
+        "fibular",
+        **{
+            "amplitudes": (5.0, 4.6, 4.5),
+            "durations": (5.5, 6.0, 6.1),
+            "dml": 4.5,
+            "cv": 48,
+            "f_latency": 48,
+            **kw,
+        },
+    )
 
 
 def tibial(**kw) -> Motor:
-    return Motor("tibial", **{"amplitudes": (10.0, 8.5), "durations": (5.5, 6.5), "dml": 4.5, "cv": 46, "f_latency": 50, "segment_mm": 400, **kw})
+    return Motor(
+        "tibial",
+        **{
+            "amplitudes": (10.0, 8.5),
+            "durations": (5.5, 6.5),
+            "dml": 4.5,
+            "cv": 46,
+            "f_latency": 50,
+            "segment_mm": 400,
+            **kw,
+        },
+    )
 
 
 def legs_and_ulnar_inexcitable() -> list:
@@ -77,7 +108,18 @@ def test_registered_and_shaped_as_the_contract_says(criteria):
 def test_hadden_table_marks_verified_features_and_memory_classes():
     # HADDEN: features verified (reference sheet [a:S16]); axonal/inexcitable/normal from memory ([b]).
     rows = {r.item: r for r in load(HADDEN).rows}
-    for item in ("cv", "cv_low_cmap", "cv_switch", "dml", "dml_low_cmap", "dml_switch", "cb", "cb_precondition", "f_latency", "one_nerve_floor"):
+    for item in (
+        "cv",
+        "cv_low_cmap",
+        "cv_switch",
+        "dml",
+        "dml_low_cmap",
+        "dml_switch",
+        "cb",
+        "cb_precondition",
+        "f_latency",
+        "one_nerve_floor",
+    ):
         assert rows[item].status == "verified", item
     for item in ("very_low_cmap", "axonal_low_cmap", *_gbs.NORMAL_ITEMS):
         assert rows[item].status == "memory", item
@@ -89,7 +131,11 @@ def test_rajabally_table_is_all_from_memory():
     # RAJABALLY — from memory, not verified: every row says so.
     table = load(RAJABALLY)
     assert {r.status for r in table.rows} == {"memory"}
-    assert all("J Neurol Neurosurg Psychiatry 2015;86:115–119" in r.source and "from memory, not verified" in r.source for r in table.rows)
+    assert all(
+        "J Neurol Neurosurg Psychiatry 2015;86:115–119" in r.source
+        and "from memory, not verified" in r.source
+        for r in table.rows
+    )
 
 
 # ---------------------------------------------------------------------------------------------------------
@@ -117,7 +163,10 @@ def test_hadden_velocity_below_85_percent_when_distal_cmap_is_under_half_the_lln
 def test_hadden_velocity_switch_at_half_the_lln(amplitude, expected):
     # HADDEN (verified): the 85 % branch needs distal CMAP < 50 % of LLN 4.0 mV = 2.0 mV; CV 42 m/s lies
     # between the branches (41.65 and 44.1 m/s).
-    assert status(HADDEN, median(amplitudes=(amplitude, amplitude * 0.95), **exact_velocity(42.0)), "cv") == expected
+    assert (
+        status(HADDEN, median(amplitudes=(amplitude, amplitude * 0.95), **exact_velocity(42.0)), "cv")
+        == expected
+    )
 
 
 @pytest.mark.parametrize("dml, expected", [(4.83, NOT_MET), (4.84, NOT_MET), (4.85, MET)], ids=EDGE)
@@ -182,7 +231,8 @@ def test_hadden_absent_f_waves_are_not_a_feature():
 
 
 def test_hadden_counts_tibial_block_as_published():
-    # HADDEN (verified): no tibial exclusion is written (reference sheet §10 Q14); decision: kept as published.
+    # HADDEN (verified): no tibial exclusion is written (reference sheet §10
+    # Q14); decision: kept as published.
     row = finding(run(HADDEN, [tibial(amplitudes=(10.0, 4.9))]), "tibial", "cb")
     assert row["status"] == MET and row["value"] == 51.0
 
@@ -280,7 +330,8 @@ def test_hadden_absent_f_waves_are_not_normal():
 
 
 def test_hadden_demyelinating_in_two_nerves():
-    # HADDEN (verified): ≥ 1 feature in each of ≥ 2 nerves — DML 5.0 > 4.84 ms (median), 3.7 > 3.63 ms (ulnar).
+    # HADDEN (verified): ≥ 1 feature in each of ≥ 2 nerves — DML 5.0 > 4.84 ms
+    # (median), 3.7 > 3.63 ms (ulnar).
     result = run(HADDEN, [median(dml=5.0), ulnar(dml=3.7), fibular(), tibial()])
     assert outcome(result) == "demyelinating"
     assert outcome(result, "rule") == "≥ 1 demyelinating feature in each of ≥ 2 nerves"
@@ -306,7 +357,9 @@ def test_hadden_two_features_in_one_nerve_need_all_others_inexcitable():
     others_inexcitable = run(HADDEN, [two_features, *legs_and_ulnar_inexcitable()])
     assert outcome(others_normal) == "equivocal"
     assert outcome(others_inexcitable) == "demyelinating"
-    assert outcome(others_inexcitable, "rule").startswith("≥ 2 demyelinating features in the only excitable nerve")
+    assert outcome(others_inexcitable, "rule").startswith(
+        "≥ 2 demyelinating features in the only excitable nerve"
+    )
 
 
 def test_hadden_two_features_in_a_one_nerve_study_are_not_enough():
@@ -315,12 +368,17 @@ def test_hadden_two_features_in_a_one_nerve_study_are_not_enough():
     assert outcome(result) == "equivocal"
 
 
-@pytest.mark.parametrize("amplitude, expected", [(0.39, "inexcitable"), (0.4, "demyelinating"), (0.41, "demyelinating")], ids=EDGE)
+@pytest.mark.parametrize(
+    "amplitude, expected", [(0.39, "inexcitable"), (0.4, "demyelinating"), (0.41, "demyelinating")], ids=EDGE
+)
 def test_hadden_one_nerve_rule_at_ten_percent_of_lln(amplitude, expected):
     # HADDEN (verified "> 10 % of LLN"; the < 10 % inexcitable rule from memory, not verified). Decision
     # (reference sheet §10 Q14): exactly 10 % of LLN (0.4 mV) counts as ≥ 10 %, so no value is left between
     # the rules. The median carries two features (DML 6.0 > 5.28 ms, F 40 > 37.2 ms); others inexcitable.
-    nerves = [median(dml=6.0, f_latency=40.0, amplitudes=(amplitude, amplitude * 0.9)), *legs_and_ulnar_inexcitable()]
+    nerves = [
+        median(dml=6.0, f_latency=40.0, amplitudes=(amplitude, amplitude * 0.9)),
+        *legs_and_ulnar_inexcitable(),
+    ]
     assert outcome(run(HADDEN, nerves)) == expected
 
 
@@ -332,7 +390,8 @@ def test_hadden_inexcitable_all_absent():
 
 
 def test_hadden_inexcitable_with_one_tiny_response():
-    # HADDEN (from memory, not verified): present in only one nerve, with distal CMAP < 10 % of LLN (0.3 < 0.4 mV).
+    # HADDEN (from memory, not verified): present in only one nerve, with distal
+    # CMAP < 10 % of LLN (0.3 < 0.4 mV).
     result = run(HADDEN, [median(amplitudes=(0.3, 0.28)), *legs_and_ulnar_inexcitable()])
     assert outcome(result) == "inexcitable"
     assert "< 10 % of LLN" in outcome(result, "rule")
@@ -341,7 +400,9 @@ def test_hadden_inexcitable_with_one_tiny_response():
 def test_hadden_inexcitable_needs_every_amplitude_recorded():
     # HADDEN (from memory, not verified): a nerve whose distal amplitude was not recorded is not "absent".
     # Nor is the study axonal: had the median been absent too, it would be inexcitable.
-    unknown = Motor("median", dml=None, cv=None, amplitudes=(None, None), durations=(None, None), f_latency=None)
+    unknown = Motor(
+        "median", dml=None, cv=None, amplitudes=(None, None), durations=(None, None), f_latency=None
+    )
     result = run(HADDEN, [unknown, *legs_and_ulnar_inexcitable()])
     assert finding(result, "median", "very_low_cmap")["status"] == NOT_EVALUABLE
     assert outcome(result) == "equivocal"
@@ -351,25 +412,45 @@ def test_hadden_inexcitable_needs_every_amplitude_recorded():
 def test_hadden_axonal():
     # HADDEN (axonal from memory, not verified; wording as in Health Sci Rep 2024): no demyelinating feature,
     # distal CMAP < 80 % of LLN in ≥ 2 nerves (median 2.0 < 3.2 mV, ulnar 3.0 < 4.8 mV).
-    result = run(HADDEN, [median(amplitudes=(2.0, 1.9)), ulnar(amplitudes=(3.0, 2.9, 2.8)), fibular(), tibial()])
+    result = run(
+        HADDEN, [median(amplitudes=(2.0, 1.9)), ulnar(amplitudes=(3.0, 2.9, 2.8)), fibular(), tibial()]
+    )
     assert outcome(result) == "axonal"
-    assert outcome(result, "rule") == "no demyelinating feature in any nerve and distal CMAP < 80 % of LLN in ≥ 2 nerves"
+    assert (
+        outcome(result, "rule")
+        == "no demyelinating feature in any nerve and distal CMAP < 80 % of LLN in ≥ 2 nerves"
+    )
 
 
-@pytest.mark.parametrize("amplitude, expected", [(3.19, "axonal"), (3.2, "equivocal"), (3.21, "equivocal")], ids=EDGE)
+@pytest.mark.parametrize(
+    "amplitude, expected", [(3.19, "axonal"), (3.2, "equivocal"), (3.21, "equivocal")], ids=EDGE
+)
 def test_hadden_axonal_needs_distal_cmap_below_80_percent_in_two_nerves(amplitude, expected):
-    # HADDEN (from memory, not verified): < 80 % of LLN 4.0 mV = 3.2 mV; the ulnar (3.0 mV) is the other nerve.
-    nerves = [median(amplitudes=(amplitude, amplitude * 0.95)), ulnar(amplitudes=(3.0, 2.9, 2.8)), fibular(), tibial()]
+    # HADDEN (from memory, not verified): < 80 % of LLN 4.0 mV = 3.2 mV; the
+    # ulnar (3.0 mV) is the other nerve.
+    nerves = [
+        median(amplitudes=(amplitude, amplitude * 0.95)),
+        ulnar(amplitudes=(3.0, 2.9, 2.8)),
+        fibular(),
+        tibial(),
+    ]
     result = run(HADDEN, nerves)
     assert outcome(result) == expected
     assert finding(result, "median", "axonal_low_cmap")["threshold"] == 3.2
 
 
-@pytest.mark.parametrize("amplitude, expected", [(0.39, "axonal"), (0.4, "equivocal"), (0.41, "equivocal")], ids=EDGE)
+@pytest.mark.parametrize(
+    "amplitude, expected", [(0.39, "axonal"), (0.4, "equivocal"), (0.41, "equivocal")], ids=EDGE
+)
 def test_hadden_axonal_allows_one_feature_in_a_nerve_below_ten_percent(amplitude, expected):
     # HADDEN (from memory, not verified): one feature allowed in one nerve if its distal CMAP < 10 % of LLN
     # (0.4 mV); the median DML 6.0 ms is that feature (> 5.28 ms); ulnar 3.0 mV is the second low nerve.
-    nerves = [median(dml=6.0, amplitudes=(amplitude, amplitude * 0.9)), ulnar(amplitudes=(3.0, 2.9, 2.8)), fibular(), tibial()]
+    nerves = [
+        median(dml=6.0, amplitudes=(amplitude, amplitude * 0.9)),
+        ulnar(amplitudes=(3.0, 2.9, 2.8)),
+        fibular(),
+        tibial(),
+    ]
     result = run(HADDEN, nerves)
     assert finding(result, "median", "dml")["status"] == MET
     assert outcome(result) == expected
@@ -491,7 +572,9 @@ def test_rajabally_distal_duration_cut_offs(nerve, cut_off, offset, expected):
     # Neurol 2010;17:356–363: median ≥ 6.6, ulnar ≥ 6.7, peroneal ≥ 7.6, tibial ≥ 8.8 ms, verified there).
     builders = {"median": median, "ulnar": ulnar, "fibular": fibular, "tibial": tibial}
     distal = round(cut_off + offset, 2)
-    nerve_test = builders[nerve](durations=(distal, distal + 0.5, distal + 0.6)[: 3 if nerve in ("ulnar", "fibular") else 2])
+    nerve_test = builders[nerve](
+        durations=(distal, distal + 0.5, distal + 0.6)[: 3 if nerve in ("ulnar", "fibular") else 2]
+    )
     result = run(RAJABALLY, [nerve_test])
     assert finding(result, nerve, "dcmap_duration")["status"] == expected
     assert finding(result, nerve, "dcmap_duration")["threshold"] == cut_off
@@ -512,7 +595,10 @@ def test_rajabally_two_nerves_with_core_parameters():
     nerves = [median(dml=6.7), ulnar(**exact_velocity(30.0, dml=2.8, sites=3)), fibular(), tibial()]
     result = run(RAJABALLY, nerves)
     assert outcome(result) == "demyelinating"
-    assert outcome(result, "rule") == "≥ 1 of conduction velocity, distal latency, F-wave latency in each of ≥ 2 nerves"
+    assert (
+        outcome(result, "rule")
+        == "≥ 1 of conduction velocity, distal latency, F-wave latency in each of ≥ 2 nerves"
+    )
 
 
 def test_rajabally_absent_f_waves_need_two_nerves_and_another_parameter():
@@ -522,7 +608,9 @@ def test_rajabally_absent_f_waves_need_two_nerves_and_another_parameter():
     with_other = run(RAJABALLY, [*absent_f, fibular(dml=10.0), tibial()])
     alone = run(RAJABALLY, [*absent_f, fibular(), tibial()])
     assert outcome(with_other) == "demyelinating"
-    assert outcome(with_other, "rule") == "absent F-waves in ≥ 2 nerves plus another parameter in another nerve"
+    assert (
+        outcome(with_other, "rule") == "absent F-waves in ≥ 2 nerves plus another parameter in another nerve"
+    )
     assert outcome(alone) == "equivocal"
 
 
@@ -534,7 +622,9 @@ def test_rajabally_block_needs_another_parameter_in_another_nerve():
     two_blocks = run(RAJABALLY, [block, ulnar(amplitudes=(9.0, 5.0, 4.9)), fibular(), tibial()])
     same_nerve = run(RAJABALLY, [median(amplitudes=(6.0, 2.9), dml=7.0), ulnar(), fibular(), tibial()])
     assert outcome(with_other) == "demyelinating"
-    assert outcome(with_other, "rule") == "conduction block in 1 nerve plus another parameter in another nerve"
+    assert (
+        outcome(with_other, "rule") == "conduction block in 1 nerve plus another parameter in another nerve"
+    )
     assert outcome(two_blocks) == "equivocal"
     assert outcome(same_nerve) == "equivocal"
 
@@ -548,7 +638,9 @@ def test_rajabally_absent_f_in_one_nerve_counts_as_another_parameter():
 
 def test_rajabally_dispersion_in_two_nerves():
     # RAJABALLY — from memory, not verified: duration increase > 30 % in ≥ 2 nerves.
-    two = run(RAJABALLY, [median(durations=(5.5, 7.5)), ulnar(durations=(5.5, 7.5, 7.6)), fibular(), tibial()])
+    two = run(
+        RAJABALLY, [median(durations=(5.5, 7.5)), ulnar(durations=(5.5, 7.5, 7.6)), fibular(), tibial()]
+    )
     one = run(RAJABALLY, [median(durations=(5.5, 7.5)), ulnar(), fibular(), tibial()])
     assert outcome(two) == "demyelinating"
     assert outcome(two, "rule") == "temporal dispersion in ≥ 2 nerves"
@@ -561,19 +653,29 @@ def test_rajabally_distal_duration_needs_another_parameter_in_another_nerve():
     with_other = run(RAJABALLY, [median(durations=(7.0, 7.4)), ulnar(dml=5.0), fibular(), tibial()])
     alone = run(RAJABALLY, [median(durations=(7.0, 7.4)), ulnar(), fibular(), tibial()])
     assert outcome(with_other) == "demyelinating"
-    assert outcome(with_other, "rule") == "distal CMAP duration in 1 nerve plus another parameter in another nerve"
+    assert (
+        outcome(with_other, "rule")
+        == "distal CMAP duration in 1 nerve plus another parameter in another nerve"
+    )
     assert outcome(alone) == "equivocal"
 
 
-@pytest.mark.parametrize("amplitude, expected", [(0.39, "inexcitable"), (0.4, "demyelinating"), (0.41, "demyelinating")], ids=EDGE)
+@pytest.mark.parametrize(
+    "amplitude, expected", [(0.39, "inexcitable"), (0.4, "demyelinating"), (0.41, "demyelinating")], ids=EDGE
+)
 def test_rajabally_one_nerve_rule_at_ten_percent_of_lln(amplitude, expected):
     # RAJABALLY — from memory, not verified: ≥ 2 parameters in one nerve if all others inexcitable and its
     # distal CMAP ≥ 10 % of LLN (0.4 mV). Median: DML 7.0 > 6.6 ms, F 47 > 46.5 ms (low-CMAP branch).
-    nerves = [median(dml=7.0, f_latency=47.0, amplitudes=(amplitude, amplitude * 0.9)), *legs_and_ulnar_inexcitable()]
+    nerves = [
+        median(dml=7.0, f_latency=47.0, amplitudes=(amplitude, amplitude * 0.9)),
+        *legs_and_ulnar_inexcitable(),
+    ]
     result = run(RAJABALLY, nerves)
     assert outcome(result) == expected
     if expected == "demyelinating":
-        assert outcome(result, "rule").startswith("≥ 2 of conduction velocity, distal latency, F-wave latency in the only excitable nerve")
+        assert outcome(result, "rule").startswith(
+            "≥ 2 of conduction velocity, distal latency, F-wave latency in the only excitable nerve"
+        )
 
 
 def test_rajabally_one_nerve_rule_counts_only_items_that_stand_alone():
@@ -609,7 +711,12 @@ def test_rajabally_dispersion_in_one_nerve_is_not_normal():
 def test_rajabally_axonal_notes_missing_demyelinating_findings():
     # RAJABALLY axonal class = Hadden's (from memory, not verified): demyelinating parameters are judged on
     # what was measured; the rule says how many could not be judged for missing data.
-    nerves = [median(amplitudes=(2.0, 1.9), f_latency=None), ulnar(amplitudes=(3.0, 2.9, 2.8)), fibular(), tibial()]
+    nerves = [
+        median(amplitudes=(2.0, 1.9), f_latency=None),
+        ulnar(amplitudes=(3.0, 2.9, 2.8)),
+        fibular(),
+        tibial(),
+    ]
     result = run(RAJABALLY, nerves)
     assert outcome(result) == "axonal"
     assert outcome(result, "rule").endswith("; 2 demyelinating finding(s) not evaluable for missing data")

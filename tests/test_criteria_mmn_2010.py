@@ -27,14 +27,18 @@ def median(areas, durations=(5.0, 5.5), amplitudes=(8.0, 4.0), **kw) -> Motor:
 
 def test_healthy_study_has_no_block():
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): a normal invented study has no definite or probable block
-    result = evaluate([Visit(healthy_four_nerves() + [Sensory("median"), Sensory("sural", amplitude=15)])], ID)
+    result = evaluate(
+        [Visit(healthy_four_nerves() + [Sensory("median"), Sensory("sural", amplitude=15)])], ID
+    )
     assert outcome(result) == "not_met"
     assert outcome(result, "sensory") == "normal"
     assert list(result.outcomes.columns) == ["visit_key", "outcome", "rule", "sensory", "undecided_items"]
     assert result.extra_keys == ("sensory",)
 
 
-@pytest.mark.parametrize("proximal_area, level", [(10.01, "probable"), (10.0, "definite"), (9.99, "definite")])
+@pytest.mark.parametrize(
+    "proximal_area, level", [(10.01, "probable"), (10.0, "definite"), (9.99, "definite")]
+)
 def test_definite_block_needs_half_the_area(proximal_area, level):
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): definite = area reduction ≥ 50 %. 20.0 → 10.01 / 10.0 / 9.99
     # mV·ms = 49.95 / 50.0 / 50.05 %. Just below 50 % the long forearm segment still gives probable (≥ 30 %).
@@ -46,10 +50,12 @@ def test_definite_block_needs_half_the_area(proximal_area, level):
     assert outcome(result) == level
 
 
-@pytest.mark.parametrize("proximal_duration, level", [(6.49, "definite"), (6.5, "definite"), (6.51, "probable")])
+@pytest.mark.parametrize(
+    "proximal_duration, level", [(6.49, "definite"), (6.5, "definite"), (6.51, "probable")]
+)
 def test_duration_increase_of_thirty_percent(proximal_duration, level):
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): definite needs duration increase ≤ 30 %; area ≥ 50 % with > 30 %
-    # is probable (ii). 5.0 → 6.49 / 6.5 / 6.51 ms = +29.8 / +30.0 / +30.2 %; area 20 → 8 = 60 %.
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): definite needs duration increase ≤ 30 %; area ≥ 50 %
+    # with > 30 % is probable (ii). 5.0 → 6.49 / 6.5 / 6.51 ms = +29.8 / +30.0 / +30.2 %; area 20 → 8 = 60 %.
     result = evaluate([Visit([median(areas=(20.0, 8.0), durations=(5.0, proximal_duration))])], ID)
     assert outcome(result) == level
     dispersed = finding(result, "median", "probable_cb_dispersed")["status"]
@@ -60,7 +66,9 @@ def test_duration_increase_of_thirty_percent(proximal_duration, level):
 def test_precondition_twenty_percent_of_lln(distal, status):
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): distal CMAP of the segment > 20 % of LLN and > 1 mV.
     # Ulnar LLN 6.0 mV: 20 % = 1.2 mV, which binds here (above 1 mV). Area 3.0 → 1.2 = 60 %.
-    ulnar = Motor("ulnar", amplitudes=(distal, 0.5, 0.5), areas=(3.0, 1.2, 1.2), durations=(5.0, 5.5, 5.6), dml=2.8)
+    ulnar = Motor(
+        "ulnar", amplitudes=(distal, 0.5, 0.5), areas=(3.0, 1.2, 1.2), durations=(5.0, 5.5, 5.6), dml=2.8
+    )
     row = finding(evaluate([Visit([ulnar])], ID), "ulnar", "definite_cb")
     assert row["status"] == status
     if status == NOT_EVALUABLE:
@@ -70,15 +78,21 @@ def test_precondition_twenty_percent_of_lln(distal, status):
 @pytest.mark.parametrize("distal, status", [(1.0, NOT_APPLICABLE), (1.01, MET)])
 def test_precondition_one_millivolt(distal, status):
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): > 1 mV. Median LLN 4.0 mV: 20 % = 0.8 mV, so 1 mV binds.
-    row = finding(evaluate([Visit([median(areas=(3.0, 1.2), amplitudes=(distal, 0.4))])], ID), "median", "definite_cb")
+    row = finding(
+        evaluate([Visit([median(areas=(3.0, 1.2), amplitudes=(distal, 0.4))])], ID), "median", "definite_cb"
+    )
     assert row["status"] == status
 
 
 def test_precondition_uses_the_cmap_at_the_distal_end_of_the_segment():
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): "distal CMAP of that segment". Elbow → axilla falls 60 % in area
-    # (5.0 → 2.0), but the CMAP at the elbow is 0.9 mV (≤ 1 mV) although the wrist CMAP is 8 mV.
-    low = Motor("median", labels=ARM, amplitudes=(8.0, 0.9, 0.4), areas=(20.0, 5.0, 2.0), durations=(5.0, 5.3, 5.5))
-    fine = Motor("median", labels=ARM, amplitudes=(8.0, 7.5, 3.0), areas=(20.0, 19.0, 7.6), durations=(5.0, 5.3, 5.5))
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): "distal CMAP of that segment". Elbow → axilla falls 60 % in
+    # area (5.0 → 2.0), but the CMAP at the elbow is 0.9 mV (≤ 1 mV) although the wrist CMAP is 8 mV.
+    low = Motor(
+        "median", labels=ARM, amplitudes=(8.0, 0.9, 0.4), areas=(20.0, 5.0, 2.0), durations=(5.0, 5.3, 5.5)
+    )
+    fine = Motor(
+        "median", labels=ARM, amplitudes=(8.0, 7.5, 3.0), areas=(20.0, 19.0, 7.6), durations=(5.0, 5.3, 5.5)
+    )
     low_result, fine_result = evaluate([Visit([low])], ID), evaluate([Visit([fine])], ID)
     # low: wrist → elbow is 75 % — a definite block there; the elbow → axilla segment is not evaluable
     assert finding(low_result, "median", "definite_cb")["segment"] == "wrist → elbow"
@@ -107,7 +121,14 @@ def test_probable_long_segment_block_needs_duration_within_thirty_percent():
 def test_probable_long_segment_block_is_for_upper_limb_nerves_only():
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): a 40 % area fall in the peroneal leg segment is below the 50 %
     # of definite block and not eligible for probable (i), which is for upper-limb nerves
-    fibular = Motor("fibular", amplitudes=(5.0, 3.0, 3.0), areas=(12.5, 7.5, 7.5), durations=(5.5, 5.8, 5.9), dml=4.5, cv=48)
+    fibular = Motor(
+        "fibular",
+        amplitudes=(5.0, 3.0, 3.0),
+        areas=(12.5, 7.5, 7.5),
+        durations=(5.5, 5.8, 5.9),
+        dml=4.5,
+        cv=48,
+    )
     result = evaluate([Visit([fibular])], ID)
     assert finding(result, "fibular", "probable_cb_long")["status"] == NOT_APPLICABLE
     assert "upper-limb" in finding(result, "fibular", "probable_cb_long")["reason"]
@@ -117,16 +138,21 @@ def test_probable_long_segment_block_is_for_upper_limb_nerves_only():
 def test_probable_block_needs_a_long_segment():
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): axilla → Erb's point is a short segment; 40 % there is neither
     # definite (< 50 %) nor probable (i) (not a long segment)
-    nerve = Motor("median", labels=("wrist", "elbow", "axilla", "erb"), amplitudes=(8.0, 7.8, 7.6, 4.5),
-                  areas=(20.0, 19.5, 19.0, 11.4), durations=(5.0, 5.2, 5.4, 5.6))
+    nerve = Motor(
+        "median",
+        labels=("wrist", "elbow", "axilla", "erb"),
+        amplitudes=(8.0, 7.8, 7.6, 4.5),
+        areas=(20.0, 19.5, 19.0, 11.4),
+        durations=(5.0, 5.2, 5.4, 5.6),
+    )
     result = evaluate([Visit([nerve])], ID)
     assert outcome(result) == "not_met"
     assert "short segment" in finding(result, "median", "probable_cb_long")["reason"]
 
 
 def test_precondition_binds_the_probable_items(monkeypatch):
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010) states > 20 % LLN and > 1 mV under definite block; project decision:
-    # it binds the probable items too. Median CMAP 1.0 mV, area 40 % over the forearm.
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010) states > 20 % LLN and > 1 mV under definite block; project
+    # decision: it binds the probable items too. Median CMAP 1.0 mV, area 40 % over the forearm.
     nerve = median(areas=(2.5, 1.5), amplitudes=(1.0, 0.6))
     bound = evaluate([Visit([nerve])], ID)
     assert finding(bound, "median", "probable_cb_long")["status"] == NOT_APPLICABLE
@@ -140,7 +166,9 @@ def test_precondition_binds_the_probable_items(monkeypatch):
 def test_block_across_the_ulnar_elbow_is_excluded():
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): block must lie outside common entrapment sites. 70 % area fall
     # below → above the elbow only; the forearm segment is normal.
-    ulnar = Motor("ulnar", amplitudes=(9.0, 8.8, 2.6), areas=(25.0, 24.5, 7.5), durations=(5.5, 5.7, 5.9), dml=2.8)
+    ulnar = Motor(
+        "ulnar", amplitudes=(9.0, 8.8, 2.6), areas=(25.0, 24.5, 7.5), durations=(5.5, 5.7, 5.9), dml=2.8
+    )
     result = evaluate([Visit([ulnar])], ID)
     row = finding(result, "ulnar", "definite_cb")
     assert row["status"] == NOT_MET
@@ -150,30 +178,55 @@ def test_block_across_the_ulnar_elbow_is_excluded():
 
 
 def test_block_across_the_fibular_head_is_excluded():
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): peroneal fibular head is an entrapment site (60 % area fall there)
-    fibular = Motor("fibular", amplitudes=(5.0, 4.8, 2.0), areas=(12.5, 12.0, 4.8), durations=(5.5, 5.8, 5.9), dml=4.5, cv=48)
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): peroneal fibular head is an
+    # entrapment site (60 % area fall there)
+    fibular = Motor(
+        "fibular",
+        amplitudes=(5.0, 4.8, 2.0),
+        areas=(12.5, 12.0, 4.8),
+        durations=(5.5, 5.8, 5.9),
+        dml=4.5,
+        cv=48,
+    )
     assert outcome(evaluate([Visit([fibular])], ID)) == "not_met"
 
 
 def test_segment_of_unknown_kind_is_not_evaluable():
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): wrist → above elbow crosses the elbow; entrapment cannot be ruled out
-    ulnar = Motor("ulnar", amplitudes=(8.0, 3.0), areas=(20.0, 7.5), durations=(5.5, 5.8), labels=("wrist", "above_elbow"), dml=2.8)
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): wrist → above elbow crosses the
+    # elbow; entrapment cannot be ruled out
+    ulnar = Motor(
+        "ulnar",
+        amplitudes=(8.0, 3.0),
+        areas=(20.0, 7.5),
+        durations=(5.5, 5.8),
+        labels=("wrist", "above_elbow"),
+        dml=2.8,
+    )
     row = finding(evaluate([Visit([ulnar])], ID), "ulnar", "definite_cb")
     assert row["status"] == NOT_EVALUABLE
     assert "cannot be ruled out" in row["reason"]
 
 
 def test_tibial_nerve_is_not_named_for_definite_block():
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): definite block "whatever the segment length (median, ulnar, peroneal)"
-    tibial = Motor("tibial", amplitudes=(10.0, 4.0), areas=(25.0, 10.0), durations=(5.5, 6.0), cv=46, segment_mm=400, dml=4.5)
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): definite block "whatever the segment
+    # length (median, ulnar, peroneal)"
+    tibial = Motor(
+        "tibial",
+        amplitudes=(10.0, 4.0),
+        areas=(25.0, 10.0),
+        durations=(5.5, 6.0),
+        cv=46,
+        segment_mm=400,
+        dml=4.5,
+    )
     result = evaluate([Visit([tibial])], ID)
     assert finding(result, "tibial", "definite_cb")["status"] == NOT_APPLICABLE
     assert outcome(result) == "not_met"
 
 
 def test_missing_area_is_not_evaluable_even_with_an_amplitude_drop():
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010) defines block by negative-peak area; amplitude 8 → 2 mV (75 %) alone
-    # does not decide it, and the visit is not silently normal
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010) defines block by negative-peak area; amplitude 8 → 2 mV (75 %)
+    # alone does not decide it, and the visit is not silently normal
     result = evaluate([Visit([median(areas=(None, None), amplitudes=(8.0, 2.0))])], ID)
     row = finding(result, "median", "definite_cb")
     assert row["status"] == NOT_EVALUABLE
@@ -181,11 +234,14 @@ def test_missing_area_is_not_evaluable_even_with_an_amplitude_drop():
     # DESIGN.md §5: the area could show a block, so the outcome is undecided, never "not met"
     assert outcome(result) == "undecided"
     assert "undecided" in outcome(result, "rule")
-    assert [(f["nerve"], f["item"]) for f in outcome(result, "undecided_items")][:1] == [("median", "definite_cb")]
+    assert [(f["nerve"], f["item"]) for f in outcome(result, "undecided_items")][:1] == [
+        ("median", "definite_cb")
+    ]
 
 
 def test_missing_duration_matters_only_once_the_area_criterion_is_reached():
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): the level above 50 % area depends on duration (≤ 30 % or > 30 %)
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): the level above 50 % area
+    # depends on duration (≤ 30 % or > 30 %)
     reached = evaluate([Visit([median(areas=(20.0, 8.0), durations=(None, None))])], ID)
     short = evaluate([Visit([median(areas=(20.0, 18.0), durations=(None, None))])], ID)
     assert finding(reached, "median", "definite_cb")["status"] == NOT_EVALUABLE
@@ -195,24 +251,47 @@ def test_missing_duration_matters_only_once_the_area_criterion_is_reached():
 
 def test_no_proximal_stimulation_is_not_evaluable():
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): block needs proximal versus distal stimulation
-    row = finding(evaluate([Visit([Motor("median", amplitudes=(8.0,), durations=(5.5,))])], ID), "median", "definite_cb")
+    row = finding(
+        evaluate([Visit([Motor("median", amplitudes=(8.0,), durations=(5.5,))])], ID), "median", "definite_cb"
+    )
     assert row["status"] == NOT_EVALUABLE
     assert "no proximal stimulation" in row["reason"]
 
 
 def test_invented_demo_patient_left_ulnar_forearm_block():
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010). Invented demo patient DEMO-04, first visit (demo_data/measurements.csv):
-    # left ulnar wrist 7.5 mV, area 26.7 mV·ms, duration 6.4 ms, latency 3.00 ms; below elbow 2.6 mV, 10.0 mV·ms,
-    # 7.4 ms, 7.47 ms (235 mm); above elbow 2.5 mV, 10.0 mV·ms, 7.7 ms, 9.57 ms (112 mm).
-    # By hand: amplitude (7.5 − 2.6) / 7.5 = 65.3 %; area (26.7 − 10.0) / 26.7 = 16.7 / 26.7 = 62.55 % (≥ 50 %);
-    # duration (7.4 − 6.4) / 6.4 = +15.6 % (≤ 30 %); CMAP at the wrist 7.5 mV > 1.2 mV (20 % of 6.0) and > 1 mV
-    # → definite block over wrist → below elbow. Across the elbow the area does not fall (10.0 → 10.0).
-    ulnar = Motor("ulnar", side="left", latencies=(3.00, 7.47, 9.57), amplitudes=(7.5, 2.6, 2.5), durations=(6.4, 7.4, 7.7),
-                  areas=(26.7, 10.0, 10.0), segment_mm=235, f_latency=31.2)
-    other = Motor("ulnar", side="right", latencies=(2.76, 6.93, 8.80), amplitudes=(9.4, 9.3, 9.0), durations=(5.7, 6.0, 6.1),
-                  areas=(29.8, 29.9, 29.3), segment_mm=235, f_latency=29.8)
-    sensory = [Sensory("median", side="left", amplitude=27.7), Sensory("ulnar", side="left", amplitude=31.8),
-               Sensory("ulnar", amplitude=31.8), Sensory("sural", amplitude=15.1)]
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010). Invented demo patient DEMO-04, first visit
+    # (demo_data/measurements.csv): left ulnar wrist 7.5 mV, area 26.7 mV·ms, duration 6.4 ms,
+    # latency 3.00 ms; below elbow 2.6 mV, 10.0 mV·ms, 7.4 ms, 7.47 ms (235 mm); above elbow 2.5 mV,
+    # 10.0 mV·ms, 7.7 ms, 9.57 ms (112 mm). By hand: amplitude (7.5 − 2.6) / 7.5 = 65.3 %; area
+    # (26.7 − 10.0) / 26.7 = 16.7 / 26.7 = 62.55 % (≥ 50 %); duration (7.4 − 6.4) / 6.4 = +15.6 % (≤ 30 %);
+    # CMAP at the wrist 7.5 mV > 1.2 mV (20 % of 6.0) and > 1 mV → definite block over wrist → below elbow.
+    # Across the elbow the area does not fall (10.0 → 10.0).
+    ulnar = Motor(
+        "ulnar",
+        side="left",
+        latencies=(3.00, 7.47, 9.57),
+        amplitudes=(7.5, 2.6, 2.5),
+        durations=(6.4, 7.4, 7.7),
+        areas=(26.7, 10.0, 10.0),
+        segment_mm=235,
+        f_latency=31.2,
+    )
+    other = Motor(
+        "ulnar",
+        side="right",
+        latencies=(2.76, 6.93, 8.80),
+        amplitudes=(9.4, 9.3, 9.0),
+        durations=(5.7, 6.0, 6.1),
+        areas=(29.8, 29.9, 29.3),
+        segment_mm=235,
+        f_latency=29.8,
+    )
+    sensory = [
+        Sensory("median", side="left", amplitude=27.7),
+        Sensory("ulnar", side="left", amplitude=31.8),
+        Sensory("ulnar", amplitude=31.8),
+        Sensory("sural", amplitude=15.1),
+    ]
     result = evaluate([Visit([ulnar, other] + sensory, patient="DEMO-04", visit_date="2024-02-20")], ID)
     row = finding(result, "ulnar", "definite_cb", side="left")
     assert row["status"] == MET
@@ -226,8 +305,8 @@ def test_invented_demo_patient_left_ulnar_forearm_block():
 
 @pytest.mark.parametrize("snap, key", [(19.9, "abnormal"), (20.0, "normal"), (20.1, "normal")])
 def test_sensory_key_is_snap_amplitude_at_least_lln(snap, key):
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): normal SNAP amplitudes (from memory, not verified for this guideline);
-    # median SNAP LLN 20 µV. Reported beside the block level, which it does not change.
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): normal SNAP amplitudes (from memory, not verified for this
+    # guideline); median SNAP LLN 20 µV. Reported beside the block level, which it does not change.
     nerves = [median(areas=(20.0, 8.0)), Sensory("median", amplitude=snap), Sensory("sural", amplitude=15)]
     result = evaluate([Visit(nerves)], ID)
     assert outcome(result, "sensory") == key
@@ -235,11 +314,25 @@ def test_sensory_key_is_snap_amplitude_at_least_lln(snap, key):
 
 
 def test_sensory_key_not_evaluable_without_sensory_nerves_or_values():
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): no sensory study → the normal-sensory requirement cannot be judged
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): no sensory study → the normal-sensory
+    # requirement cannot be judged
     assert outcome(evaluate([Visit([median(areas=(20.0, 19.0))])], ID), "sensory") == "not_evaluable"
-    missing = evaluate([Visit([median(areas=(20.0, 19.0)), Sensory("median", amplitude=None), Sensory("sural", amplitude=15)])], ID)
+    missing = evaluate(
+        [
+            Visit(
+                [
+                    median(areas=(20.0, 19.0)),
+                    Sensory("median", amplitude=None),
+                    Sensory("sural", amplitude=15),
+                ]
+            )
+        ],
+        ID,
+    )
     assert outcome(missing, "sensory") == "not_evaluable"
-    dead = evaluate([Visit([median(areas=(20.0, 19.0)), Sensory("sural", amplitude=0)])], ID)  # no response = a finding
+    dead = evaluate(
+        [Visit([median(areas=(20.0, 19.0)), Sensory("sural", amplitude=0)])], ID
+    )  # no response = a finding
     assert outcome(dead, "sensory") == "abnormal"
 
 
@@ -255,7 +348,9 @@ def test_cold_limb_exclusion_setting_applies():
 
 def test_one_finding_per_nerve_and_item():
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): per-nerve findings carry the deciding segment
-    ulnar = Motor("ulnar", amplitudes=(9.0, 8.8, 8.6), areas=(25.0, 24.5, 24.0), durations=(5.5, 5.7, 5.9), dml=2.8)
+    ulnar = Motor(
+        "ulnar", amplitudes=(9.0, 8.8, 8.6), areas=(25.0, 24.5, 24.0), durations=(5.5, 5.7, 5.9), dml=2.8
+    )
     result = evaluate([Visit([ulnar, Motor("ulnar", side="left", amplitudes=(9.0, 8.8, 8.6), dml=2.8)])], ID)
     motor = result.findings[result.findings["modality"] == "motor"]
     assert len(motor) == 6
@@ -270,8 +365,9 @@ def test_visit_without_proximal_stimulation_says_so():
 
 
 def test_amplitude_drop_without_area_is_undecided_not_negative():
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010) defines block by negative-peak area; a 56.7 % amplitude drop
-    # (6.0 → 2.6 mV, invented) with no area recorded could be a definite block (area ≥ 50 %): undecided, listed
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010) defines block by negative-peak area; a 56.7 %
+    # amplitude drop (6.0 → 2.6 mV, invented) with no area recorded could be a definite
+    # block (area ≥ 50 %): undecided, listed
     result = evaluate([Visit([median(areas=(None, None), amplitudes=(6.0, 2.6))])], ID)
     assert outcome(result) == "undecided"
     assert ("median", "definite_cb") in {(f["nerve"], f["item"]) for f in outcome(result, "undecided_items")}
@@ -282,18 +378,20 @@ def test_amplitude_drop_without_area_is_undecided_not_negative():
 
 def test_probable_block_stays_and_lists_the_segment_that_could_be_definite():
     # EFNS/PNS MMN (J Peripher Nerv Syst 2010): a reached level is kept while missing data could raise it.
-    # Median forearm area 40 % (probable (i), long upper-limb segment) and the ulnar forearm area missing: that
-    # segment could be definite (≥ 50 %), so "probable" stays with it listed. Invented values.
-    ulnar = Motor("ulnar", amplitudes=(9.0, 3.0, 3.0), areas=(25.0, None, None), durations=(5.5, 5.7, 5.9), dml=2.8)
+    # Median forearm area 40 % (probable (i), long upper-limb segment) and the ulnar forearm area missing:
+    # that segment could be definite (≥ 50 %), so "probable" stays with it listed. Invented values.
+    ulnar = Motor(
+        "ulnar", amplitudes=(9.0, 3.0, 3.0), areas=(25.0, None, None), durations=(5.5, 5.7, 5.9), dml=2.8
+    )
     result = evaluate([Visit([median(areas=(20.0, 12.0)), ulnar])], ID)
     assert outcome(result) == "probable"
     assert ("ulnar", "definite_cb") in {(f["nerve"], f["item"]) for f in outcome(result, "undecided_items")}
 
 
 def test_closest_miss_ignores_the_snap_check():
-    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): the sensory nerve check supports the diagnosis but cannot change
-    # the conduction-block level, so it is never the closest miss. Invented: median SNAP 19.9 µV just below
-    # LLN 20 µV (a near miss of the SNAP item) and a forearm area drop of 10 % (far from 30 %).
+    # EFNS/PNS MMN (J Peripher Nerv Syst 2010): the sensory nerve check supports the diagnosis but cannot
+    # change the conduction-block level, so it is never the closest miss. Invented: median SNAP 19.9 µV just
+    # below LLN 20 µV (a near miss of the SNAP item) and a forearm area drop of 10 % (far from 30 %).
     from tracker.criteria import engine
 
     result = evaluate([Visit([median(areas=(20.0, 18.0)), Sensory("median", amplitude=19.9)])], ID)

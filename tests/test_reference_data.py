@@ -27,7 +27,16 @@ def test_every_site_belongs_to_a_known_nerve_and_modality():
 
 def test_design_contract_nerve_names_are_known():
     # DESIGN.md §4.1 lists these names and the peroneal alias.
-    for word in ("median", "ulnar", "fibular", "peroneal", "tibial", "radial", "sural", "superficial_fibular"):
+    for word in (
+        "median",
+        "ulnar",
+        "fibular",
+        "peroneal",
+        "tibial",
+        "radial",
+        "sural",
+        "superficial_fibular",
+    ):
         assert catalogue.canonical_nerve(word) is not None
     assert catalogue.canonical_nerve("Peroneal") == "fibular"
 

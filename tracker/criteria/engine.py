@@ -62,13 +62,19 @@ def evaluate(
     return results
 
 
-def temperature_warnings(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
+def temperature_warnings(
+    visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits: pd.DataFrame
+) -> pd.DataFrame:
     """Nerve tests of ``visits`` recorded from a limb colder than the guideline minimum (no correction is
     applied). Tests of other visits in ``tests`` are ignored."""
     tests = tests[tests["visit_key"].isin(visits["visit_key"])]
     nerves, _ = features.build(visits, tests, sites[sites["test_key"].isin(tests["test_key"])], limits)
     cold = nerves[nerves["cold"].fillna(False).astype(bool)]
     minimums = features.temperature_minimums()
+
+    def checked(limb: str) -> str:
+        return "from memory, not verified" if minimums.get(limb, (0, ""))[1] == "memory" else "verified"
+
     return pd.DataFrame(
         {
             "visit_key": cold["visit_key"],
@@ -79,9 +85,16 @@ def temperature_warnings(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.Da
             "minimum_c": cold["temperature_minimum_c"],
             "message": [
                 f"{n} {s} {m}: limb temperature {t:g} °C is below the guideline minimum of {mn:g} °C "
-                f"({'from memory, not verified' if minimums.get(limb, (0, ''))[1] == 'memory' else 'verified'}); "
+                f"({checked(limb)}); "
                 "values kept, no correction applied"
-                for n, s, m, t, mn, limb in zip(cold["nerve"], cold["side"], cold["modality"], cold["temperature_c"], cold["temperature_minimum_c"], cold["limb"])
+                for n, s, m, t, mn, limb in zip(
+                    cold["nerve"],
+                    cold["side"],
+                    cold["modality"],
+                    cold["temperature_c"],
+                    cold["temperature_minimum_c"],
+                    cold["limb"],
+                )
             ],
         }
     ).reset_index(drop=True)
@@ -91,12 +104,16 @@ def closest_miss(result: SetResult) -> pd.DataFrame:
     """For each visit where the set is not met (or undecided): the not-met finding nearest its threshold
     (relative), among the items that can change the outcome (``SetResult.outcome_items``)."""
     not_met_visits = result.outcomes.loc[result.outcomes["outcome"].isin(["not_met", UNDECIDED]), "visit_key"]
-    findings = result.findings[(result.findings["status"] == NOT_MET) & result.findings["visit_key"].isin(not_met_visits)]
+    findings = result.findings[
+        (result.findings["status"] == NOT_MET) & result.findings["visit_key"].isin(not_met_visits)
+    ]
     if result.outcome_items:
         findings = findings[findings["item"].isin(result.outcome_items)]
     # Only findings whose own value falls short (margin > 0): a value past its threshold that is not met
     # because another condition failed is no "near miss".
-    findings = findings[findings["threshold"].notna() & (findings["margin"] > 0) & (findings["threshold"] != 0)].copy()
+    findings = findings[
+        findings["threshold"].notna() & (findings["margin"] > 0) & (findings["threshold"] != 0)
+    ].copy()
     if findings.empty:
         return findings.assign(relative_margin=pd.Series(dtype=float), text=pd.Series(dtype=object))
     findings["relative_margin"] = (findings["margin"] / findings["threshold"].abs()).abs()
@@ -109,8 +126,8 @@ def describe_miss(row) -> str:
     direction = "above" if row.comparator in ("le", "lt") else "below"
     where = f" ({row.segment})" if isinstance(row.segment, str) and row.segment else ""
     return (
-        f"{row.nerve} {row.side} {row.parameter}{where} {row.value:.1f} {row.unit}, "
-        f"{abs(row.margin):.1f} {row.unit} {direction} the {row.threshold:.1f} {row.unit} threshold ({row.item})"
+        f"{row.nerve} {row.side} {row.parameter}{where} {row.value:.1f} {row.unit}, {abs(row.margin):.1f} "
+        f"{row.unit} {direction} the {row.threshold:.1f} {row.unit} threshold ({row.item})"
     )
 
 
@@ -127,14 +144,23 @@ def changes_between_visits(visits: pd.DataFrame, result: SetResult) -> pd.DataFr
     findings = result.findings[["visit_key", *key, "status", "value", "unit", "parameter"]]
     pairs = order.dropna(subset=["previous_key"])
     current = findings.merge(pairs[["visit_key", "previous_key", "patient", "visit_date"]], on="visit_key")
-    previous = findings.rename(columns={"visit_key": "previous_key", "status": "previous_status", "value": "previous_value"})
-    merged = current.merge(previous[["previous_key", *key, "previous_status", "previous_value"]], on=["previous_key", *key])
+    previous = findings.rename(
+        columns={"visit_key": "previous_key", "status": "previous_status", "value": "previous_value"}
+    )
+    merged = current.merge(
+        previous[["previous_key", *key, "previous_status", "previous_value"]], on=["previous_key", *key]
+    )
     status, previous = merged["status"], merged["previous_status"]
     turned = merged[
-        ((status == MET) & previous.isin([NOT_MET, NOT_EVALUABLE])) | (status.isin([NOT_MET, NOT_EVALUABLE]) & (previous == MET))
+        ((status == MET) & previous.isin([NOT_MET, NOT_EVALUABLE]))
+        | (status.isin([NOT_MET, NOT_EVALUABLE]) & (previous == MET))
     ].copy()
     turned["change"] = np.select(
-        [(turned["status"] == MET) & (turned["previous_status"] == NOT_MET), turned["status"] == MET, turned["status"] == NOT_MET],
+        [
+            (turned["status"] == MET) & (turned["previous_status"] == NOT_MET),
+            turned["status"] == MET,
+            turned["status"] == NOT_MET,
+        ],
         ["turned met", "turned met (was not evaluable)", "turned not met"],
         default="met → not evaluable (want of data)",
     )
@@ -144,14 +170,20 @@ def changes_between_visits(visits: pd.DataFrame, result: SetResult) -> pd.DataFr
 def outcome_changes(visits: pd.DataFrame, result: SetResult) -> pd.DataFrame:
     """Per visit with a previous visit of the same patient whose outcome differs: ``visit_key``,
     ``previous_outcome``, ``outcome`` (e.g. definite → undecided)."""
-    order = visits[["visit_key", "patient", "visit_date"]].drop_duplicates("visit_key").sort_values(["patient", "visit_date"])
+    order = (
+        visits[["visit_key", "patient", "visit_date"]]
+        .drop_duplicates("visit_key")
+        .sort_values(["patient", "visit_date"])
+    )
     order["previous_key"] = order.groupby("patient")["visit_key"].shift(1)
     outcome = result.outcomes.drop_duplicates("visit_key").set_index("visit_key")["outcome"]
     pairs = order.dropna(subset=["previous_key"])
     frame = pd.DataFrame(
         {
             "visit_key": pairs["visit_key"].to_numpy(),
-            "previous_outcome": outcome.reindex(pairs["previous_key"].astype(pairs["visit_key"].dtype)).to_numpy(),
+            "previous_outcome": outcome.reindex(
+                pairs["previous_key"].astype(pairs["visit_key"].dtype)
+            ).to_numpy(),
             "outcome": outcome.reindex(pairs["visit_key"]).to_numpy(),
         }
     )

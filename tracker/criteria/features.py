@@ -28,10 +28,29 @@ from tracker.domain.catalogue import nerves as nerve_catalogue
 from tracker.domain.conduction import quantise_array
 
 PATH_COLUMNS = [
-    "visit_key", "test_key", "nerve", "side", "limb", "site_order", "label", "distance_mm", "distal_amplitude",
-    "amplitude_reduction_pct", "area_reduction_pct", "duration_increase_pct", "segment_distal_amplitude",
-    "segment_amplitude_reduction_pct", "segment_area_reduction_pct", "segment_duration_increase_pct",
-    "segment_velocity", "segment_kind", "long_segment", "segment", "path_outside_entrapment", "path_standard", "path",
+    "visit_key",
+    "test_key",
+    "nerve",
+    "side",
+    "limb",
+    "site_order",
+    "label",
+    "distance_mm",
+    "distal_amplitude",
+    "amplitude_reduction_pct",
+    "area_reduction_pct",
+    "duration_increase_pct",
+    "segment_distal_amplitude",
+    "segment_amplitude_reduction_pct",
+    "segment_area_reduction_pct",
+    "segment_duration_increase_pct",
+    "segment_velocity",
+    "segment_kind",
+    "long_segment",
+    "segment",
+    "path_outside_entrapment",
+    "path_standard",
+    "path",
 ]
 
 
@@ -49,7 +68,10 @@ def segment_kinds() -> dict[tuple[str, str, str], tuple[str, bool]]:
 def temperature_minimums() -> dict[str, tuple[float, str, str]]:
     """limb → (minimum °C, status, source)."""
     text = resources.files("tracker.criteria.tables").joinpath("temperature.csv").read_text(encoding="utf-8")
-    return {r["limb"]: (float(r["minimum_c"]), r["status"], r["source"]) for r in csv.DictReader(text.splitlines())}
+    return {
+        r["limb"]: (float(r["minimum_c"]), r["status"], r["source"])
+        for r in csv.DictReader(text.splitlines())
+    }
 
 
 def _pct_change(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
@@ -58,7 +80,9 @@ def _pct_change(numerator: np.ndarray, denominator: np.ndarray) -> np.ndarray:
     return quantise_array(result)
 
 
-def build(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+def build(
+    visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits: pd.DataFrame
+) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Return ``(nerves, paths)``; see the module docstring."""
     # Word columns become plain objects first, so that nothing below converts them back and forth.
     visits = _plain_text(visits[["visit_key", "age_years", "height_cm", "sex"]].copy(deep=False))
@@ -69,7 +93,9 @@ def build(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits
     catalogue = nerve_catalogue()
     nerve = nerves["nerve"].to_numpy(dtype=object)
     limbs = {n: info.limb for n, info in catalogue.items()}
-    limb = rules.per_distinct(lambda name: limbs.get(name, np.nan) if isinstance(name, str) else np.nan, nerve)
+    limb = rules.per_distinct(
+        lambda name: limbs.get(name, np.nan) if isinstance(name, str) else np.nan, nerve
+    )
     nerves["limb"] = _text(limb, nerves.index)
     distal = first.reindex(nerves["test_key"])
     nerves["distal_latency_ms"] = distal["latency_ms"].to_numpy(dtype=float)
@@ -80,10 +106,14 @@ def build(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits
     nerves["no_response"] = (nerves["distal_amplitude"] == 0) & nerves["distal_latency_ms"].isna()
     with np.errstate(invalid="ignore", divide="ignore"):
         sensory_cv = distal["distance_mm"].to_numpy(dtype=float) / distal["latency_ms"].to_numpy(dtype=float)
-    nerves["sensory_cv"] = np.where(nerves["modality"].to_numpy(dtype=object) == "sensory", quantise_array(sensory_cv), np.nan)
+    nerves["sensory_cv"] = np.where(
+        nerves["modality"].to_numpy(dtype=object) == "sensory", quantise_array(sensory_cv), np.nan
+    )
     nerves["f_absent"] = nerves["f_absent"].fillna(False).astype(bool)
     minimums = {limb_name: value[0] for limb_name, value in temperature_minimums().items()}
-    minimum = rules.per_distinct(lambda name: minimums.get(name, np.nan) if isinstance(name, str) else np.nan, limb).astype(float)
+    minimum = rules.per_distinct(
+        lambda name: minimums.get(name, np.nan) if isinstance(name, str) else np.nan, limb
+    ).astype(float)
     nerves["temperature_minimum_c"] = minimum
     with np.errstate(invalid="ignore"):
         nerves["cold"] = nerves["temperature_c"].to_numpy(dtype=float) < minimum
@@ -104,11 +134,24 @@ def build(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits
 
 
 def _text(values: np.ndarray, index: pd.Index) -> pd.Series:
-    """A word column as plain objects (assigning a bare object array would make pandas infer a string type)."""
+    """A word column as plain objects (assigning a bare object array would
+    make pandas infer a string type)."""
     return pd.Series(values, index=index, dtype=object)
 
 
-TEXT_COLUMNS = ("nerve", "side", "modality", "limb", "label", "distal_label", "segment_kind", "segment", "path", "sex", "recording_site")
+TEXT_COLUMNS = (
+    "nerve",
+    "side",
+    "modality",
+    "limb",
+    "label",
+    "distal_label",
+    "segment_kind",
+    "segment",
+    "path",
+    "sex",
+    "recording_site",
+)
 
 
 def _plain_text(frame: pd.DataFrame) -> pd.DataFrame:
@@ -124,11 +167,17 @@ def _plain_text(frame: pd.DataFrame) -> pd.DataFrame:
 
 def _paths(sites: pd.DataFrame, nerves: pd.DataFrame) -> pd.DataFrame:
     """One row per motor nerve test and proximal site (site_order ≥ 2), sites sorted distal first."""
-    motor_tests = nerves.loc[nerves["modality"] == "motor", ["test_key", "visit_key", "nerve", "side", "limb"]]
-    motor = sites.merge(motor_tests, on="test_key", how="inner").sort_values(["test_key", "site_order"], kind="stable")
+    motor_tests = nerves.loc[
+        nerves["modality"] == "motor", ["test_key", "visit_key", "nerve", "side", "limb"]
+    ]
+    motor = sites.merge(motor_tests, on="test_key", how="inner").sort_values(
+        ["test_key", "site_order"], kind="stable"
+    )
     motor = motor.reset_index(drop=True)
     if motor.empty:
-        return pd.DataFrame(columns=PATH_COLUMNS).astype({"site_order": int, "path_outside_entrapment": bool, "path_standard": bool})
+        return pd.DataFrame(columns=PATH_COLUMNS).astype(
+            {"site_order": int, "path_outside_entrapment": bool, "path_standard": bool}
+        )
     keys = motor["test_key"].to_numpy()
     same = keys[1:] == keys[:-1]
     previous = np.r_[False, same]
@@ -157,12 +206,18 @@ def _paths(sites: pd.DataFrame, nerves: pd.DataFrame) -> pd.DataFrame:
     duration = motor["duration_ms"].to_numpy(dtype=float)
     latency = motor["latency_ms"].to_numpy(dtype=float)
     labels = motor["label"].to_numpy(dtype=object)
-    base_amplitude, base_area, base_duration = (first_present(v, ~np.isnan(v))[index] for v in (amplitude, area, duration))
+    base_amplitude, base_area, base_duration = (
+        first_present(v, ~np.isnan(v))[index] for v in (amplitude, area, duration)
+    )
     base_label = first_present(labels, pd.notna(labels))[index]
-    prev_amplitude, prev_area, prev_duration, prev_latency = (shifted(v)[index] for v in (amplitude, area, duration, latency))
+    prev_amplitude, prev_area, prev_duration, prev_latency = (
+        shifted(v)[index] for v in (amplitude, area, duration, latency)
+    )
     prev_label = shifted(labels)[index]
 
-    paths = motor.loc[previous, ["visit_key", "test_key", "nerve", "side", "limb", "site_order", "label", "distance_mm"]].copy()
+    paths = motor.loc[
+        previous, ["visit_key", "test_key", "nerve", "side", "limb", "site_order", "label", "distance_mm"]
+    ].copy()
     paths["distal_amplitude"] = base_amplitude
     # Change from the distal site (site 1) to this site.
     paths["amplitude_reduction_pct"] = _pct_change(base_amplitude - amplitude[index], base_amplitude)
@@ -208,8 +263,15 @@ def _paths(sites: pd.DataFrame, nerves: pd.DataFrame) -> pd.DataFrame:
     paths["path_outside_entrapment"] = (crossed - (crossed[opening] - bad[opening])) == 0
     paths["path_standard"] = (order == 2) & (kind == "standard")
     paths["path"] = _text(
-        rules.per_distinct(lambda first, site, high_label: f"{'site 1' if pd.isna(first) else first} → {f'site {site}' if pd.isna(high_label) else high_label}",
-                           base_label, order, high),
+        rules.per_distinct(
+            lambda first, site, high_label: (
+                f"{'site 1' if pd.isna(first) else first} → "
+                f"{f'site {site}' if pd.isna(high_label) else high_label}"
+            ),
+            base_label,
+            order,
+            high,
+        ),
         paths.index,
     )
     return paths.reset_index(drop=True)[PATH_COLUMNS]

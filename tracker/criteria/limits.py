@@ -18,8 +18,18 @@ import pandas as pd
 from tracker.criteria.citations import source_text
 
 LIMIT_COLUMNS = [
-    "nerve", "modality", "parameter", "bound", "value", "age_min", "age_max", "height_min_cm", "height_max_cm",
-    "sex", "source", "status",
+    "nerve",
+    "modality",
+    "parameter",
+    "bound",
+    "value",
+    "age_min",
+    "age_max",
+    "height_min_cm",
+    "height_max_cm",
+    "sex",
+    "source",
+    "status",
 ]
 DEFAULT_NAME = "default"
 # Bump with every change to reference/limits_default.csv: saved evaluations name the set and its version, and
@@ -120,12 +130,16 @@ def attach_limits(nerves: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
     strata = [_describe_stratum(row) for row in limits.rename(columns={"sex": "sex_limit"}).itertuples()]
     n = len(nerves)
     # Which (nerve, modality) each nerve test has, as small integer codes the limit rows can be matched on.
-    pairs = pd.MultiIndex.from_arrays([nerves["nerve"].to_numpy(dtype=object), nerves["modality"].to_numpy(dtype=object)])
+    pairs = pd.MultiIndex.from_arrays(
+        [nerves["nerve"].to_numpy(dtype=object), nerves["modality"].to_numpy(dtype=object)]
+    )
     pair_codes, pair_values = pd.factorize(pairs)
     pair_code = {value: code for code, value in enumerate(pair_values)}
     age = nerves["age_years"].to_numpy(dtype=float)
     height = nerves["height_cm"].to_numpy(dtype=float)
-    sex_codes, sex_values = pd.factorize(nerves["sex"].to_numpy(dtype=object))  # unknown sex: -1, matches no row
+    sex_codes, sex_values = pd.factorize(
+        nerves["sex"].to_numpy(dtype=object)
+    )  # unknown sex: -1, matches no row
     sex_code = {value: code for code, value in enumerate(sex_values)}
 
     def within(values: np.ndarray, low: float, high: float) -> np.ndarray | bool:
@@ -147,10 +161,17 @@ def attach_limits(nerves: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
             if row.parameter != parameter or row.bound != bound or (row.nerve, row.modality) not in pair_code:
                 continue
             applies = pair_codes == pair_code[(row.nerve, row.modality)]
-            applies = applies & within(age, row.age_min, row.age_max) & within(height, row.height_min_cm, row.height_max_cm)
+            applies = (
+                applies
+                & within(age, row.age_min, row.age_max)
+                & within(height, row.height_min_cm, row.height_max_cm)
+            )
             if not _missing(row.sex):
                 applies = applies & (sex_codes == sex_code.get(row.sex, -2))
-            specificity = sum(not _missing(v) for v in (row.age_min, row.age_max, row.height_min_cm, row.height_max_cm, row.sex))
+            specificity = sum(
+                not _missing(v)
+                for v in (row.age_min, row.age_max, row.height_min_cm, row.height_max_cm, row.sex)
+            )
             take = applies & (specificity >= best)
             chosen[take] = position
             best[take] = specificity
@@ -158,7 +179,11 @@ def attach_limits(nerves: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
         value = np.full(n, np.nan)
         value[found] = limits["value"].to_numpy(dtype=float)[chosen[found]]
         result[column] = pd.Series(value, index=result.index)
-        for suffix, values in (("source", limits["source"]), ("status", limits["status"]), ("stratum", strata)):
+        for suffix, values in (
+            ("source", limits["source"]),
+            ("status", limits["status"]),
+            ("stratum", strata),
+        ):
             text = np.full(n, np.nan, dtype=object)
             text[found] = np.asarray(values, dtype=object)[chosen[found]]
             result[f"{column}_{suffix}"] = pd.Series(text, index=result.index, dtype=object)

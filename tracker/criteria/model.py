@@ -75,7 +75,10 @@ class Settings:
         }
         for name, allowed in checks.items():
             if getattr(self, name) not in allowed:
-                raise ValueError(f"Invalid value for '{name}'. Allowed values are {allowed}, but got {getattr(self, name)!r}.")
+                raise ValueError(
+                    f"Invalid value for '{name}'. Allowed values are {allowed}, but got "
+                    f"{getattr(self, name)!r}."
+                )
 
 
 @dataclass

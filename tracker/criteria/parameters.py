@@ -37,10 +37,15 @@ def limit_provenance(frame: pd.DataFrame, column: str) -> dict[str, pd.Series]:
         source,
         stratum,
     )
-    return {"limit_source": pd.Series(with_stratum, index=frame.index), "limit_status": frame[f"{column}_status"]}
+    return {
+        "limit_source": pd.Series(with_stratum, index=frame.index),
+        "limit_status": frame[f"{column}_status"],
+    }
 
 
-def _threshold(table: ThresholdTable, item: str, frame: pd.DataFrame, limit: np.ndarray | None) -> tuple[pd.DataFrame, np.ndarray]:
+def _threshold(
+    table: ThresholdTable, item: str, frame: pd.DataFrame, limit: np.ndarray | None
+) -> tuple[pd.DataFrame, np.ndarray]:
     rows = table.per_nerve(item, frame["nerve"], frame.get("lff_hz"))
     factor = rows["value"].to_numpy(dtype=float)
     reference = rows["reference"].to_numpy(dtype=object)
@@ -51,7 +56,11 @@ def _threshold(table: ThresholdTable, item: str, frame: pd.DataFrame, limit: np.
 
 
 def _limit_name(reference: pd.Series, factor: pd.Series) -> np.ndarray:
-    return rules.per_distinct(lambda r, f: f"{f * 100:g} % of {LIMIT_NAMES.get(r, r)}" if r in LIMIT_NAMES else "fixed", reference, factor)
+    return rules.per_distinct(
+        lambda r, f: f"{f * 100:g} % of {LIMIT_NAMES.get(r, r)}" if r in LIMIT_NAMES else "fixed",
+        reference,
+        factor,
+    )
 
 
 NO_ROW = "the criterion gives no threshold for this nerve"
@@ -69,16 +78,28 @@ def _excluded(frame: pd.DataFrame, table: ThresholdTable, item: str) -> tuple[np
     return mask, f"{', '.join(sorted(excluded))} nerve excluded by this criterion" if excluded else ""
 
 
-def distal_latency(nerves, table: ThresholdTable, item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
+def distal_latency(
+    nerves, table: ThresholdTable, item: str, settings: Settings, *, criteria: str
+) -> pd.DataFrame:
     frame = motor(nerves)
     limit = frame["uln_distal_latency_ms"].to_numpy(dtype=float)
     rows, threshold = _threshold(table, item, frame, limit)
-    wrist = (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(bool).to_numpy()
+    wrist = (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(
+        bool
+    ).to_numpy()
     return rules.item_findings(
-        frame, criteria=criteria, item=item, parameter="distal latency", unit="ms",
-        value=frame["distal_latency_ms"].to_numpy(dtype=float), threshold=threshold,
-        comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
-        limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
+        frame,
+        criteria=criteria,
+        item=item,
+        parameter="distal latency",
+        unit="ms",
+        value=frame["distal_latency_ms"].to_numpy(dtype=float),
+        threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object),
+        limit=limit,
+        limit_name=_limit_name(rows["reference"], rows["value"]),
+        source=rows["source"],
+        source_status=rows["status"],
         **limit_provenance(frame, "uln_distal_latency_ms"),
         blocked=rules.common_blocks(frame, settings),
         inapplicable=[
@@ -89,23 +110,44 @@ def distal_latency(nerves, table: ThresholdTable, item: str, settings: Settings,
     )
 
 
-def velocity(nerves, table: ThresholdTable, item: str, settings: Settings, *, criteria: str, requirement=None, comparator_item=None) -> pd.DataFrame:
+def velocity(
+    nerves,
+    table: ThresholdTable,
+    item: str,
+    settings: Settings,
+    *,
+    criteria: str,
+    requirement=None,
+    comparator_item=None,
+) -> pd.DataFrame:
     frame = motor(nerves)
     column = "cv_standard" if settings.cv_segments == "standard" else "cv_outside_entrapment"
     limit = frame["lln_cv"].to_numpy(dtype=float)
     rows, threshold = _threshold(table, item, frame, limit)
     return rules.item_findings(
-        frame, criteria=criteria, item=item, parameter="conduction velocity", unit="m/s",
-        value=frame[column].to_numpy(dtype=float), threshold=threshold,
-        comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
-        limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
-        segment=frame[f"{column}_segment"].to_numpy(dtype=object), requirement=requirement, **limit_provenance(frame, "lln_cv"),
+        frame,
+        criteria=criteria,
+        item=item,
+        parameter="conduction velocity",
+        unit="m/s",
+        value=frame[column].to_numpy(dtype=float),
+        threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object),
+        limit=limit,
+        limit_name=_limit_name(rows["reference"], rows["value"]),
+        source=rows["source"],
+        source_status=rows["status"],
+        segment=frame[f"{column}_segment"].to_numpy(dtype=object),
+        requirement=requirement,
+        **limit_provenance(frame, "lln_cv"),
         blocked=rules.common_blocks(frame, settings),
         inapplicable=[(frame["no_response"].to_numpy(dtype=bool), "no recordable response"), no_row(rows)],
     )
 
 
-def amplitude_switch(frame: pd.DataFrame, table: ThresholdTable, switch_item: str) -> tuple[np.ndarray, np.ndarray]:
+def amplitude_switch(
+    frame: pd.DataFrame, table: ThresholdTable, switch_item: str
+) -> tuple[np.ndarray, np.ndarray]:
     """(switch applies, amplitude known): distal amplitude below the switch fraction of LLN."""
     lln = frame["lln_amplitude"].to_numpy(dtype=float)
     rows, threshold = _threshold(table, switch_item, frame, lln)
@@ -115,7 +157,16 @@ def amplitude_switch(frame: pd.DataFrame, table: ThresholdTable, switch_item: st
     return low, known
 
 
-def f_latency(nerves, table: ThresholdTable, item: str, low_item: str, switch_item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
+def f_latency(
+    nerves,
+    table: ThresholdTable,
+    item: str,
+    low_item: str,
+    switch_item: str,
+    settings: Settings,
+    *,
+    criteria: str,
+) -> pd.DataFrame:
     """Minimal F latency against the ULN factor, or the larger factor when the distal CMAP is low."""
     frame = motor(nerves)
     limit = frame["uln_f_latency_ms"].to_numpy(dtype=float)
@@ -124,16 +175,30 @@ def f_latency(nerves, table: ThresholdTable, item: str, low_item: str, switch_it
     low, known = amplitude_switch(frame, table, switch_item)
     threshold = np.where(low, low_threshold, normal_threshold)
     factor = np.where(low, low_rows["value"], normal_rows["value"])
-    names = rules.per_distinct(lambda f, l: f"{f * 100:g} % of ULN" + (" (distal CMAP below the switch)" if l else ""), factor, low)
+    names = rules.per_distinct(
+        lambda f, l: f"{f * 100:g} % of ULN" + (" (distal CMAP below the switch)" if l else ""), factor, low
+    )
     absent = frame["f_absent"].to_numpy(dtype=bool)
     return rules.item_findings(
-        frame, criteria=criteria, item=item, parameter="F-wave latency", unit="ms",
-        value=frame["f_latency_ms"].to_numpy(dtype=float), threshold=threshold,
-        comparator=normal_rows["comparator"].to_numpy(dtype=object), limit=limit, limit_name=names,
-        source=normal_rows["source"], source_status=normal_rows["status"], **limit_provenance(frame, "uln_f_latency_ms"),
+        frame,
+        criteria=criteria,
+        item=item,
+        parameter="F-wave latency",
+        unit="ms",
+        value=frame["f_latency_ms"].to_numpy(dtype=float),
+        threshold=threshold,
+        comparator=normal_rows["comparator"].to_numpy(dtype=object),
+        limit=limit,
+        limit_name=names,
+        source=normal_rows["source"],
+        source_status=normal_rows["status"],
+        **limit_provenance(frame, "uln_f_latency_ms"),
         blocked=rules.common_blocks(frame, settings)
         + [
-            (~known & ~absent & ~np.isnan(frame["f_latency_ms"].to_numpy(dtype=float)), "distal CMAP amplitude or its LLN missing: the F-wave threshold cannot be chosen"),
+            (
+                ~known & ~absent & ~np.isnan(frame["f_latency_ms"].to_numpy(dtype=float)),
+                "distal CMAP amplitude or its LLN missing: the F-wave threshold cannot be chosen",
+            ),
         ],
         inapplicable=[(absent, "F-waves absent (judged by the absent-F item)"), no_row(normal_rows)],
     )
@@ -149,19 +214,34 @@ def f_absent(nerves, table: ThresholdTable, item: str, settings: Settings, *, cr
     amplitude = frame["distal_amplitude"].to_numpy(dtype=float)
     precondition = rules.compare(amplitude, threshold, rows["comparator"].to_numpy(dtype=object))
     findings = rules.item_findings(
-        frame, criteria=criteria, item=item, parameter="F-waves absent (distal CMAP)", unit="mV",
-        value=amplitude, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=limit,
-        limit_name=_limit_name(rows["reference"], rows["value"]), source=rows["source"], source_status=rows["status"],
-        requirement=absent, **limit_provenance(frame, "lln_amplitude"),
+        frame,
+        criteria=criteria,
+        item=item,
+        parameter="F-waves absent (distal CMAP)",
+        unit="mV",
+        value=amplitude,
+        threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object),
+        limit=limit,
+        limit_name=_limit_name(rows["reference"], rows["value"]),
+        source=rows["source"],
+        source_status=rows["status"],
+        requirement=absent,
+        **limit_provenance(frame, "lln_amplitude"),
         blocked=rules.common_blocks(frame, settings) + [(~absent & ~present, "F-waves not recorded")],
         inapplicable=[
             (frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE_DISTAL),
-            (absent & ~precondition & ~np.isnan(amplitude) & ~np.isnan(threshold), "amplitude precondition failed: distal CMAP below the required fraction of LLN"),
+            (
+                absent & ~precondition & ~np.isnan(amplitude) & ~np.isnan(threshold),
+                "amplitude precondition failed: distal CMAP below the required fraction of LLN",
+            ),
             no_row(rows),
         ],
     )
     # Only where the item was judged (a cold limb excluded by the setting keeps its own reason).
-    findings.loc[present & ~absent & (findings["status"] == "not_met").to_numpy(), "reason"] = "F-waves present"
+    findings.loc[present & ~absent & (findings["status"] == "not_met").to_numpy(), "reason"] = (
+        "F-waves present"
+    )
     return findings
 
 
@@ -173,22 +253,43 @@ def best_path(nerves: pd.DataFrame, paths: pd.DataFrame, measure: str, eligible:
 
 
 def eligible_paths(paths: pd.DataFrame, block_path: str, exclude_labels: tuple[str, ...] = ()) -> pd.Series:
-    """Paths the block items may use under the ``block_path`` setting, without sites labelled ``exclude_labels``."""
-    eligible = paths["path_outside_entrapment"] if block_path == "outside_entrapment" else paths["path_standard"]
+    """Paths the block items may use under the ``block_path`` setting, without
+    sites labelled ``exclude_labels``."""
+    eligible = (
+        paths["path_outside_entrapment"] if block_path == "outside_entrapment" else paths["path_standard"]
+    )
     if exclude_labels:
         eligible = eligible & ~paths["label"].isin(exclude_labels)
     return eligible
 
 
-def best_eligible_path(nerves: pd.DataFrame, paths: pd.DataFrame, measure: str, block_path: str, exclude_labels: tuple[str, ...] = ()) -> pd.DataFrame:
+def best_eligible_path(
+    nerves: pd.DataFrame,
+    paths: pd.DataFrame,
+    measure: str,
+    block_path: str,
+    exclude_labels: tuple[str, ...] = (),
+) -> pd.DataFrame:
     """:func:`best_path` over :func:`eligible_paths` (several sets ask for the same one: computed once)."""
     return memo.once(
-        ("best_path", measure, block_path, tuple(exclude_labels)), (nerves, paths),
+        ("best_path", measure, block_path, tuple(exclude_labels)),
+        (nerves, paths),
         lambda: best_path(nerves, paths, measure, eligible_paths(paths, block_path, exclude_labels)),
     )
 
 
-def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: str, settings: Settings, *, criteria: str, exclude_labels: tuple[str, ...] = (), measure: str = "amplitude_reduction_pct") -> pd.DataFrame:
+def block(
+    nerves,
+    paths,
+    table: ThresholdTable,
+    item: str,
+    precondition_item: str,
+    settings: Settings,
+    *,
+    criteria: str,
+    exclude_labels: tuple[str, ...] = (),
+    measure: str = "amplitude_reduction_pct",
+) -> pd.DataFrame:
     """Largest proximal-versus-distal reduction over the eligible paths, with the distal CMAP precondition."""
     frame = motor(nerves)
     best = best_eligible_path(nerves, paths, measure, settings.block_path, exclude_labels)
@@ -203,8 +304,13 @@ def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: st
     no_response = frame["no_response"].to_numpy(dtype=bool)
     fraction = pre_rows["value"].to_numpy(dtype=float)
     has_site = memo.once(
-        ("eligible_site", settings.block_path, tuple(exclude_labels)), (nerves, paths),
-        lambda: frame["test_key"].isin(paths.loc[eligible_paths(paths, settings.block_path, exclude_labels), "test_key"].unique()).to_numpy(),
+        ("eligible_site", settings.block_path, tuple(exclude_labels)),
+        (nerves, paths),
+        lambda: (
+            frame["test_key"]
+            .isin(paths.loc[eligible_paths(paths, settings.block_path, exclude_labels), "test_key"].unique())
+            .to_numpy()
+        ),
     )
     no_amplitude = np.isnan(amplitude) & ~no_response
     # Proximal sites recorded, but every path to them crosses an entrapment (or unlabelled) segment.
@@ -213,13 +319,30 @@ def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: st
     failing = ~precondition & ~no_path & ~np.isnan(pre_threshold) & ~no_amplitude
     failed = np.empty(len(frame), dtype=object)
     failed[failing] = rules.per_distinct(
-        lambda a, c, f: f"amplitude precondition failed: distal CMAP {a:g} mV is not {COMPARATOR_WORDS.get(c, c)} {f * 100:g} % of LLN",
-        amplitude[failing], pre_rows["comparator"].to_numpy(dtype=object)[failing], fraction[failing],
+        lambda a, c, f: (
+            f"amplitude precondition failed: distal CMAP {a:g} mV is not {COMPARATOR_WORDS.get(c, c)} "
+            f"{f * 100:g} % of LLN"
+        ),
+        amplitude[failing],
+        pre_rows["comparator"].to_numpy(dtype=object)[failing],
+        fraction[failing],
     )
     return rules.item_findings(
-        frame, criteria=criteria, item=item, parameter="conduction block (amplitude reduction)" if "amplitude" in measure else "conduction block (area reduction)",
-        unit="%", value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
-        limit_name="", source=rows["source"], source_status=rows["status"], segment=best["path"].to_numpy(dtype=object),
+        frame,
+        criteria=criteria,
+        item=item,
+        parameter="conduction block (amplitude reduction)"
+        if "amplitude" in measure
+        else "conduction block (area reduction)",
+        unit="%",
+        value=value,
+        threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object),
+        limit=np.full(len(frame), np.nan),
+        limit_name="",
+        source=rows["source"],
+        source_status=rows["status"],
+        segment=best["path"].to_numpy(dtype=object),
         blocked=rules.common_blocks(frame, settings)
         + [
             (no_path & ~no_response & ~has_site & ~any_path, "no proximal stimulation recorded"),
@@ -237,22 +360,39 @@ def block(nerves, paths, table: ThresholdTable, item: str, precondition_item: st
     )
 
 
-def dispersion(nerves, paths, table: ThresholdTable, item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
+def dispersion(
+    nerves, paths, table: ThresholdTable, item: str, settings: Settings, *, criteria: str
+) -> pd.DataFrame:
     """Largest proximal-versus-distal negative-peak duration increase over the eligible paths."""
     frame = motor(nerves)
     best = best_eligible_path(nerves, paths, "duration_increase_pct", settings.block_path)
     rows, threshold = _threshold(table, item, frame, None)
     value = best["duration_increase_pct"].to_numpy(dtype=float)
     return rules.item_findings(
-        frame, criteria=criteria, item=item, parameter="temporal dispersion (duration increase)", unit="%",
-        value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
-        limit_name="", source=rows["source"], source_status=rows["status"], segment=best["path"].to_numpy(dtype=object),
+        frame,
+        criteria=criteria,
+        item=item,
+        parameter="temporal dispersion (duration increase)",
+        unit="%",
+        value=value,
+        threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object),
+        limit=np.full(len(frame), np.nan),
+        limit_name="",
+        source=rows["source"],
+        source_status=rows["status"],
+        segment=best["path"].to_numpy(dtype=object),
         blocked=rules.common_blocks(frame, settings),
-        inapplicable=[(np.isnan(value) & frame["no_response"].to_numpy(dtype=bool), "no recordable response"), no_row(rows)],
+        inapplicable=[
+            (np.isnan(value) & frame["no_response"].to_numpy(dtype=bool), "no recordable response"),
+            no_row(rows),
+        ],
     )
 
 
-def distal_duration(nerves, table: ThresholdTable, item: str, settings: Settings, *, criteria: str) -> pd.DataFrame:
+def distal_duration(
+    nerves, table: ThresholdTable, item: str, settings: Settings, *, criteria: str
+) -> pd.DataFrame:
     """Distal CMAP duration against a fixed (nerve- and possibly filter-specific) cut-off.
 
     Where the table says at which low-frequency filter (Hz) a fixed cut-off was derived (``derived_lff_hz``)
@@ -274,10 +414,18 @@ def distal_duration(nerves, table: ThresholdTable, item: str, settings: Settings
         lambda hz, at, status: filter_warning(hz, at, status, strict), lff, derived, derived_status
     )
     findings = rules.item_findings(
-        frame, criteria=criteria, item=item, parameter="distal CMAP duration", unit="ms",
-        value=frame["distal_duration_ms"].to_numpy(dtype=float), threshold=threshold,
-        comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
-        limit_name=np.where(np.isnan(threshold), "", "fixed cut-off"), source=rows["source"], source_status=rows["status"],
+        frame,
+        criteria=criteria,
+        item=item,
+        parameter="distal CMAP duration",
+        unit="ms",
+        value=frame["distal_duration_ms"].to_numpy(dtype=float),
+        threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object),
+        limit=np.full(len(frame), np.nan),
+        limit_name=np.where(np.isnan(threshold), "", "fixed cut-off"),
+        source=rows["source"],
+        source_status=rows["status"],
         blocked=rules.common_blocks(frame, settings) + ([(mismatch, words)] if strict else []),
         inapplicable=[(frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE_DISTAL), no_row(rows)],
     )
@@ -305,7 +453,9 @@ def filter_warning(lff_hz: float, derived_hz: float, status: str, strict: bool) 
     else:
         recorded = f"recorded with a {lff_hz:g} Hz low-frequency filter"
     if strict:
-        return f"{recorded}; the cut-off was derived at {derived}: not evaluable (setting {FILTER_SETTING} on)"
+        return (
+            f"{recorded}; the cut-off was derived at {derived}: not evaluable (setting {FILTER_SETTING} on)"
+        )
     return (
         f"warning: {recorded}, the cut-off was derived at {derived}; judged as published, one set of "
         f"cut-offs (setting {FILTER_SETTING} off)"

@@ -7,7 +7,15 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from tracker.criteria.model import FINDING_COLUMNS, MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, UNDECIDED, Settings
+from tracker.criteria.model import (
+    FINDING_COLUMNS,
+    MET,
+    NOT_APPLICABLE,
+    NOT_EVALUABLE,
+    NOT_MET,
+    UNDECIDED,
+    Settings,
+)
 from tracker.criteria.thresholds import COMPARATORS
 from tracker.domain.conduction import quantise_array
 
@@ -123,7 +131,9 @@ def item_findings(
     # Reasons given row by row (an array): code -1, the text kept aside.
     own_reason: np.ndarray | None = None
     # Inapplicable masks last, so that they override every want of data.
-    masks = [(mask, why, 2) for mask, why in reversed(blocked or [])] + [(mask, why, 3) for mask, why in reversed(inapplicable or [])]
+    masks = [(mask, why, 2) for mask, why in reversed(blocked or [])] + [
+        (mask, why, 3) for mask, why in reversed(inapplicable or [])
+    ]
     for mask, why, code in masks:
         mask = np.asarray(mask, dtype=bool)
         status_code[mask] = code
@@ -140,6 +150,7 @@ def item_findings(
     if own_reason is not None:
         own = reason_code == -1
         reason[own] = own_reason[own]
+
     def text(values) -> pd.Series:
         # Plain Python objects: letting pandas infer a string column for each of millions of findings
         # costs more than the rules themselves.
@@ -199,7 +210,11 @@ def per_distinct(function, *columns) -> np.ndarray:
         # Keep the combined codes small: renumber (by first appearance) after each column.
         combined, _ = pd.factorize(combined * len(uniques) + codes)
     # Codes count up in order of first appearance, so a code first appears where the running maximum grows.
-    first = np.flatnonzero(np.r_[True, combined[1:] > np.maximum.accumulate(combined)[:-1]]) if n else np.zeros(0, dtype=np.int64)
+    first = (
+        np.flatnonzero(np.r_[True, combined[1:] > np.maximum.accumulate(combined)[:-1]])
+        if n
+        else np.zeros(0, dtype=np.int64)
+    )
     results = np.empty(len(first), dtype=object)
     for position, row in enumerate(first):
         results[position] = function(*(a[row] for a in arrays))  # one by one: a result may be a tuple
@@ -232,7 +247,9 @@ def met_sets(findings: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     """Per visit and nerve (identity): which items are met — a boolean table indexed by
     (``visit_key``, ``identity``) with one column per item met anywhere."""
     # Only the four columns the table needs: filtering every column of millions of findings is wasted.
-    met = findings.loc[findings["status"].to_numpy(dtype=object) == MET, ["visit_key", "nerve", "side", "item"]]
+    met = findings.loc[
+        findings["status"].to_numpy(dtype=object) == MET, ["visit_key", "nerve", "side", "item"]
+    ]
     if met.empty:
         return pd.DataFrame(index=pd.MultiIndex.from_arrays([[], []], names=["visit_key", "identity"]))
     met = met.assign(identity=nerve_identity(met, settings).to_numpy())
@@ -304,6 +321,7 @@ def describe(comparator: str) -> str:
 
 # ---------------------------------------------------------------- undecided outcomes
 
+
 def with_status(findings: pd.DataFrame, mask: np.ndarray, status: str) -> pd.DataFrame:
     """A copy of ``findings`` whose status is ``status`` where ``mask`` holds (a what-if of missing data)."""
     changed = findings.copy(deep=False)
@@ -326,17 +344,33 @@ def open_items(findings: pd.DataFrame, keys: pd.Index) -> pd.Series:
     empty = pd.Series([()] * len(keys), index=keys, dtype=object)
     if findings.empty:
         return empty
-    columns = [findings[c].to_numpy(dtype=object) if c in findings else np.full(len(findings), None, dtype=object) for c in ITEM_FIELDS]
+    columns = [
+        findings[c].to_numpy(dtype=object) if c in findings else np.full(len(findings), None, dtype=object)
+        for c in ITEM_FIELDS
+    ]
     rows = [
-        {field: (value if isinstance(value, str) and value else None) for field, value in zip(ITEM_FIELDS, values)}
+        {
+            field: (value if isinstance(value, str) and value else None)
+            for field, value in zip(ITEM_FIELDS, values)
+        }
         for values in zip(*columns)
     ]
-    grouped = pd.Series(rows, index=findings["visit_key"].to_numpy(), dtype=object).groupby(level=0).agg(tuple)
+    grouped = (
+        pd.Series(rows, index=findings["visit_key"].to_numpy(), dtype=object).groupby(level=0).agg(tuple)
+    )
     return grouped.reindex(keys).where(lambda s: s.notna(), None).combine_first(empty).astype(object)
 
 
-def settle(outcome: pd.Series, rule: pd.Series, best: pd.Series, ranks: dict[str, int], candidates: pd.DataFrame, keys: pd.Index,
-           *, note: bool = True) -> tuple[pd.Series, pd.Series, pd.Series]:
+def settle(
+    outcome: pd.Series,
+    rule: pd.Series,
+    best: pd.Series,
+    ranks: dict[str, int],
+    candidates: pd.DataFrame,
+    keys: pd.Index,
+    *,
+    note: bool = True,
+) -> tuple[pd.Series, pd.Series, pd.Series]:
     """Where ``best`` (the outcome if missing data turned out favourable) ranks above ``outcome``: a not-met
     outcome becomes ``undecided`` and a reached level stays; the not-evaluable ``candidates`` of those visits
     are listed (and, with ``note``, named in the rule). Elsewhere nothing changes and nothing is listed.
@@ -352,10 +386,15 @@ def settle(outcome: pd.Series, rule: pd.Series, best: pd.Series, ranks: dict[str
     chosen = candidates[candidates["visit_key"].isin(keys[raised.to_numpy()])]
     items = open_items(chosen, keys)
     if note and raised.any():
+
         def words(found: tuple) -> str:
             names = [" ".join(str(f[k]) for k in ("nerve", "side", "item") if f.get(k)) for f in found]
             shown = ", ".join(names[:6]) + (f" and {len(names) - 6} more" if len(names) > 6 else "")
-            return f"; undecided: {len(names)} finding{'s' if len(names) != 1 else ''} not evaluable for want of data could change the outcome ({shown})"
+            return (
+                f"; undecided: {len(names)} finding{'s' if len(names) != 1 else ''} not evaluable for want "
+                f"of data could change the outcome ({shown})"
+            )
+
         where = raised.to_numpy() & (items.map(len).to_numpy() > 0)
         rule[where] = rule[where].astype(str) + items[where].map(words)
     return outcome, rule, items

@@ -1,14 +1,14 @@
 """Threshold tables: one CSV per criteria set in ``tracker/criteria/tables/``, every row with its source.
 
-Columns: ``item`` (the set's own item code), ``parameter``, ``nerve`` (``*`` for any), ``lff_hz`` (empty for
-any filter), ``derived_lff_hz`` (the low-frequency filter, Hz, at which a fixed cut-off was derived when the
-publication gives one set of cut-offs; empty otherwise) with ``derived_lff_status`` (``verified`` or
-``memory``), ``comparator`` (``ge``, ``gt``, ``le``, ``lt``),
-``reference`` (``uln`` or ``lln``: the value is a factor of that normal limit; ``percent`` or ``absolute``:
-the value is the threshold itself), ``value``, ``unit``, ``excluded_nerves`` (``|``-separated), ``description``,
-``citation`` (keys of ``tracker/reference/citations.csv``, ``|``-separated), ``note`` (what this row adds:
-where the value was read, or that it is from memory), ``status`` (``verified`` or ``memory``), ``version``.
-The loader resolves ``citation`` and ``note`` into the ``source`` text every trace shows.
+Columns: ``item`` (the set's own item code), ``parameter``, ``nerve`` (``*`` for any), ``lff_hz`` (empty
+for any filter), ``derived_lff_hz`` (the low-frequency filter, Hz, at which a fixed cut-off was derived
+when the publication gives one set of cut-offs; empty otherwise) with ``derived_lff_status`` (``verified``
+or ``memory``), ``comparator`` (``ge``, ``gt``, ``le``, ``lt``), ``reference`` (``uln`` or ``lln``: the
+value is a factor of that normal limit; ``percent`` or ``absolute``: the value is the threshold itself),
+``value``, ``unit``, ``excluded_nerves`` (``|``-separated), ``description``, ``citation`` (keys of
+``tracker/reference/citations.csv``, ``|``-separated), ``note`` (what this row adds: where the value was
+read, or that it is from memory), ``status`` (``verified`` or ``memory``), ``version``. The loader resolves
+``citation`` and ``note`` into the ``source`` text every trace shows.
 """
 
 from __future__ import annotations
@@ -78,7 +78,9 @@ class ThresholdTable:
         # every nerve ("*") or to the nerve it names, and excludes only nerves it names: every nerve the rows
         # do not name is decided alike (class 0), so only the named ones need telling apart.
         names = nerves.to_numpy(dtype=object)
-        named = sorted({r.nerve for r in rows if r.nerve != "*"} | {n for r in rows for n in r.excluded_nerves})
+        named = sorted(
+            {r.nerve for r in rows if r.nerve != "*"} | {n for r in rows for n in r.excluded_nerves}
+        )
         nerve_class = np.zeros(len(names), dtype=np.intp)
         for position, name in enumerate(named, start=1):
             nerve_class[_equal(names, name)] = position
@@ -93,7 +95,9 @@ class ThresholdTable:
         decided = [self._decide(rows, nerve, lff) for nerve in (None, *named) for lff in lff_values]
         inverse = nerve_class * width + lff_codes
         columns = {"value": np.array([d[0] for d in decided], dtype=float)[inverse]}
-        for position, column in enumerate(("source", "status", "description", "comparator", "reference"), start=1):
+        for position, column in enumerate(
+            ("source", "status", "description", "comparator", "reference"), start=1
+        ):
             column_values = np.empty(len(decided), dtype=object)
             column_values[:] = [d[position] for d in decided]
             columns[column] = pd.Series(column_values[inverse], index=nerves.index, dtype=object, copy=False)
@@ -129,7 +133,9 @@ def _equal(values: np.ndarray, name: str) -> np.ndarray:
 @cache
 def load(criteria_id: str) -> ThresholdTable:
     """The threshold table of ``criteria_id`` (file ``tables/<criteria_id>.csv``)."""
-    text = resources.files("tracker.criteria.tables").joinpath(f"{criteria_id}.csv").read_text(encoding="utf-8")
+    text = (
+        resources.files("tracker.criteria.tables").joinpath(f"{criteria_id}.csv").read_text(encoding="utf-8")
+    )
     return parse(criteria_id, text)
 
 

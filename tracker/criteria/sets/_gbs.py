@@ -35,7 +35,9 @@ NO_RESPONSE = "no recordable response at the distal site"
 SWITCH_UNKNOWN = "distal CMAP amplitude or its LLN missing: the threshold cannot be chosen"
 NO_PATH = "no proximal stimulation on an eligible path"
 NO_PATH_OUTSIDE_ENTRAPMENT = "no proximal stimulation outside entrapment sites"
-PRECONDITION_UNKNOWN = "distal CMAP amplitude or its LLN missing: the amplitude precondition cannot be checked"
+PRECONDITION_UNKNOWN = (
+    "distal CMAP amplitude or its LLN missing: the amplitude precondition cannot be checked"
+)
 WRIST = "median distal latency not counted: neuropathy at the wrist judged by the clinician"
 # Reasons that mean "a value was not measured or has no limit" (as opposed to a precondition or a setting).
 MISSING_DATA = (
@@ -68,7 +70,9 @@ def rule_text(table: ThresholdTable, item: str) -> str:
     return f"{COMPARATORS[row.comparator]} {row.value:g} {row.unit}"
 
 
-def _scaled(table: ThresholdTable, item: str, frame: pd.DataFrame, limit: np.ndarray | None) -> tuple[pd.DataFrame, np.ndarray]:
+def _scaled(
+    table: ThresholdTable, item: str, frame: pd.DataFrame, limit: np.ndarray | None
+) -> tuple[pd.DataFrame, np.ndarray]:
     rows = table.per_nerve(item, frame["nerve"], frame.get("lff_hz"))
     factor = rows["value"].to_numpy(dtype=float)
     if limit is None:
@@ -135,14 +139,30 @@ def switched(
         switch_words = rule_text(table, switch_item)
         names = np.where(use_low, _names(low_rows) + f" (distal CMAP {switch_words})", names)
         undecided = ~known & (met_normal != met_low) & ~np.isnan(value)
-        names = np.where(known, names, names + np.where(undecided, " (distal CMAP unknown)", " (distal CMAP unknown: both thresholds agree)"))
+        names = np.where(
+            known,
+            names,
+            names
+            + np.where(undecided, " (distal CMAP unknown)", " (distal CMAP unknown: both thresholds agree)"),
+        )
         threshold = np.where(use_low, low_threshold, threshold)
         comparator = np.where(use_low, low_comparator, comparator)
         blocks.append((undecided, SWITCH_UNKNOWN))
     return rules.item_findings(
-        frame, criteria=criteria, item=item, parameter=parameter, unit=unit, value=value, threshold=threshold,
-        comparator=comparator, limit=limit, limit_name=names, source=rows["source"], source_status=rows["status"],
-        segment=None if segment is None else np.asarray(segment, dtype=object), blocked=blocks,
+        frame,
+        criteria=criteria,
+        item=item,
+        parameter=parameter,
+        unit=unit,
+        value=value,
+        threshold=threshold,
+        comparator=comparator,
+        limit=limit,
+        limit_name=names,
+        source=rows["source"],
+        source_status=rows["status"],
+        segment=None if segment is None else np.asarray(segment, dtype=object),
+        blocked=blocks,
         inapplicable=not_applicable,
     )
 
@@ -152,8 +172,11 @@ def rows_of(table: ThresholdTable, item: str):
 
 
 def wrist_block(frame: pd.DataFrame) -> tuple[np.ndarray, str]:
-    """Median distal latency not counted where the clinician judged it explained by neuropathy at the wrist."""
-    mask = (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(bool).to_numpy()
+    """Median distal latency not counted where the clinician judged it
+    explained by neuropathy at the wrist."""
+    mask = (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(
+        bool
+    ).to_numpy()
     return mask, WRIST
 
 
@@ -226,14 +249,27 @@ def block(
     source = rows["source"].where(rows["source"].notna(), first.source)
     source_status = rows["status"].where(rows["status"].notna(), first.status)
     return rules.item_findings(
-        frame, criteria=criteria, item=item, parameter="conduction block (amplitude fall from distal)", unit="%",
-        value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object),
-        limit=np.full(len(frame), np.nan), limit_name="fixed", source=source, source_status=source_status,
-        segment=best["path"].to_numpy(dtype=object), blocked=blocks, inapplicable=not_applicable,
+        frame,
+        criteria=criteria,
+        item=item,
+        parameter="conduction block (amplitude fall from distal)",
+        unit="%",
+        value=value,
+        threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object),
+        limit=np.full(len(frame), np.nan),
+        limit_name="fixed",
+        source=source,
+        source_status=source_status,
+        segment=best["path"].to_numpy(dtype=object),
+        blocked=blocks,
+        inapplicable=not_applicable,
     )
 
 
-def class_findings(nerves: pd.DataFrame, paths: pd.DataFrame, table: ThresholdTable, settings: Settings, *, criteria: str) -> list[pd.DataFrame]:
+def class_findings(
+    nerves: pd.DataFrame, paths: pd.DataFrame, table: ThresholdTable, settings: Settings, *, criteria: str
+) -> list[pd.DataFrame]:
     """Distal-CMAP items of the class rules and the "within normal limits" items, with their trace (one
     frame per item, each aligned with ``parameters.motor(nerves)``)."""
     frame = p.motor(nerves)
@@ -242,20 +278,58 @@ def class_findings(nerves: pd.DataFrame, paths: pd.DataFrame, table: ThresholdTa
     parts = []
     for item in (LOW_CMAP, VERY_LOW_CMAP, ONE_NERVE_FLOOR, "normal_dcmap"):
         parts.append(
-            switched(frame, table, item, criteria=criteria, parameter="distal CMAP amplitude", unit="mV", value=amplitude,
-                     limit=lln_amplitude, settings=settings, block_no_response=False)
+            switched(
+                frame,
+                table,
+                item,
+                criteria=criteria,
+                parameter="distal CMAP amplitude",
+                unit="mV",
+                value=amplitude,
+                limit=lln_amplitude,
+                settings=settings,
+                block_no_response=False,
+            )
         )
     column = cv_column(settings)
     parts.append(
-        switched(frame, table, "normal_dml", criteria=criteria, parameter="distal latency", unit="ms",
-                 value=frame["distal_latency_ms"], limit=frame["uln_distal_latency_ms"], settings=settings)
+        switched(
+            frame,
+            table,
+            "normal_dml",
+            criteria=criteria,
+            parameter="distal latency",
+            unit="ms",
+            value=frame["distal_latency_ms"],
+            limit=frame["uln_distal_latency_ms"],
+            settings=settings,
+        )
     )
     parts.append(
-        switched(frame, table, "normal_cv", criteria=criteria, parameter="conduction velocity", unit="m/s",
-                 value=frame[column], limit=frame["lln_cv"], settings=settings, segment=frame[f"{column}_segment"])
+        switched(
+            frame,
+            table,
+            "normal_cv",
+            criteria=criteria,
+            parameter="conduction velocity",
+            unit="m/s",
+            value=frame[column],
+            limit=frame["lln_cv"],
+            settings=settings,
+            segment=frame[f"{column}_segment"],
+        )
     )
-    f_normal = switched(frame, table, "normal_f", criteria=criteria, parameter="F-wave latency", unit="ms",
-                        value=frame["f_latency_ms"], limit=frame["uln_f_latency_ms"], settings=settings)
+    f_normal = switched(
+        frame,
+        table,
+        "normal_f",
+        criteria=criteria,
+        parameter="F-wave latency",
+        unit="ms",
+        value=frame["f_latency_ms"],
+        limit=frame["uln_f_latency_ms"],
+        settings=settings,
+    )
     # Absent F-waves are a finding here (not within normal limits), not missing data.
     absent = frame["f_absent"].to_numpy(dtype=bool) & (f_normal["reason"] == "value missing").to_numpy()
     f_normal.loc[absent, ["status", "reason"]] = [NOT_MET, "F-waves absent"]
@@ -267,14 +341,39 @@ def class_findings(nerves: pd.DataFrame, paths: pd.DataFrame, table: ThresholdTa
     with np.errstate(invalid="ignore"):
         proximal = np.round(amplitude * (1.0 - fall / 100.0), 6)
     path = best["path"].to_numpy(dtype=object)
-    no_path = (np.isnan(fall) & ~frame["no_response"].to_numpy(dtype=bool), f"{NO_PATH} ({settings.block_path.replace('_', ' ')})")
-    parts.append(
-        switched(frame, table, "normal_pcmap", criteria=criteria, parameter="proximal CMAP amplitude (lowest eligible site)",
-                 unit="mV", value=proximal, limit=lln_amplitude, settings=settings, segment=path, blocked=[no_path])
+    no_path = (
+        np.isnan(fall) & ~frame["no_response"].to_numpy(dtype=bool),
+        f"{NO_PATH} ({settings.block_path.replace('_', ' ')})",
     )
     parts.append(
-        switched(frame, table, "normal_ratio", criteria=criteria, parameter="conduction block (amplitude fall from distal)",
-                 unit="%", value=fall, limit=None, settings=settings, segment=path, blocked=[no_path])
+        switched(
+            frame,
+            table,
+            "normal_pcmap",
+            criteria=criteria,
+            parameter="proximal CMAP amplitude (lowest eligible site)",
+            unit="mV",
+            value=proximal,
+            limit=lln_amplitude,
+            settings=settings,
+            segment=path,
+            blocked=[no_path],
+        )
+    )
+    parts.append(
+        switched(
+            frame,
+            table,
+            "normal_ratio",
+            criteria=criteria,
+            parameter="conduction block (amplitude fall from distal)",
+            unit="%",
+            value=fall,
+            limit=None,
+            settings=settings,
+            segment=path,
+            blocked=[no_path],
+        )
     )
     return parts
 
@@ -301,7 +400,9 @@ def no_response_reasons(parts: list[pd.DataFrame], nerves: pd.DataFrame) -> pd.D
     return findings
 
 
-def nerve_state(findings: pd.DataFrame, nerves: pd.DataFrame, settings: Settings, features: list[str]) -> pd.DataFrame:
+def nerve_state(
+    findings: pd.DataFrame, nerves: pd.DataFrame, settings: Settings, features: list[str]
+) -> pd.DataFrame:
     """One row per visit and nerve identity (nerve and side, or nerve alone per the setting).
 
     ``findings`` as :func:`no_response_reasons` returns them: one block per item, each aligned with
@@ -355,7 +456,7 @@ def _met_by_item(findings: pd.DataFrame, n: int) -> dict[str, np.ndarray]:
     if len(findings) % n:
         raise ValueError("findings are not aligned with the motor nerve tests")
     items = findings["item"].to_numpy(dtype=object)
-    met = (findings["status"].to_numpy(dtype=object) == MET)
+    met = findings["status"].to_numpy(dtype=object) == MET
     result = {}
     for start in range(0, len(findings), n):
         block = items[start : start + n]
@@ -426,33 +527,62 @@ def classify(
     # Distal amplitudes not recorded in some nerve while every recorded one would fit the inexcitable class:
     # that class can be neither confirmed nor excluded, so neither axonal nor normal is given.
     n_unknown = n_nerves - n_absent - n_present
-    undecidable = enough & (n_unknown > 0) & ((n_present == 0) | ((n_present == 1) & (n_present_very_low == 1)))
+    undecidable = (
+        enough & (n_unknown > 0) & ((n_present == 0) | ((n_present == 1) & (n_present_very_low == 1)))
+    )
     decided[undecidable] = True
     assign(all_absent, "inexcitable", "distal CMAP absent in all nerves")
-    assign(one_very_low, "inexcitable", f"distal CMAP absent in all nerves but one, whose distal CMAP is {very_low}")
+    assign(
+        one_very_low,
+        "inexcitable",
+        f"distal CMAP absent in all nerves but one, whose distal CMAP is {very_low}",
+    )
 
     low = rule_text(table, LOW_CMAP)
     two_low = per_visit(state["low"], keys) >= 2
     exception = (total_items == 1) & (per_visit((state["n_items"] == 1) & state["very_low"], keys) == 1)
     missing = _missing_feature_findings(findings, features)
-    note = missing.reindex(keys, fill_value=0).map(lambda k: f"; {k} demyelinating finding(s) not evaluable for missing data" if k else "")
-    assign(two_low & (total_items == 0), "axonal",
-           pd.Series(f"no demyelinating feature in any nerve and distal CMAP {low} in ≥ 2 nerves", index=keys) + note)
-    assign(two_low & exception, "axonal",
-           pd.Series(f"one demyelinating feature, in one nerve whose distal CMAP is {very_low}, and distal CMAP {low} in ≥ 2 nerves",
-                     index=keys) + note)
+    note = missing.reindex(keys, fill_value=0).map(
+        lambda k: f"; {k} demyelinating finding(s) not evaluable for missing data" if k else ""
+    )
+    assign(
+        two_low & (total_items == 0),
+        "axonal",
+        pd.Series(f"no demyelinating feature in any nerve and distal CMAP {low} in ≥ 2 nerves", index=keys)
+        + note,
+    )
+    assign(
+        two_low & exception,
+        "axonal",
+        pd.Series(
+            f"one demyelinating feature, in one nerve whose distal CMAP is {very_low}, and distal CMAP {low} "
+            "in ≥ 2 nerves",
+            index=keys,
+        )
+        + note,
+    )
 
     all_normal = per_visit(state["normal"], keys) == n_nerves
-    assign(enough & all_normal & (total_items == 0), "normal", "all values within normal limits in all nerves")
+    assign(
+        enough & all_normal & (total_items == 0), "normal", "all values within normal limits in all nerves"
+    )
 
     abnormal, unevaluable = _normal_item_status(findings, keys)
     reasons = np.select(
-        [n_nerves == 0, total_items > 0, n_nerves < MIN_NERVES, undecidable & (outcome == "equivocal"), abnormal, unevaluable],
+        [
+            n_nerves == 0,
+            total_items > 0,
+            n_nerves < MIN_NERVES,
+            undecidable & (outcome == "equivocal"),
+            abnormal,
+            unevaluable,
+        ],
         [
             "no motor nerve studied: the study cannot be classified",
             "demyelinating feature(s) found, but not in the combination the demyelinating class requires",
             f"fewer than {MIN_NERVES} motor nerves studied: too few to classify",
-            "distal CMAP not recorded in every nerve: the inexcitable class can be neither confirmed nor excluded",
+            "distal CMAP not recorded in every nerve: the inexcitable class can be neither confirmed nor "
+            "excluded",
             "values outside normal limits that fit neither the demyelinating, axonal nor inexcitable pattern",
             "not all values could be evaluated: the study cannot be called normal",
         ],
@@ -465,10 +595,14 @@ def classify(
 
 def _missing_feature_findings(findings: pd.DataFrame, features: list[str]) -> pd.Series:
     # Plain arrays of the three columns needed (filtering the whole findings frame costs more).
-    chosen = findings["item"].isin(features).to_numpy(dtype=bool) & (findings["status"].to_numpy(dtype=object) == NOT_EVALUABLE)
+    chosen = findings["item"].isin(features).to_numpy(dtype=bool) & (
+        findings["status"].to_numpy(dtype=object) == NOT_EVALUABLE
+    )
     reasons = findings["reason"].to_numpy(dtype=object)[chosen]
     # Few distinct reasons: each is tested once (text only; anything else is not a missing-data reason).
-    missing = rules.per_distinct(lambda why: isinstance(why, str) and why.startswith(MISSING_DATA), reasons).astype(int)
+    missing = rules.per_distinct(
+        lambda why: isinstance(why, str) and why.startswith(MISSING_DATA), reasons
+    ).astype(int)
     return pd.Series(missing, index=findings["visit_key"].to_numpy()[chosen]).groupby(level=0).sum()
 
 

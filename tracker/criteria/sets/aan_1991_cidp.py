@@ -19,21 +19,21 @@ Items (thresholds in ``tables/aan-1991-cidp.csv``):
 Decisions where the published text leaves a gap (also in the project's decisions table):
 
 - Amplitude switch: the CMAP is the distal (site 1) negative-peak CMAP of the same nerve. The text says
-  "> 80 %" and "< 80 %"; exactly 80 % of LLN is put on the normal-amplitude branch (the stricter branch needs
-  "< 80 %", as EFNS/PNS 2010 writes it). When the distal CMAP or its LLN is missing the branch cannot be chosen
-  and the finding is not evaluable.
-- Item 2 segments are fixed by the criteria, so ``Settings.block_path`` does not apply; ``Settings.cv_segments``
-  does apply to item 1 (the criteria do not restrict the velocity segment).
+  "> 80 %" and "< 80 %"; exactly 80 % of LLN is put on the normal-amplitude branch (the stricter branch
+  needs "< 80 %", as EFNS/PNS 2010 writes it). When the distal CMAP or its LLN is missing the branch cannot
+  be chosen and the finding is not evaluable.
+- Item 2 segments are fixed by the criteria, so ``Settings.block_path`` does not apply;
+  ``Settings.cv_segments`` does apply to item 1 (the criteria do not restrict the velocity segment).
 - Item 2 measure: negative-peak area and negative-peak amplitude, the larger drop decides (the text says "area
   or amplitude"; it names peak-to-peak amplitude for block, the tool stores negative-peak amplitude only).
   When one of the two is missing the other decides (the reason says so); both missing → not evaluable.
   No distal-amplitude floor (the criteria give none); a nerve without a recordable distal response is not
   evaluable.
-- Item 2 duration: "15 %" is the increase of negative-peak duration from the distal to the proximal site of the
-  standard segment, in percent of the distal duration. It only labels the finding (exactly 15 % → partial
+- Item 2 duration: "15 %" is the increase of negative-peak duration from the distal to the proximal site of
+  the standard segment, in percent of the distal duration. It only labels the finding (exactly 15 % → partial
   block; > 15 % strict → dispersion); the item is met on the > 20 % drop alone, also when duration is missing.
-- Item 3: the AAN text has no wrist-entrapment exclusion, so by default a median distal latency is judged
-  also when the clinician marked a neuropathy at the wrist (the trace says so). ``Settings.aan_wrist_exclusion``
+- Item 3: the AAN text has no wrist-entrapment exclusion, so by default a median distal latency is judged also
+  when the clinician marked a neuropathy at the wrist (the trace says so). ``Settings.aan_wrist_exclusion``
   applies the EFNS/PNS exclusion instead (a project rule; the finding is then not applicable).
 - Item 4: absent F-waves count only when a distal CMAP was recorded (> 0 mV) — absent F-waves with no motor
   response are inexcitability, not demyelination. The criteria set no other amplitude condition.
@@ -58,13 +58,24 @@ ITEMS = {
     3: (("dml",), 2, "distal latency"),
     4: (("f_latency", "f_absent"), 2, "F-waves"),
 }
-BLOCK_SEGMENTS = {"fibular": "ankle → below fibular head", "median": "wrist → elbow", "ulnar": "wrist → below elbow"}
+BLOCK_SEGMENTS = {
+    "fibular": "ankle → below fibular head",
+    "median": "wrist → elbow",
+    "ulnar": "wrist → below elbow",
+}
 
 NO_RESPONSE = "no recordable response at the distal site"
-SWITCH_UNKNOWN = "distal CMAP amplitude or its LLN missing: the amplitude-dependent threshold cannot be chosen"
-WRIST = "median distal latency not counted: neuropathy at the wrist judged by the clinician (project rule, setting aan_wrist_exclusion on)"
-WRIST_COUNTED = ("wrist entrapment recorded, latency counted: the AAN 1991 text has no such exclusion "
-                 "(publication's reading; setting aan_wrist_exclusion off)")
+SWITCH_UNKNOWN = (
+    "distal CMAP amplitude or its LLN missing: the amplitude-dependent threshold cannot be chosen"
+)
+WRIST = (
+    "median distal latency not counted: neuropathy at the wrist judged by the clinician (project rule, "
+    "setting aan_wrist_exclusion on)"
+)
+WRIST_COUNTED = (
+    "wrist entrapment recorded, latency counted: the AAN 1991 text has no such exclusion "
+    "(publication's reading; setting aan_wrist_exclusion off)"
+)
 NOT_A_BLOCK_NERVE = "no AAN 1991 block segment for this nerve (only peroneal, median and ulnar)"
 NO_STANDARD_SITE = "no stimulation at the proximal end of the standard segment"
 F_ABSENT_ELSEWHERE = "F-waves absent (judged by the absent-F item)"
@@ -73,7 +84,8 @@ F_NOT_RECORDED = "F-waves not recorded"
 
 
 def _editable(frame: pd.DataFrame, *columns: str) -> pd.DataFrame:
-    """Text columns as plain objects so they can be rewritten (the engine may hand them over as categories)."""
+    """Text columns as plain objects so they can be rewritten (the engine
+    may hand them over as categories)."""
     for column in columns:
         frame[column] = frame[column].astype(object)
     return frame
@@ -92,22 +104,50 @@ def _switched(frame: pd.DataFrame, table: ThresholdTable, item: str, low_item: s
     factor = np.where(low, low_rows["value"].to_numpy(dtype=float), normal["value"].to_numpy(dtype=float))
     threshold = factor * limit
     names = rules.per_distinct(
-        lambda f, r, lo: f"{f * 100:g} % of {str(r).upper()}" + (" (distal CMAP < 80 % of LLN)" if lo else ""),
-        factor, normal["reference"].to_numpy(dtype=object), np.asarray(low, dtype=bool),
+        lambda f, r, lo: (
+            f"{f * 100:g} % of {str(r).upper()}" + (" (distal CMAP < 80 % of LLN)" if lo else "")
+        ),
+        factor,
+        normal["reference"].to_numpy(dtype=object),
+        np.asarray(low, dtype=bool),
     )
     return threshold, normal, names, known
 
 
-def _switched_item(nerves, table, settings, *, item, low_item, parameter, unit, value_column, limit_column, segment=None, extra_blocks=(), not_applicable=()):
+def _switched_item(
+    nerves,
+    table,
+    settings,
+    *,
+    item,
+    low_item,
+    parameter,
+    unit,
+    value_column,
+    limit_column,
+    segment=None,
+    extra_blocks=(),
+    not_applicable=(),
+):
     frame = p.motor(nerves)
     limit = frame[limit_column].to_numpy(dtype=float)
     value = frame[value_column].to_numpy(dtype=float)
     threshold, rows, names, known = _switched(frame, table, item, low_item, limit)
     no_response = frame["no_response"].to_numpy(dtype=bool)
     return rules.item_findings(
-        frame, criteria=ID, item=item, parameter=parameter, unit=unit, value=value, threshold=threshold,
-        comparator=rows["comparator"].to_numpy(dtype=object), limit=limit, limit_name=names,
-        source=rows["source"], source_status=rows["status"], segment=segment,
+        frame,
+        criteria=ID,
+        item=item,
+        parameter=parameter,
+        unit=unit,
+        value=value,
+        threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object),
+        limit=limit,
+        limit_name=names,
+        source=rows["source"],
+        source_status=rows["status"],
+        segment=segment,
         **p.limit_provenance(frame, limit_column),
         blocked=rules.common_blocks(frame, settings)
         + [(mask(frame), why) for mask, why in extra_blocks]
@@ -119,19 +159,50 @@ def _switched_item(nerves, table, settings, *, item, low_item, parameter, unit, 
 def velocity(nerves, table, settings):
     column = "cv_standard" if settings.cv_segments == "standard" else "cv_outside_entrapment"
     segment = p.motor(nerves)[f"{column}_segment"].to_numpy(dtype=object)
-    return _switched_item(nerves, table, settings, item="cv", low_item="cv_low_cmap", parameter="conduction velocity", unit="m/s",
-                          value_column=column, limit_column="lln_cv", segment=segment)
+    return _switched_item(
+        nerves,
+        table,
+        settings,
+        item="cv",
+        low_item="cv_low_cmap",
+        parameter="conduction velocity",
+        unit="m/s",
+        value_column=column,
+        limit_column="lln_cv",
+        segment=segment,
+    )
 
 
 def distal_latency(nerves, table, settings):
     def wrist(frame):
-        return (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(bool).to_numpy()
+        return (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(
+            bool
+        ).to_numpy()
 
     if settings.aan_wrist_exclusion:
-        return _switched_item(nerves, table, settings, item="dml", low_item="dml_low_cmap", parameter="distal latency", unit="ms",
-                              value_column="distal_latency_ms", limit_column="uln_distal_latency_ms", not_applicable=[(wrist, WRIST)])
-    found = _switched_item(nerves, table, settings, item="dml", low_item="dml_low_cmap", parameter="distal latency", unit="ms",
-                           value_column="distal_latency_ms", limit_column="uln_distal_latency_ms")
+        return _switched_item(
+            nerves,
+            table,
+            settings,
+            item="dml",
+            low_item="dml_low_cmap",
+            parameter="distal latency",
+            unit="ms",
+            value_column="distal_latency_ms",
+            limit_column="uln_distal_latency_ms",
+            not_applicable=[(wrist, WRIST)],
+        )
+    found = _switched_item(
+        nerves,
+        table,
+        settings,
+        item="dml",
+        low_item="dml_low_cmap",
+        parameter="distal latency",
+        unit="ms",
+        value_column="distal_latency_ms",
+        limit_column="uln_distal_latency_ms",
+    )
     # The trace says the mark was seen and not applied (judged findings only; a gap keeps its own reason).
     marked = wrist(p.motor(nerves)) & np.isin(found["status"].to_numpy(dtype=object), [MET, NOT_MET])
     found = _editable(found, "reason")
@@ -143,8 +214,18 @@ def f_latency(nerves, table, settings):
     def absent(frame):
         return frame["f_absent"].to_numpy(dtype=bool)
 
-    return _switched_item(nerves, table, settings, item="f_latency", low_item="f_latency_low_cmap", parameter="F-wave latency", unit="ms",
-                          value_column="f_latency_ms", limit_column="uln_f_latency_ms", not_applicable=[(absent, F_ABSENT_ELSEWHERE)])
+    return _switched_item(
+        nerves,
+        table,
+        settings,
+        item="f_latency",
+        low_item="f_latency_low_cmap",
+        parameter="F-wave latency",
+        unit="ms",
+        value_column="f_latency_ms",
+        limit_column="uln_f_latency_ms",
+        not_applicable=[(absent, F_ABSENT_ELSEWHERE)],
+    )
 
 
 def f_absent(nerves, table, settings):
@@ -155,15 +236,27 @@ def f_absent(nerves, table, settings):
     absent = frame["f_absent"].to_numpy(dtype=bool)
     present = ~absent & ~np.isnan(frame["f_latency_ms"].to_numpy(dtype=float))
     findings = rules.item_findings(
-        frame, criteria=ID, item="f_absent", parameter="F-waves absent (distal CMAP)", unit="mV", value=amplitude,
-        threshold=rows["value"].to_numpy(dtype=float), comparator=rows["comparator"].to_numpy(dtype=object),
-        limit=frame["lln_amplitude"].to_numpy(dtype=float), limit_name="recordable distal CMAP (> 0 mV)",
-        source=rows["source"], source_status=rows["status"], requirement=absent,
+        frame,
+        criteria=ID,
+        item="f_absent",
+        parameter="F-waves absent (distal CMAP)",
+        unit="mV",
+        value=amplitude,
+        threshold=rows["value"].to_numpy(dtype=float),
+        comparator=rows["comparator"].to_numpy(dtype=object),
+        limit=frame["lln_amplitude"].to_numpy(dtype=float),
+        limit_name="recordable distal CMAP (> 0 mV)",
+        source=rows["source"],
+        source_status=rows["status"],
+        requirement=absent,
         **p.limit_provenance(frame, "lln_amplitude"),
         blocked=rules.common_blocks(frame, settings)
         + [
             (~absent & ~present, F_NOT_RECORDED),
-            (absent & np.isnan(amplitude) & ~frame["no_response"].to_numpy(dtype=bool), "distal CMAP amplitude missing: absent F-waves cannot be interpreted"),
+            (
+                absent & np.isnan(amplitude) & ~frame["no_response"].to_numpy(dtype=bool),
+                "distal CMAP amplitude missing: absent F-waves cannot be interpreted",
+            ),
         ],
         inapplicable=[(absent & frame["no_response"].to_numpy(dtype=bool), NO_RESPONSE)],
     )
@@ -191,9 +284,19 @@ def block_or_dispersion(nerves, paths, table, settings):
     no_response = frame["no_response"].to_numpy(dtype=bool)
     no_site = block_nerve & np.isnan(seg["site_order"].to_numpy(dtype=float))
     findings = rules.item_findings(
-        frame, criteria=ID, item="cb_td", parameter="block or dispersion (negative-peak area or amplitude drop)", unit="%",
-        value=value, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object), limit=np.full(len(frame), np.nan),
-        limit_name="", source=rows["source"], source_status=rows["status"], segment=seg["segment"].to_numpy(dtype=object),
+        frame,
+        criteria=ID,
+        item="cb_td",
+        parameter="block or dispersion (negative-peak area or amplitude drop)",
+        unit="%",
+        value=value,
+        threshold=threshold,
+        comparator=rows["comparator"].to_numpy(dtype=object),
+        limit=np.full(len(frame), np.nan),
+        limit_name="",
+        source=rows["source"],
+        source_status=rows["status"],
+        segment=seg["segment"].to_numpy(dtype=object),
         blocked=rules.common_blocks(frame, settings) + [(no_site & ~no_response, NO_STANDARD_SITE)],
         inapplicable=[(~block_nerve, NOT_A_BLOCK_NERVE), (no_response, NO_RESPONSE)],
     )
@@ -210,16 +313,24 @@ def block_or_dispersion(nerves, paths, table, settings):
 
     def label(dur, hit, disp):
         if np.isnan(dur):
-            return "duration not measured" + (": block or dispersion not distinguished (both count)" if hit else "")
+            return "duration not measured" + (
+                ": block or dispersion not distinguished (both count)" if hit else ""
+            )
         if not hit:
             return f"duration change {pct(dur, sign=True)} %"
         if disp:
-            return f"duration change {pct(dur, sign=True)} % (> {dispersion.value:g} %): abnormal temporal dispersion and possible block"
+            return (
+                f"duration change {pct(dur, sign=True)} % (> {dispersion.value:g} %): abnormal temporal "
+                "dispersion and possible block"
+            )
         return f"duration change {pct(dur, sign=True)} % (≤ {dispersion.value:g} %): partial conduction block"
 
     details = (
-        rules.per_distinct(drop, amplitude[evaluable]) + ", " + rules.per_distinct(area_drop, area[evaluable])
-        + "; " + rules.per_distinct(label, duration[evaluable], hit, dispersed[evaluable])
+        rules.per_distinct(drop, amplitude[evaluable])
+        + ", "
+        + rules.per_distinct(area_drop, area[evaluable])
+        + "; "
+        + rules.per_distinct(label, duration[evaluable], hit, dispersed[evaluable])
     )
     findings = _editable(findings, "reason")
     findings.loc[evaluable, "reason"] = details
@@ -240,25 +351,38 @@ def findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> p
     )
 
 
-def _item_counts(found: pd.DataFrame, items: tuple[str, ...], settings: Settings, keys: pd.Index) -> tuple[pd.Series, pd.Series]:
-    """Per visit: the number of nerves (identities, see ``rules.nerve_identity``) meeting any of ``items``, and
-    the number not meeting them where one is not evaluable for want of data (more data could still count)."""
+def _item_counts(
+    found: pd.DataFrame, items: tuple[str, ...], settings: Settings, keys: pd.Index
+) -> tuple[pd.Series, pd.Series]:
+    """Per visit: the number of nerves (identities, see ``rules.nerve_identity``) meeting
+    any of ``items``, and the number not meeting them where one is not evaluable for want
+    of data (more data could still count)."""
     part = found[np.isin(found["item"].to_numpy(dtype=object), list(items))]
     status = part["status"].to_numpy(dtype=object)
-    per_nerve = pd.DataFrame(
-        {
-            "visit_key": part["visit_key"].to_numpy(),
-            "identity": rules.nerve_identity(part, settings).to_numpy(),
-            "met": status == MET,
-            "wanting": status == NOT_EVALUABLE,
-        }
-    ).groupby(["visit_key", "identity"])[["met", "wanting"]].any()
-    per_visit = pd.DataFrame({"met": per_nerve["met"], "open": per_nerve["wanting"] & ~per_nerve["met"]}).groupby(level="visit_key").sum()
+    per_nerve = (
+        pd.DataFrame(
+            {
+                "visit_key": part["visit_key"].to_numpy(),
+                "identity": rules.nerve_identity(part, settings).to_numpy(),
+                "met": status == MET,
+                "wanting": status == NOT_EVALUABLE,
+            }
+        )
+        .groupby(["visit_key", "identity"])[["met", "wanting"]]
+        .any()
+    )
+    per_visit = (
+        pd.DataFrame({"met": per_nerve["met"], "open": per_nerve["wanting"] & ~per_nerve["met"]})
+        .groupby(level="visit_key")
+        .sum()
+    )
     per_visit = per_visit.reindex(keys, fill_value=0)
     return per_visit["met"].astype(int), per_visit["open"].astype(int)
 
 
-def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings) -> SetResult:
+def evaluate(
+    nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings
+) -> SetResult:
     found = findings(nerves, paths, settings)
     keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
     met_items: dict[int, np.ndarray] = {}
@@ -278,15 +402,24 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
             return "no motor nerve studied: the items cannot be judged"
         met_flags, open_flags = flags[: len(ITEMS)], flags[len(ITEMS) :]
         names = [f"{n} ({ITEMS[n][2]})" for n, hit in zip(ITEMS, met_flags) if hit]
-        text = f"{met_count} of 4 items met" + (f": {', '.join(names)}" if names else "") + f"; ≥ {ITEMS_NEEDED} needed"
+        text = (
+            f"{met_count} of 4 items met"
+            + (f": {', '.join(names)}" if names else "")
+            + f"; ≥ {ITEMS_NEEDED} needed"
+        )
         if met_count < ITEMS_NEEDED and open_count and met_count + open_count >= ITEMS_NEEDED:
             open_items = [f"{n} ({ITEMS[n][2]})" for n, hit in zip(ITEMS, open_flags) if hit]
-            text += f"; undecided: item {', '.join(open_items)} not evaluable in enough nerves for want of data"
+            text += (
+                f"; undecided: item {', '.join(open_items)} not evaluable in enough nerves for want of data"
+            )
         return text
 
     # Few visits differ in these flags: each combination's text is written once and spread over the visits.
     texts = rules.per_distinct(
-        rule_text, np.asarray(studied, dtype=bool), items_met, open_count,
+        rule_text,
+        np.asarray(studied, dtype=bool),
+        items_met,
+        open_count,
         *(np.asarray(met_items[n], dtype=bool).reshape(len(keys)) for n in ITEMS),
         *(np.asarray(undecided[n], dtype=bool).reshape(len(keys)) for n in ITEMS),
     )
@@ -298,8 +431,22 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     for number, (names, _, _) in ITEMS.items():
         open_rows |= np.isin(item, list(names)) & np.isin(visit, keys[undecided[number]])
     open_rows &= rules.wanting(found)
-    outcome, rule, items = rules.settle(pd.Series(outcome, index=keys), pd.Series(list(texts), index=keys, dtype=object), best,
-                                        {"not_met": 0, "met": 1}, found[open_rows], keys, note=False)
-    outcomes = pd.DataFrame({"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "items_met": items_met,
-                             "undecided_items": items.to_numpy()})
+    outcome, rule, items = rules.settle(
+        pd.Series(outcome, index=keys),
+        pd.Series(list(texts), index=keys, dtype=object),
+        best,
+        {"not_met": 0, "met": 1},
+        found[open_rows],
+        keys,
+        note=False,
+    )
+    outcomes = pd.DataFrame(
+        {
+            "visit_key": keys,
+            "outcome": outcome.to_numpy(),
+            "rule": rule.to_numpy(),
+            "items_met": items_met,
+            "undecided_items": items.to_numpy(),
+        }
+    )
     return SetResult(ID, load(ID).version, found, outcomes, extra_keys=("items_met",))

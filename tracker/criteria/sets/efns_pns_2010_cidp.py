@@ -28,7 +28,16 @@ def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings
             p.dispersion(nerves, paths, table, "td", settings, criteria=ID),
             p.distal_duration(nerves, table, "dcmap_duration", settings, criteria=ID),
             # Probable block: tibial excluded (table), and Erb's point needs ≥ 50 % (the definite item).
-            p.block(nerves, paths, table, "probable_cb", "cb_precondition", settings, criteria=ID, exclude_labels=("erb",)),
+            p.block(
+                nerves,
+                paths,
+                table,
+                "probable_cb",
+                "cb_precondition",
+                settings,
+                criteria=ID,
+                exclude_labels=("erb",),
+            ),
         ],
         ignore_index=True,
     )
@@ -44,11 +53,23 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     low_rows = table.one("sensory_cv_low_snap")
     low, known = p.amplitude_switch(frame, table, "sensory_switch")
     threshold = np.where(low, low_rows.value, normal.value) * limit
-    names = np.where(low, f"{low_rows.value * 100:g} % of LLN (SNAP below 80 % of LLN)", f"{normal.value * 100:g} % of LLN")
+    names = np.where(
+        low, f"{low_rows.value * 100:g} % of LLN (SNAP below 80 % of LLN)", f"{normal.value * 100:g} % of LLN"
+    )
     cv = rules.item_findings(
-        frame, criteria=ID, item="sensory_cv", parameter="sensory conduction velocity", unit="m/s",
-        value=frame["sensory_cv"].to_numpy(dtype=float), threshold=threshold, comparator="lt", limit=limit,
-        limit_name=names, source=normal.source, source_status=normal.status, **p.limit_provenance(frame, "lln_cv"),
+        frame,
+        criteria=ID,
+        item="sensory_cv",
+        parameter="sensory conduction velocity",
+        unit="m/s",
+        value=frame["sensory_cv"].to_numpy(dtype=float),
+        threshold=threshold,
+        comparator="lt",
+        limit=limit,
+        limit_name=names,
+        source=normal.source,
+        source_status=normal.status,
+        **p.limit_provenance(frame, "lln_cv"),
         blocked=rules.common_blocks(frame, settings)
         + [(~known & ~frame["no_response"].to_numpy(dtype=bool), "SNAP amplitude or its LLN missing")],
         inapplicable=[(frame["no_response"].to_numpy(dtype=bool), "no recordable SNAP")],
@@ -58,14 +79,29 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     lln = frame["lln_amplitude"].to_numpy(dtype=float)
     amplitude = frame["distal_amplitude"].to_numpy(dtype=float)
     reduced = rules.compare(amplitude, lln, "lt")
-    wrist = (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(bool).to_numpy()
+    wrist = (frame["nerve"] == "median").to_numpy() & frame["wrist_entrapment"].fillna(False).astype(
+        bool
+    ).to_numpy()
     is_sural = (frame["nerve"] == "sural").to_numpy()
     snap = rules.item_findings(
-        frame, criteria=ID, item="snap_reduced", parameter="SNAP amplitude", unit="µV", value=amplitude, threshold=lln,
-        comparator=np.where(is_sural, "ge", "lt"), limit=lln, limit_name="LLN", source=sparing.source, source_status=sparing.status,
+        frame,
+        criteria=ID,
+        item="snap_reduced",
+        parameter="SNAP amplitude",
+        unit="µV",
+        value=amplitude,
+        threshold=lln,
+        comparator=np.where(is_sural, "ge", "lt"),
+        limit=lln,
+        limit_name="LLN",
+        source=sparing.source,
+        source_status=sparing.status,
         **p.limit_provenance(frame, "lln_amplitude"),
         blocked=rules.common_blocks(frame, settings),
-        inapplicable=[(wrist, "median SNAP not counted: neuropathy at the wrist judged by the clinician"), ((frame["nerve"] == "ulnar").to_numpy(), "not part of the sural-sparing pattern")],
+        inapplicable=[
+            (wrist, "median SNAP not counted: neuropathy at the wrist judged by the clinician"),
+            ((frame["nerve"] == "ulnar").to_numpy(), "not part of the sural-sparing pattern"),
+        ],
     )
     snap.loc[is_sural, "item"] = "sural_normal"
     del reduced
@@ -98,7 +134,9 @@ def combine(motor: pd.DataFrame, keys: pd.Index, settings: Settings) -> tuple[pd
     }
     probable_rules = {
         "probable block in ≥ 2 nerves": count("probable_cb") >= 2,
-        "probable block in 1 nerve plus another parameter in another nerve": rules.one_plus_other(sets, "probable_cb", DEMYELINATING, keys),
+        "probable block in 1 nerve plus another parameter in another nerve": rules.one_plus_other(
+            sets, "probable_cb", DEMYELINATING, keys
+        ),
     }
     any_single = rules.count_any(sets, DEMYELINATING, keys) >= 1
     outcome = pd.Series("not_met", index=keys, dtype=object)
@@ -114,7 +152,9 @@ def combine(motor: pd.DataFrame, keys: pd.Index, settings: Settings) -> tuple[pd
     return outcome, rule
 
 
-def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings) -> SetResult:
+def evaluate(
+    nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings
+) -> SetResult:
     motor = motor_findings(nerves, paths, settings)
     sensory = sensory_findings(nerves, settings)
     keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
@@ -136,12 +176,25 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     supportive = pd.Series(NOT_EVALUABLE, index=keys, dtype=object)
     supportive[any_where((status == MET) | (status == NOT_MET))] = NOT_MET
     hit = pd.Series(
-        any_where(met & (item == "sensory_cv")) | (any_where(met & (item == "snap_reduced")) & any_where(met & (item == "sural_normal"))),
+        any_where(met & (item == "sensory_cv"))
+        | (any_where(met & (item == "snap_reduced")) & any_where(met & (item == "sural_normal"))),
         index=keys,
     )
     supportive[hit.to_numpy()] = MET
     outcomes = pd.DataFrame(
-        {"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "sensory_supportive": supportive.to_numpy(), "undecided_items": undecided.to_numpy()}
+        {
+            "visit_key": keys,
+            "outcome": outcome.to_numpy(),
+            "rule": rule.to_numpy(),
+            "sensory_supportive": supportive.to_numpy(),
+            "undecided_items": undecided.to_numpy(),
+        }
     )
-    return SetResult(ID, load(ID).version, pd.concat([motor, sensory], ignore_index=True), outcomes, extra_keys=("sensory_supportive",),
-                     outcome_items=(*DEMYELINATING, "probable_cb"))
+    return SetResult(
+        ID,
+        load(ID).version,
+        pd.concat([motor, sensory], ignore_index=True),
+        outcomes,
+        extra_keys=("sensory_supportive",),
+        outcome_items=(*DEMYELINATING, "probable_cb"),
+    )

@@ -56,7 +56,9 @@ UNKNOWN = "segment not in the segment table: an entrapment site cannot be ruled 
 NOT_NAMED = "nerve not named for this block item (median, ulnar, peroneal)"
 NOT_UPPER = "not an upper-limb nerve (probable block (i) is for upper-limb nerves)"
 SHORT = "short segment (probable block (i) needs a long segment)"
-PRECONDITION = "amplitude precondition failed: CMAP at the distal end of the segment not > 20 % of LLN and > 1 mV"
+PRECONDITION = (
+    "amplitude precondition failed: CMAP at the distal end of the segment not > 20 % of LLN and > 1 mV"
+)
 NO_PROXIMAL = "no proximal stimulation: block cannot be assessed"
 
 
@@ -103,7 +105,10 @@ def segment_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settin
     no_area = np.isnan(area)
     area_reason = np.empty(n, dtype=object)
     area_reason[no_area] = rules.per_distinct(
-        lambda a: "negative-peak area not recorded: block is defined by area" + ("" if np.isnan(a) else f" (amplitude drop {pct(a)} % not used)"),
+        lambda a: (
+            "negative-peak area not recorded: block is defined by area"
+            + ("" if np.isnan(a) else f" (amplitude drop {pct(a)} % not used)")
+        ),
         amplitude_drop[no_area],
     )
     details = np.empty(n, dtype=object)
@@ -114,40 +119,78 @@ def segment_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settin
         todo = rows & ~described
         if todo.any():
             details[todo] = (
-                "area drop " + rules.per_distinct(pct, area[todo]) + " %; CMAP at the distal end "
-                + rules.per_distinct(lambda c: f"{c:g}", cmap[todo]) + " mV (needs > " + rules.per_distinct(pct, lln_threshold[todo])
+                "area drop "
+                + rules.per_distinct(pct, area[todo])
+                + " %; CMAP at the distal end "
+                + rules.per_distinct(lambda c: f"{c:g}", cmap[todo])
+                + " mV (needs > "
+                + rules.per_distinct(pct, lln_threshold[todo])
                 + " mV = 20 % of LLN and > 1 mV); "
-                + rules.per_distinct(lambda d: "duration not measured" if np.isnan(d) else f"duration change {pct(d, sign=True)} %", duration[todo])
+                + rules.per_distinct(
+                    lambda d: (
+                        "duration not measured" if np.isnan(d) else f"duration change {pct(d, sign=True)} %"
+                    ),
+                    duration[todo],
+                )
             )
             described[todo] = True
         return details[rows]
 
-    def item(name: str, requirement: np.ndarray, binds_precondition: bool, scope: list[tuple[np.ndarray, str]], duration_rule: str):
+    def item(
+        name: str,
+        requirement: np.ndarray,
+        binds_precondition: bool,
+        scope: list[tuple[np.ndarray, str]],
+        duration_rule: str,
+    ):
         rows = table.per_nerve(name, seg["nerve"])
         threshold = rows["value"].to_numpy(dtype=float)
         reaches = rules.compare(area, threshold, rows["comparator"].to_numpy(dtype=object))
-        blocked = rules.common_blocks(seg, settings) + [(~np.isin(kind, ["standard", "proximal", "entrapment"]), UNKNOWN)]
+        blocked = rules.common_blocks(seg, settings) + [
+            (~np.isin(kind, ["standard", "proximal", "entrapment"]), UNKNOWN)
+        ]
         inapplicable = [(kind == "entrapment", ENTRAPMENT)] + scope
         if binds_precondition:
             inapplicable += [(failed, PRECONDITION)]
-            blocked += [(unknown_pre, "CMAP at the distal end of the segment or its LLN missing: the amplitude precondition cannot be checked")]
+            blocked += [
+                (
+                    unknown_pre,
+                    "CMAP at the distal end of the segment or its LLN missing: the amplitude precondition "
+                    "cannot be checked",
+                )
+            ]
         blocked += [(np.isnan(area), area_reason)]
-        blocked += [(reaches & no_duration, "duration not measured: needed once the area criterion is reached")]
+        blocked += [
+            (reaches & no_duration, "duration not measured: needed once the area criterion is reached")
+        ]
         found = rules.item_findings(
-            seg, criteria=ID, item=name, parameter="conduction block (negative-peak area reduction)", unit="%",
-            value=area, threshold=threshold, comparator=rows["comparator"].to_numpy(dtype=object),
-            limit=lln, limit_name="LLN of the CMAP amplitude (precondition)", source=rows["source"], source_status=rows["status"],
+            seg,
+            criteria=ID,
+            item=name,
+            parameter="conduction block (negative-peak area reduction)",
+            unit="%",
+            value=area,
+            threshold=threshold,
+            comparator=rows["comparator"].to_numpy(dtype=object),
+            limit=lln,
+            limit_name="LLN of the CMAP amplitude (precondition)",
+            source=rows["source"],
+            source_status=rows["status"],
             segment=seg["segment"].to_numpy(dtype=object),
             requirement=requirement & (precondition if binds_precondition else True),
-            limit_source=seg.get("lln_amplitude_source"), limit_status=seg.get("lln_amplitude_status"),
-            blocked=blocked, inapplicable=inapplicable,
+            limit_source=seg.get("lln_amplitude_source"),
+            limit_status=seg.get("lln_amplitude_status"),
+            blocked=blocked,
+            inapplicable=inapplicable,
         )
         status = found["status"].to_numpy(dtype=object)
         reason = found["reason"].to_numpy(dtype=object, copy=True)
         evaluable = (status == MET) | (status == NOT_MET)
         reason[evaluable] = describe(evaluable)
         short_of_duration = evaluable & reaches & ~requirement
-        reason[short_of_duration] = reason[short_of_duration] + f" — area criterion reached, duration is not {duration_rule}"
+        reason[short_of_duration] = (
+            reason[short_of_duration] + f" — area criterion reached, duration is not {duration_rule}"
+        )
         found["reason"] = pd.Series(reason, index=found.index, dtype=object)
         found["test_key"] = seg["test_key"].to_numpy()
         found["site_order"] = seg["site_order"].to_numpy()
@@ -159,9 +202,27 @@ def segment_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settin
         return np.isnan(table.per_nerve(name, seg["nerve"])["value"].to_numpy(dtype=float))
 
     frames = [
-        item("definite_cb", duration_ok, True, [(unnamed("definite_cb"), NOT_NAMED)], f"≤ {short_max.value:g} %"),
-        item("probable_cb_long", duration_ok, PRECONDITION_BINDS_PROBABLE, [(~upper, NOT_UPPER), (~long_segment, SHORT)], f"≤ {short_max.value:g} %"),
-        item("probable_cb_dispersed", dispersed, PRECONDITION_BINDS_PROBABLE, [(unnamed("probable_cb_dispersed"), NOT_NAMED)], f"> {dispersed_min.value:g} %"),
+        item(
+            "definite_cb",
+            duration_ok,
+            True,
+            [(unnamed("definite_cb"), NOT_NAMED)],
+            f"≤ {short_max.value:g} %",
+        ),
+        item(
+            "probable_cb_long",
+            duration_ok,
+            PRECONDITION_BINDS_PROBABLE,
+            [(~upper, NOT_UPPER), (~long_segment, SHORT)],
+            f"≤ {short_max.value:g} %",
+        ),
+        item(
+            "probable_cb_dispersed",
+            dispersed,
+            PRECONDITION_BINDS_PROBABLE,
+            [(unnamed("probable_cb_dispersed"), NOT_NAMED)],
+            f"> {dispersed_min.value:g} %",
+        ),
     ]
     return pd.concat(frames, ignore_index=True)
 
@@ -172,28 +233,50 @@ def per_nerve(segments: pd.DataFrame, nerves: pd.DataFrame, settings: Settings) 
     table = load(ID)
     frame = p.motor(nerves)
     status = segments["status"].to_numpy(dtype=object)
-    rank = np.select([status == MET, status == NOT_MET, status == NOT_EVALUABLE, status == NOT_APPLICABLE], [0, 1, 2, 3], default=4)
+    rank = np.select(
+        [status == MET, status == NOT_MET, status == NOT_EVALUABLE, status == NOT_APPLICABLE],
+        [0, 1, 2, 3],
+        default=4,
+    )
     value = segments["value"].to_numpy(dtype=float)
     missing = np.isnan(value)
     test_key = segments["test_key"].to_numpy()
     item_code = pd.factorize(segments["item"].to_numpy(dtype=object), sort=True)[0]
     # Per nerve test and item: met first, then not met, then not evaluable; the largest value first (missing
     # values last); then the most distal site. A stable sort keeps equal rows in their order.
-    order = np.lexsort((segments["site_order"].to_numpy(), np.where(missing, 0.0, -value), missing, rank, item_code, test_key))
+    order = np.lexsort(
+        (
+            segments["site_order"].to_numpy(),
+            np.where(missing, 0.0, -value),
+            missing,
+            rank,
+            item_code,
+            test_key,
+        )
+    )
     sorted_key, sorted_item = test_key[order], item_code[order]
-    opens = np.r_[True, (sorted_key[1:] != sorted_key[:-1]) | (sorted_item[1:] != sorted_item[:-1])] if len(order) else np.zeros(0, dtype=bool)
+    opens = (
+        np.r_[True, (sorted_key[1:] != sorted_key[:-1]) | (sorted_item[1:] != sorted_item[:-1])]
+        if len(order)
+        else np.zeros(0, dtype=bool)
+    )
     group = np.cumsum(opens) - 1
     best = segments.iloc[order[opens]].assign(rank=rank[order[opens]])
     # Segments that could not be assessed, other than the deciding one, are listed in the reason.
     others = ~opens & np.isin(status[order], [NOT_EVALUABLE, NOT_APPLICABLE])
     if others.any():
         rows = order[others]
-        pieces = rules.per_distinct(lambda seg, why: f"{seg} ({why})", segments["segment"].to_numpy(dtype=object)[rows],
-                                    segments["reason"].to_numpy(dtype=object)[rows])
+        pieces = rules.per_distinct(
+            lambda seg, why: f"{seg} ({why})",
+            segments["segment"].to_numpy(dtype=object)[rows],
+            segments["reason"].to_numpy(dtype=object)[rows],
+        )
         owner = group[others]
         notes = np.empty(int(opens.sum()), dtype=object)
         # Join the pieces of each nerve test and item in order: one pass per position within the group.
-        position = np.arange(len(owner)) - np.maximum.accumulate(np.where(np.r_[True, owner[1:] != owner[:-1]], np.arange(len(owner)), 0))
+        position = np.arange(len(owner)) - np.maximum.accumulate(
+            np.where(np.r_[True, owner[1:] != owner[:-1]], np.arange(len(owner)), 0)
+        )
         first = position == 0
         notes[owner[first]] = pieces[first]
         for step in range(1, int(position.max()) + 1):
@@ -210,14 +293,27 @@ def per_nerve(segments: pd.DataFrame, nerves: pd.DataFrame, settings: Settings) 
             continue
         rows = table.per_nerve(name, without["nerve"])
         found = rules.item_findings(
-            without, criteria=ID, item=name, parameter="conduction block (negative-peak area reduction)", unit="%",
-            value=np.full(len(without), np.nan), threshold=rows["value"].to_numpy(dtype=float),
-            comparator=rows["comparator"].to_numpy(dtype=object), limit=without["lln_amplitude"].to_numpy(dtype=float),
-            limit_name="LLN of the CMAP amplitude (precondition)", source=rows["source"], source_status=rows["status"],
-            limit_source=without.get("lln_amplitude_source"), limit_status=without.get("lln_amplitude_status"),
+            without,
+            criteria=ID,
+            item=name,
+            parameter="conduction block (negative-peak area reduction)",
+            unit="%",
+            value=np.full(len(without), np.nan),
+            threshold=rows["value"].to_numpy(dtype=float),
+            comparator=rows["comparator"].to_numpy(dtype=object),
+            limit=without["lln_amplitude"].to_numpy(dtype=float),
+            limit_name="LLN of the CMAP amplitude (precondition)",
+            source=rows["source"],
+            source_status=rows["status"],
+            limit_source=without.get("lln_amplitude_source"),
+            limit_status=without.get("lln_amplitude_status"),
             blocked=[(np.ones(len(without), dtype=bool), NO_PROXIMAL)],
             inapplicable=[(np.isnan(rows["value"].to_numpy(dtype=float)), NOT_NAMED)]
-            + ([((without["limb"] != "upper").to_numpy(), NOT_UPPER)] if name == "probable_cb_long" and "limb" in without else []),
+            + (
+                [((without["limb"] != "upper").to_numpy(), NOT_UPPER)]
+                if name == "probable_cb_long" and "limb" in without
+                else []
+            ),
         )
         found["test_key"] = without["test_key"].to_numpy()
         parts.append(found)
@@ -231,9 +327,18 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     row = table.one("snap_normal")
     lln = frame["lln_amplitude"].to_numpy(dtype=float)
     return rules.item_findings(
-        frame, criteria=ID, item="snap_normal", parameter="SNAP amplitude", unit="µV",
-        value=frame["distal_amplitude"].to_numpy(dtype=float), threshold=row.value * lln, comparator=row.comparator,
-        limit=lln, limit_name="LLN", source=row.source, source_status=row.status,
+        frame,
+        criteria=ID,
+        item="snap_normal",
+        parameter="SNAP amplitude",
+        unit="µV",
+        value=frame["distal_amplitude"].to_numpy(dtype=float),
+        threshold=row.value * lln,
+        comparator=row.comparator,
+        limit=lln,
+        limit_name="LLN",
+        source=row.source,
+        source_status=row.status,
         **p.limit_provenance(frame, "lln_amplitude"),
         blocked=rules.common_blocks(frame, settings),
     )
@@ -241,7 +346,9 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
 
 def _sensory_key(sensory: pd.DataFrame, keys: pd.Index) -> pd.Series:
     status = sensory["status"].to_numpy(dtype=object)
-    by_visit = pd.DataFrame({"abnormal": status == NOT_MET, "normal": status == MET}).groupby(sensory["visit_key"].to_numpy())
+    by_visit = pd.DataFrame({"abnormal": status == NOT_MET, "normal": status == MET}).groupby(
+        sensory["visit_key"].to_numpy()
+    )
     abnormal = by_visit["abnormal"].any().reindex(keys, fill_value=False).to_numpy(dtype=bool)
     normal = by_visit["normal"].all().reindex(keys, fill_value=False).to_numpy(dtype=bool)
     result = np.full(len(keys), NOT_EVALUABLE, dtype=object)
@@ -259,10 +366,16 @@ def _join_per_visit(visit_keys: np.ndarray, texts: np.ndarray, sep: str) -> pd.S
     text_codes, text_values = pd.factorize(np.asarray(texts, dtype=object), sort=True)
     order = np.lexsort((text_codes, visit_codes))
     visit_codes, text_codes = visit_codes[order], text_codes[order]
-    keep = np.r_[True, (visit_codes[1:] != visit_codes[:-1]) | (text_codes[1:] != text_codes[:-1])] if len(order) else np.zeros(0, dtype=bool)
+    keep = (
+        np.r_[True, (visit_codes[1:] != visit_codes[:-1]) | (text_codes[1:] != text_codes[:-1])]
+        if len(order)
+        else np.zeros(0, dtype=bool)
+    )
     visit_codes, pieces = visit_codes[keep], np.asarray(text_values, dtype=object)[text_codes[keep]]
     starts = np.r_[True, visit_codes[1:] != visit_codes[:-1]] if len(visit_codes) else np.zeros(0, dtype=bool)
-    position = np.arange(len(visit_codes)) - np.maximum.accumulate(np.where(starts, np.arange(len(visit_codes)), 0))
+    position = np.arange(len(visit_codes)) - np.maximum.accumulate(
+        np.where(starts, np.arange(len(visit_codes)), 0)
+    )
     joined = np.empty(len(visit_values), dtype=object)
     joined[visit_codes[starts]] = pieces[starts]
     for step in range(1, int(position.max()) + 1 if len(position) else 1):
@@ -271,23 +384,33 @@ def _join_per_visit(visit_keys: np.ndarray, texts: np.ndarray, sep: str) -> pd.S
     return pd.Series(joined, index=visit_values, dtype=object)
 
 
-def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings) -> SetResult:
+def evaluate(
+    nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings
+) -> SetResult:
     segments = segment_findings(nerves, paths, settings)
     motor = per_nerve(segments, nerves, settings)
     sensory = sensory_findings(nerves, settings)
     keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
     outcome = pd.Series("not_met", index=keys, dtype=object)
-    rule = pd.Series("no segment outside entrapment sites meets definite or probable block", index=keys, dtype=object)
-    rule[~keys.isin(segments["visit_key"].unique())] = "no motor segment with proximal stimulation: block cannot be assessed"
+    rule = pd.Series(
+        "no segment outside entrapment sites meets definite or probable block", index=keys, dtype=object
+    )
+    rule[~keys.isin(segments["visit_key"].unique())] = (
+        "no motor segment with proximal stimulation: block cannot be assessed"
+    )
     met = segments[segments["status"].to_numpy(dtype=object) == MET]
     for level in ("probable", "definite"):
-        hits = met[np.isin(met["item"].to_numpy(dtype=object), [i for i, lv in LEVELS.items() if lv == level])]
+        hits = met[
+            np.isin(met["item"].to_numpy(dtype=object), [i for i, lv in LEVELS.items() if lv == level])
+        ]
         if hits.empty:
             continue
         where = rules.per_distinct(
             lambda n, s, seg, v: f"{n} {s} {seg} (area drop {pct(v)} %)",
-            hits["nerve"].to_numpy(dtype=object), hits["side"].to_numpy(dtype=object),
-            hits["segment"].to_numpy(dtype=object), hits["value"].to_numpy(dtype=float),
+            hits["nerve"].to_numpy(dtype=object),
+            hits["side"].to_numpy(dtype=object),
+            hits["segment"].to_numpy(dtype=object),
+            hits["value"].to_numpy(dtype=float),
         )
         text = f"{level} conduction block: " + _join_per_visit(hits["visit_key"].to_numpy(), where, "; ")
         outcome[text.index] = level
@@ -297,24 +420,48 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     unstimulated = motor[(motor["reason"].to_numpy(dtype=object) == NO_PROXIMAL) & rules.wanting(motor)]
     wanting = pd.concat([segments[segments["wanting"]], unstimulated], ignore_index=True)
     level_of_visit = outcome.reindex(wanting["visit_key"]).to_numpy(dtype=object)
-    above = (level_of_visit == "not_met") | ((level_of_visit == "probable") & (wanting["item"] == "definite_cb").to_numpy())
+    above = (level_of_visit == "not_met") | (
+        (level_of_visit == "probable") & (wanting["item"] == "definite_cb").to_numpy()
+    )
     wanting = wanting[above]
     best = outcome.copy()
     for level in ("probable", "definite"):
-        raising = wanting.loc[np.isin(wanting["item"].to_numpy(dtype=object), [i for i, lv in LEVELS.items() if lv == level]), "visit_key"].unique()
+        raising = wanting.loc[
+            np.isin(wanting["item"].to_numpy(dtype=object), [i for i, lv in LEVELS.items() if lv == level]),
+            "visit_key",
+        ].unique()
         best[best.index.isin(raising)] = level
-    outcome, rule, undecided = rules.settle(outcome, rule, best, {"not_met": 0, "probable": 1, "definite": 2}, wanting, keys, note=False)
+    outcome, rule, undecided = rules.settle(
+        outcome, rule, best, {"not_met": 0, "probable": 1, "definite": 2}, wanting, keys, note=False
+    )
     if len(wanting):
         where = rules.per_distinct(
             lambda n, s, seg: f"{n} {s} {seg}",
-            wanting["nerve"].to_numpy(dtype=object), wanting["side"].to_numpy(dtype=object), wanting["segment"].to_numpy(dtype=object),
+            wanting["nerve"].to_numpy(dtype=object),
+            wanting["side"].to_numpy(dtype=object),
+            wanting["segment"].to_numpy(dtype=object),
         )
-        note = "; undecided: " + _join_per_visit(wanting["visit_key"].to_numpy(), where, ", ") + " not evaluable for want of data"
+        note = (
+            "; undecided: "
+            + _join_per_visit(wanting["visit_key"].to_numpy(), where, ", ")
+            + " not evaluable for want of data"
+        )
         rule[note.index] = rule[note.index] + note
     outcomes = pd.DataFrame(
-        {"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy(), "sensory": _sensory_key(sensory, keys).to_numpy(),
-         "undecided_items": undecided.to_numpy()}
+        {
+            "visit_key": keys,
+            "outcome": outcome.to_numpy(),
+            "rule": rule.to_numpy(),
+            "sensory": _sensory_key(sensory, keys).to_numpy(),
+            "undecided_items": undecided.to_numpy(),
+        }
     )
-    findings = pd.concat([motor.drop(columns=["test_key", "site_order", "wanting", "rank"], errors="ignore"), sensory], ignore_index=True)
-    # The SNAP check is required for the diagnosis, not for the block level: it is no near miss of the outcome.
-    return SetResult(ID, load(ID).version, findings, outcomes, extra_keys=("sensory",), outcome_items=tuple(LEVELS))
+    findings = pd.concat(
+        [motor.drop(columns=["test_key", "site_order", "wanting", "rank"], errors="ignore"), sensory],
+        ignore_index=True,
+    )
+    # The SNAP check is required for the diagnosis, not for the block level:
+    # it is no near miss of the outcome.
+    return SetResult(
+        ID, load(ID).version, findings, outcomes, extra_keys=("sensory",), outcome_items=tuple(LEVELS)
+    )

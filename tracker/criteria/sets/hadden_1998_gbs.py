@@ -28,23 +28,60 @@ def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings
     frame = p.motor(nerves)
     column = g.cv_column(settings)
     parts = [
-        g.switched(frame, table, "cv", criteria=ID, parameter="conduction velocity", unit="m/s", value=frame[column],
-                   limit=frame["lln_cv"], settings=settings, low_item="cv_low_cmap", switch_item="cv_switch",
-                   segment=frame[f"{column}_segment"]),
-        g.switched(frame, table, "dml", criteria=ID, parameter="distal latency", unit="ms", value=frame["distal_latency_ms"],
-                   limit=frame["uln_distal_latency_ms"], settings=settings, low_item="dml_low_cmap", switch_item="dml_switch",
-                   inapplicable=[g.wrist_block(frame)]),
+        g.switched(
+            frame,
+            table,
+            "cv",
+            criteria=ID,
+            parameter="conduction velocity",
+            unit="m/s",
+            value=frame[column],
+            limit=frame["lln_cv"],
+            settings=settings,
+            low_item="cv_low_cmap",
+            switch_item="cv_switch",
+            segment=frame[f"{column}_segment"],
+        ),
+        g.switched(
+            frame,
+            table,
+            "dml",
+            criteria=ID,
+            parameter="distal latency",
+            unit="ms",
+            value=frame["distal_latency_ms"],
+            limit=frame["uln_distal_latency_ms"],
+            settings=settings,
+            low_item="dml_low_cmap",
+            switch_item="dml_switch",
+            inapplicable=[g.wrist_block(frame)],
+        ),
         g.block(nerves, paths, table, "cb", settings, criteria=ID, precondition_item="cb_precondition"),
-        g.switched(frame, table, "f_latency", criteria=ID, parameter="F-wave latency", unit="ms", value=frame["f_latency_ms"],
-                   limit=frame["uln_f_latency_ms"], settings=settings,
-                   inapplicable=[(frame["f_absent"].to_numpy(dtype=bool),
-                                  "F-waves absent: not a demyelinating feature in this set")]),
+        g.switched(
+            frame,
+            table,
+            "f_latency",
+            criteria=ID,
+            parameter="F-wave latency",
+            unit="ms",
+            value=frame["f_latency_ms"],
+            limit=frame["uln_f_latency_ms"],
+            settings=settings,
+            inapplicable=[
+                (
+                    frame["f_absent"].to_numpy(dtype=bool),
+                    "F-waves absent: not a demyelinating feature in this set",
+                )
+            ],
+        ),
         *g.class_findings(nerves, paths, table, settings, criteria=ID),
     ]
     return g.no_response_reasons(parts, nerves)
 
 
-def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings) -> SetResult:
+def evaluate(
+    nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings
+) -> SetResult:
     table = load(ID)
     findings = motor_findings(nerves, paths, settings)
     keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
@@ -52,8 +89,10 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
     floor = g.rule_text(table, g.ONE_NERVE_FLOOR)
     demyelinating = {
         TWO_NERVES: g.nerves_with_any(state, FEATURES, keys) >= 2,
-        f"≥ 2 demyelinating features in the only excitable nerve (all others inexcitable; its distal CMAP {floor})":
-            g.one_nerve_rule(state, FEATURES, keys),
+        (
+            "≥ 2 demyelinating features in the only excitable nerve (all others inexcitable; its distal CMAP "
+            f"{floor})"
+        ): g.one_nerve_rule(state, FEATURES, keys),
     }
     outcomes = g.classify(findings, state, keys, table, demyelinating, FEATURES)
     return SetResult(ID, table.version, findings, outcomes, extra_keys=())

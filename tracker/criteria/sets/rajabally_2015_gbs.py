@@ -36,17 +36,56 @@ def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings
     frame = p.motor(nerves)
     column = g.cv_column(settings)
     parts = [
-        g.switched(frame, table, "cv", criteria=ID, parameter="conduction velocity", unit="m/s", value=frame[column],
-                   limit=frame["lln_cv"], settings=settings, segment=frame[f"{column}_segment"]),
-        g.switched(frame, table, "dml", criteria=ID, parameter="distal latency", unit="ms", value=frame["distal_latency_ms"],
-                   limit=frame["uln_distal_latency_ms"], settings=settings,
-                   inapplicable=[g.wrist_block(frame)]),
-        g.switched(frame, table, "f_latency", criteria=ID, parameter="F-wave latency", unit="ms", value=frame["f_latency_ms"],
-                   limit=frame["uln_f_latency_ms"], settings=settings, low_item="f_latency_low_cmap", switch_item="f_switch",
-                   inapplicable=[(frame["f_absent"].to_numpy(dtype=bool),
-                                  "F-waves absent (judged by the absent-F item)")]),
+        g.switched(
+            frame,
+            table,
+            "cv",
+            criteria=ID,
+            parameter="conduction velocity",
+            unit="m/s",
+            value=frame[column],
+            limit=frame["lln_cv"],
+            settings=settings,
+            segment=frame[f"{column}_segment"],
+        ),
+        g.switched(
+            frame,
+            table,
+            "dml",
+            criteria=ID,
+            parameter="distal latency",
+            unit="ms",
+            value=frame["distal_latency_ms"],
+            limit=frame["uln_distal_latency_ms"],
+            settings=settings,
+            inapplicable=[g.wrist_block(frame)],
+        ),
+        g.switched(
+            frame,
+            table,
+            "f_latency",
+            criteria=ID,
+            parameter="F-wave latency",
+            unit="ms",
+            value=frame["f_latency_ms"],
+            limit=frame["uln_f_latency_ms"],
+            settings=settings,
+            low_item="f_latency_low_cmap",
+            switch_item="f_switch",
+            inapplicable=[
+                (frame["f_absent"].to_numpy(dtype=bool), "F-waves absent (judged by the absent-F item)")
+            ],
+        ),
         p.f_absent(nerves, table, "f_absent", settings, criteria=ID),
-        g.block(nerves, paths, table, "cb", settings, criteria=ID, precondition_item="cb_precondition" if "cb_precondition" in table.items() else None),
+        g.block(
+            nerves,
+            paths,
+            table,
+            "cb",
+            settings,
+            criteria=ID,
+            precondition_item="cb_precondition" if "cb_precondition" in table.items() else None,
+        ),
         p.dispersion(nerves, paths, table, "td", settings, criteria=ID),
         p.distal_duration(nerves, table, "dcmap_duration", settings, criteria=ID),
         *g.class_findings(nerves, paths, table, settings, criteria=ID),
@@ -54,7 +93,9 @@ def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings
     return g.no_response_reasons(parts, nerves)
 
 
-def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings) -> SetResult:
+def evaluate(
+    nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings
+) -> SetResult:
     table = load(ID)
     findings = motor_findings(nerves, paths, settings)
     keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
@@ -69,13 +110,21 @@ def evaluate(nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, se
 
     floor = g.rule_text(table, g.ONE_NERVE_FLOOR)
     demyelinating = {
-        "≥ 1 of conduction velocity, distal latency, F-wave latency in each of ≥ 2 nerves": g.nerves_with_any(state, CORE, keys) >= 2,
-        "absent F-waves in ≥ 2 nerves plus another parameter in another nerve": (count("f_absent") >= 2) & plus_other("f_absent"),
+        "≥ 1 of conduction velocity, distal latency, F-wave latency in each of ≥ 2 nerves": g.nerves_with_any(
+            state, CORE, keys
+        )
+        >= 2,
+        "absent F-waves in ≥ 2 nerves plus another parameter in another nerve": (count("f_absent") >= 2)
+        & plus_other("f_absent"),
         "conduction block in 1 nerve plus another parameter in another nerve": plus_other("cb"),
         "temporal dispersion in ≥ 2 nerves": count("td") >= 2,
-        "distal CMAP duration in 1 nerve plus another parameter in another nerve": plus_other("dcmap_duration"),
-        f"≥ 2 of conduction velocity, distal latency, F-wave latency in the only excitable nerve (all others inexcitable; its distal CMAP {floor})":
-            g.one_nerve_rule(state, CORE, keys),
+        "distal CMAP duration in 1 nerve plus another parameter in another nerve": plus_other(
+            "dcmap_duration"
+        ),
+        (
+            "≥ 2 of conduction velocity, distal latency, F-wave latency in the only excitable nerve (all "
+            f"others inexcitable; its distal CMAP {floor})"
+        ): g.one_nerve_rule(state, CORE, keys),
     }
     outcomes = g.classify(findings, state, keys, table, demyelinating, FEATURES)
     return SetResult(ID, table.version, findings, outcomes, extra_keys=())
