@@ -25,22 +25,59 @@ from tracker.response.scales import ScaleInfo
 from tracker.response.settings import ResponseSettings
 
 SCORE_CHANGE_COLUMNS = [
-    "date", "scale", "value", "reference", "reference_date", "reference_value", "change", "change_pct",
-    "verdict", "threshold",
+    "date",
+    "scale",
+    "value",
+    "reference",
+    "reference_date",
+    "reference_value",
+    "change",
+    "change_pct",
+    "verdict",
+    "threshold",
 ]
 NERVE_VALUE_COLUMNS = [
-    "visit_key", "nerve", "side", "modality", "parameter", "where", "value", "absent", "temperature_c", "lff_hz",
+    "visit_key",
+    "nerve",
+    "side",
+    "modality",
+    "parameter",
+    "where",
+    "value",
+    "absent",
+    "temperature_c",
+    "lff_hz",
     "distance_mm",
 ]
 NERVE_CHANGE_COLUMNS = [
-    "nerve", "side", "modality", "parameter", "where", "reference", "reference_date", "reference_value", "value",
-    "change", "change_pct", "verdict", "sdc", "less_certain", "absent", "reference_absent",
+    "nerve",
+    "side",
+    "modality",
+    "parameter",
+    "where",
+    "reference",
+    "reference_date",
+    "reference_value",
+    "value",
+    "change",
+    "change_pct",
+    "verdict",
+    "sdc",
+    "less_certain",
+    "absent",
+    "reference_absent",
 ]
 
 # Parameters whose value depends on a measured distance (a latency over a distance, a velocity).
 DISTANCE_PARAMETERS = ("distal_latency", "segment_velocity", "sensory_velocity")
 # Verdict words (identifiers; labels for people live in tracker.domain.labels).
-IMPROVED, WORSENED, WITHIN, NO_THRESHOLD, NOT_COMPARABLE = "improved", "worsened", "within_noise", "no_threshold", "not_comparable"
+IMPROVED, WORSENED, WITHIN, NO_THRESHOLD, NOT_COMPARABLE = (
+    "improved",
+    "worsened",
+    "within_noise",
+    "no_threshold",
+    "not_comparable",
+)
 
 
 def meets(change: float, threshold: float, comparator: str) -> bool:
@@ -49,9 +86,16 @@ def meets(change: float, threshold: float, comparator: str) -> bool:
     return size >= limit if comparator == ">=" else size > limit
 
 
-def judge(change: float | None, change_pct: float | None, higher_is_better: bool, threshold: float | None, comparator: str, kind: str) -> str:
-    """``improved`` / ``worsened`` when the change meets the threshold in that direction, else ``within_noise``;
-    ``no_threshold`` without a threshold; ``not_comparable`` without a change."""
+def judge(
+    change: float | None,
+    change_pct: float | None,
+    higher_is_better: bool,
+    threshold: float | None,
+    comparator: str,
+    kind: str,
+) -> str:
+    """``improved`` / ``worsened`` when the change meets the threshold in that direction, else
+    ``within_noise``; ``no_threshold`` without a threshold; ``not_comparable`` without a change."""
     size = change_pct if kind == "percent" else change
     if size is None or (isinstance(size, float) and np.isnan(size)):
         return NOT_COMPARABLE
@@ -66,7 +110,9 @@ def _pct(value: float, reference: float) -> float | None:
     return None if reference == 0 else (value - reference) / abs(reference) * 100.0
 
 
-def baseline(series: list[tuple[dt.date, float]], regimen: Regimen, settings: ResponseSettings) -> tuple[dt.date, float] | None:
+def baseline(
+    series: list[tuple[dt.date, float]], regimen: Regimen, settings: ResponseSettings
+) -> tuple[dt.date, float] | None:
     """The regimen's baseline in one scale's ``series`` ((day, value) sorted by day): the latest value on or
     before the start within the look-back, else the first within the grace days after the start."""
     start = regimen.start_date
@@ -84,10 +130,15 @@ def baseline(series: list[tuple[dt.date, float]], regimen: Regimen, settings: Re
     return after[0] if after else None
 
 
-def score_changes(scores: pd.DataFrame, scales: dict[str, ScaleInfo], regimen_of: dict[dt.date, Regimen | None],
-                  settings: ResponseSettings) -> pd.DataFrame:
-    """Per scored day and scale: the change since the regimen baseline, the previous score and the best earlier
-    score, each with its verdict against the scale's MIC. ``regimen_of`` maps a day to the regimen then running."""
+def score_changes(
+    scores: pd.DataFrame,
+    scales: dict[str, ScaleInfo],
+    regimen_of: dict[dt.date, Regimen | None],
+    settings: ResponseSettings,
+) -> pd.DataFrame:
+    """Per scored day and scale: the change since the regimen baseline, the previous score
+    and the best earlier score, each with its verdict against the scale's MIC. ``regimen_of``
+    maps a day to the regimen then running."""
     rows: list[dict] = []
     for scale, series in scores.sort_values("date", kind="stable").groupby("scale", sort=True):
         info = scales.get(scale)
@@ -108,16 +159,27 @@ def score_changes(scores: pd.DataFrame, scales: dict[str, ScaleInfo], regimen_of
                 references.append(("previous", previous["date"], float(previous["value"])))
                 earlier = series.iloc[:position]
                 best_index = earlier["value"].idxmax() if info.higher_is_better else earlier["value"].idxmin()
-                references.append(("best", earlier.loc[best_index, "date"], float(earlier.loc[best_index, "value"])))
+                references.append(
+                    ("best", earlier.loc[best_index, "date"], float(earlier.loc[best_index, "value"]))
+                )
             for kind, ref_date, ref_value in references:
                 change = value - ref_value
                 pct = _pct(value, ref_value)
-                verdict = judge(change, pct, info.higher_is_better, info.mic, info.mic_comparator or ">=", info.mic_kind)
+                verdict = judge(
+                    change, pct, info.higher_is_better, info.mic, info.mic_comparator or ">=", info.mic_kind
+                )
                 rows.append(
                     {
-                        "date": day, "scale": scale, "value": value, "reference": kind, "reference_date": ref_date,
-                        "reference_value": ref_value, "change": quantise(change), "change_pct": None if pct is None else quantise(pct),
-                        "verdict": verdict, "threshold": info.mic_words(),
+                        "date": day,
+                        "scale": scale,
+                        "value": value,
+                        "reference": kind,
+                        "reference_date": ref_date,
+                        "reference_value": ref_value,
+                        "change": quantise(change),
+                        "change_pct": None if pct is None else quantise(pct),
+                        "verdict": verdict,
+                        "threshold": info.mic_words(),
                     }
                 )
     return pd.DataFrame(rows, columns=SCORE_CHANGE_COLUMNS)
@@ -136,7 +198,9 @@ def nerve_values(nerves: pd.DataFrame, paths: pd.DataFrame, sites: pd.DataFrame)
     ordered = sites.sort_values(["test_key", "site_order"], kind="stable")
     first = ordered.drop_duplicates("test_key", keep="first").set_index("test_key")
     last = ordered.drop_duplicates("test_key", keep="last").set_index("test_key")
-    context = nerves.set_index("test_key")[["visit_key", "nerve", "side", "modality", "temperature_c", "lff_hz"]]
+    context = nerves.set_index("test_key")[
+        ["visit_key", "nerve", "side", "modality", "temperature_c", "lff_hz"]
+    ]
     parts: list[pd.DataFrame] = []
 
     def part(keys, parameter, where, values, distance=np.nan, absent=False):
@@ -152,43 +216,92 @@ def nerve_values(nerves: pd.DataFrame, paths: pd.DataFrame, sites: pd.DataFrame)
     keys = motor["test_key"].to_numpy()
     distal_site = first.reindex(keys)
     part(keys, "distal_cmap_amplitude", distal_site["label"].fillna(""), motor["distal_amplitude"])
-    part(keys, "distal_latency", distal_site["label"].fillna(""), motor["distal_latency_ms"], distal_site["distance_mm"].to_numpy())
+    part(
+        keys,
+        "distal_latency",
+        distal_site["label"].fillna(""),
+        motor["distal_latency_ms"],
+        distal_site["distance_mm"].to_numpy(),
+    )
     proximal = last.reindex(keys)
     has_proximal = (proximal["site_order"] > 1).to_numpy()
-    part(keys[has_proximal], "proximal_cmap_amplitude", proximal["label"][has_proximal].fillna(""), proximal["amplitude"][has_proximal])
+    part(
+        keys[has_proximal],
+        "proximal_cmap_amplitude",
+        proximal["label"][has_proximal].fillna(""),
+        proximal["amplitude"][has_proximal],
+    )
     part(keys, "f_latency", "", motor["f_latency_ms"], absent=motor["f_absent"].to_numpy(dtype=bool))
     if not paths.empty:
         seg = paths[paths["segment_velocity"].notna()]
-        part(seg["test_key"].to_numpy(), "segment_velocity", seg["segment"], seg["segment_velocity"], seg["distance_mm"].to_numpy())
+        part(
+            seg["test_key"].to_numpy(),
+            "segment_velocity",
+            seg["segment"],
+            seg["segment_velocity"],
+            seg["distance_mm"].to_numpy(),
+        )
         block = paths[paths["amplitude_reduction_pct"].notna()]
         part(block["test_key"].to_numpy(), "block_pct", block["path"], block["amplitude_reduction_pct"])
     sensory = nerves[nerves["modality"] == "sensory"]
     skeys = sensory["test_key"].to_numpy()
     ssite = first.reindex(skeys)
     part(skeys, "snap_amplitude", ssite["label"].fillna(""), sensory["distal_amplitude"])
-    part(skeys, "sensory_velocity", ssite["label"].fillna(""), sensory["sensory_cv"], ssite["distance_mm"].to_numpy())
+    part(
+        skeys,
+        "sensory_velocity",
+        ssite["label"].fillna(""),
+        sensory["sensory_cv"],
+        ssite["distance_mm"].to_numpy(),
+    )
     out = pd.concat(parts, ignore_index=True)
     out = out[out["value"].notna() | out["absent"]]
     return out[NERVE_VALUE_COLUMNS].reset_index(drop=True)
 
 
-def nerve_changes(values: pd.DataFrame, current: int, reference: int, reference_kind: str, reference_date: dt.date,
-                  table: dict[str, Detectable], settings: ResponseSettings) -> pd.DataFrame:
+def nerve_changes(
+    values: pd.DataFrame,
+    current: int,
+    reference: int,
+    reference_kind: str,
+    reference_date: dt.date,
+    table: dict[str, Detectable],
+    settings: ResponseSettings,
+) -> pd.DataFrame:
     """Each parameter of visit ``current`` against visit ``reference`` (visit keys in ``values``)."""
-    pairs = pd.DataFrame({"visit_key": [current], "reference_key": [reference], "reference": [reference_kind], "reference_date": [reference_date]})
+    pairs = pd.DataFrame(
+        {
+            "visit_key": [current],
+            "reference_key": [reference],
+            "reference": [reference_kind],
+            "reference_date": [reference_date],
+        }
+    )
     return nerve_changes_many(values, pairs, table, settings).drop(columns=["visit_key"])
 
 
-def nerve_changes_many(values: pd.DataFrame, pairs: pd.DataFrame, table: dict[str, Detectable], settings: ResponseSettings) -> pd.DataFrame:
+def nerve_changes_many(
+    values: pd.DataFrame, pairs: pd.DataFrame, table: dict[str, Detectable], settings: ResponseSettings
+) -> pd.DataFrame:
     """Vectorised :func:`nerve_changes` over many (visit, earlier visit) ``pairs`` (columns ``visit_key``,
     ``reference_key``, ``reference``, ``reference_date``): one row per parameter found at both visits, with
     ``visit_key`` first."""
     key = ["nerve", "side", "modality", "parameter", "where"]
     columns = ["visit_key", *NERVE_CHANGE_COLUMNS]
     now = values[values["visit_key"].isin(pairs["visit_key"])].merge(pairs, on="visit_key")
-    then = values[values["visit_key"].isin(pairs["reference_key"])][["visit_key", *key, "value", "absent", "temperature_c", "lff_hz", "distance_mm"]]
-    then = then.rename(columns={"visit_key": "reference_key", "value": "value_ref", "absent": "absent_ref", "temperature_c": "temperature_c_ref",
-                                "lff_hz": "lff_hz_ref", "distance_mm": "distance_mm_ref"})
+    then = values[values["visit_key"].isin(pairs["reference_key"])][
+        ["visit_key", *key, "value", "absent", "temperature_c", "lff_hz", "distance_mm"]
+    ]
+    then = then.rename(
+        columns={
+            "visit_key": "reference_key",
+            "value": "value_ref",
+            "absent": "absent_ref",
+            "temperature_c": "temperature_c_ref",
+            "lff_hz": "lff_hz_ref",
+            "distance_mm": "distance_mm_ref",
+        }
+    )
     m = now.merge(then, on=["reference_key", *key], how="inner")
     if m.empty:
         return pd.DataFrame(columns=columns)
@@ -202,17 +315,23 @@ def nerve_changes_many(values: pd.DataFrame, pairs: pd.DataFrame, table: dict[st
         pct = np.where(either | (ref == 0), np.nan, delta / np.abs(ref) * 100.0)
     parameter = m["parameter"].to_numpy(dtype=object)
     known = {p: d for p, d in table.items()}
-    sdc = np.array([known[p].sdc if p in known and known[p].sdc is not None else np.nan for p in parameter], dtype=float)
-    percent = np.array([known[p].change_kind == "percent" if p in known else True for p in parameter], dtype=bool)
+    sdc = np.array(
+        [known[p].sdc if p in known and known[p].sdc is not None else np.nan for p in parameter], dtype=float
+    )
+    percent = np.array(
+        [known[p].change_kind == "percent" if p in known else True for p in parameter], dtype=bool
+    )
     better_high = np.array([known[p].higher_is_better if p in known else True for p in parameter], dtype=bool)
     size = np.where(percent, pct, delta)
     with np.errstate(invalid="ignore"):
         beyond = quantise_array(np.abs(size)) >= quantise_array(sdc)
-    verdict = np.where(np.isnan(size), NOT_COMPARABLE, np.where(np.isnan(sdc), NO_THRESHOLD, WITHIN)).astype(object)
+    verdict = np.where(np.isnan(size), NOT_COMPARABLE, np.where(np.isnan(sdc), NO_THRESHOLD, WITHIN)).astype(
+        object
+    )
     verdict[beyond & ((size > 0) == better_high)] = IMPROVED
     verdict[beyond & ((size > 0) != better_high)] = WORSENED
-    # An absence is a finding: present → absent is worse, absent → present better, absent at both not comparable
-    # (the value columns are then empty and ``absent``/``reference_absent`` say why).
+    # An absence is a finding: present → absent is worse, absent → present better, absent at both not
+    # comparable (the value columns are then empty and ``absent``/``reference_absent`` say why).
     verdict[absent & ~absent_ref] = WORSENED
     verdict[~absent & absent_ref] = IMPROVED
     verdict[absent & absent_ref] = NOT_COMPARABLE
@@ -223,7 +342,11 @@ def nerve_changes_many(values: pd.DataFrame, pairs: pd.DataFrame, table: dict[st
         # Not recorded at either visit: the condition cannot be checked, so the change is less certain too.
         unknown_t = np.isnan(t) | np.isnan(t_ref)
         warm = (quantise_array(np.abs(t - t_ref)) > quantise(settings.temperature_delta_c)) | unknown_t
-        filt = (np.isnan(f) != np.isnan(f_ref)) | (~np.isnan(f) & ~np.isnan(f_ref) & (f != f_ref)) if settings.filter_must_match else np.zeros(len(m), bool)
+        filt = (
+            (np.isnan(f) != np.isnan(f_ref)) | (~np.isnan(f) & ~np.isnan(f_ref) & (f != f_ref))
+            if settings.filter_must_match
+            else np.zeros(len(m), bool)
+        )
         distance_used = np.isin(parameter, list(DISTANCE_PARAMETERS))
         unknown_d = distance_used & (np.isnan(d) | np.isnan(d_ref))
         far = ((d_ref > 0) & (np.abs(d - d_ref) / d_ref * 100.0 > settings.distance_delta_pct)) | unknown_d
@@ -233,23 +356,43 @@ def nerve_changes_many(values: pd.DataFrame, pairs: pd.DataFrame, table: dict[st
         if warm[i] and unknown_t[i]:
             reasons.append(f"limb temperature not recorded ({_celsius(t_ref[i])} → {_celsius(t[i])})")
         elif warm[i]:
-            reasons.append(f"limb temperature {t_ref[i]:g} → {t[i]:g} °C (more than {settings.temperature_delta_c:g} °C apart)")
+            reasons.append(
+                f"limb temperature {t_ref[i]:g} → {t[i]:g} °C (more than {settings.temperature_delta_c:g} °C "
+                "apart)"
+            )
         if filt[i]:
             reasons.append(f"low-frequency filter {_hz(f_ref[i])} → {_hz(f[i])}")
         if far[i] and unknown_d[i]:
             reasons.append("distance not recorded at both visits")
         elif far[i]:
-            reasons.append(f"distance {d_ref[i]:g} → {d[i]:g} mm (more than {settings.distance_delta_pct:g} % apart)")
+            reasons.append(
+                f"distance {d_ref[i]:g} → {d[i]:g} mm (more than {settings.distance_delta_pct:g} % apart)"
+            )
         doubt[i] = "; ".join(reasons)
-    out = pd.DataFrame({
-        "visit_key": m["visit_key"].to_numpy(), "nerve": m["nerve"].to_numpy(dtype=object), "side": m["side"].to_numpy(dtype=object),
-        "modality": m["modality"].to_numpy(dtype=object), "parameter": parameter, "where": m["where"].to_numpy(dtype=object),
-        "reference": m["reference"].to_numpy(dtype=object), "reference_date": m["reference_date"].to_numpy(dtype=object),
-        "reference_value": np.where(absent_ref, np.nan, ref), "value": np.where(absent, np.nan, value),
-        "change": quantise_array(delta), "change_pct": quantise_array(pct), "verdict": verdict, "sdc": sdc, "less_certain": doubt,
-        "absent": absent, "reference_absent": absent_ref,
-    })
-    return out.sort_values(["visit_key", "nerve", "side", "modality", "parameter", "where"], kind="stable").reset_index(drop=True)[columns]
+    out = pd.DataFrame(
+        {
+            "visit_key": m["visit_key"].to_numpy(),
+            "nerve": m["nerve"].to_numpy(dtype=object),
+            "side": m["side"].to_numpy(dtype=object),
+            "modality": m["modality"].to_numpy(dtype=object),
+            "parameter": parameter,
+            "where": m["where"].to_numpy(dtype=object),
+            "reference": m["reference"].to_numpy(dtype=object),
+            "reference_date": m["reference_date"].to_numpy(dtype=object),
+            "reference_value": np.where(absent_ref, np.nan, ref),
+            "value": np.where(absent, np.nan, value),
+            "change": quantise_array(delta),
+            "change_pct": quantise_array(pct),
+            "verdict": verdict,
+            "sdc": sdc,
+            "less_certain": doubt,
+            "absent": absent,
+            "reference_absent": absent_ref,
+        }
+    )
+    return out.sort_values(
+        ["visit_key", "nerve", "side", "modality", "parameter", "where"], kind="stable"
+    ).reset_index(drop=True)[columns]
 
 
 def _celsius(value: float) -> str:
@@ -267,9 +410,32 @@ def nerve_summary(changes: pd.DataFrame) -> list[dict]:
     out: list[dict] = []
     for reference, part in changes.groupby("reference", sort=False):
         for parameter in ("proximal_cmap_amplitude", "distal_cmap_amplitude"):
-            values = part[(part["parameter"] == parameter) & part["change_pct"].notna()]["change_pct"].astype(float)
+            values = part[(part["parameter"] == parameter) & part["change_pct"].notna()]["change_pct"].astype(
+                float
+            )
             if len(values):
-                out.append({"reference": reference, "measure": f"mean_change_pct_{parameter}", "value": quantise(float(values.mean())), "nerves": int(len(values))})
-        out.append({"reference": reference, "measure": "changes_beyond_sdc_worse", "value": int((part["verdict"] == WORSENED).sum()), "nerves": int(len(part))})
-        out.append({"reference": reference, "measure": "changes_beyond_sdc_better", "value": int((part["verdict"] == IMPROVED).sum()), "nerves": int(len(part))})
+                out.append(
+                    {
+                        "reference": reference,
+                        "measure": f"mean_change_pct_{parameter}",
+                        "value": quantise(float(values.mean())),
+                        "nerves": int(len(values)),
+                    }
+                )
+        out.append(
+            {
+                "reference": reference,
+                "measure": "changes_beyond_sdc_worse",
+                "value": int((part["verdict"] == WORSENED).sum()),
+                "nerves": int(len(part)),
+            }
+        )
+        out.append(
+            {
+                "reference": reference,
+                "measure": "changes_beyond_sdc_better",
+                "value": int((part["verdict"] == IMPROVED).sum()),
+                "nerves": int(len(part)),
+            }
+        )
     return out

@@ -43,8 +43,9 @@ class Regimen:
     interval_days: int | None
     induction: TreatmentPeriod | None = None
     periods: tuple[TreatmentPeriod, ...] = field(default=())
-    # Until when a change is attributed to this regimen: its end, or the day before the next regimen of any
-    # therapy starts if that is earlier; a single course (no repeat interval) until that next start (None: open).
+    # Until when a change is attributed to this regimen: its end, or the day before the next
+    # regimen of any therapy starts if that is earlier; a single course (no repeat interval)
+    # until that next start (None: open).
     assessed_until: dt.date | None = None
     single_course: bool = False
     # The start of the regimen (any therapy) that began before this one; a baseline may not predate it.
@@ -62,7 +63,8 @@ class Regimen:
         """``ivig 1 g/kg every 21 days (after a 2 g/kg induction)`` — the words a clinician would write."""
         text = treatment_words(self.therapy, self.dose, self.dose_unit, self.interval_days)
         if self.induction is not None:
-            text += f" (after a {treatment_words('', self.induction.dose, self.induction.dose_unit, None).strip() or 'single'} induction)"
+            induction_dose = treatment_words("", self.induction.dose, self.induction.dose_unit, None).strip()
+            text += f" (after a {induction_dose or 'single'} induction)"
         return text
 
     def covers(self, day: dt.date) -> bool:
@@ -75,7 +77,12 @@ class Regimen:
 
 
 def _same_schedule(a: TreatmentPeriod, b: TreatmentPeriod) -> bool:
-    return (a.therapy, a.dose, a.dose_unit, a.interval_days) == (b.therapy, b.dose, b.dose_unit, b.interval_days)
+    return (a.therapy, a.dose, a.dose_unit, a.interval_days) == (
+        b.therapy,
+        b.dose,
+        b.dose_unit,
+        b.interval_days,
+    )
 
 
 def regimens(periods: list[TreatmentPeriod], settings: ResponseSettings | None = None) -> list[Regimen]:
@@ -101,7 +108,12 @@ def regimens(periods: list[TreatmentPeriod], settings: ResponseSettings | None =
                 pending = period
                 continue
             last = groups[-1][-1] if groups and len(groups) not in inductions else None
-            if last is not None and _same_schedule(last, period) and last.end_date is not None and (period.start_date - last.end_date).days <= 1:
+            if (
+                last is not None
+                and _same_schedule(last, period)
+                and last.end_date is not None
+                and (period.start_date - last.end_date).days <= 1
+            ):
                 groups[-1].append(period)
             else:
                 groups.append([period])
@@ -131,7 +143,9 @@ def regimens(periods: list[TreatmentPeriod], settings: ResponseSettings | None =
     out = sorted(out, key=lambda r: (r.start_date, r.therapy))
     finished = []
     for index, regimen in enumerate(out):
-        single = regimen.induction is None and len(regimen.periods) == 1 and _is_single_course(regimen.periods[0])
+        single = (
+            regimen.induction is None and len(regimen.periods) == 1 and _is_single_course(regimen.periods[0])
+        )
         # A change after another regimen (of any therapy) has begun is that regimen's to explain: an open
         # regimen is followed until the next one starts (a single course, too, which has no end of effect).
         later = [r.start_date for r in out if r.start_date > regimen.start_date]
@@ -140,7 +154,14 @@ def regimens(periods: list[TreatmentPeriod], settings: ResponseSettings | None =
         if handover is not None and (until is None or handover < until):
             until = handover
         earlier = [r.start_date for r in out if r.start_date < regimen.start_date]
-        finished.append(replace(regimen, assessed_until=until, single_course=single, previous_start=max(earlier) if earlier else None))
+        finished.append(
+            replace(
+                regimen,
+                assessed_until=until,
+                single_course=single,
+                previous_start=max(earlier) if earlier else None,
+            )
+        )
     return finished
 
 

@@ -16,17 +16,26 @@ from pathlib import Path
 from tracker.domain.reference_files import read_reference_csv
 from tracker.errors import InputRejected, Problem
 
-SDC_FACTOR = 2.77  # 1.96 × √2 rounded as normatives.md §3.1 states it; the shipped sdc_pct column uses the same factor
+SDC_FACTOR = (
+    2.77  # 1.96 × √2 rounded as normatives.md §3.1 states it; the shipped sdc_pct column uses the same factor
+)
 PARAMETERS = (
-    "distal_cmap_amplitude", "proximal_cmap_amplitude", "distal_latency", "segment_velocity", "f_latency",
-    "sensory_velocity", "snap_amplitude", "block_pct",
+    "distal_cmap_amplitude",
+    "proximal_cmap_amplitude",
+    "distal_latency",
+    "segment_velocity",
+    "f_latency",
+    "sensory_velocity",
+    "snap_amplitude",
+    "block_pct",
 )
 
 
 @dataclass(frozen=True)
 class Detectable:
-    """The smallest detectable change of one parameter: ``sdc`` in % of the earlier value (``change_kind``
-    ``percent``) or in the parameter's own unit (``points``, e.g. percentage points of block); None = no figure."""
+    """The smallest detectable change of one parameter: ``sdc`` in % of the earlier value
+    (``change_kind`` ``percent``) or in the parameter's own unit (``points``, e.g. percentage
+    points of block); None = no figure."""
 
     parameter: str
     label: str
@@ -56,14 +65,18 @@ def from_file(path: Path) -> dict[str, Detectable]:
     return table
 
 
-def _parse(rows: list[dict[str, str]], name: str, base: dict[str, Detectable] | None = None) -> dict[str, Detectable]:
+def _parse(
+    rows: list[dict[str, str]], name: str, base: dict[str, Detectable] | None = None
+) -> dict[str, Detectable]:
     problems: list[Problem] = []
     out: dict[str, Detectable] = {}
     for number, row in enumerate(rows, start=2):
         row = {(k or "").strip().lower(): (v or "").strip() for k, v in row.items()}
         parameter = row.get("parameter", "")
         if parameter not in PARAMETERS:
-            problems.append(Problem(number, "parameter", parameter, f"expected one of {', '.join(PARAMETERS)}"))
+            problems.append(
+                Problem(number, "parameter", parameter, f"expected one of {', '.join(PARAMETERS)}")
+            )
             continue
         known = (base or {}).get(parameter)
         cov = _number(row.get("cov_pct", ""), number, "cov_pct", problems)
@@ -71,23 +84,48 @@ def _parse(rows: list[dict[str, str]], name: str, base: dict[str, Detectable] | 
         if sdc is None and cov is not None:
             sdc = round(SDC_FACTOR * cov, 1)
         if base is not None and sdc is None:
-            problems.append(Problem(number, "sdc_pct", "", "give sdc_pct or cov_pct (a row without a figure would remove the shipped one)"))
+            problems.append(
+                Problem(
+                    number,
+                    "sdc_pct",
+                    "",
+                    "give sdc_pct or cov_pct (a row without a figure would remove the shipped one)",
+                )
+            )
         better = row.get("better", "").lower()
         if better and better not in ("higher", "lower"):
             problems.append(Problem(number, "better", row.get("better"), "expected higher or lower"))
         if known is not None and better and (better == "higher") != known.higher_is_better:
-            problems.append(Problem(number, "better", row.get("better"), f"the direction of {parameter} is fixed ({'higher' if known.higher_is_better else 'lower'} is better)"))
+            problems.append(
+                Problem(
+                    number,
+                    "better",
+                    row.get("better"),
+                    f"the direction of {parameter} is fixed "
+                    f"({'higher' if known.higher_is_better else 'lower'} is better)",
+                )
+            )
         kind = row.get("change_kind", "").lower()
         if kind and kind not in ("percent", "points"):
-            problems.append(Problem(number, "change_kind", row.get("change_kind"), "expected percent or points"))
+            problems.append(
+                Problem(number, "change_kind", row.get("change_kind"), "expected percent or points")
+            )
         source = row.get("source", "")
         if base is not None and not source:
-            problems.append(Problem(number, "source", "", "every laboratory figure needs its source (a study, or 'our laboratory, <date>')"))
+            problems.append(
+                Problem(
+                    number,
+                    "source",
+                    "",
+                    "every laboratory figure needs its source (a study, or 'our laboratory, <date>')",
+                )
+            )
         out[parameter] = Detectable(
             parameter=parameter,
             label=row.get("label") or (known.label if known else parameter),
             unit=row.get("unit") or (known.unit if known else ""),
-            higher_is_better=(better or ("higher" if known is None or known.higher_is_better else "lower")) == "higher",
+            higher_is_better=(better or ("higher" if known is None or known.higher_is_better else "lower"))
+            == "higher",
             cov_pct=cov,
             sdc=sdc,
             change_kind=kind or (known.change_kind if known else "percent"),

@@ -23,8 +23,9 @@ SCORE_COLUMNS = ["patient", "date", "scale", "value", "computed"]
 
 @dataclass(frozen=True)
 class ScaleInfo:
-    """One outcome scale. ``mic``: minimal important change (in ``unit``, or % of the earlier value when
-    ``mic_kind`` is ``percent``), met when ``|change| mic_comparator mic``; ``None`` when none is published."""
+    """One outcome scale. ``mic``: minimal important change (in ``unit``, or % of the
+    earlier value when ``mic_kind`` is ``percent``), met when ``|change| mic_comparator
+    mic``; ``None`` when none is published."""
 
     name: str
     label: str
@@ -55,7 +56,11 @@ class ScaleInfo:
         """``≥ 1 point`` — the minimal important change as the source states it."""
         if self.mic is None:
             return "no published minimal important change"
-        unit = "%" if self.mic_kind == "percent" else f" {'point' if self.unit == 'points' and self.mic == 1 else self.unit}"
+        unit = (
+            "%"
+            if self.mic_kind == "percent"
+            else f" {'point' if self.unit == 'points' and self.mic == 1 else self.unit}"
+        )
         return f"{_SYMBOL[self.mic_comparator or '>=']} {self.mic:g}{unit}"
 
 
@@ -110,15 +115,25 @@ def with_computed(scores: pd.DataFrame) -> tuple[pd.DataFrame, list[str]]:
 
     total = arm + leg
     disagree = graded & wide["incat"].notna() & (wide["incat"] != total)
-    for (patient, date), typed, computed in zip(wide.index[disagree], wide["incat"][disagree], total[disagree]):
-        notes.append(f"{patient} {date}: typed INCAT {typed:g} differs from arm + leg grades {computed:g}; the typed total is kept")
+    for (patient, date), typed, computed in zip(
+        wide.index[disagree], wide["incat"][disagree], total[disagree]
+    ):
+        notes.append(
+            f"{patient} {date}: typed INCAT {typed:g} differs from arm + leg grades {computed:g}; the typed "
+            "total is kept"
+        )
     made.append(_rows(total[graded & wide["incat"].isna()], "incat"))
 
     adjusted = leg + np.maximum(arm - 1, 0)
     typed_adjusted = graded & wide["adjusted_incat"].notna()
-    for (patient, date), typed, computed in zip(wide.index[typed_adjusted], wide["adjusted_incat"][typed_adjusted], adjusted[typed_adjusted]):
+    for (patient, date), typed, computed in zip(
+        wide.index[typed_adjusted], wide["adjusted_incat"][typed_adjusted], adjusted[typed_adjusted]
+    ):
         if typed != computed:
-            notes.append(f"{patient} {date}: typed adjusted INCAT {typed:g} replaced by {computed:g} computed from the grades")
+            notes.append(
+                f"{patient} {date}: typed adjusted INCAT {typed:g} replaced by {computed:g} computed from "
+                "the grades"
+            )
     made.append(_rows(adjusted[graded], "adjusted_incat"))
 
     weaker = np.fmin(wide["grip_kpa_left"], wide["grip_kpa_right"])
@@ -126,7 +141,9 @@ def with_computed(scores: pd.DataFrame) -> tuple[pd.DataFrame, list[str]]:
     made.append(_rows(weaker[both], "grip_kpa_weaker"))
 
     # A computed adjusted INCAT replaces a typed one of the same day (the grades are the primary record).
-    drop = set(zip(wide.index[typed_adjusted].get_level_values(0), wide.index[typed_adjusted].get_level_values(1)))
+    drop = set(
+        zip(wide.index[typed_adjusted].get_level_values(0), wide.index[typed_adjusted].get_level_values(1))
+    )
     if drop:
         keys = list(zip(base["patient"], base["date"]))
         keep = [not (scale == "adjusted_incat" and key in drop) for scale, key in zip(base["scale"], keys)]

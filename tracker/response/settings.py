@@ -60,12 +60,31 @@ class ResponseSettings:
 
 
 SETTING_ORIGINS: dict[str, str] = {
-    "baseline_lookback_days": "common practice, no source (a score older than about three months no longer describes the patient at the change)",
-    "baseline_grace_days": "common practice, no source (grip separated IVIg from placebo from day 16 in ICE, so later scores already show treatment: normatives.md §4.1)",
-    "induction_merge_days": "trial designs measure response to maintenance from the baseline before the induction dose (ICE, ProCID: normatives.md §4.2); the 60-day window is common practice, no source",
-    "temperature_delta_c": "common practice, no source (motor CV changes by about 1.5 m/s per °C: Vanggaard 1975, normatives.md §2.2)",
+    "baseline_lookback_days": (
+        "common practice, no source (a score older than about three months no longer describes the patient "
+        "at the change)"
+    ),
+    "baseline_grace_days": (
+        "common practice, no source (grip separated IVIg from placebo from day 16 in ICE, so later scores "
+        "already show treatment: normatives.md §4.1)"
+    ),
+    "induction_merge_days": (
+        "trial designs measure response to maintenance from the baseline before the induction dose (ICE, "
+        "ProCID: normatives.md §4.2); the 60-day window is common practice, no source"
+    ),
+    "temperature_delta_c": (
+        "common practice, no source (motor CV changes by about 1.5 m/s per °C: Vanggaard 1975, normatives.md "
+        "§2.2)"
+    ),
     "distance_delta_pct": "common practice, no source",
-    "filter_must_match": "common practice, no source (the low-frequency filter changes negative-peak duration and amplitude)",
-    "mixed_changes": "a rule of ours: no publication defines a regimen where one scale improves and another worsens",
-    "baseline_after_previous_regimen": "a rule of ours: trials measure from a baseline taken on the treatment being changed (normatives.md §4.2); a score from before the previous regimen describes neither",
+    "filter_must_match": (
+        "common practice, no source (the low-frequency filter changes negative-peak duration and amplitude)"
+    ),
+    "mixed_changes": (
+        "a rule of ours: no publication defines a regimen where one scale improves and another worsens"
+    ),
+    "baseline_after_previous_regimen": (
+        "a rule of ours: trials measure from a baseline taken on the treatment being changed (normatives.md "
+        "§4.2); a score from before the previous regimen describes neither"
+    ),
 }

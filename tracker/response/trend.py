@@ -20,7 +20,8 @@ DAYS_PER_YEAR = 365.25
 
 @dataclass(frozen=True)
 class Trend:
-    """``slope`` and its 95 % CI (``low``, ``high``) in units per year; None with ``reason`` when not computed."""
+    """``slope`` and its 95 % CI (``low``, ``high``) in units per year; None
+    with ``reason`` when not computed."""
 
     points: int
     first: dt.date | None
@@ -46,6 +47,6 @@ def slope_per_year(dates: list[dt.date], values: list[float]) -> Trend:
         return Trend(n, first, last, None, None, None, "all points on one day: no slope")
     slope = float(((x - x.mean()) * (y - y.mean())).sum() / sxx)
     residuals = y - (y.mean() + slope * (x - x.mean()))
-    stderr = math.sqrt(float((residuals ** 2).sum()) / (n - 2) / sxx)
+    stderr = math.sqrt(float((residuals**2).sum()) / (n - 2) / sxx)
     half = float(stdtrit(n - 2, 0.975)) * stderr
     return Trend(n, first, last, slope, slope - half, slope + half)

@@ -11,10 +11,31 @@ from tracker.services.response.cohort import cohort_course, cohort_response
 from tracker.services.response.patient import PatientResponse, TrendRow, patient_response, response_json
 from tracker.services.response.store import save_assessments, saved_assessments
 from tracker.services.response.view import (
-    STEP_COLUMNS, RegimenCard, ResponseView, build_view, response_view, rule_set_choices, sdc_words, with_course,
+    STEP_COLUMNS,
+    RegimenCard,
+    ResponseView,
+    build_view,
+    response_view,
+    rule_set_choices,
+    sdc_words,
+    with_course,
 )
 
 __all__ = [
-    "PatientResponse", "RegimenCard", "ResponseView", "STEP_COLUMNS", "TrendRow", "build_view", "cohort_course", "cohort_response",
-    "patient_response", "response_json", "response_view", "save_assessments", "saved_assessments", "rule_set_choices", "sdc_words", "with_course",
+    "PatientResponse",
+    "RegimenCard",
+    "ResponseView",
+    "STEP_COLUMNS",
+    "TrendRow",
+    "build_view",
+    "cohort_course",
+    "cohort_response",
+    "patient_response",
+    "response_json",
+    "response_view",
+    "save_assessments",
+    "saved_assessments",
+    "rule_set_choices",
+    "sdc_words",
+    "with_course",
 ]

@@ -10,9 +10,18 @@ from tracker.db.models import OutcomeScore, Patient, Treatment, Visit
 from tracker.response.regimens import TreatmentPeriod
 
 
-def treatment_periods(session: Session, patient_ids: list[int] | None = None) -> dict[int, list[TreatmentPeriod]]:
-    query = select(Treatment.patient_id, Treatment.therapy, Treatment.start_date, Treatment.end_date, Treatment.dose,
-                   Treatment.dose_unit, Treatment.interval_days)
+def treatment_periods(
+    session: Session, patient_ids: list[int] | None = None
+) -> dict[int, list[TreatmentPeriod]]:
+    query = select(
+        Treatment.patient_id,
+        Treatment.therapy,
+        Treatment.start_date,
+        Treatment.end_date,
+        Treatment.dose,
+        Treatment.dose_unit,
+        Treatment.interval_days,
+    )
     if patient_ids is not None:
         query = query.where(Treatment.patient_id.in_(patient_ids))
     out: dict[int, list[TreatmentPeriod]] = {}
@@ -21,11 +30,16 @@ def treatment_periods(session: Session, patient_ids: list[int] | None = None) ->
     return out
 
 
-def scores_frame(session: Session, patient_ids: list[int] | None = None, scales: list[str] | None = None) -> pd.DataFrame:
-    """Recorded scores: ``patient`` (the patient id), ``date``, ``scale``, ``value`` (only ``scales`` if given)."""
+def scores_frame(
+    session: Session, patient_ids: list[int] | None = None, scales: list[str] | None = None
+) -> pd.DataFrame:
+    """Recorded scores: ``patient`` (the patient id), ``date``, ``scale``,
+    ``value`` (only ``scales`` if given)."""
     # Dates as ISO text, parsed vectorised below: the per-row date conversion of the driver layer cost more
     # than the query itself on a 5,000-patient database.
-    query = select(OutcomeScore.patient_id, cast(OutcomeScore.score_date, String), OutcomeScore.scale, OutcomeScore.value)
+    query = select(
+        OutcomeScore.patient_id, cast(OutcomeScore.score_date, String), OutcomeScore.scale, OutcomeScore.value
+    )
     if patient_ids is not None:
         query = query.where(OutcomeScore.patient_id.in_(patient_ids))
     if scales is not None:
@@ -39,7 +53,9 @@ def scores_frame(session: Session, patient_ids: list[int] | None = None, scales:
 
 def visit_dates(session: Session, patient_ids: list[int] | None = None) -> pd.DataFrame:
     """``visit_key``, ``patient`` (id), ``visit_date``, sorted by patient and date."""
-    query = select(Visit.id, Visit.patient_id, cast(Visit.visit_date, String)).order_by(Visit.patient_id, Visit.visit_date)
+    query = select(Visit.id, Visit.patient_id, cast(Visit.visit_date, String)).order_by(
+        Visit.patient_id, Visit.visit_date
+    )
     if patient_ids is not None:
         query = query.where(Visit.patient_id.in_(patient_ids))
     frame = pd.read_sql(query, session.connection())

@@ -88,7 +88,9 @@ def patient_response(
     if rules_id not in available:
         raise NotFound(f"Unknown response rule set {rules_id!r}; choose one of {', '.join(available)}")
     rule_set = available[rules_id]
-    detectable = reproducibility.from_file(reproducibility_file) if reproducibility_file else reproducibility.shipped()
+    detectable = (
+        reproducibility.from_file(reproducibility_file) if reproducibility_file else reproducibility.shipped()
+    )
     patient = find_patient(session, code)
     visits = visit_dates(session, [patient.id])
     dates = [d for d in visits["visit_date"]]
@@ -103,20 +105,38 @@ def patient_response(
     plan = [r for r in plan if at is not None and r.start_date <= at]
     table = scale_table()
     by_scale = rules.series_by_scale(scores)
-    classifications = [rules.classify(r, by_scale, rule_set, at=at, settings=settings, scales=table) for r in plan]
+    classifications = [
+        rules.classify(r, by_scale, rule_set, at=at, settings=settings, scales=table) for r in plan
+    ]
     current = _running(plan, at) if at else None
     shown = scores[scores["date"] <= at] if at else scores
-    score_changes = change.score_changes(shown, table, {d: _running(plan, d) for d in shown["date"].unique()}, settings)
+    score_changes = change.score_changes(
+        shown, table, {d: _running(plan, d) for d in shown["date"].unique()}, settings
+    )
 
     values = _nerve_values(session, visits, limits_name)
     nerve_changes, summary = _nerve_changes(values, visits, at, current, detectable, settings)
     window_span = _window(current, at, window, visits, scores, settings)
     trends = _trends(shown, values, window_span, table)
     return PatientResponse(
-        patient=patient.code, diagnosis=patient.diagnosis, at=at, visit_dates=dates, rule_set=rule_set, settings=settings,
-        regimens=plan, classifications=classifications, current=current, scores=scores, score_changes=score_changes,
-        nerve_changes=nerve_changes, nerve_summary=summary, nerve_values=values, trends=trends, window=window_span,
-        detectable=detectable, notes=notes,
+        patient=patient.code,
+        diagnosis=patient.diagnosis,
+        at=at,
+        visit_dates=dates,
+        rule_set=rule_set,
+        settings=settings,
+        regimens=plan,
+        classifications=classifications,
+        current=current,
+        scores=scores,
+        score_changes=score_changes,
+        nerve_changes=nerve_changes,
+        nerve_summary=summary,
+        nerve_values=values,
+        trends=trends,
+        window=window_span,
+        detectable=detectable,
+        notes=notes,
     )
 
 
@@ -140,8 +160,14 @@ def _nerve_values(session: Session, visits: pd.DataFrame, limits_name: str | Non
     return values
 
 
-def _nerve_changes(values: pd.DataFrame, visits: pd.DataFrame, at: dt.date | None, current: Regimen | None,
-                   detectable, settings: ResponseSettings) -> tuple[pd.DataFrame, list[dict]]:
+def _nerve_changes(
+    values: pd.DataFrame,
+    visits: pd.DataFrame,
+    at: dt.date | None,
+    current: Regimen | None,
+    detectable,
+    settings: ResponseSettings,
+) -> tuple[pd.DataFrame, list[dict]]:
     studied = sorted(set(values["visit_date"])) if len(values) else []
     if at is None or at not in studied:
         return pd.DataFrame(columns=change.NERVE_CHANGE_COLUMNS), []
@@ -149,20 +175,36 @@ def _nerve_changes(values: pd.DataFrame, visits: pd.DataFrame, at: dt.date | Non
     earlier = [d for d in studied if d < at]
     parts = []
     if earlier:
-        parts.append(change.nerve_changes(values, key_of[at], key_of[earlier[-1]], "previous", earlier[-1], detectable, settings))
+        parts.append(
+            change.nerve_changes(
+                values, key_of[at], key_of[earlier[-1]], "previous", earlier[-1], detectable, settings
+            )
+        )
     if current is not None:
         base = change.baseline([(d, 0.0) for d in studied], current, settings)
         if base is not None and base[0] < at and (not earlier or base[0] != earlier[-1]):
-            parts.append(change.nerve_changes(values, key_of[at], key_of[base[0]], "regimen_baseline", base[0], detectable, settings))
+            parts.append(
+                change.nerve_changes(
+                    values, key_of[at], key_of[base[0]], "regimen_baseline", base[0], detectable, settings
+                )
+            )
         elif base is not None and earlier and base[0] == earlier[-1] and parts:
             # The previous study is also the regimen baseline: one comparison, both names.
             parts[0] = parts[0].assign(reference="previous = regimen_baseline")
-    frame = pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=change.NERVE_CHANGE_COLUMNS)
+    frame = (
+        pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=change.NERVE_CHANGE_COLUMNS)
+    )
     return frame, change.nerve_summary(frame)
 
 
-def _window(current: Regimen | None, at: dt.date | None, window: str, visits: pd.DataFrame, scores: pd.DataFrame,
-            settings: ResponseSettings) -> tuple[dt.date, dt.date] | None:
+def _window(
+    current: Regimen | None,
+    at: dt.date | None,
+    window: str,
+    visits: pd.DataFrame,
+    scores: pd.DataFrame,
+    settings: ResponseSettings,
+) -> tuple[dt.date, dt.date] | None:
     if at is None:
         return None
     days = sorted({*visits["visit_date"], *scores["date"]})
@@ -174,7 +216,9 @@ def _window(current: Regimen | None, at: dt.date | None, window: str, visits: pd
     return (before[-1] if before else current.start_date, at)
 
 
-def _trends(scores: pd.DataFrame, values: pd.DataFrame, span: tuple[dt.date, dt.date] | None, table) -> list[TrendRow]:
+def _trends(
+    scores: pd.DataFrame, values: pd.DataFrame, span: tuple[dt.date, dt.date] | None, table
+) -> list[TrendRow]:
     if span is None:
         return []
     lo, hi = span
@@ -182,13 +226,37 @@ def _trends(scores: pd.DataFrame, values: pd.DataFrame, span: tuple[dt.date, dt.
     inside = scores[(scores["date"] >= lo) & (scores["date"] <= hi)]
     for scale, part in inside.groupby("scale", sort=True):
         unit = table[scale].unit if scale in table else ""
-        out.append(TrendRow("score", scale, "", "", "", "", unit, trend.slope_per_year(list(part["date"]), list(part["value"]))))
+        out.append(
+            TrendRow(
+                "score",
+                scale,
+                "",
+                "",
+                "",
+                "",
+                unit,
+                trend.slope_per_year(list(part["date"]), list(part["value"])),
+            )
+        )
     if len(values):
         inside = values[(values["visit_date"] >= lo) & (values["visit_date"] <= hi) & values["value"].notna()]
         units = {p: d.unit for p, d in reproducibility.shipped().items()}
-        for (nerve, side, modality, parameter, where), part in inside.groupby(["nerve", "side", "modality", "parameter", "where"], sort=True):
+        for (nerve, side, modality, parameter, where), part in inside.groupby(
+            ["nerve", "side", "modality", "parameter", "where"], sort=True
+        ):
             unit = "µV" if parameter == "snap_amplitude" else units.get(parameter, "")
-            out.append(TrendRow("nerve", parameter, nerve, side, modality, where, unit, trend.slope_per_year(list(part["visit_date"]), list(part["value"]))))
+            out.append(
+                TrendRow(
+                    "nerve",
+                    parameter,
+                    nerve,
+                    side,
+                    modality,
+                    where,
+                    unit,
+                    trend.slope_per_year(list(part["visit_date"]), list(part["value"])),
+                )
+            )
     return out
 
 
@@ -204,16 +272,23 @@ def _iso(value):
 
 def _regimen_dict(regimen: Regimen) -> dict:
     return {
-        "therapy": regimen.therapy, "start_date": regimen.start_date.isoformat(),
-        "end_date": regimen.end_date.isoformat() if regimen.end_date else None, "dose": regimen.dose,
-        "dose_unit": regimen.dose_unit, "interval_days": regimen.interval_days, "label": regimen.label(),
+        "therapy": regimen.therapy,
+        "start_date": regimen.start_date.isoformat(),
+        "end_date": regimen.end_date.isoformat() if regimen.end_date else None,
+        "dose": regimen.dose,
+        "dose_unit": regimen.dose_unit,
+        "interval_days": regimen.interval_days,
+        "label": regimen.label(),
         "maintenance_start_date": regimen.maintenance_start.isoformat(),
         "assessed_until": regimen.assessed_until.isoformat() if regimen.assessed_until else None,
         "single_course": regimen.single_course,
-        "induction": None if regimen.induction is None else {
+        "induction": None
+        if regimen.induction is None
+        else {
             "start_date": regimen.induction.start_date.isoformat(),
             "end_date": regimen.induction.end_date.isoformat() if regimen.induction.end_date else None,
-            "dose": regimen.induction.dose, "dose_unit": regimen.induction.dose_unit,
+            "dose": regimen.induction.dose,
+            "dose_unit": regimen.induction.dose_unit,
         },
     }
 
@@ -244,7 +319,12 @@ def response_json(result: PatientResponse) -> dict:
             for c in result.classifications
         ],
         "scores": [
-            {"date": _iso(r["date"]), "scale": r["scale"], "value": r["value"], "computed": bool(r["computed"])}
+            {
+                "date": _iso(r["date"]),
+                "scale": r["scale"],
+                "value": r["value"],
+                "computed": bool(r["computed"]),
+            }
             for r in result.scores.sort_values(["date", "scale"], kind="stable").to_dict("records")
         ],
         "score_changes": _records(result.score_changes),
@@ -252,9 +332,17 @@ def response_json(result: PatientResponse) -> dict:
         "nerve_summary": result.nerve_summary,
         "trends": [
             {
-                "kind": t.kind, "name": t.name, "nerve": t.nerve or None, "side": t.side or None, "where": t.where or None,
-                "unit": t.unit, "points": t.trend.points, "slope_per_year": t.trend.slope, "ci95_low": t.trend.low,
-                "ci95_high": t.trend.high, "reason": t.trend.reason or None,
+                "kind": t.kind,
+                "name": t.name,
+                "nerve": t.nerve or None,
+                "side": t.side or None,
+                "where": t.where or None,
+                "unit": t.unit,
+                "points": t.trend.points,
+                "slope_per_year": t.trend.slope,
+                "ci95_low": t.trend.low,
+                "ci95_high": t.trend.high,
+                "reason": t.trend.reason or None,
             }
             for t in result.trends
         ],

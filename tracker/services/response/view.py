@@ -15,7 +15,11 @@ import pandas as pd
 from sqlalchemy.orm import Session
 
 from tracker.domain.labels import (
-    CHANGE_VERDICT_LABELS, CHANGE_VERDICT_SHAPES, CLASSIFICATION_LABELS, CLASSIFICATION_SHAPES, COURSE_LABELS,
+    CHANGE_VERDICT_LABELS,
+    CHANGE_VERDICT_SHAPES,
+    CLASSIFICATION_LABELS,
+    CLASSIFICATION_SHAPES,
+    COURSE_LABELS,
     SDC_STEP_LABELS,
 )
 from tracker.response import change, rules
@@ -37,18 +41,50 @@ NERVE_PARAMETER_OF = {
 PER_SERIES = {"segment_velocity", "block_pct"}
 
 PANEL_COLUMNS = [
-    "scale", "title", "label", "unit", "minimum", "maximum", "direction", "mic", "mic_kind", "mic_words", "mic_source",
-    "mic_status", "baseline_date", "baseline_value", "band_low", "band_high", "band_start", "band_end",
+    "scale",
+    "title",
+    "label",
+    "unit",
+    "minimum",
+    "maximum",
+    "direction",
+    "mic",
+    "mic_kind",
+    "mic_words",
+    "mic_source",
+    "mic_status",
+    "baseline_date",
+    "baseline_value",
+    "band_low",
+    "band_high",
+    "band_start",
+    "band_end",
 ]
 STEP_COLUMNS = [
-    "follow_parameter", "panel", "series", "nerve", "side", "modality", "parameter", "where", "visit_date",
-    "reference_date", "reference_value", "value", "change", "change_pct", "verdict", "sdc", "less_certain", "words",
+    "follow_parameter",
+    "panel",
+    "series",
+    "nerve",
+    "side",
+    "modality",
+    "parameter",
+    "where",
+    "visit_date",
+    "reference_date",
+    "reference_value",
+    "value",
+    "change",
+    "change_pct",
+    "verdict",
+    "sdc",
+    "less_certain",
+    "words",
 ]
 POINT_COLUMNS = ["scale", "date", "value", "computed", "note", "change_words"]
 EVIDENCE_COLUMNS = ["measure", "baseline", "latest", "change", "threshold", "verdict", "counted as", "source"]
 DEFERS = (
-    "The classification defers to the treating clinician: it applies the chosen rule set's published thresholds "
-    "to the recorded scores and supports, never replaces, clinical judgement."
+    "The classification defers to the treating clinician: it applies the chosen rule set's published "
+    "thresholds to the recorded scores and supports, never replaces, clinical judgement."
 )
 
 
@@ -84,10 +120,14 @@ def rule_set_choices() -> dict[str, str]:
     """{rule-set id: words for a selector}, the default first."""
     available = rules.rule_sets()
     ordered = [rules.DEFAULT_RULES, *[r for r in available if r != rules.DEFAULT_RULES]]
-    return {r: f"{available[r].title} — {r}, version {available[r].version}" for r in ordered if r in available}
+    return {
+        r: f"{available[r].title} — {r}, version {available[r].version}" for r in ordered if r in available
+    }
 
 
-def response_view(session: Session, code: str, *, rules_id: str | None = None, limits_name: str | None = None) -> ResponseView:
+def response_view(
+    session: Session, code: str, *, rules_id: str | None = None, limits_name: str | None = None
+) -> ResponseView:
     """The response of patient ``code`` at the latest visit or score, ready for the follow-up page."""
     return build_view(patient_response(session, code, rules_id=rules_id, limits_name=limits_name))
 
@@ -106,13 +146,16 @@ def build_view(result: PatientResponse) -> ResponseView:
 
 
 def score_panels(result: PatientResponse, scales: dict[str, ScaleInfo] | None = None) -> pd.DataFrame:
-    """One row per scale that has scores: its range and direction (scales.csv), and for scales with a minimal
-    important change (MIC) the band baseline ± MIC around the running regimen's baseline
-    (:func:`tracker.response.change.baseline`), from the baseline day to the regimen's end or the latest day."""
+    """One row per scale that has scores: its range and direction (scales.csv), and for
+    scales with a minimal important change (MIC) the band baseline ± MIC around the running
+    regimen's baseline (:func:`tracker.response.change.baseline`), from the baseline day to
+    the regimen's end or the latest day."""
     scales = scales or scale_table()
     present = set(result.scores["scale"])
     order = [s for s in scales if s in present] + sorted(present - set(scales))
-    by_scale = rules.series_by_scale(result.scores[result.scores["date"] <= result.at] if result.at else result.scores)
+    by_scale = rules.series_by_scale(
+        result.scores[result.scores["date"] <= result.at] if result.at else result.scores
+    )
     rows = []
     for scale in order:
         info = scales.get(scale)
@@ -120,19 +163,35 @@ def score_panels(result: PatientResponse, scales: dict[str, ScaleInfo] | None = 
             rows.append({"scale": scale, "title": scale.replace("_", " "), "label": scale.replace("_", " ")})
             continue
         row = {
-            "scale": scale, "title": f"{info.label} ({info.unit}) — {info.direction_words}", "label": info.label,
-            "unit": info.unit, "minimum": info.minimum, "maximum": info.maximum, "direction": info.direction_words,
-            "mic": info.mic, "mic_kind": info.mic_kind, "mic_words": info.mic_words(), "mic_source": info.mic_source,
+            "scale": scale,
+            "title": f"{info.label} ({info.unit}) — {info.direction_words}",
+            "label": info.label,
+            "unit": info.unit,
+            "minimum": info.minimum,
+            "maximum": info.maximum,
+            "direction": info.direction_words,
+            "mic": info.mic,
+            "mic_kind": info.mic_kind,
+            "mic_words": info.mic_words(),
+            "mic_source": info.mic_source,
             "mic_status": info.mic_status,
         }
-        base = change.baseline(by_scale.get(scale, []), result.current, result.settings) if result.current and info.mic else None
+        base = (
+            change.baseline(by_scale.get(scale, []), result.current, result.settings)
+            if result.current and info.mic
+            else None
+        )
         if base is not None:
             day, value = base
             size = info.mic if info.mic_kind == "absolute" else abs(value) * info.mic / 100.0
             end = result.current.end_date or result.at
             row.update(
-                baseline_date=day, baseline_value=value, band_low=value - size, band_high=value + size,
-                band_start=day, band_end=max(end, day + dt.timedelta(days=1)),
+                baseline_date=day,
+                baseline_value=value,
+                band_low=value - size,
+                band_high=value + size,
+                band_start=day,
+                band_end=max(end, day + dt.timedelta(days=1)),
             )
         rows.append(row)
     return pd.DataFrame(rows, columns=PANEL_COLUMNS)
@@ -143,16 +202,30 @@ def score_points(result: PatientResponse) -> pd.DataFrame:
     regimen then running, judged against the scale's minimal important change (``score_changes``)."""
     scores = result.scores.sort_values(["scale", "date"], kind="stable")
     changes = result.score_changes
-    since = changes[changes["reference"] == "regimen_baseline"].set_index(["scale", "date"]) if len(changes) else None
+    since = (
+        changes[changes["reference"] == "regimen_baseline"].set_index(["scale", "date"])
+        if len(changes)
+        else None
+    )
     notes, words = [], []
     for scale, day, computed in zip(scores["scale"], scores["date"], scores["computed"].astype(bool)):
-        notes.append(("computed from the arm and leg grades" if scale.endswith("incat") else "computed") if computed else "")
+        notes.append(
+            ("computed from the arm and leg grades" if scale.endswith("incat") else "computed")
+            if computed
+            else ""
+        )
         text = ""
         if since is not None and (scale, day) in since.index:
             c = since.loc[(scale, day)]
             c = c.iloc[0] if isinstance(c, pd.DataFrame) else c
-            verdict = f"{CHANGE_VERDICT_SHAPES.get(c['verdict'], '')} {CHANGE_VERDICT_LABELS.get(c['verdict'], c['verdict'])}".strip()
-            text = f"since the regimen baseline ({c['reference_date'].isoformat()}): {c['change']:+g} — {verdict} ({c['threshold']})"
+            verdict = (
+                f"{CHANGE_VERDICT_SHAPES.get(c['verdict'], '')} "
+                f"{CHANGE_VERDICT_LABELS.get(c['verdict'], c['verdict'])}"
+            ).strip()
+            text = (
+                f"since the regimen baseline ({c['reference_date'].isoformat()}): {c['change']:+g} — "
+                f"{verdict} ({c['threshold']})"
+            )
         words.append(text)
     out = scores.assign(note=notes, change_words=words)
     return out[POINT_COLUMNS].reset_index(drop=True)
@@ -166,10 +239,14 @@ def nerve_steps(result: PatientResponse) -> pd.DataFrame:
         return pd.DataFrame(columns=STEP_COLUMNS)
     follow_of = {v: k for k, v in NERVE_PARAMETER_OF.items()}
     values = values[values["parameter"].isin(follow_of)]
-    dates = values.drop_duplicates("visit_key")[["visit_key", "visit_date"]].sort_values("visit_date", kind="stable")
+    dates = values.drop_duplicates("visit_key")[["visit_key", "visit_date"]].sort_values(
+        "visit_date", kind="stable"
+    )
     keys, days = list(dates["visit_key"]), list(dates["visit_date"])
     parts = [
-        change.nerve_changes(values, keys[i], keys[i - 1], "previous", days[i - 1], result.detectable, result.settings).assign(visit_date=days[i])
+        change.nerve_changes(
+            values, keys[i], keys[i - 1], "previous", days[i - 1], result.detectable, result.settings
+        ).assign(visit_date=days[i])
         for i in range(1, len(keys))
     ]
     parts = [p for p in parts if len(p)]
@@ -177,7 +254,9 @@ def nerve_steps(result: PatientResponse) -> pd.DataFrame:
         return pd.DataFrame(columns=STEP_COLUMNS)
     frame = pd.concat(parts, ignore_index=True)
     frame["follow_parameter"] = frame["parameter"].map(follow_of)
-    frame["panel"] = [panel_name(n, s, m) for n, s, m in zip(frame["nerve"], frame["side"], frame["modality"])]
+    frame["panel"] = [
+        panel_name(n, s, m) for n, s, m in zip(frame["nerve"], frame["side"], frame["modality"])
+    ]
     frame["series"] = [w if p in PER_SERIES else None for p, w in zip(frame["parameter"], frame["where"])]
     frame["words"] = [_step_words(r) for r in frame.itertuples(index=False)]
     return frame[STEP_COLUMNS].reset_index(drop=True)
@@ -190,7 +269,9 @@ def sdc_words(view: ResponseView, follow_parameter: str) -> str:
     if info is None:
         return "No smallest detectable change is set for this parameter: no change is marked."
     if info.sdc is None:
-        return f"No published smallest detectable change for {info.label} ({info.source}): no change is marked."
+        return (
+            f"No published smallest detectable change for {info.label} ({info.source}): no change is marked."
+        )
     unit = "%" if info.change_kind == "percent" else f" {info.unit}"
     return f"Smallest detectable change of {info.label}: {info.sdc:g}{unit} ({info.source})."
 
@@ -199,12 +280,27 @@ def _step_words(row) -> str:
     """``▼ worse beyond SDC: 45.20 → 31.00 (−31.4 %; SDC 27.1 %) since 2024-04-09``; '' when not beyond."""
     if row.verdict not in SDC_STEP_LABELS:
         return ""
-    if row.value is None or row.reference_value is None or row.value != row.value or row.reference_value != row.reference_value:
+    if (
+        row.value is None
+        or row.reference_value is None
+        or row.value != row.value
+        or row.reference_value != row.reference_value
+    ):
         shape = CHANGE_VERDICT_SHAPES[row.verdict]
         where = "this visit" if getattr(row, "absent", False) else "the earlier visit"
-        return f"{shape} {'better' if row.verdict == change.IMPROVED else 'worse'}: F-waves absent at {where} ({row.reference_date.isoformat()})"
-    size = f"{row.change_pct:+.1f} %" if row.change_pct == row.change_pct and row.change_pct is not None else f"{row.change:+.2f}"
-    text = f"{SDC_STEP_LABELS[row.verdict]}: {row.reference_value:.2f} → {row.value:.2f} ({size}; SDC {row.sdc:g} %) since {row.reference_date.isoformat()}"
+        return (
+            f"{shape} {'better' if row.verdict == change.IMPROVED else 'worse'}: F-waves absent at {where} "
+            f"({row.reference_date.isoformat()})"
+        )
+    size = (
+        f"{row.change_pct:+.1f} %"
+        if row.change_pct == row.change_pct and row.change_pct is not None
+        else f"{row.change:+.2f}"
+    )
+    text = (
+        f"{SDC_STEP_LABELS[row.verdict]}: {row.reference_value:.2f} → {row.value:.2f} ({size}; SDC "
+        f"{row.sdc:g} %) since {row.reference_date.isoformat()}"
+    )
     if row.less_certain:
         text += f" — less certain: {row.less_certain}"
     return text
@@ -238,7 +334,8 @@ def _value(value: float, day: dt.date) -> str:
 
 
 def evidence_table(c: rules.Classification) -> pd.DataFrame:
-    """One line per scale the rule set reads: baseline, latest, change, threshold, verdict and source, in words."""
+    """One line per scale the rule set reads: baseline, latest, change, threshold,
+    verdict and source, in words."""
     rows = []
     for e in c.evidence:
         pct = "" if e["change_pct"] is None else f" ({e['change_pct']:+.0f} %)"
@@ -249,8 +346,14 @@ def evidence_table(c: rules.Classification) -> pd.DataFrame:
                 "latest": _value(e["value"], e["date"]),
                 "change": f"{e['change']:+g} {e['unit']}{pct}",
                 "threshold": e["threshold"],
-                "verdict": f"{CHANGE_VERDICT_SHAPES.get(e['verdict'], '')} {CHANGE_VERDICT_LABELS.get(e['verdict'], e['verdict'])}".strip(),
-                "counted as": f"{CLASSIFICATION_SHAPES.get(e['outcome'], '')} {CLASSIFICATION_LABELS.get(e['outcome'], e['outcome'])}".strip(),
+                "verdict": (
+                    f"{CHANGE_VERDICT_SHAPES.get(e['verdict'], '')} "
+                    f"{CHANGE_VERDICT_LABELS.get(e['verdict'], e['verdict'])}"
+                ).strip(),
+                "counted as": (
+                    f"{CLASSIFICATION_SHAPES.get(e['outcome'], '')} "
+                    f"{CLASSIFICATION_LABELS.get(e['outcome'], e['outcome'])}"
+                ).strip(),
                 "source": e["source"] + ("" if e["status"] == "verified" else " (from memory, not verified)"),
             }
         )
@@ -258,13 +361,21 @@ def evidence_table(c: rules.Classification) -> pd.DataFrame:
 
 
 def with_course(table: pd.DataFrame, course: pd.DataFrame) -> pd.DataFrame:
-    """The patients table (column ``patient``) with ``course`` in words, the rule set that judged it, and why."""
+    """The patients table (column ``patient``) with ``course`` in words, the
+    rule set that judged it, and why."""
     found = course.set_index("code")
     out = table.copy()
     known = out["patient"].isin(found.index)
-    out["course"] = [COURSE_LABELS[found.at[p, "course"]] if k else COURSE_LABELS["not_assessable"] for p, k in zip(out["patient"], known)]
+    out["course"] = [
+        COURSE_LABELS[found.at[p, "course"]] if k else COURSE_LABELS["not_assessable"]
+        for p, k in zip(out["patient"], known)
+    ]
     titles = {rule_set.id: rule_set.title for rule_set in rules.rule_sets().values()}
-    out["course rule set"] = [f"{titles.get(found.at[p, 'rules'], found.at[p, 'rules'])} (version {found.at[p, 'rules_version']})" if k else ""
-                              for p, k in zip(out["patient"], known)]
+    out["course rule set"] = [
+        f"{titles.get(found.at[p, 'rules'], found.at[p, 'rules'])} (version {found.at[p, 'rules_version']})"
+        if k
+        else ""
+        for p, k in zip(out["patient"], known)
+    ]
     out["course basis"] = [found.at[p, "why"] if k else "" for p, k in zip(out["patient"], known)]
     return out
