@@ -24,7 +24,15 @@ from sqlalchemy import select, update
 
 from conftest import BACKENDS, DEMO, new_database
 from tracker.db import migrate
-from tracker.db.models import NerveTest, OutcomeScore, Patient, PatientIdentity, StimulationSite, Treatment, Visit
+from tracker.db.models import (
+    NerveTest,
+    OutcomeScore,
+    Patient,
+    PatientIdentity,
+    StimulationSite,
+    Treatment,
+    Visit,
+)
 from tracker.db.session import make_engine, make_session_factory
 from tracker.errors import TrackerError
 from tracker.services import preferences
@@ -58,7 +66,14 @@ def _populate(url: str) -> None:
             import_file(session, DEMO / name, username=USER)
         patients = {p.code: p for p in session.scalars(select(Patient))}
         for code, (record_number, full_name, birth_date) in IDENTITIES.items():
-            session.add(PatientIdentity(patient_id=patients[code].id, record_number=record_number, full_name=full_name, birth_date=birth_date))
+            session.add(
+                PatientIdentity(
+                    patient_id=patients[code].id,
+                    record_number=record_number,
+                    full_name=full_name,
+                    birth_date=birth_date,
+                )
+            )
         # Invented birth years around the Safe Harbor boundary: DEMO-04 is 89 in 2024 and 90 in 2025
         # (year difference); DEMO-05 is 92 in 2025.
         session.execute(update(Patient).where(Patient.code == "DEMO-04").values(birth_year=1935))
@@ -67,19 +82,28 @@ def _populate(url: str) -> None:
             visit.examiner = EXAMINERS[number % 2]
             visit.laboratory = LABORATORIES[number % 2]
         for number, treatment in enumerate(session.scalars(select(Treatment).order_by(Treatment.id))):
-            treatment.note = f"invented note {number}: phoned Zebulon Marchetti-Quayle on 0311-555-{number:04d}"
-        tests = session.scalars(select(NerveTest).where(NerveTest.modality == "motor").order_by(NerveTest.id).limit(len(FORMULA_SITES))).all()
+            treatment.note = (
+                f"invented note {number}: phoned Zebulon Marchetti-Quayle on 0311-555-{number:04d}"
+            )
+        tests = session.scalars(
+            select(NerveTest)
+            .where(NerveTest.modality == "motor")
+            .order_by(NerveTest.id)
+            .limit(len(FORMULA_SITES))
+        ).all()
         for test, text in zip(tests, FORMULA_SITES):
             test.recording_site = text
         # Invented scores around DEMO-01's visit of 2023-10-10 to test the nearest-score rule (ONLS is not in
         # the demo files): 10 days before and 10 days after (a tie: the earlier counts), and 31 days after
         # the visit of 2023-05-16 (outside the ±30-day window).
         demo_01 = patients["DEMO-01"].id
-        session.add_all([
-            OutcomeScore(patient_id=demo_01, score_date=dt.date(2023, 9, 30), scale="onls", value=3),
-            OutcomeScore(patient_id=demo_01, score_date=dt.date(2023, 10, 20), scale="onls", value=4),
-            OutcomeScore(patient_id=demo_01, score_date=dt.date(2023, 6, 16), scale="onls", value=5),
-        ])
+        session.add_all(
+            [
+                OutcomeScore(patient_id=demo_01, score_date=dt.date(2023, 9, 30), scale="onls", value=3),
+                OutcomeScore(patient_id=demo_01, score_date=dt.date(2023, 10, 20), scale="onls", value=4),
+                OutcomeScore(patient_id=demo_01, score_date=dt.date(2023, 6, 16), scale="onls", value=5),
+            ]
+        )
     engine.dispose()
 
 
@@ -90,7 +114,8 @@ class Demo:
         self.engine = make_engine(url)
         self.sessions = make_session_factory(self.engine)
 
-    # One criteria set unless a test asks for others: each set costs time, and most tests are not about verdicts.
+    # One criteria set unless a test asks for others: each set costs time, and
+    # most tests are not about verdicts.
     def frame(self, **options) -> pd.DataFrame:
         options.setdefault("criteria", ("efns-pns-2010-cidp",))
         with self.sessions.begin() as session:
@@ -99,12 +124,16 @@ class Demo:
     def write(self, out: Path, file_format: str, **options):
         options.setdefault("criteria", ("efns-pns-2010-cidp",))
         with self.sessions.begin() as session:
-            return write_export(session, ExportOptions(**options), file_format=file_format, out=out, username=USER)
+            return write_export(
+                session, ExportOptions(**options), file_format=file_format, out=out, username=USER
+            )
 
     def export_ids(self) -> dict[str, str]:
         with self.sessions() as session:
             secret = bytes.fromhex(preferences.get(session, preferences.EXPORT_SECRET_KEY))
-            return {code: deidentify.export_id(secret, code) for code in session.scalars(select(Patient.code))}
+            return {
+                code: deidentify.export_id(secret, code) for code in session.scalars(select(Patient.code))
+            }
 
 
 @pytest.fixture(scope="module", params=BACKENDS)
@@ -127,7 +156,8 @@ def _read_csv(path: Path) -> pd.DataFrame:
     return pd.read_csv(path, dtype={"export_id": str})
 
 
-# -- round trip --------------------------------------------------------------------------------------------------
+# -- round trip ----------------------------------------------------------------------------------------------
+
 
 def test_nerve_and_segment_values_round_trip_to_the_demo_file(demo, tmp_path):
     ids = demo.export_ids()
@@ -135,15 +165,29 @@ def test_nerve_and_segment_values_round_trip_to_the_demo_file(demo, tmp_path):
     segment = _read_csv(demo.write(tmp_path / "s", "csv", level="segment").files[0].path)
     # Demo data, invented: DEMO-01's first visit (2023-02-14), median right motor, site 1 latency 7.05 ms
     # and site 2 (elbow) 222 mm above it at 14.00 ms.
-    rows = [r for r in _demo_rows() if r["patient"] == "DEMO-01" and r["visit_date"] == "2023-02-14"
-            and r["nerve"] == "median" and r["modality"] == "motor"]
+    rows = [
+        r
+        for r in _demo_rows()
+        if r["patient"] == "DEMO-01"
+        and r["visit_date"] == "2023-02-14"
+        and r["nerve"] == "median"
+        and r["modality"] == "motor"
+    ]
     assert [r["latency_ms"] for r in rows] == ["7.05", "14.00"]
-    median = nerve[(nerve["export_id"] == ids["DEMO-01"]) & (nerve["days_since_first_visit"] == 0)
-                   & (nerve["nerve"] == "median") & (nerve["modality"] == "motor")]
+    median = nerve[
+        (nerve["export_id"] == ids["DEMO-01"])
+        & (nerve["days_since_first_visit"] == 0)
+        & (nerve["nerve"] == "median")
+        & (nerve["modality"] == "motor")
+    ]
     assert median["distal_latency_ms"].tolist() == [7.05]
     assert median["distal_amplitude_mv"].tolist() == [4.3]
-    forearm = segment[(segment["export_id"] == ids["DEMO-01"]) & (segment["days_since_first_visit"] == 0)
-                      & (segment["nerve"] == "median") & (segment["site_order"] == 2)]
+    forearm = segment[
+        (segment["export_id"] == ids["DEMO-01"])
+        & (segment["days_since_first_visit"] == 0)
+        & (segment["nerve"] == "median")
+        & (segment["site_order"] == 2)
+    ]
     # By hand: 222 mm / (14.00 − 7.05) ms = 31.942446 m/s.
     assert forearm["segment_velocity_m_per_s"].iloc[0] == pytest.approx(222 / (14.00 - 7.05), abs=1e-6)
     assert forearm["segment"].iloc[0] == "wrist → elbow"
@@ -153,20 +197,55 @@ def test_every_distal_value_equals_the_database(demo, tmp_path):
     nerve = _read_csv(demo.write(tmp_path / "n", "csv", level="nerve").files[0].path)
     ids = demo.export_ids()
     with demo.sessions() as session:
-        stored = pd.DataFrame(session.execute(
-            select(Patient.code, Visit.visit_date, NerveTest.nerve, NerveTest.side, NerveTest.modality, StimulationSite.latency_ms,
-                   StimulationSite.amplitude_mv, StimulationSite.amplitude_uv, NerveTest.temperature_c, NerveTest.f_latency_ms)
-            .join(Visit, Visit.patient_id == Patient.id).join(NerveTest, NerveTest.visit_id == Visit.id)
-            .join(StimulationSite, StimulationSite.nerve_test_id == NerveTest.id).where(StimulationSite.site_order == 1)
-        ).all(), columns=["code", "visit_date", "nerve", "side", "modality", "latency", "mv", "uv", "temperature", "f_latency"])
+        stored = pd.DataFrame(
+            session.execute(
+                select(
+                    Patient.code,
+                    Visit.visit_date,
+                    NerveTest.nerve,
+                    NerveTest.side,
+                    NerveTest.modality,
+                    StimulationSite.latency_ms,
+                    StimulationSite.amplitude_mv,
+                    StimulationSite.amplitude_uv,
+                    NerveTest.temperature_c,
+                    NerveTest.f_latency_ms,
+                )
+                .join(Visit, Visit.patient_id == Patient.id)
+                .join(NerveTest, NerveTest.visit_id == Visit.id)
+                .join(StimulationSite, StimulationSite.nerve_test_id == NerveTest.id)
+                .where(StimulationSite.site_order == 1)
+            ).all(),
+            columns=[
+                "code",
+                "visit_date",
+                "nerve",
+                "side",
+                "modality",
+                "latency",
+                "mv",
+                "uv",
+                "temperature",
+                "f_latency",
+            ],
+        )
     first = stored.groupby("code")["visit_date"].transform("min")
     stored["export_id"] = stored["code"].map(ids)
     stored["days_since_first_visit"] = [(d - f).days for d, f in zip(stored["visit_date"], first)]
-    merged = stored.merge(nerve, on=["export_id", "days_since_first_visit", "nerve", "side", "modality"], validate="one_to_one")
+    merged = stored.merge(
+        nerve, on=["export_id", "days_since_first_visit", "nerve", "side", "modality"], validate="one_to_one"
+    )
     assert len(merged) == len(stored) == len(nerve) == 207  # 207 nerve tests in the demo file (invented)
-    for exported, expected in (("distal_latency_ms", "latency"), ("distal_amplitude_mv", "mv"), ("distal_amplitude_uv", "uv"),
-                               ("temperature_c", "temperature"), ("f_latency_ms", "f_latency")):
-        pd.testing.assert_series_equal(merged[exported].astype(float), merged[expected].astype(float), check_names=False)
+    for exported, expected in (
+        ("distal_latency_ms", "latency"),
+        ("distal_amplitude_mv", "mv"),
+        ("distal_amplitude_uv", "uv"),
+        ("temperature_c", "temperature"),
+        ("f_latency_ms", "f_latency"),
+    ):
+        pd.testing.assert_series_equal(
+            merged[exported].astype(float), merged[expected].astype(float), check_names=False
+        )
 
 
 def test_visit_level_treatment_and_scores_at_the_visit(demo):
@@ -178,7 +257,11 @@ def test_visit_level_treatment_and_scores_at_the_visit(demo):
     # 2023-03-17 → 2023-05-16 is 14 + 30 + 16 = 60 days.
     assert pd.isna(one.loc[0, "therapy_at_visit"])
     assert one.loc[91, "therapy_at_visit"] == "ivig"
-    assert (one.loc[91, "therapy_dose"], one.loc[91, "therapy_dose_unit"], one.loc[91, "therapy_interval_days"]) == (1.0, "g/kg", 21)
+    assert (
+        one.loc[91, "therapy_dose"],
+        one.loc[91, "therapy_dose_unit"],
+        one.loc[91, "therapy_interval_days"],
+    ) == (1.0, "g/kg", 21)
     assert one.loc[91, "therapy_days_since_start"] == 60
     # scores.csv (invented): INCAT 5 on the first visit day, 4 on 2023-05-16.
     assert (one.loc[0, "score_incat"], one.loc[0, "score_incat_offset_days"]) == (5.0, 0)
@@ -190,17 +273,29 @@ def test_visit_level_treatment_and_scores_at_the_visit(demo):
     assert "Zebulon" not in visits.to_csv()  # treatment notes are never exported
 
 
-# -- de-identification ------------------------------------------------------------------------------------------
+# -- de-identification ---------------------------------------------------------------------------------------
+
 
 def _identifying_strings(demo) -> list[str]:
     """Every identifying string stored in the database, in the renderings a file could hold."""
     strings: list[str] = []
     with demo.sessions() as session:
         for record_number, full_name, birth_date in session.execute(
-                select(PatientIdentity.record_number, PatientIdentity.full_name, PatientIdentity.birth_date)):
-            strings += [record_number, full_name, *[part for part in full_name.replace("-", " ").split() if len(part) > 3]]
-            strings += [birth_date.isoformat(), birth_date.strftime("%d/%m/%Y"), birth_date.strftime("%m/%d/%Y"),
-                        birth_date.strftime("%d.%m.%Y"), birth_date.strftime("%Y%m%d"), f"{birth_date.day} {birth_date.strftime('%B %Y')}"]
+            select(PatientIdentity.record_number, PatientIdentity.full_name, PatientIdentity.birth_date)
+        ):
+            strings += [
+                record_number,
+                full_name,
+                *[part for part in full_name.replace("-", " ").split() if len(part) > 3],
+            ]
+            strings += [
+                birth_date.isoformat(),
+                birth_date.strftime("%d/%m/%Y"),
+                birth_date.strftime("%m/%d/%Y"),
+                birth_date.strftime("%d.%m.%Y"),
+                birth_date.strftime("%Y%m%d"),
+                f"{birth_date.day} {birth_date.strftime('%B %Y')}",
+            ]
         strings += [e for e in session.scalars(select(Visit.examiner).distinct()) if e]
         strings += [lab for lab in session.scalars(select(Visit.laboratory).distinct()) if lab]
         strings += [n for n in session.scalars(select(Treatment.note)) if n]
@@ -230,8 +325,12 @@ def test_no_identifying_string_in_any_file(demo, tmp_path, file_format):
     for level in ("visit", "nerve", "segment", "long"):
         written += [f.path for f in demo.write(tmp_path / level, file_format, level=level).files]
     assert len(written) == 4 * (3 if file_format != "xlsx" else 2)
-    # The visit level's treatment-response columns (regimen, response, score changes) are among the scanned bytes.
-    assert any(b"response_trial_aincat" in text and b"regimen_start_days_since_first_visit" in text for text in _file_texts(written[0]))
+    # The visit level's treatment-response columns (regimen, response, score
+    # changes) are among the scanned bytes.
+    assert any(
+        b"response_trial_aincat" in text and b"regimen_start_days_since_first_visit" in text
+        for text in _file_texts(written[0])
+    )
     for path in written:
         for text in _file_texts(path):
             lowered = text.lower()
@@ -250,27 +349,42 @@ def test_shifted_dates_keep_intervals_and_move_every_date(demo):
             real[row["patient"]].append(day)
     for code, days in real.items():
         days = sorted(days)
-        shifted = visits.loc[visits["export_id"] == ids[code]].sort_values("visit_number")["visit_date_shifted"].tolist()
+        shifted = (
+            visits.loc[visits["export_id"] == ids[code]]
+            .sort_values("visit_number")["visit_date_shifted"]
+            .tolist()
+        )
         assert len(shifted) == len(days)
         offset = (shifted[0] - days[0]).days
         assert 1 <= abs(offset) <= 365  # project rule: a shift of 1 to 365 days, never 0
         assert [(s - d).days for s, d in zip(shifted, days)] == [offset] * len(days)
-        assert visits.loc[visits["export_id"] == ids[code], "days_since_first_visit"].tolist() == [(d - days[0]).days for d in days]
+        assert visits.loc[visits["export_id"] == ids[code], "days_since_first_visit"].tolist() == [
+            (d - days[0]).days for d in days
+        ]
 
 
 def test_relative_dates_have_no_date_column(demo, tmp_path):
     visits = demo.frame(level="visit", dates="relative")
     assert "visit_date_shifted" not in visits and "visit_date" not in visits
-    schema = pq.read_schema(demo.write(tmp_path / "r", "parquet", level="nerve", dates="relative").files[0].path)
+    schema = pq.read_schema(
+        demo.write(tmp_path / "r", "parquet", level="nerve", dates="relative").files[0].path
+    )
     assert not any(pa.types.is_date(field.type) for field in schema)
 
 
 def test_ages_over_89_are_shown_as_90_plus(demo):
-    # HIPAA Safe Harbor, 45 CFR 164.514(b)(2)(i)(C): ages over 89 are aggregated into one category of 90 or older.
+    # HIPAA Safe Harbor, 45 CFR 164.514(b)(2)(i)(C): ages over 89 are aggregated
+    # into one category of 90 or older.
     visits = demo.frame(level="visit")
     ids = demo.export_ids()
-    # Invented birth years: DEMO-04 born 1935, visits 2024 (89) ×3 and 2025 (90); DEMO-05 born 1933, visits 2025 (92).
-    assert visits.loc[visits["export_id"] == ids["DEMO-04"], "age_at_visit"].tolist() == ["89", "89", "89", "90+"]
+    # Invented birth years: DEMO-04 born 1935, visits 2024 (89) ×3 and 2025 (90);
+    # DEMO-05 born 1933, visits 2025 (92).
+    assert visits.loc[visits["export_id"] == ids["DEMO-04"], "age_at_visit"].tolist() == [
+        "89",
+        "89",
+        "89",
+        "90+",
+    ]
     assert set(visits.loc[visits["export_id"] == ids["DEMO-05"], "age_at_visit"]) == {"90+"}
     # DEMO-01 born 1961 (demo file, invented), first visit in 2023: 62.
     assert visits.loc[visits["export_id"] == ids["DEMO-01"], "age_at_visit"].iloc[0] == "62"
@@ -289,16 +403,24 @@ def test_export_ids_stable_in_one_database_and_unlinkable_across_two(demo, tmp_p
             assert len(theirs) == len(first)
             assert not set(theirs["export_id"]) & set(first)  # same patients, different secret
             # Shifts differ too: the same real visit gets another shifted date.
-            assert other.frame(level="visit")["visit_date_shifted"].tolist() != demo.frame(level="visit")["visit_date_shifted"].tolist()
+            assert (
+                other.frame(level="visit")["visit_date_shifted"].tolist()
+                != demo.frame(level="visit")["visit_date_shifted"].tolist()
+            )
         finally:
             other.engine.dispose()
 
 
-# -- files -----------------------------------------------------------------------------------------------------------
+# -- files ---------------------------------------------------------------------------------------------------
+
 
 @pytest.mark.parametrize("file_format", ["csv", "parquet", "xlsx"])
 def test_same_options_twice_give_identical_bytes(demo, tmp_path, file_format):
-    options = {"level": "nerve", "criteria": ("efns-pns-2010-cidp", "ean-pns-2021-cidp"), "diagnoses": ("cidp",)}
+    options = {
+        "level": "nerve",
+        "criteria": ("efns-pns-2010-cidp", "ean-pns-2021-cidp"),
+        "diagnoses": ("cidp",),
+    }
     one = demo.write(tmp_path / "one" / "cohort", file_format, **options)
     two = demo.write(tmp_path / "two" / "cohort", file_format, **options)
     assert [f.path.name for f in one.files] == [f.path.name for f in two.files]
@@ -315,7 +437,11 @@ def test_same_options_twice_give_identical_bytes(demo, tmp_path, file_format):
 
 def test_chunk_size_does_not_change_the_data(demo, tmp_path):
     # DEMO-01 and DEMO-02 have 11 visits (demo file, invented): three chunks of 4, 4 and 3 against one.
-    options = {"level": "segment", "patients": ("DEMO-01", "DEMO-02"), "criteria": ("efns-pns-2010-cidp", "efns-pns-2010-mmn")}
+    options = {
+        "level": "segment",
+        "patients": ("DEMO-01", "DEMO-02"),
+        "criteria": ("efns-pns-2010-cidp", "efns-pns-2010-mmn"),
+    }
     small = demo.write(tmp_path / "small", "csv", chunk_visits=4, **options)
     whole = demo.write(tmp_path / "whole", "csv", chunk_visits=1000, **options)
     assert small.rows == whole.rows > 0
@@ -323,8 +449,13 @@ def test_chunk_size_does_not_change_the_data(demo, tmp_path):
 
 
 def test_manifest_names_versions_filters_counts_and_hashes(demo, tmp_path):
-    result = demo.write(tmp_path / "m", "parquet", level="visit", outcomes=(("efns-pns-2010-cidp", "definite"),),
-                        patients=("DEMO-01", "DEMO-02"))
+    result = demo.write(
+        tmp_path / "m",
+        "parquet",
+        level="visit",
+        outcomes=(("efns-pns-2010-cidp", "definite"),),
+        patients=("DEMO-01", "DEMO-02"),
+    )
     manifest = json.loads(result.files[-1].path.read_text(encoding="utf-8"))
     assert manifest == result.manifest
     import tracker
@@ -335,7 +466,10 @@ def test_manifest_names_versions_filters_counts_and_hashes(demo, tmp_path):
     assert manifest["filters"]["outcome"] == ["efns-pns-2010-cidp=definite"]
     ids = demo.export_ids()
     # Patient codes are not written, not even as the filter: the export ids stand in.
-    assert manifest["filters"]["patients"] == {"count": 2, "export_ids": sorted([ids["DEMO-01"], ids["DEMO-02"]])}
+    assert manifest["filters"]["patients"] == {
+        "count": 2,
+        "export_ids": sorted([ids["DEMO-01"], ids["DEMO-02"]]),
+    }
     for entry, written in zip(manifest["files"], result.files):
         assert entry["sha256"] == export_files.sha256_of(written.path)
         assert entry["bytes"] == written.path.stat().st_size
@@ -370,15 +504,25 @@ def test_parquet_column_types(demo, tmp_path):
     assert types["age_at_visit"] == pa.string()  # "90+" is text
     schema = pq.read_schema(demo.write(tmp_path / "n", "parquet", level="nerve").files[0].path)
     types = {field.name: field.type for field in schema}
-    for name in ("distal_latency_ms", "distal_amplitude_mv", "distal_amplitude_uv", "f_latency_ms", "temperature_c"):
+    for name in (
+        "distal_latency_ms",
+        "distal_amplitude_mv",
+        "distal_amplitude_uv",
+        "f_latency_ms",
+        "temperature_c",
+    ):
         assert types[name] == pa.float64(), name
     assert types["f_absent"] == pa.bool_() and types["nerve"] == pa.string()
     table = pq.read_table(demo.write(tmp_path / "l", "parquet", level="long").files[0].path)
-    assert table.schema.field("value").type == pa.float64() and table.schema.field("site_order").type == pa.int32()
+    assert (
+        table.schema.field("value").type == pa.float64()
+        and table.schema.field("site_order").type == pa.int32()
+    )
     assert set(table.column("unit").to_pylist()) >= {"ms", "mV", "µV", "mm", "m/s", "%", "°C"}
 
 
-# -- spreadsheet safety ---------------------------------------------------------------------------------------------
+# -- spreadsheet safety --------------------------------------------------------------------------------------
+
 
 def test_neutralise_text_prefixes_formula_starts_only():
     # Formula injection defence: common practice (prefix a single quote), no single source.
@@ -426,7 +570,8 @@ def test_excel_row_limit_is_refused_and_partial_files_removed(demo, tmp_path, mo
     assert list(tmp_path.iterdir()) == []
 
 
-# -- filters -----------------------------------------------------------------------------------------------------
+# -- filters -------------------------------------------------------------------------------------------------
+
 
 def test_filters_select_the_right_visits(demo):
     ids = demo.export_ids()
@@ -441,26 +586,37 @@ def test_filters_select_the_right_visits(demo):
     assert len(in_2024) == len(expected) == 10  # counted from the demo file (invented)
     two = demo.frame(level="nerve", patients=("DEMO-02", "DEMO-05"))
     assert set(two["export_id"]) == {ids["DEMO-02"], ids["DEMO-05"]}
-    assert two.groupby("export_id")["days_since_first_visit"].nunique().to_dict() == {ids["DEMO-02"]: 6, ids["DEMO-05"]: 3}
+    assert two.groupby("export_id")["days_since_first_visit"].nunique().to_dict() == {
+        ids["DEMO-02"]: 6,
+        ids["DEMO-05"]: 3,
+    }
     everything = demo.frame(level="visit", criteria=("efns-pns-2010-cidp",))
-    definite = demo.frame(level="visit", criteria=("efns-pns-2010-cidp",), outcomes=(("efns-pns-2010-cidp", "definite"),))
+    definite = demo.frame(
+        level="visit", criteria=("efns-pns-2010-cidp",), outcomes=(("efns-pns-2010-cidp", "definite"),)
+    )
     assert definite.reset_index(drop=True).equals(
-        everything[everything["efns2010_cidp__outcome"] == "definite"].reset_index(drop=True))
+        everything[everything["efns2010_cidp__outcome"] == "definite"].reset_index(drop=True)
+    )
     # DEMO-01's first visit is definite by hand (tests/test_demo_outcomes.py: distal latency in 4 nerves,
     # EFNS/PNS 2010, Van den Bergh PYK et al., Eur J Neurol 2010;17:356–363).
     assert ((definite["export_id"] == ids["DEMO-01"]) & (definite["days_since_first_visit"] == 0)).sum() == 1
     # An outcome filter on a set not shown still filters; its columns stay out.
-    filtered = demo.frame(level="segment", criteria=("aan-1991-cidp",), outcomes=(("efns-pns-2010-cidp", "definite"),))
+    filtered = demo.frame(
+        level="segment", criteria=("aan-1991-cidp",), outcomes=(("efns-pns-2010-cidp", "definite"),)
+    )
     assert not any(c.startswith("efns2010_cidp") for c in filtered.columns)
     assert set(filtered["export_id"]) <= set(definite["export_id"])
 
 
-@pytest.mark.parametrize(("options", "message"), [
-    ({"outcomes": (("efns-pns-2010-cidp", "definitely"),)}, "Unknown outcome"),
-    ({"criteria": ("no-such-set",)}, "Unknown criteria set"),
-    ({"patients": ("DEMO-99",)}, "No patient with code"),
-    ({"date_from": dt.date(2025, 1, 1), "date_to": dt.date(2024, 1, 1)}, "date range is empty"),
-])
+@pytest.mark.parametrize(
+    ("options", "message"),
+    [
+        ({"outcomes": (("efns-pns-2010-cidp", "definitely"),)}, "Unknown outcome"),
+        ({"criteria": ("no-such-set",)}, "Unknown criteria set"),
+        ({"patients": ("DEMO-99",)}, "No patient with code"),
+        ({"date_from": dt.date(2025, 1, 1), "date_to": dt.date(2024, 1, 1)}, "date range is empty"),
+    ],
+)
 def test_bad_options_are_refused(demo, options, message):
     with pytest.raises(TrackerError, match=message):
         demo.frame(level="visit", **options)
@@ -469,18 +625,25 @@ def test_bad_options_are_refused(demo, options, message):
 def test_long_level_lists_each_quantity_with_its_unit(demo):
     long = demo.frame(level="long", patients=("DEMO-01",))
     nerve = demo.frame(level="nerve", patients=("DEMO-01",))
-    first = long[(long["days_since_first_visit"] == 0) & (long["nerve"] == "median") & (long["modality"] == "motor")]
+    first = long[
+        (long["days_since_first_visit"] == 0) & (long["nerve"] == "median") & (long["modality"] == "motor")
+    ]
     latency = first[(first["quantity"] == "onset_latency")].set_index("site_order")["value"]
     assert latency.to_dict() == {1: 7.05, 2: 14.0}  # demo file, invented
     amplitude = first[(first["quantity"] == "amplitude") & (first["site_order"] == 1)]
     assert amplitude[["value", "unit", "origin"]].values.tolist() == [[4.3, "mV", "measured"]]
     velocity = first[first["quantity"] == "segment_velocity"]
-    assert velocity["value"].iloc[0] == pytest.approx(222 / (14.00 - 7.05), abs=1e-6) and velocity["unit"].iloc[0] == "m/s"
+    assert (
+        velocity["value"].iloc[0] == pytest.approx(222 / (14.00 - 7.05), abs=1e-6)
+        and velocity["unit"].iloc[0] == "m/s"
+    )
     assert velocity["origin"].iloc[0] == "derived"
     sensory = long[(long["modality"] == "sensory") & (long["quantity"] == "amplitude")]
     assert set(sensory["unit"]) == {"µV"}
     # Every non-empty distal latency of the nerve level is one onset_latency row at site 1 of the long level.
-    assert (long["quantity"].eq("onset_latency") & long["site_order"].eq(1)).sum() == nerve["distal_latency_ms"].notna().sum()
+    assert (long["quantity"].eq("onset_latency") & long["site_order"].eq(1)).sum() == nerve[
+        "distal_latency_ms"
+    ].notna().sum()
 
 
 def test_io_read_back_of_csv_keeps_the_columns_of_the_dictionary(demo, tmp_path):

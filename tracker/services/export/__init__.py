@@ -1,6 +1,7 @@
-"""Research export (``ncs-tracker export``): analysis-ready visit / nerve / segment / long tables, de-identified
-by default, with a data dictionary and a manifest. Entry points: :func:`write_export` (files, chunk by chunk),
-:func:`export_frame` (one DataFrame), :class:`ExportOptions`, :func:`neutralise_text` (spreadsheet safety).
+"""Research export (``ncs-tracker export``): analysis-ready visit / nerve / segment / long tables,
+de-identified by default, with a data dictionary and a manifest. Entry points: :func:`write_export`
+(files, chunk by chunk), :func:`export_frame` (one DataFrame), :class:`ExportOptions`,
+:func:`neutralise_text` (spreadsheet safety).
 
 Inner modules: ``tables`` (options, plan, per-chunk tables), ``columns`` (every column: type, unit, meaning →
 dictionary and Parquet schema), ``files`` (CSV / Parquet / xlsx writers), ``response`` (treatment-response

@@ -17,8 +17,20 @@ from tracker.domain.plausibility import scales
 from tracker.response.scales import ScaleInfo
 
 # Kind of a column → pandas dtype and Parquet type. Dates are plain ``datetime.date`` objects in pandas.
-PANDAS_DTYPES: dict[str, object] = {"text": "str", "float": "float64", "int": "Int64", "bool": "boolean", "date": object}
-ARROW_TYPES = {"text": pa.string(), "float": pa.float64(), "int": pa.int32(), "bool": pa.bool_(), "date": pa.date32()}
+PANDAS_DTYPES: dict[str, object] = {
+    "text": "str",
+    "float": "float64",
+    "int": "Int64",
+    "bool": "boolean",
+    "date": object,
+}
+ARROW_TYPES = {
+    "text": pa.string(),
+    "float": pa.float64(),
+    "int": pa.int32(),
+    "bool": pa.bool_(),
+    "date": pa.date32(),
+}
 TYPE_WORDS = {
     "text": "text",
     "float": "decimal number",
@@ -29,9 +41,9 @@ TYPE_WORDS = {
 
 # Scores are looked for on the visit date, else the nearest date within this many days (earlier on a tie).
 SCORE_WINDOW_DAYS = 30
-# The response columns read a score on the visit date, else the latest within this many days before it and after
-# the patient's previous visit (never after the visit: a judgement on the visit day cannot see later scores; never
-# one score at two visits, so that changes from the previous visit are not counted twice).
+# The response columns read a score on the visit date, else the latest within this many days before it and
+# after the patient's previous visit (never after the visit: a judgement on the visit day cannot see later
+# scores; never one score at two visits, so that changes from the previous visit are not counted twice).
 RESPONSE_SCORE_DAYS = SCORE_WINDOW_DAYS
 
 
@@ -61,7 +73,8 @@ OUTCOME_VALUES = {
 
 @dataclass(frozen=True)
 class VerdictItem:
-    """One item of a criteria set whose per-nerve verdict is exported (found by :func:`tracker.services.export.tables.catalogue`)."""
+    """One item of a criteria set whose per-nerve verdict is exported (found by
+    :func:`tracker.services.export.tables.catalogue`)."""
 
     criteria: str
     alias: str
@@ -100,25 +113,63 @@ def _depends(criteria: SetColumns, limits_label: str) -> str:
 def key_columns(*, identified: bool, dates: str) -> list[Column]:
     """The columns that name the patient and the visit, first on every level."""
     columns = [
-        Column("export_id", "text", "", "pseudonymous patient id, the same on every row and level of this patient",
-               "HMAC-SHA256 of the clinic's patient code keyed by this database's secret export key; first 16 hex digits. "
-               "Stable across exports of one database, unlinkable across databases"),
+        Column(
+            "export_id",
+            "text",
+            "",
+            "pseudonymous patient id, the same on every row and level of this patient",
+            "HMAC-SHA256 of the clinic's patient code keyed by this database's secret export key; first 16 "
+            "hex digits. Stable across exports of one database, unlinkable across databases",
+        ),
     ]
     if identified:
-        columns.append(Column("patient_code", "text", "", "the clinic's patient code (identified export only)", "stored value"))
+        columns.append(
+            Column(
+                "patient_code",
+                "text",
+                "",
+                "the clinic's patient code (identified export only)",
+                "stored value",
+            )
+        )
     columns += [
-        Column("visit_number", "int", "", "1 for the patient's first visit in the database, then 2, 3 …",
-               "rank of the visit date among all the patient's visits (also those outside the filters)"),
-        Column("days_since_first_visit", "int", "days", "days from the patient's first visit to this visit",
-               "visit date − date of the patient's first visit in the database"),
+        Column(
+            "visit_number",
+            "int",
+            "",
+            "1 for the patient's first visit in the database, then 2, 3 …",
+            "rank of the visit date among all the patient's visits (also those outside the filters)",
+        ),
+        Column(
+            "days_since_first_visit",
+            "int",
+            "days",
+            "days from the patient's first visit to this visit",
+            "visit date − date of the patient's first visit in the database",
+        ),
     ]
     if identified:
-        columns.append(Column("visit_date", "date", "", "date of the study (real date; identified export only)", "stored value"))
+        columns.append(
+            Column(
+                "visit_date",
+                "date",
+                "",
+                "date of the study (real date; identified export only)",
+                "stored value",
+            )
+        )
     elif dates == "shifted":
-        columns.append(Column("visit_date_shifted", "date", "", "date of the study moved by the patient's secret shift",
-                              "visit date + a per-patient offset of 1 to 365 days earlier or later, derived from the secret "
-                              "export key and never written; every date of one patient moves by the same offset, so "
-                              "intervals between the patient's visits are kept"))
+        columns.append(
+            Column(
+                "visit_date_shifted",
+                "date",
+                "",
+                "date of the study moved by the patient's secret shift",
+                "visit date + a per-patient offset of 1 to 365 days earlier or later, derived from the "
+                "secret export key and never written; every date of one patient moves by the same offset, so "
+                "intervals between the patient's visits are kept",
+            )
+        )
     return columns
 
 
@@ -127,68 +178,170 @@ def visit_columns(sets: list[SetColumns], limits_label: str, *, identified: bool
     columns: list[Column] = []
     if identified:
         columns += [
-            Column("record_number", "text", "", "hospital record number (identified export only)", "stored value"),
+            Column(
+                "record_number", "text", "", "hospital record number (identified export only)", "stored value"
+            ),
             Column("full_name", "text", "", "patient's name (identified export only)", "stored value"),
             Column("birth_date", "date", "", "date of birth (identified export only)", "stored value"),
-            Column("examiner", "text", "", "who performed the study (identified export only)", "stored free text"),
-            Column("laboratory", "text", "", "where the study was performed (identified export only)", "stored free text"),
+            Column(
+                "examiner", "text", "", "who performed the study (identified export only)", "stored free text"
+            ),
+            Column(
+                "laboratory",
+                "text",
+                "",
+                "where the study was performed (identified export only)",
+                "stored free text",
+            ),
         ]
     columns += [
         Column("status", "text", "", "draft or final", "stored value"),
-        Column("diagnosis", "text", "", "working diagnosis at this visit: cidp, mmn, gbs, other",
-               "the visit's diagnosis; if empty, the patient's current diagnosis"),
-        Column("phenotype", "text", "", "CIDP phenotype at this visit (typical, distal, multifocal, focal, motor, sensory)",
-               "the visit's phenotype; if empty, the patient's current phenotype"),
+        Column(
+            "diagnosis",
+            "text",
+            "",
+            "working diagnosis at this visit: cidp, mmn, gbs, other",
+            "the visit's diagnosis; if empty, the patient's current diagnosis",
+        ),
+        Column(
+            "phenotype",
+            "text",
+            "",
+            "CIDP phenotype at this visit (typical, distal, multifocal, focal, motor, sensory)",
+            "the visit's phenotype; if empty, the patient's current phenotype",
+        ),
         Column("sex", "text", "", "female, male or unspecified", "stored value"),
-        Column("age_at_visit", "text", "years",
-               "age in whole years at the visit, as text; ages 90 and over are shown as 90+ unless the export is identified",
-               "year of the visit − year of birth (may exceed the exact age by one year); HIPAA Safe Harbor, "
-               "45 CFR 164.514(b)(2)(i)(C)"),
+        Column(
+            "age_at_visit",
+            "text",
+            "years",
+            "age in whole years at the visit, as text; ages 90 and over are shown as 90+ unless the export "
+            "is identified",
+            "year of the visit − year of birth (may exceed the exact age by one year); HIPAA Safe Harbor, "
+            "45 CFR 164.514(b)(2)(i)(C)",
+        ),
         Column("height_cm", "float", "cm", "height at the visit", "stored value"),
-        Column("days_since_onset", "int", "days", "days from symptom onset to this visit", "visit date − onset date"),
-        Column("nerve_tests", "int", "", "number of nerve tests (nerve × side × modality) at the visit", "count"),
-        Column("therapy_at_visit", "text", "", "treatments ongoing on the visit date, '+'-joined in alphabetical order",
-               "treatment periods with start date ≤ visit date ≤ end date (no end date: ongoing); notes are never exported"),
-        Column("therapy_dose", "float", "", "dose per administration, when exactly one treatment is ongoing (unit in therapy_dose_unit)",
-               "stored value of that treatment"),
-        Column("therapy_dose_unit", "text", "", "unit of therapy_dose (e.g. g/kg)", "stored value of that treatment"),
-        Column("therapy_interval_days", "int", "days", "days between administrations, when exactly one treatment is ongoing",
-               "stored value of that treatment"),
-        Column("therapy_days_since_start", "int", "days", "days from the start of the ongoing treatment to the visit "
-               "(exactly one treatment ongoing)", "visit date − treatment start date"),
+        Column(
+            "days_since_onset",
+            "int",
+            "days",
+            "days from symptom onset to this visit",
+            "visit date − onset date",
+        ),
+        Column(
+            "nerve_tests", "int", "", "number of nerve tests (nerve × side × modality) at the visit", "count"
+        ),
+        Column(
+            "therapy_at_visit",
+            "text",
+            "",
+            "treatments ongoing on the visit date, '+'-joined in alphabetical order",
+            "treatment periods with start date ≤ visit date ≤ end date (no end date: ongoing); notes are "
+            "never exported",
+        ),
+        Column(
+            "therapy_dose",
+            "float",
+            "",
+            "dose per administration, when exactly one treatment is ongoing (unit in therapy_dose_unit)",
+            "stored value of that treatment",
+        ),
+        Column(
+            "therapy_dose_unit",
+            "text",
+            "",
+            "unit of therapy_dose (e.g. g/kg)",
+            "stored value of that treatment",
+        ),
+        Column(
+            "therapy_interval_days",
+            "int",
+            "days",
+            "days between administrations, when exactly one treatment is ongoing",
+            "stored value of that treatment",
+        ),
+        Column(
+            "therapy_days_since_start",
+            "int",
+            "days",
+            "days from the start of the ongoing treatment to the visit (exactly one treatment ongoing)",
+            "visit date − treatment start date",
+        ),
     ]
     for scale in scales().values():
         columns += [
-            Column(f"score_{scale.name}", "float", scale.unit, f"{scale.meaning}: the score at the visit",
-                   f"the score of this scale dated on the visit date; otherwise the nearest one within ±{SCORE_WINDOW_DAYS} "
-                   "days (the earlier on a tie); empty when none"),
-            Column(f"score_{scale.name}_offset_days", "int", "days", f"score date − visit date of score_{scale.name}",
-                   "0 when scored on the visit date; negative when scored before the visit"),
+            Column(
+                f"score_{scale.name}",
+                "float",
+                scale.unit,
+                f"{scale.meaning}: the score at the visit",
+                "the score of this scale dated on the visit date; otherwise the nearest one within "
+                f"±{SCORE_WINDOW_DAYS} days (the earlier on a tie); empty when none",
+            ),
+            Column(
+                f"score_{scale.name}_offset_days",
+                "int",
+                "days",
+                f"score date − visit date of score_{scale.name}",
+                "0 when scored on the visit date; negative when scored before the visit",
+            ),
         ]
     for found in sets:
         depends = _depends(found, limits_label)
         values = OUTCOME_VALUES.get(found.criteria)
         vocabulary = f": {', '.join(values)}" if values else ""
-        undecided = (" (undecided: findings not evaluable for want of data could make the set met; named in the rule column)"
-                     if values and "undecided" in values else "")
-        columns.append(Column(f"{found.alias}__outcome", "text", "", f"electrodiagnostic outcome of criteria set {found.criteria}{vocabulary}{undecided}",
-                              "the criteria engine over all nerve tests of the visit; empty for a visit without nerve tests",
-                              depends))
+        undecided = (
+            " (undecided: findings not evaluable for want of data could make the set met; named in the rule "
+            "column)"
+            if values and "undecided" in values
+            else ""
+        )
+        columns.append(
+            Column(
+                f"{found.alias}__outcome",
+                "text",
+                "",
+                f"electrodiagnostic outcome of criteria set {found.criteria}{vocabulary}{undecided}",
+                "the criteria engine over all nerve tests of the visit; empty for a visit without nerve "
+                "tests",
+                depends,
+            )
+        )
         for key in found.extra_keys:
             kind = "int" if key == "items_met" else "text"
-            columns.append(Column(f"{found.alias}__{key}", kind, "", f"{found.criteria}: {key.replace('_', ' ')}",
-                                  "the criteria engine (extra key of the outcome)", depends))
-        columns.append(Column(f"{found.alias}__rule", "text", "", f"{found.criteria}: which combination rule decided the outcome",
-                              "the criteria engine", depends))
+            columns.append(
+                Column(
+                    f"{found.alias}__{key}",
+                    kind,
+                    "",
+                    f"{found.criteria}: {key.replace('_', ' ')}",
+                    "the criteria engine (extra key of the outcome)",
+                    depends,
+                )
+            )
+        columns.append(
+            Column(
+                f"{found.alias}__rule",
+                "text",
+                "",
+                f"{found.criteria}: which combination rule decided the outcome",
+                "the criteria engine",
+                depends,
+            )
+        )
     return columns
 
 
 # How the scales with change columns are made (tracker/response/scales.py).
 _COMPUTED_WORDS = {
-    "adjusted_incat": "leg grade + max(arm grade − 1, 0) from the INCAT grades of the same day when both are recorded "
-                      "(an arm change between 0 and 1 is not counted: ICE, Hughes RAC et al. Lancet Neurol 2008), else the "
-                      "typed adjusted INCAT",
-    "grip_kpa_weaker": "the lower of the left and right hands' Vigorimeter grip of the same day (both needed)",
+    "adjusted_incat": (
+        "leg grade + max(arm grade − 1, 0) from the INCAT grades of the same day when both are recorded (an "
+        "arm change between 0 and 1 is not counted: ICE, Hughes RAC et al. Lancet Neurol 2008), else the "
+        "typed adjusted INCAT"
+    ),
+    "grip_kpa_weaker": (
+        "the lower of the left and right hands' Vigorimeter grip of the same day (both needed)"
+    ),
 }
 
 
@@ -197,79 +350,192 @@ def response_column(rule_set_id: str) -> str:
     return "response_" + rule_set_id.replace("-", "_")
 
 
-def response_columns(rules: list[tuple[str, str, str]], change_scales: list[ScaleInfo], *, identified: bool,
-                     dates: str) -> list[Column]:
-    """Visit-level columns of treatment response: the regimen running on the visit day, its classification by each
-    rule set in ``rules`` ((id, version, title)), and the value and changes of each scale in ``change_scales``."""
+def response_columns(
+    rules: list[tuple[str, str, str]], change_scales: list[ScaleInfo], *, identified: bool, dates: str
+) -> list[Column]:
+    """Visit-level columns of treatment response: the regimen running on the visit day, its
+    classification by each rule set in ``rules`` ((id, version, title)), and the value and changes
+    of each scale in ``change_scales``."""
     settings = "response settings as listed in the manifest (tracker/response/settings.py)"
     running = "the regimen running on the visit day (regimen start ≤ visit ≤ regimen end)"
     columns = [
-        Column("regimen_therapy", "text", "", f"therapy of {running}; when several run, the latest started",
-               "treatment periods → regimens: one therapy at one dose and interval; a change of dose or interval starts "
-               "a new regimen; a single course followed within the induction window by the same therapy is that "
-               "regimen's induction (tracker/response/regimens.py); empty when none runs", settings),
-        Column("regimen_dose", "float", "", "dose per administration of that regimen (unit in regimen_dose_unit)",
-               "stored value of the regimen's first treatment period (the maintenance dose when it had an induction)"),
+        Column(
+            "regimen_therapy",
+            "text",
+            "",
+            f"therapy of {running}; when several run, the latest started",
+            "treatment periods → regimens: one therapy at one dose and interval; a change of dose or "
+            "interval starts a new regimen; a single course followed within the induction window by the same "
+            "therapy is that regimen's induction (tracker/response/regimens.py); empty when none runs",
+            settings,
+        ),
+        Column(
+            "regimen_dose",
+            "float",
+            "",
+            "dose per administration of that regimen (unit in regimen_dose_unit)",
+            "stored value of the regimen's first treatment period (the maintenance dose when it had an "
+            "induction)",
+        ),
         Column("regimen_dose_unit", "text", "", "unit of regimen_dose (e.g. g/kg)", "stored value"),
-        Column("regimen_interval_days", "int", "days", "days between administrations of that regimen", "stored value"),
-        Column("regimen_induction", "bool", "", "the regimen began with a single induction course (its start is the induction's start)",
-               "see regimen_therapy", settings),
-        Column("regimens_running", "int", "", "number of regimens running on the visit day (0 when none)",
-               "count of regimens with start ≤ visit ≤ end", settings),
-        Column("regimen_start_days_since_first_visit", "int", "days",
-               "start of that regimen (of its induction when it had one), in days since the patient's first visit; negative "
-               "when it started before the first visit", "regimen start − date of the patient's first visit in the database",
-               settings),
+        Column(
+            "regimen_interval_days",
+            "int",
+            "days",
+            "days between administrations of that regimen",
+            "stored value",
+        ),
+        Column(
+            "regimen_induction",
+            "bool",
+            "",
+            "the regimen began with a single induction course (its start is the induction's start)",
+            "see regimen_therapy",
+            settings,
+        ),
+        Column(
+            "regimens_running",
+            "int",
+            "",
+            "number of regimens running on the visit day (0 when none)",
+            "count of regimens with start ≤ visit ≤ end",
+            settings,
+        ),
+        Column(
+            "regimen_start_days_since_first_visit",
+            "int",
+            "days",
+            "start of that regimen (of its induction when it had one), in days since the patient's first "
+            "visit; negative when it started before the first visit",
+            "regimen start − date of the patient's first visit in the database",
+            settings,
+        ),
     ]
     if identified:
-        columns.append(Column("regimen_start_date", "date", "", "start of that regimen (real date; identified export only)",
-                              "see regimen_start_days_since_first_visit", settings))
+        columns.append(
+            Column(
+                "regimen_start_date",
+                "date",
+                "",
+                "start of that regimen (real date; identified export only)",
+                "see regimen_start_days_since_first_visit",
+                settings,
+            )
+        )
     elif dates == "shifted":
-        columns.append(Column("regimen_start_date_shifted", "date", "", "start of that regimen moved by the patient's secret shift",
-                              "regimen start + the same per-patient offset as visit_date_shifted, so that "
-                              "visit_date_shifted − regimen_start_date_shifted = regimen_days_since_start", settings))
-    columns.append(Column("regimen_days_since_start", "int", "days", "days from the start of that regimen to the visit",
-                          "visit date − regimen start", settings))
+        columns.append(
+            Column(
+                "regimen_start_date_shifted",
+                "date",
+                "",
+                "start of that regimen moved by the patient's secret shift",
+                "regimen start + the same per-patient offset as visit_date_shifted, so that "
+                "visit_date_shifted − regimen_start_date_shifted = regimen_days_since_start",
+                settings,
+            )
+        )
+    columns.append(
+        Column(
+            "regimen_days_since_start",
+            "int",
+            "days",
+            "days from the start of that regimen to the visit",
+            "visit date − regimen start",
+            settings,
+        )
+    )
     for rule_set_id, version, title in rules:
-        columns.append(Column(
-            response_column(rule_set_id), "text", "",
-            f"response of the regimen running on the visit day as judged on that day by rule set {rule_set_id} ({title}): "
-            "improved, stable, worsened or not_assessable",
-            f"tracker.response.rules.classify at the visit date (scores after the visit are not seen). Empty when no regimen "
-            f"runs, or when no score of the rule set's scales is at the visit (as for the *_at_visit columns): a visit "
-            "without scores is never judged stable. not_assessable: no baseline score for the "
-            "regimen, or no score after it",
-            f"response rule set {rule_set_id} version {version}; {settings}"))
+        columns.append(
+            Column(
+                response_column(rule_set_id),
+                "text",
+                "",
+                "response of the regimen running on the visit day as judged on that day by rule set "
+                f"{rule_set_id} ({title}): improved, stable, worsened or not_assessable",
+                "tracker.response.rules.classify at the visit date (scores after the visit are not seen). "
+                "Empty when no regimen runs, or when no score of the rule set's scales is at the visit (as "
+                "for the *_at_visit columns): a visit without scores is never judged stable. "
+                "not_assessable: no baseline score for the regimen, or no score after it",
+                f"response rule set {rule_set_id} version {version}; {settings}",
+            )
+        )
     for scale in change_scales:
         name, unit = scale.name, scale.unit
         mic = scale.mic_words()
-        at_visit = (f"the score on the visit date, else the latest within {RESPONSE_SCORE_DAYS} days before it and after the "
-                    f"patient's previous visit (one score never stands at two visits); "
-                    f"{_COMPUTED_WORDS.get(name, 'stored value')} (tracker/response/scales.py); empty when none")
-        meets = (f"|change| {mic} (minimal important change, tracker/reference/scales.csv: {scale.mic_source}); "
-                 "the sign of the change gives its direction; empty when the change is empty")
+        at_visit = (
+            f"the score on the visit date, else the latest within {RESPONSE_SCORE_DAYS} days before it and "
+            "after the patient's previous visit (one score never stands at two visits); "
+            f"{_COMPUTED_WORDS.get(name, 'stored value')} (tracker/response/scales.py); empty when none"
+        )
+        meets = (
+            f"|change| {mic} (minimal important change, tracker/reference/scales.csv: {scale.mic_source}); "
+            "the sign of the change gives its direction; empty when the change is empty"
+        )
         columns += [
-            Column(f"{name}_at_visit", "float", unit, f"{scale.label} at the visit ({scale.direction_words})", at_visit,
-                   "tracker/reference/scales.csv"),
-            Column(f"{name}_offset_days", "int", "days", f"score date − visit date of {name}_at_visit (0 or negative)",
-                   "see that column"),
-            Column(f"{name}_change_from_baseline", "float", unit,
-                   f"{name}_at_visit − the score at the baseline of the regimen running on the visit day",
-                   "baseline: the latest score from the regimen-start look-back up to the regimen start, else the first "
-                   "score within the grace days after it (tracker.response.change.baseline); empty when no regimen runs, "
-                   "without a baseline, or when the baseline is the score at the visit", settings),
-            Column(f"{name}_baseline_offset_days", "int", "days", f"regimen baseline score date − visit date of {name}",
-                   "see the change column", settings),
-            Column(f"{name}_change_from_baseline_meets_mic", "bool", "", f"{name}_change_from_baseline meets the minimal important change",
-                   meets, "tracker/reference/scales.csv"),
-            Column(f"{name}_change_from_previous", "float", unit,
-                   f"{name}_at_visit − the same at the patient's previous visit with such a score",
-                   "previous: the latest earlier visit of the patient (also outside the filters) with a score at it; "
-                   "empty at the first scored visit"),
-            Column(f"{name}_previous_offset_days", "int", "days", f"previous visit's score date − visit date of {name}",
-                   "see the change column"),
-            Column(f"{name}_change_from_previous_meets_mic", "bool", "", f"{name}_change_from_previous meets the minimal important change",
-                   meets, "tracker/reference/scales.csv"),
+            Column(
+                f"{name}_at_visit",
+                "float",
+                unit,
+                f"{scale.label} at the visit ({scale.direction_words})",
+                at_visit,
+                "tracker/reference/scales.csv",
+            ),
+            Column(
+                f"{name}_offset_days",
+                "int",
+                "days",
+                f"score date − visit date of {name}_at_visit (0 or negative)",
+                "see that column",
+            ),
+            Column(
+                f"{name}_change_from_baseline",
+                "float",
+                unit,
+                f"{name}_at_visit − the score at the baseline of the regimen running on the visit day",
+                "baseline: the latest score from the regimen-start look-back up to the regimen start, else "
+                "the first score within the grace days after it (tracker.response.change.baseline); empty "
+                "when no regimen runs, without a baseline, or when the baseline is the score at the visit",
+                settings,
+            ),
+            Column(
+                f"{name}_baseline_offset_days",
+                "int",
+                "days",
+                f"regimen baseline score date − visit date of {name}",
+                "see the change column",
+                settings,
+            ),
+            Column(
+                f"{name}_change_from_baseline_meets_mic",
+                "bool",
+                "",
+                f"{name}_change_from_baseline meets the minimal important change",
+                meets,
+                "tracker/reference/scales.csv",
+            ),
+            Column(
+                f"{name}_change_from_previous",
+                "float",
+                unit,
+                f"{name}_at_visit − the same at the patient's previous visit with such a score",
+                "previous: the latest earlier visit of the patient (also outside the filters) with a score "
+                "at it; empty at the first scored visit",
+            ),
+            Column(
+                f"{name}_previous_offset_days",
+                "int",
+                "days",
+                f"previous visit's score date − visit date of {name}",
+                "see the change column",
+            ),
+            Column(
+                f"{name}_change_from_previous_meets_mic",
+                "bool",
+                "",
+                f"{name}_change_from_previous meets the minimal important change",
+                meets,
+                "tracker/reference/scales.csv",
+            ),
         ]
     return columns
 
@@ -281,11 +547,24 @@ def _verdict_columns(sets: list[SetColumns], limits_label: str, *, segment_only:
         for item in found.items:
             if segment_only and not item.has_segment:
                 continue
-            where = ("on the segment or path from the distal site that the set judged for this nerve; empty on other rows"
-                     if segment_only else "for this nerve test; empty when the item does not apply to it")
-            columns.append(Column(item.column, "text", "",
-                                  f"verdict of {found.criteria} item {item.item} ({item.parameter}, {item.unit or 'no unit'}): "
-                                  f"met, not_met, not_evaluable (want of data) or not_applicable (exclusion, precondition, not part of the pattern)", f"the criteria engine, {where}", depends))
+            where = (
+                "on the segment or path from the distal site that the set judged for this nerve; empty on "
+                "other rows"
+                if segment_only
+                else "for this nerve test; empty when the item does not apply to it"
+            )
+            columns.append(
+                Column(
+                    item.column,
+                    "text",
+                    "",
+                    f"verdict of {found.criteria} item {item.item} ({item.parameter}, "
+                    f"{item.unit or 'no unit'}): met, not_met, not_evaluable (want of data) or "
+                    "not_applicable (exclusion, precondition, not part of the pattern)",
+                    f"the criteria engine, {where}",
+                    depends,
+                )
+            )
     return columns
 
 
@@ -297,45 +576,121 @@ def nerve_columns(sets: list[SetColumns], limits_label: str) -> list[Column]:
         Column("modality", "text", "", "motor or sensory", "stored value"),
         Column("recording_site", "text", "", "muscle or skin site recorded", "stored value"),
         Column("temperature_c", "float", "°C", "limb surface temperature", "stored value"),
-        Column("cold_limb", "bool", "", "limb colder than the guideline minimum for that limb (no correction applied)",
-               "temperature_c < minimum of tracker/criteria/tables/temperature.csv", "tracker/criteria/tables/temperature.csv"),
+        Column(
+            "cold_limb",
+            "bool",
+            "",
+            "limb colder than the guideline minimum for that limb (no correction applied)",
+            "temperature_c < minimum of tracker/criteria/tables/temperature.csv",
+            "tracker/criteria/tables/temperature.csv",
+        ),
         Column("lff_hz", "float", "Hz", "low-frequency (high-pass) filter setting", "stored value"),
         Column("distal_site", "text", "", "label of stimulation site 1 (most distal)", "stored value"),
         Column("distal_latency_ms", "float", "ms", "onset latency at site 1", "stored value of site 1"),
-        Column("peak_latency_ms", "float", "ms", "peak latency at site 1 (mostly sensory)", "stored value of site 1"),
-        Column("distal_amplitude_mv", "float", "mV", "negative-peak CMAP amplitude at site 1 (motor tests only)", "stored value of site 1"),
-        Column("distal_amplitude_uv", "float", "µV", "negative-peak SNAP amplitude (sensory tests only)", "stored value of site 1"),
-        Column("distal_duration_ms", "float", "ms", "negative-peak duration at site 1", "stored value of site 1"),
-        Column("distal_area_mvms", "float", "mV·ms", "negative-peak area at site 1", "stored value of site 1"),
+        Column(
+            "peak_latency_ms",
+            "float",
+            "ms",
+            "peak latency at site 1 (mostly sensory)",
+            "stored value of site 1",
+        ),
+        Column(
+            "distal_amplitude_mv",
+            "float",
+            "mV",
+            "negative-peak CMAP amplitude at site 1 (motor tests only)",
+            "stored value of site 1",
+        ),
+        Column(
+            "distal_amplitude_uv",
+            "float",
+            "µV",
+            "negative-peak SNAP amplitude (sensory tests only)",
+            "stored value of site 1",
+        ),
+        Column(
+            "distal_duration_ms", "float", "ms", "negative-peak duration at site 1", "stored value of site 1"
+        ),
+        Column(
+            "distal_area_mvms", "float", "mV·ms", "negative-peak area at site 1", "stored value of site 1"
+        ),
         Column("no_response", "bool", "", "no recordable response at site 1", "amplitude 0 and no latency"),
-        Column("sensory_velocity_m_per_s", "float", "m/s", "sensory conduction velocity (sensory tests only)",
-               "distance_mm / onset latency_ms of site 1, rounded to 6 decimal places"),
-        Column("slowest_standard_velocity_m_per_s", "float", "m/s", "slowest motor conduction velocity over the standard "
-               "forearm/leg segment(s)", "minimum of segment velocities of kind 'standard' (tracker/reference/segments.csv)"),
-        Column("slowest_standard_segment", "text", "", "the segment giving slowest_standard_velocity_m_per_s", "see that column"),
+        Column(
+            "sensory_velocity_m_per_s",
+            "float",
+            "m/s",
+            "sensory conduction velocity (sensory tests only)",
+            "distance_mm / onset latency_ms of site 1, rounded to 6 decimal places",
+        ),
+        Column(
+            "slowest_standard_velocity_m_per_s",
+            "float",
+            "m/s",
+            "slowest motor conduction velocity over the standard forearm/leg segment(s)",
+            "minimum of segment velocities of kind 'standard' (tracker/reference/segments.csv)",
+        ),
+        Column(
+            "slowest_standard_segment",
+            "text",
+            "",
+            "the segment giving slowest_standard_velocity_m_per_s",
+            "see that column",
+        ),
         Column("f_latency_ms", "float", "ms", "minimal F-wave latency", "stored value"),
         Column("f_absent", "bool", "", "F-waves sought and none found", "stored value"),
         Column("f_persistence_pct", "float", "%", "share of stimuli followed by an F-wave", "stored value"),
-        Column("wrist_entrapment", "bool", "", "median only: clinician judged the distal latency explained by neuropathy "
-               "at the wrist", "stored value"),
+        Column(
+            "wrist_entrapment",
+            "bool",
+            "",
+            "median only: clinician judged the distal latency explained by neuropathy at the wrist",
+            "stored value",
+        ),
         *_verdict_columns(sets, limits_label, segment_only=False),
     ]
 
 
 def segment_columns(sets: list[SetColumns], limits_label: str) -> list[Column]:
-    """Columns of the ``segment`` level (motor nerve tests: one row per proximal site) after the key columns."""
-    velocity = "distance_mm / (latency at this site − latency at the site below), rounded to 6 decimal places; empty unless the difference is > 0"
+    """Columns of the ``segment`` level (motor nerve tests: one row per
+    proximal site) after the key columns."""
+    velocity = (
+        "distance_mm / (latency at this site − latency at the site below), rounded to 6 decimal places; "
+        "empty unless the difference is > 0"
+    )
     return [
         Column("nerve", "text", "", "nerve", "stored value"),
         Column("side", "text", "", "left or right", "stored value"),
         Column("modality", "text", "", "motor (segments are derived for motor tests)", "stored value"),
-        Column("site_order", "int", "", "number of the proximal site of the segment (2 = first segment above the distal site)",
-               "stored value"),
-        Column("segment", "text", "", "the segment: site below → this site", "site labels (site n when unlabelled)"),
-        Column("segment_kind", "text", "", "standard, proximal, entrapment or unknown", "tracker/reference/segments.csv",
-               "tracker/reference/segments.csv"),
-        Column("long_segment", "bool", "", "segment counted as long for block criteria", "tracker/reference/segments.csv",
-               "tracker/reference/segments.csv"),
+        Column(
+            "site_order",
+            "int",
+            "",
+            "number of the proximal site of the segment (2 = first segment above the distal site)",
+            "stored value",
+        ),
+        Column(
+            "segment",
+            "text",
+            "",
+            "the segment: site below → this site",
+            "site labels (site n when unlabelled)",
+        ),
+        Column(
+            "segment_kind",
+            "text",
+            "",
+            "standard, proximal, entrapment or unknown",
+            "tracker/reference/segments.csv",
+            "tracker/reference/segments.csv",
+        ),
+        Column(
+            "long_segment",
+            "bool",
+            "",
+            "segment counted as long for block criteria",
+            "tracker/reference/segments.csv",
+            "tracker/reference/segments.csv",
+        ),
         Column("path", "text", "", "the path from the distal site (site 1) to this site", "site labels"),
         Column("distance_mm", "float", "mm", "distance from the site below to this site", "stored value"),
         Column("latency_ms", "float", "ms", "onset latency at this site", "stored value"),
@@ -343,17 +698,48 @@ def segment_columns(sets: list[SetColumns], limits_label: str) -> list[Column]:
         Column("duration_ms", "float", "ms", "negative-peak duration at this site", "stored value"),
         Column("area_mvms", "float", "mV·ms", "negative-peak area at this site", "stored value"),
         Column("segment_velocity_m_per_s", "float", "m/s", "conduction velocity over the segment", velocity),
-        Column("segment_amplitude_reduction_pct", "float", "%", "amplitude fall over the segment",
-               "(amplitude below − amplitude here) / amplitude below × 100"),
-        Column("segment_area_reduction_pct", "float", "%", "area fall over the segment", "(area below − area here) / area below × 100"),
-        Column("segment_duration_increase_pct", "float", "%", "duration rise over the segment",
-               "(duration here − duration below) / duration below × 100"),
-        Column("amplitude_reduction_pct", "float", "%", "amplitude fall from the distal site to this site",
-               "(amplitude at site 1 − amplitude here) / amplitude at site 1 × 100"),
-        Column("area_reduction_pct", "float", "%", "area fall from the distal site to this site",
-               "(area at site 1 − area here) / area at site 1 × 100"),
-        Column("duration_increase_pct", "float", "%", "duration rise from the distal site to this site",
-               "(duration here − duration at site 1) / duration at site 1 × 100"),
+        Column(
+            "segment_amplitude_reduction_pct",
+            "float",
+            "%",
+            "amplitude fall over the segment",
+            "(amplitude below − amplitude here) / amplitude below × 100",
+        ),
+        Column(
+            "segment_area_reduction_pct",
+            "float",
+            "%",
+            "area fall over the segment",
+            "(area below − area here) / area below × 100",
+        ),
+        Column(
+            "segment_duration_increase_pct",
+            "float",
+            "%",
+            "duration rise over the segment",
+            "(duration here − duration below) / duration below × 100",
+        ),
+        Column(
+            "amplitude_reduction_pct",
+            "float",
+            "%",
+            "amplitude fall from the distal site to this site",
+            "(amplitude at site 1 − amplitude here) / amplitude at site 1 × 100",
+        ),
+        Column(
+            "area_reduction_pct",
+            "float",
+            "%",
+            "area fall from the distal site to this site",
+            "(area at site 1 − area here) / area at site 1 × 100",
+        ),
+        Column(
+            "duration_increase_pct",
+            "float",
+            "%",
+            "duration rise from the distal site to this site",
+            "(duration here − duration at site 1) / duration at site 1 × 100",
+        ),
         *_verdict_columns(sets, limits_label, segment_only=True),
     ]
 
@@ -364,13 +750,42 @@ def long_columns() -> list[Column]:
         Column("nerve", "text", "", "nerve", "stored value"),
         Column("side", "text", "", "left or right", "stored value"),
         Column("modality", "text", "", "motor or sensory", "stored value"),
-        Column("site_order", "int", "", "stimulation site (1 = most distal); empty for nerve-level quantities", "stored value"),
-        Column("segment", "text", "", "segment (site below → this site) of segment quantities; path from site 1 for the "
-               "'from distal' ones", "site labels"),
-        Column("quantity", "text", "", "what the value is (see the quantity list in the README's research export section)",
-               "one row per non-empty value"),
-        Column("value", "float", "", "the value, in the unit of the unit column", "stored value, or derived as the nerve and segment levels say"),
-        Column("unit", "text", "", "unit of value (ms, mV, µV, mV·ms, mm, m/s, %, °C, Hz)", "by quantity and modality"),
+        Column(
+            "site_order",
+            "int",
+            "",
+            "stimulation site (1 = most distal); empty for nerve-level quantities",
+            "stored value",
+        ),
+        Column(
+            "segment",
+            "text",
+            "",
+            "segment (site below → this site) of segment quantities; path from site 1 for the "
+            "'from distal' ones",
+            "site labels",
+        ),
+        Column(
+            "quantity",
+            "text",
+            "",
+            "what the value is (see the quantity list in the README's research export section)",
+            "one row per non-empty value",
+        ),
+        Column(
+            "value",
+            "float",
+            "",
+            "the value, in the unit of the unit column",
+            "stored value, or derived as the nerve and segment levels say",
+        ),
+        Column(
+            "unit",
+            "text",
+            "",
+            "unit of value (ms, mV, µV, mV·ms, mm, m/s, %, °C, Hz)",
+            "by quantity and modality",
+        ),
         Column("origin", "text", "", "measured (stored) or derived (computed from stored values)", ""),
     ]
 
@@ -386,11 +801,15 @@ def conform(frame: pd.DataFrame, columns: list[Column]) -> pd.DataFrame:
     for column in columns:
         dtype = PANDAS_DTYPES[column.kind]
         if column.name not in frame:
-            data[column.name] = pd.Series([None] * len(frame), index=frame.index, dtype=dtype if column.kind != "int" else "Int64")
+            data[column.name] = pd.Series(
+                [None] * len(frame), index=frame.index, dtype=dtype if column.kind != "int" else "Int64"
+            )
             continue
         values = frame[column.name]
         if column.kind == "date":
-            values = pd.Series([v if isinstance(v, dt.date) else None for v in values], index=frame.index, dtype=object)
+            values = pd.Series(
+                [v if isinstance(v, dt.date) else None for v in values], index=frame.index, dtype=object
+            )
         elif column.kind == "int":
             values = pd.to_numeric(values).round().astype("Int64")
         elif column.kind == "bool":
@@ -404,16 +823,34 @@ def conform(frame: pd.DataFrame, columns: list[Column]) -> pd.DataFrame:
 
 
 def arrow_schema(columns: list[Column]) -> pa.Schema:
-    """The Parquet schema of an export: floats for measurements, int32 for counts and days, date32 for dates."""
+    """The Parquet schema of an export: floats for measurements, int32 for
+    counts and days, date32 for dates."""
     return pa.schema([pa.field(c.name, ARROW_TYPES[c.kind]) for c in columns])
 
 
 def dictionary_frame(columns: list[Column], *, caution: str) -> pd.DataFrame:
     """The data dictionary: one row per column, then one row holding the clinical caution."""
     rows = [
-        {"column": c.name, "meaning": c.meaning, "unit": c.unit, "type": TYPE_WORDS[c.kind], "derivation": c.derivation,
-         "depends_on": c.depends_on}
+        {
+            "column": c.name,
+            "meaning": c.meaning,
+            "unit": c.unit,
+            "type": TYPE_WORDS[c.kind],
+            "derivation": c.derivation,
+            "depends_on": c.depends_on,
+        }
         for c in columns
     ]
-    rows.append({"column": "(caution)", "meaning": caution, "unit": "", "type": "", "derivation": "", "depends_on": ""})
-    return pd.DataFrame(rows, columns=["column", "meaning", "unit", "type", "derivation", "depends_on"]).astype("str")
+    rows.append(
+        {
+            "column": "(caution)",
+            "meaning": caution,
+            "unit": "",
+            "type": "",
+            "derivation": "",
+            "depends_on": "",
+        }
+    )
+    return pd.DataFrame(
+        rows, columns=["column", "meaning", "unit", "type", "derivation", "depends_on"]
+    ).astype("str")

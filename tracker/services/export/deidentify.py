@@ -57,7 +57,8 @@ def export_id(secret: bytes, code: str) -> str:
 
 
 def date_shift_days(secret: bytes, code: str) -> int:
-    """The patient's secret date shift in days: in −365…−1 or 1…365, the same for every date of the patient."""
+    """The patient's secret date shift in days: in −365…−1 or 1…365, the
+    same for every date of the patient."""
     number = int.from_bytes(_digest(secret, "date-shift", code)[:8], "big") % (2 * MAX_SHIFT_DAYS)
     return number - MAX_SHIFT_DAYS if number < MAX_SHIFT_DAYS else number - MAX_SHIFT_DAYS + 1
 
@@ -73,7 +74,8 @@ def age_text(age_years: float | None, *, identified: bool) -> str | None:
 
 
 def require_identified_permission(session: Session, actor: Actor | None) -> str:
-    """Return the role of ``actor`` if it may receive an identified export now, else raise :class:`NotPermitted`.
+    """Return the role of ``actor`` if it may receive an identified export
+    now, else raise :class:`NotPermitted`.
 
     The role is read again from the database (an account deactivated a moment ago is refused), and the actor
     must have proved itself with its password in this command or sign-in session.
@@ -88,7 +90,7 @@ def require_identified_permission(session: Session, actor: Actor | None) -> str:
     if user is None or not user.active or user.role not in IDENTIFIED_EXPORT_ROLES:
         state = "no active account" if user is None or not user.active else f"role {user.role!r}"
         raise NotPermitted(
-            f"An identified export is refused: {actor.name} has {state}; it needs an active account with role "
-            f"{allowed}. Without --identified the export is de-identified and needs no role."
+            f"An identified export is refused: {actor.name} has {state}; it needs an active account with "
+            f"role {allowed}. Without --identified the export is de-identified and needs no role."
         )
     return user.role

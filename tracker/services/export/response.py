@@ -1,7 +1,7 @@
-"""Treatment-response columns of the visit-level research export: for each exported visit, the regimen running on
-the visit day, that regimen's classification by the response rule set(s) as judged on that day, and the value of
-the adjusted INCAT (and the weaker hand's grip) at the visit with its changes since the regimen baseline and since
-the previous scored visit, each flagged against the scale's minimal important change.
+"""Treatment-response columns of the visit-level research export: for each exported visit, the regimen running
+on the visit day, that regimen's classification by the response rule set(s) as judged on that day, and the
+value of the adjusted INCAT (and the weaker hand's grip) at the visit with its changes since the regimen
+baseline and since the previous scored visit, each flagged against the scale's minimal important change.
 
 The arithmetic is :mod:`tracker.response` (regimens, computed scales, baseline, ``meets``, ``classify``); this
 module only reads the chunk's patients' treatments, scores and visit dates and lays the answers out per visit.
@@ -28,8 +28,8 @@ from tracker.response.settings import ResponseSettings
 from tracker.services.export.columns import RESPONSE_SCORE_DAYS, response_column
 from tracker.services.response.loading import scores_frame, treatment_periods, visit_dates
 
-# Scales whose value and changes are columns: the adjusted INCAT (ICE, Hughes RAC et al. Lancet Neurol 2008) and
-# the weaker hand's grip (computed from both hands' Vigorimeter grip of the day).
+# Scales whose value and changes are columns: the adjusted INCAT (ICE, Hughes RAC et al. Lancet Neurol 2008)
+# and the weaker hand's grip (computed from both hands' Vigorimeter grip of the day).
 CHANGE_SCALES = ("adjusted_incat", "grip_kpa_weaker")
 # The rule sets whose classification is a column.
 RESPONSE_RULES = (rules.DEFAULT_RULES,)
@@ -55,32 +55,72 @@ class ResponseSpec:
 def response_spec(settings: ResponseSettings | None = None) -> ResponseSpec:
     available = rules.rule_sets()
     table = scale_table()
-    return ResponseSpec(tuple(available[r] for r in RESPONSE_RULES), settings or ResponseSettings(),
-                        tuple(table[s] for s in CHANGE_SCALES))
+    return ResponseSpec(
+        tuple(available[r] for r in RESPONSE_RULES),
+        settings or ResponseSettings(),
+        tuple(table[s] for s in CHANGE_SCALES),
+    )
 
 
 def manifest_entry(spec: ResponseSpec) -> dict:
     """What the manifest records about the response columns."""
     return {
-        "rule_sets": [{"id": r.id, "version": r.version, "title": r.title, "column": response_column(r.id),
-                       "rules": [{"scale": x.scale, "threshold": x.threshold, "comparator": x.comparator,
-                                  "change_kind": x.change_kind, "confirm_visits": x.confirm_visits, "required": x.required,
-                                  "source": x.source, "status": x.status} for x in r.rules]}
-                      for r in spec.rule_sets],
+        "rule_sets": [
+            {
+                "id": r.id,
+                "version": r.version,
+                "title": r.title,
+                "column": response_column(r.id),
+                "rules": [
+                    {
+                        "scale": x.scale,
+                        "threshold": x.threshold,
+                        "comparator": x.comparator,
+                        "change_kind": x.change_kind,
+                        "confirm_visits": x.confirm_visits,
+                        "required": x.required,
+                        "source": x.source,
+                        "status": x.status,
+                    }
+                    for x in r.rules
+                ],
+            }
+            for r in spec.rule_sets
+        ],
         "settings": {d["setting"]: d["value"] for d in spec.settings.describe()},
-        "scales": [{"scale": s.name, "unit": s.unit, "minimal_important_change": s.mic_words(), "source": s.mic_source}
-                   for s in spec.scales],
-        "score_at_visit": f"score on the visit date, else the latest within {RESPONSE_SCORE_DAYS} days before it and after the previous visit",
+        "scales": [
+            {
+                "scale": s.name,
+                "unit": s.unit,
+                "minimal_important_change": s.mic_words(),
+                "source": s.mic_source,
+            }
+            for s in spec.scales
+        ],
+        "score_at_visit": (
+            f"score on the visit date, else the latest within {RESPONSE_SCORE_DAYS} days before it and after "
+            "the previous visit"
+        ),
     }
 
 
-def with_response(session: Session, frame: pd.DataFrame, context: pd.DataFrame, spec: ResponseSpec, *, shifted: bool,
-                  identified: bool) -> pd.DataFrame:
-    """``frame`` (one row per visit, ``visit_key``) with the response columns added; reads only the chunk's patients."""
+def with_response(
+    session: Session,
+    frame: pd.DataFrame,
+    context: pd.DataFrame,
+    spec: ResponseSpec,
+    *,
+    shifted: bool,
+    identified: bool,
+) -> pd.DataFrame:
+    """``frame`` (one row per visit, ``visit_key``) with the response columns added;
+    reads only the chunk's patients."""
     patient_ids = sorted(set(int(p) for p in context["patient_id"]))
     recorded = scores_frame(session, patient_ids)
     scores, _ = with_computed(recorded)  # the notes name patients and dates: not exported
-    values = response_values(context, treatment_periods(session, patient_ids), scores, visit_dates(session, patient_ids), spec)
+    values = response_values(
+        context, treatment_periods(session, patient_ids), scores, visit_dates(session, patient_ids), spec
+    )
     for name in values.columns:
         if name == "regimen_start_date" and not identified:
             continue
@@ -94,14 +134,20 @@ def with_response(session: Session, frame: pd.DataFrame, context: pd.DataFrame, 
     return frame
 
 
-def response_values(context: pd.DataFrame, periods: dict[int, list[TreatmentPeriod]], scores: pd.DataFrame,
-                    all_visits: pd.DataFrame, spec: ResponseSpec) -> pd.DataFrame:
-    """The response columns of each visit in ``context`` (``visit_key``, ``patient_id``, ``visit_date``), indexed by
-    visit key; ``regimen_start_date`` holds the real date (the caller shifts it or drops it).
+def response_values(
+    context: pd.DataFrame,
+    periods: dict[int, list[TreatmentPeriod]],
+    scores: pd.DataFrame,
+    all_visits: pd.DataFrame,
+    spec: ResponseSpec,
+) -> pd.DataFrame:
+    """The response columns of each visit in ``context`` (``visit_key``, ``patient_id``, ``visit_date``),
+    indexed by visit key; ``regimen_start_date`` holds the real date (the caller shifts it or drops it).
 
-    ``scores``: recorded and computed scores of these patients (:func:`tracker.response.scales.with_computed`);
-    ``all_visits``: every visit of these patients (``patient``, ``visit_date``), also those outside the filters,
-    for the first visit and the previous scored visit.
+    ``scores``: recorded and computed scores of these patients
+    (:func:`tracker.response.scales.with_computed`); ``all_visits``: every visit of
+    these patients (``patient``, ``visit_date``), also those outside the filters, for the
+    first visit and the previous scored visit.
     """
     table = scale_table()
     series: dict[int, dict[str, list[Point]]] = {}
@@ -121,7 +167,9 @@ def response_values(context: pd.DataFrame, periods: dict[int, list[TreatmentPeri
         first = patient_days[0] if patient_days else None
         plan = regimens(periods.get(pid, []), spec.settings)
         by_scale = series.get(pid, {})
-        at_visits = {name: _scores_at_visits(by_scale.get(name, []), patient_days) for name in _read_scales(spec)}
+        at_visits = {
+            name: _scores_at_visits(by_scale.get(name, []), patient_days) for name in _read_scales(spec)
+        }
         for key, day in zip(visits["visit_key"], visits["visit_date"]):
             rows[int(key)] = _visit_row(_as_date(day), first, plan, by_scale, at_visits, spec, table)
     return pd.DataFrame.from_dict(rows, orient="index").reindex(columns=value_columns(spec))
@@ -137,13 +185,32 @@ def _as_date(value) -> dt.date:
 def value_columns(spec: ResponseSpec) -> list[str]:
     """The columns of :func:`response_values` (``regimen_start_date`` is the real date, never exported as such
     unless the export is identified)."""
-    names = ["regimen_therapy", "regimen_dose", "regimen_dose_unit", "regimen_interval_days", "regimen_induction",
-             "regimens_running", "regimen_start_days_since_first_visit", "regimen_start_date", "regimen_days_since_start"]
+    names = [
+        "regimen_therapy",
+        "regimen_dose",
+        "regimen_dose_unit",
+        "regimen_interval_days",
+        "regimen_induction",
+        "regimens_running",
+        "regimen_start_days_since_first_visit",
+        "regimen_start_date",
+        "regimen_days_since_start",
+    ]
     names += [response_column(r.id) for r in spec.rule_sets]
     for scale in spec.scales:
-        names += [f"{scale.name}_{suffix}" for suffix in (
-            "at_visit", "offset_days", "change_from_baseline", "baseline_offset_days", "change_from_baseline_meets_mic",
-            "change_from_previous", "previous_offset_days", "change_from_previous_meets_mic")]
+        names += [
+            f"{scale.name}_{suffix}"
+            for suffix in (
+                "at_visit",
+                "offset_days",
+                "change_from_baseline",
+                "baseline_offset_days",
+                "change_from_baseline_meets_mic",
+                "change_from_previous",
+                "previous_offset_days",
+                "change_from_previous_meets_mic",
+            )
+        ]
     return names
 
 
@@ -173,8 +240,11 @@ def score_at(points: list[Point], day: dt.date, previous_visit: dt.date | None =
     return found
 
 
-def _scores_at_visits(points: list[Point], days: list[dt.date]) -> dict[dt.date, tuple[Point | None, Point | None]]:
-    """For each of a patient's visit days (sorted): (score at the visit, score at the previous scored visit)."""
+def _scores_at_visits(
+    points: list[Point], days: list[dt.date]
+) -> dict[dt.date, tuple[Point | None, Point | None]]:
+    """For each of a patient's visit days (sorted): (score at the visit,
+    score at the previous scored visit)."""
     out: dict[dt.date, tuple[Point | None, Point | None]] = {}
     earlier: Point | None = None
     previous_visit: dt.date | None = None
@@ -191,22 +261,46 @@ def _running(plan: list[Regimen], day: dt.date) -> list[Regimen]:
     return [r for r in plan if r.attributes(day)]
 
 
-def _visit_row(day: dt.date, first: dt.date | None, plan: list[Regimen], by_scale: dict[str, list[Point]],
-               at_visits: dict[str, dict], spec: ResponseSpec, table: dict[str, ScaleInfo]) -> dict:
+def _visit_row(
+    day: dt.date,
+    first: dt.date | None,
+    plan: list[Regimen],
+    by_scale: dict[str, list[Point]],
+    at_visits: dict[str, dict],
+    spec: ResponseSpec,
+    table: dict[str, ScaleInfo],
+) -> dict:
     running = _running(plan, day)
-    regimen = running[-1] if running else None  # the latest started when several overlap (as the response pages do)
+    regimen = (
+        running[-1] if running else None
+    )  # the latest started when several overlap (as the response pages do)
     row: dict = {"regimens_running": len(running)}
     if regimen is not None:
-        row.update({
-            "regimen_therapy": regimen.therapy, "regimen_dose": regimen.dose, "regimen_dose_unit": regimen.dose_unit,
-            "regimen_interval_days": regimen.interval_days, "regimen_induction": regimen.induction is not None,
-            "regimen_start_days_since_first_visit": None if first is None else (regimen.start_date - first).days,
-            "regimen_start_date": regimen.start_date, "regimen_days_since_start": (day - regimen.start_date).days,
-        })
+        row.update(
+            {
+                "regimen_therapy": regimen.therapy,
+                "regimen_dose": regimen.dose,
+                "regimen_dose_unit": regimen.dose_unit,
+                "regimen_interval_days": regimen.interval_days,
+                "regimen_induction": regimen.induction is not None,
+                "regimen_start_days_since_first_visit": None
+                if first is None
+                else (regimen.start_date - first).days,
+                "regimen_start_date": regimen.start_date,
+                "regimen_days_since_start": (day - regimen.start_date).days,
+            }
+        )
     for rule_set in spec.rule_sets:
-        judged = regimen is not None and any(at_visits[name][day][0] is not None for name in _rule_set_scales(rule_set))
+        judged = regimen is not None and any(
+            at_visits[name][day][0] is not None for name in _rule_set_scales(rule_set)
+        )
         row[response_column(rule_set.id)] = (
-            rules.classify(regimen, by_scale, rule_set, at=day, settings=spec.settings, scales=table).classification if judged else None)
+            rules.classify(
+                regimen, by_scale, rule_set, at=day, settings=spec.settings, scales=table
+            ).classification
+            if judged
+            else None
+        )
     for scale in spec.scales:
         here, previous = at_visits[scale.name][day]
         name = scale.name
@@ -227,4 +321,6 @@ def _visit_row(day: dt.date, first: dt.date | None, plan: list[Regimen], by_scal
 
 def _change(row: dict, column: str, change: float, scale: ScaleInfo) -> None:
     row[column] = quantise(change)
-    row[f"{column}_meets_mic"] = None if scale.mic is None else meets(change, scale.mic, scale.mic_comparator or ">=")
+    row[f"{column}_meets_mic"] = (
+        None if scale.mic is None else meets(change, scale.mic, scale.mic_comparator or ">=")
+    )

@@ -89,7 +89,9 @@ def validate(options: ExportOptions) -> None:
     for criteria_id, value in options.outcomes:
         allowed = OUTCOME_VALUES.get(criteria_id)
         if allowed and value not in allowed:
-            raise TrackerError(f"Unknown outcome {value!r} of {criteria_id}; its outcomes are {', '.join(allowed)}.")
+            raise TrackerError(
+                f"Unknown outcome {value!r} of {criteria_id}; its outcomes are {', '.join(allowed)}."
+            )
     for diagnosis in options.diagnoses:
         if diagnosis not in DIAGNOSES:
             raise TrackerError(f"Unknown diagnosis {diagnosis!r}; choose from {', '.join(DIAGNOSES)}.")
@@ -99,7 +101,8 @@ def validate(options: ExportOptions) -> None:
         raise TrackerError("The chunk size must be at least 1 visit.")
 
 
-# -- which verdicts exist --------------------------------------------------------------------------------------
+# -- which verdicts exist ------------------------------------------------------------------------------------
+
 
 def _reference_frames() -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """One invented visit with motor and sensory nerves of both limbs, in the shape of ``load_frames``.
@@ -108,30 +111,99 @@ def _reference_frames() -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     sets report every item for every nerve test of the right modality, as not evaluable when data are
     missing), so that the export's columns are fixed before the first chunk.
     """
-    visits = pd.DataFrame({
-        "visit_key": [1], "patient": ["reference"], "visit_date": [dt.date(2020, 1, 1)], "height_cm": [170.0],
-        "sex": ["female"], "birth_year": [1960], "phenotype": ["typical"], "diagnosis": ["cidp"],
-        "content_sha256": [""], "age_years": [60.0],
-    })
-    motor = {  # nerve: site labels, distances (mm), latencies (ms), amplitudes (mV) — invented, plausible values
+    visits = pd.DataFrame(
+        {
+            "visit_key": [1],
+            "patient": ["reference"],
+            "visit_date": [dt.date(2020, 1, 1)],
+            "height_cm": [170.0],
+            "sex": ["female"],
+            "birth_year": [1960],
+            "phenotype": ["typical"],
+            "diagnosis": ["cidp"],
+            "content_sha256": [""],
+            "age_years": [60.0],
+        }
+    )
+    # nerve: site labels, distances (mm), latencies (ms), amplitudes (mV) — invented, plausible values
+    motor = {
         "median": (("wrist", "elbow", "axilla"), (70, 230, 120), (4.0, 9.0, 11.5), (8.0, 7.0, 6.5)),
         "ulnar": (("wrist", "below_elbow", "above_elbow"), (70, 210, 100), (3.0, 7.5, 9.5), (9.0, 8.5, 8.0)),
-        "fibular": (("ankle", "below_fibular_head", "popliteal_fossa"), (90, 320, 100), (5.0, 12.0, 14.2), (5.0, 4.5, 4.3)),
+        "fibular": (
+            ("ankle", "below_fibular_head", "popliteal_fossa"),
+            (90, 320, 100),
+            (5.0, 12.0, 14.2),
+            (5.0, 4.5, 4.3),
+        ),
         "tibial": (("ankle", "popliteal_fossa"), (90, 400), (4.5, 13.5), (10.0, 8.0)),
     }
     sensory = {"median": 3.2, "ulnar": 2.8, "radial": 2.4, "sural": 3.5, "superficial_fibular": 3.4}
     tests, sites = [], []
     for key, (nerve, (labels, distances, latencies, amplitudes)) in enumerate(motor.items(), start=1):
-        tests.append((key, 1, nerve, "right", "motor", 33.0, 2.0, 30.0, False, False if nerve == "median" else None))
-        for order, (label, distance, latency, amplitude) in enumerate(zip(labels, distances, latencies, amplitudes), start=1):
-            sites.append((key, order, label, float(distance), latency, np.nan, 5.5 + order / 10, amplitude * 2.5, amplitude))
+        tests.append(
+            (key, 1, nerve, "right", "motor", 33.0, 2.0, 30.0, False, False if nerve == "median" else None)
+        )
+        for order, (label, distance, latency, amplitude) in enumerate(
+            zip(labels, distances, latencies, amplitudes), start=1
+        ):
+            sites.append(
+                (
+                    key,
+                    order,
+                    label,
+                    float(distance),
+                    latency,
+                    np.nan,
+                    5.5 + order / 10,
+                    amplitude * 2.5,
+                    amplitude,
+                )
+            )
     for key, (nerve, latency) in enumerate(sensory.items(), start=len(motor) + 1):
-        tests.append((key, 1, nerve, "right", "sensory", 33.0, 20.0, np.nan, False, False if nerve == "median" else None))
+        tests.append(
+            (
+                key,
+                1,
+                nerve,
+                "right",
+                "sensory",
+                33.0,
+                20.0,
+                np.nan,
+                False,
+                False if nerve == "median" else None,
+            )
+        )
         sites.append((key, 1, None, 140.0, latency, latency + 0.6, np.nan, np.nan, 20.0))
-    tests_frame = pd.DataFrame(tests, columns=["test_key", "visit_key", "nerve", "side", "modality", "temperature_c", "lff_hz",
-                                               "f_latency_ms", "f_absent", "wrist_entrapment"])
-    sites_frame = pd.DataFrame(sites, columns=["test_key", "site_order", "label", "distance_mm", "latency_ms", "peak_latency_ms",
-                                               "duration_ms", "area_mvms", "amplitude"])
+    tests_frame = pd.DataFrame(
+        tests,
+        columns=[
+            "test_key",
+            "visit_key",
+            "nerve",
+            "side",
+            "modality",
+            "temperature_c",
+            "lff_hz",
+            "f_latency_ms",
+            "f_absent",
+            "wrist_entrapment",
+        ],
+    )
+    sites_frame = pd.DataFrame(
+        sites,
+        columns=[
+            "test_key",
+            "site_order",
+            "label",
+            "distance_mm",
+            "latency_ms",
+            "peak_latency_ms",
+            "duration_ms",
+            "area_mvms",
+            "amplitude",
+        ],
+    )
     return visits, tests_frame, sites_frame
 
 
@@ -148,7 +220,9 @@ def _catalogue(criteria_ids: tuple[str, ...], settings: Settings) -> tuple[SetCo
     if not criteria_ids:  # (the engine reads an empty list as "every set")
         return ()
     visits, tests, sites = _reference_frames()
-    results = engine.evaluate(visits, tests, sites, limit_rules.default_limits(), list(criteria_ids), settings)
+    results = engine.evaluate(
+        visits, tests, sites, limit_rules.default_limits(), list(criteria_ids), settings
+    )
     found = []
     for criteria_id in criteria_ids:
         result = results[criteria_id]
@@ -158,15 +232,27 @@ def _catalogue(criteria_ids: tuple[str, ...], settings: Settings) -> tuple[SetCo
         for item, rows in findings.groupby("item", sort=False):
             segment = rows["segment"]
             has_segment = bool(segment.map(lambda s: isinstance(s, str) and s != "").any())
-            items.append(VerdictItem(criteria_id, alias, str(item), str(rows["parameter"].iloc[0]), str(rows["unit"].iloc[0] or ""), has_segment))
+            items.append(
+                VerdictItem(
+                    criteria_id,
+                    alias,
+                    str(item),
+                    str(rows["parameter"].iloc[0]),
+                    str(rows["unit"].iloc[0] or ""),
+                    has_segment,
+                )
+            )
         found.append(SetColumns(criteria_id, alias, result.version, tuple(result.extra_keys), tuple(items)))
     aliases = [s.alias for s in found]
-    if len(set(aliases)) != len(aliases):  # two sets of one author, year and disease: a naming bug to fix here
+    if len(set(aliases)) != len(
+        aliases
+    ):  # two sets of one author, year and disease: a naming bug to fix here
         raise TrackerError(f"Criteria column prefixes collide: {aliases}")
     return tuple(found)
 
 
-# -- the plan ----------------------------------------------------------------------------------------------------
+# -- the plan ------------------------------------------------------------------------------------------------
+
 
 @dataclass
 class ExportPlan:
@@ -195,18 +281,22 @@ class ExportPlan:
     def visit_count(self) -> int:
         return len(self.order)
 
-    def frames(self, session: Session, progress: Callable[[int, int], None] | None = None) -> Iterator[pd.DataFrame]:
+    def frames(
+        self, session: Session, progress: Callable[[int, int], None] | None = None
+    ) -> Iterator[pd.DataFrame]:
         """One DataFrame per chunk of visits, columns exactly :attr:`columns`, rows in export order."""
         total = len(self.order)
         size = self.options.chunk_visits
         for start in range(0, total, size):
-            chunk = self.order.iloc[start:start + size]
+            chunk = self.order.iloc[start : start + size]
             yield conform(_build_chunk(self, session, chunk), self.columns)
             if progress is not None:
                 progress(min(start + size, total), total)
 
 
-def prepare(session: Session, options: ExportOptions, *, username: str, actor: Actor | None = None) -> ExportPlan:
+def prepare(
+    session: Session, options: ExportOptions, *, username: str, actor: Actor | None = None
+) -> ExportPlan:
     """Check the options and the permission, create the export secret if needed, pick the visits.
 
     Raises :class:`~tracker.services.access.permissions.NotPermitted` before anything is written when an
@@ -225,8 +315,12 @@ def prepare(session: Session, options: ExportOptions, *, username: str, actor: A
     keys = key_columns(identified=options.identified, dates=options.dates)
     response = response_spec(options.response_settings) if options.level == "visit" else None
     per_level = {
-        "visit": lambda: visit_columns(chosen_sets, limits_label, identified=options.identified)
-        + response_columns(response.rules_info, list(response.scales), identified=options.identified, dates=options.dates),
+        "visit": lambda: (
+            visit_columns(chosen_sets, limits_label, identified=options.identified)
+            + response_columns(
+                response.rules_info, list(response.scales), identified=options.identified, dates=options.dates
+            )
+        ),
         "nerve": lambda: nerve_columns(chosen_sets, limits_label),
         "segment": lambda: segment_columns(chosen_sets, limits_label),
         "long": long_columns,
@@ -236,16 +330,30 @@ def prepare(session: Session, options: ExportOptions, *, username: str, actor: A
     secret = deidentify.export_secret(session, username=username)
     codes = sorted(set(order["code"].to_numpy(dtype=object)))  # one HMAC per patient, not per visit
     order["export_id"] = order["code"].map({c: deidentify.export_id(secret, c) for c in codes})
-    order["shift_days"] = order["code"].map({c: deidentify.date_shift_days(secret, c) for c in codes}).astype("int64")
+    order["shift_days"] = (
+        order["code"].map({c: deidentify.date_shift_days(secret, c) for c in codes}).astype("int64")
+    )
     order = order.sort_values(["export_id", "visit_date", "visit_key"], kind="stable").reset_index(drop=True)
-    return ExportPlan(options, secret, info, limits, chosen_sets, sets, columns,
-                      order[["visit_key", "patient_id", "export_id", "shift_days"]], sorted(set(options.patients)), response)
+    return ExportPlan(
+        options,
+        secret,
+        info,
+        limits,
+        chosen_sets,
+        sets,
+        columns,
+        order[["visit_key", "patient_id", "export_id", "shift_days"]],
+        sorted(set(options.patients)),
+        response,
+    )
 
 
 def _visit_order(session: Session, options: ExportOptions) -> pd.DataFrame:
     """visit_key, patient_id, code, visit_date of every visit that passes the stored-value filters."""
     diagnosis = func.coalesce(Visit.diagnosis, Patient.diagnosis)
-    query = select(Visit.id.label("visit_key"), Visit.patient_id, Patient.code, Visit.visit_date).join(Patient, Patient.id == Visit.patient_id)
+    query = select(Visit.id.label("visit_key"), Visit.patient_id, Patient.code, Visit.visit_date).join(
+        Patient, Patient.id == Visit.patient_id
+    )
     if options.diagnoses:
         query = query.where(diagnosis.in_(options.diagnoses))
     if options.date_from:
@@ -257,14 +365,18 @@ def _visit_order(session: Session, options: ExportOptions) -> pd.DataFrame:
         known = set(session.scalars(select(Patient.code).where(Patient.code.in_(wanted))))
         unknown = [c for c in wanted if c not in known]
         if unknown:
-            raise NotFound(f"No patient with code{'s' if len(unknown) > 1 else ''} {', '.join(repr(c) for c in unknown)}; nothing was exported.")
+            raise NotFound(
+                f"No patient with code{'s' if len(unknown) > 1 else ''} "
+                f"{', '.join(repr(c) for c in unknown)}; nothing was exported."
+            )
         query = query.where(Patient.code.in_(wanted))
     rows = session.execute(query).all()
     frame = pd.DataFrame(rows, columns=["visit_key", "patient_id", "code", "visit_date"])
     return frame.astype({"visit_key": "int64", "patient_id": "int64"})
 
 
-# -- one chunk ---------------------------------------------------------------------------------------------------
+# -- one chunk -----------------------------------------------------------------------------------------------
+
 
 def _build_chunk(plan: ExportPlan, session: Session, chunk: pd.DataFrame) -> pd.DataFrame:
     options = plan.options
@@ -276,8 +388,19 @@ def _build_chunk(plan: ExportPlan, session: Session, chunk: pd.DataFrame) -> pd.
     if options.level != "visit":  # built once, for the tables and for the engine
         nerves, paths = features.build(tested, tests, sites, plan.limits)
     evaluate = plan.evaluated and not tests.empty
-    results = engine.evaluate(tested, tests, sites, plan.limits, plan.evaluated, options.settings,
-                              built=None if nerves is None else (nerves, paths)) if evaluate else {}
+    results = (
+        engine.evaluate(
+            tested,
+            tests,
+            sites,
+            plan.limits,
+            plan.evaluated,
+            options.settings,
+            built=None if nerves is None else (nerves, paths),
+        )
+        if evaluate
+        else {}
+    )
     keep = _outcome_filter(options, results, visits["visit_key"])
     context = _visit_context(plan, session, chunk, visits)
     context = context[context["visit_key"].isin(keep)]
@@ -310,12 +433,16 @@ def _outcome_filter(options: ExportOptions, results: dict[str, SetResult], visit
     return keep
 
 
-def _visit_context(plan: ExportPlan, session: Session, chunk: pd.DataFrame, visits: pd.DataFrame) -> pd.DataFrame:
+def _visit_context(
+    plan: ExportPlan, session: Session, chunk: pd.DataFrame, visits: pd.DataFrame
+) -> pd.DataFrame:
     """The key columns of each visit of the chunk (export id, visit number, days, date), in export order."""
     patient_ids = sorted(set(int(p) for p in chunk["patient_id"]))
     # All visit dates of these patients (also outside the filters): first visit and visit number.
     history = pd.DataFrame(
-        session.execute(select(Visit.patient_id, Visit.visit_date).where(Visit.patient_id.in_(patient_ids))).all(),
+        session.execute(
+            select(Visit.patient_id, Visit.visit_date).where(Visit.patient_id.in_(patient_ids))
+        ).all(),
         columns=["patient_id", "visit_date"],
     )
     history["visit_date"] = pd.to_datetime(history["visit_date"])
@@ -326,7 +453,9 @@ def _visit_context(plan: ExportPlan, session: Session, chunk: pd.DataFrame, visi
     context["visit_date"] = pd.to_datetime(context["visit_key"].map(dates))
     context["first_date"] = context["patient_id"].map(first)
     context["days_since_first_visit"] = (context["visit_date"] - context["first_date"]).dt.days
-    counts = history.merge(context[["patient_id", "visit_key", "visit_date"]], on="patient_id", suffixes=("", "_this"))
+    counts = history.merge(
+        context[["patient_id", "visit_key", "visit_date"]], on="patient_id", suffixes=("", "_this")
+    )
     numbers = counts[counts["visit_date"] <= counts["visit_date_this"]].groupby("visit_key").size()
     context["visit_number"] = context["visit_key"].map(numbers)
     shifted = context["visit_date"] + pd.to_timedelta(context["shift_days"], unit="D")
@@ -334,7 +463,9 @@ def _visit_context(plan: ExportPlan, session: Session, chunk: pd.DataFrame, visi
     real = [d.date() for d in context["visit_date"]]
     context["visit_date"] = real
     if plan.options.identified:
-        codes = dict(session.execute(select(Patient.id, Patient.code).where(Patient.id.in_(patient_ids))).all())
+        codes = dict(
+            session.execute(select(Patient.id, Patient.code).where(Patient.id.in_(patient_ids))).all()
+        )
         context["patient_code"] = context["patient_id"].map(codes)
     return context
 
@@ -344,7 +475,9 @@ def _key_frame(plan: ExportPlan, context: pd.DataFrame) -> pd.DataFrame:
     return context[["visit_key", "position", *[n for n in names if n not in ("visit_key", "position")]]]
 
 
-def _statuses(results: dict[str, SetResult], sets: list, keep_items: Callable[[object], bool]) -> pd.DataFrame | None:
+def _statuses(
+    results: dict[str, SetResult], sets: list, keep_items: Callable[[object], bool]
+) -> pd.DataFrame | None:
     """Findings of the shown sets as rows (visit_key, nerve, side, modality, segment, column, status)."""
     parts = []
     for found in sets:
@@ -355,32 +488,51 @@ def _statuses(results: dict[str, SetResult], sets: list, keep_items: Callable[[o
         findings = findings[findings["item"].isin(list(wanted))]
         unknown = set(results[found.criteria].findings["item"]) - {i.item for i in found.items}
         if unknown:
-            raise TrackerError(f"Criteria set {found.criteria} reported items {sorted(unknown)} that the export does not know; "
-                               "this is a bug in ncs-tracker, please report it.")
-        parts.append(pd.DataFrame({
-            "visit_key": findings["visit_key"].to_numpy(),
-            "nerve": findings["nerve"].to_numpy(dtype=object),
-            "side": findings["side"].to_numpy(dtype=object),
-            "modality": findings["modality"].to_numpy(dtype=object),
-            "segment": findings["segment"].to_numpy(dtype=object),
-            "column": findings["item"].map(wanted).to_numpy(dtype=object),
-            "status": findings["status"].to_numpy(dtype=object),
-        }))
+            raise TrackerError(
+                f"Criteria set {found.criteria} reported items {sorted(unknown)} that the export does not "
+                "know; this is a bug in ncs-tracker, please report it."
+            )
+        parts.append(
+            pd.DataFrame(
+                {
+                    "visit_key": findings["visit_key"].to_numpy(),
+                    "nerve": findings["nerve"].to_numpy(dtype=object),
+                    "side": findings["side"].to_numpy(dtype=object),
+                    "modality": findings["modality"].to_numpy(dtype=object),
+                    "segment": findings["segment"].to_numpy(dtype=object),
+                    "column": findings["item"].map(wanted).to_numpy(dtype=object),
+                    "status": findings["status"].to_numpy(dtype=object),
+                }
+            )
+        )
     if not parts:
         return None
     return pd.concat(parts, ignore_index=True)
 
 
-def _visit_level(plan: ExportPlan, session: Session, context: pd.DataFrame, visits: pd.DataFrame, tests: pd.DataFrame,
-                 results: dict[str, SetResult]) -> pd.DataFrame:
+def _visit_level(
+    plan: ExportPlan,
+    session: Session,
+    context: pd.DataFrame,
+    visits: pd.DataFrame,
+    tests: pd.DataFrame,
+    results: dict[str, SetResult],
+) -> pd.DataFrame:
     frame = _key_frame(plan, context).copy()
     keys = [int(v) for v in frame["visit_key"]]
     details = pd.DataFrame(
         session.execute(
-            select(Visit.id.label("visit_key"), Visit.status, Visit.examiner, Visit.laboratory,
-                   func.coalesce(Visit.diagnosis, Patient.diagnosis).label("diagnosis"),
-                   func.coalesce(Visit.phenotype, Patient.phenotype).label("phenotype"), Patient.onset_date)
-            .join(Patient, Patient.id == Visit.patient_id).where(Visit.id.in_(keys))
+            select(
+                Visit.id.label("visit_key"),
+                Visit.status,
+                Visit.examiner,
+                Visit.laboratory,
+                func.coalesce(Visit.diagnosis, Patient.diagnosis).label("diagnosis"),
+                func.coalesce(Visit.phenotype, Patient.phenotype).label("phenotype"),
+                Patient.onset_date,
+            )
+            .join(Patient, Patient.id == Visit.patient_id)
+            .where(Visit.id.in_(keys))
         ).all(),
         columns=["visit_key", "status", "examiner", "laboratory", "diagnosis", "phenotype", "onset_date"],
     )
@@ -389,7 +541,10 @@ def _visit_level(plan: ExportPlan, session: Session, context: pd.DataFrame, visi
     frame["sex"] = frame["visit_key"].map(own["sex"])
     frame["height_cm"] = frame["visit_key"].map(own["height_cm"])
     identified = plan.options.identified
-    frame["age_at_visit"] = [deidentify.age_text(a, identified=identified) for a in frame["visit_key"].map(own["age_years"]).astype(float)]
+    frame["age_at_visit"] = [
+        deidentify.age_text(a, identified=identified)
+        for a in frame["visit_key"].map(own["age_years"]).astype(float)
+    ]
     onset = pd.to_datetime(frame["onset_date"])
     real_dates = pd.to_datetime(frame["visit_key"].map(context.set_index("visit_key")["visit_date"]))
     frame["days_since_onset"] = (real_dates - onset).dt.days
@@ -398,14 +553,17 @@ def _visit_level(plan: ExportPlan, session: Session, context: pd.DataFrame, visi
         frame = _with_identity(session, frame, context)
     frame = _with_treatments(session, frame, context)
     frame = _with_scores(session, frame, context)
-    frame = with_response(session, frame, context, plan.response, shifted=plan.options.dates == "shifted",
-                          identified=identified)
+    frame = with_response(
+        session, frame, context, plan.response, shifted=plan.options.dates == "shifted", identified=identified
+    )
     for found in plan.sets:
         if found.criteria not in results:
             continue
         outcomes = results[found.criteria].outcomes.set_index("visit_key")
         frame[f"{found.alias}__outcome"] = frame["visit_key"].map(outcomes["outcome"])
-        frame[f"{found.alias}__rule"] = frame["visit_key"].map(outcomes["rule"]) if "rule" in outcomes else None
+        frame[f"{found.alias}__rule"] = (
+            frame["visit_key"].map(outcomes["rule"]) if "rule" in outcomes else None
+        )
         for key in found.extra_keys:
             frame[f"{found.alias}__{key}"] = frame["visit_key"].map(outcomes[key])
     return frame.sort_values("position", kind="stable")
@@ -414,8 +572,14 @@ def _visit_level(plan: ExportPlan, session: Session, context: pd.DataFrame, visi
 def _with_identity(session: Session, frame: pd.DataFrame, context: pd.DataFrame) -> pd.DataFrame:
     patient_ids = sorted(set(int(p) for p in context["patient_id"]))
     identity = pd.DataFrame(
-        session.execute(select(PatientIdentity.patient_id, PatientIdentity.record_number, PatientIdentity.full_name,
-                               PatientIdentity.birth_date).where(PatientIdentity.patient_id.in_(patient_ids))).all(),
+        session.execute(
+            select(
+                PatientIdentity.patient_id,
+                PatientIdentity.record_number,
+                PatientIdentity.full_name,
+                PatientIdentity.birth_date,
+            ).where(PatientIdentity.patient_id.in_(patient_ids))
+        ).all(),
         columns=["patient_id", "record_number", "full_name", "birth_date"],
     )
     frame = frame.merge(context[["visit_key", "patient_id"]], on="visit_key", how="left")
@@ -426,8 +590,17 @@ def _with_treatments(session: Session, frame: pd.DataFrame, context: pd.DataFram
     """Treatments ongoing on the visit date (start ≤ visit ≤ end, no end: ongoing); notes never read."""
     patient_ids = sorted(set(int(p) for p in context["patient_id"]))
     treatments = pd.DataFrame(
-        session.execute(select(Treatment.patient_id, Treatment.therapy, Treatment.start_date, Treatment.end_date, Treatment.dose,
-                               Treatment.dose_unit, Treatment.interval_days).where(Treatment.patient_id.in_(patient_ids))).all(),
+        session.execute(
+            select(
+                Treatment.patient_id,
+                Treatment.therapy,
+                Treatment.start_date,
+                Treatment.end_date,
+                Treatment.dose,
+                Treatment.dose_unit,
+                Treatment.interval_days,
+            ).where(Treatment.patient_id.in_(patient_ids))
+        ).all(),
         columns=["patient_id", "therapy", "start_date", "end_date", "dose", "dose_unit", "interval_days"],
     )
     visits = context[["visit_key", "patient_id", "visit_date"]].copy()
@@ -435,7 +608,10 @@ def _with_treatments(session: Session, frame: pd.DataFrame, context: pd.DataFram
     treatments["start_date"] = pd.to_datetime(treatments["start_date"])
     treatments["end_date"] = pd.to_datetime(treatments["end_date"])
     pairs = visits.merge(treatments, on="patient_id")
-    ongoing = pairs[(pairs["start_date"] <= pairs["visit_date"]) & (pairs["end_date"].isna() | (pairs["end_date"] >= pairs["visit_date"]))]
+    ongoing = pairs[
+        (pairs["start_date"] <= pairs["visit_date"])
+        & (pairs["end_date"].isna() | (pairs["end_date"] >= pairs["visit_date"]))
+    ]
     ongoing = ongoing.sort_values(["visit_key", "therapy", "start_date"], kind="stable")
     names = ongoing.drop_duplicates(["visit_key", "therapy"]).groupby("visit_key")["therapy"].agg("+".join)
     counts = ongoing["visit_key"].map(ongoing.groupby("visit_key").size())
@@ -443,7 +619,9 @@ def _with_treatments(session: Session, frame: pd.DataFrame, context: pd.DataFram
     frame["therapy_at_visit"] = frame["visit_key"].map(names)
     frame["therapy_dose"] = frame["visit_key"].map(single["dose"]) if len(single) else np.nan
     frame["therapy_dose_unit"] = frame["visit_key"].map(single["dose_unit"]) if len(single) else None
-    frame["therapy_interval_days"] = frame["visit_key"].map(single["interval_days"]) if len(single) else np.nan
+    frame["therapy_interval_days"] = (
+        frame["visit_key"].map(single["interval_days"]) if len(single) else np.nan
+    )
     if len(single):
         since = (single["visit_date"] - single["start_date"]).dt.days
         frame["therapy_days_since_start"] = frame["visit_key"].map(since)
@@ -451,12 +629,16 @@ def _with_treatments(session: Session, frame: pd.DataFrame, context: pd.DataFram
 
 
 def _with_scores(session: Session, frame: pd.DataFrame, context: pd.DataFrame) -> pd.DataFrame:
-    """Per scale: the score on the visit date, else the nearest within ±SCORE_WINDOW_DAYS (earlier on a tie)."""
+    """Per scale: the score on the visit date, else the nearest within
+    ±SCORE_WINDOW_DAYS (earlier on a tie)."""
     patient_ids = sorted(set(int(p) for p in context["patient_id"]))
     known = list(scales())
     scores = pd.DataFrame(
-        session.execute(select(OutcomeScore.patient_id, OutcomeScore.score_date, OutcomeScore.scale, OutcomeScore.value)
-                        .where(OutcomeScore.patient_id.in_(patient_ids), OutcomeScore.scale.in_(known))).all(),
+        session.execute(
+            select(
+                OutcomeScore.patient_id, OutcomeScore.score_date, OutcomeScore.scale, OutcomeScore.value
+            ).where(OutcomeScore.patient_id.in_(patient_ids), OutcomeScore.scale.in_(known))
+        ).all(),
         columns=["patient_id", "score_date", "scale", "value"],
     )
     visits = context[["visit_key", "patient_id", "visit_date"]].copy()
@@ -465,7 +647,9 @@ def _with_scores(session: Session, frame: pd.DataFrame, context: pd.DataFrame) -
     pairs = visits.merge(scores, on="patient_id")
     pairs["offset"] = (pairs["score_date"] - pairs["visit_date"]).dt.days
     pairs = pairs[pairs["offset"].abs() <= SCORE_WINDOW_DAYS].assign(distance=lambda p: p["offset"].abs())
-    best = pairs.sort_values(["visit_key", "scale", "distance", "offset"], kind="stable").drop_duplicates(["visit_key", "scale"])
+    best = pairs.sort_values(["visit_key", "scale", "distance", "offset"], kind="stable").drop_duplicates(
+        ["visit_key", "scale"]
+    )
     for scale in known:
         rows = best[best["scale"] == scale].set_index("visit_key")
         frame[f"score_{scale}"] = frame["visit_key"].map(rows["value"]).astype(float)
@@ -473,12 +657,23 @@ def _with_scores(session: Session, frame: pd.DataFrame, context: pd.DataFrame) -
     return frame
 
 
-def _nerve_level(plan: ExportPlan, session: Session, context: pd.DataFrame, nerves: pd.DataFrame, sites: pd.DataFrame,
-                 results: dict[str, SetResult]) -> pd.DataFrame:
+def _nerve_level(
+    plan: ExportPlan,
+    session: Session,
+    context: pd.DataFrame,
+    nerves: pd.DataFrame,
+    sites: pd.DataFrame,
+    results: dict[str, SetResult],
+) -> pd.DataFrame:
     test_keys = [int(t) for t in nerves["test_key"]]
     extra = pd.DataFrame(
-        session.execute(select(NerveTest.id.label("test_key"), NerveTest.recording_site, NerveTest.f_persistence_pct)
-                        .where(NerveTest.id.in_(test_keys))).all() if test_keys else [],
+        session.execute(
+            select(
+                NerveTest.id.label("test_key"), NerveTest.recording_site, NerveTest.f_persistence_pct
+            ).where(NerveTest.id.in_(test_keys))
+        ).all()
+        if test_keys
+        else [],
         columns=["test_key", "recording_site", "f_persistence_pct"],
     )
     first = sites.sort_values(["test_key", "site_order"]).drop_duplicates("test_key").set_index("test_key")
@@ -495,17 +690,26 @@ def _nerve_level(plan: ExportPlan, session: Session, context: pd.DataFrame, nerv
     frame = _key_frame(plan, context).merge(frame, on="visit_key", how="inner")
     statuses = _statuses(results, plan.sets, lambda item: True)
     if statuses is not None and not statuses.empty:
-        wide = statuses.pivot_table(index=NERVE_KEY, columns="column", values="status", aggfunc="first").reset_index()
+        wide = statuses.pivot_table(
+            index=NERVE_KEY, columns="column", values="status", aggfunc="first"
+        ).reset_index()
         wide.columns.name = None
         frame = frame.merge(wide, on=NERVE_KEY, how="left")
     return frame.sort_values(["position", "nerve", "side", "modality"], kind="stable")
 
 
-def _segment_level(plan: ExportPlan, context: pd.DataFrame, paths: pd.DataFrame, sites: pd.DataFrame,
-                   results: dict[str, SetResult]) -> pd.DataFrame:
+def _segment_level(
+    plan: ExportPlan,
+    context: pd.DataFrame,
+    paths: pd.DataFrame,
+    sites: pd.DataFrame,
+    results: dict[str, SetResult],
+) -> pd.DataFrame:
     at_site = sites[["test_key", "site_order", "latency_ms", "amplitude", "duration_ms", "area_mvms"]]
     frame = paths.merge(at_site, on=["test_key", "site_order"], how="left")
-    frame = frame.rename(columns={"amplitude": "amplitude_mv", "segment_velocity": "segment_velocity_m_per_s"})
+    frame = frame.rename(
+        columns={"amplitude": "amplitude_mv", "segment_velocity": "segment_velocity_m_per_s"}
+    )
     frame["modality"] = "motor"
     frame = _key_frame(plan, context).merge(frame, on="visit_key", how="inner")
     statuses = _statuses(results, plan.sets, lambda item: item.has_segment)
@@ -514,10 +718,18 @@ def _segment_level(plan: ExportPlan, context: pd.DataFrame, paths: pd.DataFrame,
         # A finding names either the segment (site below → site) or the path from the distal site.
         rows = frame[["visit_key", "nerve", "side", "modality", "site_order", "segment", "path"]]
         by_segment = rows.merge(statuses, on=[*NERVE_KEY, "segment"])
-        by_path = rows.drop(columns=["segment"]).rename(columns={"path": "segment"}).merge(statuses, on=[*NERVE_KEY, "segment"])
-        matched = pd.concat([by_segment, by_path], ignore_index=True).drop_duplicates([*NERVE_KEY, "site_order", "column"])
+        by_path = (
+            rows.drop(columns=["segment"])
+            .rename(columns={"path": "segment"})
+            .merge(statuses, on=[*NERVE_KEY, "segment"])
+        )
+        matched = pd.concat([by_segment, by_path], ignore_index=True).drop_duplicates(
+            [*NERVE_KEY, "site_order", "column"]
+        )
         if not matched.empty:
-            wide = matched.pivot_table(index=[*NERVE_KEY, "site_order"], columns="column", values="status", aggfunc="first").reset_index()
+            wide = matched.pivot_table(
+                index=[*NERVE_KEY, "site_order"], columns="column", values="status", aggfunc="first"
+            ).reset_index()
             wide.columns.name = None
             frame = frame.merge(wide, on=[*NERVE_KEY, "site_order"], how="left")
     return frame.sort_values(["position", "nerve", "side", "site_order"], kind="stable")
@@ -548,14 +760,42 @@ PATH_QUANTITIES = [
     ("area_reduction_from_distal", "area_reduction_pct", "%", "path"),
     ("duration_increase_from_distal", "duration_increase_pct", "%", "path"),
 ]
-QUANTITY_ORDER = {name: rank for rank, (name, *_rest) in enumerate(NERVE_QUANTITIES + SITE_QUANTITIES + PATH_QUANTITIES)}
+QUANTITY_ORDER = {
+    name: rank for rank, (name, *_rest) in enumerate(NERVE_QUANTITIES + SITE_QUANTITIES + PATH_QUANTITIES)
+}
 
 
-def _long_level(plan: ExportPlan, session: Session, context: pd.DataFrame, nerves: pd.DataFrame, paths: pd.DataFrame,
-                sites: pd.DataFrame) -> pd.DataFrame:
+def _long_level(
+    plan: ExportPlan,
+    session: Session,
+    context: pd.DataFrame,
+    nerves: pd.DataFrame,
+    paths: pd.DataFrame,
+    sites: pd.DataFrame,
+) -> pd.DataFrame:
     test_keys = [int(t) for t in nerves["test_key"]]
-    persistence = dict(session.execute(select(NerveTest.id, NerveTest.f_persistence_pct).where(NerveTest.id.in_(test_keys))).all()) if test_keys else {}
-    tests = nerves[["test_key", "visit_key", "nerve", "side", "modality", "temperature_c", "lff_hz", "f_latency_ms", "sensory_cv"]].copy()
+    persistence = (
+        dict(
+            session.execute(
+                select(NerveTest.id, NerveTest.f_persistence_pct).where(NerveTest.id.in_(test_keys))
+            ).all()
+        )
+        if test_keys
+        else {}
+    )
+    tests = nerves[
+        [
+            "test_key",
+            "visit_key",
+            "nerve",
+            "side",
+            "modality",
+            "temperature_c",
+            "lff_hz",
+            "f_latency_ms",
+            "sensory_cv",
+        ]
+    ].copy()
     tests["f_persistence_pct"] = tests["test_key"].map(persistence).astype(float)
     ident = ["test_key", "visit_key", "nerve", "side", "modality"]
     parts = []
@@ -582,8 +822,12 @@ def _long_level(plan: ExportPlan, session: Session, context: pd.DataFrame, nerve
     site_rows = sites.merge(tests[ident], on="test_key", how="inner")
     melt(site_rows, SITE_QUANTITIES, lambda f: f["site_order"].to_numpy(), None)
     path_rows = paths.assign(modality="motor")
-    melt(path_rows, PATH_QUANTITIES, lambda f: f["site_order"].to_numpy(),
-         lambda f, origin: f["segment" if origin == "segment" else "path"].to_numpy(dtype=object))
+    melt(
+        path_rows,
+        PATH_QUANTITIES,
+        lambda f: f["site_order"].to_numpy(),
+        lambda f, origin: f["segment" if origin == "segment" else "path"].to_numpy(dtype=object),
+    )
     if parts:
         frame = pd.concat(parts, ignore_index=True)
     else:
