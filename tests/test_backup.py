@@ -28,12 +28,14 @@ from alembic.script import ScriptDirectory
 from sqlalchemy import inspect, select, text
 from sqlalchemy.engine import make_url
 
+from access_support import PASSWORD
 from conftest import DEMO, PG_ADMIN_URL, _pg_admin, fingerprint, new_database, run_cli
 from tracker.db import migrate
 from tracker.db.models import Base, Patient, PatientIdentity, User, Visit, VisitRevision
 from tracker.db.session import create_private_file, make_engine, make_session_factory
 from tracker.services import preferences
 from tracker.services.access import backup as backup_service
+from tracker.services.access.accounts import hash_password, system_identity
 from tracker.services.evaluation import refresh_evaluations
 from tracker.services.export.deidentify import export_id, export_secret
 from tracker.services.importing import import_file
@@ -60,6 +62,12 @@ FILLED = {
     "users",
     "alembic_version",
 }
+
+
+@pytest.fixture(autouse=True)
+def admin_password_typed(monkeypatch):
+    """Backup and restore ask for the acting admin's password: it is typed at every prompt."""
+    monkeypatch.setattr("sys.stdin", io.StringIO((PASSWORD + "\n") * 50))
 
 
 def fill(url: str) -> None:
@@ -97,6 +105,9 @@ def fill(url: str) -> None:
                 )
             )
             session.add(User(username="invented-clinician", role="clinician"))
+            # The login that runs the commands below is this database's admin (backup and restore need one,
+            # with the password, once accounts exist).
+            session.add(User(username=system_identity(session)[0], role="admin", password_hash=hash_password(PASSWORD)))
     finally:
         engine.dispose()
 

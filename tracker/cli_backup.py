@@ -15,7 +15,7 @@ from sqlalchemy.engine import make_url
 
 from tracker.cli_context import Context, pass_context
 from tracker.config import ENV_USER
-from tracker.errors import TrackerError
+from tracker.errors import SchemaNotReady, TrackerError
 
 
 @click.command("backup")
@@ -45,7 +45,8 @@ def backup_command(context: Context, file: Path, secret_out: Path | None, no_sec
         raise click.UsageError("--no-secret and --secret-out exclude each other.")
     url = context.url
     result = service.backup(
-        url, file, username=_acting_login(url), secret_path=secret_out, write_secret=not no_secret
+        url, file, username=_authorised(context, url, "backup"), secret_path=secret_out,
+        write_secret=not no_secret,
     )
     click.echo(
         f"Backup written: {result.path} ({result.size:,} bytes, sha256 {result.sha256[:16]}…), "
@@ -100,7 +101,8 @@ def restore_command(context: Context, file: Path, secret_file: Path | None, forc
     from tracker.services.access import backup as service
 
     url = context.url
-    result = service.restore(url, file, username=_acting_login(url), secret_file=secret_file, force=force)
+    result = service.restore(url, file, username=_authorised(context, url, "restore"), secret_file=secret_file,
+                             force=force)
     click.echo(
         f"Restored {file} (made {result.created_at}) into {_shown(url)}: "
         f"{service.describe_rows(result.tables)}."
@@ -120,6 +122,17 @@ def restore_command(context: Context, file: Path, secret_file: Path | None, forc
             "patients. To keep them, restore again with --force --secret FILE.secret.",
             err=True,
         )
+
+
+def _authorised(context: Context, url: str, permission: str) -> str:
+    """The acting login, allowed ``permission`` by the target database's accounts (an administrator, with
+    the password, once accounts exist). A database without a current schema has no accounts to ask: a new
+    or emptied target (restore), or one to be upgraded after its backup; then the login acts as itself."""
+    try:
+        return context.acting(permission).name
+    except SchemaNotReady:
+        context.close()
+        return _acting_login(url)
 
 
 def _acting_login(url: str) -> str:

@@ -157,11 +157,15 @@ def authenticate(session: Session, username: str, password: str, *, via: str = "
                detail="inactive account" if not user.active else "wrong password",
                after={"locked": user.locked_until is not None and _aware(user.locked_until) > now})
         raise SignInRefused("Sign-in refused: the user name or the password is not right.")
+    # A command-line password check writes nothing when there is nothing to reset (the action it allows is
+    # audited under the same name); a dashboard sign-in starts a session and is audited.
     if HASHER.check_needs_rehash(user.password_hash):
         user.password_hash = HASHER.hash(password)
-    user.failed_sign_ins, user.locked_until = 0, None
+    if user.failed_sign_ins or user.locked_until is not None:
+        user.failed_sign_ins, user.locked_until = 0, None
+    if via == "sign-in":
+        record(session, username=username, action="sign_in", entity="user", entity_key=username, detail=via)
     session.flush()
-    record(session, username=username, action="sign_in", entity="user", entity_key=username, detail=via)
     return Actor(username, user.role, via, authenticated=True)
 
 
