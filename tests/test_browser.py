@@ -15,6 +15,8 @@ import subprocess
 import sys
 import time
 import urllib.request
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 import pytest
@@ -46,17 +48,15 @@ def free_port() -> int:
         return probe.getsockname()[1]
 
 
-@pytest.fixture(scope="module")
-def served(tmp_path_factory):
-    """``ncs-tracker serve`` on the invented demo clinic; yields (base address, database URL)."""
-    chromium_path()
-    folder = tmp_path_factory.mktemp("browser")
-    url = f"sqlite:///{folder / 'demo.sqlite3'}"
-    fill_demo(url)
+@contextmanager
+def serving(folder: Path, url: str, *options: str) -> Iterator[str]:
+    """``ncs-tracker serve`` on 127.0.0.1 and a free port, with ``options``; yields the base address. Its
+    output (and the Streamlit child's errors) go to ``folder / "serve.log"``."""
     port = free_port()
     log = (folder / "serve.log").open("w")
     process = subprocess.Popen(
-        [sys.executable, "-c", "from tracker.cli import main; main()", "--db", url, "serve", "--port", str(port)],
+        [sys.executable, "-c", "from tracker.cli import main; main()", "--db", url, "serve",
+         "--port", str(port), *options],
         stdout=log, stderr=subprocess.STDOUT, start_new_session=True,
     )
     base = f"http://127.0.0.1:{port}"
@@ -73,7 +73,7 @@ def served(tmp_path_factory):
                 log.flush()
                 pytest.fail(f"the dashboard did not start: {(folder / 'serve.log').read_text()[-2000:]}")
             time.sleep(0.3)
-        yield base, url
+        yield base
     finally:
         # The server runs streamlit as a child: stop the whole process group.
         try:
@@ -83,6 +83,17 @@ def served(tmp_path_factory):
             os.killpg(process.pid, signal.SIGKILL)
             process.wait(5)
         log.close()
+
+
+@pytest.fixture(scope="module")
+def served(tmp_path_factory):
+    """``ncs-tracker serve`` on the invented demo clinic; yields (base address, database URL)."""
+    chromium_path()
+    folder = tmp_path_factory.mktemp("browser")
+    url = f"sqlite:///{folder / 'demo.sqlite3'}"
+    fill_demo(url)
+    with serving(folder, url) as base:
+        yield base, url
 
 
 def test_follow_up_page_draws_and_hover_shows_the_value(served, tmp_path):
@@ -169,3 +180,51 @@ def test_follow_up_page_shows_the_treatment_response(served, tmp_path):
             print(f"screenshot {shot}")
         finally:
             browser.close()
+
+
+def test_sign_in_form_then_a_viewer_sees_the_patients_page(tmp_path):
+    """``serve --sign-in``: the first page is the sign-in form and shows no patient; a viewer who signs in
+    sees the Patients page without New study; the password reaches neither the page nor the server's log."""
+    from playwright.sync_api import sync_playwright
+
+    from tracker.db.models import User
+    from tracker.services.access.accounts import hash_password
+
+    password = "invented browser pass 3"  # a test account only
+    url = f"sqlite:///{tmp_path / 'demo.sqlite3'}"
+    fill_demo(url)
+    engine = make_engine(url)
+    with make_session_factory(engine).begin() as session:
+        session.add(User(username="viewer-invented", role="viewer", active=True, failed_sign_ins=0,
+                         password_hash=hash_password(password)))
+    engine.dispose()
+
+    local = ("http://127.0.0.1", "data:", "blob:")
+    with serving(tmp_path, url, "--sign-in") as base, sync_playwright() as playwright:
+        browser = playwright.chromium.launch(executable_path=chromium_path(), args=CHROMIUM_FLAGS)
+        try:
+            page = browser.new_page(viewport={"width": 1400, "height": 1200})
+            outside: list[str] = []
+            page.on("request", lambda r: None if r.url.startswith(local) else outside.append(r.url))
+            page.goto(f"{base}/follow-up?patient=DEMO-04")  # a deep link to a patient, before signing in
+            page.get_by_role("button", name="Sign in").wait_for(timeout=60_000)
+            caution = page.get_by_text("must be reviewed by a qualified clinician", exact=False)
+            caution.first.wait_for(timeout=30_000)
+            assert "DEMO-" not in page.content()
+
+            page.get_by_role("textbox", name="User name").fill("viewer-invented")
+            page.get_by_role("textbox", name="Password").fill(password)
+            page.get_by_role("button", name="Sign in").click()
+            page.get_by_role("heading", name="Patients").wait_for(timeout=60_000)
+            # The table is drawn on a canvas; its cells are kept, hidden, for screen readers.
+            cell = page.locator("[role=gridcell]", has_text="DEMO-01")
+            cell.first.wait_for(state="attached", timeout=30_000)
+            sidebar = page.locator('[data-testid="stSidebar"]')
+            sidebar.get_by_text("viewer-invented (viewer)", exact=False).wait_for(timeout=30_000)
+            assert sidebar.get_by_text("Follow-up", exact=True).count() >= 1
+            assert sidebar.get_by_text("New study", exact=True).count() == 0
+            assert password not in page.content()
+            assert not outside, f"the page asked for outside addresses: {outside[:3]}"
+        finally:
+            browser.close()
+    assert password not in (tmp_path / "serve.log").read_text()

@@ -8,6 +8,7 @@ own machine: on any address other than loopback it refuses to start unless sign-
 
 from __future__ import annotations
 
+import ipaddress
 import os
 import signal
 import socket
@@ -17,8 +18,6 @@ from collections.abc import Callable
 from pathlib import Path
 
 from tracker import CAUTION
-import ipaddress
-
 from tracker.config import ENV_DB, ENV_SIGN_IN
 from tracker.dashboard import style
 from tracker.errors import TrackerError
@@ -28,8 +27,9 @@ APP = Path(__file__).resolve().parent / "dashboard" / "app.py"
 
 def free_port(host: str, wanted: int, tries: int = 50) -> int:
     """``wanted`` if nothing listens there, else the next free port."""
+    family = socket.AF_INET6 if ":" in host else socket.AF_INET  # "::1" cannot be probed as IPv4
     for port in range(wanted, wanted + tries):
-        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as probe:
+        with socket.socket(family, socket.SOCK_STREAM) as probe:
             probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
             try:
                 probe.bind((host, port))
@@ -79,7 +79,7 @@ def run_dashboard(url: str, *, host: str, port: int, sign_in: bool, announce: Ca
     if sign_in:
         environment[ENV_SIGN_IN] = "required"
     process = subprocess.Popen(streamlit_command(host, port), env=environment, stdout=subprocess.DEVNULL)
-    shown_host = "127.0.0.1" if host in ("127.0.0.1", "localhost") else host
+    shown_host = "127.0.0.1" if host in ("127.0.0.1", "localhost") else f"[{host}]" if ":" in host else host
 
     def stop(signum, _frame) -> None:
         raise _Stopped(signum)

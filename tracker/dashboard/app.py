@@ -34,6 +34,10 @@ def _sign_in_form() -> None:
         password = st.text_input("Password", type="password", key="sign_in_password", autocomplete="current-password")
         submitted = st.form_submit_button("Sign in", type="primary")
     if submitted:
+        # The browser clears both fields, but the server would keep what was typed (a password, or one
+        # typed as the name) in the session's widget state until the next run: drop it now, whatever follows.
+        for key in ("sign_in_user", "sign_in_password"):
+            del st.session_state[key]
         try:
             state.sign_in(username.strip(), password)
         except TrackerError as error:

@@ -25,6 +25,7 @@ from tracker.config import ENV_SIGN_IN, resolve_database_url
 from tracker.db.migrate import require_current_schema
 from tracker.db.session import make_engine, make_session_factory
 from tracker.errors import TrackerError
+from tracker.serving import is_loopback
 from tracker.services.access import accounts
 from tracker.services.access.permissions import Actor, NotPermitted
 
@@ -78,7 +79,18 @@ def writing(permission: str = "write_clinical") -> Iterator[Session]:
 
 
 def sign_in_required() -> bool:
-    return os.environ.get(ENV_SIGN_IN) == "required"
+    """Required when ``serve --sign-in`` asked for it, and also whenever this server listens beyond loopback
+    (``streamlit run`` started by hand, without ``serve``'s check): visitors then never act as the login
+    that started it. Streamlit binds every address when none is given; only its test harness, which
+    listens nowhere, runs without one."""
+    if os.environ.get(ENV_SIGN_IN) == "required":
+        return True
+    from streamlit import config  # the live options (``st.get_option`` is bound at import, tests patch this)
+
+    address = config.get_option("server.address")
+    if address:
+        return not is_loopback(str(address))
+    return not config.get_option("global.appTest")
 
 
 def actor() -> Actor | None:

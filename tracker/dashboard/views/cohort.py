@@ -31,8 +31,9 @@ codes_shown = may("see_patient_codes")
 if not codes_shown:  # a research coordinator sees export ids (as in the research export), never clinic codes
     with writing("export") as session:  # the export secret is created on first use
         secret = deidentify.export_secret(session, username=user())
-    visits = visits.assign(patient=[deidentify.export_id(secret, c) for c in visits["patient"]]).rename(
-        columns={"patient": "export_id"})
+    visits = visits.assign(patient=[deidentify.export_id(secret, c) for c in visits["patient"]])
+# The counts need the "patient" column (codes or export ids); the visit table and its file name it as it is.
+listed = visits if codes_shown else visits.rename(columns={"patient": "export_id"})
 
 left, right = st.columns([1, 2])
 with left:
@@ -45,10 +46,10 @@ with right:
     st.caption("From saved evaluations; “not evaluated” visits have none yet (Patients page → Evaluate all visits).")
 
 st.subheader(f"Visits ({len(visits)})")
-st.dataframe(tables.cohort_visits(visits), hide_index=True, width="stretch", key="cohort_visits")
+st.dataframe(tables.cohort_visits(listed), hide_index=True, width="stretch", key="cohort_visits")
 st.download_button(
     "Download this table (CSV; clinic use: contains patient codes)" if codes_shown
-    else "Download this table (CSV with export ids and real visit dates)", csv_bytes(visits),
+    else "Download this table (CSV with export ids and real visit dates)", csv_bytes(listed),
     file_name="cohort_visits.csv", mime="text/csv", key="cohort_download",
 )
 st.caption("For research, use the de-identified export: `ncs-tracker export` (export ids instead of codes, shifted dates, a data dictionary and a manifest).")
