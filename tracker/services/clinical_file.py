@@ -14,6 +14,7 @@ from tracker.domain.vocabulary import THERAPIES
 from tracker.errors import InputRejected
 from tracker.services import checks
 from tracker.services.checks import Collector
+from tracker.services.input_limits import guarded
 from tracker.services.tables import ROW
 
 TREATMENT_REQUIRED = ["patient", "therapy", "start_date"]
@@ -66,7 +67,7 @@ def validate_treatments(
     if checks.missing_columns(collect, TREATMENT_REQUIRED) or len(cells) == 0:
         if len(cells) == 0:
             collect.add_one(None, None, None, "the file has a header but no data rows")
-        raise InputRejected("The treatments file was refused", collect.sorted_problems())
+        raise InputRejected("The treatments file was refused", guarded(collect.sorted_problems()))
     patient = checks.patient_codes(collect)
     _unknown_patients(collect, patient, known_patients)
     therapy = checks.vocabulary(collect, "therapy", {t: t for t in THERAPIES}, required=True)
@@ -99,7 +100,7 @@ def validate_treatments(
     ok = frame[TREATMENT_KEY].notna().all(axis=1)
     _duplicates(collect, frame[ok], TREATMENT_KEY, "patient, therapy and start date")
     if collect.problems:
-        raise InputRejected("The treatments file was refused", collect.sorted_problems())
+        raise InputRejected("The treatments file was refused", guarded(collect.sorted_problems()))
     return frame
 
 
@@ -114,7 +115,7 @@ def validate_scores(
     if checks.missing_columns(collect, SCORE_REQUIRED) or len(cells) == 0:
         if len(cells) == 0:
             collect.add_one(None, None, None, "the file has a header but no data rows")
-        raise InputRejected("The scores file was refused", collect.sorted_problems())
+        raise InputRejected("The scores file was refused", guarded(collect.sorted_problems()))
     known = scales()
     patient = checks.patient_codes(collect)
     _unknown_patients(collect, patient, known_patients)
@@ -140,5 +141,5 @@ def validate_scores(
     ok = frame[SCORE_KEY].notna().all(axis=1)
     _duplicates(collect, frame[ok], SCORE_KEY, "patient, date and scale")
     if collect.problems:
-        raise InputRejected("The scores file was refused", collect.sorted_problems())
+        raise InputRejected("The scores file was refused", guarded(collect.sorted_problems()))
     return frame

@@ -17,14 +17,49 @@ from sqlalchemy.orm import Session
 from tracker.criteria import limits as limit_rules
 from tracker.db.models import LimitRow, LimitSet, utc_now
 from tracker.domain import catalogue
+from tracker.domain.plausibility import Range, ranges
 from tracker.domain.vocabulary import LIMIT_BOUNDS, LIMIT_PARAMETERS, MODALITIES, SEXES
 from tracker.errors import InputRejected, NotFound, Problem
 from tracker.services import audit, checks
 from tracker.services.checks import Collector
+from tracker.services.input_limits import excerpt, from_environment, guarded
 from tracker.services.tables import ROW, InputTable, read_table
 
 REQUIRED = ["nerve", "modality", "parameter", "bound", "value"]
 OPTIONAL = ["age_min", "age_max", "height_min_cm", "height_max_cm", "sex", "source", "status", "recording_site"]
+# A laboratory's set has tens to a few hundred rows; the overlap check compares the strata of one nerve,
+# modality, parameter and bound pairwise, so a set and each of its groups are kept well below the general
+# row limit of an import file (100 strata: e.g. 10 age bands × 5 height bands × 2 sexes).
+MAX_ROWS = 2_000
+MAX_STRATA = 100
+NAME_CHARS: int = LimitSet.__table__.c.name.type.length
+# A normal limit is a value of the quantity it bounds: it must lie within that quantity's plausibility range
+# (tracker/reference/plausibility.csv, where each range has its source). (parameter, modality) → quantity;
+# modality None: either.
+PLAUSIBLE_QUANTITY = {
+    ("distal_latency_ms", None): "latency_ms",
+    ("peak_latency_ms", None): "peak_latency_ms",
+    ("f_latency_ms", None): "f_latency_ms",
+    ("distal_duration_ms", None): "duration_ms",
+    ("cv_ms", "motor"): "motor_velocity_m_per_s",
+    ("cv_ms", "sensory"): "sensory_velocity_m_per_s",
+    ("amplitude", "motor"): "amplitude_mv",
+    ("amplitude", "sensory"): "amplitude_uv",
+}
+AGE_BAND = Range(
+    "age", "years", 0, True, 120, True, False,
+    "no documented human life reaches 123 years; common practice, no source",
+)
+
+
+def _band_range(column: str) -> Range:
+    """Plausible bounds of an age or height band: from 0 up to the quantity's plausible maximum."""
+    if column.startswith("age"):
+        return AGE_BAND
+    height = ranges()["height_cm"]
+    return Range(
+        "height band", height.unit, 0, True, height.upper, height.upper_inclusive, False, height.source
+    )
 
 
 @dataclass(frozen=True)
@@ -41,10 +76,15 @@ def validate_limits(cells: pd.DataFrame) -> pd.DataFrame:
     """Typed limit rows, or :class:`InputRejected` listing every problem."""
     collect = Collector(cells)
     checks.unknown_columns(collect, REQUIRED + OPTIONAL)
+    if len(cells) > MAX_ROWS:
+        collect.add_one(
+            None, None, None, f"a normal-limit set has at most {MAX_ROWS:,} rows; the file has {len(cells):,}"
+        )
+        raise InputRejected("The limits file was refused", guarded(collect.sorted_problems()))
     if checks.missing_columns(collect, REQUIRED) or len(cells) == 0:
         if len(cells) == 0:
             collect.add_one(None, None, None, "the file has a header but no data rows")
-        raise InputRejected("The limits file was refused", collect.sorted_problems())
+        raise InputRejected("The limits file was refused", guarded(collect.sorted_problems()))
     nerve_words = {w: catalogue.canonical_nerve(w) for w in catalogue.known_nerve_words()}
     nerve = checks.vocabulary(collect, "nerve", nerve_words, required=True, shown_choices=sorted(catalogue.nerves()))
     modality = checks.vocabulary(collect, "modality", {m: m for m in MODALITIES}, required=True)
@@ -53,6 +93,7 @@ def validate_limits(cells: pd.DataFrame) -> pd.DataFrame:
     value, _ = checks.number(collect, "value", required=True)
     with np.errstate(invalid="ignore"):
         collect.add(value <= 0, "value", "a normal limit must be above 0")
+    _plausible_values(collect, parameter, modality, value)
     bands = {}
     for low, high, unit in (("age_min", "age_max", "years"), ("height_min_cm", "height_max_cm", "cm")):
         lo, _ = checks.number(collect, low, unit=unit)
@@ -60,6 +101,14 @@ def validate_limits(cells: pd.DataFrame) -> pd.DataFrame:
         with np.errstate(invalid="ignore"):
             collect.add(lo >= hi, high, f"the band is empty: {high} must be above {low}")
             collect.add((lo < 0) | (hi < 0), low, "must not be negative")
+        for column, values in ((low, lo), (high, hi)):
+            rule = _band_range(column)
+            outside = rule.outside(values) & ~(values < 0)  # a negative bound has its own message
+            collect.add(
+                outside,
+                column,
+                f"outside the plausible range of an age or height band; expected {rule.describe()}"
+            )
         bands[low], bands[high] = lo, hi
     sex = checks.vocabulary(collect, "sex", {s: s for s in SEXES})
     status = checks.vocabulary(collect, "status", {"verified": "verified", "memory": "memory", "local": "local"})
@@ -77,12 +126,39 @@ def validate_limits(cells: pd.DataFrame) -> pd.DataFrame:
             "status": status.fillna("local").to_numpy(),
         }
     )
-    for pair in limit_rules.overlapping_strata(frame):
+    group = frame.groupby(["nerve", "modality", "parameter", "bound"], sort=False).cumcount().to_numpy()
+    crowded = np.flatnonzero(group == MAX_STRATA)  # the first row beyond the limit, in each crowded group
+    for index in crowded:
+        collect.add_one(
+            int(frame[ROW].iloc[index]),
+            "parameter",
+            None,
+            f"more than {MAX_STRATA} rows give the {frame['bound'].iloc[index]} "
+            f"{frame['parameter'].iloc[index]} of the {frame['modality'].iloc[index]} "
+            f"{frame['nerve'].iloc[index]} nerve; at most {MAX_STRATA} strata are accepted",
+        )
+    for pair in [] if len(crowded) else limit_rules.overlapping_strata(frame):
         a, b = (int(frame.loc[i, ROW]) for i in pair)
         collect.add_one(b, None, None, f"rows {a} and {b} give the same limit for overlapping strata; narrow one of them")
     if collect.problems:
-        raise InputRejected("The limits file was refused", collect.sorted_problems())
+        raise InputRejected("The limits file was refused", guarded(collect.sorted_problems()))
     return frame
+
+
+def _plausible_values(
+    collect: Collector, parameter: pd.Series, modality: pd.Series, value: np.ndarray
+) -> None:
+    """Each limit's value within the plausibility range of the quantity it bounds (its unit named)."""
+    for (name, wanted_modality), quantity in PLAUSIBLE_QUANTITY.items():
+        rule = ranges()[quantity]
+        rows = (parameter == name).to_numpy(dtype=bool)
+        if wanted_modality is not None:
+            rows = rows & (modality == wanted_modality).to_numpy(dtype=bool)
+        with np.errstate(invalid="ignore"):
+            outside = rows & rule.outside(value) & (value > 0)  # 0 and below have their own message
+        which = f"{wanted_modality} {name}" if wanted_modality else name
+        message = f"a {which} limit is outside the plausible range; expected {rule.describe()}"
+        collect.add(outside, "value", message)
 
 
 def import_limit_set(session: Session, path: Path, *, name: str, username: str, description: str | None = None) -> LimitSetInfo:
@@ -94,6 +170,25 @@ def import_limit_table(session: Session, table: InputTable, *, name: str, userna
     """As :func:`import_limit_set`, from a parsed table (an upload: ``parse_table(raw, suffix, ("limits",))``)."""
     if not name.strip():
         raise InputRejected("The limit set needs a name", [Problem(None, "name", name, "give the set a short name, e.g. your laboratory's")])
+    if len(name) > NAME_CHARS:
+        raise InputRejected(
+            "The limit set's name is too long",
+            [
+                Problem(
+                    None,
+                    "--name",
+                    excerpt("--name", name),
+                    f"a set's name has at most {NAME_CHARS} characters; it has {len(name):,}",
+                )
+            ],
+        )
+    cell_chars = from_environment().cell_chars
+    if description is not None and len(description) > cell_chars:
+        raise InputRejected(
+            "The limit set's description is too long",
+            [Problem(None, "--description", excerpt("--description", description),
+                     f"a description has at most {cell_chars:,} characters; it has {len(description):,}")],
+        )
     frame = validate_limits(table.cells)
     version = (session.scalar(select(func.max(LimitSet.version)).where(LimitSet.name == name)) or 0) + 1
     set_id = session.scalar(

@@ -14,6 +14,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
+from tracker.db.models import NerveTest
 from tracker.domain import catalogue
 from tracker.domain.conduction import quantise_array
 from tracker.domain.plausibility import ranges
@@ -21,6 +22,7 @@ from tracker.domain.vocabulary import ABSENT_WORDS, DIAGNOSES, PHENOTYPES, SEXES
 from tracker.errors import InputRejected, Problem
 from tracker.services import checks
 from tracker.services.checks import Collector
+from tracker.services.input_limits import guarded
 from tracker.services.tables import ROW
 
 REQUIRED = ["patient", "visit_date", "nerve", "side", "modality", "site_order", "distance_mm", "latency_ms"]
@@ -49,6 +51,9 @@ PATIENT_LEVEL = ["sex", "birth_year"]
 TEST_KEY = ["patient", "visit_date", "nerve", "side", "modality"]
 VISIT_KEY = ["patient", "visit_date"]
 SITE_VALUES = ["site_order", "label", "distance_mm", "latency_ms", "peak_latency_ms", "amplitude_mv", "amplitude_uv", "duration_ms", "area_mvms"]
+# Free text stored in a column of bounded length is checked against that length here, in validation, so that
+# a dry run and the import agree on SQLite (which stores any length) and PostgreSQL (which refuses).
+RECORDING_SITE_CHARS: int = NerveTest.__table__.c.recording_site.type.length
 
 
 @dataclass
@@ -181,7 +186,7 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     if missing or len(cells) == 0:
         if len(cells) == 0 and not missing:
             collect.add_one(None, None, None, "the file has a header but no data rows")
-        raise InputRejected("The measurements file was refused", collect.sorted_problems())
+        raise InputRejected("The measurements file was refused", guarded(collect.sorted_problems()))
 
     patient = checks.patient_codes(collect)
     visit_date = checks.iso_dates(collect, "visit_date", required=True, not_after=today)
@@ -245,6 +250,11 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     collect.add(sensory & (~np.isnan(f_latency) | f_absent), "f_latency_ms", "F-waves belong to motor nerve tests")
     collect.add(sensory & ~np.isnan(f_persistence), "f_persistence_pct", "F-waves belong to motor nerve tests")
     recording = checks.map_unique(checks.text(cells, "recording_site"), catalogue.normalise_word).replace("", None)
+    collect.add(
+        recording.str.len().gt(RECORDING_SITE_CHARS).to_numpy(dtype=bool),
+        "recording_site",
+        f"a recording site has at most {RECORDING_SITE_CHARS} characters",
+    )
 
     height, _ = checks.number(collect, "height_cm", unit="cm")
     checks.in_range(collect, "height_cm", height, limits["height_cm"])
@@ -299,7 +309,7 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
         _group_checks(collect, frame, keys_ok, allow_unusual, limits)
     unusual = getattr(collect, "unusual", [])
     if collect.problems:
-        raise InputRejected("The measurements file was refused", collect.sorted_problems())
+        raise InputRejected("The measurements file was refused", guarded(collect.sorted_problems()))
     return _assemble(frame, unusual)
 
 

@@ -5,6 +5,10 @@ Determinism: the same frames give byte-identical files. CSV is plain text; Parqu
 an Excel file is a zip archive whose entry times and document dates would be "now", so both are set to a
 fixed instant (:data:`FIXED_ZIP_TIME`) after openpyxl has written the workbook.
 
+Safe creation: every file is written under a new temporary name in the target folder, created exclusively
+(``tempfile.mkstemp``: ``O_CREAT | O_EXCL``, never through an existing name or link) and readable by its
+owner only (mode 0600), and written through that open handle; the caller renames it into place.
+
 Spreadsheet safety: a text cell that begins with ``=``, ``+``, ``-``, ``@``, a tab or a carriage return
 gets a leading apostrophe in CSV and Excel files, so that no spreadsheet evaluates it as a formula
 (common practice for formula injection, no single source). Numbers are never altered.
@@ -14,6 +18,7 @@ from __future__ import annotations
 
 import datetime as dt
 import hashlib
+import io
 import math
 import os
 import re
@@ -21,7 +26,7 @@ import shutil
 import tempfile
 import zipfile
 from pathlib import Path
-from typing import Any
+from typing import IO, Any
 
 import pandas as pd
 import pyarrow as pa
@@ -40,6 +45,17 @@ FIXED_DOCUMENT_TIME = dt.datetime(1980, 1, 1)
 EXCEL_MAX_DATA_ROWS = 1_048_575
 COPY_BLOCK_BYTES = 1 << 20
 CSV_LINE_END = "\r\n"
+
+
+def private_file(final: Path) -> tuple[Path, IO[bytes]]:
+    """A new, empty temporary file beside ``final`` and its open binary handle.
+
+    Created with ``O_CREAT | O_EXCL`` under an unpredictable name (a planted file or link of that name makes
+    the creation fail instead of being followed), mode 0600 whatever the umask: an export may identify
+    patients, and even a de-identified one is for its owner to share.
+    """
+    handle, name = tempfile.mkstemp(prefix=f".{final.name}.", suffix=".partial", dir=final.parent)
+    return Path(name), os.fdopen(handle, "w+b")
 
 
 def neutralise_text(value: Any) -> Any:
@@ -67,11 +83,11 @@ class CsvTable:
     RFC 4180 has them: Python's CSV writer then quotes every cell that holds a line break or a carriage
     return (with bare ``\\n`` line ends a carriage return inside a cell would split the row for some readers)."""
 
-    def __init__(self, path: Path, columns: list[Column]):
+    def __init__(self, path: Path, columns: list[Column], handle: IO[bytes]):
         self.path = path
         self.columns = columns
         self.rows = 0
-        self._handle = open(path, "w", encoding="utf-8", newline="")
+        self._handle = io.TextIOWrapper(handle, encoding="utf-8", newline="")
         pd.DataFrame(columns=[c.name for c in columns]).to_csv(self._handle, index=False, lineterminator=CSV_LINE_END)
 
     def append(self, frame: pd.DataFrame) -> None:
@@ -87,12 +103,13 @@ class CsvTable:
 class ParquetTable:
     """Parquet with the export's schema (float64, int32, bool, string, date32); one row group per chunk."""
 
-    def __init__(self, path: Path, columns: list[Column]):
+    def __init__(self, path: Path, columns: list[Column], handle: IO[bytes]):
         self.path = path
         self.columns = columns
         self.rows = 0
         self.schema = arrow_schema(columns)
-        self._writer = pq.ParquetWriter(path, self.schema, compression="snappy")
+        self._handle = handle
+        self._writer = pq.ParquetWriter(handle, self.schema, compression="snappy")
 
     def append(self, frame: pd.DataFrame) -> None:
         if frame.empty:
@@ -103,6 +120,7 @@ class ParquetTable:
 
     def close(self) -> None:
         self._writer.close()
+        self._handle.close()
 
 
 def _excel_value(value: Any) -> Any:
@@ -120,10 +138,11 @@ def _excel_value(value: Any) -> Any:
 class ExcelTable:
     """An .xlsx workbook written in openpyxl's write-only mode: sheet ``data``, then sheet ``dictionary``."""
 
-    def __init__(self, path: Path, columns: list[Column]):
+    def __init__(self, path: Path, columns: list[Column], handle: IO[bytes]):
         from openpyxl import Workbook
 
         self.path = path
+        self._handle = handle
         self.columns = columns
         self.rows = 0
         self._book = Workbook(write_only=True)
@@ -150,21 +169,18 @@ class ExcelTable:
             sheet.append(list(dictionary.columns))
             for row in dictionary.astype(object).itertuples(index=False, name=None):
                 sheet.append([_excel_value(v) for v in row])
-        with tempfile.NamedTemporaryFile(suffix=".xlsx", dir=self.path.parent, delete=False) as handle:
-            raw = Path(handle.name)
-        try:
+        with self._handle, tempfile.TemporaryFile(dir=self.path.parent) as raw:  # nameless: nothing to plant
             self._book.save(raw)
-            fix_zip_times(raw, self.path)
-        finally:
-            raw.unlink(missing_ok=True)
+            raw.seek(0)
+            fix_zip_times(raw, self._handle)
 
 
 _CORE_DATES = re.compile(rb"(<dcterms:(created|modified)[^>]*>)[^<]*(</dcterms:\2>)")
 
 
-def fix_zip_times(source: Path, target: Path) -> None:
-    """Copy the zip archive ``source`` to ``target`` entry by entry with fixed times, and fixed document
-    dates in ``docProps/core.xml``, streaming each entry (bounded memory)."""
+def fix_zip_times(source: Path | IO[bytes], target: Path | IO[bytes]) -> None:
+    """Copy the zip archive ``source`` to ``target`` (paths or open binary files) entry by entry with fixed
+    times, and fixed document dates in ``docProps/core.xml``, streaming each entry (bounded memory)."""
     stamp = FIXED_DOCUMENT_TIME.strftime("%Y-%m-%dT%H:%M:%SZ").encode()
     with zipfile.ZipFile(source) as zin, zipfile.ZipFile(target, "w", zipfile.ZIP_DEFLATED) as zout:
         for entry in zin.infolist():
@@ -179,20 +195,23 @@ def fix_zip_times(source: Path, target: Path) -> None:
                 shutil.copyfileobj(src, dst, COPY_BLOCK_BYTES)
 
 
-def write_dictionary_csv(path: Path, dictionary: pd.DataFrame) -> None:
-    """The data dictionary as UTF-8 CSV (text neutralised as in the data file)."""
+def write_dictionary_csv(handle: IO[bytes], dictionary: pd.DataFrame) -> None:
+    """The data dictionary as UTF-8 CSV (text neutralised as in the data file), into the open ``handle``."""
     safe = dictionary.map(neutralise_text)
-    with open(path, "w", encoding="utf-8", newline="") as handle:
-        safe.to_csv(handle, index=False, lineterminator=CSV_LINE_END)
+    with io.TextIOWrapper(handle, encoding="utf-8", newline="") as text:
+        safe.to_csv(text, index=False, lineterminator=CSV_LINE_END)
 
 
-def open_table(file_format: str, path: Path, columns: list[Column]) -> CsvTable | ParquetTable | ExcelTable:
+def open_table(
+    file_format: str, path: Path, columns: list[Column], handle: IO[bytes]
+) -> CsvTable | ParquetTable | ExcelTable:
+    """A table writer for ``file_format`` writing into ``handle``, the open file at ``path``."""
     if file_format == "csv":
-        return CsvTable(path, columns)
+        return CsvTable(path, columns, handle)
     if file_format == "parquet":
-        return ParquetTable(path, columns)
+        return ParquetTable(path, columns, handle)
     if file_format == "xlsx":
-        return ExcelTable(path, columns)
+        return ExcelTable(path, columns, handle)
     raise TrackerError(f"Unknown export format {file_format!r}; choose one of {', '.join(FORMATS)}.")
 
 
@@ -208,7 +227,8 @@ def output_paths(out: Path | str | None, level: str, file_format: str) -> dict[s
     """Where the files go: ``out`` is a folder (existing, or given as text ending with a separator) or a file
     stem (a ``.csv``, ``.parquet`` or ``.xlsx`` suffix is dropped).
 
-    Returns ``{"data": …, "dictionary": … (CSV and Parquet only), "manifest": …}``.
+    Returns ``{"data": …, "dictionary": … (CSV and Parquet only), "manifest": …}`` as absolute paths, so that
+    messages say where the files went.
     """
     default_stem = f"ncs-export-{level}"
     if out is None:
@@ -219,7 +239,7 @@ def output_paths(out: Path | str | None, level: str, file_format: str) -> dict[s
         out = Path(out)
         stem = out.with_suffix("") if out.suffix.lower() in (".csv", ".parquet", ".xlsx") else out
     # Sidecars carry the data file's full name, so exports of one level in two formats can share a folder.
-    data = stem.with_name(f"{stem.name}.{file_format}")
+    data = stem.absolute().with_name(f"{stem.name}.{file_format}")
     paths = {"data": data}
     if file_format != "xlsx":
         paths["dictionary"] = data.with_name(f"{data.name}.dictionary.csv")

@@ -13,11 +13,12 @@ the columns and their meanings are in :mod:`tracker.services.export.columns`; th
 from __future__ import annotations
 
 import json
+import os
 import platform
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import IO, Any
 
 import openpyxl
 import pandas as pd
@@ -34,6 +35,7 @@ from tracker.services.export.files import (
     ExcelTable,
     open_table,
     output_paths,
+    private_file,
     sha256_of,
     write_dictionary_csv,
 )
@@ -91,15 +93,22 @@ def write_export(
     writes nothing at all.
     """
     paths = output_paths(out, options.level, file_format)
-    existing = [p for p in paths.values() if p.exists()]
+    existing = [p for p in paths.values() if os.path.lexists(p)]  # a link of that name, dangling or not, too
     if existing and not overwrite:
         raise TrackerError(f"{existing[0]} already exists; choose another --out or add --overwrite.")
     plan = prepare(session, options, username=username)
     for path in paths.values():
         path.parent.mkdir(parents=True, exist_ok=True)
-    partial = {role: path.with_name(path.name + ".partial") for role, path in paths.items()}
+    partial: dict[str, Path] = {}
+
+    def create(role: str) -> IO[bytes]:
+        """A temporary file for ``role``, created exclusively beside its final name, mode 0600."""
+        partial[role], handle = private_file(paths[role])
+        return handle
+
     try:
-        table = open_table(file_format, partial["data"], plan.columns)
+        handle = create("data")
+        table = open_table(file_format, partial["data"], plan.columns, handle)
         try:
             for frame in plan.frames(session, progress):
                 table.append(frame)
@@ -111,10 +120,11 @@ def write_export(
                 table.close()
         written = [_file("data", partial["data"], paths["data"], table.rows)]
         if "dictionary" in paths:
-            write_dictionary_csv(partial["dictionary"], dictionary)
+            write_dictionary_csv(create("dictionary"), dictionary)
             written.append(_file("dictionary", partial["dictionary"], paths["dictionary"], len(dictionary)))
         manifest = build_manifest(plan, file_format, written)
-        partial["manifest"].write_text(json.dumps(manifest, indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
+        with create("manifest") as handle:
+            handle.write((json.dumps(manifest, indent=2, ensure_ascii=False) + "\n").encode("utf-8"))
         _audit(session, plan, file_format, written, username)
         for role, path in paths.items():
             partial[role].replace(path)
