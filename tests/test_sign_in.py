@@ -340,8 +340,6 @@ def test_viewer_and_coordinator_cannot_change_settings(url):
         assert database_fingerprint(url) == before, name
 
 
-@pytest.mark.xfail(strict=True, reason="views/settings.py writes with the clinical permission: a clinician "
-                   "can choose the default limits, which the command line keeps for an administrator")
 def test_clinician_cannot_choose_the_default_limits_on_the_dashboard(url):
     at = signed_in("clinician-invented")
     at.switch_page("views/settings.py").run()

@@ -21,6 +21,7 @@ from tracker import CAUTION
 from tracker.config import ENV_DB, ENV_SIGN_IN
 from tracker.dashboard import style
 from tracker.errors import TrackerError
+from tracker.services import input_limits
 
 APP = Path(__file__).resolve().parent / "dashboard" / "app.py"
 
@@ -45,6 +46,8 @@ def streamlit_command(host: str, port: int) -> list[str]:
         "--server.address", host, "--server.port", str(port), "--server.headless", "true",
         "--browser.gatherUsageStats", "false", "--client.showErrorDetails", "none", "--client.toolbarMode", "minimal",
         "--server.fileWatcherType", "none", "--server.runOnSave", "false",
+        # Uploads larger than an import accepts are refused by the browser side, not held in memory first.
+        "--server.maxUploadSize", str(max(1, input_limits.from_environment().file_bytes // input_limits.MB)),
         "--theme.base", "light", "--theme.primaryColor", style.ACCENT, "--theme.textColor", style.INK,
         "--theme.secondaryBackgroundColor", style.PAPER,
     ]

@@ -27,7 +27,7 @@ from tracker.db.session import make_engine, make_session_factory
 from tracker.errors import TrackerError
 from tracker.serving import is_loopback
 from tracker.services.access import accounts
-from tracker.services.access.permissions import Actor, NotPermitted
+from tracker.services.access.permissions import PERMISSION_WORDS, PRIVILEGED, Actor, NotPermitted
 
 log = logging.getLogger("ncs_tracker.dashboard")
 
@@ -145,7 +145,12 @@ def require(permission: str) -> Actor:
     current = actor()
     if current is None:
         raise NotPermitted("Please sign in.")
-    return current.require(permission)
+    current.require(permission)
+    if permission in PRIVILEGED and not current.single_user and not current.authenticated:
+        # As on the command line, a privileged change needs the account's password: here, a sign-in.
+        raise NotPermitted(f"To {PERMISSION_WORDS[permission]} here, start the dashboard with sign-in "
+                           "(ncs-tracker serve --sign-in) and sign in with your password.")
+    return current
 
 
 def may(permission: str) -> bool:
