@@ -25,13 +25,17 @@ def fill_demo(url: str) -> None:
         engine.dispose()
 
 
-def demo_csv_rows(patient: str, visit_date: str, nerve: str, side: str, modality: str) -> list[dict[str, str]]:
+def demo_csv_rows(
+    patient: str, visit_date: str, nerve: str, side: str, modality: str
+) -> list[dict[str, str]]:
     """The demo file's rows of one nerve test (invented data), as text cells."""
     import csv
 
     path: Path = demo_data_dir() / "measurements.csv"
     with path.open(encoding="utf-8") as handle:
         return [
-            row for row in csv.DictReader(handle)
-            if (row["patient"], row["visit_date"], row["nerve"], row["side"], row["modality"]) == (patient, visit_date, nerve, side, modality)
+            row
+            for row in csv.DictReader(handle)
+            if (row["patient"], row["visit_date"], row["nerve"], row["side"], row["modality"])
+            == (patient, visit_date, nerve, side, modality)
         ]

@@ -1,5 +1,6 @@
-"""The paged patient list (Patients page) is the whole list cut by the database: same rows, same order, same
-counts and outcomes as :func:`tracker.services.cohort.patient_list`, on both backends (demo clinic, invented)."""
+"""The paged patient list (Patients page) is the whole list cut by the database: same
+rows, same order, same counts and outcomes as :func:`tracker.services.cohort.patient_list`,
+on both backends (demo clinic, invented)."""
 
 from __future__ import annotations
 
@@ -22,7 +23,9 @@ def demo_url(db_url, capsys) -> str:
 
 def _text(frame):
     """Rows as text; a missing value is missing however pandas holds it (None or NaN)."""
-    frame = frame.drop(columns=["latest_criteria"], errors="ignore")  # the page also names the set that judged
+    frame = frame.drop(
+        columns=["latest_criteria"], errors="ignore"
+    )  # the page also names the set that judged
     return [["" if v is None or v != v else str(v) for v in row] for row in frame.itertuples(index=False)]
 
 
@@ -33,26 +36,47 @@ def test_pages_join_up_to_the_whole_list(demo_url, criteria):
         with make_session_factory(engine)() as session:
             for search, diagnosis in (("", None), ("demo-0", None), ("", "cidp"), ("05", None)):
                 whole = patient_list(session, criteria=criteria, search=search, diagnosis=diagnosis)
-                first = patient_page(session, criteria=criteria, search=search, diagnosis=diagnosis, page=1, page_rows=2)
+                first = patient_page(
+                    session, criteria=criteria, search=search, diagnosis=diagnosis, page=1, page_rows=2
+                )
                 assert first.total == len(whole) and first.outcomes == sorted(set(whole["latest_outcome"]))
                 rows = []
                 for page in range(1, -(-len(whole) // 2) + 1):
-                    rows += _text(patient_page(session, criteria=criteria, search=search, diagnosis=diagnosis, page=page, page_rows=2).rows)
+                    rows += _text(
+                        patient_page(
+                            session,
+                            criteria=criteria,
+                            search=search,
+                            diagnosis=diagnosis,
+                            page=page,
+                            page_rows=2,
+                        ).rows
+                    )
                 assert rows == _text(whole)
                 for outcome in first.outcomes:
-                    chosen = patient_page(session, criteria=criteria, search=search, diagnosis=diagnosis, outcome=outcome, page_rows=50)
+                    chosen = patient_page(
+                        session,
+                        criteria=criteria,
+                        search=search,
+                        diagnosis=diagnosis,
+                        outcome=outcome,
+                        page_rows=50,
+                    )
                     assert _text(chosen.rows) == _text(whole[whole["latest_outcome"] == outcome])
                     assert chosen.total == int((whole["latest_outcome"] == outcome).sum())
-            # Saved outcomes exist for the two checked patients, and the rest are "not evaluated", never normal.
-            everyone = patient_page(session, criteria=criteria, page_rows=50).rows.set_index("patient")["latest_outcome"]
+            # Saved outcomes exist for the two checked patients, and the rest are
+            # "not evaluated", never normal.
+            everyone = patient_page(session, criteria=criteria, page_rows=50).rows.set_index("patient")[
+                "latest_outcome"
+            ]
             assert everyone["DEMO-01"] == "not evaluated" and everyone["DEMO-02"] != "not evaluated"
     finally:
         engine.dispose()
 
 
 def test_by_diagnosis_judges_each_patient_by_the_set_of_its_diagnosis(demo_url):
-    """The outcome column "by diagnosis" uses the mapping of check and evaluate (MMN → the MMN set, CIDP → EAN/PNS
-    2021, GBS → Hadden 1998): each row equals the whole list of that patient's own set."""
+    """The outcome column "by diagnosis" uses the mapping of check and evaluate (MMN → the MMN set,
+    CIDP → EAN/PNS 2021, GBS → Hadden 1998): each row equals the whole list of that patient's own set."""
     from tracker.services.evaluation import default_criteria
 
     engine = make_engine(demo_url)

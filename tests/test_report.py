@@ -88,16 +88,30 @@ def test_pdf_report_names_code_caution_outcome_and_classification(demo_db, sessi
 
 def test_report_shows_the_deciding_findings_of_a_chosen_criteria_set(demo_db, reports, capsys):
     out = reports / "baseline.html"
-    code, _, err = run_cli(capsys, "--db", demo_db, "report", "DEMO-01", "--visit", "2023-02-14", "--criteria", "efns-pns-2010-cidp",
-                           "--out", str(out))
+    code, _, err = run_cli(
+        capsys,
+        "--db",
+        demo_db,
+        "report",
+        "DEMO-01",
+        "--visit",
+        "2023-02-14",
+        "--criteria",
+        "efns-pns-2010-cidp",
+        "--out",
+        str(out),
+    )
     assert code == 0, err
     text = html_text(out.read_bytes())
-    # EFNS/PNS 2010 CIDP guideline (Van den Bergh PYK et al., Eur J Neurol 2010;17:356–363): distal latency
-    # ≥ 150 % of the ULN in ≥ 2 nerves is "definite"; median ULN 4.4 ms (Preston & Shapiro appendix) gives
-    # 6.6 ms, and the invented demo cell of that visit is 7.05 ms (hand-checked in tests/test_demo_outcomes.py).
+    # EFNS/PNS 2010 CIDP guideline (Van den Bergh PYK et al., Eur J Neurol 2010;17:356–363):
+    # distal latency ≥ 150 % of the ULN in ≥ 2 nerves is "definite"; median ULN 4.4 ms (Preston
+    # & Shapiro appendix) gives 6.6 ms, and the invented demo cell of that visit is 7.05 ms
+    # (hand-checked in tests/test_demo_outcomes.py).
     assert "Outcome: DEFINITE" in text
     assert "Rule: (a) distal latency in ≥ 2 nerves" in text
-    assert re.search(r"median right motor distal latency 7\.05 ms 150 % of ULN 4\.4 ≥ 6\.6 ms ● met", text), text[:3000]
+    assert re.search(r"median right motor distal latency 7\.05 ms 150 % of ULN 4\.4 ≥ 6\.6 ms ● met", text), (
+        text[:3000]
+    )
     assert "Van den Bergh" in text
 
 
@@ -184,12 +198,18 @@ def test_only_the_stamp_differs_between_two_moments(demo_db, sessions):
         content = report.build(session, "DEMO-02")
     one = dt.datetime(2026, 1, 1, 8, 0, tzinfo=dt.timezone.utc)
     two = dt.datetime(2026, 3, 4, 9, 30, tzinfo=dt.timezone.utc)
-    html_one, html_two = report.render(content, "html", created=one), report.render(content, "html", created=two)
+    html_one, html_two = (
+        report.render(content, "html", created=one),
+        report.render(content, "html", created=two),
+    )
     assert html_one != html_two
     assert html_one.replace(b"2026-01-01 08:00", b"STAMP") == html_two.replace(b"2026-03-04 09:30", b"STAMP")
     pdf_one, pdf_two = report.render(content, "pdf", created=one), report.render(content, "pdf", created=two)
     assert pdf_one != pdf_two
-    texts = [flat(" ".join(p.extract_text() for p in pypdf.PdfReader(io.BytesIO(b)).pages)) for b in (pdf_one, pdf_two)]
+    texts = [
+        flat(" ".join(p.extract_text() for p in pypdf.PdfReader(io.BytesIO(b)).pages))
+        for b in (pdf_one, pdf_two)
+    ]
     assert texts[0].replace("2026-01-01 08:00", "STAMP") == texts[1].replace("2026-03-04 09:30", "STAMP")
 
 
@@ -212,7 +232,11 @@ def test_identifiers_stay_out_of_the_report(demo_db, sessions):
     from tracker import report
 
     # Invented identifiers, attached to an invented demo patient for this test only.
-    invented = {"record_number": "MRN-INVENTED-5521", "full_name": "Ottoline Quarrington-Vey", "birth_date": dt.date(1957, 8, 19)}
+    invented = {
+        "record_number": "MRN-INVENTED-5521",
+        "full_name": "Ottoline Quarrington-Vey",
+        "birth_date": dt.date(1957, 8, 19),
+    }
     with sessions.begin() as session:
         patient = session.scalar(select(Patient).where(Patient.code == "DEMO-02"))
         session.add(PatientIdentity(patient_id=patient.id, **invented))
@@ -220,7 +244,12 @@ def test_identifiers_stay_out_of_the_report(demo_db, sessions):
         content = report.build(session, "DEMO-02")
     stamp = dt.datetime(2026, 1, 1, tzinfo=dt.timezone.utc)
     text = html_text(report.render(content, "html", created=stamp))
-    pdf = flat(" ".join(p.extract_text() for p in pypdf.PdfReader(io.BytesIO(report.render(content, "pdf", created=stamp))).pages))
+    pdf = flat(
+        " ".join(
+            p.extract_text()
+            for p in pypdf.PdfReader(io.BytesIO(report.render(content, "pdf", created=stamp))).pages
+        )
+    )
     for shown in (text, pdf):
         assert "DEMO-02" in shown
         for value in ("MRN-INVENTED-5521", "Ottoline", "Quarrington", "1957-08-19", "19.08.1957"):
@@ -265,17 +294,32 @@ def test_visit_review_offers_the_pdf_of_the_chosen_visit(dashboard_db, monkeypat
     assert button.proto.url.endswith(".pdf") and button.proto.url != first  # another visit, another file
 
 
-def test_dashboard_pdf_is_the_command_line_pdf_and_saves_nothing(dashboard_db, engine, reports, capsys, monkeypatch):
+def test_dashboard_pdf_is_the_command_line_pdf_and_saves_nothing(
+    dashboard_db, engine, reports, capsys, monkeypatch
+):
     from conftest import fingerprint
     from tracker.dashboard import reads
 
     monkeypatch.setenv("NCS_TRACKER_DB", dashboard_db)
     monkeypatch.setenv("SOURCE_DATE_EPOCH", FIXED_EPOCH)
     before = fingerprint(engine)
-    served = reads.report_pdf(dashboard_db, "DEMO-01", dt.date(2023, 2, 14), ("efns-pns-2010-cidp",), None, "warn")
+    served = reads.report_pdf(
+        dashboard_db, "DEMO-01", dt.date(2023, 2, 14), ("efns-pns-2010-cidp",), None, "warn"
+    )
     assert fingerprint(engine) == before
     out = reports / "cli.pdf"
-    code, _, err = run_cli(capsys, "--db", dashboard_db, "report", "DEMO-01", "--visit", "2023-02-14", "--criteria", "efns-pns-2010-cidp",
-                           "--out", str(out))
+    code, _, err = run_cli(
+        capsys,
+        "--db",
+        dashboard_db,
+        "report",
+        "DEMO-01",
+        "--visit",
+        "2023-02-14",
+        "--criteria",
+        "efns-pns-2010-cidp",
+        "--out",
+        str(out),
+    )
     assert code == 0, err
     assert served == out.read_bytes()

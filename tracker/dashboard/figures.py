@@ -1,8 +1,8 @@
 """Plotly figures as pure functions of service results (testable without Streamlit).
 
-Every trace carries ``meta = {"panel": …, "kind": …}`` (kind: ``measured``, ``normal limit``,
-``criteria threshold``, ``change beyond SDC``, ``score``, ``mic band``, ``baseline``, ``outcome``) so that tests
-and readers can find what a line stands for. Treatment spans are layout shapes named ``regimen: <words>``.
+Every trace carries ``meta = {"panel": …, "kind": …}`` (kind: ``measured``, ``normal limit``, ``criteria
+threshold``, ``change beyond SDC``, ``score``, ``mic band``, ``baseline``, ``outcome``) so that tests and
+readers can find what a line stands for. Treatment spans are layout shapes named ``regimen: <words>``.
 """
 
 from __future__ import annotations
@@ -20,8 +20,13 @@ from tracker.response.regimens import Regimen
 from tracker.services.follow_up import FollowUp
 from tracker.services.response import ResponseView
 
-OUTCOME_SYMBOLS = {"positive": "triangle-up", "other finding": "diamond", "negative": "circle-open", "not evaluable": "square-open",
-                   "undecided": "diamond-open"}
+OUTCOME_SYMBOLS = {
+    "positive": "triangle-up",
+    "other finding": "diamond",
+    "negative": "circle-open",
+    "not evaluable": "square-open",
+    "undecided": "diamond-open",
+}
 SCALE_PAD = 0.05  # share of a scale's range added above and below, so points at its ends stay visible
 
 
@@ -47,7 +52,13 @@ def _temperature_text(row) -> str:
     return text
 
 
-def trend_figure(fu: FollowUp, *, regimens: list[Regimen] | None = None, steps: pd.DataFrame | None = None, columns: int = 2) -> go.Figure:
+def trend_figure(
+    fu: FollowUp,
+    *,
+    regimens: list[Regimen] | None = None,
+    steps: pd.DataFrame | None = None,
+    columns: int = 2,
+) -> go.Figure:
     """Small multiples, one panel per nerve and side: the chosen parameter over visit dates, with the normal
     limit (dashed) and the chosen criteria set's threshold (dotted) drawn on every panel, and treatment
     periods shaded across all panels — one span per regimen when ``regimens`` are given (the response
@@ -61,13 +72,21 @@ def trend_figure(fu: FollowUp, *, regimens: list[Regimen] | None = None, steps: 
     unit = fu.parameter.unit
     if not panels:
         figure = go.Figure()
-        figure.update_layout(title=f"No {fu.parameter.label.lower()} recorded for {fu.patient}", template="plotly_white", height=240)
+        figure.update_layout(
+            title=f"No {fu.parameter.label.lower()} recorded for {fu.patient}",
+            template="plotly_white",
+            height=240,
+        )
         return figure
     columns = max(1, min(columns, len(panels)))
     rows = math.ceil(len(panels) / columns)
     figure = make_subplots(
-        rows=rows, cols=columns, subplot_titles=[p.capitalize() for p in panels], shared_xaxes="all",
-        vertical_spacing=min(0.12, 0.5 / rows), horizontal_spacing=0.07,
+        rows=rows,
+        cols=columns,
+        subplot_titles=[p.capitalize() for p in panels],
+        shared_xaxes="all",
+        vertical_spacing=min(0.12, 0.5 / rows),
+        horizontal_spacing=0.07,
     )
     series_colour: dict[str, str] = {}
     shown_in_legend: set[str] = set()
@@ -85,40 +104,82 @@ def trend_figure(fu: FollowUp, *, regimens: list[Regimen] | None = None, steps: 
                 if step is not None:
                     beyond.setdefault(step["verdict"], []).append((d, float(v), step["words"]))
                 change = f"<br>{step['words']}" if step is not None else ""
-                custom.append([d.isoformat(), f"{v:.{PRECISION.get(unit, 2)}f}", unit, _temperature_text(r), segment_words(series), r.note or "", change])
+                custom.append(
+                    [
+                        d.isoformat(),
+                        f"{v:.{PRECISION.get(unit, 2)}f}",
+                        unit,
+                        _temperature_text(r),
+                        segment_words(series),
+                        r.note or "",
+                        change,
+                    ]
+                )
             figure.add_trace(
                 go.Scatter(
-                    x=list(plotted["visit_date"]), y=[float(v) for v in plotted["value"]], mode="lines+markers", name=segment_words(series),
-                    legendgroup=str(series), showlegend=series not in shown_in_legend,
+                    x=list(plotted["visit_date"]),
+                    y=[float(v) for v in plotted["value"]],
+                    mode="lines+markers",
+                    name=segment_words(series),
+                    legendgroup=str(series),
+                    showlegend=series not in shown_in_legend,
                     line={"color": colour, "width": 2},
-                    marker={"size": 9, "color": colour, "symbol": ["circle-open-dot" if c else "circle" for c in plotted["cold"]], "line": {"width": 2, "color": colour}},
+                    marker={
+                        "size": 9,
+                        "color": colour,
+                        "symbol": ["circle-open-dot" if c else "circle" for c in plotted["cold"]],
+                        "line": {"width": 2, "color": colour},
+                    },
                     customdata=custom,
-                    hovertemplate="<b>%{customdata[0]}</b><br>%{customdata[4]}: %{customdata[1]} %{customdata[2]}<br>%{customdata[3]}%{customdata[6]}<extra>" + panel + "</extra>",
+                    hovertemplate=(
+                        "<b>%{customdata[0]}</b><br>%{customdata[4]}: %{customdata[1]} "
+                        "%{customdata[2]}<br>%{customdata[3]}%{customdata[6]}<extra>"
+                    )
+                    + panel
+                    + "</extra>",
                     meta={"panel": panel, "kind": "measured", "series": str(series)},
                 ),
-                row=row, col=col,
+                row=row,
+                col=col,
             )
             shown_in_legend.add(series)
         for verdict, marks in sorted(beyond.items()):
             symbol, colour = style.SDC_MARKERS[verdict]
             figure.add_trace(
                 go.Scatter(
-                    x=[m[0] for m in marks], y=[m[1] for m in marks], mode="markers", name=SDC_STEP_LABELS[verdict],
-                    legendgroup=f"sdc-{verdict}", showlegend=f"sdc-{verdict}" not in shown_in_legend,
-                    marker={"symbol": symbol, "size": 19, "color": colour, "line": {"width": 2.4, "color": colour}},
-                    customdata=[m[2] for m in marks], hovertemplate="%{x|%Y-%m-%d}<br>%{customdata}<extra>" + panel + "</extra>",
+                    x=[m[0] for m in marks],
+                    y=[m[1] for m in marks],
+                    mode="markers",
+                    name=SDC_STEP_LABELS[verdict],
+                    legendgroup=f"sdc-{verdict}",
+                    showlegend=f"sdc-{verdict}" not in shown_in_legend,
+                    marker={
+                        "symbol": symbol,
+                        "size": 19,
+                        "color": colour,
+                        "line": {"width": 2.4, "color": colour},
+                    },
+                    customdata=[m[2] for m in marks],
+                    hovertemplate="%{x|%Y-%m-%d}<br>%{customdata}<extra>" + panel + "</extra>",
                     meta={"panel": panel, "kind": "change beyond SDC", "verdict": verdict},
                 ),
-                row=row, col=col,
+                row=row,
+                col=col,
             )
             shown_in_legend.add(f"sdc-{verdict}")
-        for kind, dash, colour in (("normal limit", "dash", style.LIMIT_COLOUR), ("criteria threshold", "dot", style.THRESHOLD_COLOUR)):
-            lines = references[(references["panel"] == panel) & (references["kind"] == kind)].sort_values("visit_date")
+        for kind, dash, colour in (
+            ("normal limit", "dash", style.LIMIT_COLOUR),
+            ("criteria threshold", "dot", style.THRESHOLD_COLOUR),
+        ):
+            lines = references[(references["panel"] == panel) & (references["kind"] == kind)].sort_values(
+                "visit_date"
+            )
             if lines.empty:
                 continue
             first = lines.iloc[0]
             name = (
-                f"{first['label']} (normal limit)" if kind == "normal limit"
+                f"{first['label']} (normal limit)"
+                if kind == "normal limit"
                 else f"{criteria_title(fu.criteria)}: {first['label']}"
             )
             x, y = list(lines["visit_date"]), [float(v) for v in lines["value"]]
@@ -126,12 +187,18 @@ def trend_figure(fu: FollowUp, *, regimens: list[Regimen] | None = None, steps: 
                 x, y = [x[0] - dt.timedelta(days=20), x[0] + dt.timedelta(days=20)], y * 2
             figure.add_trace(
                 go.Scatter(
-                    x=x, y=y, mode="lines", line={"color": colour, "dash": dash, "width": 1.6, "shape": "hv"}, name=name,
-                    legendgroup=kind, showlegend=kind not in shown_in_legend,
+                    x=x,
+                    y=y,
+                    mode="lines",
+                    line={"color": colour, "dash": dash, "width": 1.6, "shape": "hv"},
+                    name=name,
+                    legendgroup=kind,
+                    showlegend=kind not in shown_in_legend,
                     hovertemplate=f"{name}: %{{y:.2f}} {unit}<extra>{panel}</extra>",
                     meta={"panel": panel, "kind": kind},
                 ),
-                row=row, col=col,
+                row=row,
+                col=col,
             )
             shown_in_legend.add(kind)
         figure.update_yaxes(title_text=unit, row=row, col=col, gridcolor=style.GRID)
@@ -141,11 +208,25 @@ def trend_figure(fu: FollowUp, *, regimens: list[Regimen] | None = None, steps: 
     figure.update_xaxes(range=list(window) if window else None, gridcolor=style.GRID, type="date")
     treatments = len(spans)
     figure.update_layout(
-        template="plotly_white", height=250 * rows + 150 + 14 * min(treatments, 3), font={"color": style.INK}, hovermode="closest",
+        template="plotly_white",
+        height=250 * rows + 150 + 14 * min(treatments, 3),
+        font={"color": style.INK},
+        hovermode="closest",
         margin={"l": 50, "r": 20, "t": 120, "b": 50 + 14 * min(treatments, 3)},
-        title={"text": f"{fu.parameter.label} ({unit})", "x": 0, "y": 0.995, "yanchor": "top", "font": {"size": 14}},
+        title={
+            "text": f"{fu.parameter.label} ({unit})",
+            "x": 0,
+            "y": 0.995,
+            "yanchor": "top",
+            "font": {"size": 14},
+        },
         legend={"orientation": "h", "yanchor": "bottom", "y": 1.0 + 60 / (250 * rows), "x": 0},
-        meta={"patient": fu.patient, "parameter": fu.parameter.key, "criteria": fu.criteria, "label": fu.parameter.label},
+        meta={
+            "patient": fu.patient,
+            "parameter": fu.parameter.key,
+            "criteria": fu.criteria,
+            "label": fu.parameter.label,
+        },
     )
     return figure
 
@@ -160,9 +241,11 @@ def _steps_by_point(steps: pd.DataFrame | None, parameter: str) -> dict[tuple, l
     return out
 
 
-def _step_of(step_of: dict[tuple, list[dict]], panel: str, series: str, day: dt.date, value: float) -> dict | None:
-    """The step of a plotted point: same panel, day (and segment where it has one), and the same value — a mark
-    never lands on a number the change was not computed from."""
+def _step_of(
+    step_of: dict[tuple, list[dict]], panel: str, series: str, day: dt.date, value: float
+) -> dict | None:
+    """The step of a plotted point: same panel, day (and segment where it has one), and the same value — a
+    mark never lands on a number the change was not computed from."""
     for step in step_of.get((panel, series, day), []) + step_of.get((panel, None, day), []):
         if step["value"] is not None and abs(float(step["value"]) - value) <= 1e-6 * max(1.0, abs(value)):
             return step
@@ -172,14 +255,20 @@ def _step_of(step_of: dict[tuple, list[dict]], panel: str, series: str, day: dt.
 def _treatment_spans(fu: FollowUp, window) -> list[tuple[dt.date, dt.date, str]]:
     spans = []
     for t in fu.treatments.itertuples():
-        end = t.end_date if t.end_date is not None and not pd.isna(t.end_date) else (window[1] if window else t.start_date)
+        end = (
+            t.end_date
+            if t.end_date is not None and not pd.isna(t.end_date)
+            else (window[1] if window else t.start_date)
+        )
         spans.append((t.start_date, end, t.label))
     return spans
 
 
 def _regimen_spans(regimens: list[Regimen], window) -> list[tuple[dt.date, dt.date, str]]:
     """(start, end, words) per regimen; a running regimen reaches the end of the time axis."""
-    return [(r.start_date, r.end_date or (window[1] if window else r.start_date), r.label()) for r in regimens]
+    return [
+        (r.start_date, r.end_date or (window[1] if window else r.start_date), r.label()) for r in regimens
+    ]
 
 
 def _shade(figure: go.Figure, spans: list[tuple[dt.date, dt.date, str]]) -> None:
@@ -189,18 +278,34 @@ def _shade(figure: go.Figure, spans: list[tuple[dt.date, dt.date, str]]) -> None
         if end <= start:
             end = start + dt.timedelta(days=1)
         figure.add_vrect(
-            x0=start, x1=end, fillcolor=style.REGIMEN_FILLS[number % len(style.REGIMEN_FILLS)], line_width=0, layer="below",
-            row="all", col="all", name=f"regimen: {label}",
+            x0=start,
+            x1=end,
+            fillcolor=style.REGIMEN_FILLS[number % len(style.REGIMEN_FILLS)],
+            line_width=0,
+            layer="below",
+            row="all",
+            col="all",
+            name=f"regimen: {label}",
         )
         figure.add_annotation(
-            x=start, y=0, xref="x", yref="paper", text=f"▸ {label}", showarrow=False, xanchor="left", yanchor="top",
-            font={"size": 10, "color": style.ACCENT}, yshift=-24 - 13 * (number % 3),
+            x=start,
+            y=0,
+            xref="x",
+            yref="paper",
+            text=f"▸ {label}",
+            showarrow=False,
+            xanchor="left",
+            yanchor="top",
+            font={"size": 10, "color": style.ACCENT},
+            yshift=-24 - 13 * (number % 3),
         )
 
 
-def scores_figure(view: ResponseView, *, window: tuple[dt.date, dt.date] | None = None, columns: int = 3) -> go.Figure:
-    """Clinical scores, one panel per scale on its own scale range (``scales.csv``), titled with label, unit and
-    direction; for scales with a minimal important change, the band baseline ± MIC around the running
+def scores_figure(
+    view: ResponseView, *, window: tuple[dt.date, dt.date] | None = None, columns: int = 3
+) -> go.Figure:
+    """Clinical scores, one panel per scale on its own scale range (``scales.csv``), titled with label, unit
+    and direction; for scales with a minimal important change, the band baseline ± MIC around the running
     regimen's baseline; every regimen shaded and labelled, on the same time axis as the trends."""
     panels, scores = view.panels, view.points
     if panels.empty:
@@ -210,8 +315,12 @@ def scores_figure(view: ResponseView, *, window: tuple[dt.date, dt.date] | None 
     columns = max(1, min(columns, len(panels)))
     rows = math.ceil(len(panels) / columns)
     figure = make_subplots(
-        rows=rows, cols=columns, subplot_titles=list(panels["title"]), shared_xaxes="all",
-        vertical_spacing=min(0.16, 0.6 / rows), horizontal_spacing=0.06,
+        rows=rows,
+        cols=columns,
+        subplot_titles=list(panels["title"]),
+        shared_xaxes="all",
+        vertical_spacing=min(0.16, 0.6 / rows),
+        horizontal_spacing=0.06,
     )
     legend: set[str] = set()
     for index, panel in enumerate(panels.itertuples(index=False)):
@@ -220,38 +329,74 @@ def scores_figure(view: ResponseView, *, window: tuple[dt.date, dt.date] | None 
         unit = panel.unit if isinstance(panel.unit, str) else ""
         if pd.notna(panel.band_low):
             x0, x1 = panel.band_start, panel.band_end
-            band = f"minimal important change {panel.mic_words} around the regimen baseline {panel.baseline_value:g} ({panel.baseline_date.isoformat()})"
-            figure.add_trace(
-                go.Scatter(
-                    x=[x0, x1, x1, x0, x0], y=[panel.band_low, panel.band_low, panel.band_high, panel.band_high, panel.band_low],
-                    mode="lines", fill="toself", fillcolor=style.MIC_FILL, line={"width": 0}, hoveron="fills",
-                    name="± minimal important change around the regimen baseline", legendgroup="mic", showlegend="mic" not in legend,
-                    text=band + f"; source: {panel.mic_source}", hoverinfo="text",
-                    meta={"panel": panel.scale, "kind": "mic band", "baseline": float(panel.baseline_value)},
-                ),
-                row=row, col=col,
+            band = (
+                f"minimal important change {panel.mic_words} around the regimen baseline "
+                f"{panel.baseline_value:g} ({panel.baseline_date.isoformat()})"
             )
             figure.add_trace(
                 go.Scatter(
-                    x=[x0, x1], y=[panel.baseline_value] * 2, mode="lines", line={"color": style.LIMIT_COLOUR, "dash": "dot", "width": 1.4},
-                    name="regimen baseline", legendgroup="baseline", showlegend="baseline" not in legend,
-                    hovertemplate=f"regimen baseline {panel.baseline_value:g} {unit} ({panel.baseline_date.isoformat()})<extra>{panel.label}</extra>",
+                    x=[x0, x1, x1, x0, x0],
+                    y=[panel.band_low, panel.band_low, panel.band_high, panel.band_high, panel.band_low],
+                    mode="lines",
+                    fill="toself",
+                    fillcolor=style.MIC_FILL,
+                    line={"width": 0},
+                    hoveron="fills",
+                    name="± minimal important change around the regimen baseline",
+                    legendgroup="mic",
+                    showlegend="mic" not in legend,
+                    text=band + f"; source: {panel.mic_source}",
+                    hoverinfo="text",
+                    meta={"panel": panel.scale, "kind": "mic band", "baseline": float(panel.baseline_value)},
+                ),
+                row=row,
+                col=col,
+            )
+            figure.add_trace(
+                go.Scatter(
+                    x=[x0, x1],
+                    y=[panel.baseline_value] * 2,
+                    mode="lines",
+                    line={"color": style.LIMIT_COLOUR, "dash": "dot", "width": 1.4},
+                    name="regimen baseline",
+                    legendgroup="baseline",
+                    showlegend="baseline" not in legend,
+                    hovertemplate=(
+                        f"regimen baseline {panel.baseline_value:g} {unit} "
+                        f"({panel.baseline_date.isoformat()})<extra>{panel.label}</extra>"
+                    ),
                     meta={"panel": panel.scale, "kind": "baseline"},
                 ),
-                row=row, col=col,
+                row=row,
+                col=col,
             )
             legend.update({"mic", "baseline"})
         computed = group["computed"].astype(bool).tolist()
         figure.add_trace(
             go.Scatter(
-                x=list(group["date"]), y=[float(v) for v in group["value"]], mode="lines+markers", name=panel.label, showlegend=False,
+                x=list(group["date"]),
+                y=[float(v) for v in group["value"]],
+                mode="lines+markers",
+                name=panel.label,
+                showlegend=False,
                 line={"color": style.SCORE_COLOUR, "width": 2},
-                marker={"size": 8, "color": style.SCORE_COLOUR, "symbol": ["diamond-open" if c else "circle" for c in computed], "line": {"width": 2, "color": style.SCORE_COLOUR}},
-                customdata=[[unit, f" ({n})" if n else "", f"<br>{w}" if w else ""] for n, w in zip(group["note"], group["change_words"])],
-                hovertemplate="%{x|%Y-%m-%d}: %{y:g} %{customdata[0]}%{customdata[1]}%{customdata[2]}<extra>" + panel.label + "</extra>",
+                marker={
+                    "size": 8,
+                    "color": style.SCORE_COLOUR,
+                    "symbol": ["diamond-open" if c else "circle" for c in computed],
+                    "line": {"width": 2, "color": style.SCORE_COLOUR},
+                },
+                customdata=[
+                    [unit, f" ({n})" if n else "", f"<br>{w}" if w else ""]
+                    for n, w in zip(group["note"], group["change_words"])
+                ],
+                hovertemplate="%{x|%Y-%m-%d}: %{y:g} %{customdata[0]}%{customdata[1]}%{customdata[2]}<extra>"
+                + panel.label
+                + "</extra>",
                 meta={"panel": panel.scale, "kind": "score", "scale": panel.scale},
             ),
-            row=row, col=col,
+            row=row,
+            col=col,
         )
         if pd.notna(panel.minimum) and pd.notna(panel.maximum):
             pad = (panel.maximum - panel.minimum) * SCALE_PAD
@@ -259,10 +404,15 @@ def scores_figure(view: ResponseView, *, window: tuple[dt.date, dt.date] | None 
         figure.update_yaxes(gridcolor=style.GRID, row=row, col=col)
     _shade(figure, _regimen_spans(view.response.regimens, window))
     figure.update_xaxes(range=list(window) if window else None, type="date", gridcolor=style.GRID)
-    figure.update_annotations(font_size=11, selector={"yref": "paper", "showarrow": False, "xanchor": "center"})
+    figure.update_annotations(
+        font_size=11, selector={"yref": "paper", "showarrow": False, "xanchor": "center"}
+    )
     spans = len(view.response.regimens)
     figure.update_layout(
-        template="plotly_white", height=210 * rows + 110 + 14 * min(spans, 3), font={"color": style.INK}, hovermode="closest",
+        template="plotly_white",
+        height=210 * rows + 110 + 14 * min(spans, 3),
+        font={"color": style.INK},
+        hovermode="closest",
         margin={"l": 50, "r": 20, "t": 80, "b": 50 + 14 * min(spans, 3)},
         title={"text": "Clinical scores", "x": 0, "font": {"size": 14}},
         legend={"orientation": "h", "yanchor": "bottom", "y": 1.0 + 40 / (210 * rows), "x": 0.2},
@@ -275,23 +425,44 @@ def outcome_strip(fu: FollowUp) -> go.Figure:
     """Per visit, the outcome of each criteria set: a word, a shape and a colour."""
     figure = go.Figure()
     outcomes = fu.outcomes
-    groups = outcomes.assign(group=[style.outcome_group(o)[0] for o in outcomes["outcome"]]) if len(outcomes) else outcomes.assign(group=[])
+    groups = (
+        outcomes.assign(group=[style.outcome_group(o)[0] for o in outcomes["outcome"]])
+        if len(outcomes)
+        else outcomes.assign(group=[])
+    )
     for group_name, group in groups.groupby("group", sort=False):
         colour = style.OUTCOME_GROUPS[group_name][2]
         figure.add_trace(
             go.Scatter(
-                x=list(group["visit_date"]), y=[criteria_title(c) for c in group["criteria"]], mode="markers+text", name=group_name,
-                text=[outcome_label(o) for o in group["outcome"]], textposition="top center", textfont={"size": 10},
-                marker={"symbol": OUTCOME_SYMBOLS[group_name], "size": 12, "color": colour, "line": {"width": 2, "color": colour}},
-                hovertemplate="%{x|%Y-%m-%d} — %{y}: %{text}<extra></extra>", meta={"panel": "outcomes", "kind": "outcome"},
+                x=list(group["visit_date"]),
+                y=[criteria_title(c) for c in group["criteria"]],
+                mode="markers+text",
+                name=group_name,
+                text=[outcome_label(o) for o in group["outcome"]],
+                textposition="top center",
+                textfont={"size": 10},
+                marker={
+                    "symbol": OUTCOME_SYMBOLS[group_name],
+                    "size": 12,
+                    "color": colour,
+                    "line": {"width": 2, "color": colour},
+                },
+                hovertemplate="%{x|%Y-%m-%d} — %{y}: %{text}<extra></extra>",
+                meta={"panel": "outcomes", "kind": "outcome"},
             )
         )
     window = time_range(fu)
     figure.update_xaxes(range=list(window) if window else None, type="date", gridcolor=style.GRID)
-    figure.update_yaxes(categoryorder="array", categoryarray=[criteria_title(c) for c in sorted(set(outcomes["criteria"]), reverse=True)])
+    figure.update_yaxes(
+        categoryorder="array",
+        categoryarray=[criteria_title(c) for c in sorted(set(outcomes["criteria"]), reverse=True)],
+    )
     figure.update_layout(
-        template="plotly_white", height=90 + 42 * max(1, outcomes["criteria"].nunique()), margin={"l": 270, "r": 20, "t": 40, "b": 30},
-        title={"text": "Outcome of each criteria set per visit", "x": 0, "font": {"size": 14}}, legend={"orientation": "h", "y": -0.3},
+        template="plotly_white",
+        height=90 + 42 * max(1, outcomes["criteria"].nunique()),
+        margin={"l": 270, "r": 20, "t": 40, "b": 30},
+        title={"text": "Outcome of each criteria set per visit", "x": 0, "font": {"size": 14}},
+        legend={"orientation": "h", "y": -0.3},
     )
     return figure
 
@@ -310,14 +481,37 @@ def outcome_share_figure(shares: pd.DataFrame) -> go.Figure:
         word = outcome_label(outcome_value)
         figure.add_trace(
             go.Bar(
-                y=[criteria_title(c) for c in group["criteria"]], x=[float(v) for v in group["share_pct"]], orientation="h", name=group_name,
-                legendgroup=group_name, showlegend=group_name not in legend_shown, text=[word] * len(group), textposition="inside",
-                insidetextanchor="middle", textfont={"color": "white", "size": 11},
-                marker={"color": style.OUTCOME_GROUPS[group_name][2], "pattern": {"shape": patterns[group_name]}, "line": {"color": "white", "width": 1}},
-                customdata=list(group["visits"]), hovertemplate="%{y}: " + word + " %{x:.1f} % (%{customdata} visits)<extra></extra>",
-                meta={"panel": "cohort", "kind": "share", "outcome": str(outcome_value), "criteria": list(group["criteria"])},
+                y=[criteria_title(c) for c in group["criteria"]],
+                x=[float(v) for v in group["share_pct"]],
+                orientation="h",
+                name=group_name,
+                legendgroup=group_name,
+                showlegend=group_name not in legend_shown,
+                text=[word] * len(group),
+                textposition="inside",
+                insidetextanchor="middle",
+                textfont={"color": "white", "size": 11},
+                marker={
+                    "color": style.OUTCOME_GROUPS[group_name][2],
+                    "pattern": {"shape": patterns[group_name]},
+                    "line": {"color": "white", "width": 1},
+                },
+                customdata=list(group["visits"]),
+                hovertemplate="%{y}: " + word + " %{x:.1f} % (%{customdata} visits)<extra></extra>",
+                meta={
+                    "panel": "cohort",
+                    "kind": "share",
+                    "outcome": str(outcome_value),
+                    "criteria": list(group["criteria"]),
+                },
             )
         )
         legend_shown.add(group_name)
-    figure.update_layout(barmode="stack", template="plotly_white", height=120 + 40 * shares["criteria"].nunique(), xaxis_title="% of visits", margin={"l": 270, "r": 20, "t": 30, "b": 40})
+    figure.update_layout(
+        barmode="stack",
+        template="plotly_white",
+        height=120 + 40 * shares["criteria"].nunique(),
+        xaxis_title="% of visits",
+        margin={"l": 270, "r": 20, "t": 30, "b": 40},
+    )
     return figure

@@ -35,11 +35,20 @@ def record(url: str, code: str) -> PatientRecord:
 
 
 @st.cache_data(ttl=TTL, show_spinner="Computing the follow-up…")
-def trend(url: str, code: str, parameter: str, criteria: str | None, limits_name: str | None, cold_limbs: str) -> FollowUp:
+def trend(
+    url: str, code: str, parameter: str, criteria: str | None, limits_name: str | None, cold_limbs: str
+) -> FollowUp:
     with reading() as session:
         settings = preferences.criteria_settings(session, cold_limbs=cold_limbs)
-        fu = follow_up(session, code, parameter=parameter, criteria=criteria, limits_name=limits_name,
-                       settings=settings, strip_criteria=[])
+        fu = follow_up(
+            session,
+            code,
+            parameter=parameter,
+            criteria=criteria,
+            limits_name=limits_name,
+            settings=settings,
+            strip_criteria=[],
+        )
     # The outcome strip does not depend on the parameter: cached on its own, so a parameter switch is quick.
     return dataclasses.replace(fu, outcomes=strip(url, code, limits_name, cold_limbs))
 
@@ -52,23 +61,57 @@ def strip(url: str, code: str, limits_name: str | None, cold_limbs: str) -> pd.D
 
 
 @st.cache_data(ttl=TTL, show_spinner=False)
-def patients(url: str, criteria: str, limits_name: str | None, search: str, diagnosis: str | None, outcome: str | None) -> pd.DataFrame:
+def patients(
+    url: str, criteria: str, limits_name: str | None, search: str, diagnosis: str | None, outcome: str | None
+) -> pd.DataFrame:
     with reading() as session:
-        return cohort.patient_list(session, criteria=criteria, limits_name=limits_name, search=search, diagnosis=diagnosis, outcome=outcome)
+        return cohort.patient_list(
+            session,
+            criteria=criteria,
+            limits_name=limits_name,
+            search=search,
+            diagnosis=diagnosis,
+            outcome=outcome,
+        )
 
 
 @st.cache_data(ttl=TTL, show_spinner=False)
-def patient_page(url: str, criteria: str, limits_name: str | None, search: str, diagnosis: str | None, outcome: str | None,
-                 page: int, page_rows: int) -> cohort.PatientPage:
+def patient_page(
+    url: str,
+    criteria: str,
+    limits_name: str | None,
+    search: str,
+    diagnosis: str | None,
+    outcome: str | None,
+    page: int,
+    page_rows: int,
+) -> cohort.PatientPage:
     with reading() as session:
-        return cohort.patient_page(session, criteria=criteria, limits_name=limits_name, search=search, diagnosis=diagnosis,
-                                   outcome=outcome, page=page, page_rows=page_rows)
+        return cohort.patient_page(
+            session,
+            criteria=criteria,
+            limits_name=limits_name,
+            search=search,
+            diagnosis=diagnosis,
+            outcome=outcome,
+            page=page,
+            page_rows=page_rows,
+        )
 
 
 @st.cache_data(ttl=TTL, show_spinner=False)
-def visits(url: str, criteria: tuple[str, ...], limits_name: str | None, diagnosis: str | None, start, end) -> pd.DataFrame:
+def visits(
+    url: str, criteria: tuple[str, ...], limits_name: str | None, diagnosis: str | None, start, end
+) -> pd.DataFrame:
     with reading() as session:
-        return cohort.visit_table(session, criteria=list(criteria), limits_name=limits_name, diagnosis=diagnosis, start=start, end=end)
+        return cohort.visit_table(
+            session,
+            criteria=list(criteria),
+            limits_name=limits_name,
+            diagnosis=diagnosis,
+            start=start,
+            end=end,
+        )
 
 
 @st.cache_data(ttl=TTL, show_spinner=False)
@@ -109,10 +152,19 @@ def course(url: str, rules_id: str | None, codes: tuple[str, ...]) -> pd.DataFra
 
 
 @st.cache_data(ttl=TTL, show_spinner="Preparing the printable report…")
-def report_pdf(url: str, code: str, visit_date, criteria: tuple[str, ...], limits_name: str | None, cold_limbs: str) -> bytes:
+def report_pdf(
+    url: str, code: str, visit_date, criteria: tuple[str, ...], limits_name: str | None, cold_limbs: str
+) -> bytes:
     """The printable follow-up report of one visit as PDF bytes (Visit review download); nothing is saved."""
     from tracker import report
 
     with reading() as session:  # the evaluation the report runs is rolled back: the page has saved it already
-        content = report.build(session, code, visit_date=visit_date, criteria=list(criteria), limits_name=limits_name, cold_limbs=cold_limbs)
+        content = report.build(
+            session,
+            code,
+            visit_date=visit_date,
+            criteria=list(criteria),
+            limits_name=limits_name,
+            cold_limbs=cold_limbs,
+        )
     return report.render(content, "pdf")

@@ -15,13 +15,37 @@ PAPER = "#f6f8f7"
 GRID = "#dde3e1"
 
 # Okabe–Ito colours; status = (word, shape, colour). Shapes are plain Unicode so they survive copy-paste.
-STATUS_COLOURS = {"met": "#D55E00", "not_met": "#0072B2", "not_evaluable": "#6b6b6b", "not_applicable": "#8c8c8c"}
-STATUS = {key: (*STATUS_LABELS[key], colour) for key, colour in STATUS_COLOURS.items()}  # words and shapes: labels.py
+STATUS_COLOURS = {
+    "met": "#D55E00",
+    "not_met": "#0072B2",
+    "not_evaluable": "#6b6b6b",
+    "not_applicable": "#8c8c8c",
+}
+STATUS = {
+    key: (*STATUS_LABELS[key], colour) for key, colour in STATUS_COLOURS.items()
+}  # words and shapes: labels.py
 
 # Per-visit outcomes of a criteria set, grouped by what they mean for the clinician.
 OUTCOME_GROUPS = {
-    "positive": (("definite", "probable", "possible", "cidp", "possible_cidp", "met", "demyelinating", "strongly_supportive"), "▲", "#D55E00"),
-    "other finding": (("axonal", "inexcitable", "equivocal", "weakly_supportive", "abnormal_1_nerve", "abnormal_2_nerves"), "◆", "#E69F00"),
+    "positive": (
+        (
+            "definite",
+            "probable",
+            "possible",
+            "cidp",
+            "possible_cidp",
+            "met",
+            "demyelinating",
+            "strongly_supportive",
+        ),
+        "▲",
+        "#D55E00",
+    ),
+    "other finding": (
+        ("axonal", "inexcitable", "equivocal", "weakly_supportive", "abnormal_1_nerve", "abnormal_2_nerves"),
+        "◆",
+        "#E69F00",
+    ),
     "negative": (("not_met", "normal"), "○", "#0072B2"),
     "not evaluable": (("not_evaluable", "not evaluated"), "?", "#6b6b6b"),
     # Items that could make the set met lack data: its own state, never read as negative.
@@ -79,8 +103,8 @@ CSS = f"""
     margin-top: 2.5rem; padding: 0.6rem 0.9rem; border-left: 4px solid {ACCENT};
     background: {PAPER}; color: {INK}; font-size: 0.85rem;
   }}
-  .ncs-badge {{ display: inline-block; padding: 0.05rem 0.5rem; border-radius: 0.6rem; border: 1px solid {GRID};
-    margin-right: 0.3rem; font-size: 0.85rem; }}
+  .ncs-badge {{ display: inline-block; padding: 0.05rem 0.5rem; border-radius: 0.6rem;
+    border: 1px solid {GRID}; margin-right: 0.3rem; font-size: 0.85rem; }}
 </style>
 """
 

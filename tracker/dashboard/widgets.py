@@ -10,6 +10,7 @@ from tracker.dashboard.state import PATIENT_KEY, choose_patient, current_patient
 from tracker.domain.labels import CRITERIA_TITLES, criteria_title  # noqa: F401 (pages import them from here)
 from tracker.services.response import rule_set_choices
 
+
 def patient_picker(label: str = "Patient", *, key: str) -> str | None:
     """Choose a patient by code; the choice is shared with the other pages."""
     codes = reads.codes(database_url())
@@ -28,13 +29,21 @@ def patient_picker(label: str = "Patient", *, key: str) -> str | None:
     return code
 
 
-def criteria_picker(label: str, *, key: str, diagnosis: str | None = None, allow_auto: bool = True) -> str | None:
+def criteria_picker(
+    label: str, *, key: str, diagnosis: str | None = None, allow_auto: bool = True
+) -> str | None:
     """A criteria set; ``None`` means "by the patient's diagnosis" (or the clinic's default)."""
     default, _ = reads.clinic_settings(database_url())
     options = ([None] if allow_auto else []) + engine.available()
     auto_label = "by diagnosis" if not default else f"clinic default ({criteria_title(default)})"
     index = 0 if allow_auto else (options.index(default) if default in options else 0)
-    choice = st.selectbox(label, options, index=index, key=key, format_func=lambda c: auto_label if c is None else criteria_title(c))
+    choice = st.selectbox(
+        label,
+        options,
+        index=index,
+        key=key,
+        format_func=lambda c: auto_label if c is None else criteria_title(c),
+    )
     return default if choice is None and default else choice
 
 
@@ -44,7 +53,10 @@ def limits_picker(*, key: str) -> str | None:
     default = next((s.name for s in sets if s.is_default), None)
     options = [None] + [n for n in names]
     return st.selectbox(
-        "Normal limits", options, index=0, key=key,
+        "Normal limits",
+        options,
+        index=0,
+        key=key,
         format_func=lambda n: f"default set ({default})" if n is None else n,
         help="Every laboratory should use its own normal values (Settings → normal-limit sets).",
     )

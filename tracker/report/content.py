@@ -22,8 +22,16 @@ from tracker import CAUTION, __version__
 from tracker.check_report import TITLES, VERDICT
 from tracker.criteria.thresholds import COMPARATORS
 from tracker.domain.labels import (
-    CHANGE_VERDICT_LABELS, CHANGE_VERDICT_SHAPES, CHANGE_VERDICT_SHORT, DIAGNOSIS_LABELS, CLASSIFICATION_LABELS, CLASSIFICATION_SHAPES, REFERENCE_LABELS,
-    SUMMARY_LABELS, nerve_parameter_label, words,
+    CHANGE_VERDICT_LABELS,
+    CHANGE_VERDICT_SHAPES,
+    CHANGE_VERDICT_SHORT,
+    DIAGNOSIS_LABELS,
+    CLASSIFICATION_LABELS,
+    CLASSIFICATION_SHAPES,
+    REFERENCE_LABELS,
+    SUMMARY_LABELS,
+    nerve_parameter_label,
+    words,
 )
 from tracker.response.rules import AFFECTED_GRIP
 from tracker.response.scales import scale_table
@@ -121,21 +129,36 @@ class FollowUpReport:
         return f"Follow-up report — {self.patient}, visit {self.visit_date.isoformat()}"
 
 
-def build(session, code: str, *, visit_date: dt.date | None = None, criteria: list[str] | None = None,
-          limits_name: str | None = None, cold_limbs: str | None = None, username: str | None = None) -> FollowUpReport:
+def build(
+    session,
+    code: str,
+    *,
+    visit_date: dt.date | None = None,
+    criteria: list[str] | None = None,
+    limits_name: str | None = None,
+    cold_limbs: str | None = None,
+    username: str | None = None,
+) -> FollowUpReport:
     """The report of patient ``code`` at the visit ``visit_date`` (default: the latest visit).
 
     ``criteria``: criteria set ids (default: the clinic's default set, else the set for the visit's
-    diagnosis); ``cold_limbs``: temperature policy (default: the clinic's). With ``username`` the criteria
-    evaluation is saved and audited in the caller's transaction, as ``check`` does. Raises :class:`tracker.errors.NotFound` for an unknown
-    patient or visit.
+    diagnosis); ``cold_limbs``: temperature policy (default: the clinic's). With ``username`` the
+    criteria evaluation is saved and audited in the caller's transaction, as ``check`` does. Raises
+    :class:`tracker.errors.NotFound` for an unknown patient or visit.
     """
     chosen = list(criteria) if criteria else None
     if chosen is None and preferences.default_criteria(session):
         chosen = [preferences.default_criteria(session)]
     settings = preferences.criteria_settings(session, cold_limbs=cold_limbs)
-    check = check_visit(session, code, visit_date=visit_date, criteria=chosen, limits_name=limits_name, settings=settings,
-                        username=username)
+    check = check_visit(
+        session,
+        code,
+        visit_date=visit_date,
+        criteria=chosen,
+        limits_name=limits_name,
+        settings=settings,
+        username=username,
+    )
     response = patient_response(session, code, visit_date=check.visit_date, limits_name=limits_name)
     record = patient_record(session, code, visit_date=check.visit_date)
     visit = record.visits[0]
@@ -146,7 +169,10 @@ def build(session, code: str, *, visit_date: dt.date | None = None, criteria: li
         ("Working diagnosis", _diagnosis_words(visit.diagnosis or record.diagnosis)),
         ("Phenotype", words(check.phenotype) if check.phenotype else "not stated"),
         ("Normal limits", f"{check.limits.name} v{check.limits.version}"),
-        ("Earlier visits", ", ".join(d.isoformat() for d in response.visit_dates if d < check.visit_date) or "none"),
+        (
+            "Earlier visits",
+            ", ".join(d.isoformat() for d in response.visit_dates if d < check.visit_date) or "none",
+        ),
     )
     sections = (
         _temperatures(visit, check, settings.cold_limbs),
@@ -155,12 +181,18 @@ def build(session, code: str, *, visit_date: dt.date | None = None, criteria: li
         _changes(response),
     )
     return FollowUpReport(
-        patient=check.patient, visit_date=check.visit_date, facts=facts, sections=sections,
-        figure=_figure(response), sources=tuple(sources.listed()), caution=CAUTION,
+        patient=check.patient,
+        visit_date=check.visit_date,
+        facts=facts,
+        sections=sections,
+        figure=_figure(response),
+        sources=tuple(sources.listed()),
+        caution=CAUTION,
     )
 
 
 # ---------------------------------------------------------------------------------------------- helpers
+
 
 def _missing(value: Any) -> bool:
     return value is None or value is pd.NA or (isinstance(value, float) and math.isnan(value))
@@ -184,7 +216,10 @@ def _text(value: Any) -> str:
 
 
 def _verdict_short(verdict: str) -> str:
-    return f"{CHANGE_VERDICT_SHAPES.get(verdict, '')} {CHANGE_VERDICT_SHORT.get(verdict, CHANGE_VERDICT_LABELS.get(verdict, words(verdict)))}".strip()
+    return (
+        f"{CHANGE_VERDICT_SHAPES.get(verdict, '')} "
+        f"{CHANGE_VERDICT_SHORT.get(verdict, CHANGE_VERDICT_LABELS.get(verdict, words(verdict)))}"
+    ).strip()
 
 
 def _diagnosis_words(diagnosis: str | None) -> str:
@@ -209,27 +244,48 @@ class _Sources:
 
 # --------------------------------------------------------------------------------------------- sections
 
+
 def _temperatures(visit, check: VisitCheck, policy: str) -> Section:
     cold = {}
     for w in check.warnings.itertuples(index=False):
         cold[(w.nerve, w.side, w.modality)] = str(w.message)
     rows = tuple(
-        (f"{words(n.nerve)} {n.side}", n.modality, _number(n.temperature_c, "°C", 1) if not _missing(n.temperature_c) else "not recorded",
-         cold.get((n.nerve, n.side, n.modality), ""))
+        (
+            f"{words(n.nerve)} {n.side}",
+            n.modality,
+            _number(n.temperature_c, "°C", 1) if not _missing(n.temperature_c) else "not recorded",
+            cold.get((n.nerve, n.side, n.modality), ""),
+        )
         for n in visit.nerves
     )
-    return Section("Limb temperatures at this visit", (
-        Table(("nerve", "modality", "limb temperature", "note"), rows, (2, 1.3, 1.5, 5.2), "No nerve tests at this visit."),
-        Text("A cold limb slows conduction; a nerve below the guideline minimum is noted here and, by the clinic's "
-             f"policy, {POLICY_WORDS.get(policy, policy)}.", "note"),
-    ))
+    return Section(
+        "Limb temperatures at this visit",
+        (
+            Table(
+                ("nerve", "modality", "limb temperature", "note"),
+                rows,
+                (2, 1.3, 1.5, 5.2),
+                "No nerve tests at this visit.",
+            ),
+            Text(
+                "A cold limb slows conduction; a nerve below the guideline minimum is noted here and, by "
+                f"the clinic's policy, {POLICY_WORDS.get(policy, policy)}.",
+                "note",
+            ),
+        ),
+    )
 
 
 def _criteria(check: VisitCheck, sources: _Sources) -> Section:
     blocks: list[Block] = []
     for criteria_id, result in check.results.items():
         outcome = result.outcomes.iloc[0]
-        blocks.append(Heading(f"{TITLES.get(criteria_id, criteria_id)} — criteria table {criteria_id}, version {result.version}"))
+        blocks.append(
+            Heading(
+                f"{TITLES.get(criteria_id, criteria_id)} — criteria table {criteria_id}, version "
+                f"{result.version}"
+            )
+        )
         blocks.append(Text(f"Outcome: {words(str(outcome['outcome'])).upper()}", "outcome"))
         if _text(outcome.get("rule")):
             blocks.append(Text(f"Rule: {outcome['rule']}"))
@@ -252,21 +308,49 @@ def _criteria(check: VisitCheck, sources: _Sources) -> Section:
         unknown = findings[findings["status"] == "not_evaluable"]
         if len(unknown):
             listed = "; ".join(
-                f"{words(str(f.nerve))} {f.side} {f.parameter}" + (f" ({f.reason})" if _text(f.reason) else "")
+                f"{words(str(f.nerve))} {f.side} {f.parameter}"
+                + (f" ({f.reason})" if _text(f.reason) else "")
                 for f in unknown.itertuples(index=False)
             )
-            blocks.append(Text(f"Not evaluable ({len(unknown)} items, never read as normal): {listed}", "note"))
+            blocks.append(
+                Text(f"Not evaluable ({len(unknown)} items, never read as normal): {listed}", "note")
+            )
         if check.previous_date is not None:
             changes = check.changes.get(criteria_id)
             if changes is not None and len(changes):
-                listed = "; ".join(f"{words(str(c.nerve))} {c.side} {c.item} ({c.parameter}): {c.change}" for c in changes.itertuples(index=False))
-                blocks.append(Text(f"Findings changed since the previous visit ({check.previous_date.isoformat()}): {listed}", "note"))
+                listed = "; ".join(
+                    f"{words(str(c.nerve))} {c.side} {c.item} ({c.parameter}): {c.change}"
+                    for c in changes.itertuples(index=False)
+                )
+                blocks.append(
+                    Text(
+                        f"Findings changed since the previous visit ({check.previous_date.isoformat()}): "
+                        f"{listed}",
+                        "note",
+                    )
+                )
             else:
-                blocks.append(Text(f"No finding changed since the previous visit ({check.previous_date.isoformat()}).", "note"))
+                blocks.append(
+                    Text(
+                        f"No finding changed since the previous visit ({check.previous_date.isoformat()}).",
+                        "note",
+                    )
+                )
     if len(check.warnings):
-        blocks.append(Text(f"{len(check.warnings)} nerve tests below the guideline minimum temperature: see the limb temperatures above.", "note"))
-    blocks.append(Text("Sources are numbered at the end of the report; * = threshold or normal limit from memory, not verified "
-                       "against the publication.", "note"))
+        blocks.append(
+            Text(
+                f"{len(check.warnings)} nerve tests below the guideline minimum temperature: see the limb "
+                "temperatures above.",
+                "note",
+            )
+        )
+    blocks.append(
+        Text(
+            "Sources are numbered at the end of the report; * = threshold or normal limit from memory, not "
+            "verified against the publication.",
+            "note",
+        )
+    )
     return Section("Electrodiagnostic criteria", tuple(blocks))
 
 
@@ -279,52 +363,116 @@ def _findings_table(findings: pd.DataFrame, sources: _Sources) -> Table:
         mark = "" if f.source_status == "verified" and f.limit_status != "memory" else "*"
         refs = sources.ref(_text(f.source)) + sources.ref(_text(f.limit_source)) + mark
         verdict = VERDICT.get(f.status, f.status) + (f" ({f.reason})" if _text(f.reason) else "")
-        rows.append((f"{words(str(f.nerve))} {f.side} {f.modality}", str(f.parameter), _number(f.value, _text(f.unit)) + segment,
-                     limit, f"{comparator} {_number(f.threshold, _text(f.unit))}".strip(), verdict, refs))
-    return Table(("nerve", "finding", "value", "normal limit", "threshold", "verdict", "source"), tuple(rows), (1.7, 2.1, 2, 1.5, 1.2, 1, 0.8))
+        rows.append(
+            (
+                f"{words(str(f.nerve))} {f.side} {f.modality}",
+                str(f.parameter),
+                _number(f.value, _text(f.unit)) + segment,
+                limit,
+                f"{comparator} {_number(f.threshold, _text(f.unit))}".strip(),
+                verdict,
+                refs,
+            )
+        )
+    return Table(
+        ("nerve", "finding", "value", "normal limit", "threshold", "verdict", "source"),
+        tuple(rows),
+        (1.7, 2.1, 2, 1.5, 1.2, 1, 0.8),
+    )
 
 
 def _response(result: PatientResponse) -> Section:
     scales = scale_table()
     rule_set = result.rule_set
     blocks: list[Block] = [
-        Text(f"Rule set: {rule_set.title} — id {rule_set.id}, version {rule_set.version} ({rule_set.origin})."),
+        Text(
+            f"Rule set: {rule_set.title} — id {rule_set.id}, version {rule_set.version} ({rule_set.origin})."
+        ),
     ]
     rule_rows = []
     for rule in rule_set.rules:
         info = scales.get(rule.scale)
-        label = info.label if info else ("grip strength, more affected hand" if rule.scale == AFFECTED_GRIP else words(rule.scale))
+        label = (
+            info.label
+            if info
+            else ("grip strength, more affected hand" if rule.scale == AFFECTED_GRIP else words(rule.scale))
+        )
         unit = info.unit if info else "kPa"
-        rule_rows.append((label, rule.threshold_words(unit), str(rule.confirm_visits), "yes" if rule.required else "no",
-                          rule.source, STATUS_WORDS.get(rule.status, rule.status)))
-    blocks.append(Table(("scale", "threshold from baseline", "visits to confirm", "required", "source of the threshold", "status"),
-                        tuple(rule_rows), (1.6, 1.2, 0.9, 0.9, 4.2, 1.2)))
+        rule_rows.append(
+            (
+                label,
+                rule.threshold_words(unit),
+                str(rule.confirm_visits),
+                "yes" if rule.required else "no",
+                rule.source,
+                STATUS_WORDS.get(rule.status, rule.status),
+            )
+        )
+    blocks.append(
+        Table(
+            (
+                "scale",
+                "threshold from baseline",
+                "visits to confirm",
+                "required",
+                "source of the threshold",
+                "status",
+            ),
+            tuple(rule_rows),
+            (1.6, 1.2, 0.9, 0.9, 4.2, 1.2),
+        )
+    )
     if not result.classifications:
         blocks.append(Text("No treatment recorded on or before this visit: no regimen to classify."))
     for c in result.classifications:
-        span = f"{c.regimen.start_date.isoformat()} → {c.regimen.end_date.isoformat() if c.regimen.end_date else 'ongoing'}"
+        span = (
+            f"{c.regimen.start_date.isoformat()} → "
+            f"{c.regimen.end_date.isoformat() if c.regimen.end_date else 'ongoing'}"
+        )
         blocks.append(Heading(f"{c.regimen.label()}, {span}"))
-        blocks.append(Text(f"{CLASSIFICATION_SHAPES[c.classification]} {CLASSIFICATION_LABELS[c.classification].upper()}", "outcome"))
+        blocks.append(
+            Text(
+                f"{CLASSIFICATION_SHAPES[c.classification]} "
+                f"{CLASSIFICATION_LABELS[c.classification].upper()}",
+                "outcome",
+            )
+        )
         rows = []
         for e in c.evidence:
             verdict = e["verdict"]
-            rows.append((
-                f"{e['label']} ({e['unit']}; {e['direction']})",
-                f"{_number(e['baseline_value'])} on {e['baseline_date'].isoformat()}",
-                f"{_number(e['value'])} on {e['date'].isoformat()}",
-                _signed(e["change"]), e["threshold"] + ("" if e["status"] == "verified" else " *"),
-                f"{CHANGE_VERDICT_SHAPES.get(verdict, '')} {CHANGE_VERDICT_LABELS.get(verdict, words(verdict))}".strip(),
-            ))
+            rows.append(
+                (
+                    f"{e['label']} ({e['unit']}; {e['direction']})",
+                    f"{_number(e['baseline_value'])} on {e['baseline_date'].isoformat()}",
+                    f"{_number(e['value'])} on {e['date'].isoformat()}",
+                    _signed(e["change"]),
+                    e["threshold"] + ("" if e["status"] == "verified" else " *"),
+                    f"{CHANGE_VERDICT_SHAPES.get(verdict, '')} "
+                    f"{CHANGE_VERDICT_LABELS.get(verdict, words(verdict))}".strip(),
+                )
+            )
         if rows:
-            blocks.append(Table(("scale", "baseline", "latest", "change", "threshold", "verdict"), tuple(rows), (2.6, 1.6, 1.6, 0.8, 1.1, 2.1)))
+            blocks.append(
+                Table(
+                    ("scale", "baseline", "latest", "change", "threshold", "verdict"),
+                    tuple(rows),
+                    (2.6, 1.6, 1.6, 0.8, 1.1, 2.1),
+                )
+            )
         for missing in c.missing:
             blocks.append(Text(f"Missing — {missing}", "note"))
         for note in c.notes:
             blocks.append(Text(f"Note — {note}", "note"))
         if c.compared:
             blocks.append(Text("Days compared: " + ", ".join(d.isoformat() for d in c.compared), "note"))
-    blocks.append(Text("Never “stable” for want of data: a regimen without a baseline or a follow-up score is not assessable, and the "
-                       "missing data are named. * = threshold from memory, not verified against the publication.", "note"))
+    blocks.append(
+        Text(
+            "Never “stable” for want of data: a regimen without a baseline or a follow-up score is not "
+            "assessable, and the missing data are named. * = threshold from memory, not verified against the "
+            "publication.",
+            "note",
+        )
+    )
     return Section("Treatment response", tuple(blocks))
 
 
@@ -338,20 +486,44 @@ def _changes(result: PatientResponse) -> Section:
         day = frame["date"].max()
         on_day = frame[frame["date"] == day]
         counting = on_day[on_day["verdict"].isin(BEYOND)]
-        when = "this visit" if day == result.at else f"{day.isoformat()}, the latest scored day before this visit"
+        when = (
+            "this visit"
+            if day == result.at
+            else f"{day.isoformat()}, the latest scored day before this visit"
+        )
         blocks.append(Heading(f"Clinical scores beyond their minimal important change ({when})"))
         rows = []
         for r in counting.itertuples(index=False):
             info = scales.get(r.scale)
             label = f"{info.label} ({info.unit}; {info.direction_words})" if info else words(r.scale)
-            rows.append((label, _number(r.value),
-                         f"{REFERENCE_LABELS.get(r.reference, words(r.reference))}: {_number(r.reference_value)} on {r.reference_date.isoformat()}",
-                         _signed(r.change), str(r.threshold), _verdict_short(r.verdict)))
-        blocks.append(Table(("scale", "now", "compared with", "change", "minimal important change", "verdict"), tuple(rows),
-                            (2.8, 0.6, 3.0, 0.8, 1.4, 1.0), "No score changed beyond its minimal important change."))
+            rows.append(
+                (
+                    label,
+                    _number(r.value),
+                    f"{REFERENCE_LABELS.get(r.reference, words(r.reference))}: {_number(r.reference_value)} "
+                    f"on {r.reference_date.isoformat()}",
+                    _signed(r.change),
+                    str(r.threshold),
+                    _verdict_short(r.verdict),
+                )
+            )
+        blocks.append(
+            Table(
+                ("scale", "now", "compared with", "change", "minimal important change", "verdict"),
+                tuple(rows),
+                (2.8, 0.6, 3.0, 0.8, 1.4, 1.0),
+                "No score changed beyond its minimal important change.",
+            )
+        )
         others = len(on_day) - len(counting)
         if others:
-            blocks.append(Text(f"{others} other score comparisons on that day are within their minimal important change or have none published.", "note"))
+            blocks.append(
+                Text(
+                    f"{others} other score comparisons on that day are within their minimal important change "
+                    "or have none published.",
+                    "note",
+                )
+            )
     blocks += _nerve_blocks(result)
     return Section("Changes that count", tuple(blocks))
 
@@ -366,33 +538,71 @@ def _nerve_blocks(result: PatientResponse) -> list[Block]:
         blocks.append(Text("No nerve conduction value changed beyond its smallest detectable change."))
     for (reference, day), part in counting.groupby(["reference", "reference_date"], sort=False):
         rows = tuple(
-            (f"{words(str(r.nerve))} {r.side}", nerve_parameter_label(str(r.parameter)), words(_text(r.where)) or "—",
-             f"{_number(r.reference_value)} → {_number(r.value)}", f"{_signed(r.change_pct, '%', 1)} ({_number(r.sdc, '%', 1)})",
-             _verdict_short(r.verdict), _text(r.less_certain) or "—")
+            (
+                f"{words(str(r.nerve))} {r.side}",
+                nerve_parameter_label(str(r.parameter)),
+                words(_text(r.where)) or "—",
+                f"{_number(r.reference_value)} → {_number(r.value)}",
+                f"{_signed(r.change_pct, '%', 1)} ({_number(r.sdc, '%', 1)})",
+                _verdict_short(r.verdict),
+                _text(r.less_certain) or "—",
+            )
             for r in part.itertuples(index=False)
         )
-        blocks.append(Text(f"Compared {REFERENCE_LABELS.get(reference, words(reference))} ({day.isoformat()}):"))
-        blocks.append(Table(("nerve", "parameter", "where", "then → now", "change (SDC)", "verdict", "less certain because"),
-                            rows, (1.1, 2.0, 1.6, 1.3, 1.4, 0.9, 2.6)))
+        blocks.append(
+            Text(f"Compared {REFERENCE_LABELS.get(reference, words(reference))} ({day.isoformat()}):")
+        )
+        blocks.append(
+            Table(
+                (
+                    "nerve",
+                    "parameter",
+                    "where",
+                    "then → now",
+                    "change (SDC)",
+                    "verdict",
+                    "less certain because",
+                ),
+                rows,
+                (1.1, 2.0, 1.6, 1.3, 1.4, 0.9, 2.6),
+            )
+        )
     others = len(frame) - len(counting)
     if others:
-        blocks.append(Text(f"{others} other comparisons are within the SDC, have no published SDC, or cannot be compared.", "note"))
+        blocks.append(
+            Text(
+                f"{others} other comparisons are within the SDC, have no published SDC, or cannot be "
+                "compared.",
+                "note",
+            )
+        )
     if result.nerve_summary:
         rows = tuple(
-            (REFERENCE_LABELS.get(s["reference"], words(s["reference"])), SUMMARY_LABELS.get(s["measure"], words(s["measure"])),
-             _number(s["value"], decimals=1), str(s["nerves"]))
+            (
+                REFERENCE_LABELS.get(s["reference"], words(s["reference"])),
+                SUMMARY_LABELS.get(s["measure"], words(s["measure"])),
+                _number(s["value"], decimals=1),
+                str(s["nerves"]),
+            )
             for s in result.nerve_summary
         )
-        blocks.append(Table(("compared", "summary", "value", "nerves or comparisons"), rows, (2.2, 4.5, 0.8, 1.5)))
+        blocks.append(
+            Table(("compared", "summary", "value", "nerves or comparisons"), rows, (2.2, 4.5, 0.8, 1.5))
+        )
     s = result.settings
-    blocks.append(Text(
-        f"A change is less certain when the limb temperatures were more than {s.temperature_delta_c:g} °C apart, another "
-        f"low-frequency filter was used, or the distances differ by more than {s.distance_delta_pct:g} % (settings; common "
-        "practice, no source).", "note"))
+    blocks.append(
+        Text(
+            f"A change is less certain when the limb temperatures were more than {s.temperature_delta_c:g} "
+            "°C apart, another low-frequency filter was used, or the distances differ by more than "
+            f"{s.distance_delta_pct:g} % (settings; common practice, no source).",
+            "note",
+        )
+    )
     return blocks
 
 
 # ---------------------------------------------------------------------------------------------- figure
+
 
 def _figure_scales(result: PatientResponse, recorded: set[str]) -> list[str]:
     wanted = []
@@ -416,27 +626,60 @@ def _figure(result: PatientResponse) -> TrendFigure:
         panel = f"{info.label} ({info.unit}; {info.direction_words})" if info else words(scale)
         part = scores[scores["scale"] == scale].sort_values("date", kind="stable")
         panels.append(panel)
-        series.append(Series(panel, info.label if info else words(scale), tuple(part["date"]), tuple(float(v) for v in part["value"])))
+        series.append(
+            Series(
+                panel,
+                info.label if info else words(scale),
+                tuple(part["date"]),
+                tuple(float(v) for v in part["value"]),
+            )
+        )
     values = result.nerve_values
     if len(values):
-        part = values[(values["parameter"] == FIGURE_PARAMETER) & values["value"].notna() & (values["visit_date"] <= at)]
+        part = values[
+            (values["parameter"] == FIGURE_PARAMETER) & values["value"].notna() & (values["visit_date"] <= at)
+        ]
         if len(part):
             panel = f"{nerve_parameter_label(FIGURE_PARAMETER)}, per motor nerve"
             panels.append(panel)
             for (nerve, side), nerve_part in part.groupby(["nerve", "side"], sort=True):
                 nerve_part = nerve_part.sort_values("visit_date", kind="stable")
-                series.append(Series(panel, f"{words(str(nerve))} {side}", tuple(nerve_part["visit_date"]),
-                                     tuple(float(v) for v in nerve_part["value"])))
+                series.append(
+                    Series(
+                        panel,
+                        f"{words(str(nerve))} {side}",
+                        tuple(nerve_part["visit_date"]),
+                        tuple(float(v) for v in nerve_part["value"]),
+                    )
+                )
     spans = []
     for number, regimen in enumerate(result.regimens, start=1):
-        end = regimen.end_date if regimen.end_date is not None and (at is None or regimen.end_date <= at) else at
-        spans.append(Span(f"R{number}", regimen.start_date, end or regimen.start_date,
-                          f"{regimen.label()} ({regimen.start_date.isoformat()} → "
-                          f"{regimen.end_date.isoformat() if regimen.end_date else 'ongoing'})"))
+        end = (
+            regimen.end_date
+            if regimen.end_date is not None and (at is None or regimen.end_date <= at)
+            else at
+        )
+        spans.append(
+            Span(
+                f"R{number}",
+                regimen.start_date,
+                end or regimen.start_date,
+                f"{regimen.label()} ({regimen.start_date.isoformat()} → "
+                f"{regimen.end_date.isoformat() if regimen.end_date else 'ongoing'})",
+            )
+        )
     shaded = "; ".join(f"{s.tag} = {s.label}" for s in spans) or "no treatment recorded"
-    caption = (f"Course up to this visit (dashed line: {at.isoformat() if at else '—'}). Shaded: regimens — {shaded}. "
-               "Each nerve has its own marker shape.")
-    alt = "Trend figure: " + "; ".join(
-        f"{s.name}: " + ", ".join(f"{d.isoformat()} {_number(v)}" for d, v in zip(s.dates, s.values)) for s in series
-    ) if series else "Trend figure: no scores or nerve values recorded up to this visit."
+    caption = (
+        f"Course up to this visit (dashed line: {at.isoformat() if at else '—'}). Shaded: regimens — "
+        f"{shaded}. Each nerve has its own marker shape."
+    )
+    alt = (
+        "Trend figure: "
+        + "; ".join(
+            f"{s.name}: " + ", ".join(f"{d.isoformat()} {_number(v)}" for d, v in zip(s.dates, s.values))
+            for s in series
+        )
+        if series
+        else "Trend figure: no scores or nerve values recorded up to this visit."
+    )
     return TrendFigure(tuple(panels), tuple(series), tuple(spans), at, caption, alt)

@@ -38,10 +38,19 @@ def _draw(spec: TrendFigure) -> bytes:
     legends = any(sum(1 for s in spec.series if s.panel == p) > 1 for p in panels)
     fig = Figure(figsize=(WIDTH_IN, height), dpi=DPI)
     # Fixed margins (in inches turned into fractions): quicker than a layout engine, and as predictable.
-    fig.subplots_adjust(left=0.6 / WIDTH_IN, right=1 - (1.35 if legends else 0.2) / WIDTH_IN, top=1 - 0.3 / height,
-                        bottom=0.4 / height, hspace=0.45)
+    fig.subplots_adjust(
+        left=0.6 / WIDTH_IN,
+        right=1 - (1.35 if legends else 0.2) / WIDTH_IN,
+        top=1 - 0.3 / height,
+        bottom=0.4 / height,
+        hspace=0.45,
+    )
     axes = fig.subplots(len(panels), 1, sharex=True, squeeze=False)[:, 0]
-    days = [d for s in spec.series for d in s.dates] + [s.start for s in spec.spans] + ([spec.visit] if spec.visit else [])
+    days = (
+        [d for s in spec.series for d in s.dates]
+        + [s.start for s in spec.spans]
+        + ([spec.visit] if spec.visit else [])
+    )
     low, high = (min(days), max(days)) if days else (dt.date(2000, 1, 1), dt.date(2000, 12, 31))
     pad = dt.timedelta(days=max(14, (high - low).days // 25))
     for axis, panel in zip(axes, panels):
@@ -52,8 +61,15 @@ def _draw(spec: TrendFigure) -> bytes:
             axis.axvline(spec.visit, color=INK, linestyle="--", linewidth=0.9)
         lines = [s for s in spec.series if s.panel == panel]
         for index, line in enumerate(lines):
-            axis.plot(line.dates, line.values, color=COLOURS[index % len(COLOURS)], marker=MARKERS[index % len(MARKERS)],
-                      markersize=4, linewidth=1.3, label=line.name)
+            axis.plot(
+                line.dates,
+                line.values,
+                color=COLOURS[index % len(COLOURS)],
+                marker=MARKERS[index % len(MARKERS)],
+                markersize=4,
+                linewidth=1.3,
+                label=line.name,
+            )
         axis.set_title(panel, fontsize=8.5, loc="left", color=INK)
         axis.tick_params(labelsize=7.5, colors=INK)
         axis.grid(True, color="#dde3e1", linewidth=0.6)
@@ -66,8 +82,18 @@ def _draw(spec: TrendFigure) -> bytes:
     top = axes[0]
     for span in spec.spans:
         middle = span.start + (max(span.end, span.start) - span.start) / 2
-        top.annotate(span.tag, xy=(middle, 1.0), xycoords=("data", "axes fraction"), xytext=(0, -2),
-                     textcoords="offset points", ha="center", va="top", fontsize=7, color=INK, fontweight="bold")
+        top.annotate(
+            span.tag,
+            xy=(middle, 1.0),
+            xycoords=("data", "axes fraction"),
+            xytext=(0, -2),
+            textcoords="offset points",
+            ha="center",
+            va="top",
+            fontsize=7,
+            color=INK,
+            fontweight="bold",
+        )
     axes[-1].set_xlim(low - pad, high + pad)
     locator = mdates.AutoDateLocator(minticks=3, maxticks=8)
     axes[-1].xaxis.set_major_locator(locator)

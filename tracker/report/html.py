@@ -12,12 +12,13 @@ from tracker.report.figure import png
 
 CSS = """
 @page { size: A4; margin: 16mm 16mm 20mm 16mm; }
-body { font-family: "DejaVu Sans", "Segoe UI", Arial, sans-serif; color: #1f2d3a; font-size: 10pt; line-height: 1.35;
-       max-width: 190mm; margin: 1.5em auto; padding: 0 1em; }
+body { font-family: "DejaVu Sans", "Segoe UI", Arial, sans-serif; color: #1f2d3a; font-size: 10pt;
+       line-height: 1.35; max-width: 190mm; margin: 1.5em auto; padding: 0 1em; }
 h1 { color: #0f6e74; font-size: 16pt; margin: 0 0 0.4em; }
 h2 { color: #0f6e74; font-size: 12.5pt; margin: 1.2em 0 0.35em; border-bottom: 1px solid #c9d2cf; }
 h3 { font-size: 10pt; margin: 0.8em 0 0.2em; }
-table { border-collapse: collapse; width: 100%; margin: 0.25em 0 0.5em; font-size: 8.5pt; page-break-inside: auto; }
+table { border-collapse: collapse; width: 100%; margin: 0.25em 0 0.5em; font-size: 8.5pt;
+        page-break-inside: auto; }
 th, td { text-align: left; vertical-align: top; padding: 2px 4px; border-bottom: 1px solid #c9d2cf; }
 th { background: #e8eeec; }
 tr { page-break-inside: avoid; }
@@ -60,7 +61,9 @@ def render(report: FollowUpReport, created: dt.datetime) -> bytes:
         f"<title>{escape(report.title)}</title><style>{CSS}</style></head><body>",
         f"<h1>{escape(report.title)}</h1>",
         f'<p class="caution">{escape(report.caution)}</p>',
-        '<table class="facts"><tbody>' + "".join(f"<tr><th>{escape(k)}</th><td>{escape(v)}</td></tr>" for k, v in report.facts) + "</tbody></table>",
+        '<table class="facts"><tbody>'
+        + "".join(f"<tr><th>{escape(k)}</th><td>{escape(v)}</td></tr>" for k, v in report.facts)
+        + "</tbody></table>",
     ]
     for section in report.sections:
         parts.append(f"<section><h2>{escape(section.title)}</h2>")
@@ -70,9 +73,15 @@ def render(report: FollowUpReport, created: dt.datetime) -> bytes:
     parts.append(f'<img alt="{escape(report.figure.alt)}" src="data:image/png;base64,{picture}">')
     parts.append(f"<figcaption>{escape(report.figure.caption)}</figcaption></figure></section>")
     if report.sources:
-        parts.append("<section><h2>Sources</h2>" + "".join(f'<p class="note">{escape(s)}</p>' for s in report.sources) + "</section>")
+        parts.append(
+            "<section><h2>Sources</h2>"
+            + "".join(f'<p class="note">{escape(s)}</p>' for s in report.sources)
+            + "</section>"
+        )
     parts.append(f'<p class="caution">{escape(report.caution)}</p>')
-    parts.append(f"<footer>{escape(report.patient)} · visit {report.visit_date.isoformat()} · produced {stamp:%Y-%m-%d %H:%M} UTC "
-                 f"by ncs-tracker {escape(report.version)}.</footer>")
+    parts.append(
+        f"<footer>{escape(report.patient)} · visit {report.visit_date.isoformat()} · produced "
+        f"{stamp:%Y-%m-%d %H:%M} UTC by ncs-tracker {escape(report.version)}.</footer>"
+    )
     parts.append("</body></html>\n")
     return "\n".join(parts).encode("utf-8")

@@ -16,18 +16,24 @@ def format_of(path: Path) -> str:
     """``pdf`` or ``html`` from the file's extension; anything else is refused."""
     chosen = FORMATS.get(path.suffix.lower())
     if chosen is None:
-        raise TrackerError(f"Unsupported report file type {path.suffix or '(none)'!r} for {path.name}; use a name ending in .pdf or .html.")
+        raise TrackerError(
+            f"Unsupported report file type {path.suffix or '(none)'!r} for {path.name}; use a name ending in "
+            ".pdf or .html."
+        )
     return chosen
 
 
 def creation_stamp() -> dt.datetime:
-    """Now (UTC), or the moment ``SOURCE_DATE_EPOCH`` names (reproducible-builds convention) when it is set."""
+    """Now (UTC), or the moment ``SOURCE_DATE_EPOCH`` names (reproducible-builds
+    convention) when it is set."""
     epoch = os.environ.get("SOURCE_DATE_EPOCH", "").strip()
     if epoch:
         try:
             return dt.datetime.fromtimestamp(int(epoch), tz=dt.timezone.utc)
         except (ValueError, OverflowError, OSError):
-            raise TrackerError(f"SOURCE_DATE_EPOCH must be whole seconds since 1970-01-01, got {epoch!r}") from None
+            raise TrackerError(
+                f"SOURCE_DATE_EPOCH must be whole seconds since 1970-01-01, got {epoch!r}"
+            ) from None
     return dt.datetime.now(dt.timezone.utc).replace(microsecond=0)
 
 
@@ -42,7 +48,9 @@ def write_private(path: Path, data: bytes, *, overwrite: bool) -> None:
     """Write ``data`` to ``path`` with mode 0600: a temporary file in the same folder, then a rename (an
     existing file is replaced only with ``overwrite``; otherwise a file that appeared meanwhile is kept)."""
     refuse_existing(path, overwrite)
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)  # mode 0600
+    handle, temporary = tempfile.mkstemp(
+        prefix=f".{path.name}.", suffix=".partial", dir=path.parent
+    )  # mode 0600
     try:
         with os.fdopen(handle, "wb") as stream:
             stream.write(data)
@@ -55,7 +63,9 @@ def write_private(path: Path, data: bytes, *, overwrite: bool) -> None:
             try:
                 os.link(temporary, path)  # fails if the name was taken meanwhile: never clobbers
             except FileExistsError:
-                raise TrackerError(f"{path} already exists; choose another --out or add --overwrite.") from None
+                raise TrackerError(
+                    f"{path} already exists; choose another --out or add --overwrite."
+                ) from None
             os.unlink(temporary)
     finally:
         if os.path.exists(temporary):

@@ -18,7 +18,15 @@ from reportlab.lib.styles import ParagraphStyle
 from reportlab.lib.units import mm
 from reportlab.pdfbase import pdfmetrics
 from reportlab.pdfbase.ttfonts import TTFont
-from reportlab.platypus import Image, KeepTogether, Paragraph, SimpleDocTemplate, Spacer, Table as PdfTable, TableStyle
+from reportlab.platypus import (
+    Image,
+    KeepTogether,
+    Paragraph,
+    SimpleDocTemplate,
+    Spacer,
+    Table as PdfTable,
+    TableStyle,
+)
 
 from tracker.report.content import FollowUpReport, Heading, Table
 from tracker.report.figure import png
@@ -45,17 +53,45 @@ def _register_fonts() -> None:
 def _styles() -> dict[str, ParagraphStyle]:
     base = ParagraphStyle("body", fontName=FONT, fontSize=9, leading=11.5, textColor=INK, spaceAfter=3)
     return {
-        "title": ParagraphStyle("title", parent=base, fontName=BOLD, fontSize=15, leading=19, textColor=ACCENT, spaceAfter=6),
-        "section": ParagraphStyle("section", parent=base, fontName=BOLD, fontSize=12, leading=15, textColor=ACCENT, spaceBefore=9, spaceAfter=4),
-        "heading": ParagraphStyle("heading", parent=base, fontName=BOLD, fontSize=9.5, leading=12, spaceBefore=5, spaceAfter=2),
+        "title": ParagraphStyle(
+            "title", parent=base, fontName=BOLD, fontSize=15, leading=19, textColor=ACCENT, spaceAfter=6
+        ),
+        "section": ParagraphStyle(
+            "section",
+            parent=base,
+            fontName=BOLD,
+            fontSize=12,
+            leading=15,
+            textColor=ACCENT,
+            spaceBefore=9,
+            spaceAfter=4,
+        ),
+        "heading": ParagraphStyle(
+            "heading", parent=base, fontName=BOLD, fontSize=9.5, leading=12, spaceBefore=5, spaceAfter=2
+        ),
         "body": base,
-        "note": ParagraphStyle("note", parent=base, fontSize=7.5, leading=9.5, textColor=colors.HexColor("#44525e")),
+        "note": ParagraphStyle(
+            "note", parent=base, fontSize=7.5, leading=9.5, textColor=colors.HexColor("#44525e")
+        ),
         "outcome": ParagraphStyle("outcome", parent=base, fontName=BOLD, fontSize=11, leading=14),
-        "caution": ParagraphStyle("caution", parent=base, fontName=BOLD, fontSize=9, leading=11.5, backColor=CAUTION_FILL,
-                                  borderColor=colors.HexColor("#E69F00"), borderWidth=0.8, borderPadding=5, spaceBefore=4, spaceAfter=8),
+        "caution": ParagraphStyle(
+            "caution",
+            parent=base,
+            fontName=BOLD,
+            fontSize=9,
+            leading=11.5,
+            backColor=CAUTION_FILL,
+            borderColor=colors.HexColor("#E69F00"),
+            borderWidth=0.8,
+            borderPadding=5,
+            spaceBefore=4,
+            spaceAfter=8,
+        ),
         "cell": ParagraphStyle("cell", parent=base, fontSize=7.5, leading=9, spaceAfter=0),
         "head": ParagraphStyle("head", parent=base, fontName=BOLD, fontSize=7.5, leading=9, spaceAfter=0),
-        "footer": ParagraphStyle("footer", parent=base, fontSize=6.5, leading=8, textColor=colors.HexColor("#44525e"), spaceAfter=0),
+        "footer": ParagraphStyle(
+            "footer", parent=base, fontSize=6.5, leading=8, textColor=colors.HexColor("#44525e"), spaceAfter=0
+        ),
     }
 
 
@@ -68,35 +104,57 @@ def _table(block: Table, styles, width: float):
         return _p(block.empty or "None.", styles["body"])
     total = sum(block.widths)
     widths = [width * w / total for w in block.widths]
-    data = [[_p(h, styles["head"]) for h in block.header]] + [[_p(c, styles["cell"]) for c in row] for row in block.rows]
+    data = [[_p(h, styles["head"]) for h in block.header]] + [
+        [_p(c, styles["cell"]) for c in row] for row in block.rows
+    ]
     table = PdfTable(data, colWidths=widths, repeatRows=1, hAlign="LEFT")
-    table.setStyle(TableStyle([
-        ("BACKGROUND", (0, 0), (-1, 0), HEAD_FILL),
-        ("LINEBELOW", (0, 0), (-1, -1), 0.4, RULE),
-        ("VALIGN", (0, 0), (-1, -1), "TOP"),
-        ("LEFTPADDING", (0, 0), (-1, -1), 2.5),
-        ("RIGHTPADDING", (0, 0), (-1, -1), 2.5),
-        ("TOPPADDING", (0, 0), (-1, -1), 1.5),
-        ("BOTTOMPADDING", (0, 0), (-1, -1), 2),
-    ]))
+    table.setStyle(
+        TableStyle(
+            [
+                ("BACKGROUND", (0, 0), (-1, 0), HEAD_FILL),
+                ("LINEBELOW", (0, 0), (-1, -1), 0.4, RULE),
+                ("VALIGN", (0, 0), (-1, -1), "TOP"),
+                ("LEFTPADDING", (0, 0), (-1, -1), 2.5),
+                ("RIGHTPADDING", (0, 0), (-1, -1), 2.5),
+                ("TOPPADDING", (0, 0), (-1, -1), 1.5),
+                ("BOTTOMPADDING", (0, 0), (-1, -1), 2),
+            ]
+        )
+    )
     return table
 
 
 def render(report: FollowUpReport, created: dt.datetime) -> bytes:
-    """The report as PDF bytes; ``created`` (aware, UTC) is printed in the footer and stored as the PDF dates."""
+    """The report as PDF bytes; ``created`` (aware, UTC) is printed in the
+    footer and stored as the PDF dates."""
     _register_fonts()
     styles = _styles()
     buffer = io.BytesIO()
     stamp = created.astimezone(dt.timezone.utc)
     document = SimpleDocTemplate(
-        buffer, pagesize=A4, leftMargin=MARGIN, rightMargin=MARGIN, topMargin=MARGIN, bottomMargin=MARGIN + FOOTER,
-        title=report.title, author="ncs-tracker", subject="Nerve conduction follow-up report (decision support)",
-        creator=f"ncs-tracker {report.version}", producer=f"ncs-tracker {report.version}", invariant=1,
+        buffer,
+        pagesize=A4,
+        leftMargin=MARGIN,
+        rightMargin=MARGIN,
+        topMargin=MARGIN,
+        bottomMargin=MARGIN + FOOTER,
+        title=report.title,
+        author="ncs-tracker",
+        subject="Nerve conduction follow-up report (decision support)",
+        creator=f"ncs-tracker {report.version}",
+        producer=f"ncs-tracker {report.version}",
+        invariant=1,
     )
     width = A4[0] - 2 * MARGIN
     story = [_p(report.title, styles["title"]), _p(report.caution, styles["caution"])]
-    facts = PdfTable([[_p(k, styles["head"]), _p(v, styles["cell"])] for k, v in report.facts], colWidths=[52 * mm, width - 52 * mm], hAlign="LEFT")
-    facts.setStyle(TableStyle([("LINEBELOW", (0, 0), (-1, -1), 0.4, RULE), ("VALIGN", (0, 0), (-1, -1), "TOP")]))
+    facts = PdfTable(
+        [[_p(k, styles["head"]), _p(v, styles["cell"])] for k, v in report.facts],
+        colWidths=[52 * mm, width - 52 * mm],
+        hAlign="LEFT",
+    )
+    facts.setStyle(
+        TableStyle([("LINEBELOW", (0, 0), (-1, -1), 0.4, RULE), ("VALIGN", (0, 0), (-1, -1), "TOP")])
+    )
     story.append(facts)
     for section in report.sections:
         story.append(_p(section.title, styles["section"]))
@@ -105,7 +163,11 @@ def render(report: FollowUpReport, created: dt.datetime) -> bytes:
             if isinstance(block, Heading):
                 pending_heading = _p(block.text, styles["heading"])
                 continue
-            flowable = _table(block, styles, width) if isinstance(block, Table) else _p(block.text, styles.get(block.kind, styles["body"]))
+            flowable = (
+                _table(block, styles, width)
+                if isinstance(block, Table)
+                else _p(block.text, styles.get(block.kind, styles["body"]))
+            )
             if pending_heading is not None:  # a heading never stands alone at the foot of a page
                 story.append(KeepTogether([pending_heading, flowable]))
                 pending_heading = None

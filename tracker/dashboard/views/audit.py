@@ -17,9 +17,13 @@ who = cols[2].text_input("User", key="audit_user").strip() or None
 with reading() as session:
     lines = event_lines(session, patient=patient, since=since, username=who, limit=500)
 st.dataframe(
-    pd.DataFrame([{"when (UTC)": x.when, "who": x.who, "what": x.what, "before → after": x.change} for x in lines],
-                 columns=["when (UTC)", "who", "what", "before → after"]),
-    hide_index=True, width="stretch", key="audit_table",
+    pd.DataFrame(
+        [{"when (UTC)": x.when, "who": x.who, "what": x.what, "before → after": x.change} for x in lines],
+        columns=["when (UTC)", "who", "what", "before → after"],
+    ),
+    hide_index=True,
+    width="stretch",
+    key="audit_table",
 )
 st.caption(f"The newest {len(lines)} events that match (at most 500).")
 if st.button("Check the chain", key="audit_verify"):

@@ -10,7 +10,13 @@ import streamlit as st
 
 from tracker.dashboard import figures, reads, style, tables
 from tracker.dashboard.state import database_url, require
-from tracker.dashboard.widgets import criteria_picker, criteria_title, limits_picker, patient_picker, rule_set_picker
+from tracker.dashboard.widgets import (
+    criteria_picker,
+    criteria_title,
+    limits_picker,
+    patient_picker,
+    rule_set_picker,
+)
 from tracker.domain.labels import DIAGNOSIS_SHORT
 from tracker.services.follow_up import PARAMETERS
 from tracker.services.response import RegimenCard, sdc_words
@@ -47,13 +53,19 @@ if code:
         limits_name = limits_picker(key="follow_limits")
     with top[3]:
         rules_id = rule_set_picker(
-            "Response rule set", key="follow_rules", help="Which published thresholds classify each regimen as improved, stable or worsened."
+            "Response rule set",
+            key="follow_rules",
+            help="Which published thresholds classify each regimen as improved, stable or worsened.",
         )
     _, cold_limbs = reads.clinic_settings(url)
     view = reads.response(url, code, rules_id, limits_name)
     running = [c for c in view.cards if c.ongoing]
     diagnosis = view.response.diagnosis
-    fu_line = f"**{code}** · diagnosis **{DIAGNOSIS_SHORT.get(diagnosis, diagnosis) if diagnosis else 'not stated'}** · {len(view.response.visit_dates)} visits"
+    fu_line = (
+        f"**{code}** · diagnosis "
+        f"**{DIAGNOSIS_SHORT.get(diagnosis, diagnosis) if diagnosis else 'not stated'}** · "
+        f"{len(view.response.visit_dates)} visits"
+    )
     if running:
         fu_line += f" · ongoing: {running[0].regimen} · course: **{running[0].word}**"
     st.markdown(fu_line)
@@ -74,33 +86,60 @@ if code:
                 regimen_card(card)
 
     parameter = st.radio(
-        "Parameter", list(PARAMETERS), key="follow_parameter", horizontal=True, format_func=lambda p: f"{PARAMETERS[p].label} ({PARAMETERS[p].unit})"
+        "Parameter",
+        list(PARAMETERS),
+        key="follow_parameter",
+        horizontal=True,
+        format_func=lambda p: f"{PARAMETERS[p].label} ({PARAMETERS[p].unit})",
     )
     fu = reads.trend(url, code, parameter, criteria, limits_name, cold_limbs)
     st.plotly_chart(figures.outcome_strip(fu), key="follow_strip", width="stretch")
-    st.plotly_chart(figures.trend_figure(fu, regimens=view.response.regimens, steps=view.steps), key="follow_trend", width="stretch")
+    st.plotly_chart(
+        figures.trend_figure(fu, regimens=view.response.regimens, steps=view.steps),
+        key="follow_trend",
+        width="stretch",
+    )
     has_threshold = (fu.references["kind"] == "criteria threshold").any()
     has_limit = (fu.references["kind"] == "normal limit").any()
     st.caption(
-        (f"Dashed green: normal limit ({fu.limits.name} v{fu.limits.version}). " if has_limit else "No normal limit applies to this parameter. ")
-        + (f"Dotted vermillion: threshold of {criteria_title(fu.criteria)} (version {fu.criteria_version}). " if has_threshold
-           else f"{criteria_title(fu.criteria)} sets no threshold on this parameter. ")
+        (
+            f"Dashed green: normal limit ({fu.limits.name} v{fu.limits.version}). "
+            if has_limit
+            else "No normal limit applies to this parameter. "
+        )
+        + (
+            f"Dotted vermillion: threshold of {criteria_title(fu.criteria)} (version {fu.criteria_version}). "
+            if has_threshold
+            else f"{criteria_title(fu.criteria)} sets no threshold on this parameter. "
+        )
         + f"Open circles with a dot: limb colder than the guideline minimum (policy: {cold_limbs}). "
-        + "Open triangles: change since the previous study beyond the smallest detectable change (▼ worse, ▲ better; "
+        + (
+            "Open triangles: change since the previous study beyond the smallest detectable change "
+            "(▼ worse, ▲ better; "
+        )
         + f"hover for the numbers). {sdc_words(view, parameter)} Shaded: regimens, labelled below the axis."
     )
     if len(view.panels):
-        st.plotly_chart(figures.scores_figure(view, window=figures.time_range(fu)), key="follow_scores", width="stretch")
+        st.plotly_chart(
+            figures.scores_figure(view, window=figures.time_range(fu)), key="follow_scores", width="stretch"
+        )
         st.caption(
-            "One panel per scale, each on its own range. Green band: ± the scale's minimal important change around the "
-            "baseline of the running regimen (dotted line); a score outside it changed by at least that much. "
-            "Open diamonds: computed scores. Shaded: regimens, labelled below the axis."
-            + ("" if view.response.current else " No regimen runs at the latest visit or score: no band is drawn.")
+            "One panel per scale, each on its own range. Green band: ± the scale's minimal important change "
+            "around the baseline of the running regimen (dotted line); a score outside it changed by at "
+            "least that much. Open diamonds: computed scores. Shaded: regimens, labelled below the axis."
+            + (
+                ""
+                if view.response.current
+                else " No regimen runs at the latest visit or score: no band is drawn."
+            )
         )
     else:
         st.caption("No clinical scores recorded.")
     with st.expander("Values plotted", expanded=False):
         st.dataframe(
-            tables.plotted_values(fu), hide_index=True, width="stretch", key="follow_values",
+            tables.plotted_values(fu),
+            hide_index=True,
+            width="stretch",
+            key="follow_values",
             column_config={"visit date": st.column_config.DateColumn("visit date")},
         )
