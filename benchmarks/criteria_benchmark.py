@@ -32,9 +32,29 @@ MOTOR = {  # nerve: (site labels, distal distance, segment distances, distal lat
     "tibial": (("ankle", "popliteal_fossa"), 90, (400,), 4.5, 46, 10.0, 50),
 }
 SENSORY = {"median": (130, 55, 30), "ulnar": (110, 55, 25), "radial": (100, 55, 25), "sural": (140, 48, 15)}
-HEADER = ["patient", "visit_date", "nerve", "side", "modality", "site_order", "site", "distance_mm", "latency_ms", "amplitude_mv",
-          "amplitude_uv", "duration_ms", "area_mvms", "temperature_c", "lff_hz", "f_latency_ms", "height_cm", "sex", "birth_year",
-          "diagnosis", "phenotype"]
+HEADER = [
+    "patient",
+    "visit_date",
+    "nerve",
+    "side",
+    "modality",
+    "site_order",
+    "site",
+    "distance_mm",
+    "latency_ms",
+    "amplitude_mv",
+    "amplitude_uv",
+    "duration_ms",
+    "area_mvms",
+    "temperature_c",
+    "lff_hz",
+    "f_latency_ms",
+    "height_cm",
+    "sex",
+    "birth_year",
+    "diagnosis",
+    "phenotype",
+]
 
 
 def write_file(path: Path, patients: int, visits: int) -> int:
@@ -44,7 +64,12 @@ def write_file(path: Path, patients: int, visits: int) -> int:
         writer = csv.writer(handle)
         writer.writerow(HEADER)
         for p in range(patients):
-            code, sex, born, height = f"C{p:05d}", rng.choice(["female", "male"]), rng.randint(1940, 1995), rng.randint(150, 195)
+            code, sex, born, height = (
+                f"C{p:05d}",
+                rng.choice(["female", "male"]),
+                rng.randint(1940, 1995),
+                rng.randint(150, 195),
+            )
             severity = rng.uniform(0, 1)
             for v in range(visits):
                 date = f"{2020 + v}-{rng.randint(1, 12):02d}-{rng.randint(1, 28):02d}"
@@ -58,15 +83,52 @@ def write_file(path: Path, patients: int, visits: int) -> int:
                             latency += distances[order] / (cv * slow)
                             amplitude *= rng.uniform(0.4 if severity > 0.6 else 0.8, 0.98)
                             duration *= rng.uniform(1.0, 1.5)
-                        writer.writerow([code, date, nerve, "right", "motor", order + 1, label, distances[order], f"{latency:.2f}",
-                                         f"{amplitude:.1f}", "", f"{duration:.1f}", f"{amplitude * 2.4:.1f}",
-                                         temperature, 2, f"{f / slow:.1f}", *common])
+                        writer.writerow(
+                            [
+                                code,
+                                date,
+                                nerve,
+                                "right",
+                                "motor",
+                                order + 1,
+                                label,
+                                distances[order],
+                                f"{latency:.2f}",
+                                f"{amplitude:.1f}",
+                                "",
+                                f"{duration:.1f}",
+                                f"{amplitude * 2.4:.1f}",
+                                temperature,
+                                2,
+                                f"{f / slow:.1f}",
+                                *common,
+                            ]
+                        )
                         rows += 1
                 for nerve, (distance, cv, amp) in SENSORY.items():
                     snap = amp * rng.uniform(0.2, 1.3)
                     latency = distance / (cv * (1 - 0.4 * severity * rng.uniform(0.5, 1)))
-                    writer.writerow([code, date, nerve, "right", "sensory", 1, "", distance, f"{latency:.2f}", "", f"{snap:.1f}", "", "",
-                                     f"{rng.uniform(31, 35):.1f}", 20, "", *common])
+                    writer.writerow(
+                        [
+                            code,
+                            date,
+                            nerve,
+                            "right",
+                            "sensory",
+                            1,
+                            "",
+                            distance,
+                            f"{latency:.2f}",
+                            "",
+                            f"{snap:.1f}",
+                            "",
+                            "",
+                            f"{rng.uniform(31, 35):.1f}",
+                            20,
+                            "",
+                            *common,
+                        ]
+                    )
                     rows += 1
     return rows
 
@@ -100,10 +162,15 @@ def main() -> None:
         with sessions() as session:
             load_seconds, (visits, tests, sites) = best(lambda: load_frames(session), args.repeat)
         limit_rows = limits.default_limits()
-        evaluate_seconds, results = best(lambda: engine.evaluate(visits, tests, sites, limit_rows, criteria), args.repeat)
+        evaluate_seconds, results = best(
+            lambda: engine.evaluate(visits, tests, sites, limit_rows, criteria), args.repeat
+        )
         database.dispose()
     findings = sum(len(r.findings) for r in results.values())
-    print(f"cohort: {len(visits):,} visits, {len(tests):,} nerve tests, {len(sites):,} stimulation sites ({rows:,} file rows)")
+    print(
+        f"cohort: {len(visits):,} visits, {len(tests):,} nerve tests, {len(sites):,} stimulation sites "
+        f"({rows:,} file rows)"
+    )
     print(f"criteria sets: {', '.join(criteria)} — {findings:,} findings")
     print(f"load from SQLite into DataFrames: best {load_seconds:.2f} s of {args.repeat}")
     print(f"evaluate every set, one vectorised pass: best {evaluate_seconds:.2f} s of {args.repeat}")

@@ -15,11 +15,12 @@ browser draw it? Two measurements, printed in one run (issue 4, "Performance").
    The page is timed with Streamlit's ``AppTest``: a fresh app for each run, the patient chosen in the
    shared session state, one run of the default page, ``switch_page`` to the follow-up page, then every
    ``st.cache_data`` and ``st.cache_resource`` entry is cleared and the database engine alone is created
-   again, untimed (engine creation and the schema check are a fixed cost per process, not page work), and
-   the follow-up ``run()`` is timed: a cold page for that patient. A timing counts only when the page raised
-   no exception, showed no error, drew a Plotly chart and names the target with its 30 visits. Runs alternate small/large to spread machine noise; the medians
-   and their ratio are printed (target: large / small ≤ 1.5). For information, the services the page calls
-   are also timed directly on both databases, to show where any difference comes from.
+   again, untimed (engine creation and the schema check are a fixed cost per process, not page work),
+   and the follow-up ``run()`` is timed: a cold page for that patient. A timing counts only when the page
+   raised no exception, showed no error, drew a Plotly chart and names the target with its 30 visits.
+   Runs alternate small/large to spread machine noise; the medians and their ratio are printed (target:
+   large / small ≤ 1.5). For information, the services the page calls are also timed directly on both
+   databases, to show where any difference comes from.
 
 2. Browser draw time. The demo database is built from ``demo_data/``, ``ncs-tracker serve`` is started on
    a free local port, and Debian's Chromium (``/usr/bin/chromium``, driven by Playwright; never a downloaded
@@ -67,19 +68,55 @@ CHUNK = 250  # patients per imported file (progress, and memory of one all-or-no
 DEMO_PATIENT = "DEMO-01"
 CHROMIUM = Path("/usr/bin/chromium")
 CHROMIUM_ARGS = [
-    "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update",
-    "--disable-sync", "--no-first-run", "--disable-quic",
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--no-first-run",
+    "--disable-quic",
 ]
 PLOT_LINE = ".js-plotly-plot .scatterlayer path.js-line"
 
-# -- invented data: interchange files ---------------------------------------------------------------------------
+# -- invented data: interchange files ------------------------------------------------------------------------
 
 MEASUREMENT_HEADER = [
-    "patient", "visit_date", "nerve", "side", "modality", "site_order", "site", "distance_mm", "latency_ms", "peak_latency_ms",
-    "amplitude_mv", "amplitude_uv", "duration_ms", "area_mvms", "temperature_c", "lff_hz", "f_latency_ms", "f_persistence_pct",
-    "recording_site", "height_cm", "sex", "birth_year", "diagnosis", "phenotype",
+    "patient",
+    "visit_date",
+    "nerve",
+    "side",
+    "modality",
+    "site_order",
+    "site",
+    "distance_mm",
+    "latency_ms",
+    "peak_latency_ms",
+    "amplitude_mv",
+    "amplitude_uv",
+    "duration_ms",
+    "area_mvms",
+    "temperature_c",
+    "lff_hz",
+    "f_latency_ms",
+    "f_persistence_pct",
+    "recording_site",
+    "height_cm",
+    "sex",
+    "birth_year",
+    "diagnosis",
+    "phenotype",
 ]
-TREATMENT_HEADER = ["patient", "therapy", "start_date", "end_date", "dose", "dose_unit", "interval_days", "note"]
+TREATMENT_HEADER = [
+    "patient",
+    "therapy",
+    "start_date",
+    "end_date",
+    "dose",
+    "dose_unit",
+    "interval_days",
+    "note",
+]
 SCORE_HEADER = ["patient", "date", "scale", "value"]
 
 
@@ -107,8 +144,26 @@ class Sensory:
 
 MOTOR = {
     "median": Motor(("wrist", "elbow"), (70, 230), 3.6, 56, 8.5, 27, "abductor_pollicis_brevis", "arm"),
-    "ulnar": Motor(("wrist", "below_elbow", "above_elbow"), (70, 210, 100), 2.9, 58, 9.0, 28, "abductor_digiti_minimi", "arm"),
-    "fibular": Motor(("ankle", "below_fibular_head", "popliteal_fossa"), (90, 320, 100), 4.8, 47, 5.5, 48, "extensor_digitorum_brevis", "leg"),
+    "ulnar": Motor(
+        ("wrist", "below_elbow", "above_elbow"),
+        (70, 210, 100),
+        2.9,
+        58,
+        9.0,
+        28,
+        "abductor_digiti_minimi",
+        "arm",
+    ),
+    "fibular": Motor(
+        ("ankle", "below_fibular_head", "popliteal_fossa"),
+        (90, 320, 100),
+        4.8,
+        47,
+        5.5,
+        48,
+        "extensor_digitorum_brevis",
+        "leg",
+    ),
     "tibial": Motor(("ankle", "popliteal_fossa"), (90, 400), 4.5, 46, 11.0, 49, "abductor_hallucis", "leg"),
 }
 SENSORY = {
@@ -135,7 +190,11 @@ class Patient:
 def limb_temperature(limb: str, rng: random.Random) -> float:
     """Skin temperature: about one test in ten below the guideline minimum (arm 33 °C, leg 30 °C)."""
     minimum = 33.0 if limb == "arm" else 30.0
-    return rng.uniform(minimum - 1.5, minimum - 0.1) if rng.random() < 0.1 else rng.uniform(minimum, minimum + 2.5)
+    return (
+        rng.uniform(minimum - 1.5, minimum - 0.1)
+        if rng.random() < 0.1
+        else rng.uniform(minimum, minimum + 2.5)
+    )
 
 
 def visit_rows(patient: Patient, date: dt.date, severity: float, rng: random.Random) -> list[list[object]]:
@@ -155,21 +214,59 @@ def visit_rows(patient: Patient, date: dt.date, severity: float, rng: random.Ran
                 latency += distance / (m.cv_m_s * slow * rng.uniform(0.92, 1.08))
                 amplitude *= rng.uniform(0.55 if severity > 0.6 else 0.8, 0.98)
                 duration *= rng.uniform(1.0, 1.35)
-            rows.append([
-                patient.code, date.isoformat(), nerve, "right", "motor", order + 1, label, distance, f"{latency:.2f}", "",
-                f"{amplitude:.1f}", "", f"{duration:.1f}", f"{amplitude * duration * 0.45:.1f}", f"{temperature:.1f}", 2,
-                f"{f_latency:.1f}", persistence, m.recording_site, *common,
-            ])
+            rows.append(
+                [
+                    patient.code,
+                    date.isoformat(),
+                    nerve,
+                    "right",
+                    "motor",
+                    order + 1,
+                    label,
+                    distance,
+                    f"{latency:.2f}",
+                    "",
+                    f"{amplitude:.1f}",
+                    "",
+                    f"{duration:.1f}",
+                    f"{amplitude * duration * 0.45:.1f}",
+                    f"{temperature:.1f}",
+                    2,
+                    f"{f_latency:.1f}",
+                    persistence,
+                    m.recording_site,
+                    *common,
+                ]
+            )
     for nerve, s in SENSORY.items():
         slow = (1 - 0.4 * severity) * rng.uniform(0.9, 1.05)
         latency = s.distance_mm / (s.cv_m_s * slow)
         snap = s.snap_uv * rng.uniform(0.5, 1.2) * (1 - 0.7 * severity)
         temperature = limb_temperature(s.limb, rng)
-        rows.append([
-            patient.code, date.isoformat(), nerve, "right", "sensory", 1, s.site, s.distance_mm, f"{latency:.2f}",
-            f"{latency + rng.uniform(0.6, 0.9):.2f}", "", f"{snap:.1f}", "", "", f"{temperature:.1f}", 20, "", "", s.recording_site,
-            *common,
-        ])
+        rows.append(
+            [
+                patient.code,
+                date.isoformat(),
+                nerve,
+                "right",
+                "sensory",
+                1,
+                s.site,
+                s.distance_mm,
+                f"{latency:.2f}",
+                f"{latency + rng.uniform(0.6, 0.9):.2f}",
+                "",
+                f"{snap:.1f}",
+                "",
+                "",
+                f"{temperature:.1f}",
+                20,
+                "",
+                "",
+                s.recording_site,
+                *common,
+            ]
+        )
     return rows
 
 
@@ -201,9 +298,36 @@ def target_patient() -> Patient:
     first = patient.visits[0][0]
     relapse, restored = patient.visits[15][0], patient.visits[21][0]
     patient.treatments = [
-        [TARGET, "ivig", first + dt.timedelta(days=6), first + dt.timedelta(days=10), 2, "g/kg", "", "loading course over 5 days"],
-        [TARGET, "ivig", first + dt.timedelta(days=31), relapse - dt.timedelta(days=1), 1, "g/kg", 21, "maintenance"],
-        [TARGET, "ivig", relapse, restored - dt.timedelta(days=1), 1, "g/kg", 35, "interval extended (spacing trial)"],
+        [
+            TARGET,
+            "ivig",
+            first + dt.timedelta(days=6),
+            first + dt.timedelta(days=10),
+            2,
+            "g/kg",
+            "",
+            "loading course over 5 days",
+        ],
+        [
+            TARGET,
+            "ivig",
+            first + dt.timedelta(days=31),
+            relapse - dt.timedelta(days=1),
+            1,
+            "g/kg",
+            21,
+            "maintenance",
+        ],
+        [
+            TARGET,
+            "ivig",
+            relapse,
+            restored - dt.timedelta(days=1),
+            1,
+            "g/kg",
+            35,
+            "interval extended (spacing trial)",
+        ],
         [TARGET, "ivig", restored, "", 1, "g/kg", 21, "interval restored after relapse"],
     ]
     return patient
@@ -217,7 +341,15 @@ def cohort_patients(count: int) -> Iterator[Patient]:
         code = f"BENCH-{number:05d}"
         diagnosis = rng.choices(["cidp", "mmn", "gbs", "other"], weights=[70, 10, 10, 10])[0]
         phenotype = rng.choice(["typical", "typical", "distal", "multifocal"]) if diagnosis == "cidp" else ""
-        patient = Patient(code, rng.choice(["female", "male"]), rng.randint(1940, 1995), rng.randint(150, 195), diagnosis, phenotype, [])
+        patient = Patient(
+            code,
+            rng.choice(["female", "male"]),
+            rng.randint(1940, 1995),
+            rng.randint(150, 195),
+            diagnosis,
+            phenotype,
+            [],
+        )
         date = dt.date(2014, 1, 1) + dt.timedelta(days=rng.randint(0, 6 * 365))
         severity = rng.uniform(0.1, 1.0)
         for _ in range(rng.randint(3, 8)):
@@ -232,7 +364,9 @@ def cohort_patients(count: int) -> Iterator[Patient]:
             date += dt.timedelta(days=rng.randint(90, 300))
         if diagnosis in ("cidp", "mmn") and rng.random() < 0.7:
             start = patient.visits[0][0] + dt.timedelta(days=rng.randint(3, 20))
-            patient.treatments.append([code, "ivig", start, "", rng.choice([1, 2]), "g/kg", rng.choice([21, 28, 35]), ""])
+            patient.treatments.append(
+                [code, "ivig", start, "", rng.choice([1, 2]), "g/kg", rng.choice([21, 28, 35]), ""]
+            )
         yield patient
 
 
@@ -240,7 +374,15 @@ def write_files(folder: Path, patients: list[Patient], rng: random.Random) -> li
     """The measurements, treatments and scores files of these patients (treatment/score files only if any)."""
     files = [folder / "measurements.csv", folder / "treatments.csv", folder / "scores.csv"]
     tables: list[tuple[list[str], list[list[object]]]] = [
-        (MEASUREMENT_HEADER, [row for p in patients for date, severity in p.visits for row in visit_rows(p, date, severity, rng)]),
+        (
+            MEASUREMENT_HEADER,
+            [
+                row
+                for p in patients
+                for date, severity in p.visits
+                for row in visit_rows(p, date, severity, rng)
+            ],
+        ),
         (TREATMENT_HEADER, [row for p in patients for row in p.treatments]),
         (SCORE_HEADER, [row for p in patients for row in p.scores]),
     ]
@@ -256,7 +398,7 @@ def write_files(folder: Path, patients: list[Patient], rng: random.Random) -> li
     return written
 
 
-# -- building the databases ---------------------------------------------------------------------------------------
+# -- building the databases ----------------------------------------------------------------------------------
 
 
 def progress(text: str) -> None:
@@ -293,15 +435,19 @@ def build_database(name: str, patients_total: int, *, evaluate: str, rebuild: bo
     for leftover in (done, path, path.with_name(path.name + "-wal"), path.with_name(path.name + "-shm")):
         leftover.unlink(missing_ok=True)
     started = time.perf_counter()
-    progress(f"[{name}] building {patients_total:,} invented patients into {path} (evaluations: {evaluate} visits)")
+    progress(
+        f"[{name}] building {patients_total:,} invented patients into {path} (evaluations: {evaluate} visits)"
+    )
     migrate.upgrade(url)
     engine = make_engine(url)
     sessions = make_session_factory(engine)
     rng = random.Random(20261203)  # fixed random state for the measured values of the cohort
-    target_rng = random.Random(20261204)  # fixed random state for the target's values: the same in every database
+    target_rng = random.Random(
+        20261204
+    )  # fixed random state for the target's values: the same in every database
     groups: list[tuple[list[Patient], random.Random]] = [([target_patient()], target_rng)]
     others = list(cohort_patients(patients_total - 1))
-    groups += [(others[i:i + CHUNK], rng) for i in range(0, len(others), CHUNK)]
+    groups += [(others[i : i + CHUNK], rng) for i in range(0, len(others), CHUNK)]
     imported = 0
     with tempfile.TemporaryDirectory(prefix="ncs-bench-files-") as scratch:
         for number, (group, values_rng) in enumerate(groups, start=1):
@@ -312,39 +458,68 @@ def build_database(name: str, patients_total: int, *, evaluate: str, rebuild: bo
                 for file in files:
                     import_file(session, file, username="benchmark")
             imported += len(group)
-            progress(f"[{name}] imported {imported:,}/{patients_total:,} patients ({time.perf_counter() - started:.0f} s)")
+            progress(
+                f"[{name}] imported {imported:,}/{patients_total:,} patients "
+                f"({time.perf_counter() - started:.0f} s)"
+            )
     with sessions() as session:
-        visits = session.execute(select(Visit.id, Visit.patient_id, Visit.visit_date).order_by(Visit.id)).all()
+        visits = session.execute(
+            select(Visit.id, Visit.patient_id, Visit.visit_date).order_by(Visit.id)
+        ).all()
         target_id = find_patient(session, TARGET).id
     if evaluate == "latest":
         latest = {v.patient_id: v for v in sorted(visits, key=lambda v: v.visit_date)}
-        visit_ids = sorted({v.id for v in visits if v.patient_id == target_id} | {v.id for v in latest.values()})
+        visit_ids = sorted(
+            {v.id for v in visits if v.patient_id == target_id} | {v.id for v in latest.values()}
+        )
     else:
         visit_ids = [v.id for v in visits]
     step = 500
     for start in range(0, len(visit_ids), step):
         with sessions.begin() as session:
-            refresh_evaluations(session, visit_ids=visit_ids[start:start + step])
-        progress(f"[{name}] evaluated {min(start + step, len(visit_ids)):,}/{len(visit_ids):,} visits ({time.perf_counter() - started:.0f} s)")
+            refresh_evaluations(session, visit_ids=visit_ids[start : start + step])
+        progress(
+            f"[{name}] evaluated {min(start + step, len(visit_ids)):,}/{len(visit_ids):,} visits "
+            f"({time.perf_counter() - started:.0f} s)"
+        )
     engine.dispose()
-    done.write_text(f"{VERSION}, evaluations of {evaluate} visits, built in {time.perf_counter() - started:.0f} s\n", encoding="utf-8")
+    done.write_text(
+        f"{VERSION}, evaluations of {evaluate} visits, built in {time.perf_counter() - started:.0f} s\n",
+        encoding="utf-8",
+    )
     return url
 
 
 def database_counts(url: str) -> dict[str, int]:
     from sqlalchemy import func, select
 
-    from tracker.db.models import Evaluation, NerveTest, OutcomeScore, Patient as PatientRow, StimulationSite, Treatment, Visit
+    from tracker.db.models import (
+        Evaluation,
+        NerveTest,
+        OutcomeScore,
+        Patient as PatientRow,
+        StimulationSite,
+        Treatment,
+        Visit,
+    )
     from tracker.db.session import make_engine, make_session_factory
 
     engine = make_engine(url)
     try:
         with make_session_factory(engine)() as session:
             tables = {
-                "patients": PatientRow, "visits": Visit, "nerve tests": NerveTest, "stimulation sites": StimulationSite,
-                "treatments": Treatment, "scores": OutcomeScore, "saved evaluations": Evaluation,
+                "patients": PatientRow,
+                "visits": Visit,
+                "nerve tests": NerveTest,
+                "stimulation sites": StimulationSite,
+                "treatments": Treatment,
+                "scores": OutcomeScore,
+                "saved evaluations": Evaluation,
             }
-            return {label: int(session.scalar(select(func.count()).select_from(model))) for label, model in tables.items()}
+            return {
+                label: int(session.scalar(select(func.count()).select_from(model)))
+                for label, model in tables.items()
+            }
     finally:
         engine.dispose()
 
@@ -363,7 +538,7 @@ def target_fingerprint(url: str) -> tuple:
         engine.dispose()
 
 
-# -- 1. the follow-up page with AppTest ----------------------------------------------------------------------------
+# -- 1. the follow-up page with AppTest ----------------------------------------------------------------------
 
 
 def quiet_streamlit() -> None:
@@ -413,9 +588,11 @@ def median_text(times: list[float]) -> str:
 def page_benchmark(urls: dict[str, str], repeat: int) -> dict[str, list[float]]:
     times: dict[str, list[float]] = {name: [] for name in urls}
     for name, url in urls.items():
-        progress(f"[page] warm-up (imports, not counted) on the {name} database: {follow_up_seconds(url):.2f} s")
+        progress(
+            f"[page] warm-up (imports, not counted) on the {name} database: {follow_up_seconds(url):.2f} s"
+        )
     for attempt in range(repeat):
-        for name in (list(urls) if attempt % 2 == 0 else list(reversed(urls))):
+        for name in list(urls) if attempt % 2 == 0 else list(reversed(urls)):
             times[name].append(follow_up_seconds(urls[name]))
             progress(f"[page] run {attempt + 1}/{repeat} {name}: {times[name][-1]:.2f} s")
     return times
@@ -453,9 +630,14 @@ def service_breakdown(urls: dict[str, str]) -> list[tuple[str, dict[str, float]]
                 calls: dict[str, Callable[[], object]] = {
                     "records.patient_codes (patient picker)": lambda: patient_codes(session),
                     "limit_sets.list_limit_sets (limits picker)": lambda: list_limit_sets(session),
-                    "preferences (clinic settings)": lambda: (preferences.default_criteria(session), preferences.cold_limbs(session)),
+                    "preferences (clinic settings)": lambda: (
+                        preferences.default_criteria(session),
+                        preferences.cold_limbs(session),
+                    ),
                     "evaluation.load_frames (target's visits)": lambda: load_frames(session, visit_ids),
-                    "follow_up.follow_up (whole service)": lambda: follow_up(session, TARGET, parameter="cv", settings=Settings()),
+                    "follow_up.follow_up (whole service)": lambda: follow_up(
+                        session, TARGET, parameter="cv", settings=Settings()
+                    ),
                 }
                 for label, call in calls.items():
                     rows.setdefault(label, {})[name] = timed(call)
@@ -465,7 +647,7 @@ def service_breakdown(urls: dict[str, str]) -> list[tuple[str, dict[str, float]]
     return list(rows.items())
 
 
-# -- 2. the browser ------------------------------------------------------------------------------------------------
+# -- 2. the browser ------------------------------------------------------------------------------------------
 
 
 def free_port() -> int:
@@ -538,7 +720,9 @@ def browser_benchmark(repeat: int) -> tuple[list[float] | None, str]:
         command = [sys.executable, "-m", "tracker", "--db", url, "serve", "--port", str(port)]
         log = Path(folder) / "server.log"
         with open(log, "wb") as output:
-            process = subprocess.Popen(command, cwd=ROOT, stdout=output, stderr=subprocess.STDOUT, start_new_session=True)
+            process = subprocess.Popen(
+                command, cwd=ROOT, stdout=output, stderr=subprocess.STDOUT, start_new_session=True
+            )
         try:
             wait_healthy(port, process)
             progress(f"[browser] server up on port {port} (pid {process.pid})")
@@ -573,26 +757,37 @@ def browser_benchmark(repeat: int) -> tuple[list[float] | None, str]:
     return times, f"browser (Debian chromium {version}, Playwright, demo patient {DEMO_PATIENT})"
 
 
-# -- main ----------------------------------------------------------------------------------------------------------
+# -- main ----------------------------------------------------------------------------------------------------
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=(__doc__ or "").splitlines()[0])
-    parser.add_argument("--repeat", type=int, default=5, help="timed runs per database and browser loads (default 5)")
-    parser.add_argument("--large", type=int, default=LARGE_PATIENTS, help=f"patients in the large database (default {LARGE_PATIENTS})")
+    parser.add_argument(
+        "--repeat", type=int, default=5, help="timed runs per database and browser loads (default 5)"
+    )
+    parser.add_argument(
+        "--large",
+        type=int,
+        default=LARGE_PATIENTS,
+        help=f"patients in the large database (default {LARGE_PATIENTS})",
+    )
     parser.add_argument("--skip-browser", action="store_true", help="measure the AppTest part only")
     parser.add_argument("--rebuild", action="store_true", help="rebuild the cached databases")
     parser.add_argument(
-        "--evaluate", choices=["all", "latest"], default="all",
-        help="saved evaluations in the generated databases: of every visit (default; the first build of the large "
-        "database then takes long) or of the target's visits and each patient's latest visit only",
+        "--evaluate",
+        choices=["all", "latest"],
+        default="all",
+        help="saved evaluations in the generated databases: of every visit (default; the first build of the "
+        "large database then takes long) or of the target's visits and each patient's latest visit only",
     )
     args = parser.parse_args()
     started = time.perf_counter()
 
     names = {"small": SMALL_PATIENTS, "large": args.large}
     urls = {
-        name: build_database(f"{name}-{count}-eval-{args.evaluate}", count, evaluate=args.evaluate, rebuild=args.rebuild)
+        name: build_database(
+            f"{name}-{count}-eval-{args.evaluate}", count, evaluate=args.evaluate, rebuild=args.rebuild
+        )
         for name, count in names.items()
     }
     if target_fingerprint(urls["small"]) != target_fingerprint(urls["large"]):
@@ -610,20 +805,36 @@ def main() -> None:
     ratio = large / small
     out = io.StringIO()
     size = Path(urls["large"].removeprefix("sqlite:///")).stat().st_size / 1e9
-    print(f"large database (for information): {', '.join(f'{value:,} {label}' for label, value in counts.items())}; "
-          f"file {size:.2f} GB", file=out)
-    print(f"target patient {TARGET}: {TARGET_VISITS} visits × {NERVE_TESTS_PER_VISIT} nerve tests, identical in both databases", file=out)
+    print(
+        "large database (for information): "
+        f"{', '.join(f'{value:,} {label}' for label, value in counts.items())}; file {size:.2f} GB",
+        file=out,
+    )
+    print(
+        f"target patient {TARGET}: {TARGET_VISITS} visits × {NERVE_TESTS_PER_VISIT} nerve tests, identical "
+        "in both databases",
+        file=out,
+    )
     print("services called by the follow-up page, timed directly (median of 3):", file=out)
     for label, by_db in breakdown:
-        print(f"  {label:<46} small {by_db['small'] * 1000:8.1f} ms   large {by_db['large'] * 1000:8.1f} ms", file=out)
+        print(
+            f"  {label:<46} small {by_db['small'] * 1000:8.1f} ms   large {by_db['large'] * 1000:8.1f} ms",
+            file=out,
+        )
     print("--- summary ---", file=out)
-    print("follow-up page (AppTest, cold caches, engine created untimed): "
-          f"small db {names['small']:,} patients: {median_text(times['small'])}; "
-          f"large db {names['large']:,} patients: {median_text(times['large'])}", file=out)
+    print(
+        "follow-up page (AppTest, cold caches, engine created untimed): "
+        f"small db {names['small']:,} patients: {median_text(times['small'])}; "
+        f"large db {names['large']:,} patients: {median_text(times['large'])}",
+        file=out,
+    )
     print(f"ratio large/small: {ratio:.2f} (target ≤ 1.5){'' if ratio <= 1.5 else ' — MISSED'}", file=out)
     if browser_times:
         verdict = "" if statistics.median(browser_times) < 3 else " — MISSED"
-        print(f"{browser_line}: page to plot drawn {median_text(browser_times)} (target < 3 s){verdict}", file=out)
+        print(
+            f"{browser_line}: page to plot drawn {median_text(browser_times)} (target < 3 s){verdict}",
+            file=out,
+        )
     else:
         print(browser_line, file=out)
     print(f"whole benchmark: {time.perf_counter() - started:.0f} s on {os.cpu_count()} cores", file=out)

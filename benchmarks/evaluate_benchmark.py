@@ -1,8 +1,9 @@
 """Time `evaluate` (saving every visit's evaluation against every criteria set) on a generated cohort.
 
-Invented data from the criteria benchmark's generator. Run: `.venv/bin/python benchmarks/evaluate_benchmark.py`
-(`--patients N --visits M`). Prints the first evaluation (everything computed and saved) and a second one
-(nothing changed: fingerprints compared only), and the mean size of a saved trace.
+Invented data from the criteria benchmark's generator. Run: `.venv/bin/python
+benchmarks/evaluate_benchmark.py` (`--patients N --visits M`). Prints the first evaluation
+(everything computed and saved) and a second one (nothing changed: fingerprints compared
+only), and the mean size of a saved trace.
 """
 
 from __future__ import annotations
@@ -43,7 +44,10 @@ def main() -> None:
             started = time.perf_counter()
             with sessions.begin() as session:
                 counts = refresh_evaluations(session)
-            print(f"{label}: {time.perf_counter() - started:.1f} s — {counts['visits']:,} visits, {counts['recomputed']:,} saved, {counts['unchanged']:,} unchanged")
+            print(
+                f"{label}: {time.perf_counter() - started:.1f} s — {counts['visits']:,} visits, "
+                f"{counts['recomputed']:,} saved, {counts['unchanged']:,} unchanged"
+            )
         with sessions() as session:
             size = session.scalar(select(func.avg(func.length(Evaluation.result))))
         print(f"mean saved trace: {size / 1000:.1f} kB")

@@ -58,7 +58,11 @@ def database_for(visits: int) -> Path:
     engine.dispose()
     csv_path.unlink()
     done.write_text(f"{visits} visits, {rows} site rows\n", encoding="utf-8")
-    print(f"built {path.name}: {visits:,} visits, {rows:,} stimulation-site rows in {time.perf_counter() - started:.0f} s", flush=True)
+    print(
+        f"built {path.name}: {visits:,} visits, {rows:,} stimulation-site rows in "
+        f"{time.perf_counter() - started:.0f} s",
+        flush=True,
+    )
     return path
 
 
@@ -75,11 +79,22 @@ def child(database: Path, out: Path, level: str, file_format: str, trace: bool) 
     started = time.perf_counter()
     engine = make_engine(f"sqlite:///{database}")
     with make_session_factory(engine).begin() as session:
-        result = write_export(session, ExportOptions(level=level), file_format=file_format, out=f"{out}/", username="benchmark",
-                              overwrite=True)
+        result = write_export(
+            session,
+            ExportOptions(level=level),
+            file_format=file_format,
+            out=f"{out}/",
+            username="benchmark",
+            overwrite=True,
+        )
     engine.dispose()
-    report = {"visits": result.visits, "rows": result.rows, "seconds": time.perf_counter() - started,
-              "bytes": result.files[0].size, "chunk_visits": result.manifest["chunk_visits"]}
+    report = {
+        "visits": result.visits,
+        "rows": result.rows,
+        "seconds": time.perf_counter() - started,
+        "bytes": result.files[0].size,
+        "chunk_visits": result.manifest["chunk_visits"],
+    }
     if trace:
         report["tracemalloc_peak_mb"] = tracemalloc.get_traced_memory()[1] / 2**20
     print(json.dumps(report), flush=True)
@@ -87,7 +102,9 @@ def child(database: Path, out: Path, level: str, file_format: str, trace: bool) 
 
 def measure(database: Path, level: str, file_format: str, trace: bool) -> dict:
     out = CACHE / f"out-{database.stem}"
-    command = [sys.executable, __file__, "--child", str(database), str(out), level, file_format] + (["--tracemalloc"] if trace else [])
+    command = [sys.executable, __file__, "--child", str(database), str(out), level, file_format] + (
+        ["--tracemalloc"] if trace else []
+    )
     process = subprocess.Popen(command, stdout=subprocess.PIPE, text=True)
     output = process.stdout.read()
     _, status, usage = os.wait4(process.pid, 0)
@@ -110,10 +127,14 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--level", default="nerve", choices=["visit", "nerve", "segment", "long"])
     parser.add_argument("--format", dest="file_format", default="parquet", choices=["csv", "parquet", "xlsx"])
-    parser.add_argument("--tracemalloc", action="store_true", help="also trace Python allocations in the children (slow)")
+    parser.add_argument(
+        "--tracemalloc", action="store_true", help="also trace Python allocations in the children (slow)"
+    )
     parser.add_argument("--build", action="store_true", help=argparse.SUPPRESS)
     parser.add_argument("--measure", action="store_true", help=argparse.SUPPRESS)
-    parser.add_argument("--child", nargs=4, metavar=("DATABASE", "OUT", "LEVEL", "FORMAT"), help=argparse.SUPPRESS)
+    parser.add_argument(
+        "--child", nargs=4, metavar=("DATABASE", "OUT", "LEVEL", "FORMAT"), help=argparse.SUPPRESS
+    )
     args = parser.parse_args()
     if args.child:
         database, out, level, file_format = args.child
@@ -125,24 +146,41 @@ def main() -> None:
         return
     if not args.measure:
         _run(["--build"])
-        _run(["--measure", "--level", args.level, "--format", args.file_format] + (["--tracemalloc"] if args.tracemalloc else []))
+        _run(
+            ["--measure", "--level", args.level, "--format", args.file_format]
+            + (["--tracemalloc"] if args.tracemalloc else [])
+        )
         return
     databases = {size: CACHE / f"visits{size}.sqlite3" for size in SIZES}
-    print(f"measuring process max RSS before the exports: {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB", flush=True)
+    print(
+        "measuring process max RSS before the exports: "
+        f"{resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB",
+        flush=True,
+    )
     results = {}
     for size, database in databases.items():
         report = measure(database, args.level, args.file_format, args.tracemalloc)
         results[size] = report
-        traced = f", tracemalloc peak {report['tracemalloc_peak_mb']:.0f} MB" if "tracemalloc_peak_mb" in report else ""
-        print(f"{size:>7,} visits: level {args.level}, {args.file_format}, {report['rows']:,} rows, {report['bytes'] / 1e6:.1f} MB "
-              f"written in {report['seconds']:.1f} s (chunks of {report['chunk_visits']:,} visits); "
-              f"child max RSS {report['max_rss_mb']:.0f} MB{traced}", flush=True)
+        traced = (
+            f", tracemalloc peak {report['tracemalloc_peak_mb']:.0f} MB"
+            if "tracemalloc_peak_mb" in report
+            else ""
+        )
+        print(
+            f"{size:>7,} visits: level {args.level}, {args.file_format}, {report['rows']:,} rows, "
+            f"{report['bytes'] / 1e6:.1f} MB written in {report['seconds']:.1f} s (chunks of "
+            f"{report['chunk_visits']:,} visits); child max RSS {report['max_rss_mb']:.0f} MB{traced}",
+            flush=True,
+        )
     children = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
     print(f"getrusage(RUSAGE_CHILDREN).ru_maxrss (largest child): {children:.0f} MB")
     small, large = (results[size] for size in SIZES)
     print(f"ratio max RSS 100k / 10k: {large['max_rss_mb'] / small['max_rss_mb']:.2f} (target ≤ 1.5)")
     if "tracemalloc_peak_mb" in small:
-        print(f"ratio tracemalloc peak 100k / 10k: {large['tracemalloc_peak_mb'] / small['tracemalloc_peak_mb']:.2f}")
+        print(
+            "ratio tracemalloc peak 100k / 10k: "
+            f"{large['tracemalloc_peak_mb'] / small['tracemalloc_peak_mb']:.2f}"
+        )
 
 
 if __name__ == "__main__":

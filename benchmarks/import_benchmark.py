@@ -30,16 +30,33 @@ from tracker.db import migrate
 from tracker.db.session import make_engine, make_session_factory
 from tracker.services.importing import import_file
 
-NERVES = {  # nerve: (site labels, distal distance mm, segment distances mm, distal latency ms, CV m/s, CMAP mV)
+# nerve: (site labels, distal distance mm, segment distances mm, distal latency ms, CV m/s, CMAP mV)
+NERVES = {
     "median": (("wrist", "elbow", "axilla"), 70, (230, 120), 3.6, 55, 8.0),
     "ulnar": (("wrist", "below_elbow", "above_elbow"), 70, (210, 100), 2.9, 57, 9.0),
     "fibular": (("ankle", "below_fibular_head", "popliteal_fossa"), 90, (320, 100), 4.8, 47, 5.0),
     "tibial": (("ankle", "popliteal_fossa"), 90, (400,), 4.5, 46, 10.0),
 }
 HEADER = [
-    "patient", "visit_date", "nerve", "side", "modality", "site_order", "site", "distance_mm", "latency_ms",
-    "amplitude_mv", "duration_ms", "area_mvms", "temperature_c", "lff_hz", "f_latency_ms", "height_cm", "sex",
-    "birth_year", "diagnosis",
+    "patient",
+    "visit_date",
+    "nerve",
+    "side",
+    "modality",
+    "site_order",
+    "site",
+    "distance_mm",
+    "latency_ms",
+    "amplitude_mv",
+    "duration_ms",
+    "area_mvms",
+    "temperature_c",
+    "lff_hz",
+    "f_latency_ms",
+    "height_cm",
+    "sex",
+    "birth_year",
+    "diagnosis",
 ]
 
 
@@ -50,7 +67,12 @@ def write_file(path: Path, patients: int, visits: int) -> int:
         writer = csv.writer(handle)
         writer.writerow(HEADER)
         for p in range(patients):
-            code, sex, born, height = f"B{p:05d}", rng.choice(["female", "male"]), rng.randint(1940, 1995), rng.randint(150, 195)
+            code, sex, born, height = (
+                f"B{p:05d}",
+                rng.choice(["female", "male"]),
+                rng.randint(1940, 1995),
+                rng.randint(150, 195),
+            )
             for v in range(visits):
                 date = f"{2020 + v}-{rng.randint(1, 12):02d}-{rng.randint(1, 28):02d}"
                 for nerve, (labels, first, gaps, dml, cv, amp) in NERVES.items():
@@ -64,11 +86,29 @@ def write_file(path: Path, patients: int, visits: int) -> int:
                             latency += distances[order] / (cv * rng.uniform(0.55, 1.05))
                             amplitude *= rng.uniform(0.8, 0.98)
                         label = labels[order] if nerve != "tibial" or order < 2 else ""
-                        writer.writerow([
-                            code, date, nerve, "right", "motor", order + 1, label, distances[order], f"{latency:.2f}",
-                            f"{amplitude:.1f}", f"{5.5 * (1 + 0.1 * order):.1f}", f"{amplitude * 2.5:.1f}",
-                            33.0 if nerve in ("median", "ulnar") else 31.5, 2, f_wave, height, sex, born, "cidp",
-                        ])
+                        writer.writerow(
+                            [
+                                code,
+                                date,
+                                nerve,
+                                "right",
+                                "motor",
+                                order + 1,
+                                label,
+                                distances[order],
+                                f"{latency:.2f}",
+                                f"{amplitude:.1f}",
+                                f"{5.5 * (1 + 0.1 * order):.1f}",
+                                f"{amplitude * 2.5:.1f}",
+                                33.0 if nerve in ("median", "ulnar") else 31.5,
+                                2,
+                                f_wave,
+                                height,
+                                sex,
+                                born,
+                                "cidp",
+                            ]
+                        )
                         rows += 1
     return rows
 
@@ -137,10 +177,19 @@ def main() -> None:
             seconds, summary = import_seconds(csv_path, folder / f"tracker{attempt}.sqlite3")
             imports.append(seconds)
         floor, seconds = min(floors), min(imports)
-        print(f"ncs-tracker import: best {seconds:.2f} s of {', '.join(f'{t:.2f}' for t in imports)} — {summary}")
+        print(
+            f"ncs-tracker import: best {seconds:.2f} s of {', '.join(f'{t:.2f}' for t in imports)} — "
+            f"{summary}"
+        )
         insert = min(inserts)
-        print(f"floor (csv.reader + sqlite3 executemany, one flat table): best {floor:.2f} s of {', '.join(f'{t:.2f}' for t in floors)}")
-        print(f"executemany alone (rows already in memory): best {insert:.2f} s of {', '.join(f'{t:.2f}' for t in inserts)}")
+        print(
+            f"floor (csv.reader + sqlite3 executemany, one flat table): best {floor:.2f} s of "
+            f"{', '.join(f'{t:.2f}' for t in floors)}"
+        )
+        print(
+            f"executemany alone (rows already in memory): best {insert:.2f} s of "
+            f"{', '.join(f'{t:.2f}' for t in inserts)}"
+        )
         print(f"ratio import / floor: {seconds / floor:.2f} (target ≤ 3)")
         print(f"ratio import / executemany alone: {seconds / insert:.2f}")
 

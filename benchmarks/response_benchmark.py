@@ -11,8 +11,8 @@
 The databases are the dashboard benchmark's invented cohorts (``benchmarks/dashboard_benchmark.py``, fixed
 random states, codes ``BENCH-…``, no identifiers), built once with ``--evaluate latest`` and cached.
 
-Run: ``.venv/bin/python benchmarks/response_benchmark.py`` (``--repeat N``, ``--large N``). Progress on stderr,
-results on stdout.
+Run: ``.venv/bin/python benchmarks/response_benchmark.py`` (``--repeat N``, ``--large
+N``). Progress on stderr, results on stdout.
 """
 
 from __future__ import annotations
@@ -66,7 +66,9 @@ def response_seconds(url: str) -> tuple[float, str]:
     finally:
         engine.dispose()
     counts = course["course"].value_counts().to_dict()
-    return elapsed, f"{len(course):,} patients: " + ", ".join(f"{k} {v:,}" for k, v in sorted(counts.items())) + f"; {len(changes):,} nerve changes"
+    return elapsed, f"{len(course):,} patients: " + ", ".join(
+        f"{k} {v:,}" for k, v in sorted(counts.items())
+    ) + f"; {len(changes):,} nerve changes"
 
 
 def patients_page_seconds(url: str) -> float:
@@ -102,8 +104,11 @@ def report_seconds() -> float:
 
     from tracker.report import build, render, write_private  # the printable report (issue 9, point 6)
 
-    def write_report(session, code: str, out: Path) -> None:  # what `ncs-tracker report CODE --out FILE.pdf` does
+    def write_report(
+        session, code: str, out: Path
+    ) -> None:  # what `ncs-tracker report CODE --out FILE.pdf` does
         write_private(out, render(build(session, code), "pdf"), overwrite=False)
+
     with tempfile.TemporaryDirectory(prefix="ncs-bench-report-") as scratch:
         url = f"sqlite:///{scratch}/demo.sqlite3"
         migrate.upgrade(url)
@@ -120,7 +125,9 @@ def report_seconds() -> float:
                 write_report(session, "DEMO-02", out)
             times.append(time.perf_counter() - start)
         engine.dispose()
-    bench.progress(f"[report] first (imports included) {times[0]:.2f} s; then {', '.join(f'{t:.2f}' for t in times[1:])}")
+    bench.progress(
+        f"[report] first (imports included) {times[0]:.2f} s; then {', '.join(f'{t:.2f}' for t in times[1:])}"
+    )
     return statistics.median(times[1:])
 
 
@@ -148,22 +155,34 @@ def main() -> None:
         response.append(elapsed)
     ratio = statistics.median(response) / statistics.median(load)
     lines.append(f"response for every patient (large database, {summary})")
-    lines.append(f"  load scores + treatments + measurements: median {statistics.median(load):.2f} s (runs {', '.join(f'{t:.2f}' for t in load)})")
-    lines.append(f"  cohort response (load included):         median {statistics.median(response):.2f} s (runs {', '.join(f'{t:.2f}' for t in response)})")
+    lines.append(
+        f"  load scores + treatments + measurements: median {statistics.median(load):.2f} s (runs "
+        f"{', '.join(f'{t:.2f}' for t in load)})"
+    )
+    lines.append(
+        f"  cohort response (load included):         median {statistics.median(response):.2f} s (runs "
+        f"{', '.join(f'{t:.2f}' for t in response)})"
+    )
     lines.append(f"  ratio response / load: {ratio:.2f} (target ≤ 2)")
     if not args.skip_page:
         for name in urls:
             bench.progress(f"[page] warm-up on {name}: {patients_page_seconds(urls[name]):.2f} s")
         pages: dict[str, list[float]] = {name: [] for name in urls}
         for attempt in range(args.repeat):
-            for name in (list(urls) if attempt % 2 == 0 else list(reversed(urls))):
+            for name in list(urls) if attempt % 2 == 0 else list(reversed(urls)):
                 pages[name].append(patients_page_seconds(urls[name]))
         small, large = statistics.median(pages["small"]), statistics.median(pages["large"])
-        lines.append(f"patients page with the course column (AppTest, cold caches): small {small:.2f} s (runs "
-                     f"{', '.join(f'{t:.2f}' for t in pages['small'])}); large {large:.2f} s (runs {', '.join(f'{t:.2f}' for t in pages['large'])})")
+        lines.append(
+            f"patients page with the course column (AppTest, cold caches): small {small:.2f} s (runs "
+            f"{', '.join(f'{t:.2f}' for t in pages['small'])}); large {large:.2f} s (runs "
+            f"{', '.join(f'{t:.2f}' for t in pages['large'])})"
+        )
         lines.append(f"  ratio large / small: {large / small:.2f} (target ≤ 1.5)")
     if not args.skip_report:
-        lines.append(f"one report (PDF, DEMO-02, in-process, median of 3 after a first run): {report_seconds():.2f} s (target ≤ 3 s)")
+        lines.append(
+            f"one report (PDF, DEMO-02, in-process, median of 3 after a first run): {report_seconds():.2f} s "
+            "(target ≤ 3 s)"
+        )
     print("\n".join(lines))
 
 

@@ -35,13 +35,41 @@ HERE = Path(__file__).resolve().parent
 rng = random.Random(20261201)
 
 MEASUREMENT_COLUMNS = [
-    "patient", "visit_date", "nerve", "side", "modality", "site_order", "site", "distance_mm",
-    "latency_ms", "peak_latency_ms", "amplitude_mv", "amplitude_uv", "duration_ms", "area_mvms",
-    "temperature_c", "lff_hz", "f_latency_ms", "f_persistence_pct", "recording_site", "height_cm",
-    "sex", "birth_year", "diagnosis", "phenotype", "wrist_entrapment",
+    "patient",
+    "visit_date",
+    "nerve",
+    "side",
+    "modality",
+    "site_order",
+    "site",
+    "distance_mm",
+    "latency_ms",
+    "peak_latency_ms",
+    "amplitude_mv",
+    "amplitude_uv",
+    "duration_ms",
+    "area_mvms",
+    "temperature_c",
+    "lff_hz",
+    "f_latency_ms",
+    "f_persistence_pct",
+    "recording_site",
+    "height_cm",
+    "sex",
+    "birth_year",
+    "diagnosis",
+    "phenotype",
+    "wrist_entrapment",
 ]
 TREATMENT_COLUMNS = [
-    "patient", "therapy", "start_date", "end_date", "dose", "dose_unit", "interval_days", "note",
+    "patient",
+    "therapy",
+    "start_date",
+    "end_date",
+    "dose",
+    "dose_unit",
+    "interval_days",
+    "note",
 ]
 SCORE_COLUMNS = ["patient", "date", "scale", "value"]
 
@@ -52,32 +80,105 @@ SCORE_COLUMNS = ["patient", "date", "scale", "value"]
 # rise from the previous site.
 # --------------------------------------------------------------------------------------------
 MOTOR = {
-    "median": dict(limb="upper", recording="abductor_pollicis_brevis",
-                   sites=[("wrist", 70), ("elbow", 235)], seg_drop=[0.05], seg_dur=[0.04],
-                   amp=8.5, cv=56.0, dl=3.5, f=27.0, dur=5.2,
-                   lln_amp=4.0, lln_cv=49.0, uln_dl=4.4, uln_f=31.0),
-    "ulnar": dict(limb="upper", recording="abductor_digiti_minimi",
-                  sites=[("wrist", 70), ("below_elbow", 215), ("above_elbow", 100)],
-                  seg_drop=[0.04, 0.03], seg_dur=[0.03, 0.02],
-                  amp=10.0, cv=59.0, dl=2.7, f=27.5, dur=5.8,
-                  lln_amp=6.0, lln_cv=49.0, uln_dl=3.3, uln_f=32.0),
-    "fibular": dict(limb="lower", recording="extensor_digitorum_brevis",
-                    sites=[("ankle", 90), ("below_fibular_head", 320), ("popliteal_fossa", 90)],
-                    seg_drop=[0.10, 0.03], seg_dur=[0.06, 0.02],
-                    amp=5.5, cv=48.5, dl=4.7, f=46.5, dur=5.6,
-                    lln_amp=2.0, lln_cv=44.0, uln_dl=6.5, uln_f=56.0),
-    "tibial": dict(limb="lower", recording="abductor_hallucis",
-                   sites=[("ankle", 90), ("popliteal_fossa", 400)], seg_drop=[0.18], seg_dur=[0.09],
-                   amp=11.0, cv=47.0, dl=4.3, f=47.5, dur=5.9,
-                   lln_amp=4.0, lln_cv=41.0, uln_dl=5.8, uln_f=56.0),
+    "median": dict(
+        limb="upper",
+        recording="abductor_pollicis_brevis",
+        sites=[("wrist", 70), ("elbow", 235)],
+        seg_drop=[0.05],
+        seg_dur=[0.04],
+        amp=8.5,
+        cv=56.0,
+        dl=3.5,
+        f=27.0,
+        dur=5.2,
+        lln_amp=4.0,
+        lln_cv=49.0,
+        uln_dl=4.4,
+        uln_f=31.0,
+    ),
+    "ulnar": dict(
+        limb="upper",
+        recording="abductor_digiti_minimi",
+        sites=[("wrist", 70), ("below_elbow", 215), ("above_elbow", 100)],
+        seg_drop=[0.04, 0.03],
+        seg_dur=[0.03, 0.02],
+        amp=10.0,
+        cv=59.0,
+        dl=2.7,
+        f=27.5,
+        dur=5.8,
+        lln_amp=6.0,
+        lln_cv=49.0,
+        uln_dl=3.3,
+        uln_f=32.0,
+    ),
+    "fibular": dict(
+        limb="lower",
+        recording="extensor_digitorum_brevis",
+        sites=[("ankle", 90), ("below_fibular_head", 320), ("popliteal_fossa", 90)],
+        seg_drop=[0.10, 0.03],
+        seg_dur=[0.06, 0.02],
+        amp=5.5,
+        cv=48.5,
+        dl=4.7,
+        f=46.5,
+        dur=5.6,
+        lln_amp=2.0,
+        lln_cv=44.0,
+        uln_dl=6.5,
+        uln_f=56.0,
+    ),
+    "tibial": dict(
+        limb="lower",
+        recording="abductor_hallucis",
+        sites=[("ankle", 90), ("popliteal_fossa", 400)],
+        seg_drop=[0.18],
+        seg_dur=[0.09],
+        amp=11.0,
+        cv=47.0,
+        dl=4.3,
+        f=47.5,
+        dur=5.9,
+        lln_amp=4.0,
+        lln_cv=41.0,
+        uln_dl=5.8,
+        uln_f=56.0,
+    ),
 }
 SENSORY = {
-    "median": dict(limb="upper", recording="digit_2", site="wrist", dist=130,
-                   amp=38.0, cv=57.0, peak_gap=0.65, lln_amp=20.0, lln_cv=50.0),
-    "ulnar": dict(limb="upper", recording="digit_5", site="wrist", dist=110,
-                  amp=30.0, cv=56.0, peak_gap=0.60, lln_amp=17.0, lln_cv=50.0),
-    "sural": dict(limb="lower", recording="posterior_ankle", site="calf", dist=140,
-                  amp=17.0, cv=47.0, peak_gap=0.75, lln_amp=6.0, lln_cv=40.0),
+    "median": dict(
+        limb="upper",
+        recording="digit_2",
+        site="wrist",
+        dist=130,
+        amp=38.0,
+        cv=57.0,
+        peak_gap=0.65,
+        lln_amp=20.0,
+        lln_cv=50.0,
+    ),
+    "ulnar": dict(
+        limb="upper",
+        recording="digit_5",
+        site="wrist",
+        dist=110,
+        amp=30.0,
+        cv=56.0,
+        peak_gap=0.60,
+        lln_amp=17.0,
+        lln_cv=50.0,
+    ),
+    "sural": dict(
+        limb="lower",
+        recording="posterior_ankle",
+        site="calf",
+        dist=140,
+        amp=17.0,
+        cv=47.0,
+        peak_gap=0.75,
+        lln_amp=6.0,
+        lln_cv=40.0,
+    ),
 }
 
 # Disease profiles: where a nerve ends up at severity 1.
@@ -88,21 +189,55 @@ SENSORY = {
 #   disp     extra proximal duration increase over the whole nerve (temporal dispersion)
 #   prox_drop extra proximal amplitude fall over the whole nerve
 PROFILES = {
-    "cidp": dict(cv_frac=0.62, dl_frac=1.65, f_frac=1.42, amp_loss=0.45, dur_distal=0.45, disp=0.55,
-                 prox_drop=0.28, sens_amp_loss=0.70, sens_cv_loss=0.30, persist_loss=0.55),
-    "gbs": dict(cv_frac=0.78, dl_frac=1.50, f_frac=1.35, amp_loss=0.55, dur_distal=0.50, disp=0.45,
-                prox_drop=0.35, sens_amp_loss=0.60, sens_cv_loss=0.20, persist_loss=0.65),
+    "cidp": dict(
+        cv_frac=0.62,
+        dl_frac=1.65,
+        f_frac=1.42,
+        amp_loss=0.45,
+        dur_distal=0.45,
+        disp=0.55,
+        prox_drop=0.28,
+        sens_amp_loss=0.70,
+        sens_cv_loss=0.30,
+        persist_loss=0.55,
+    ),
+    "gbs": dict(
+        cv_frac=0.78,
+        dl_frac=1.50,
+        f_frac=1.35,
+        amp_loss=0.55,
+        dur_distal=0.50,
+        disp=0.45,
+        prox_drop=0.35,
+        sens_amp_loss=0.60,
+        sens_cv_loss=0.20,
+        persist_loss=0.65,
+    ),
     # MMN: motor only, mild slowing at most; the conduction block is added per visit.
-    "mmn": dict(cv_frac=0.85, dl_frac=1.10, f_frac=1.10, amp_loss=0.30, dur_distal=0.10, disp=0.10,
-                prox_drop=0.0, sens_amp_loss=0.0, sens_cv_loss=0.0, persist_loss=1.50),
+    "mmn": dict(
+        cv_frac=0.85,
+        dl_frac=1.10,
+        f_frac=1.10,
+        amp_loss=0.30,
+        dur_distal=0.10,
+        disp=0.10,
+        prox_drop=0.0,
+        sens_amp_loss=0.0,
+        sens_cv_loss=0.0,
+        persist_loss=1.50,
+    ),
 }
 
-HAND_REF_C = 33.0   # temperature at which the templates apply
+HAND_REF_C = 33.0  # temperature at which the templates apply
 FOOT_REF_C = 31.5
 
 STANDARD_TESTS = [
-    ("median", "right", "motor"), ("ulnar", "right", "motor"), ("fibular", "right", "motor"),
-    ("tibial", "right", "motor"), ("median", "right", "sensory"), ("ulnar", "right", "sensory"),
+    ("median", "right", "motor"),
+    ("ulnar", "right", "motor"),
+    ("fibular", "right", "motor"),
+    ("tibial", "right", "motor"),
+    ("median", "right", "sensory"),
+    ("ulnar", "right", "sensory"),
     ("sural", "right", "sensory"),
 ]
 
@@ -114,72 +249,141 @@ STANDARD_TESTS = [
 # entrapment of the median nerve).
 # --------------------------------------------------------------------------------------------
 PATIENTS = [
-    dict(code="DEMO-01", sex="female", birth_year=1961, height=164, diagnosis="cidp",
-         tests=STANDARD_TESTS,
-         weights={"median": 1.0, "ulnar": 0.95, "fibular": 1.05, "tibial": 1.0, "sural": 1.0},
-         axonal={"fibular": 0.25, "tibial": 0.15},
-         visits=[
-             dict(date="2023-02-14", s=1.00, absent={("sural", "right")}, f_absent={("fibular", "right")}),
-             dict(date="2023-05-16", s=0.78),
-             dict(date="2023-10-10", s=0.55),
-             dict(date="2024-04-09", s=0.38),
-             dict(date="2025-03-18", s=0.27),
-         ]),
-    dict(code="DEMO-02", sex="male", birth_year=1954, height=178, diagnosis="cidp",
-         tests=STANDARD_TESTS,
-         weights={"median": 1.0, "ulnar": 1.0, "fibular": 1.0, "tibial": 0.95, "sural": 0.9},
-         axonal={"fibular": 0.15, "tibial": 0.10},
-         visits=[
-             dict(date="2023-06-06", s=0.92, absent={("median", "right")}),
-             dict(date="2023-09-12", s=0.62),
-             dict(date="2024-01-16", s=0.42),
-             dict(date="2024-07-09", s=0.80),   # relapse on the 35-day interval
-             dict(date="2024-11-19", s=0.46),
-             dict(date="2025-06-10", s=0.38),
-         ]),
-    dict(code="DEMO-03", sex="female", birth_year=1970, height=168, diagnosis="cidp",
-         tests=STANDARD_TESTS,
-         weights={"median": 1.0, "ulnar": 0.9, "fibular": 1.0, "tibial": 1.0, "sural": 1.0},
-         axonal={"fibular": 0.10},
-         visits=[dict(date=d, s=0.40) for d in
-                 ("2023-03-21", "2023-11-07", "2024-06-18", "2025-02-11", "2025-10-14", "2026-06-23")]),
-    dict(code="DEMO-04", sex="male", birth_year=1979, height=181, diagnosis="mmn",
-         tests=[("median", "left", "motor"), ("ulnar", "left", "motor"), ("ulnar", "right", "motor"),
-                ("fibular", "right", "motor"), ("median", "left", "sensory"), ("ulnar", "left", "sensory"),
-                ("ulnar", "right", "sensory"), ("sural", "right", "sensory")],
-         weights={}, axonal={"ulnar_left": 0.15},
-         visits=[
-             dict(date="2024-02-20", s=0.0, test_s={("ulnar", "left", "motor"): 0.35},
-                  block={("ulnar", "left"): (1, 0.66)}),
-             dict(date="2024-05-28", s=0.0, test_s={("ulnar", "left", "motor"): 0.30},
-                  block={("ulnar", "left"): (1, 0.56)}),
-             dict(date="2024-11-26", s=0.0, test_s={("ulnar", "left", "motor"): 0.25},
-                  block={("ulnar", "left"): (1, 0.47)}),
-             dict(date="2025-06-03", s=0.0, test_s={("ulnar", "left", "motor"): 0.25},
-                  block={("ulnar", "left"): (1, 0.44)}),
-         ]),
-    dict(code="DEMO-05", sex="female", birth_year=1988, height=170, diagnosis="gbs",
-         tests=STANDARD_TESTS,
-         weights={"median": 1.0, "ulnar": 0.9, "fibular": 1.05, "tibial": 1.0, "sural": 1.0},
-         axonal={},
-         visits=[
-             dict(date="2025-09-01", s=0.85, absent={("sural", "right")},
-                  f_absent={("fibular", "right"), ("tibial", "right")}),   # day 7 from onset
-             dict(date="2025-09-24", s=0.68,                                 # day 30
-                  test_s={("sural", "right", "sensory"): 1.1}),
-             dict(date="2025-11-23", s=0.25),                                # day 90
-         ]),
-    dict(code="DEMO-06", sex="male", birth_year=1966, height=175, diagnosis="cidp",
-         tests=STANDARD_TESTS,
-         weights={"median": 1.0, "ulnar": 0.95, "fibular": 1.0, "tibial": 1.05, "sural": 1.0},
-         axonal={"fibular": 0.10},
-         visits=[
-             dict(date="2023-09-05", s=0.90, absent={("sural", "right")}),
-             dict(date="2023-12-12", s=0.62, test_s={("sural", "right", "sensory"): 0.95}),
-             dict(date="2024-04-23", s=0.45, cold_foot=28.5),
-             dict(date="2024-10-15", s=0.30),
-             dict(date="2025-09-30", s=0.22, cts=True),
-         ]),
+    dict(
+        code="DEMO-01",
+        sex="female",
+        birth_year=1961,
+        height=164,
+        diagnosis="cidp",
+        tests=STANDARD_TESTS,
+        weights={"median": 1.0, "ulnar": 0.95, "fibular": 1.05, "tibial": 1.0, "sural": 1.0},
+        axonal={"fibular": 0.25, "tibial": 0.15},
+        visits=[
+            dict(date="2023-02-14", s=1.00, absent={("sural", "right")}, f_absent={("fibular", "right")}),
+            dict(date="2023-05-16", s=0.78),
+            dict(date="2023-10-10", s=0.55),
+            dict(date="2024-04-09", s=0.38),
+            dict(date="2025-03-18", s=0.27),
+        ],
+    ),
+    dict(
+        code="DEMO-02",
+        sex="male",
+        birth_year=1954,
+        height=178,
+        diagnosis="cidp",
+        tests=STANDARD_TESTS,
+        weights={"median": 1.0, "ulnar": 1.0, "fibular": 1.0, "tibial": 0.95, "sural": 0.9},
+        axonal={"fibular": 0.15, "tibial": 0.10},
+        visits=[
+            dict(date="2023-06-06", s=0.92, absent={("median", "right")}),
+            dict(date="2023-09-12", s=0.62),
+            dict(date="2024-01-16", s=0.42),
+            dict(date="2024-07-09", s=0.80),  # relapse on the 35-day interval
+            dict(date="2024-11-19", s=0.46),
+            dict(date="2025-06-10", s=0.38),
+        ],
+    ),
+    dict(
+        code="DEMO-03",
+        sex="female",
+        birth_year=1970,
+        height=168,
+        diagnosis="cidp",
+        tests=STANDARD_TESTS,
+        weights={"median": 1.0, "ulnar": 0.9, "fibular": 1.0, "tibial": 1.0, "sural": 1.0},
+        axonal={"fibular": 0.10},
+        visits=[
+            dict(date=d, s=0.40)
+            for d in ("2023-03-21", "2023-11-07", "2024-06-18", "2025-02-11", "2025-10-14", "2026-06-23")
+        ],
+    ),
+    dict(
+        code="DEMO-04",
+        sex="male",
+        birth_year=1979,
+        height=181,
+        diagnosis="mmn",
+        tests=[
+            ("median", "left", "motor"),
+            ("ulnar", "left", "motor"),
+            ("ulnar", "right", "motor"),
+            ("fibular", "right", "motor"),
+            ("median", "left", "sensory"),
+            ("ulnar", "left", "sensory"),
+            ("ulnar", "right", "sensory"),
+            ("sural", "right", "sensory"),
+        ],
+        weights={},
+        axonal={"ulnar_left": 0.15},
+        visits=[
+            dict(
+                date="2024-02-20",
+                s=0.0,
+                test_s={("ulnar", "left", "motor"): 0.35},
+                block={("ulnar", "left"): (1, 0.66)},
+            ),
+            dict(
+                date="2024-05-28",
+                s=0.0,
+                test_s={("ulnar", "left", "motor"): 0.30},
+                block={("ulnar", "left"): (1, 0.56)},
+            ),
+            dict(
+                date="2024-11-26",
+                s=0.0,
+                test_s={("ulnar", "left", "motor"): 0.25},
+                block={("ulnar", "left"): (1, 0.47)},
+            ),
+            dict(
+                date="2025-06-03",
+                s=0.0,
+                test_s={("ulnar", "left", "motor"): 0.25},
+                block={("ulnar", "left"): (1, 0.44)},
+            ),
+        ],
+    ),
+    dict(
+        code="DEMO-05",
+        sex="female",
+        birth_year=1988,
+        height=170,
+        diagnosis="gbs",
+        tests=STANDARD_TESTS,
+        weights={"median": 1.0, "ulnar": 0.9, "fibular": 1.05, "tibial": 1.0, "sural": 1.0},
+        axonal={},
+        visits=[
+            dict(
+                date="2025-09-01",
+                s=0.85,
+                absent={("sural", "right")},
+                f_absent={("fibular", "right"), ("tibial", "right")},
+            ),  # day 7 from onset
+            dict(
+                date="2025-09-24",
+                s=0.68,  # day 30
+                test_s={("sural", "right", "sensory"): 1.1},
+            ),
+            dict(date="2025-11-23", s=0.25),  # day 90
+        ],
+    ),
+    dict(
+        code="DEMO-06",
+        sex="male",
+        birth_year=1966,
+        height=175,
+        diagnosis="cidp",
+        tests=STANDARD_TESTS,
+        weights={"median": 1.0, "ulnar": 0.95, "fibular": 1.0, "tibial": 1.05, "sural": 1.0},
+        axonal={"fibular": 0.10},
+        visits=[
+            dict(date="2023-09-05", s=0.90, absent={("sural", "right")}),
+            dict(date="2023-12-12", s=0.62, test_s={("sural", "right", "sensory"): 0.95}),
+            dict(date="2024-04-23", s=0.45, cold_foot=28.5),
+            dict(date="2024-10-15", s=0.30),
+            dict(date="2025-09-30", s=0.22, cts=True),
+        ],
+    ),
 ]
 
 TREATMENTS = [
@@ -188,15 +392,31 @@ TREATMENTS = [
     ("DEMO-01", "ivig", "2023-03-17", "", "1", "g/kg", "21", "maintenance"),
     ("DEMO-02", "ivig", "2023-06-12", "2023-06-16", "2", "g/kg", "", "loading course over 5 days"),
     ("DEMO-02", "ivig", "2023-07-07", "2024-02-01", "1", "g/kg", "21", "maintenance"),
-    ("DEMO-02", "ivig", "2024-02-02", "2024-07-14", "1", "g/kg", "35",
-     "interval extended to 35 days (spacing trial)"),
+    (
+        "DEMO-02",
+        "ivig",
+        "2024-02-02",
+        "2024-07-14",
+        "1",
+        "g/kg",
+        "35",
+        "interval extended to 35 days (spacing trial)",
+    ),
     ("DEMO-02", "ivig", "2024-07-15", "", "1", "g/kg", "21", "interval restored to 21 days after relapse"),
     ("DEMO-03", "ivig", "2022-04-05", "2023-01-10", "1", "g/kg", "28", "maintenance before change of route"),
     ("DEMO-03", "scig", "2023-01-11", "", "0.4", "g/kg", "7", "weekly home infusions"),
     ("DEMO-04", "ivig", "2024-02-26", "2024-03-01", "2", "g/kg", "", "loading course over 5 days"),
     ("DEMO-04", "ivig", "2024-03-25", "", "1", "g/kg", "28", "maintenance"),
-    ("DEMO-05", "ivig", "2025-09-01", "2025-09-05", "2", "g/kg", "",
-     "single course: 0.4 g/kg/day for 5 days"),
+    (
+        "DEMO-05",
+        "ivig",
+        "2025-09-01",
+        "2025-09-05",
+        "2",
+        "g/kg",
+        "",
+        "single course: 0.4 g/kg/day for 5 days",
+    ),
     ("DEMO-06", "corticosteroid", "2023-09-11", "2023-11-05", "60", "mg", "1", "oral prednisolone daily"),
     ("DEMO-06", "corticosteroid", "2023-11-06", "2024-01-07", "40", "mg", "1", "taper"),
     ("DEMO-06", "corticosteroid", "2024-01-08", "2024-04-28", "20", "mg", "1", "taper"),
@@ -331,9 +551,9 @@ def motor_rows(pm: PatientModel, visit: dict, nerve: str, side: str, temperature
     fx = pm.fixed[(nerve, side, "motor")]
     s = pm.severity(visit, (nerve, side, "motor"))
     dT = temp_delta(t["limb"], temperature)
-    cold_slow = 1.0 - 0.03 * dT       # slower conduction when cold
-    cold_long = 1.0 + 0.03 * dT       # longer latencies when cold
-    cold_big = 1.0 + 0.02 * dT        # larger, broader responses when cold
+    cold_slow = 1.0 - 0.03 * dT  # slower conduction when cold
+    cold_long = 1.0 + 0.03 * dT  # longer latencies when cold
+    cold_big = 1.0 + 0.02 * dT  # larger, broader responses when cold
 
     dists = [fx["dists"][0]] + [d + rng.randint(-2, 2) for d in fx["dists"][1:]]
     cv_healthy = t["cv"] * fx["cv"]
@@ -347,8 +567,15 @@ def motor_rows(pm: PatientModel, visit: dict, nerve: str, side: str, temperature
     f_absent = (nerve, side) in visit.get("f_absent", set())
     persist = max(5, min(100, round(fx["persist"] * (1.0 - s * p["persist_loss"]) + rng.randint(-5, 5))))
 
-    amp = (t["amp"] * fx["amp"] * pm.age_amp * (1.0 - s * p["amp_loss"]) * (1.0 - pm.axonal(nerve, side))
-           * cold_big * (1.0 + noise(0.06)))
+    amp = (
+        t["amp"]
+        * fx["amp"]
+        * pm.age_amp
+        * (1.0 - s * p["amp_loss"])
+        * (1.0 - pm.axonal(nerve, side))
+        * cold_big
+        * (1.0 + noise(0.06))
+    )
     dur = t["dur"] * fx["dur"] * (1.0 + s * p["dur_distal"]) * cold_big * (1.0 + noise(0.03))
     area = amp * dur * 0.55
 
@@ -374,15 +601,27 @@ def motor_rows(pm: PatientModel, visit: dict, nerve: str, side: str, temperature
 
     rows = []
     for k, (label, _) in enumerate(t["sites"]):
-        rows.append(dict(
-            nerve=nerve, side=side, modality="motor", site_order=k + 1, site=label,
-            distance_mm=dists[k], latency_ms=f2(lats[k]), peak_latency_ms="",
-            amplitude_mv=f1(amps[k]), amplitude_uv="", duration_ms=f1(durs[k]), area_mvms=f1(areas[k]),
-            temperature_c=f1(temperature), lff_hz=2,
-            f_latency_ms="absent" if f_absent else f1(f_lat),
-            f_persistence_pct=0 if f_absent else persist,
-            recording_site=t["recording"],
-        ))
+        rows.append(
+            dict(
+                nerve=nerve,
+                side=side,
+                modality="motor",
+                site_order=k + 1,
+                site=label,
+                distance_mm=dists[k],
+                latency_ms=f2(lats[k]),
+                peak_latency_ms="",
+                amplitude_mv=f1(amps[k]),
+                amplitude_uv="",
+                duration_ms=f1(durs[k]),
+                area_mvms=f1(areas[k]),
+                temperature_c=f1(temperature),
+                lff_hz=2,
+                f_latency_ms="absent" if f_absent else f1(f_lat),
+                f_persistence_pct=0 if f_absent else persist,
+                recording_site=t["recording"],
+            )
+        )
     return rows
 
 
@@ -391,17 +630,35 @@ def sensory_rows(pm: PatientModel, visit: dict, nerve: str, side: str, temperatu
     fx = pm.fixed[(nerve, side, "sensory")]
     s = pm.severity(visit, (nerve, side, "sensory"))
     dT = temp_delta(t["limb"], temperature)
-    row = dict(nerve=nerve, side=side, modality="sensory", site_order=1, site=t["site"],
-               distance_mm=t["dist"], amplitude_mv="", duration_ms="", area_mvms="",
-               temperature_c=f1(temperature), lff_hz=20, f_latency_ms="", f_persistence_pct="",
-               recording_site=t["recording"])
+    row = dict(
+        nerve=nerve,
+        side=side,
+        modality="sensory",
+        site_order=1,
+        site=t["site"],
+        distance_mm=t["dist"],
+        amplitude_mv="",
+        duration_ms="",
+        area_mvms="",
+        temperature_c=f1(temperature),
+        lff_hz=20,
+        f_latency_ms="",
+        f_persistence_pct="",
+        recording_site=t["recording"],
+    )
     if (nerve, side) in visit.get("absent", set()):
         row.update(latency_ms="", peak_latency_ms="", amplitude_uv="0")
         return [row]
     cv = t["cv"] * fx["cv"] * (1.0 - s * p["sens_cv_loss"]) * (1.0 - 0.03 * dT) * (1.0 + noise(0.02))
     onset = t["dist"] / cv
-    amp = (t["amp"] * fx["amp"] * pm.age_amp * (1.0 - s * p["sens_amp_loss"]) * (1.0 + 0.02 * dT)
-           * (1.0 + noise(0.08)))
+    amp = (
+        t["amp"]
+        * fx["amp"]
+        * pm.age_amp
+        * (1.0 - s * p["sens_amp_loss"])
+        * (1.0 + 0.02 * dT)
+        * (1.0 + noise(0.08))
+    )
     gap = t["peak_gap"] * (1.0 + 0.6 * s) * (1.0 + noise(0.04))
     if nerve == "median" and visit.get("cts"):
         onset += 0.9
@@ -419,8 +676,12 @@ def measurement_rows() -> list[dict]:
             hand = round(rng.uniform(32.2, 34.4), 1)
             foot = round(rng.uniform(30.6, 32.6), 1)
             visit_common = dict(
-                patient=spec["code"], visit_date=visit["date"], height_cm=spec["height"], sex=spec["sex"],
-                birth_year=spec["birth_year"], diagnosis=spec["diagnosis"],
+                patient=spec["code"],
+                visit_date=visit["date"],
+                height_cm=spec["height"],
+                sex=spec["sex"],
+                birth_year=spec["birth_year"],
+                diagnosis=spec["diagnosis"],
                 phenotype="typical" if spec["diagnosis"] == "cidp" else "",
             )
             for nerve, side, modality in spec["tests"]:
@@ -469,8 +730,10 @@ def main() -> None:
     write_csv("measurements.csv", MEASUREMENT_COLUMNS, measurements)
     write_csv("treatments.csv", TREATMENT_COLUMNS, treatments)
     write_csv("scores.csv", SCORE_COLUMNS, scores)
-    print(f"invented demo data written to {HERE}: {len(measurements)} measurement rows, "
-          f"{len(treatments)} treatment rows, {len(scores)} score rows")
+    print(
+        f"invented demo data written to {HERE}: {len(measurements)} measurement rows, "
+        f"{len(treatments)} treatment rows, {len(scores)} score rows"
+    )
 
 
 if __name__ == "__main__":

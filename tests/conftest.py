@@ -1,8 +1,9 @@
 """Shared fixtures: a fresh database per test module on each backend (SQLite file and real PostgreSQL).
 
-PostgreSQL: the server at ``NCS_TRACKER_TEST_PG`` (default ``postgresql+psycopg://postgres@127.0.0.1:5432/postgres``)
-gets a throwaway database per fixture. When it is unreachable the PostgreSQL tests are skipped, except when
-the ``CI`` environment variable is set: then they fail, so CI can never pass without them.
+PostgreSQL: the server at ``NCS_TRACKER_TEST_PG`` (default
+``postgresql+psycopg://postgres@127.0.0.1:5432/postgres``) gets a throwaway database per fixture. When
+it is unreachable the PostgreSQL tests are skipped, except when the ``CI`` environment variable is set:
+then they fail, so CI can never pass without them.
 """
 
 from __future__ import annotations

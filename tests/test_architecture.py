@@ -10,15 +10,61 @@ import pytest
 PACKAGE = Path(__file__).resolve().parent.parent / "tracker"
 
 FORBIDDEN = {
-    "domain": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli", "tracker.criteria"),
-    "response": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli"),
-    "criteria": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.services", "tracker.cli"),
+    "domain": (
+        "sqlalchemy",
+        "alembic",
+        "streamlit",
+        "plotly",
+        "click",
+        "tracker.db",
+        "tracker.services",
+        "tracker.cli",
+        "tracker.criteria",
+    ),
+    "response": (
+        "sqlalchemy",
+        "alembic",
+        "streamlit",
+        "plotly",
+        "click",
+        "tracker.db",
+        "tracker.services",
+        "tracker.cli",
+    ),
+    "criteria": (
+        "sqlalchemy",
+        "alembic",
+        "streamlit",
+        "plotly",
+        "click",
+        "tracker.db",
+        "tracker.services",
+        "tracker.cli",
+    ),
     "db": ("streamlit", "plotly", "click", "tracker.services", "tracker.cli"),
     "services": ("streamlit", "plotly", "click", "tracker.cli"),
-    # The printable report: content from services, laid out with matplotlib and reportlab; no SQL, no UI toolkit.
-    "report": ("sqlalchemy", "alembic", "streamlit", "plotly", "click", "tracker.db", "tracker.cli", "tracker.dashboard"),
+    # The printable report: content from services, laid out with matplotlib
+    # and reportlab; no SQL, no UI toolkit.
+    "report": (
+        "sqlalchemy",
+        "alembic",
+        "streamlit",
+        "plotly",
+        "click",
+        "tracker.db",
+        "tracker.cli",
+        "tracker.dashboard",
+    ),
     # Pages read widgets, call services, render: no SQL, no models, no criteria rules of their own.
-    "dashboard/views": ("sqlalchemy", "tracker.db", "tracker.criteria.rules", "tracker.criteria.sets", "tracker.criteria.features", "click", "tracker.cli"),
+    "dashboard/views": (
+        "sqlalchemy",
+        "tracker.db",
+        "tracker.criteria.rules",
+        "tracker.criteria.sets",
+        "tracker.criteria.features",
+        "click",
+        "tracker.cli",
+    ),
     "dashboard": ("click", "tracker.cli"),
 }
 

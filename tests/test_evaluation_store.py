@@ -31,17 +31,33 @@ def test_cohort_trace_equals_single_visit_trace(demo_sessions, criteria):
     with demo_sessions() as session:
         visits, tests, sites = load_frames(session)
         _, limits = resolve(session, None)
-        stored = {row.visit_id: row.result for row in session.scalars(select(Evaluation).where(Evaluation.criteria_id == criteria))}
+        stored = {
+            row.visit_id: row.result
+            for row in session.scalars(select(Evaluation).where(Evaluation.criteria_id == criteria))
+        }
     cohort = engine.evaluate(visits, tests, sites, limits, [criteria], Settings())[criteria]
     many = to_json_many(cohort, list(visits["visit_key"]))
     assert set(many) == set(int(k) for k in visits["visit_key"])
     for key in list(visits["visit_key"])[::4]:
-        alone = engine.evaluate(visits[visits["visit_key"] == key], tests[tests["visit_key"] == key], sites[sites["test_key"].isin(tests.loc[tests["visit_key"] == key, "test_key"])], limits, [criteria], Settings())[criteria]
+        alone = engine.evaluate(
+            visits[visits["visit_key"] == key],
+            tests[tests["visit_key"] == key],
+            sites[sites["test_key"].isin(tests.loc[tests["visit_key"] == key, "test_key"])],
+            limits,
+            [criteria],
+            Settings(),
+        )[criteria]
         single = to_json(alone, int(key))
         assert json.dumps(many[int(key)], sort_keys=True) == json.dumps(single, sort_keys=True)
         # What `evaluate` saved in the database (JSON column) is that same trace.
-        assert json.dumps(expand_trace(stored[int(key)]), sort_keys=True) == json.dumps(single, sort_keys=True)
+        assert json.dumps(expand_trace(stored[int(key)]), sort_keys=True) == json.dumps(
+            single, sort_keys=True
+        )
         # Stored once per citation: smaller than the full trace, and the same content.
         assert len(json.dumps(stored[int(key)])) < 0.8 * len(json.dumps(single))
         assert expand_trace(compact_trace(single)) == single
-        assert all(f["status"] in ("met", "not_met", "not_evaluable", "not_applicable") for n in single["nerves"] for f in n["findings"])
+        assert all(
+            f["status"] in ("met", "not_met", "not_evaluable", "not_applicable")
+            for n in single["nerves"]
+            for f in n["findings"]
+        )

@@ -1,5 +1,6 @@
-"""The README lists every nerve and stimulation-site name the importer accepts, with their aliases, as the
-reference files define them (issue 10, item 16): a name added to tracker/reference/ without the README fails."""
+"""The README lists every nerve and stimulation-site name the importer accepts, with
+their aliases, as the reference files define them (issue 10, item 16): a name added to
+tracker/reference/ without the README fails."""
 
 from __future__ import annotations
 

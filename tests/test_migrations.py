@@ -32,7 +32,13 @@ def test_models_and_migrations_do_not_drift(db_url):
 
 
 def test_down_and_up_keeps_the_data(db_url, capsys):
-    code, _, err = run_cli(capsys, "--db", db_url, "import", *(str(DEMO / n) for n in ("measurements.csv", "treatments.csv", "scores.csv")))
+    code, _, err = run_cli(
+        capsys,
+        "--db",
+        db_url,
+        "import",
+        *(str(DEMO / n) for n in ("measurements.csv", "treatments.csv", "scores.csv")),
+    )
     assert code == 0, err
     before = _counts(db_url)
     assert before["stimulation_sites"] > 300
@@ -85,10 +91,13 @@ def test_the_audit_chain_migration_seals_existing_rows_and_keeps_them(empty_url,
     engine = make_engine(empty_url)
     with engine.begin() as connection:
         for n in range(3):
-            connection.execute(text(
-                "INSERT INTO audit_events (occurred_at, username, action, entity, entity_key, detail) "
-                "VALUES (:at, 'older-invented', 'import_measurements', 'file', :key, 'before the chain')"),
-                {"at": f"2026-0{n + 1}-01 10:00:00", "key": f"sha256:{n}"})
+            connection.execute(
+                text(
+                    "INSERT INTO audit_events (occurred_at, username, action, entity, entity_key, detail) "
+                    "VALUES (:at, 'older-invented', 'import_measurements', 'file', :key, 'before the chain')"
+                ),
+                {"at": f"2026-0{n + 1}-01 10:00:00", "key": f"sha256:{n}"},
+            )
     migrate.upgrade(empty_url)
     with engine.connect() as connection:
         report = verify(connection)

@@ -29,15 +29,29 @@ def test_stored_settings_are_the_cli_defaults(tmp_path, capsys):
     code, out, _ = run_cli(capsys, "--db", url, "check", "DEMO-06", "--format", "json")
     after = json.loads(out)
     assert after["criteria"] == "efns-pns-2010-cidp"
-    cold = [f for n in after["nerves"] if (n["nerve"], n["side"], n["modality"]) in cold_nerves for f in n["findings"]]
+    cold = [
+        f
+        for n in after["nerves"]
+        if (n["nerve"], n["side"], n["modality"]) in cold_nerves
+        for f in n["findings"]
+    ]
     # Cold limb excluded is want of usable data (not evaluable); items that do not apply to the nerve anyway
     # (exclusion, pattern) stay not applicable (DESIGN.md §5).
     assert cold and all(f["status"] in ("not_evaluable", "not_applicable") for f in cold)
-    assert all("cold limb" in f["reason"] for f in cold if f["status"] == "not_evaluable"), [f for f in cold if f["status"] == "not_evaluable" and "cold limb" not in f["reason"]]
+    assert all("cold limb" in f["reason"] for f in cold if f["status"] == "not_evaluable"), [
+        f for f in cold if f["status"] == "not_evaluable" and "cold limb" not in f["reason"]
+    ]
     assert any(f["status"] == "not_evaluable" for f in cold)
     # An explicit option still wins over the stored setting.
-    code, out, _ = run_cli(capsys, "--db", url, "check", "DEMO-06", "--format", "json", "--cold-limbs", "warn")
-    warned = [f for n in json.loads(out)["nerves"] if (n["nerve"], n["side"], n["modality"]) in cold_nerves for f in n["findings"]]
+    code, out, _ = run_cli(
+        capsys, "--db", url, "check", "DEMO-06", "--format", "json", "--cold-limbs", "warn"
+    )
+    warned = [
+        f
+        for n in json.loads(out)["nerves"]
+        if (n["nerve"], n["side"], n["modality"]) in cold_nerves
+        for f in n["findings"]
+    ]
     assert any(f["status"] != "not_evaluable" for f in warned)
 
 

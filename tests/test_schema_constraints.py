@@ -13,15 +13,31 @@ from tracker.db.models import NerveTest, Patient, StimulationSite, Visit, utc_no
 
 def _visit(sessions) -> int:
     with sessions.begin() as session:
-        patient_id = session.scalar(insert(Patient).returning(Patient.id), [{"code": "T-1", "created_at": utc_now()}])
+        patient_id = session.scalar(
+            insert(Patient).returning(Patient.id), [{"code": "T-1", "created_at": utc_now()}]
+        )
         return session.scalar(
             insert(Visit).returning(Visit.id),
-            [{"patient_id": patient_id, "visit_date": dt.date(2024, 1, 2), "status": "final", "version": 1, "created_at": utc_now()}],
+            [
+                {
+                    "patient_id": patient_id,
+                    "visit_date": dt.date(2024, 1, 2),
+                    "status": "final",
+                    "version": 1,
+                    "created_at": utc_now(),
+                }
+            ],
         )
 
 
 def _test(sessions, visit_id, **values) -> int:
-    row = {"visit_id": visit_id, "nerve": "median", "side": "left", "modality": "motor", "f_absent": False} | values
+    row = {
+        "visit_id": visit_id,
+        "nerve": "median",
+        "side": "left",
+        "modality": "motor",
+        "f_absent": False,
+    } | values
     with sessions.begin() as session:
         return session.scalar(insert(NerveTest).returning(NerveTest.id), [row])
 
@@ -55,7 +71,13 @@ def test_nerve_test_checks(sessions, values):
 )
 def test_site_checks(sessions, values):
     test_id = _test(sessions, _visit(sessions))
-    row = {"nerve_test_id": test_id, "site_order": 1, "distance_mm": 70.0, "latency_ms": 3.5, "amplitude_mv": 6.0} | values
+    row = {
+        "nerve_test_id": test_id,
+        "site_order": 1,
+        "distance_mm": 70.0,
+        "latency_ms": 3.5,
+        "amplitude_mv": 6.0,
+    } | values
     with pytest.raises(IntegrityError):
         with sessions.begin() as session:
             session.execute(insert(StimulationSite), [row])
@@ -73,7 +95,18 @@ def test_deleting_a_visit_cascades_to_tests_and_sites(sessions):
     visit_id = _visit(sessions)
     test_id = _test(sessions, visit_id)
     with sessions.begin() as session:
-        session.execute(insert(StimulationSite), [{"nerve_test_id": test_id, "site_order": 1, "distance_mm": 70.0, "latency_ms": 3.5, "amplitude_mv": 6.0}])
+        session.execute(
+            insert(StimulationSite),
+            [
+                {
+                    "nerve_test_id": test_id,
+                    "site_order": 1,
+                    "distance_mm": 70.0,
+                    "latency_ms": 3.5,
+                    "amplitude_mv": 6.0,
+                }
+            ],
+        )
     with sessions.begin() as session:
         session.execute(delete(Visit).where(Visit.id == visit_id))
     with sessions() as session:
@@ -84,4 +117,15 @@ def test_deleting_a_visit_cascades_to_tests_and_sites(sessions):
 def test_a_site_needs_an_existing_nerve_test(sessions):
     with pytest.raises(IntegrityError):
         with sessions.begin() as session:
-            session.execute(insert(StimulationSite), [{"nerve_test_id": 9999, "site_order": 1, "distance_mm": 70.0, "latency_ms": 3.5, "amplitude_mv": 6.0}])
+            session.execute(
+                insert(StimulationSite),
+                [
+                    {
+                        "nerve_test_id": 9999,
+                        "site_order": 1,
+                        "distance_mm": 70.0,
+                        "latency_ms": 3.5,
+                        "amplitude_mv": 6.0,
+                    }
+                ],
+            )

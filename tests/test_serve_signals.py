@@ -1,6 +1,6 @@
-"""``ncs-tracker serve`` stops its Streamlit child when it is itself stopped (SIGTERM, SIGHUP): no dashboard may
-keep serving patient data after the command that started it has gone. Common practice for a supervising
-process, no source."""
+"""``ncs-tracker serve`` stops its Streamlit child when it is itself stopped (SIGTERM, SIGHUP):
+no dashboard may keep serving patient data after the command that started it has gone. Common
+practice for a supervising process, no source."""
 
 from __future__ import annotations
 
@@ -37,8 +37,19 @@ def test_stopping_serve_stops_the_dashboard(tmp_path, signum):
     port = _free_port()
     log = (tmp_path / "serve.log").open("w")
     process = subprocess.Popen(
-        [sys.executable, "-c", "from tracker.cli import main; main()", "--db", url, "serve", "--port", str(port)],
-        stdout=log, stderr=subprocess.STDOUT, start_new_session=True,
+        [
+            sys.executable,
+            "-c",
+            "from tracker.cli import main; main()",
+            "--db",
+            url,
+            "serve",
+            "--port",
+            str(port),
+        ],
+        stdout=log,
+        stderr=subprocess.STDOUT,
+        start_new_session=True,
     )
     try:
         deadline = time.monotonic() + 60
@@ -49,7 +60,9 @@ def test_stopping_serve_stops_the_dashboard(tmp_path, signum):
                         break
             except OSError:
                 pass
-            assert process.poll() is None and time.monotonic() < deadline, (tmp_path / "serve.log").read_text()[-2000:]
+            assert process.poll() is None and time.monotonic() < deadline, (
+                tmp_path / "serve.log"
+            ).read_text()[-2000:]
             time.sleep(0.3)
         process.send_signal(signum)  # the command only, not its process group
         process.wait(20)

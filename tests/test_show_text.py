@@ -17,7 +17,9 @@ DEMO_CODES = [f"DEMO-0{i}" for i in range(1, 7)]  # the invented demo clinic
 
 @pytest.fixture
 def demo_db(db_url, capsys) -> str:
-    code, _, err = run_cli(capsys, "--db", db_url, "import", *(str(demo_data_dir() / name) for name in DEMO_FILES))
+    code, _, err = run_cli(
+        capsys, "--db", db_url, "import", *(str(demo_data_dir() / name) for name in DEMO_FILES)
+    )
     assert code == 0, err
     return db_url
 
@@ -39,7 +41,9 @@ def test_show_words_units_and_clinical_precision(demo_db, capsys):
     assert status == 0, err
     segment = next(line for line in out.splitlines() if "median right: wrist → elbow" in line)
     assert f"{222 / (14.00 - 7.05):.1f}" in segment.split() and "31.94" not in segment
-    motor = next(line for line in out.splitlines() if line.strip().startswith("median right") and "→" not in line)
+    motor = next(
+        line for line in out.splitlines() if line.strip().startswith("median right") and "→" not in line
+    )
     assert "7.05" in motor.split()
     # Headers carry units; sites, scales and therapies are words.
     for header in ("CV (m/s)", "distal latency (ms)", "CMAP (mV)", "SNAP (µV)", "F-wave latency (ms)"):

@@ -23,7 +23,11 @@ def test_fast_and_careful_readers_give_the_same_cells(monkeypatch):
 def test_blank_line_keeps_spreadsheet_row_numbers(tmp_path):
     path = tmp_path / "gap.csv"
     path.write_text(
-        HEADER + "T-1,2024-01-10,median,right,motor,1,70,4.0,6.0\n\nT-1,2024-01-10,medain,right,motor,1,70,4.0,6.0\n",
+        HEADER
+        + (
+            "T-1,2024-01-10,median,right,motor,1,70,4.0,6.0\n\n"
+            "T-1,2024-01-10,medain,right,motor,1,70,4.0,6.0\n"
+        ),
         encoding="utf-8",
     )
     cells = tables.read_table(path).cells

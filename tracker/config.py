@@ -1,10 +1,11 @@
 """Settings: which database to use, and who is acting.
 
-| setting | environment variable | default |
-| --- | --- | --- |
-| database URL | ``NCS_TRACKER_DB`` | SQLite file ``ncs-tracker.sqlite3`` in the user data folder |
-| acting user (audit trail) | ``NCS_TRACKER_USER`` may only restate it | the login: operating-system account (SQLite), database login (PostgreSQL) |
-| dashboard sign-in | ``NCS_TRACKER_SIGN_IN=required`` (set by ``serve --sign-in``) | off on loopback |
+Setting — environment variable — default:
+
+- database URL — ``NCS_TRACKER_DB`` — SQLite file ``ncs-tracker.sqlite3`` in the user data folder;
+- acting user (audit trail) — ``NCS_TRACKER_USER`` may only restate it — the login: operating-system account
+  (SQLite), database login (PostgreSQL);
+- dashboard sign-in — ``NCS_TRACKER_SIGN_IN=required`` (set by ``serve --sign-in``) — off on loopback.
 """
 
 from __future__ import annotations

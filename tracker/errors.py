@@ -23,7 +23,8 @@ class NotFound(TrackerError):
 class Problem:
     """One defect found in an input file.
 
-    ``row`` is the row number as a spreadsheet shows it (the header is row 1); ``None`` for file-level problems.
+    ``row`` is the row number as a spreadsheet shows it (the header is
+    row 1); ``None`` for file-level problems.
     """
 
     row: int | None

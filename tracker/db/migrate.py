@@ -81,7 +81,9 @@ def require_current_schema(engine: Engine) -> None:
     try:
         current = current_revision(engine)
     except Exception as error:  # unreachable server, bad credentials…
-        raise TrackerError(f"Cannot open the database: {type(error).__name__}. Check --db / NCS_TRACKER_DB.") from None
+        raise TrackerError(
+            f"Cannot open the database: {type(error).__name__}. Check --db / NCS_TRACKER_DB."
+        ) from None
     head = head_revision()
     if current is None:
         raise SchemaNotReady("This database has no ncs-tracker schema yet; run: ncs-tracker db upgrade")

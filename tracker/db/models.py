@@ -86,7 +86,9 @@ class User(Base):
     role: Mapped[str] = mapped_column(String(16), server_default="viewer")
     active: Mapped[bool] = mapped_column(Boolean, server_default="1")
     created_at: Mapped[CreatedAt]
-    password_hash: Mapped[str | None] = mapped_column(String(255), comment="argon2id, PHC string; never logged")
+    password_hash: Mapped[str | None] = mapped_column(
+        String(255), comment="argon2id, PHC string; never logged"
+    )
     password_changed_at: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
     failed_sign_ins: Mapped[int] = mapped_column(Integer, server_default="0", comment="consecutive failures")
     locked_until: Mapped[dt.datetime | None] = mapped_column(DateTime(timezone=True))
@@ -109,7 +111,9 @@ class Patient(Base):
     code: Mapped[str] = mapped_column(String(40), unique=True, comment="pseudonymous patient code")
     sex: Mapped[str | None] = mapped_column(String(16), comment="female / male / unspecified")
     birth_year: Mapped[int | None] = mapped_column(Integer, comment="year of birth (no full date here)")
-    diagnosis: Mapped[str | None] = mapped_column(String(16), comment="current diagnosis: cidp, mmn, gbs, other")
+    diagnosis: Mapped[str | None] = mapped_column(
+        String(16), comment="current diagnosis: cidp, mmn, gbs, other"
+    )
     phenotype: Mapped[str | None] = mapped_column(String(16), comment="current CIDP phenotype")
     onset_date: Mapped[dt.date | None] = mapped_column(Date, comment="symptom onset date")
     created_at: Mapped[CreatedAt]
@@ -118,7 +122,10 @@ class Patient(Base):
         back_populates="patient", cascade="all, delete-orphan", passive_deletes=True
     )
     visits: Mapped[list[Visit]] = relationship(
-        back_populates="patient", cascade="all, delete-orphan", passive_deletes=True, order_by="Visit.visit_date"
+        back_populates="patient",
+        cascade="all, delete-orphan",
+        passive_deletes=True,
+        order_by="Visit.visit_date",
     )
 
 
@@ -185,7 +192,9 @@ class VisitRevision(Base):
     revision: Mapped[int] = mapped_column(Integer, comment="the visit version these values belonged to")
     status: Mapped[str] = mapped_column(String(8), comment="draft / final at the time")
     content_sha256: Mapped[str] = mapped_column(String(64))
-    snapshot: Mapped[dict[str, Any]] = mapped_column(comment="the visit, its nerve tests and sites as they were")
+    snapshot: Mapped[dict[str, Any]] = mapped_column(
+        comment="the visit, its nerve tests and sites as they were"
+    )
     replaced_at: Mapped[CreatedAt]
     replaced_by: Mapped[str] = mapped_column(String(64))
     reason: Mapped[str | None] = mapped_column(String(200))
@@ -206,7 +215,9 @@ class NerveTest(Base):
         CheckConstraint("f_latency_ms > 0 AND f_latency_ms < 200", name="f_latency_range"),
         CheckConstraint("f_persistence_pct BETWEEN 0 AND 100", name="f_persistence_range"),
         CheckConstraint("NOT (f_absent AND f_latency_ms IS NOT NULL)", name="f_absent_has_no_latency"),
-        CheckConstraint("modality = 'motor' OR (f_latency_ms IS NULL AND NOT f_absent)", name="f_wave_motor_only"),
+        CheckConstraint(
+            "modality = 'motor' OR (f_latency_ms IS NULL AND NOT f_absent)", name="f_wave_motor_only"
+        ),
     )
 
     id: Mapped[IntPk]
@@ -221,7 +232,8 @@ class NerveTest(Base):
     f_absent: Mapped[bool] = mapped_column(Boolean, server_default="0", comment="F-waves sought, none found")
     f_persistence_pct: Mapped[float | None] = mapped_column(Float, comment="F-wave persistence, %")
     wrist_entrapment: Mapped[bool | None] = mapped_column(
-        Boolean, comment="median only: clinician judges the distal latency explained by neuropathy at the wrist"
+        Boolean,
+        comment="median only: clinician judges the distal latency explained by neuropathy at the wrist",
     )
 
     visit: Mapped[Visit] = relationship(back_populates="nerve_tests")
@@ -253,7 +265,8 @@ class StimulationSite(Base):
         CheckConstraint("area_mvms >= 0 AND area_mvms <= 1000", name="area_range"),
         CheckConstraint("amplitude_mv IS NULL OR amplitude_uv IS NULL", name="one_amplitude_unit"),
         CheckConstraint(
-            "latency_ms IS NOT NULL OR COALESCE(amplitude_mv, amplitude_uv, -1) = 0", name="latency_or_no_response"
+            "latency_ms IS NOT NULL OR COALESCE(amplitude_mv, amplitude_uv, -1) = 0",
+            name="latency_or_no_response",
         ),
     )
 
@@ -371,7 +384,9 @@ class Evaluation(Base):
     visit_id: Mapped[int] = mapped_column(ForeignKey("visits.id", ondelete="CASCADE"))
     criteria_id: Mapped[str] = mapped_column(String(40))
     criteria_version: Mapped[str] = mapped_column(String(20))
-    limit_set_id: Mapped[int | None] = mapped_column(ForeignKey("limit_sets.id", ondelete="SET NULL"), index=True)
+    limit_set_id: Mapped[int | None] = mapped_column(
+        ForeignKey("limit_sets.id", ondelete="SET NULL"), index=True
+    )
     limit_set_version: Mapped[int | None] = mapped_column(Integer)
     input_sha256: Mapped[str] = mapped_column(String(64), comment="fingerprint of the inputs evaluated")
     outcome: Mapped[str] = mapped_column(String(32))
@@ -391,7 +406,9 @@ class AuditEvent(Base):
     username: Mapped[str] = mapped_column(String(64))
     action: Mapped[str] = mapped_column(String(40), comment="e.g. import, replace_visit, add_treatment")
     entity: Mapped[str] = mapped_column(String(40), comment="table or kind of thing written")
-    entity_key: Mapped[str | None] = mapped_column(String(200), comment="pseudonymous key, never an identifier")
+    entity_key: Mapped[str | None] = mapped_column(
+        String(200), comment="pseudonymous key, never an identifier"
+    )
     before: Mapped[dict[str, Any] | None] = mapped_column()
     after: Mapped[dict[str, Any] | None] = mapped_column()
     detail: Mapped[str | None] = mapped_column(Text)
@@ -408,30 +425,45 @@ class AppSetting(Base):
 
     key: Mapped[str] = mapped_column(String(64), primary_key=True)
     value: Mapped[str] = mapped_column(Text)
-    updated_at: Mapped[dt.datetime] = mapped_column(DateTime(timezone=True), default=utc_now, onupdate=utc_now)
+    updated_at: Mapped[dt.datetime] = mapped_column(
+        DateTime(timezone=True), default=utc_now, onupdate=utc_now
+    )
 
 
 RESPONSE_CLASSIFICATIONS = ("improved", "stable", "worsened", "not_assessable")
 
 
 class ResponseAssessment(Base):
-    """A saved treatment-response classification of one regimen, as judged on one day by one rule set: what
-    was shown, with the rule set's version, the visits compared and the evidence (issue: treatment response)."""
+    """A saved treatment-response classification of one regimen, as judged on one day by
+    one rule set: what was shown, with the rule set's version, the visits compared and the
+    evidence (issue: treatment response)."""
 
     __tablename__ = "response_assessments"
     __table_args__ = (
-        UniqueConstraint("patient_id", "therapy", "regimen_start", "rule_set", "rule_set_version", "judged_on", name="uq_response_assessments_one_per_day"),
+        UniqueConstraint(
+            "patient_id",
+            "therapy",
+            "regimen_start",
+            "rule_set",
+            "rule_set_version",
+            "judged_on",
+            name="uq_response_assessments_one_per_day",
+        ),
         CheckConstraint(_in("classification", RESPONSE_CLASSIFICATIONS), name="classification_known"),
     )
 
     id: Mapped[IntPk]
     patient_id: Mapped[int] = mapped_column(ForeignKey("patients.id", ondelete="CASCADE"), index=True)
     therapy: Mapped[str] = mapped_column(String(40))
-    regimen_start: Mapped[dt.date] = mapped_column(Date, comment="first day of the regimen (of its induction when there is one)")
+    regimen_start: Mapped[dt.date] = mapped_column(
+        Date, comment="first day of the regimen (of its induction when there is one)"
+    )
     regimen: Mapped[str] = mapped_column(String(200), comment="the regimen in words: therapy, dose, interval")
     rule_set: Mapped[str] = mapped_column(String(64))
     rule_set_version: Mapped[str] = mapped_column(String(20))
-    judged_on: Mapped[dt.date] = mapped_column(Date, comment="the day the classification describes (scores after it unseen)")
+    judged_on: Mapped[dt.date] = mapped_column(
+        Date, comment="the day the classification describes (scores after it unseen)"
+    )
     classification: Mapped[str] = mapped_column(String(20))
     visits_compared: Mapped[list[Any]] = mapped_column(comment="ISO dates of the scores compared")
     evidence: Mapped[dict[str, Any]] = mapped_column(comment="evidence, missing data, notes and settings")

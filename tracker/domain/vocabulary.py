@@ -15,7 +15,16 @@ PHENOTYPES = ("typical", "distal", "multifocal", "focal", "motor", "sensory")
 VISIT_STATUSES = ("draft", "final")
 USER_ROLES = ("viewer", "clinician", "coordinator", "admin")
 THERAPIES = ("ivig", "scig", "corticosteroid", "plasma_exchange", "rituximab", "efgartigimod", "other")
-YES_NO = {"yes": True, "y": True, "true": True, "1": True, "no": False, "n": False, "false": False, "0": False}
+YES_NO = {
+    "yes": True,
+    "y": True,
+    "true": True,
+    "1": True,
+    "no": False,
+    "n": False,
+    "false": False,
+    "0": False,
+}
 ABSENT_WORDS = ("absent", "none", "no response", "nr")
 LIMIT_PARAMETERS = (
     "distal_latency_ms",

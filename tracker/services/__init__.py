@@ -1,1 +1,2 @@
-"""Use cases (import a file, show a patient…). Functions take a Session owned by the caller and never commit."""
+"""Use cases (import a file, show a patient…). Functions take a Session
+owned by the caller and never commit."""

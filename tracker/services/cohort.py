@@ -21,12 +21,23 @@ from tracker.services.limit_sets import resolve
 
 NOT_EVALUATED = "not evaluated"
 
-PATIENT_COLUMNS = ["patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit", "current_treatment", "latest_outcome"]
+PATIENT_COLUMNS = [
+    "patient",
+    "diagnosis",
+    "phenotype",
+    "visits",
+    "first_visit",
+    "last_visit",
+    "current_treatment",
+    "latest_outcome",
+]
 
 
 def _evaluations(session: Session, criteria: str, limit_set_id: int) -> pd.DataFrame:
     """Saved outcomes of ``criteria`` with one normal-limit set: visit_id, outcome."""
-    query = select(Evaluation.visit_id, Evaluation.outcome).where(Evaluation.criteria_id == criteria, Evaluation.limit_set_id == limit_set_id)
+    query = select(Evaluation.visit_id, Evaluation.outcome).where(
+        Evaluation.criteria_id == criteria, Evaluation.limit_set_id == limit_set_id
+    )
     return pd.DataFrame(session.execute(query).all(), columns=["visit_id", "outcome"])
 
 
@@ -43,26 +54,44 @@ def patient_list(
     """One row per patient (``PATIENT_COLUMNS``), filtered by code (substring, any case), diagnosis and the
     latest visit's outcome of ``criteria``."""
     stats = (
-        select(Visit.patient_id, func.count(Visit.id).label("visits"), func.min(Visit.visit_date).label("first_visit"), func.max(Visit.visit_date).label("last_visit"))
+        select(
+            Visit.patient_id,
+            func.count(Visit.id).label("visits"),
+            func.min(Visit.visit_date).label("first_visit"),
+            func.max(Visit.visit_date).label("last_visit"),
+        )
         .group_by(Visit.patient_id)
         .subquery()
     )
-    query = select(Patient.id, Patient.code, Patient.diagnosis, Patient.phenotype, stats.c.visits, stats.c.first_visit, stats.c.last_visit).outerjoin(
-        stats, stats.c.patient_id == Patient.id
-    )
+    query = select(
+        Patient.id,
+        Patient.code,
+        Patient.diagnosis,
+        Patient.phenotype,
+        stats.c.visits,
+        stats.c.first_visit,
+        stats.c.last_visit,
+    ).outerjoin(stats, stats.c.patient_id == Patient.id)
     if search.strip():
         query = query.where(func.lower(Patient.code).contains(search.strip().lower(), autoescape=True))
     if diagnosis:
         query = query.where(Patient.diagnosis == diagnosis)
-    frame = pd.DataFrame(session.execute(query.order_by(Patient.code)).all(), columns=["id", "patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit"])
+    frame = pd.DataFrame(
+        session.execute(query.order_by(Patient.code)).all(),
+        columns=["id", "patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit"],
+    )
     frame["visits"] = frame["visits"].fillna(0).astype(int)
     latest = pd.DataFrame(
         session.execute(
-            select(Visit.id, Visit.patient_id).join(stats, (stats.c.patient_id == Visit.patient_id) & (stats.c.last_visit == Visit.visit_date))
+            select(Visit.id, Visit.patient_id).join(
+                stats, (stats.c.patient_id == Visit.patient_id) & (stats.c.last_visit == Visit.visit_date)
+            )
         ).all(),
         columns=["visit_id", "id"],
     )
-    outcomes = _evaluations(session, criteria, resolve(session, limits_name)[0].id).merge(latest, on="visit_id")
+    outcomes = _evaluations(session, criteria, resolve(session, limits_name)[0].id).merge(
+        latest, on="visit_id"
+    )
     frame = frame.merge(outcomes[["id", "outcome"]], on="id", how="left")
     frame["latest_outcome"] = frame["outcome"].astype(object).where(frame["outcome"].notna(), NOT_EVALUATED)
     frame.loc[frame["visits"] == 0, "latest_outcome"] = "no visits"
@@ -74,9 +103,9 @@ def patient_list(
 
 @dataclass
 class PatientPage:
-    """One page of the patient list: ``rows`` (``PATIENT_COLUMNS`` and ``latest_criteria``, the set that judged
-    the latest outcome), how many patients pass the filters, and
-    which latest outcomes occur among them (for the outcome filter)."""
+    """One page of the patient list: ``rows`` (``PATIENT_COLUMNS`` and ``latest_criteria``, the set
+    that judged the latest outcome), how many patients pass the filters, and which latest outcomes
+    occur among them (for the outcome filter)."""
 
     rows: pd.DataFrame
     total: int
@@ -108,23 +137,53 @@ def patient_page(
     visits = select(func.count(Visit.id)).where(mine).scalar_subquery()
     first = select(func.min(Visit.visit_date)).where(mine).scalar_subquery()
     last = select(func.max(Visit.visit_date)).where(mine).scalar_subquery()
-    latest_visit = select(Visit.id).where(mine).order_by(Visit.visit_date.desc()).limit(1).correlate(Patient).scalar_subquery()
+    latest_visit = (
+        select(Visit.id)
+        .where(mine)
+        .order_by(Visit.visit_date.desc())
+        .limit(1)
+        .correlate(Patient)
+        .scalar_subquery()
+    )
     if criteria is None:
-        latest_diagnosis = select(Visit.diagnosis).where(mine).order_by(Visit.visit_date.desc()).limit(1).correlate(Patient).scalar_subquery()
+        latest_diagnosis = (
+            select(Visit.diagnosis)
+            .where(mine)
+            .order_by(Visit.visit_date.desc())
+            .limit(1)
+            .correlate(Patient)
+            .scalar_subquery()
+        )
         diagnosis_used = func.coalesce(latest_diagnosis, Patient.diagnosis)
-        chosen = case(*[(diagnosis_used == d, literal(c)) for d, c in DEFAULT_CRITERIA.items()], else_=literal(FALLBACK_CRITERIA))
+        chosen = case(
+            *[(diagnosis_used == d, literal(c)) for d, c in DEFAULT_CRITERIA.items()],
+            else_=literal(FALLBACK_CRITERIA),
+        )
     else:
         chosen = literal(criteria)
     saved = (
         select(Evaluation.outcome)
-        .where(Evaluation.visit_id == latest_visit, Evaluation.criteria_id == chosen, Evaluation.limit_set_id == limit_set_id)
+        .where(
+            Evaluation.visit_id == latest_visit,
+            Evaluation.criteria_id == chosen,
+            Evaluation.limit_set_id == limit_set_id,
+        )
         .limit(1)
         .scalar_subquery()
     )
-    word = case((visits == 0, literal("no visits")), else_=func.coalesce(saved, literal(NOT_EVALUATED))).label("latest_outcome")
+    word = case(
+        (visits == 0, literal("no visits")), else_=func.coalesce(saved, literal(NOT_EVALUATED))
+    ).label("latest_outcome")
     query = select(
-        Patient.id, Patient.code, Patient.diagnosis, Patient.phenotype, visits.label("visits"), first.label("first_visit"),
-        last.label("last_visit"), word, chosen.label("latest_criteria"),
+        Patient.id,
+        Patient.code,
+        Patient.diagnosis,
+        Patient.phenotype,
+        visits.label("visits"),
+        first.label("first_visit"),
+        last.label("last_visit"),
+        word,
+        chosen.label("latest_criteria"),
     )
     if search.strip():
         query = query.where(func.lower(Patient.code).contains(search.strip().lower(), autoescape=True))
@@ -132,7 +191,11 @@ def patient_page(
         query = query.where(Patient.diagnosis == diagnosis)
     filtered = query.subquery()
     # One pass gives both the outcomes present (for the filter) and the counts (for the page count).
-    counts = dict(session.execute(select(filtered.c.latest_outcome, func.count()).group_by(filtered.c.latest_outcome)).all())
+    counts = dict(
+        session.execute(
+            select(filtered.c.latest_outcome, func.count()).group_by(filtered.c.latest_outcome)
+        ).all()
+    )
     outcomes = sorted(counts)
     if outcome:
         filtered_rows = select(filtered).where(filtered.c.latest_outcome == outcome)
@@ -140,19 +203,46 @@ def patient_page(
     else:
         filtered_rows = select(filtered)
         total = sum(counts.values())
-    rows = session.execute(filtered_rows.order_by(filtered.c.code).limit(page_rows).offset(max(0, page - 1) * page_rows)).all()
-    frame = pd.DataFrame([tuple(r) for r in rows], columns=["id", "patient", "diagnosis", "phenotype", "visits", "first_visit", "last_visit", "latest_outcome", "latest_criteria"])
+    rows = session.execute(
+        filtered_rows.order_by(filtered.c.code).limit(page_rows).offset(max(0, page - 1) * page_rows)
+    ).all()
+    frame = pd.DataFrame(
+        [tuple(r) for r in rows],
+        columns=[
+            "id",
+            "patient",
+            "diagnosis",
+            "phenotype",
+            "visits",
+            "first_visit",
+            "last_visit",
+            "latest_outcome",
+            "latest_criteria",
+        ],
+    )
     frame["visits"] = frame["visits"].fillna(0).astype(int)
     for column in ("first_visit", "last_visit"):
-        frame[column] = [d if d is None or isinstance(d, dt.date) else dt.date.fromisoformat(str(d)) for d in frame[column]]
+        frame[column] = [
+            d if d is None or isinstance(d, dt.date) else dt.date.fromisoformat(str(d)) for d in frame[column]
+        ]
     frame["current_treatment"] = _current_treatments(session, frame, today or dt.date.today())
-    return PatientPage(frame[[*PATIENT_COLUMNS, "latest_criteria"]].reset_index(drop=True), int(total), outcomes)
+    return PatientPage(
+        frame[[*PATIENT_COLUMNS, "latest_criteria"]].reset_index(drop=True), int(total), outcomes
+    )
 
 
 def _current_treatments(session: Session, patients: pd.DataFrame, today: dt.date) -> list[str]:
     """Treatments running today (no end date, or ending today or later), in words; '' when none."""
     query = (
-        select(Treatment.patient_id, Treatment.therapy, Treatment.dose, Treatment.dose_unit, Treatment.interval_days, Treatment.start_date, Treatment.end_date)
+        select(
+            Treatment.patient_id,
+            Treatment.therapy,
+            Treatment.dose,
+            Treatment.dose_unit,
+            Treatment.interval_days,
+            Treatment.start_date,
+            Treatment.end_date,
+        )
         .where(Treatment.start_date <= today, (Treatment.end_date.is_(None)) | (Treatment.end_date >= today))
         .order_by(Treatment.patient_id, Treatment.start_date)
     )
@@ -161,7 +251,9 @@ def _current_treatments(session: Session, patients: pd.DataFrame, today: dt.date
     rows = session.execute(query).all()
     running: dict[int, list[str]] = {}
     for r in rows:
-        running.setdefault(r.patient_id, []).append(treatment_label(r.therapy, r.dose, r.dose_unit, r.interval_days))
+        running.setdefault(r.patient_id, []).append(
+            treatment_label(r.therapy, r.dose, r.dose_unit, r.interval_days)
+        )
     return ["; ".join(running.get(int(pid), [])) for pid in patients["id"]]
 
 
@@ -174,15 +266,25 @@ def visit_table(
     start: dt.date | None = None,
     end: dt.date | None = None,
 ) -> pd.DataFrame:
-    """One row per visit: patient code, visit date, diagnosis, phenotype, and the saved outcome of each set."""
-    query = select(Visit.id.label("visit_id"), Patient.code.label("patient"), Visit.visit_date, Visit.diagnosis, Visit.phenotype).join(Patient, Patient.id == Visit.patient_id)
+    """One row per visit: patient code, visit date, diagnosis, phenotype,
+    and the saved outcome of each set."""
+    query = select(
+        Visit.id.label("visit_id"),
+        Patient.code.label("patient"),
+        Visit.visit_date,
+        Visit.diagnosis,
+        Visit.phenotype,
+    ).join(Patient, Patient.id == Visit.patient_id)
     if diagnosis:
         query = query.where(Visit.diagnosis == diagnosis)
     if start:
         query = query.where(Visit.visit_date >= start)
     if end:
         query = query.where(Visit.visit_date <= end)
-    frame = pd.DataFrame(session.execute(query.order_by(Patient.code, Visit.visit_date)).all(), columns=["visit_id", "patient", "visit_date", "diagnosis", "phenotype"])
+    frame = pd.DataFrame(
+        session.execute(query.order_by(Patient.code, Visit.visit_date)).all(),
+        columns=["visit_id", "patient", "visit_date", "diagnosis", "phenotype"],
+    )
     limit_set_id = resolve(session, limits_name)[0].id
     for cid in criteria:
         saved = _evaluations(session, cid, limit_set_id).rename(columns={"outcome": cid})
@@ -197,7 +299,11 @@ def counts_by_diagnosis(visits: pd.DataFrame) -> pd.DataFrame:
         return pd.DataFrame(columns=["diagnosis", "patients", "visits"])
     table = visits.assign(diagnosis=visits["diagnosis"].astype(object).fillna("unspecified"))
     return (
-        table.groupby("diagnosis").agg(patients=("patient", "nunique"), visits=("patient", "size")).reset_index().sort_values("diagnosis").reset_index(drop=True)
+        table.groupby("diagnosis")
+        .agg(patients=("patient", "nunique"), visits=("patient", "size"))
+        .reset_index()
+        .sort_values("diagnosis")
+        .reset_index(drop=True)
     )
 
 
@@ -209,12 +315,20 @@ def outcome_shares(visits: pd.DataFrame, criteria: list[str]) -> pd.DataFrame:
             continue
         counts = visits[cid].value_counts()
         for outcome_value, count in counts.items():
-            rows.append({"criteria": cid, "outcome": outcome_value, "visits": int(count), "share_pct": round(100.0 * count / len(visits), 1)})
+            rows.append(
+                {
+                    "criteria": cid,
+                    "outcome": outcome_value,
+                    "visits": int(count),
+                    "share_pct": round(100.0 * count / len(visits), 1),
+                }
+            )
     return pd.DataFrame(rows, columns=["criteria", "outcome", "visits", "share_pct"])
 
 
 def csv_bytes(frame: pd.DataFrame) -> bytes:
-    """The table as UTF-8 CSV for a download, with text that a spreadsheet would run as a formula neutralised."""
+    """The table as UTF-8 CSV for a download, with text that a spreadsheet
+    would run as a formula neutralised."""
     safe = frame.copy()
     for column in safe.columns:
         if not pd.api.types.is_numeric_dtype(safe[column]):

@@ -46,21 +46,66 @@ PARAMETERS: dict[str, Parameter] = {
     p.key: p
     for p in (
         Parameter("cv", "Motor conduction velocity", "m/s", "motor", "lln_cv", "LLN", ("cv",)),
-        Parameter("distal_latency", "Distal motor latency", "ms", "motor", "uln_distal_latency_ms", "ULN", ("dml",)),
-        Parameter("distal_cmap", "Distal CMAP amplitude", "mV", "motor", "lln_amplitude", "LLN", ("axonal_low_cmap",)),
-        # Block and dispersion: the chosen set decides amplitude or area, from the distal site or over the segment;
-        # follow_up() gives the parameter the label of the feature it plots (labels.PLOTTED_FEATURE_LABELS).
-        Parameter("block", "Conduction block (CMAP reduction)", "%", "motor", None, None, ("cb", "definite_cb", "cb_td")),
-        Parameter("dispersion", "Temporal dispersion (CMAP duration increase)", "%", "motor", None, None, ("td",)),
-        Parameter("f_latency", "Minimal F-wave latency", "ms", "motor", "uln_f_latency_ms", "ULN", ("f_latency",)),
-        Parameter("sensory_cv", "Sensory conduction velocity", "m/s", "sensory", "lln_cv", "LLN", ("sensory_cv",)),
-        Parameter("snap", "SNAP amplitude", "µV", "sensory", "lln_amplitude", "LLN", ("snap_reduced", "snap_amplitude", "snap_normal")),
+        Parameter(
+            "distal_latency", "Distal motor latency", "ms", "motor", "uln_distal_latency_ms", "ULN", ("dml",)
+        ),
+        Parameter(
+            "distal_cmap",
+            "Distal CMAP amplitude",
+            "mV",
+            "motor",
+            "lln_amplitude",
+            "LLN",
+            ("axonal_low_cmap",),
+        ),
+        # Block and dispersion: the chosen set decides amplitude or area, from the distal site
+        # or over the segment; follow_up() gives the parameter the label of the feature it
+        # plots (labels.PLOTTED_FEATURE_LABELS).
+        Parameter(
+            "block",
+            "Conduction block (CMAP reduction)",
+            "%",
+            "motor",
+            None,
+            None,
+            ("cb", "definite_cb", "cb_td"),
+        ),
+        Parameter(
+            "dispersion", "Temporal dispersion (CMAP duration increase)", "%", "motor", None, None, ("td",)
+        ),
+        Parameter(
+            "f_latency", "Minimal F-wave latency", "ms", "motor", "uln_f_latency_ms", "ULN", ("f_latency",)
+        ),
+        Parameter(
+            "sensory_cv", "Sensory conduction velocity", "m/s", "sensory", "lln_cv", "LLN", ("sensory_cv",)
+        ),
+        Parameter(
+            "snap",
+            "SNAP amplitude",
+            "µV",
+            "sensory",
+            "lln_amplitude",
+            "LLN",
+            ("snap_reduced", "snap_amplitude", "snap_normal"),
+        ),
     )
 }
 
 POINT_COLUMNS = [
-    "panel", "nerve", "side", "modality", "visit_key", "visit_date", "series", "segment_kind", "value", "unit",
-    "temperature_c", "temperature_minimum_c", "cold", "note",
+    "panel",
+    "nerve",
+    "side",
+    "modality",
+    "visit_key",
+    "visit_date",
+    "series",
+    "segment_kind",
+    "value",
+    "unit",
+    "temperature_c",
+    "temperature_minimum_c",
+    "cold",
+    "note",
 ]
 REFERENCE_COLUMNS = ["panel", "visit_key", "visit_date", "kind", "value", "label", "comparator", "source"]
 
@@ -109,19 +154,34 @@ def follow_up(
     settings = settings or Settings()
     patient = find_patient(session, code)
     criteria = criteria or default_criteria(patient.diagnosis)
-    visit_ids = list(session.scalars(select(Visit.id).where(Visit.patient_id == patient.id).order_by(Visit.visit_date)))
+    visit_ids = list(
+        session.scalars(select(Visit.id).where(Visit.patient_id == patient.id).order_by(Visit.visit_date))
+    )
     info, limits = resolve(session, limits_name)
     visits, tests, sites = load_frames(session, visit_ids)
     dates = dict(zip(visits["visit_key"].astype(int), visits["visit_date"]))
-    strip = list(dict.fromkeys([criteria, *(engine.available() if strip_criteria is None else strip_criteria)]))
-    nerves, paths = features.build(visits, tests, sites, limits) if len(tests) else (pd.DataFrame(), pd.DataFrame())
+    strip = list(
+        dict.fromkeys([criteria, *(engine.available() if strip_criteria is None else strip_criteria)])
+    )
+    nerves, paths = (
+        features.build(visits, tests, sites, limits) if len(tests) else (pd.DataFrame(), pd.DataFrame())
+    )
     # The engine reuses the feature tables the points are read from (built once per page).
-    results = engine.evaluate(visits, tests, sites, limits, strip, settings, built=(nerves, paths)) if len(tests) else {}
-    if chosen.key in ("block", "dispersion"):  # say what is plotted: amplitude or area, from distal or per segment
+    results = (
+        engine.evaluate(visits, tests, sites, limits, strip, settings, built=(nerves, paths))
+        if len(tests)
+        else {}
+    )
+    if chosen.key in (
+        "block",
+        "dispersion",
+    ):  # say what is plotted: amplitude or area, from distal or per segment
         chosen = replace(chosen, label=PLOTTED_FEATURE_LABELS[_path_column(chosen, criteria)[0]])
     points = _points(chosen, nerves, paths, criteria, dates)
     references = _references(chosen, nerves, results.get(criteria), dates, thresholds.load(criteria))
-    shown = results if strip_criteria is None else {cid: r for cid, r in results.items() if cid in strip_criteria}
+    shown = (
+        results if strip_criteria is None else {cid: r for cid, r in results.items() if cid in strip_criteria}
+    )
     outcomes = _outcome_rows(shown, dates)
     version = results[criteria].version if criteria in results else thresholds.load(criteria).version
     return FollowUp(
@@ -153,7 +213,12 @@ def _outcome_rows(results: dict, dates: dict[int, dt.date]) -> pd.DataFrame:
 
 
 def outcome_history(
-    session: Session, code: str, *, criteria: list[str] | None = None, limits_name: str | None = None, settings: Settings | None = None
+    session: Session,
+    code: str,
+    *,
+    criteria: list[str] | None = None,
+    limits_name: str | None = None,
+    settings: Settings | None = None,
 ) -> pd.DataFrame:
     """Per visit of patient ``code``, the outcome of each criteria set (all by default): the outcome strip."""
     patient = find_patient(session, code)
@@ -162,11 +227,15 @@ def outcome_history(
     visits, tests, sites = load_frames(session, visit_ids)
     if not len(tests):
         return _outcome_rows({}, {})
-    results = engine.evaluate(visits, tests, sites, limits, criteria or engine.available(), settings or Settings())
+    results = engine.evaluate(
+        visits, tests, sites, limits, criteria or engine.available(), settings or Settings()
+    )
     return _outcome_rows(results, dict(zip(visits["visit_key"].astype(int), visits["visit_date"])))
 
 
-def _points(chosen: Parameter, nerves: pd.DataFrame, paths: pd.DataFrame, criteria: str, dates: dict[int, dt.date]) -> pd.DataFrame:
+def _points(
+    chosen: Parameter, nerves: pd.DataFrame, paths: pd.DataFrame, criteria: str, dates: dict[int, dt.date]
+) -> pd.DataFrame:
     if nerves.empty:
         return pd.DataFrame(columns=POINT_COLUMNS)
     nerves = nerves[nerves["modality"] == chosen.modality]
@@ -180,21 +249,36 @@ def _points(chosen: Parameter, nerves: pd.DataFrame, paths: pd.DataFrame, criter
         frame = motor[motor[column].notna()]
         frame = pd.DataFrame(
             {
-                "nerve": frame["nerve"], "side": frame["side"], "modality": "motor", "test_key": frame["test_key"],
-                "visit_key": frame["visit_key"], "series": frame[series], "segment_kind": frame["segment_kind"],
-                "value": frame[column].astype(float), "note": "",
+                "nerve": frame["nerve"],
+                "side": frame["side"],
+                "modality": "motor",
+                "test_key": frame["test_key"],
+                "visit_key": frame["visit_key"],
+                "series": frame[series],
+                "segment_kind": frame["segment_kind"],
+                "value": frame[column].astype(float),
+                "note": "",
             }
         )
     else:
         column = {
-            "distal_latency": "distal_latency_ms", "distal_cmap": "distal_amplitude", "f_latency": "f_latency_ms",
-            "sensory_cv": "sensory_cv", "snap": "distal_amplitude",
+            "distal_latency": "distal_latency_ms",
+            "distal_cmap": "distal_amplitude",
+            "f_latency": "f_latency_ms",
+            "sensory_cv": "sensory_cv",
+            "snap": "distal_amplitude",
         }[chosen.key]
         frame = pd.DataFrame(
             {
-                "nerve": nerves["nerve"], "side": nerves["side"], "modality": nerves["modality"], "test_key": nerves["test_key"],
-                "visit_key": nerves["visit_key"], "series": chosen.label, "segment_kind": "",
-                "value": nerves[column].astype(float), "note": "",
+                "nerve": nerves["nerve"],
+                "side": nerves["side"],
+                "modality": nerves["modality"],
+                "test_key": nerves["test_key"],
+                "visit_key": nerves["visit_key"],
+                "series": chosen.label,
+                "segment_kind": "",
+                "value": nerves[column].astype(float),
+                "note": "",
             }
         )
         if chosen.key == "f_latency":
@@ -205,7 +289,9 @@ def _points(chosen: Parameter, nerves: pd.DataFrame, paths: pd.DataFrame, criter
         else:
             frame = frame[frame["value"].notna()]
     frame = frame.join(context, on="test_key")
-    frame["panel"] = [panel_name(n, s, m) for n, s, m in zip(frame["nerve"], frame["side"], frame["modality"])]
+    frame["panel"] = [
+        panel_name(n, s, m) for n, s, m in zip(frame["nerve"], frame["side"], frame["modality"])
+    ]
     frame["visit_date"] = [dates[int(k)] for k in frame["visit_key"]]
     frame["unit"] = chosen.unit
     frame["cold"] = frame["cold"].fillna(False).astype(bool)
@@ -237,13 +323,23 @@ def _threshold_words(chosen: Parameter, table: thresholds.ThresholdTable, item: 
     found = _threshold_row(table, item, row.nerve)
     if found is None:  # an item whose threshold is a normal limit itself (e.g. SNAP below LLN)
         sign = COMPARATOR_SIGNS.get(str(row.comparator), "")
-        named = row.limit_name if isinstance(row.limit_name, str) and row.limit_name else f"{float(row.threshold):g} {chosen.unit}"
+        named = (
+            row.limit_name
+            if isinstance(row.limit_name, str) and row.limit_name
+            else f"{float(row.threshold):g} {chosen.unit}"
+        )
         return f"threshold: {sign} {named}"
     value = float(row.threshold) if found.reference in ("percent", "absolute") else found.value
     return threshold_label(chosen.key, str(row.comparator), value, found.reference, chosen.unit)
 
 
-def _references(chosen: Parameter, nerves: pd.DataFrame, result, dates: dict[int, dt.date], table: thresholds.ThresholdTable) -> pd.DataFrame:
+def _references(
+    chosen: Parameter,
+    nerves: pd.DataFrame,
+    result,
+    dates: dict[int, dt.date],
+    table: thresholds.ThresholdTable,
+) -> pd.DataFrame:
     rows: list[dict] = []
     if nerves.empty:
         return pd.DataFrame(columns=REFERENCE_COLUMNS)
@@ -252,25 +348,37 @@ def _references(chosen: Parameter, nerves: pd.DataFrame, result, dates: dict[int
         for row in nerves[nerves[chosen.limit_column].notna()].itertuples(index=False):
             rows.append(
                 {
-                    "panel": panel_name(row.nerve, row.side, row.modality), "visit_key": int(row.visit_key),
-                    "visit_date": dates[int(row.visit_key)], "kind": "normal limit",
-                    "value": float(getattr(row, chosen.limit_column)), "label": chosen.bound,
-                    "comparator": "", "source": getattr(row, f"{chosen.limit_column}_source"),
+                    "panel": panel_name(row.nerve, row.side, row.modality),
+                    "visit_key": int(row.visit_key),
+                    "visit_date": dates[int(row.visit_key)],
+                    "kind": "normal limit",
+                    "value": float(getattr(row, chosen.limit_column)),
+                    "label": chosen.bound,
+                    "comparator": "",
+                    "source": getattr(row, f"{chosen.limit_column}_source"),
                 }
             )
     if result is not None and not result.findings.empty:
         findings = result.findings
         item = next((i for i in chosen.items if (findings["item"] == i).any()), None)
         if item is not None:
-            wanted = findings[(findings["item"] == item) & (findings["modality"] == chosen.modality) & findings["threshold"].notna()]
+            wanted = findings[
+                (findings["item"] == item)
+                & (findings["modality"] == chosen.modality)
+                & findings["threshold"].notna()
+            ]
             wanted = wanted.drop_duplicates(["visit_key", "nerve", "side", "modality"], keep="first")
             for row in wanted.itertuples(index=False):
                 rows.append(
                     {
-                        "panel": panel_name(row.nerve, row.side, row.modality), "visit_key": int(row.visit_key),
-                        "visit_date": dates[int(row.visit_key)], "kind": "criteria threshold", "value": float(row.threshold),
+                        "panel": panel_name(row.nerve, row.side, row.modality),
+                        "visit_key": int(row.visit_key),
+                        "visit_date": dates[int(row.visit_key)],
+                        "kind": "criteria threshold",
+                        "value": float(row.threshold),
                         "label": _threshold_words(chosen, table, item, row),
-                        "comparator": str(row.comparator), "source": str(row.source),
+                        "comparator": str(row.comparator),
+                        "source": str(row.source),
                     }
                 )
     frame = pd.DataFrame(rows, columns=REFERENCE_COLUMNS)
@@ -279,16 +387,29 @@ def _references(chosen: Parameter, nerves: pd.DataFrame, result, dates: dict[int
 
 def _treatments(session: Session, patient_id: int) -> pd.DataFrame:
     rows = session.execute(
-        select(Treatment.therapy, Treatment.start_date, Treatment.end_date, Treatment.dose, Treatment.dose_unit, Treatment.interval_days)
+        select(
+            Treatment.therapy,
+            Treatment.start_date,
+            Treatment.end_date,
+            Treatment.dose,
+            Treatment.dose_unit,
+            Treatment.interval_days,
+        )
         .where(Treatment.patient_id == patient_id)
         .order_by(Treatment.start_date)
     ).all()
-    frame = pd.DataFrame(rows, columns=["therapy", "start_date", "end_date", "dose", "dose_unit", "interval_days"])
-    frame["label"] = [treatment_label(r.therapy, r.dose, r.dose_unit, r.interval_days) for r in frame.itertuples()]
+    frame = pd.DataFrame(
+        rows, columns=["therapy", "start_date", "end_date", "dose", "dose_unit", "interval_days"]
+    )
+    frame["label"] = [
+        treatment_label(r.therapy, r.dose, r.dose_unit, r.interval_days) for r in frame.itertuples()
+    ]
     return frame
 
 
-def treatment_label(therapy: str, dose: float | None, dose_unit: str | None, interval_days: float | None) -> str:
+def treatment_label(
+    therapy: str, dose: float | None, dose_unit: str | None, interval_days: float | None
+) -> str:
     """``ivig 2 g/kg every 21 days`` (see :func:`tracker.domain.labels.treatment_words`)."""
     return treatment_words(therapy, dose, dose_unit, interval_days)
 

@@ -24,7 +24,8 @@ def get(session: Session, key: str) -> str | None:
 
 
 def put(session: Session, key: str, value: str, *, username: str, secret: bool = False) -> None:
-    """Store ``value`` under ``key`` in the caller's transaction; the change is audited (a secret's value is not)."""
+    """Store ``value`` under ``key`` in the caller's transaction; the change is
+    audited (a secret's value is not)."""
     row = session.get(AppSetting, key)
     before = None if row is None else row.value
     if row is None:
@@ -33,8 +34,15 @@ def put(session: Session, key: str, value: str, *, username: str, secret: bool =
         row.value = value
     session.flush()
     shown = (lambda v: None if v is None else "(secret)") if secret else (lambda v: v)
-    record(session, username=username, action="set", entity="setting", entity_key=key,
-           before=None if before is None else {"value": shown(before)}, after={"value": shown(value)})
+    record(
+        session,
+        username=username,
+        action="set",
+        entity="setting",
+        entity_key=key,
+        before=None if before is None else {"value": shown(before)},
+        after={"value": shown(value)},
+    )
 
 
 def default_criteria(session: Session) -> str | None:
@@ -56,7 +64,9 @@ def cold_limbs(session: Session) -> str:
 
 def set_cold_limbs(session: Session, policy: str, *, username: str) -> None:
     if policy not in COLD_LIMB_POLICIES:
-        raise TrackerError(f"Unknown temperature policy {policy!r}; choose {' or '.join(COLD_LIMB_POLICIES)}.")
+        raise TrackerError(
+            f"Unknown temperature policy {policy!r}; choose {' or '.join(COLD_LIMB_POLICIES)}."
+        )
     put(session, COLD_LIMBS_KEY, policy, username=username)
 
 

@@ -84,14 +84,25 @@ def patient_record(session: Session, code: str, *, visit_date: dt.date | None = 
         query = query.where(Visit.visit_date == visit_date)
     visits = session.scalars(query).all()
     if visit_date is not None and not visits:
-        dates = ", ".join(d.isoformat() for d in session.scalars(select(Visit.visit_date).where(Visit.patient_id == patient.id).order_by(Visit.visit_date)))
+        dates = ", ".join(
+            d.isoformat()
+            for d in session.scalars(
+                select(Visit.visit_date).where(Visit.patient_id == patient.id).order_by(Visit.visit_date)
+            )
+        )
         raise NotFound(f"Patient {code} has no visit on {visit_date.isoformat()}; visits: {dates or 'none'}")
     visit_ids = [v.id for v in visits]
-    tests = session.scalars(select(NerveTest).where(NerveTest.visit_id.in_(visit_ids))).all() if visit_ids else []
+    tests = (
+        session.scalars(select(NerveTest).where(NerveTest.visit_id.in_(visit_ids))).all() if visit_ids else []
+    )
     test_ids = [t.id for t in tests]
     sites: dict[int, list[Site]] = {t: [] for t in test_ids}
     if test_ids:
-        for s in session.scalars(select(StimulationSite).where(StimulationSite.nerve_test_id.in_(test_ids)).order_by(StimulationSite.site_order)):
+        for s in session.scalars(
+            select(StimulationSite)
+            .where(StimulationSite.nerve_test_id.in_(test_ids))
+            .order_by(StimulationSite.site_order)
+        ):
             sites[s.nerve_test_id].append(
                 Site(
                     order=s.site_order,
@@ -136,11 +147,17 @@ def patient_record(session: Session, code: str, *, visit_date: dt.date | None = 
     )
     treatments = tuple(
         TreatmentRecord(t.therapy, t.start_date, t.end_date, t.dose, t.dose_unit, t.interval_days)
-        for t in session.scalars(select(Treatment).where(Treatment.patient_id == patient.id).order_by(Treatment.start_date))
+        for t in session.scalars(
+            select(Treatment).where(Treatment.patient_id == patient.id).order_by(Treatment.start_date)
+        )
     )
     scores = tuple(
         (s.score_date, s.scale, s.value)
-        for s in session.scalars(select(OutcomeScore).where(OutcomeScore.patient_id == patient.id).order_by(OutcomeScore.score_date, OutcomeScore.scale))
+        for s in session.scalars(
+            select(OutcomeScore)
+            .where(OutcomeScore.patient_id == patient.id)
+            .order_by(OutcomeScore.score_date, OutcomeScore.scale)
+        )
     )
     return PatientRecord(
         code=patient.code,

@@ -26,10 +26,15 @@ class UserInfo:
 
 
 def list_users(session: Session) -> list[UserInfo]:
-    return [UserInfo(u.username, u.display_name, u.role, u.active) for u in session.scalars(select(User).order_by(User.username))]
+    return [
+        UserInfo(u.username, u.display_name, u.role, u.active)
+        for u in session.scalars(select(User).order_by(User.username))
+    ]
 
 
-def set_user(session: Session, username: str, *, role: str, display_name: str | None = None, acting: str) -> tuple[UserInfo, str]:
+def set_user(
+    session: Session, username: str, *, role: str, display_name: str | None = None, acting: str
+) -> tuple[UserInfo, str]:
     """Add ``username`` with ``role``, or change the role of an existing user (reactivating it).
     Returns the user and ``"added"``, ``"changed"`` or ``"unchanged"``."""
     username = username.strip()
@@ -42,7 +47,14 @@ def set_user(session: Session, username: str, *, role: str, display_name: str | 
         user = User(username=username, role=role, display_name=display_name, active=True)
         session.add(user)
         session.flush()
-        record(session, username=acting, action="add", entity="user", entity_key=username, after={"role": role, "active": True})
+        record(
+            session,
+            username=acting,
+            action="add",
+            entity="user",
+            entity_key=username,
+            after={"role": role, "active": True},
+        )
         outcome = "added"
     else:
         before = {"role": user.role, "active": user.active}
@@ -53,7 +65,15 @@ def set_user(session: Session, username: str, *, role: str, display_name: str | 
         outcome = "unchanged" if before == after else "changed"
         if outcome == "changed":
             session.flush()
-            record(session, username=acting, action="change", entity="user", entity_key=username, before=before, after=after)
+            record(
+                session,
+                username=acting,
+                action="change",
+                entity="user",
+                entity_key=username,
+                before=before,
+                after=after,
+            )
     return UserInfo(user.username, user.display_name, user.role, user.active), outcome
 
 
@@ -65,5 +85,13 @@ def deactivate_user(session: Session, username: str, *, acting: str) -> UserInfo
     if user.active:
         user.active = False
         session.flush()
-        record(session, username=acting, action="deactivate", entity="user", entity_key=username, before={"active": True}, after={"active": False})
+        record(
+            session,
+            username=acting,
+            action="deactivate",
+            entity="user",
+            entity_key=username,
+            before={"active": True},
+            after={"active": False},
+        )
     return UserInfo(user.username, user.display_name, user.role, user.active)

@@ -31,13 +31,20 @@ def set_clinician_inputs(
 ) -> list[str]:
     """Record the inputs; return a line per change (empty when nothing changed)."""
     patient = find_patient(session, code)
-    visit = session.scalar(select(Visit).where(Visit.patient_id == patient.id, Visit.visit_date == visit_date))
+    visit = session.scalar(
+        select(Visit).where(Visit.patient_id == patient.id, Visit.visit_date == visit_date)
+    )
     if visit is None:
         raise NotFound(f"Patient {code} has no visit on {visit_date.isoformat()}.")
     if phenotype is not None and phenotype not in PHENOTYPES:
-        raise TrackerError(f"Invalid value for 'phenotype'. Allowed values are {', '.join(PHENOTYPES)}, but got {phenotype!r} instead.")
+        raise TrackerError(
+            f"Invalid value for 'phenotype'. Allowed values are {', '.join(PHENOTYPES)}, but got "
+            f"{phenotype!r} instead."
+        )
     if phenotype is not None and visit.diagnosis not in (None, "cidp"):
-        raise TrackerError(f"A phenotype is recorded for CIDP only; this visit's diagnosis is {visit.diagnosis}.")
+        raise TrackerError(
+            f"A phenotype is recorded for CIDP only; this visit's diagnosis is {visit.diagnosis}."
+        )
     changes: list[str] = []
     new_values: dict[str, object] = {}
     if phenotype is not None and phenotype != visit.phenotype:
@@ -48,8 +55,17 @@ def set_clinician_inputs(
         if side not in SIDES:
             raise TrackerError(f"Invalid side {side!r}; expected left or right.")
         test = session.scalar(
-            select(NerveTest).where(NerveTest.visit_id == visit.id, NerveTest.nerve == "median", NerveTest.side == side, NerveTest.modality == "motor")
-        ) or session.scalar(select(NerveTest).where(NerveTest.visit_id == visit.id, NerveTest.nerve == "median", NerveTest.side == side))
+            select(NerveTest).where(
+                NerveTest.visit_id == visit.id,
+                NerveTest.nerve == "median",
+                NerveTest.side == side,
+                NerveTest.modality == "motor",
+            )
+        ) or session.scalar(
+            select(NerveTest).where(
+                NerveTest.visit_id == visit.id, NerveTest.nerve == "median", NerveTest.side == side
+            )
+        )
         if test is None:
             raise NotFound(f"The visit has no {side} median nerve test to annotate.")
         if test.wrist_entrapment != value:
@@ -58,22 +74,42 @@ def set_clinician_inputs(
     if not changes:
         return []
     history = pd.DataFrame(
-        [{"visit_id": visit.id, "version": visit.version, "status": visit.status, "db_fingerprint": visit.content_sha256,
-          "fingerprint": "", "patient": code, "visit_date": visit.visit_date}]
+        [
+            {
+                "visit_id": visit.id,
+                "version": visit.version,
+                "status": visit.status,
+                "db_fingerprint": visit.content_sha256,
+                "fingerprint": "",
+                "patient": code,
+                "visit_date": visit.visit_date,
+            }
+        ]
     )
     keep_history(session, history, username=username, reason="clinician inputs changed")
     if new_values:
         session.execute(update(Visit).where(Visit.id == visit.id).values(**new_values))
     for side, value in median_updates:
         session.execute(
-            update(NerveTest).where(NerveTest.visit_id == visit.id, NerveTest.nerve == "median", NerveTest.side == side).values(wrist_entrapment=value)
+            update(NerveTest)
+            .where(NerveTest.visit_id == visit.id, NerveTest.nerve == "median", NerveTest.side == side)
+            .values(wrist_entrapment=value)
         )
     fingerprint = stored_fingerprints(session, [visit.id])[visit.id]
     session.execute(
-        update(Visit).where(Visit.id == visit.id).values(content_sha256=fingerprint, version=visit.version + 1, updated_at=utc_now())
+        update(Visit)
+        .where(Visit.id == visit.id)
+        .values(content_sha256=fingerprint, version=visit.version + 1, updated_at=utc_now())
     )
-    audit.record(session, username=username, action="set_clinician_inputs", entity="visits", entity_key=f"{code}/{visit_date.isoformat()}",
-                 before={"version": visit.version}, after={"version": visit.version + 1, "changes": changes})
+    audit.record(
+        session,
+        username=username,
+        action="set_clinician_inputs",
+        entity="visits",
+        entity_key=f"{code}/{visit_date.isoformat()}",
+        before={"version": visit.version},
+        after={"version": visit.version + 1, "changes": changes},
+    )
     return changes
 
 
