@@ -17,10 +17,6 @@ from tracker.domain.plausibility import scales
 from tracker.response.scales import ScaleInfo
 
 # Kind of a column → pandas dtype and Parquet type. Dates are plain ``datetime.date`` objects in pandas.
-# Whole numbers (counts, days, ages) are nullable integers in every format: pandas Int64, Parquet int32 (the
-# Parquet file carries pandas' own schema note, so that pandas reads them back as Int64, not as float64).
-# "category" columns are pandas Categoricals and Parquet dictionaries of strings, ordered where the column's
-# values form a scale (see :class:`Column`).
 PANDAS_DTYPES: dict[str, object] = {
     "text": "str",
     "float": "float64",
@@ -41,7 +37,6 @@ TYPE_WORDS = {
     "int": "whole number",
     "bool": "true/false",
     "date": "date (YYYY-MM-DD)",
-    "category": "category",
 }
 
 # Scores are looked for on the visit date, else the nearest date within this many days (earlier on a tie).
@@ -54,10 +49,7 @@ RESPONSE_SCORE_DAYS = SCORE_WINDOW_DAYS
 
 @dataclass(frozen=True)
 class Column:
-    """One exported column; ``unit`` is empty for words and counts, ``depends_on`` for plain data.
-
-    A ``category`` column holds one of ``categories``; with ``ordered`` they are a scale, lowest first.
-    """
+    """One exported column; ``unit`` is empty for words and counts, ``depends_on`` for plain data."""
 
     name: str
     kind: str
@@ -65,31 +57,6 @@ class Column:
     meaning: str
     derivation: str
     depends_on: str = ""
-    categories: tuple[str, ...] = ()
-    ordered: bool = False
-
-    @property
-    def pandas_dtype(self) -> object:
-        """The pandas dtype of this column in :func:`export_frame` and when read back from Parquet."""
-        if self.kind == "category":
-            return pd.CategoricalDtype(list(self.categories), ordered=self.ordered)
-        return PANDAS_DTYPES[self.kind]
-
-    @property
-    def arrow_type(self) -> pa.DataType:
-        """The Parquet (Arrow) type of this column."""
-        if self.kind == "category":
-            return pa.dictionary(pa.int8(), pa.string(), ordered=self.ordered)
-        return ARROW_TYPES[self.kind]
-
-    @property
-    def values_words(self) -> str:
-        """The allowed values of a category column, in order for an ordered one."""
-        if self.kind != "category":
-            return ""
-        if self.ordered:
-            return " < ".join(self.categories) + " (ordered, lowest first)"
-        return ", ".join(self.categories) + " (unordered)"
 
 
 # Outcome values of each criteria set (DESIGN.md §5): the data dictionary lists them, and the export refuses a
@@ -101,24 +68,6 @@ OUTCOME_VALUES = {
     "efns-pns-2010-mmn": ("definite", "probable", "not_met", "undecided"),
     "hadden-1998-gbs": ("demyelinating", "axonal", "inexcitable", "equivocal", "normal"),
     "rajabally-2015-gbs": ("demyelinating", "axonal", "inexcitable", "equivocal", "normal"),
-}
-UNDECIDED = "undecided"
-# The outcome column's categories, lowest first, and whether they form a scale. The CIDP and MMN levels are
-# ordered as the publications rank them (DESIGN.md §5: "definite", "probable", "possible" are levels of
-# certainty). "undecided" is not a level (no level was reached, and missing data could still make the set
-# met): it is kept out of the scale and shown by the flag column ``…__undecided``. The GBS classifications
-# name subtypes (demyelinating, axonal, inexcitable, equivocal, normal), not degrees: an unordered category.
-OUTCOME_CATEGORIES: dict[str, tuple[tuple[str, ...], bool]] = {
-    "efns-pns-2010-cidp": (("not_met", "possible", "probable", "definite"), True),
-    "ean-pns-2021-cidp": (("not_met", "possible_cidp", "cidp"), True),
-    "aan-1991-cidp": (("not_met", "met"), True),
-    "efns-pns-2010-mmn": (("not_met", "probable", "definite"), True),
-    "hadden-1998-gbs": (("normal", "equivocal", "demyelinating", "axonal", "inexcitable"), False),
-    "rajabally-2015-gbs": (("normal", "equivocal", "demyelinating", "axonal", "inexcitable"), False),
-}
-# Extra outcome keys whose values form a scale (lowest first); the other keys stay text.
-EXTRA_KEY_CATEGORIES: dict[tuple[str, str], tuple[str, ...]] = {
-    ("ean-pns-2021-cidp", "motor"): ("not_met", "weakly_supportive", "strongly_supportive"),
 }
 
 
@@ -264,20 +213,12 @@ def visit_columns(sets: list[SetColumns], limits_label: str, *, identified: bool
         Column("sex", "text", "", "female, male or unspecified", "stored value"),
         Column(
             "age_at_visit",
-            "int",
+            "text",
             "years",
-            "age in whole years at the visit, a number; top-coded at 90 unless the export is identified: 90 "
-            "means 90 or older (see age_top_coded). Until this version the column was text and showed '90+'",
-            "year of the visit − year of birth (may exceed the exact age by one year); ages over 89 are "
-            "aggregated into one category of 90 or older (HIPAA Safe Harbor, 45 CFR 164.514(b)(2)(i)(C))",
-        ),
-        Column(
-            "age_top_coded",
-            "bool",
-            "",
-            "true when age_at_visit was top-coded: the age is 90 or older and shown as 90 (never true in an "
-            "identified export, which gives the age itself); empty when the age is unknown",
-            "age at the visit ≥ 90 in a de-identified export",
+            "age in whole years at the visit, as text; ages 90 and over are shown as 90+ unless the export "
+            "is identified",
+            "year of the visit − year of birth (may exceed the exact age by one year); HIPAA Safe Harbor, "
+            "45 CFR 164.514(b)(2)(i)(C)",
         ),
         Column("height_cm", "float", "cm", "height at the visit", "stored value"),
         Column(
@@ -289,22 +230,6 @@ def visit_columns(sets: list[SetColumns], limits_label: str, *, identified: bool
         ),
         Column(
             "nerve_tests", "int", "", "number of nerve tests (nerve × side × modality) at the visit", "count"
-        ),
-        Column(
-            "nerve_tests_no_response",
-            "int",
-            "",
-            "number of nerve tests with no recordable response at the distal site (a finding, not missing "
-            "data)",
-            "count of nerve tests whose site 1 has amplitude 0 and no latency",
-        ),
-        Column(
-            "nerve_tests_f_absent",
-            "int",
-            "",
-            "number of motor nerve tests whose F-waves were sought and none found (a finding, not missing "
-            "data)",
-            "count of nerve tests recorded with F-waves absent",
         ),
         Column(
             "therapy_at_visit",
@@ -362,98 +287,48 @@ def visit_columns(sets: list[SetColumns], limits_label: str, *, identified: bool
             ),
         ]
     for found in sets:
-        columns += outcome_columns(found, limits_label)
-    return columns
-
-
-def outcome_columns(found: SetColumns, limits_label: str) -> list[Column]:
-    """The visit-level columns of one criteria set: outcome, undecided flag and count, extra keys, rule."""
-    depends = _depends(found, limits_label)
-    categories, ordered = OUTCOME_CATEGORIES[found.criteria]
-    levels = " < ".join(categories) if ordered else ", ".join(categories)
-    has_undecided = UNDECIDED in OUTCOME_VALUES.get(found.criteria, ())
-    undecided_words = (
-        "; empty also when the outcome is undecided (see the __undecided column)" if has_undecided else ""
-    )
-    columns = [
-        Column(
-            f"{found.alias}__outcome",
-            "category",
-            "",
-            f"electrodiagnostic outcome of criteria set {found.criteria}: "
-            + (f"an ordered category, {levels}" if ordered else f"a category (not a scale), one of {levels}")
-            + undecided_words,
-            "the criteria engine over all nerve tests of the visit; empty for a visit without nerve tests. "
-            + (
-                "Until this version the column was text and held 'undecided' too"
-                if has_undecided
-                else "Until this version the column was text"
-            ),
-            depends,
-            categories,
-            ordered,
+        depends = _depends(found, limits_label)
+        values = OUTCOME_VALUES.get(found.criteria)
+        vocabulary = f": {', '.join(values)}" if values else ""
+        undecided = (
+            " (undecided: findings not evaluable for want of data could make the set met; named in the rule "
+            "column)"
+            if values and "undecided" in values
+            else ""
         )
-    ]
-    if has_undecided:
-        columns += [
+        columns.append(
             Column(
-                f"{found.alias}__undecided",
-                "bool",
+                f"{found.alias}__outcome",
+                "text",
                 "",
-                f"{found.criteria}: true when no level was reached but findings not evaluable for want of data "
-                "(a measurement not recorded) could make the set met — the outcome 'undecided', kept apart from "
-                "the ordered levels; the outcome column is then empty",
-                "the criteria engine; empty for a visit without nerve tests",
+                f"electrodiagnostic outcome of criteria set {found.criteria}{vocabulary}{undecided}",
+                "the criteria engine over all nerve tests of the visit; empty for a visit without nerve "
+                "tests",
                 depends,
-            ),
-            Column(
-                f"{found.alias}__undecided_items",
-                "int",
-                "",
-                f"{found.criteria}: number of findings not evaluable for want of data that could make the set "
-                "met or raise the level reached (0 when the outcome is settled); they are named in the rule "
-                "column",
-                "the criteria engine; empty for a visit without nerve tests",
-                depends,
-            ),
-        ]
-    for key in found.extra_keys:
-        scale = EXTRA_KEY_CATEGORIES.get((found.criteria, key))
-        if scale:
+            )
+        )
+        for key in found.extra_keys:
+            kind = "int" if key == "items_met" else "text"
             columns.append(
                 Column(
                     f"{found.alias}__{key}",
-                    "category",
+                    kind,
                     "",
-                    f"{found.criteria}: {key.replace('_', ' ')}, an ordered category: {' < '.join(scale)}",
-                    "the criteria engine (extra key of the outcome). Until this version the column was text",
+                    f"{found.criteria}: {key.replace('_', ' ')}",
+                    "the criteria engine (extra key of the outcome)",
                     depends,
-                    scale,
-                    True,
                 )
             )
-            continue
-        kind = "int" if key == "items_met" else "text"
         columns.append(
             Column(
-                f"{found.alias}__{key}",
-                kind,
+                f"{found.alias}__rule",
+                "text",
                 "",
-                f"{found.criteria}: {key.replace('_', ' ')}",
-                "the criteria engine (extra key of the outcome)",
+                f"{found.criteria}: which combination rule decided the outcome",
+                "the criteria engine",
                 depends,
             )
         )
-    columns.append(
-        Column(
-            f"{found.alias}__rule",
-            "text",
-            "",
-            f"{found.criteria}: which combination rule decided the outcome",
-            "the criteria engine",
-            depends,
-        )
-    )
     return columns
 
 
