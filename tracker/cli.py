@@ -67,9 +67,13 @@ def db_status(context: Context) -> None:
 @click.argument("files", nargs=-1, required=True, type=click.Path(path_type=Path, dir_okay=False))
 @click.option("--dry-run", is_flag=True, help="Check the files and report what would change; write nothing.")
 @click.option("--replace", is_flag=True, help="Replace stored values that the files change (earlier values are kept in history).")
+@click.option("--force", is_flag=True,
+              help="With --replace: replace a visit even when it changed after the file's visit_version (or "
+                   "while this import ran); recorded in the audit trail.")
 @click.option("--allow-unusual", is_flag=True, help="Accept conduction velocities outside 10–100 m/s (the override is recorded).")
 @pass_context
-def import_command(context: Context, files: tuple[Path, ...], dry_run: bool, replace: bool, allow_unusual: bool) -> None:
+def import_command(context: Context, files: tuple[Path, ...], dry_run: bool, replace: bool, force: bool,
+                   allow_unusual: bool) -> None:
     """Import measurements, treatments or scores (UTF-8 CSV, or the first sheet of an .xlsx).
 
     The kind of file is recognised from its header: a 'nerve' column for measurements, 'therapy' for
@@ -80,14 +84,20 @@ def import_command(context: Context, files: tuple[Path, ...], dry_run: bool, rep
     spreadsheet shows it, column, what was expected), nothing is written and the exit code is 1. Warnings
     (a visit of a single nerve, a visit date that may have day and month swapped) are printed and the import
     goes ahead.
+
+    A replaced visit must still be the version the file was made from (its optional visit_version column,
+    else the version this import read first); otherwise it is refused, naming the visit, unless --force.
     """
     from tracker.services.importing import import_file
 
+    if force and not replace:
+        raise click.UsageError("--force only applies with --replace.")
     sessions = context.session_factory()
     with sessions.begin() as session:
         for path in files:
             click.echo(f"Checking {path.name} …", err=True)
-            report = import_file(session, path, username=context.user, dry_run=dry_run, replace=replace, allow_unusual=allow_unusual)
+            report = import_file(session, path, username=context.user, dry_run=dry_run, replace=replace,
+                                 force=force, allow_unusual=allow_unusual)
             click.echo(report.summary())
             for problem in report.unusual:
                 click.echo(f"  accepted: {problem}")
@@ -258,16 +268,36 @@ def annotate_command(context: Context, patient: str, visit_date: str, phenotype:
 
 @cli.command("evaluate")
 @click.option("--limits", "limits_name", metavar="NAME", help="Normal-limit set (default: the one marked default).")
+@click.option("--chunk-visits", type=click.IntRange(min=1), metavar="N",
+              help="Visits evaluated and saved per transaction (default 1000): other writers get the "
+                   "database between chunks, and an interrupted run keeps the chunks it finished.")
 @pass_context
-def evaluate_command(context: Context, limits_name: str | None) -> None:
-    """Recompute the saved evaluations of every visit whose data, limits or criteria changed."""
+def evaluate_command(context: Context, limits_name: str | None, chunk_visits: int | None) -> None:
+    """Recompute the saved evaluations of every visit whose data, limits or criteria changed.
+
+    Works through the visits in chunks, each saved in its own transaction; run it again after an
+    interruption and it continues (evaluations already current are skipped).
+    """
     from tracker.criteria.model import Settings
     from tracker.services import preferences
-    from tracker.services.evaluation import refresh_evaluations
+    from tracker.services.evaluation import CHUNK_VISITS, refresh_evaluations
 
-    with context.session_factory().begin() as session:
-        counts = refresh_evaluations(session, limits_name=limits_name, settings=Settings(cold_limbs=preferences.cold_limbs(session)))
-    click.echo(f"{counts['visits']} visits: {counts['recomputed']} evaluations recomputed, {counts['unchanged']} unchanged.")
+    username = context.acting("write_clinical").name
+    chunk = chunk_visits or CHUNK_VISITS
+
+    def progress(done: int, total: int) -> None:
+        if total > chunk:  # a one-chunk run needs no progress line
+            click.echo(f"  {done:,} of {total:,} visits evaluated", err=True)
+
+    with context.session_factory()() as session:
+        settings = Settings(cold_limbs=preferences.cold_limbs(session))
+        counts = refresh_evaluations(session, limits_name=limits_name, settings=settings, username=username,
+                                     chunk_visits=chunk, commit_chunks=True, progress=progress)
+    click.echo(f"{counts['visits']} visits: {counts['recomputed']} evaluations recomputed, "
+               f"{counts['unchanged']} unchanged.")
+    if counts["changed_meanwhile"]:
+        click.echo(f"{counts['changed_meanwhile']} visits changed again and again while they were evaluated; "
+                   "run evaluate again for them.", err=True)
 
 
 @cli.group()
@@ -523,6 +553,12 @@ def main(argv: list[str] | None = None) -> None:
     except Exception as error:  # a bug, or an environment problem: no traceback (it may hold patient data)
         if debug:
             raise
+        from tracker.db.locking import busy_error
+
+        busy = busy_error(error)  # another process held the database longer than the bounded wait
+        if busy is not None:
+            click.echo(f"Error: {busy}", err=True)
+            sys.exit(busy.exit_code)
         click.echo(
             f"Error: an unexpected {type(error).__name__} stopped the command; nothing further was written. "
             "Run again with --debug to see the details.",

@@ -6,33 +6,41 @@ from __future__ import annotations
 import datetime as dt
 import hashlib
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import delete, insert, select
+from sqlalchemy import delete, select
 from sqlalchemy.orm import Session
 
 from tracker.criteria import engine
 from tracker.criteria.model import Settings, SetResult
+from tracker.db.locking import DatabaseBusy, checkpoint, retry_when_busy, take_write_lock
 from tracker.db.models import Evaluation, NerveTest, Patient, StimulationSite, Visit, utc_now
 from tracker.errors import NotFound, TrackerError
 from tracker.services.access import audit
 from tracker.services.limit_sets import LimitSetInfo, resolve
 from tracker.services.records import find_patient
+from tracker.services.rows import chunks as _chunks
 
 # The set a visit is checked against when none is asked for, by the visit's working diagnosis.
 DEFAULT_CRITERIA = {"cidp": "ean-pns-2021-cidp", "mmn": "efns-pns-2010-mmn", "gbs": "hadden-1998-gbs"}
 FALLBACK_CRITERIA = "efns-pns-2010-cidp"
 
 
-def load_frames(session: Session, visit_ids: list[int] | None = None) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
-    """(visits, tests, sites) as the engine expects them, for the given visits (all when ``None``)."""
-    visit_query = select(
+def _visit_query(visit_ids: list[int] | None):
+    query = select(
         Visit.id.label("visit_key"), Patient.code.label("patient"), Visit.visit_date, Visit.height_cm, Patient.sex,
         Patient.birth_year, Visit.phenotype, Visit.diagnosis, Visit.content_sha256,
     ).join(Patient, Patient.id == Visit.patient_id)
+    return query if visit_ids is None else query.where(Visit.id.in_(visit_ids))
+
+
+def load_frames(session: Session,
+                visit_ids: list[int] | None = None) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """(visits, tests, sites) as the engine expects them, for the given visits (all when ``None``)."""
     test_query = select(
         NerveTest.id.label("test_key"), NerveTest.visit_id.label("visit_key"), NerveTest.nerve, NerveTest.side, NerveTest.modality,
         NerveTest.temperature_c, NerveTest.lff_hz, NerveTest.f_latency_ms, NerveTest.f_absent, NerveTest.wrist_entrapment,
@@ -43,21 +51,26 @@ def load_frames(session: Session, visit_ids: list[int] | None = None) -> tuple[p
         StimulationSite.duration_ms, StimulationSite.area_mvms,
     ).join(NerveTest, NerveTest.id == StimulationSite.nerve_test_id)
     if visit_ids is not None:
-        visit_query = visit_query.where(Visit.id.in_(visit_ids))
         test_query = test_query.where(NerveTest.visit_id.in_(visit_ids))
         site_query = site_query.where(NerveTest.visit_id.in_(visit_ids))
     connection = session.connection()
-    visits = pd.read_sql(visit_query, connection)
+    visits = pd.read_sql(_visit_query(visit_ids), connection)
     tests = pd.read_sql(test_query, connection)
     sites = pd.read_sql(site_query, connection)
     return _typed(visits, tests, sites)
 
 
-def _typed(visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+def _typed_visits(visits: pd.DataFrame) -> pd.DataFrame:
     visits["visit_date"] = pd.to_datetime(visits["visit_date"]).dt.date
     # Age at the visit from the birth year: exact to within a year (the full birth date is kept apart).
     visits["age_years"] = pd.to_datetime(visits["visit_date"]).dt.year - visits["birth_year"].astype(float)
     visits["height_cm"] = visits["height_cm"].astype(float)
+    return visits
+
+
+def _typed(visits: pd.DataFrame, tests: pd.DataFrame,
+           sites: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    visits = _typed_visits(visits)
     tests["f_absent"] = tests["f_absent"].fillna(False).astype(bool)
     for column in ("temperature_c", "lff_hz", "f_latency_ms"):
         tests[column] = tests[column].astype(float)
@@ -166,47 +179,107 @@ def _input_fingerprints(visits: pd.DataFrame, info: LimitSetInfo, criteria_versi
     return result
 
 
+# Visits read, evaluated and saved at a time by refresh_evaluations. Memory stays bounded whatever the cohort
+# (a chunk's traces are built and encoded for their column before the write lock is taken), and with
+# ``commit_chunks`` a chunk holds the database's write lock for one to two seconds (measured on SQLite with
+# traces stored as JSON text, 6 criteria sets), so that an import waits seconds, not minutes.
+CHUNK_VISITS = 1000
+# How often visits whose data changed while they were being evaluated are taken up again in the same run.
+RECHECK_ROUNDS = 2
+_EVALUATION_COLUMNS = ("visit_id", "criteria_id", "criteria_version", "limit_set_id", "limit_set_version",
+                       "input_sha256", "outcome", "result", "computed_at")
+
+
+def _rows(visits: pd.DataFrame, result: SetResult, info: LimitSetInfo, settings: Settings,
+          encode: Callable[[Any], Any]) -> list[dict[str, Any]]:
+    """The evaluation rows of ``visits`` for one criteria set, the trace already encoded for its column by
+    ``encode`` (:func:`_trace_encoder`), so that the work is done before the write lock is taken. A visit the
+    set gave no outcome for has no row."""
+    fingerprints = _input_fingerprints(visits, info, result.version, settings)
+    outcomes = result.outcomes.set_index("visit_key")
+    keys = [k for k in fingerprints if k in outcomes.index]
+    payloads = to_json_many(result, keys)
+    now = utc_now()
+    return [
+        {
+            "visit_id": key,
+            "criteria_id": result.criteria,
+            "criteria_version": result.version,
+            "limit_set_id": info.id,
+            "limit_set_version": info.version,
+            "input_sha256": fingerprints[key],
+            "outcome": str(outcomes.loc[key, "outcome"]),
+            "result": encode(compact_trace(payloads[key])),
+            "computed_at": now,
+        }
+        for key in keys
+    ]
+
+
+def _write(session: Session, criteria_id: str, info: LimitSetInfo, keys: list[int],
+           rows: list[dict[str, Any]]) -> list[tuple[int, str, str | None, str]]:
+    """Replace the stored evaluations of ``keys`` by ``rows``; return ``(visit_key, criteria_id, outcome
+    before or None, outcome now)`` for the audit trail."""
+    before: dict[int, str] = {}
+    for part in _chunks(keys):
+        scope = (Evaluation.visit_id.in_(part), Evaluation.criteria_id == criteria_id,
+                 Evaluation.limit_set_id == info.id)
+        outcomes = session.execute(select(Evaluation.visit_id, Evaluation.outcome).where(*scope))
+        before.update((visit_id, outcome) for visit_id, outcome in outcomes)
+        session.execute(delete(Evaluation).where(*scope))
+    _insert_rows(session, rows)
+    return [(r["visit_id"], criteria_id, before.get(r["visit_id"]), r["outcome"]) for r in rows]
+
+
+def _trace_encoder(session: Session) -> Callable[[Any], Any]:
+    """The ``result`` column's own conversion of a trace into what the driver is given (as SQLAlchemy would
+    apply it to a bound value)."""
+    process = Evaluation.__table__.c.result.type.bind_processor(session.connection().dialect)
+    return process or (lambda value: value)
+
+
+def _insert_rows(session: Session, rows: list[dict[str, Any]]) -> None:
+    """Insert evaluation rows through the driver's executemany; the traces come encoded for their column
+    (:func:`_trace_encoder`)."""
+    if not rows:
+        return
+    connection = session.connection()
+    dialect = connection.dialect
+    table = Evaluation.__table__
+    marker = "?" if dialect.paramstyle == "qmark" else "%s"
+    quote = dialect.identifier_preparer.quote
+    sql = (f"INSERT INTO {quote(table.name)} ({', '.join(quote(c) for c in _EVALUATION_COLUMNS)}) "
+           f"VALUES ({', '.join([marker] * len(_EVALUATION_COLUMNS))})")
+    stamp = table.c.computed_at.type.bind_processor(dialect) or (lambda value: value)
+    values = [tuple(stamp(r[c]) if c == "computed_at" else r[c] for c in _EVALUATION_COLUMNS) for r in rows]
+    cursor = connection.connection.driver_connection.cursor()
+    try:
+        cursor.executemany(sql, values)
+    finally:
+        cursor.close()
+
+
 def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult], info: LimitSetInfo,
           settings: Settings) -> list[tuple[int, str, str | None, str]]:
-    """Replace the stored evaluations of these visits; return ``(visit_key, criteria_id, outcome before or
-    None, outcome now)`` for the audit trail."""
+    """Replace the stored evaluations of these visits (in the caller's transaction); return the changes for
+    the audit trail (see :func:`_write`)."""
+    keys = [int(k) for k in visits["visit_key"]]
+    encode = _trace_encoder(session)
+    prepared = {criteria_id: _rows(visits, result, info, settings, encode)
+                for criteria_id, result in results.items()}
+    take_write_lock(session, serialise="evaluations")
     changes: list[tuple[int, str, str | None, str]] = []
-    for criteria_id, result in results.items():
-        fingerprints = _input_fingerprints(visits, info, result.version, settings)
-        keys = list(fingerprints)
-        scope = (Evaluation.visit_id.in_(keys), Evaluation.criteria_id == criteria_id, Evaluation.limit_set_id == info.id)
-        before = {visit: outcome for visit, outcome in session.execute(select(Evaluation.visit_id, Evaluation.outcome).where(*scope))}
-        session.execute(delete(Evaluation).where(*scope))
-        outcomes = result.outcomes.set_index("visit_key")
-        payloads = to_json_many(result, [k for k in keys if k in outcomes.index])
-        rows = []
-        for key in keys:
-            if key not in outcomes.index:
-                continue
-            outcome = str(outcomes.loc[key, "outcome"])
-            changes.append((key, criteria_id, before.get(key), outcome))
-            rows.append(
-                {
-                    "visit_id": key,
-                    "criteria_id": criteria_id,
-                    "criteria_version": result.version,
-                    "limit_set_id": info.id,
-                    "limit_set_version": info.version,
-                    "input_sha256": fingerprints[key],
-                    "outcome": outcome,
-                    "result": compact_trace(payloads[key]),
-                    "computed_at": utc_now(),
-                }
-            )
-        if rows:
-            session.execute(insert(Evaluation), rows)
+    for criteria_id, rows in prepared.items():
+        changes += _write(session, criteria_id, info, keys, rows)
     return changes
 
 
 def _audit_saved(session: Session, changes: list[tuple[int, str, str | None, str]], visits: pd.DataFrame,
-                 info: LimitSetInfo, settings: Settings, *, username: str, one_visit: bool) -> None:
-    """One audit event per save: for one visit the outcome of each set before → after; for a cohort the
-    counts, and every visit whose outcome changed (code/date: set before → after)."""
+                 info: LimitSetInfo, settings: Settings, *, username: str, one_visit: bool,
+                 part: str | None = None) -> None:
+    """One audit event per save: for one visit the outcome of each set before → after; for a cohort (or one
+    chunk of it, named by ``part``) the counts, and every visit whose outcome changed (code/date: set
+    before → after)."""
     if not changes:
         return
     where = {int(r.visit_key): f"{r.patient}/{r.visit_date.isoformat()}" for r in visits.itertuples()}
@@ -220,7 +293,8 @@ def _audit_saved(session: Session, changes: list[tuple[int, str, str | None, str
     changed = [f"{where.get(k, k)}: {c} {old} → {new}" for k, c, old, new in changes if old is not None and old != new]
     audit.record(session, username=username, action="save_evaluations", entity="evaluations", entity_key=None,
                  after={"evaluations": len(changes), "visits": len({k for k, *_ in changes}),
-                        "outcomes_changed": len(changed), "changed": changed[:200], **common},
+                        "outcomes_changed": len(changed), "changed": changed[:200], **common,
+                        **({"part": part} if part else {})},
                  detail=None if len(changed) <= 200 else f"{len(changed) - 200} more outcome changes not listed")
 
 
@@ -232,33 +306,134 @@ def refresh_evaluations(
     visit_ids: list[int] | None = None,
     *,
     username: str,
+    chunk_visits: int = CHUNK_VISITS,
+    commit_chunks: bool = False,
+    progress: Callable[[int, int], None] | None = None,
 ) -> dict[str, int]:
-    """Recompute, in one vectorised pass, every evaluation whose inputs changed (of the given visits, or of
-    all); return counts. The save is audited under ``username`` (one event)."""
+    """Recompute every evaluation whose inputs changed (of the given visits, or of all), ``chunk_visits``
+    visits at a time (each chunk one vectorised pass); return counts of evaluations (visit × set).
+
+    In the caller's transaction by default. With ``commit_chunks`` each chunk is committed as its own
+    transaction (the session must not be inside ``Session.begin()``): other writers get the database between
+    chunks, and an interrupted run keeps the finished chunks (a rerun skips them by their fingerprints).
+    Every saved chunk is audited under ``username`` (one event per chunk). ``progress(done, total)`` is
+    called after each chunk. A chunk whose write cannot get the database in time is tried again; then
+    :class:`~tracker.db.locking.DatabaseBusy` says how far the run got.
+    """
     settings = settings or Settings()
-    info, limits = resolve(session, limits_name)
-    visits, tests, sites = load_frames(session, visit_ids)
     criteria_ids = criteria or engine.available()
-    counts = {"visits": len(visits), "recomputed": 0, "unchanged": 0}
-    stored = {
-        (visit_id, criteria_id): fingerprint
-        for visit_id, criteria_id, fingerprint in session.execute(
-            select(Evaluation.visit_id, Evaluation.criteria_id, Evaluation.input_sha256).where(
-                Evaluation.limit_set_id == info.id, *([Evaluation.visit_id.in_(visit_ids)] if visit_ids is not None else [])
+    attempts = 3 if commit_chunks else 1  # in the caller's transaction a failed statement cannot be retried
+
+    def start() -> tuple[LimitSetInfo, pd.DataFrame, list[int]]:
+        try:
+            info, limits = resolve(session, limits_name)  # may store the shipped limits, once
+            if visit_ids is None:
+                keys = [int(k) for k in session.scalars(select(Visit.id).order_by(Visit.id))]
+            else:
+                keys = sorted({int(k) for k in visit_ids})
+            if commit_chunks:
+                session.commit()
+            return info, limits, keys
+        except BaseException:
+            if commit_chunks:
+                session.rollback()
+            raise
+
+    info, limits, keys = retry_when_busy(start, attempts=attempts)
+    counts = {"visits": len(keys), "recomputed": 0, "unchanged": 0, "changed_meanwhile": 0}
+    parts = [keys[i:i + chunk_visits] for i in range(0, len(keys), chunk_visits)]
+    done = 0
+
+    def run(part: list[int], label: str | None) -> list[int]:
+        def attempt() -> tuple[int, int, list[int]]:
+            try:
+                outcome = _refresh_part(session, part, criteria_ids, info, limits, settings,
+                                        username=username, label=label)
+                if commit_chunks:
+                    session.commit()
+                    checkpoint("evaluate-chunk-committed")
+                return outcome
+            except BaseException:
+                if commit_chunks:
+                    session.rollback()
+                raise
+
+        try:
+            recomputed, unchanged, changed = retry_when_busy(attempt, attempts=attempts)
+        except DatabaseBusy:
+            if not commit_chunks:
+                raise
+            raise DatabaseBusy(f"{done:,} of {len(keys):,} visits were evaluated and saved; run evaluate "
+                               "again to continue") from None
+        counts["recomputed"] += recomputed
+        counts["unchanged"] += unchanged
+        return changed
+
+    again: list[int] = []
+    for index, part in enumerate(parts):
+        again += run(part, f"{index + 1} of {len(parts)}" if len(parts) > 1 else None)
+        done += len(part)
+        if progress is not None:
+            progress(done, len(keys))
+    for _ in range(RECHECK_ROUNDS):
+        if not again:
+            break
+        again = run(again, "visits changed while evaluated, again")
+    counts["changed_meanwhile"] = len(again)
+    return counts
+
+
+def _refresh_part(session: Session, part: list[int], criteria_ids: list[str], info: LimitSetInfo,
+                  limits: pd.DataFrame, settings: Settings, *, username: str,
+                  label: str | None) -> tuple[int, int, list[int]]:
+    """Evaluate one chunk of visits and save what is stale; return (evaluations saved, evaluations already
+    current, visits whose inputs changed between reading and saving: left for another round)."""
+    visits, tests, sites = load_frames(session, part)
+    stored: dict[tuple[int, str], str] = {}
+    for keys in _chunks(part):
+        stored.update(
+            ((visit_id, criteria_id), fingerprint)
+            for visit_id, criteria_id, fingerprint in session.execute(
+                select(Evaluation.visit_id, Evaluation.criteria_id, Evaluation.input_sha256).where(
+                    Evaluation.limit_set_id == info.id, Evaluation.visit_id.in_(keys))
             )
         )
-    }
     results = engine.evaluate(visits, tests, sites, limits, criteria_ids, settings)
-    changes = []
+    del tests, sites
+    unchanged = 0
+    encode = _trace_encoder(session)
+    # Criteria id → (criteria version, stale visits, their rows, their input fingerprints as read).
+    planned: dict[str, tuple[str, list[int], list[dict[str, Any]], dict[int, str]]] = {}
     for criteria_id, result in results.items():
         fingerprints = _input_fingerprints(visits, info, result.version, settings)
         stale = [k for k, h in fingerprints.items() if stored.get((k, criteria_id)) != h]
-        counts["unchanged"] += len(fingerprints) - len(stale)
-        counts["recomputed"] += len(stale)
+        unchanged += len(fingerprints) - len(stale)
         if stale:
-            changes += _save(session, visits[visits["visit_key"].isin(stale)], {criteria_id: result}, info, settings)
-    _audit_saved(session, changes, visits, info, settings, username=username, one_visit=False)
-    return counts
+            rows = _rows(visits[visits["visit_key"].isin(stale)], result, info, settings, encode)
+            planned[criteria_id] = (result.version, stale, rows, {k: fingerprints[k] for k in stale})
+    del results
+    if not planned:
+        return 0, unchanged, []
+    take_write_lock(session, serialise="evaluations")
+    # The inputs again, now that this transaction is the writer: a visit changed since it was read (an import
+    # with --replace, an annotation) is not saved with an outdated trace but taken up again.
+    stale_ids = sorted({k for _, keys, _, _ in planned.values() for k in keys})
+    now = pd.concat([pd.read_sql(_visit_query(ids), session.connection()) for ids in _chunks(stale_ids)],
+                    ignore_index=True)
+    now = _typed_visits(now)
+    moved: set[int] = set()
+    for version, keys, _, expected in planned.values():
+        current = _input_fingerprints(now, info, version, settings)
+        moved |= {k for k in keys if current.get(k) != expected[k]}
+    changes: list[tuple[int, str, str | None, str]] = []
+    saved = 0
+    for criteria_id, (_, keys, rows, _) in planned.items():
+        keep = [k for k in keys if k not in moved]
+        saved += len(keep)
+        changes += _write(session, criteria_id, info, keep, [r for r in rows if r["visit_id"] not in moved])
+    _audit_saved(session, changes, visits, info, settings, username=username, one_visit=False, part=label)
+    checkpoint("evaluate-chunk-written")
+    return saved, unchanged, sorted(moved)
 
 
 def _plain(value: Any) -> Any:

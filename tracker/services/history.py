@@ -65,9 +65,14 @@ def _snapshot(session: Session, visit_ids: list[int]) -> dict[int, dict[str, Any
     return {v: {"visit": visits.get(v, {}), "nerve_tests": tests_by_visit[v]} for v in visit_ids}
 
 
-def keep_history(session: Session, changed: pd.DataFrame, *, username: str, reason: str = "import --replace") -> None:
+def keep_history(session: Session, changed: pd.DataFrame, *, username: str, reason: str = "import --replace",
+                 forced: dict[int, dict[str, Any]] | None = None) -> None:
     """Snapshot each visit in ``changed`` (``visit_id``, ``version``, ``status``, fingerprints, ``patient``,
-    ``visit_date``) into ``visit_revisions`` before it is amended, and audit the replacement."""
+    ``visit_date``) into ``visit_revisions`` before it is amended, and audit the replacement.
+
+    ``forced``: visit id → what a ``--force`` overrode (the stored version, the version the file was based
+    on), recorded in that visit's audit event.
+    """
     visit_ids = [int(v) for v in changed["visit_id"]]
     snapshots = _snapshot(session, visit_ids)
     now = utc_now()
@@ -88,6 +93,9 @@ def keep_history(session: Session, changed: pd.DataFrame, *, username: str, reas
                 }
             ],
         )
+        after: dict[str, Any] = {"version": int(row.version) + 1, "content_sha256": row.fingerprint}
+        if forced and visit_id in forced:
+            after["forced"] = forced[visit_id]
         audit.record(
             session,
             username=username,
@@ -95,8 +103,43 @@ def keep_history(session: Session, changed: pd.DataFrame, *, username: str, reas
             entity="visits",
             entity_key=f"{row.patient}/{row.visit_date.isoformat()}",
             before={"version": int(row.version), "content_sha256": row.db_fingerprint, "kept_as_revision": int(row.version)},
-            after={"version": int(row.version) + 1, "content_sha256": row.fingerprint},
+            after=after,
         )
+
+
+def _moment(value: dt.datetime | None) -> str:
+    """An instant as a person reads it, in UTC (SQLite gives naive UTC back, PostgreSQL an aware time)."""
+    if value is None:
+        return "an unknown time"
+    if value.tzinfo is not None:
+        value = value.astimezone(dt.UTC)
+    return value.strftime("%Y-%m-%d %H:%M UTC")
+
+
+def last_changes(session: Session, visit_ids: list[int]) -> dict[int, str]:
+    """Who made each visit's current version, in words: "changed by alice on 2026-03-02 10:14 UTC (import
+    --replace)" from the revision kept when it was made, or "first stored on …" for version 1."""
+    found: dict[int, str] = {}
+    for part in _chunks(visit_ids):
+        visits = session.execute(
+            select(Visit.id, Visit.version, Visit.created_at).where(Visit.id.in_(part))
+        ).all()
+        revisions = {
+            (r.visit_id, r.revision): r
+            for r in session.execute(
+                select(VisitRevision.visit_id, VisitRevision.revision, VisitRevision.replaced_by,
+                       VisitRevision.replaced_at, VisitRevision.reason)
+                .where(VisitRevision.visit_id.in_(part))
+            )
+        }
+        for visit_id, version, created_at in visits:
+            revision = revisions.get((visit_id, version - 1))
+            if version > 1 and revision is not None:
+                how = f" ({revision.reason})" if revision.reason else ""
+                found[visit_id] = f"changed by {revision.replaced_by} on {_moment(revision.replaced_at)}{how}"
+            else:
+                found[visit_id] = f"first stored on {_moment(created_at)}"
+    return found
 
 
 # -- what a re-import would change ----------------------------------------------------------------------------

@@ -4,6 +4,12 @@ The caller owns the transaction: on any :class:`~tracker.errors.InputRejected` n
 Re-importing identical content changes no clinical data; changed content of a stored visit (or treatment,
 or score) is refused unless ``replace`` is given, and a replaced visit keeps its earlier values in
 ``visit_revisions``.
+
+Concurrent writers: an import reads the stored versions of its visits, then takes the write lock
+(:func:`tracker.db.locking.take_write_lock`) and reads again before it compares and writes, so that two
+imports of the same visit never both insert it, and a visit changed by someone else after the file's base
+version (its ``visit_version`` column, else the version this import first read) is not replaced unless
+``force``.
 """
 
 from __future__ import annotations
@@ -18,6 +24,7 @@ import pandas as pd
 from sqlalchemy import Date, DateTime, delete, func, insert, select, text, update
 from sqlalchemy.orm import Session
 
+from tracker.db.locking import busy_as_error, checkpoint, is_unique_violation, take_write_lock
 from tracker.db.models import (
     NerveTest,
     OutcomeScore,
@@ -34,10 +41,22 @@ from tracker.services.measurement_file import (
     MeasurementBatch,
     validate_measurements,
 )
-from tracker.services.history import describe_changes, keep_history, shown_value, stored_fingerprints
+from tracker.services.history import (
+    describe_changes,
+    keep_history,
+    last_changes,
+    shown_value,
+    stored_fingerprints,
+)
+from tracker.services.measurement_file import VISIT_KEY
 from tracker.services.rows import chunks as _chunks, clean as _clean
 from tracker.services.tables import ROW, InputTable, read_table
 
+# Optional measurements column: the version of the stored visit that the file's values were made from
+# (``ncs-tracker show`` prints it). With it, --replace goes ahead only while the stored visit is still that
+# version. Read here, not by the file validator: it says which stored visit the rows amend, not what was
+# measured.
+VERSION_COLUMN = "visit_version"
 
 
 @dataclass
@@ -138,11 +157,13 @@ def import_file(
     username: str,
     dry_run: bool = False,
     replace: bool = False,
+    force: bool = False,
     allow_unusual: bool = False,
     today: dt.date | None = None,
 ) -> ImportReport:
     """Import one file (kind recognised from its header). Raises :class:`InputRejected` on any problem."""
-    return import_table(session, read_table(path), username=username, dry_run=dry_run, replace=replace, allow_unusual=allow_unusual, today=today)
+    return import_table(session, read_table(path), username=username, dry_run=dry_run, replace=replace,
+                        force=force, allow_unusual=allow_unusual, today=today)
 
 
 def import_table(
@@ -152,13 +173,39 @@ def import_table(
     username: str,
     dry_run: bool = False,
     replace: bool = False,
+    force: bool = False,
     allow_unusual: bool = False,
     today: dt.date | None = None,
 ) -> ImportReport:
-    """Import a parsed table (from a file, an upload or the entry form): the same checks and storage."""
+    """Import a parsed table (from a file, an upload or the entry form): the same checks and storage.
+
+    ``force`` (with ``replace``): replace a stored visit even when it changed after the file's base version;
+    recorded in the audit trail. Another writer holding the database past the bounded wait raises
+    :class:`~tracker.db.locking.DatabaseBusy`.
+    """
+    with busy_as_error():
+        return _import_table(session, table, username=username, dry_run=dry_run, replace=replace, force=force,
+                             allow_unusual=allow_unusual, today=today)
+
+
+def _import_table(session: Session, table: InputTable, *, username: str, dry_run: bool, replace: bool,
+                  force: bool, allow_unusual: bool, today: dt.date | None) -> ImportReport:
+    forced: list[str] = []
     if table.kind == "measurements":
-        batch = validate_measurements(table.cells, allow_unusual=allow_unusual, today=today)
-        report = _store_measurements(session, batch, username=username, dry_run=dry_run, replace=replace)
+        cells, stated, version_problems = _stated_versions(table.cells)
+        try:
+            batch = validate_measurements(cells, allow_unusual=allow_unusual, today=today)
+        except InputRejected as error:
+            if not version_problems:
+                raise
+            merged = sorted(error.problems + version_problems, key=lambda p: p.row or 0)
+            raise InputRejected(error.summary, merged) from None
+        file_versions, disagreements = _versions_by_visit(batch, stated)
+        if version_problems or disagreements:
+            raise InputRejected("The measurements file was refused",
+                                sorted(version_problems + disagreements, key=lambda p: p.row or 0))
+        report = _store_measurements(session, batch, username=username, dry_run=dry_run, replace=replace,
+                                     force=force, file_versions=file_versions, forced=forced)
     elif table.kind == "treatments":
         frame = validate_treatments(table.cells, today=today, known_patients=lambda codes: _stored_codes(session, codes))
         report = _store_records(session, frame, kind="treatments", username=username, dry_run=dry_run, replace=replace)
@@ -184,9 +231,133 @@ def import_table(
                 "allow_unusual": allow_unusual,
                 "unusual_values_accepted": [str(p) for p in report.unusual],
                 "warnings": [str(p) for p in report.warnings],
+                **({"force": True, "forced_over": forced} if force else {}),
             },
         )
+        checkpoint("import-written")
     return report
+
+
+# -- the visit version a file was made from ------------------------------------------------------------------
+
+
+def _stated_versions(cells: pd.DataFrame) -> tuple[pd.DataFrame, pd.Series | None, list[Problem]]:
+    """The cells without the ``visit_version`` column, the versions it states by file row (NaN where empty),
+    and a problem for each cell that is not a whole number from 1."""
+    if VERSION_COLUMN not in cells.columns:
+        return cells, None, []
+    raw = cells[VERSION_COLUMN].astype(str).str.strip()
+    numbers = pd.to_numeric(raw.where(raw != ""), errors="coerce")
+    valid = numbers.notna() & (numbers >= 1) & (numbers <= 2**31 - 1) & (numbers == numbers.round())
+    bad = (raw != "") & ~valid
+    problems = [
+        Problem(int(row), VERSION_COLUMN, value[:20],
+                "expected the stored visit's version as a whole number from 1 (ncs-tracker show prints it as "
+                "'version N'), or an empty cell")
+        for row, value in zip(cells.loc[bad, ROW], raw[bad])
+    ]
+    stated = pd.Series(numbers.where(valid).to_numpy(), index=cells[ROW].to_numpy())
+    return cells.drop(columns=[VERSION_COLUMN]), stated, problems
+
+
+def _versions_by_visit(batch: MeasurementBatch,
+                       stated: pd.Series | None) -> tuple[pd.DataFrame, list[Problem]]:
+    """One ``file_version`` per visit that states one (empty cells are left out); a visit whose rows state
+    different versions is a problem at its first disagreeing row."""
+    if stated is None or batch.rows is None:
+        return pd.DataFrame(columns=[*VISIT_KEY, "file_version"]), []
+    rows = batch.rows[[ROW, *VISIT_KEY]].assign(file_version=batch.rows[ROW].map(stated))
+    rows = rows[rows["file_version"].notna()].sort_values(ROW)
+    first = rows.drop_duplicates(VISIT_KEY).set_index(VISIT_KEY)["file_version"]
+    expected = rows.set_index(VISIT_KEY).index.map(first)
+    differ = rows[rows["file_version"].to_numpy() != np.asarray(expected, dtype=float)]
+    differ = differ.drop_duplicates(VISIT_KEY)
+    problems = [
+        Problem(int(getattr(r, ROW)), VERSION_COLUMN, None,
+                f"the rows of the visit of {r.patient} on {r.visit_date.isoformat()} state different "
+                f"versions ({int(first.loc[(r.patient, r.visit_date)])} and {int(r.file_version)}); a visit "
+                "is made from one version")
+        for r in differ.itertuples()
+    ]
+    return first.astype(int).reset_index(), problems
+
+
+def _version_conflicts(session: Session, visits: pd.DataFrame, replaced: pd.Series,
+                       base: dict[tuple[str, dt.date], int] | None, *, force: bool, forced: list[str],
+                       lock: bool) -> tuple[list[Problem], dict[int, dict[str, Any]]]:
+    """The stored visits this import would replace although they changed after the file's base version.
+
+    The base of a visit is its ``visit_version`` in the file, else the version this import read before it took
+    the write lock (``base``; ``None`` in a dry run, where nothing is waited for). Refused, unless ``force``:
+    then listed in ``forced`` (for the import's audit event) and returned by visit id (for the visit's own).
+    ``lock``: read the stored versions as the writer, locking the rows (:func:`_locked_versions`).
+    """
+    rows = visits[replaced]
+    if rows.empty:
+        return [], {}
+    current = _locked_versions(session, [int(v) for v in rows["visit_id"]]) if lock else {}
+    late: list[tuple[Any, int, int | None, bool]] = []
+    for row in rows.itertuples():
+        stored = current.get(int(row.visit_id), int(row.version))
+        if pd.notna(row.file_version):
+            based_on, from_file = int(row.file_version), True
+        elif base is not None:
+            based_on, from_file = base.get((row.patient, row.visit_date)), False
+        else:
+            continue
+        if based_on != stored:
+            late.append((row, stored, based_on, from_file))
+    if not late:
+        return [], {}
+    who = last_changes(session, [int(row.visit_id) for row, *_ in late])
+    problems, overridden = [], {}
+    for row, stored, based_on, from_file in late:
+        visit = f"the visit of {row.patient} on {row.visit_date.isoformat()}"
+        now = f"it is stored as version {stored}, {who.get(int(row.visit_id), 'changed by someone else')}"
+        if from_file:
+            what = f"{visit} changed after version {based_on}, the version this file was made from: {now}"
+        elif based_on is None:
+            what = f"{visit} was stored by another process while this import ran: {now}"
+        else:
+            what = (f"{visit} was changed by another process while this import ran (it read version "
+                    f"{based_on}): {now}")
+        if force:
+            base_words = "no stored visit" if based_on is None else f"version {based_on}"
+            forced.append(f"{row.patient}/{row.visit_date.isoformat()}: stored version {stored}, "
+                          f"file based on {base_words}")
+            overridden[int(row.visit_id)] = {
+                "stored_version": stored,
+                "based_on_version": based_on,
+                "based_on": "visit_version column" if from_file else "read by this import",
+            }
+            continue
+        problems.append(
+            Problem(int(getattr(row, ROW)), VERSION_COLUMN if from_file else "visit_date", None,
+                    f"{what}; nothing was replaced — look at the stored values (ncs-tracker show "
+                    f"{row.patient} --visit {row.visit_date.isoformat()}), make the change on them, or "
+                    "import with --replace --force to overwrite them anyway")
+        )
+    return problems, overridden
+
+
+def _locked_versions(session: Session, visit_ids: list[int]) -> dict[int, int]:
+    """The current version of each visit, read right before writing. PostgreSQL: the rows are locked for this
+    transaction (FOR NO KEY UPDATE: others wait to change them; saving evaluations of them is not held up).
+    SQLite: this transaction holds the database's write lock already."""
+    found: dict[int, int] = {}
+    for part in _chunks(visit_ids):
+        query = select(Visit.id, Visit.version).where(Visit.id.in_(part)).with_for_update(key_share=True)
+        found.update((int(i), int(v)) for i, v in session.execute(query))
+    return found
+
+
+def _base_versions(session: Session, batch: MeasurementBatch) -> dict[tuple[str, dt.date], int]:
+    """(patient code, visit date) → stored version of the file's visits that are stored, read before the write
+    lock: what this import starts from when the file states no ``visit_version``."""
+    patients = _existing_patients(session, batch.patients["patient"].tolist())
+    stored = _existing_visits(session, [int(i) for i in patients["patient_id"]])
+    codes = patients.set_index("patient_id")["patient"]
+    return {(codes[int(r.patient_id)], r.visit_date): int(r.version) for r in stored.itertuples()}
 
 
 # -- measurements ---------------------------------------------------------------------------------------------
@@ -234,8 +405,19 @@ def _patient_conflicts(patients: pd.DataFrame) -> list[Problem]:
     return problems
 
 
-def _store_measurements(session: Session, batch: MeasurementBatch, *, username: str, dry_run: bool, replace: bool) -> ImportReport:
+def _store_measurements(session: Session, batch: MeasurementBatch, *, username: str, dry_run: bool,
+                        replace: bool, force: bool = False, file_versions: pd.DataFrame | None = None,
+                        forced: list[str] | None = None) -> ImportReport:
     report = ImportReport(kind="measurements", rows=0, dry_run=dry_run, unusual=batch.unusual)
+    forced = [] if forced is None else forced
+    # What this import starts from, read before it waits for the write lock; then everything is read again
+    # as the writer, so that another import's visits are seen (as unchanged, or as conflicts) and a visit
+    # replaced meanwhile is noticed.
+    base = _base_versions(session, batch) if replace and not dry_run else None
+    checkpoint("import-read")
+    if not dry_run:
+        take_write_lock(session, serialise="import")
+    checkpoint("import-locked")
     codes = batch.patients["patient"].tolist()
     patients = batch.patients.merge(_existing_patients(session, codes), on="patient", how="left")
     conflicts = _patient_conflicts(patients[patients["patient_id"].notna()])
@@ -244,6 +426,9 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     stored = _existing_visits(session, known_ids)
     visits = batch.visits.merge(patients[["patient", "patient_id"]], on="patient", how="left")
     visits = visits.merge(stored, on=["patient_id", "visit_date"], how="left")
+    if file_versions is None:
+        file_versions = pd.DataFrame(columns=[*VISIT_KEY, "file_version"])
+    visits = visits.merge(file_versions, on=VISIT_KEY, how="left")
     is_stored = visits["visit_id"].notna()
     unknown = is_stored & (visits["db_fingerprint"] == "")
     if unknown.any():  # stored before fingerprints existed (or after a downgrade): compute from the rows
@@ -251,8 +436,13 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
         visits.loc[unknown, "db_fingerprint"] = visits.loc[unknown, "visit_id"].map(recomputed)
     unchanged = is_stored & (visits["db_fingerprint"] == visits["fingerprint"])
     changed = is_stored & ~unchanged
+    forced_visits: dict[int, dict[str, Any]] = {}
     if not replace:
         conflicts += describe_changes(session, visits[changed], batch)
+    else:
+        late, forced_visits = _version_conflicts(session, visits, changed, base, force=force, forced=forced,
+                                                 lock=not dry_run)
+        conflicts += late
     if conflicts:
         raise InputRejected("The file conflicts with stored data", sorted(conflicts, key=lambda p: p.row or 0))  # stable: a visit's line first
 
@@ -263,10 +453,29 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     report.added = int((~is_stored).sum())
     written = ~unchanged
     stored_dates = stored.assign(patient=stored["patient_id"].map(patients.set_index("patient_id")["patient"].to_dict()))
-    report.warnings = _single_nerve_visits(batch, visits[written]) + _date_slips(visits[written], batch.visits, stored_dates)
+    report.warnings = (
+        _single_nerve_visits(batch, visits[written])
+        + _date_slips(visits[written], batch.visits, stored_dates)
+        + _versions_of_new_visits(visits[~is_stored])
+    )
     if dry_run:
         return report
+    try:
+        _write_measurements(session, batch, patients, new_patients, visits, is_stored, unchanged, changed,
+                            username=username, replace=replace, forced_visits=forced_visits)
+    except Exception as error:
+        if not is_unique_violation(error):
+            raise
+        raise _stored_meanwhile(visits[~unchanged]) from None
+    return report
 
+
+def _write_measurements(session: Session, batch: MeasurementBatch, patients: pd.DataFrame,
+                        new_patients: pd.DataFrame, visits: pd.DataFrame, is_stored: pd.Series,
+                        unchanged: pd.Series, changed: pd.Series, *, username: str, replace: bool,
+                        forced_visits: dict[int, dict[str, Any]]) -> None:
+    """Write what :func:`_store_measurements` decided: new patients and visits, replaced visits (kept in
+    their history first), nerve tests and sites."""
     if len(new_patients):
         latest = _latest_stated(batch.visits)
         new_patients = new_patients.assign(
@@ -285,13 +494,15 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
 
     replaced_ids = [int(v) for v in visits.loc[changed, "visit_id"]]
     if replaced_ids:
-        keep_history(session, visits[changed], username=username)
+        keep_history(session, visits[changed], username=username, forced=forced_visits)
         for part in _chunks(replaced_ids):
             session.execute(delete(NerveTest).where(NerveTest.visit_id.in_(part)))
-        for row in _records(visits[changed], ["visit_id", "height_cm", "diagnosis", "phenotype", "fingerprint", "version"]):
-            session.execute(
+        columns = ["visit_id", "patient", "visit_date", "height_cm", "diagnosis", "phenotype", "fingerprint",
+                   "version"]
+        for row in _records(visits[changed], columns):
+            done = session.execute(
                 update(Visit)
-                .where(Visit.id == row["visit_id"])
+                .where(Visit.id == row["visit_id"], Visit.version == int(row["version"]))
                 .values(
                     height_cm=row["height_cm"],
                     diagnosis=row["diagnosis"],
@@ -301,6 +512,11 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
                     updated_at=utc_now(),
                 )
             )
+            if done.rowcount != 1:  # read as the writer: only a writer outside these rules gets here
+                raise InputRejected("The file conflicts with stored data", [Problem(
+                    None, "visit_date", None,
+                    f"the visit of {row['patient']} on {row['visit_date'].isoformat()} changed while it was "
+                    "being replaced (its version moved on); nothing was written — import again")])
 
     new_visits = visits[~is_stored].copy()
     if len(new_visits):
@@ -315,12 +531,40 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
         columns = ["id", "patient_id", "visit_date", "height_cm", "diagnosis", "phenotype", "content_sha256", "status", "version", "created_at"]
         _bulk_insert(session, Visit.__table__, new_visits, columns)
         visits.loc[~is_stored, "visit_id"] = new_visits["id"].to_numpy()
+    checkpoint("import-visits-written")
 
     written = visits[~unchanged][["patient", "visit_date", "visit_id"]]
     _insert_nerve_tests(session, batch, written)
     known = patients.drop(new_patients.index)["patient_id"]
     _refresh_patient_diagnosis(session, [int(i) for i in known])
-    return report
+
+
+def _versions_of_new_visits(new_visits: pd.DataFrame) -> list[Problem]:
+    """A ``visit_version`` stated for a visit that is not stored (another database, a changed date?): the
+    visit is added as version 1, with a warning."""
+    stated = new_visits[new_visits["file_version"].notna()]
+    return [
+        Problem(int(getattr(r, ROW)), VERSION_COLUMN, None,
+                f"visit_version {int(r.file_version)} is stated but no visit of {r.patient} on "
+                f"{r.visit_date.isoformat()} is stored here: it is added as a new visit (version 1) — check "
+                "the date if it was meant to amend one")
+        for r in stated.itertuples()
+    ]
+
+
+def _stored_meanwhile(written: pd.DataFrame) -> InputRejected:
+    """The refusal when a UNIQUE constraint stopped this import: another writer stored or replaced one of its
+    visits (or added one of its patients) between this import's reading and writing. Names the visits it was
+    writing."""
+    named = [f"the visit of {r.patient} on {r.visit_date.isoformat()}" for r in written.head(10).itertuples()]
+    more = f" and {len(written) - len(named)} more" if len(written) > len(named) else ""
+    return InputRejected(
+        "Another process wrote some of the same visits at the same time",
+        [Problem(None, "visit_date", None,
+                 f"{', '.join(named)}{more}: stored or replaced by another import while this one ran; "
+                 "nothing of this file was written — import it again (visits now stored the same are "
+                 "reported as unchanged, changed ones are listed)")],
+    )
 
 
 SLIP_WINDOW_DAYS = 14
@@ -454,6 +698,8 @@ def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username
     frame = frame.rename(columns={"date": "score_date"}) if kind == "scores" else frame
     key = [date_column if k == "date" else k for k in key]
 
+    if not dry_run:  # read as the writer: a record another import adds meanwhile is seen, not inserted twice
+        take_write_lock(session, serialise="import")
     codes = sorted(frame["patient"].unique())
     ids = _existing_patients(session, codes).set_index("patient")["patient_id"]
     unknown = frame[~frame["patient"].isin(ids.index)]
