@@ -33,6 +33,7 @@ from sqlalchemy import (
 )
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column, relationship
 
+from tracker.db.types import CompressedJSON
 from tracker.domain.vocabulary import (
     LIMIT_BOUNDS,
     LIMIT_PARAMETERS,
@@ -390,7 +391,9 @@ class Evaluation(Base):
     limit_set_version: Mapped[int | None] = mapped_column(Integer)
     input_sha256: Mapped[str] = mapped_column(String(64), comment="fingerprint of the inputs evaluated")
     outcome: Mapped[str] = mapped_column(String(32))
-    result: Mapped[dict[str, Any]] = mapped_column(comment="the full trace")
+    result: Mapped[dict[str, Any]] = mapped_column(
+        CompressedJSON, comment="the full trace, compressed JSON (tracker.db.types)"
+    )
     computed_at: Mapped[CreatedAt]
 
 
