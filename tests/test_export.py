@@ -324,7 +324,9 @@ def test_no_identifying_string_in_any_file(demo, tmp_path, file_format):
     written = []
     for level in ("visit", "nerve", "segment", "long"):
         written += [f.path for f in demo.write(tmp_path / level, file_format, level=level).files]
-    assert len(written) == 4 * (3 if file_format != "xlsx" else 2)
+    # data, dictionary (not for xlsx: a sheet), limits table, criteria table, manifest
+    assert len(written) == 4 * (5 if file_format != "xlsx" else 4)
+    assert sum(p.name.endswith((".limits.csv", ".criteria.csv")) for p in written) == 8
     # The visit level's treatment-response columns (regimen, response, score
     # changes) are among the scanned bytes.
     assert any(
@@ -372,22 +374,23 @@ def test_relative_dates_have_no_date_column(demo, tmp_path):
     assert not any(pa.types.is_date(field.type) for field in schema)
 
 
-def test_ages_over_89_are_shown_as_90_plus(demo):
+def test_ages_over_89_are_top_coded_at_90_with_a_flag(demo):
     # HIPAA Safe Harbor, 45 CFR 164.514(b)(2)(i)(C): ages over 89 are aggregated
     # into one category of 90 or older.
     visits = demo.frame(level="visit")
     ids = demo.export_ids()
+    assert visits["age_at_visit"].dtype == "Int64" and visits["age_top_coded"].dtype == "boolean"
     # Invented birth years: DEMO-04 born 1935, visits 2024 (89) ×3 and 2025 (90);
-    # DEMO-05 born 1933, visits 2025 (92).
-    assert visits.loc[visits["export_id"] == ids["DEMO-04"], "age_at_visit"].tolist() == [
-        "89",
-        "89",
-        "89",
-        "90+",
-    ]
-    assert set(visits.loc[visits["export_id"] == ids["DEMO-05"], "age_at_visit"]) == {"90+"}
+    # DEMO-05 born 1933, visits 2025 (92 → 90, top-coded).
+    four = visits[visits["export_id"] == ids["DEMO-04"]]
+    assert four["age_at_visit"].tolist() == [89, 89, 89, 90]
+    assert four["age_top_coded"].tolist() == [False, False, False, True]
+    five = visits[visits["export_id"] == ids["DEMO-05"]]
+    assert set(five["age_at_visit"]) == {90} and set(five["age_top_coded"]) == {True}
     # DEMO-01 born 1961 (demo file, invented), first visit in 2023: 62.
-    assert visits.loc[visits["export_id"] == ids["DEMO-01"], "age_at_visit"].iloc[0] == "62"
+    one = visits[visits["export_id"] == ids["DEMO-01"]]
+    assert (one["age_at_visit"].iloc[0], one["age_top_coded"].iloc[0]) == (62, False)
+    assert visits["age_at_visit"].max() == 90  # nothing above the top code
 
 
 def test_export_ids_stable_in_one_database_and_unlinkable_across_two(demo, tmp_path):
@@ -482,8 +485,18 @@ def test_excel_opens_with_openpyxl_and_has_the_dictionary_sheet(demo, tmp_path):
     assert book.sheetnames == ["data", "dictionary"]
     header = [c.value for c in book["data"][1]]
     dictionary = [[c.value for c in row] for row in book["dictionary"].iter_rows()]
-    assert dictionary[0] == ["column", "meaning", "unit", "type", "derivation", "depends_on"]
-    assert [row[0] for row in dictionary[1:-1]] == header
+    assert dictionary[0] == [
+        "column",
+        "meaning",
+        "unit",
+        "type",
+        "derivation",
+        "depends_on",
+        "pandas_dtype",
+        "parquet_type",
+        "values",
+    ]
+    assert [row[0] for row in dictionary[1:] if not row[0].startswith("(")] == header
     assert dictionary[-1][0] == "(caution)" and "qualified clinician" in dictionary[-1][1]
     velocity = dict((row[0], row) for row in dictionary[1:])["segment_velocity_m_per_s"]
     assert velocity[2] == "m/s" and velocity[3] == "decimal number"
@@ -501,7 +514,7 @@ def test_parquet_column_types(demo, tmp_path):
     assert types["visit_date_shifted"] == pa.date32()
     assert types["days_since_first_visit"] == pa.int32() and types["visit_number"] == pa.int32()
     assert types["height_cm"] == pa.float64() and types["score_incat"] == pa.float64()
-    assert types["age_at_visit"] == pa.string()  # "90+" is text
+    assert types["age_at_visit"] == pa.int32()  # a number, top-coded at 90 (issue 13; was text "90+")
     schema = pq.read_schema(demo.write(tmp_path / "n", "parquet", level="nerve").files[0].path)
     types = {field.name: field.type for field in schema}
     for name in (
@@ -640,20 +653,24 @@ def test_long_level_lists_each_quantity_with_its_unit(demo):
     assert velocity["origin"].iloc[0] == "derived"
     sensory = long[(long["modality"] == "sensory") & (long["quantity"] == "amplitude")]
     assert set(sensory["unit"]) == {"µV"}
-    # Every non-empty distal latency of the nerve level is one onset_latency row at site 1 of the long level.
-    assert (long["quantity"].eq("onset_latency") & long["site_order"].eq(1)).sum() == nerve[
-        "distal_latency_ms"
-    ].notna().sum()
+    # Every non-empty distal latency of the nerve level is one onset_latency row at site 1 of the long level,
+    # and every distal site without a response is one more (flagged) row.
+    at_site_1 = long[long["quantity"].eq("onset_latency") & long["site_order"].eq(1)]
+    assert (~at_site_1["response_absent"]).sum() == nerve["distal_latency_ms"].notna().sum()
+    assert at_site_1["response_absent"].sum() == nerve["no_response"].sum()
 
 
 def test_io_read_back_of_csv_keeps_the_columns_of_the_dictionary(demo, tmp_path):
     result = demo.write(tmp_path / "d", "csv", level="visit")
     data = _read_csv(result.files[0].path)
     dictionary = pd.read_csv(io.StringIO(result.files[1].path.read_text(encoding="utf-8")))
-    assert dictionary["column"].tolist()[:-1] == list(data.columns)
+    listed = dictionary["column"].tolist()
+    assert [c for c in listed if not c.startswith("(")] == list(data.columns)
+    assert listed[-1] == "(caution)"
     assert "qualified clinician" in dictionary["meaning"].iloc[-1]
     age = dictionary.set_index("column").loc["age_at_visit"]
-    assert "90+" in age["meaning"] and "164.514" in age["derivation"]
+    assert "top-coded at 90" in age["meaning"] and "164.514" in age["derivation"]
+    assert "was text" in age["meaning"]  # what changed, said where the column is explained
 
 
 def test_every_criteria_set_gives_outcomes_and_verdicts(demo):
@@ -667,7 +684,8 @@ def test_every_criteria_set_gives_outcomes_and_verdicts(demo):
         assert outcome, criteria_id
         verdicts = [c for c in nerves.columns if c.startswith(prefix) and "__" in c]
         assert verdicts, criteria_id
-    statuses = set(pd.unique(nerves.filter(like="__").to_numpy().ravel()))
+    verdicts = [c for c in nerves.columns if "__" in c and not c.endswith(("__value", "__segment"))]
+    statuses = set(pd.unique(nerves[verdicts].to_numpy().ravel()))
     # DESIGN.md §5 vocabulary; the invented demo clinic has no gap in the exported verdicts, only exclusions.
     found = {s for s in statuses if isinstance(s, str)}
     assert {"met", "not_met", "not_applicable"} <= found

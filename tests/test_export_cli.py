@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import datetime as dt
 
+import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 from sqlalchemy import select
@@ -41,7 +42,9 @@ def test_segment_parquet_on_the_demo_database_writes_table_dictionary_and_manife
     data = out / "ncs-export-segment.parquet"
     dictionary = out / "ncs-export-segment.parquet.dictionary.csv"
     manifest_path = out / "ncs-export-segment.parquet.manifest.json"
-    assert sorted(p.name for p in out.iterdir()) == sorted(p.name for p in (data, dictionary, manifest_path))
+    tables = [out / f"ncs-export-segment.parquet.{name}.csv" for name in ("limits", "criteria")]
+    written = (data, dictionary, manifest_path, *tables)
+    assert sorted(p.name for p in out.iterdir()) == sorted(p.name for p in written)
     assert str(data) in stdout and "qualified clinician" in stdout
     table = pq.read_table(data)
     manifest = json.loads(manifest_path.read_text(encoding="utf-8"))
@@ -51,8 +54,8 @@ def test_segment_parquet_on_the_demo_database_writes_table_dictionary_and_manife
     assert by_role["data"]["rows"] == table.num_rows > 0
     assert by_role["data"]["sha256"] == export_files.sha256_of(data)
     assert by_role["dictionary"]["sha256"] == export_files.sha256_of(dictionary)
-    listed = [line.split(",")[0] for line in dictionary.read_text(encoding="utf-8").splitlines()[1:]]
-    assert listed[:-1] == table.column_names and listed[-1] == "(caution)"
+    listed = pd.read_csv(dictionary, dtype=str)["column"].tolist()
+    assert [c for c in listed if not c.startswith("(")] == table.column_names and listed[-1] == "(caution)"
     assert {c["id"] for c in manifest["criteria"]} == {"efns-pns-2010-cidp", "ean-pns-2021-cidp", "aan-1991-cidp",
                                                       "efns-pns-2010-mmn", "hadden-1998-gbs", "rajabally-2015-gbs"}
     # Every export is in the audit trail; a de-identified one as "export".

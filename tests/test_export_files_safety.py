@@ -61,6 +61,7 @@ def test_links_at_the_former_temporary_names_are_left_alone(clinic, tmp_path, fi
     out = tmp_path / "exports"
     out.mkdir()
     names = [f"ncs-export-visit.{file_format}", f"ncs-export-visit.{file_format}.manifest.json"]
+    names += [f"ncs-export-visit.{file_format}.{table}.csv" for table in ("limits", "criteria")]
     if file_format != "xlsx":
         names.append(f"ncs-export-visit.{file_format}.dictionary.csv")
     for name in names:
@@ -81,20 +82,19 @@ def test_a_link_at_the_exact_temporary_name_is_not_followed(clinic, tmp_path, mo
     out.mkdir()
     guesses = [f"guess{i}" for i in range(50)]
     monkeypatch.setattr(tempfile, "_get_candidate_names", lambda: iter(guesses))
-    for name in (
+    names = [
         "ncs-export-visit.csv",
+        "ncs-export-visit.csv.criteria.csv",
         "ncs-export-visit.csv.dictionary.csv",
+        "ncs-export-visit.csv.limits.csv",
         "ncs-export-visit.csv.manifest.json",
-    ):
+    ]
+    for name in names:
         for guess in guesses[:3]:
             (out / f".{name}.{guess}.partial").symlink_to(target)
     export(clinic, out)
     assert target.read_text(encoding="utf-8") == VICTIM_TEXT
-    assert sorted(p.name for p in out.iterdir() if not p.is_symlink()) == [
-        "ncs-export-visit.csv",
-        "ncs-export-visit.csv.dictionary.csv",
-        "ncs-export-visit.csv.manifest.json",
-    ]
+    assert sorted(p.name for p in out.iterdir() if not p.is_symlink()) == names
 
 
 def test_a_link_at_a_final_name_is_refused_or_replaced_never_written_through(clinic, tmp_path):
@@ -119,7 +119,8 @@ def test_a_link_at_a_final_name_is_refused_or_replaced_never_written_through(cli
 @pytest.mark.parametrize("file_format", FORMATS)
 def test_every_export_file_is_readable_by_its_owner_only(clinic, tmp_path, usual_umask, file_format):
     result = export(clinic, tmp_path / "out", file_format)
-    assert len(result.files) == (2 if file_format == "xlsx" else 3)
+    # data, (dictionary,) limits table, criteria table, manifest
+    assert len(result.files) == (4 if file_format == "xlsx" else 5)
     for written in result.files:
         assert stat.S_IMODE(written.path.stat().st_mode) == 0o600, written.path
 
@@ -139,7 +140,7 @@ def test_no_temporary_file_is_left_behind(clinic, tmp_path, monkeypatch):
     out = tmp_path / "out"
     out.mkdir()
     export(clinic, out)
-    assert len(list(out.iterdir())) == 3 and not [p for p in out.iterdir() if p.name.endswith(".partial")]
+    assert len(list(out.iterdir())) == 5 and not [p for p in out.iterdir() if p.name.endswith(".partial")]
 
     def broken(self, frame):
         raise RuntimeError("disk full (simulated)")

@@ -482,11 +482,27 @@ def _serve(url: str, *, host: str, port: int, user: str) -> None:
 @click.option("--overwrite", is_flag=True, help="Replace files of an earlier export at the same place.")
 @click.option("--chunk-visits", type=click.IntRange(min=1), metavar="N",
               help="Visits read, evaluated and written at a time (default 2000): fewer use less memory, more run faster.")
+# The criteria settings, as check takes them (unset: the database's settings, else the defaults).
+@click.option("--cold-limbs", type=click.Choice(["warn", "exclude"]),
+              help="Limbs colder than the guideline minimum: keep the values and warn, or exclude the nerve "
+                   "(default: the database's setting, else warn).")
+@click.option("--sides-separate/--sides-together", default=None,
+              help="Whether left and right of one nerve count as two nerves (default: separate).")
+@click.option("--cv-segments", type=click.Choice(["standard", "all_outside_entrapment"]),
+              help="Segments used for conduction velocity (default: standard).")
+@click.option("--aan-wrist-exclusion/--no-aan-wrist-exclusion", default=None,
+              help="AAN 1991: a wrist-entrapment mark removes the median distal latency from item 3 "
+                   "(a project rule). Default: the database's setting, off unless changed on the Settings "
+                   "page.")
 @pass_context
 def export_command(context: Context, level: str, file_format: str, out: str | None, diagnoses: tuple[str, ...], date_from: str | None,
                    date_to: str | None, criteria: tuple[str, ...], outcomes: tuple[str, ...], patients: str | None, dates: str,
-                   limits_name: str | None, identified: bool, overwrite: bool, chunk_visits: int | None) -> None:
-    """Export the cohort for research: de-identified tables with a data dictionary and a manifest."""
+                   limits_name: str | None, identified: bool, overwrite: bool, chunk_visits: int | None,
+                   cold_limbs: str | None = None, sides_separate: bool | None = None,
+                   cv_segments: str | None = None, aan_wrist_exclusion: bool | None = None) -> None:
+    """Export the cohort for research: de-identified tables with a data dictionary and a manifest.
+
+    The criteria settings apply as in check: the options given here, else the database's settings."""
     import dataclasses
 
     from tracker.services.export import write_export
@@ -503,6 +519,9 @@ def export_command(context: Context, level: str, file_format: str, out: str | No
         date_from=_parse_date(date_from) if date_from else None, date_to=_parse_date(date_to) if date_to else None,
         outcomes=tuple(pairs), patients=tuple(c.strip() for c in (patients or "").split(",") if c.strip()),
         dates=dates, identified=identified, limits_name=limits_name,
+        setting_overrides=tuple((name, value) for name, value in (
+            ("cold_limbs", cold_limbs), ("sides_are_separate_nerves", sides_separate),
+            ("cv_segments", cv_segments), ("aan_wrist_exclusion", aan_wrist_exclusion)) if value is not None),
     )
     if chunk_visits is not None:
         options = dataclasses.replace(options, chunk_visits=chunk_visits)
@@ -519,6 +538,7 @@ def export_command(context: Context, level: str, file_format: str, out: str | No
         rows = f", {written.rows} rows" if written.rows is not None else ""
         click.echo(f"  {written.role}: {written.path} ({written.size:,} bytes{rows}; sha256 {written.sha256[:16]}…)")
     click.echo(CAUTION)
+    click.echo(result.summary)
 
 
 from tracker.cli_backup import backup_command, restore_command  # noqa: E402

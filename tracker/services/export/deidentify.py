@@ -1,5 +1,5 @@
 """De-identification for research exports: pseudonymous export ids, secret per-patient date shifts, ages
-over 89 as "90+", and who may ask for an identified export.
+over 89 top-coded at 90 (with a flag), and who may ask for an identified export.
 
 Everything here is keyed by one secret per database (``app_settings``, key
 :data:`tracker.services.preferences.EXPORT_SECRET_KEY`), created on the first export: the same database
@@ -27,7 +27,6 @@ EXPORT_ID_HEX_DIGITS = 16
 MAX_SHIFT_DAYS = 365
 # HIPAA Safe Harbor, 45 CFR 164.514(b)(2)(i)(C): ages over 89 are aggregated into one category, 90 or older.
 TOP_AGE = 90
-TOP_AGE_TEXT = "90+"
 # Roles that may receive an identified export: the research coordinator (who prepares cohort tables under a
 # study approval) and the administrator. Viewers and clinicians see identities in care, one patient at a
 # time, but a bulk identified file is a disclosure, so it needs one of these roles.
@@ -63,14 +62,15 @@ def date_shift_days(secret: bytes, code: str) -> int:
     return number - MAX_SHIFT_DAYS if number < MAX_SHIFT_DAYS else number - MAX_SHIFT_DAYS + 1
 
 
-def age_text(age_years: float | None, *, identified: bool) -> str | None:
-    """Age in whole years as text; from 90 on, ``"90+"`` unless the export is identified."""
+def top_coded_age(age_years: float | None, *, identified: bool) -> tuple[int | None, bool | None]:
+    """(age in whole years, top-coded?) for the export: from 90 on, (90, True) unless the export is identified
+    (then the age itself and False); (None, None) when the age is unknown (no birth year)."""
     if age_years is None or age_years != age_years:  # missing birth year (NaN)
-        return None
+        return None, None
     age = int(age_years)
     if age >= TOP_AGE and not identified:
-        return TOP_AGE_TEXT
-    return str(age)
+        return TOP_AGE, True
+    return age, False
 
 
 def require_identified_permission(session: Session, actor: Actor | None) -> str:

@@ -101,7 +101,8 @@ class CsvTable:
 
 
 class ParquetTable:
-    """Parquet with the export's schema (float64, int32, bool, string, date32); one row group per chunk."""
+    """Parquet with the export's schema (float64, int32, bool, string, date32, string dictionaries) and
+    pandas' note of each column's dtype; one row group per chunk."""
 
     def __init__(self, path: Path, columns: list[Column], handle: IO[bytes]):
         self.path = path
@@ -114,8 +115,9 @@ class ParquetTable:
     def append(self, frame: pd.DataFrame) -> None:
         if frame.empty:
             return
-        table = pa.Table.from_pandas(frame, schema=self.schema, preserve_index=False).replace_schema_metadata(None)
-        self._writer.write_table(table)
+        table = pa.Table.from_pandas(frame, schema=self.schema, preserve_index=False)
+        # Every row group with the schema's own pandas note (built once from the column list, not per chunk).
+        self._writer.write_table(table.replace_schema_metadata(self.schema.metadata))
         self.rows += len(frame)
 
     def close(self) -> None:
@@ -196,7 +198,8 @@ def fix_zip_times(source: Path | IO[bytes], target: Path | IO[bytes]) -> None:
 
 
 def write_dictionary_csv(handle: IO[bytes], dictionary: pd.DataFrame) -> None:
-    """The data dictionary as UTF-8 CSV (text neutralised as in the data file), into the open ``handle``."""
+    """The data dictionary (or another all-text table of the export: limits, criteria) as UTF-8 CSV, text
+    neutralised as in the data file, into the open ``handle``."""
     safe = dictionary.map(neutralise_text)
     with io.TextIOWrapper(handle, encoding="utf-8", newline="") as text:
         safe.to_csv(text, index=False, lineterminator=CSV_LINE_END)
@@ -227,8 +230,8 @@ def output_paths(out: Path | str | None, level: str, file_format: str) -> dict[s
     """Where the files go: ``out`` is a folder (existing, or given as text ending with a separator) or a file
     stem (a ``.csv``, ``.parquet`` or ``.xlsx`` suffix is dropped).
 
-    Returns ``{"data": …, "dictionary": … (CSV and Parquet only), "manifest": …}`` as absolute paths, so that
-    messages say where the files went.
+    Returns ``{"data": …, "dictionary": … (CSV and Parquet only), "limits": …, "criteria": …, "manifest": …}``
+    as absolute paths, so that messages say where the files went.
     """
     default_stem = f"ncs-export-{level}"
     if out is None:
@@ -243,5 +246,8 @@ def output_paths(out: Path | str | None, level: str, file_format: str) -> dict[s
     paths = {"data": data}
     if file_format != "xlsx":
         paths["dictionary"] = data.with_name(f"{data.name}.dictionary.csv")
+    # The reference tables: every normal limit, criteria threshold and version the values depend on.
+    paths["limits"] = data.with_name(f"{data.name}.limits.csv")
+    paths["criteria"] = data.with_name(f"{data.name}.criteria.csv")
     paths["manifest"] = data.with_name(f"{data.name}.manifest.json")
     return paths

@@ -12,6 +12,7 @@ the columns and their meanings are in :mod:`tracker.services.export.columns`; th
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import platform
@@ -30,6 +31,7 @@ from tracker import CAUTION, __version__
 from tracker.errors import TrackerError
 from tracker.services import audit
 from tracker.services.export import deidentify
+from tracker.services.export import reference
 from tracker.services.export.columns import SCORE_WINDOW_DAYS, dictionary_frame, empty_frame
 from tracker.services.export.files import (
     ExcelTable,
@@ -61,10 +63,13 @@ class WrittenFile:
 
 @dataclass(frozen=True)
 class ExportResult:
+    """What an export wrote; ``summary``: in plain words, from the visits selected to the rows written."""
+
     files: list[WrittenFile]
     visits: int
     rows: int
     manifest: dict[str, Any]
+    summary: str = ""
 
 
 def export_frame(session: Session, options: ExportOptions, *, username: str) -> pd.DataFrame:
@@ -113,7 +118,7 @@ def write_export(
             for frame in plan.frames(session, progress):
                 table.append(frame)
         finally:
-            dictionary = dictionary_frame(plan.columns, caution=CAUTION)
+            dictionary = dictionary_frame(plan.columns, caution=CAUTION, notes=_notes(paths))
             if isinstance(table, ExcelTable):
                 table.close(dictionary)
             else:
@@ -122,7 +127,11 @@ def write_export(
         if "dictionary" in paths:
             write_dictionary_csv(create("dictionary"), dictionary)
             written.append(_file("dictionary", partial["dictionary"], paths["dictionary"], len(dictionary)))
-        manifest = build_manifest(plan, file_format, written)
+        for role, frame in _reference_tables(plan).items():
+            write_dictionary_csv(create(role), frame)
+            written.append(_file(role, partial[role], paths[role], len(frame)))
+        summary = summary_text(plan, table.rows, len(written) + 1)
+        manifest = build_manifest(plan, file_format, written, summary=summary)
         with create("manifest") as handle:
             handle.write((json.dumps(manifest, indent=2, ensure_ascii=False) + "\n").encode("utf-8"))
         _audit(session, plan, file_format, written, username)
@@ -134,7 +143,78 @@ def write_export(
         raise
     files = [WrittenFile(f.role, paths[f.role], f.sha256, f.size, f.rows) for f in written]
     files.append(WrittenFile("manifest", paths["manifest"], sha256_of(paths["manifest"]), paths["manifest"].stat().st_size, None))
-    return ExportResult(files, plan.visit_count, table.rows, manifest)
+    return ExportResult(files, plan.visit_count, table.rows, manifest, summary)
+
+
+def _reference_tables(plan: ExportPlan) -> dict[str, pd.DataFrame]:
+    """The limits and criteria tables of this export (see :mod:`tracker.services.export.reference`)."""
+    shown = {s.criteria for s in plan.sets}
+    sets = [(s.criteria, s.version, s.alias if s.criteria in shown else None) for s in plan.evaluated_sets]
+    return {
+        "limits": reference.limits_table(plan.limits_info.name, plan.limits_info.version, plan.limits),
+        "criteria": reference.criteria_table(sets),
+    }
+
+
+def _notes(paths: dict[str, Path]) -> list[tuple[str, str]]:
+    """The dictionary's notes on the other files of the export folder (named as written beside the data)."""
+    dictionary = (
+        f"{paths['dictionary'].name} (this file)" if "dictionary" in paths else "the sheet 'dictionary'"
+    )
+    return [
+        (
+            "(files of this export)",
+            f"{paths['data'].name}: the data. {dictionary}: what every column means. "
+            f"{paths['limits'].name}: every normal limit of the limit set used (the limits table). "
+            f"{paths['criteria'].name}: the version, publication and every threshold of each criteria set "
+            "evaluated, and the limb temperature minimums (the criteria table; "
+            f"{reference.CRITERIA_TABLE_WORDS}). {paths['manifest'].name}: versions, criteria settings, "
+            "filters, response rule sets and settings, row counts and the SHA-256 of every other file.",
+        ),
+    ]
+
+
+# Words for a row of each level, in the closing summary.
+ROW_WORDS = {
+    "visit": "one per visit",
+    "nerve": "one per nerve test",
+    "segment": "one per motor segment",
+    "long": "one per value or recorded absence",
+}
+
+
+def _counted(number: int, word: str) -> str:
+    return f"{number:,} {word}{'' if number == 1 else 's'}"
+
+
+def summary_text(plan: ExportPlan, rows: int, files: int) -> str:
+    """What the export wrote, in plain words: ``29 visits of 6 patients → 12 visits of 4 patients after the
+    outcome filter (efns-pns-2010-cidp = definite) → 80 rows, one per nerve test, in 5 files``."""
+    options, counts = plan.options, plan.counts
+    chosen = []
+    if options.diagnoses:
+        chosen.append("diagnosis " + " or ".join(sorted(options.diagnoses)))
+    if options.date_from or options.date_to:
+        since = f"from {options.date_from.isoformat()} " if options.date_from else ""
+        until = f"to {options.date_to.isoformat()}" if options.date_to else ""
+        chosen.append(f"visits {since}{until}".strip())
+    if options.patients:
+        chosen.append(f"{_counted(len(set(options.patients)), 'patient')} named")
+    selected = f"{_counted(plan.visit_count, 'visit')} of {_counted(plan.patient_count, 'patient')}"
+    parts = [selected + (f" ({'; '.join(chosen)})" if chosen else "")]
+    if options.outcomes:
+        wanted = ", ".join(f"{c} = {v}" for c, v in sorted(options.outcomes))
+        kept = len(counts.patients_kept)
+        parts.append(
+            f"{_counted(counts.visits_kept, 'visit')} of {_counted(kept, 'patient')} after the outcome "
+            f"filter ({wanted})"
+        )
+    written = f"{_counted(rows, 'row')}, {ROW_WORDS[options.level]}, in {files} files"
+    if counts.visits_without_rows:
+        level = "a motor segment" if options.level == "segment" else "a nerve test"
+        written += f" ({_counted(counts.visits_without_rows, 'visit')} without {level} gave no row)"
+    parts.append(written)
+    return " → ".join(parts)
 
 
 def _file(role: str, written_path: Path, final_path: Path, rows: int) -> WrittenFile:
@@ -159,7 +239,9 @@ def _filters(plan: ExportPlan) -> dict[str, Any]:
     }
 
 
-def build_manifest(plan: ExportPlan, file_format: str, written: list[WrittenFile]) -> dict[str, Any]:
+def build_manifest(
+    plan: ExportPlan, file_format: str, written: list[WrittenFile], *, summary: str = ""
+) -> dict[str, Any]:
     """The manifest: versions, what the values depend on, filters, row counts and file hashes. It holds no
     timestamp, so it is byte-identical too when the database and the options are the same."""
     options = plan.options
@@ -175,7 +257,10 @@ def build_manifest(plan: ExportPlan, file_format: str, written: list[WrittenFile
             "export_id": "HMAC-SHA256 of the patient code keyed by this database's secret export key, first 16 hex digits",
             "dates": ("visit_date_shifted: real date moved by a secret per-patient offset of 1 to 365 days (earlier or later), "
                       "plus days_since_first_visit" if options.dates == "shifted" else "days_since_first_visit only"),
-            "ages": "age_at_visit over 89 shown as 90+ (HIPAA Safe Harbor, 45 CFR 164.514(b)(2)(i)(C))",
+            "ages": (
+                "age_at_visit top-coded: ages over 89 given as 90 with age_top_coded true (HIPAA Safe "
+                "Harbor, 45 CFR 164.514(b)(2)(i)(C))"
+            ),
             "removed": REMOVED_FIELDS,
         },
         "criteria": [
@@ -183,12 +268,17 @@ def build_manifest(plan: ExportPlan, file_format: str, written: list[WrittenFile
              "used_for": (["columns"] if s in plan.sets else []) + (["outcome filter"] if s.criteria in filtering else [])}
             for s in plan.evaluated_sets
         ],
-        "criteria_settings": {k: getattr(options.settings, k) for k in ("cold_limbs", "sides_are_separate_nerves", "cv_segments", "block_path")},
+        "criteria_settings": dataclasses.asdict(plan.settings),
+        "criteria_settings_from": _settings_origin(options),
         "limits": {"name": plan.limits_info.name, "version": plan.limits_info.version},
         "scores_rule": f"score on the visit date, else the nearest within ±{SCORE_WINDOW_DAYS} days (earlier on a tie)",
         "response": None if plan.response is None else response_manifest(plan.response),
         "filters": _filters(plan),
         "visits_selected": plan.visit_count,
+        "patients_selected": plan.patient_count,
+        "visits_exported": plan.counts.visits_kept,
+        "patients_exported": len(plan.counts.patients_kept),
+        "summary": summary,
         "chunk_visits": options.chunk_visits,
         "files": [{"role": f.role, "name": f.path.name, "sha256": f.sha256, "bytes": f.size, "rows": f.rows} for f in written],
         "identity_promise": (
@@ -200,6 +290,17 @@ def build_manifest(plan: ExportPlan, file_format: str, written: list[WrittenFile
             "openpyxl": openpyxl.__version__, "sqlalchemy": sqlalchemy.__version__,
         },
     }
+
+
+def _settings_origin(options: ExportOptions) -> str:
+    """Where the criteria settings of the manifest came from, in words."""
+    if options.settings is not None:
+        return "given by the program that asked for the export"
+    database = "this database's settings (temperature policy and stored switches, as check uses them)"
+    if not options.setting_overrides:
+        return f"{database}, else the defaults"
+    given = ", ".join(name for name, _ in options.setting_overrides)
+    return f"options of this export: {given}; the others: {database}, else the defaults"
 
 
 def _audit(session: Session, plan: ExportPlan, file_format: str, written: list[WrittenFile], username: str) -> None:

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import datetime as dt
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from functools import cache
 
 import numpy as np
@@ -29,9 +29,14 @@ from tracker.errors import NotFound, TrackerError
 from tracker.response.settings import ResponseSettings
 from tracker.services.export import deidentify
 from tracker.services.evaluation import load_frames
+from tracker.services import preferences
 from tracker.services.export.columns import (
+    NERVE_QUANTITIES,
     OUTCOME_VALUES,
+    PATH_QUANTITIES,
     SCORE_WINDOW_DAYS,
+    SITE_QUANTITIES,
+    UNDECIDED,
     Column,
     SetColumns,
     VerdictItem,
@@ -59,7 +64,8 @@ NERVE_KEY = ["visit_key", "nerve", "side", "modality"]
 
 @dataclass(frozen=True)
 class ExportOptions:
-    """What to export. Empty tuples mean "no filter" (``criteria``: every available set)."""
+    """What to export. Empty tuples mean "no filter" (``criteria``: every available set); ``settings``
+    None means the database's criteria settings."""
 
     level: str = "visit"
     criteria: tuple[str, ...] = ()
@@ -72,7 +78,10 @@ class ExportOptions:
     identified: bool = False
     limits_name: str | None = None
     chunk_visits: int = CHUNK_VISITS
-    settings: Settings = field(default_factory=Settings)
+    # None: the database's criteria settings (temperature policy and stored switches) as ``check`` uses
+    # them, with ``setting_overrides`` ((Settings field, value) pairs, e.g. from command-line options) first.
+    settings: Settings | None = None
+    setting_overrides: tuple[tuple[str, object], ...] = ()
     response_settings: ResponseSettings = field(default_factory=ResponseSettings)
 
 
@@ -99,6 +108,16 @@ def validate(options: ExportOptions) -> None:
         raise TrackerError("The date range is empty: --from is after --to.")
     if options.chunk_visits < 1:
         raise TrackerError("The chunk size must be at least 1 visit.")
+    known_settings = {f.name for f in fields(Settings)}
+    for name, value in options.setting_overrides:
+        if name not in known_settings:
+            raise TrackerError(
+                f"Unknown criteria setting {name!r}; known: {', '.join(sorted(known_settings))}."
+            )
+    try:
+        Settings(**dict(options.setting_overrides))
+    except ValueError as error:
+        raise TrackerError(str(error)) from None
 
 
 # -- which verdicts exist ------------------------------------------------------------------------------------
@@ -255,6 +274,15 @@ def _catalogue(criteria_ids: tuple[str, ...], settings: Settings) -> tuple[SetCo
 
 
 @dataclass
+class ExportCounts:
+    """What the export selected and kept, filled as the chunks are built (for the closing summary)."""
+
+    visits_kept: int = 0
+    patients_kept: set[int] = field(default_factory=set)
+    visits_without_rows: int = 0
+
+
+@dataclass
 class ExportPlan:
     """The visits to export (in export order), the columns, and what the values depend on."""
 
@@ -268,6 +296,8 @@ class ExportPlan:
     order: pd.DataFrame  # visit_key, patient_id, export_id, shift_days — sorted by export id, date, key
     patients_filter: list[str]
     response: ResponseSpec | None = None  # the response columns' rule sets and settings (visit level only)
+    settings: Settings = field(default_factory=Settings)  # the criteria settings applied
+    counts: ExportCounts = field(default_factory=ExportCounts)
 
     @property
     def limits_label(self) -> str:
@@ -281,10 +311,15 @@ class ExportPlan:
     def visit_count(self) -> int:
         return len(self.order)
 
+    @property
+    def patient_count(self) -> int:
+        return int(self.order["patient_id"].nunique())
+
     def frames(
         self, session: Session, progress: Callable[[int, int], None] | None = None
     ) -> Iterator[pd.DataFrame]:
         """One DataFrame per chunk of visits, columns exactly :attr:`columns`, rows in export order."""
+        self.counts = ExportCounts()
         total = len(self.order)
         size = self.options.chunk_visits
         for start in range(0, total, size):
@@ -305,11 +340,12 @@ def prepare(
     validate(options)
     if options.identified:
         deidentify.require_identified_permission(session, actor)
+    settings = options.settings or preferences.criteria_settings(session, **dict(options.setting_overrides))
     info, limits = resolve(session, options.limits_name)
     # The long level holds no verdicts: criteria sets are evaluated there only for an --outcome filter.
     shown = [] if options.level == "long" else list(options.criteria) or engine.available()
     evaluated = shown + [c for c, _ in options.outcomes if c not in shown]
-    sets = catalogue(evaluated, options.settings)
+    sets = catalogue(evaluated, settings)
     limits_label = f"{info.name} version {info.version}"
     chosen_sets = [s for s in sets if s.criteria in shown]
     keys = key_columns(identified=options.identified, dates=options.dates)
@@ -345,6 +381,7 @@ def prepare(
         order[["visit_key", "patient_id", "export_id", "shift_days"]],
         sorted(set(options.patients)),
         response,
+        settings,
     )
 
 
@@ -395,7 +432,7 @@ def _build_chunk(plan: ExportPlan, session: Session, chunk: pd.DataFrame) -> pd.
             sites,
             plan.limits,
             plan.evaluated,
-            options.settings,
+            plan.settings,
             built=None if nerves is None else (nerves, paths),
         )
         if evaluate
@@ -404,8 +441,10 @@ def _build_chunk(plan: ExportPlan, session: Session, chunk: pd.DataFrame) -> pd.
     keep = _outcome_filter(options, results, visits["visit_key"])
     context = _visit_context(plan, session, chunk, visits)
     context = context[context["visit_key"].isin(keep)]
+    plan.counts.visits_kept += len(context)
+    plan.counts.patients_kept.update(int(p) for p in context["patient_id"])
     if options.level == "visit":
-        frame = _visit_level(plan, session, context, visits, tests, results)
+        frame = _visit_level(plan, session, context, visits, tests, sites, results)
     else:
         nerves = nerves[nerves["visit_key"].isin(keep)]
         paths = paths[paths["visit_key"].isin(keep)]
@@ -416,6 +455,8 @@ def _build_chunk(plan: ExportPlan, session: Session, chunk: pd.DataFrame) -> pd.
             frame = _segment_level(plan, context, paths, sites, results)
         else:
             frame = _long_level(plan, session, context, nerves, paths, sites)
+    # A visit without a nerve test (segment level: without a motor segment) gives no row.
+    plan.counts.visits_without_rows += len(set(context["visit_key"]) - set(frame["visit_key"]))
     return frame
 
 
@@ -502,6 +543,7 @@ def _statuses(
                     "segment": findings["segment"].to_numpy(dtype=object),
                     "column": findings["item"].map(wanted).to_numpy(dtype=object),
                     "status": findings["status"].to_numpy(dtype=object),
+                    "value": pd.to_numeric(findings["value"], errors="coerce").to_numpy(dtype=float),
                 }
             )
         )
@@ -516,6 +558,7 @@ def _visit_level(
     context: pd.DataFrame,
     visits: pd.DataFrame,
     tests: pd.DataFrame,
+    sites: pd.DataFrame,
     results: dict[str, SetResult],
 ) -> pd.DataFrame:
     frame = _key_frame(plan, context).copy()
@@ -541,14 +584,23 @@ def _visit_level(
     frame["sex"] = frame["visit_key"].map(own["sex"])
     frame["height_cm"] = frame["visit_key"].map(own["height_cm"])
     identified = plan.options.identified
-    frame["age_at_visit"] = [
-        deidentify.age_text(a, identified=identified)
+    ages = [
+        deidentify.top_coded_age(a, identified=identified)
         for a in frame["visit_key"].map(own["age_years"]).astype(float)
     ]
+    frame["age_at_visit"] = pd.array([a for a, _ in ages], dtype="Int64")
+    frame["age_top_coded"] = pd.array([t for _, t in ages], dtype="boolean")
     onset = pd.to_datetime(frame["onset_date"])
     real_dates = pd.to_datetime(frame["visit_key"].map(context.set_index("visit_key")["visit_date"]))
     frame["days_since_onset"] = (real_dates - onset).dt.days
     frame["nerve_tests"] = frame["visit_key"].map(tests.groupby("visit_key").size()).fillna(0)
+    # Recorded absences, counted per visit (a finding, not missing data).
+    distal = sites.sort_values(["test_key", "site_order"]).drop_duplicates("test_key")
+    silent = distal.loc[(distal["amplitude"] == 0) & distal["latency_ms"].isna(), "test_key"]
+    no_response = tests[tests["test_key"].isin(silent)].groupby("visit_key").size()
+    frame["nerve_tests_no_response"] = frame["visit_key"].map(no_response).fillna(0)
+    f_absent = tests[tests["f_absent"].astype(bool)].groupby("visit_key").size()
+    frame["nerve_tests_f_absent"] = frame["visit_key"].map(f_absent).fillna(0)
     if identified:
         frame = _with_identity(session, frame, context)
     frame = _with_treatments(session, frame, context)
@@ -560,7 +612,18 @@ def _visit_level(
         if found.criteria not in results:
             continue
         outcomes = results[found.criteria].outcomes.set_index("visit_key")
-        frame[f"{found.alias}__outcome"] = frame["visit_key"].map(outcomes["outcome"])
+        outcome = frame["visit_key"].map(outcomes["outcome"])
+        tested = outcome.notna()
+        if UNDECIDED in OUTCOME_VALUES.get(found.criteria, ()):
+            # "undecided" is not a level of the ordered outcome: a flag of its own, the level left empty.
+            undecided = outcome == UNDECIDED
+            frame[f"{found.alias}__undecided"] = undecided.astype("boolean").where(tested)
+            outcome = outcome.where(~undecided)
+            if "undecided_items" in outcomes:
+                items = frame["visit_key"].map(outcomes["undecided_items"])
+                counts = [len(i) if isinstance(i, (list, tuple)) else 0 for i in items]
+                frame[f"{found.alias}__undecided_items"] = pd.Series(counts, index=frame.index).where(tested)
+        frame[f"{found.alias}__outcome"] = outcome
         frame[f"{found.alias}__rule"] = (
             frame["visit_key"].map(outcomes["rule"]) if "rule" in outcomes else None
         )
@@ -687,6 +750,8 @@ def _nerve_level(
     frame["sensory_velocity_m_per_s"] = frame["sensory_cv"]
     frame["slowest_standard_velocity_m_per_s"] = frame["cv_standard"]
     frame["slowest_standard_segment"] = frame["cv_standard_segment"]
+    silent = sites[(sites["amplitude"] == 0) & sites["latency_ms"].isna()].groupby("test_key").size()
+    frame["sites_no_response"] = frame["test_key"].map(silent).fillna(0)
     frame = _key_frame(plan, context).merge(frame, on="visit_key", how="inner")
     statuses = _statuses(results, plan.sets, lambda item: True)
     if statuses is not None and not statuses.empty:
@@ -695,7 +760,27 @@ def _nerve_level(
         ).reset_index()
         wide.columns.name = None
         frame = frame.merge(wide, on=NERVE_KEY, how="left")
+        frame = _with_item_values(frame, statuses, plan.sets)
     return frame.sort_values(["position", "nerve", "side", "modality"], kind="stable")
+
+
+def _with_item_values(frame: pd.DataFrame, statuses: pd.DataFrame, sets: list[SetColumns]) -> pd.DataFrame:
+    """``frame`` (nerve level) with the value and segment behind each segment-judged verdict (block and
+    dispersion %, velocity…), so that they need no join with the segment level."""
+    targets = {i.column: (i.value_column, i.segment_column) for s in sets for i in s.items if i.has_segment}
+    rows = statuses[statuses["column"].isin(list(targets))]
+    if rows.empty:
+        return frame
+    rows = rows.drop_duplicates([*NERVE_KEY, "column"])
+    for column, (value_column, segment_column) in targets.items():
+        these = rows[rows["column"] == column].set_index(NERVE_KEY)
+        if these.empty:
+            continue
+        index = pd.MultiIndex.from_frame(frame[NERVE_KEY])
+        frame[value_column] = these["value"].reindex(index).to_numpy(dtype=float)
+        segments = these["segment"].reindex(index).to_numpy(dtype=object)
+        frame[segment_column] = [s if isinstance(s, str) and s else None for s in segments]
+    return frame
 
 
 def _segment_level(
@@ -710,6 +795,7 @@ def _segment_level(
     frame = frame.rename(
         columns={"amplitude": "amplitude_mv", "segment_velocity": "segment_velocity_m_per_s"}
     )
+    frame["response_absent"] = (frame["amplitude_mv"] == 0) & frame["latency_ms"].isna()
     frame["modality"] = "motor"
     frame = _key_frame(plan, context).merge(frame, on="visit_key", how="inner")
     statuses = _statuses(results, plan.sets, lambda item: item.has_segment)
@@ -735,31 +821,6 @@ def _segment_level(
     return frame.sort_values(["position", "nerve", "side", "site_order"], kind="stable")
 
 
-# Long level: (quantity, source column, unit, origin); amplitude's unit depends on the modality.
-SITE_QUANTITIES = [
-    ("distance", "distance_mm", "mm", "measured"),
-    ("onset_latency", "latency_ms", "ms", "measured"),
-    ("peak_latency", "peak_latency_ms", "ms", "measured"),
-    ("amplitude", "amplitude", None, "measured"),
-    ("duration", "duration_ms", "ms", "measured"),
-    ("area", "area_mvms", "mV·ms", "measured"),
-]
-NERVE_QUANTITIES = [
-    ("temperature", "temperature_c", "°C", "measured"),
-    ("low_frequency_filter", "lff_hz", "Hz", "measured"),
-    ("f_latency", "f_latency_ms", "ms", "measured"),
-    ("f_persistence", "f_persistence_pct", "%", "measured"),
-    ("sensory_velocity", "sensory_cv", "m/s", "derived"),
-]
-PATH_QUANTITIES = [
-    ("segment_velocity", "segment_velocity", "m/s", "segment"),
-    ("segment_amplitude_reduction", "segment_amplitude_reduction_pct", "%", "segment"),
-    ("segment_area_reduction", "segment_area_reduction_pct", "%", "segment"),
-    ("segment_duration_increase", "segment_duration_increase_pct", "%", "segment"),
-    ("amplitude_reduction_from_distal", "amplitude_reduction_pct", "%", "path"),
-    ("area_reduction_from_distal", "area_reduction_pct", "%", "path"),
-    ("duration_increase_from_distal", "duration_increase_pct", "%", "path"),
-]
 QUANTITY_ORDER = {
     name: rank for rank, (name, *_rest) in enumerate(NERVE_QUANTITIES + SITE_QUANTITIES + PATH_QUANTITIES)
 }
@@ -794,33 +855,62 @@ def _long_level(
             "lff_hz",
             "f_latency_ms",
             "sensory_cv",
+            "f_absent",
+            "no_response",
         ]
     ].copy()
     tests["f_persistence_pct"] = tests["test_key"].map(persistence).astype(float)
     ident = ["test_key", "visit_key", "nerve", "side", "modality"]
     parts = []
 
-    def melt(frame: pd.DataFrame, spec: list[tuple], site_order, segment) -> None:
+    def melt(frame: pd.DataFrame, spec: list[tuple], site_order, segment, absent: dict | None = None) -> None:
+        """One row per non-empty value of each quantity of ``spec``. ``absent``: quantity → (mask of recorded
+        absences, whether an absence makes a row of its own when the value is empty)."""
         for quantity, source, unit, origin in spec:
             values = frame[source].astype(float)
             present = values.notna().to_numpy()
-            if not present.any():
+            flagged, own_row = (absent or {}).get(quantity, (np.zeros(len(frame), dtype=bool), False))
+            rows = present | flagged if own_row else present
+            if not rows.any():
                 continue
-            part = frame.loc[present, ident].copy()
-            part["site_order"] = site_order(frame)[present] if site_order is not None else np.nan
-            part["segment"] = segment(frame, origin)[present] if segment is not None else None
+            part = frame.loc[rows, ident].copy()
+            part["site_order"] = site_order(frame)[rows] if site_order is not None else np.nan
+            part["segment"] = segment(frame, origin)[rows] if segment is not None else None
             part["quantity"] = quantity
-            part["value"] = values[present].to_numpy()
+            part["value"] = values[rows].to_numpy()
             if unit is None:  # amplitude: mV for motor, µV for sensory
                 part["unit"] = np.where(part["modality"].to_numpy(dtype=object) == "motor", "mV", "µV")
             else:
                 part["unit"] = unit
             part["origin"] = "derived" if origin in ("derived", "segment", "path") else "measured"
+            part["response_absent"] = flagged[rows]
             parts.append(part)
 
-    melt(tests, NERVE_QUANTITIES, None, None)
+    # Recorded absences are findings: they get rows of their own, flagged, never look like "not measured".
+    f_absent = tests["f_absent"].fillna(False).to_numpy(dtype=bool)
+    silent_sensory = (tests["no_response"].fillna(False).to_numpy(dtype=bool)) & (
+        tests["modality"].to_numpy(dtype=object) == "sensory"
+    )
+    melt(
+        tests,
+        NERVE_QUANTITIES,
+        None,
+        None,
+        {
+            "f_latency": (f_absent, True),
+            "f_persistence": (f_absent, False),
+            "sensory_velocity": (silent_sensory, True),
+        },
+    )
     site_rows = sites.merge(tests[ident], on="test_key", how="inner")
-    melt(site_rows, SITE_QUANTITIES, lambda f: f["site_order"].to_numpy(), None)
+    silent = ((site_rows["amplitude"] == 0) & site_rows["latency_ms"].isna()).to_numpy(dtype=bool)
+    melt(
+        site_rows,
+        SITE_QUANTITIES,
+        lambda f: f["site_order"].to_numpy(),
+        None,
+        {"onset_latency": (silent, True), "amplitude": (silent, False)},
+    )
     path_rows = paths.assign(modality="motor")
     melt(
         path_rows,
@@ -831,7 +921,18 @@ def _long_level(
     if parts:
         frame = pd.concat(parts, ignore_index=True)
     else:
-        frame = pd.DataFrame(columns=[*ident, "site_order", "segment", "quantity", "value", "unit", "origin"])
+        frame = pd.DataFrame(
+            columns=[
+                *ident,
+                "site_order",
+                "segment",
+                "quantity",
+                "value",
+                "unit",
+                "origin",
+                "response_absent",
+            ]
+        )
     frame["rank"] = frame["quantity"].map(QUANTITY_ORDER)
     frame = _key_frame(plan, context).merge(frame, on="visit_key", how="inner")
     frame["site_rank"] = frame["site_order"].fillna(0)
