@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import datetime as dt
 import hashlib
+import json
 import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -233,9 +234,15 @@ def _write(session: Session, criteria_id: str, info: LimitSetInfo, keys: list[in
 
 def _trace_encoder(session: Session) -> Callable[[Any], Any]:
     """The ``result`` column's own conversion of a trace into what the driver is given (as SQLAlchemy would
-    apply it to a bound value)."""
+    apply it to a bound value). A JSON document that the column leaves to the driver to adapt (psycopg) is
+    given as JSON text, which PostgreSQL reads into a json column."""
     process = Evaluation.__table__.c.result.type.bind_processor(session.connection().dialect)
-    return process or (lambda value: value)
+
+    def encode(trace: Any) -> Any:
+        value = process(trace) if process is not None else trace
+        return json.dumps(value) if isinstance(value, (dict, list)) else value
+
+    return encode
 
 
 def _insert_rows(session: Session, rows: list[dict[str, Any]]) -> None:
