@@ -15,12 +15,18 @@ class ChainBroken(TrackerError):
 
 
 @click.group("audit", invoke_without_command=True)
-@click.option("--patient", metavar="CODE", help="Only events about this patient (visits, scores, annotations).")
+@click.option(
+    "--patient", metavar="CODE", help="Only events about this patient (visits, scores, annotations)."
+)
 @click.option("--since", metavar="YYYY-MM-DD", help="Only events on or after this day (UTC).")
 @click.option("--user", "username", metavar="NAME", help="Only events by this account.")
-@click.option("--limit", type=click.IntRange(min=1), default=200, show_default=True, help="At most this many events.")
+@click.option(
+    "--limit", type=click.IntRange(min=1), default=200, show_default=True, help="At most this many events."
+)
 @click.pass_context
-def audit_command(ctx: click.Context, patient: str | None, since: str | None, username: str | None, limit: int) -> None:
+def audit_command(
+    ctx: click.Context, patient: str | None, since: str | None, username: str | None, limit: int
+) -> None:
     """Who changed what, before → after, newest first (clinicians and administrators).
 
     A file import is one event naming the file's checksum; replaced visits, annotations and changed
@@ -37,7 +43,9 @@ def audit_command(ctx: click.Context, patient: str | None, since: str | None, us
         try:
             day = dt.date.fromisoformat(since)
         except ValueError:
-            raise click.BadParameter(f"expected a date as YYYY-MM-DD, got {since!r}", param_hint="--since") from None
+            raise click.BadParameter(
+                f"expected a date as YYYY-MM-DD, got {since!r}", param_hint="--since"
+            ) from None
     with context.session_factory()() as session:
         lines = event_lines(session, patient=patient, since=day, username=username, limit=limit)
     if not lines:
@@ -58,6 +66,8 @@ def audit_verify(context: Context) -> None:
     with context.engine().connect() as connection:
         report = verify(connection)
     if not report.intact:
-        raise ChainBroken(f"The audit trail was altered: event {report.broken_at}: {report.problem}. "
-                          f"{report.rows} events before it are intact.")
+        raise ChainBroken(
+            f"The audit trail was altered: event {report.broken_at}: {report.problem}. "
+            f"{report.rows} events before it are intact."
+        )
     click.echo(f"The audit trail is intact: {report.rows} events, every link checked.")

@@ -71,7 +71,10 @@ class Context:
     def url(self) -> str:
         url, is_default = resolve_database_url(self._db)
         if is_default:
-            click.echo(f"Database: {url.removeprefix('sqlite:///')} (default; choose another with --db or {ENV_DB})", err=True)
+            click.echo(
+                f"Database: {url.removeprefix('sqlite:///')} (default; choose another with --db or {ENV_DB})",
+                err=True,
+            )
         return url
 
     def engine(self, *, require_schema: bool = True) -> Engine:
@@ -82,7 +85,9 @@ class Context:
             url = self.url
             missing_file = _missing_sqlite_file(url)
             if require_schema and missing_file:
-                raise SchemaNotReady(f"There is no database file at {missing_file}; run: ncs-tracker db upgrade")
+                raise SchemaNotReady(
+                    f"There is no database file at {missing_file}; run: ncs-tracker db upgrade"
+                )
             self._engine = make_engine(url)
         if require_schema:
             require_current_schema(self._engine)

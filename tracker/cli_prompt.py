@@ -10,7 +10,8 @@ import click
 
 def read_password(prompt: str, *, confirm: bool = False) -> str:
     if sys.stdin is not None and sys.stdin.isatty():
-        return click.prompt(prompt, hide_input=True, confirmation_prompt=confirm, err=True, default="",
-                            show_default=False)
+        return click.prompt(
+            prompt, hide_input=True, confirmation_prompt=confirm, err=True, default="", show_default=False
+        )
     line = sys.stdin.readline() if sys.stdin is not None else ""
     return line.rstrip("\r\n")

@@ -17,9 +17,10 @@ from sqlalchemy import delete, select
 from sqlalchemy.orm import Session
 
 from tracker.criteria import engine
-from tracker.criteria.model import Settings, SetResult
+from tracker.criteria.model import SetResult, Settings
 from tracker.db.locking import DatabaseBusy, checkpoint, retry_when_busy, take_write_lock
 from tracker.db.models import Evaluation, NerveTest, Patient, StimulationSite, Visit, utc_now
+from tracker.domain.labels import settings_in_words
 from tracker.errors import NotFound, TrackerError
 from tracker.services.access import audit
 from tracker.services.limit_sets import LimitSetInfo, resolve
@@ -33,23 +34,46 @@ FALLBACK_CRITERIA = "efns-pns-2010-cidp"
 
 def _visit_query(visit_ids: list[int] | None):
     query = select(
-        Visit.id.label("visit_key"), Patient.code.label("patient"), Visit.visit_date, Visit.height_cm, Patient.sex,
-        Patient.birth_year, Visit.phenotype, Visit.diagnosis, Visit.content_sha256,
+        Visit.id.label("visit_key"),
+        Patient.code.label("patient"),
+        Visit.visit_date,
+        Visit.height_cm,
+        Patient.sex,
+        Patient.birth_year,
+        Visit.phenotype,
+        Visit.diagnosis,
+        Visit.content_sha256,
     ).join(Patient, Patient.id == Visit.patient_id)
     return query if visit_ids is None else query.where(Visit.id.in_(visit_ids))
 
 
-def load_frames(session: Session,
-                visit_ids: list[int] | None = None) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+def load_frames(
+    session: Session, visit_ids: list[int] | None = None
+) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     """(visits, tests, sites) as the engine expects them, for the given visits (all when ``None``)."""
     test_query = select(
-        NerveTest.id.label("test_key"), NerveTest.visit_id.label("visit_key"), NerveTest.nerve, NerveTest.side, NerveTest.modality,
-        NerveTest.temperature_c, NerveTest.lff_hz, NerveTest.f_latency_ms, NerveTest.f_absent, NerveTest.wrist_entrapment,
+        NerveTest.id.label("test_key"),
+        NerveTest.visit_id.label("visit_key"),
+        NerveTest.nerve,
+        NerveTest.side,
+        NerveTest.modality,
+        NerveTest.temperature_c,
+        NerveTest.lff_hz,
+        NerveTest.f_latency_ms,
+        NerveTest.f_absent,
+        NerveTest.wrist_entrapment,
     )
     site_query = select(
-        StimulationSite.nerve_test_id.label("test_key"), StimulationSite.site_order, StimulationSite.label, StimulationSite.distance_mm,
-        StimulationSite.latency_ms, StimulationSite.peak_latency_ms, StimulationSite.amplitude_mv, StimulationSite.amplitude_uv,
-        StimulationSite.duration_ms, StimulationSite.area_mvms,
+        StimulationSite.nerve_test_id.label("test_key"),
+        StimulationSite.site_order,
+        StimulationSite.label,
+        StimulationSite.distance_mm,
+        StimulationSite.latency_ms,
+        StimulationSite.peak_latency_ms,
+        StimulationSite.amplitude_mv,
+        StimulationSite.amplitude_uv,
+        StimulationSite.duration_ms,
+        StimulationSite.area_mvms,
     ).join(NerveTest, NerveTest.id == StimulationSite.nerve_test_id)
     if visit_ids is not None:
         test_query = test_query.where(NerveTest.visit_id.in_(visit_ids))
@@ -69,8 +93,9 @@ def _typed_visits(visits: pd.DataFrame) -> pd.DataFrame:
     return visits
 
 
-def _typed(visits: pd.DataFrame, tests: pd.DataFrame,
-           sites: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+def _typed(
+    visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame
+) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
     visits = _typed_visits(visits)
     tests["f_absent"] = tests["f_absent"].fillna(False).astype(bool)
     for column in ("temperature_c", "lff_hz", "f_latency_ms"):
@@ -104,17 +129,33 @@ class VisitCheck:
     outcome_changes: dict[str, tuple[str, str]] = field(default_factory=dict)
 
 
-def check_visit(session: Session, code: str, *, visit_date: dt.date | None, criteria: list[str] | None,
-                limits_name: str | None, settings: Settings | None = None, username: str | None = None) -> VisitCheck:
+def check_visit(
+    session: Session,
+    code: str,
+    *,
+    visit_date: dt.date | None,
+    criteria: list[str] | None,
+    limits_name: str | None,
+    settings: Settings | None = None,
+    username: str | None = None,
+) -> VisitCheck:
     """Evaluate one visit (the latest when no date is given); with ``username``, save the evaluations in the
     caller's transaction and audit them (outcomes before → after)."""
     patient = find_patient(session, code)
-    visits = session.execute(select(Visit.id, Visit.visit_date, Visit.diagnosis).where(Visit.patient_id == patient.id).order_by(Visit.visit_date)).all()
+    visits = session.execute(
+        select(Visit.id, Visit.visit_date, Visit.diagnosis)
+        .where(Visit.patient_id == patient.id)
+        .order_by(Visit.visit_date)
+    ).all()
     if not visits:
         raise NotFound(f"Patient {code} has no visits yet.")
-    chosen = visits[-1] if visit_date is None else next((v for v in visits if v.visit_date == visit_date), None)
+    chosen = (
+        visits[-1] if visit_date is None else next((v for v in visits if v.visit_date == visit_date), None)
+    )
     if chosen is None:
-        raise NotFound(f"Patient {code} has no visit on {visit_date.isoformat()}; visits: {', '.join(v.visit_date.isoformat() for v in visits)}")
+        raise NotFound(
+            f"Patient {code} has no visit on {visit_date.isoformat()}; visits: {', '.join(v.visit_date.isoformat() for v in visits)}"
+        )
     index = [v.id for v in visits].index(chosen.id)
     previous = visits[index - 1] if index > 0 else None
     wanted = [chosen.id] + ([previous.id] if previous else [])
@@ -125,7 +166,9 @@ def check_visit(session: Session, code: str, *, visit_date: dt.date | None, crit
     info, limits = resolve(session, limits_name)
     visit_frame, tests, sites = load_frames(session, wanted)
     if tests[tests["visit_key"] == chosen.id].empty:
-        raise NotFound(f"The visit of {code} on {chosen.visit_date.isoformat()} has no nerve tests to evaluate.")
+        raise NotFound(
+            f"The visit of {code} on {chosen.visit_date.isoformat()} has no nerve tests to evaluate."
+        )
     settings = settings or Settings()
     results = engine.evaluate(visit_frame, tests, sites, limits, criteria_ids, settings)
     current = {cid: _only(result, chosen.id) for cid, result in results.items()}
@@ -140,18 +183,26 @@ def check_visit(session: Session, code: str, *, visit_date: dt.date | None, crit
         phenotype=visit_frame.loc[visit_frame["visit_key"] == chosen.id, "phenotype"].iloc[0],
         limits=info,
         results=current,
-        warnings=engine.temperature_warnings(visit_frame[visit_frame["visit_key"] == chosen.id], tests, sites, limits),
+        warnings=engine.temperature_warnings(
+            visit_frame[visit_frame["visit_key"] == chosen.id], tests, sites, limits
+        ),
         closest={cid: engine.closest_miss(r) for cid, r in current.items()},
         changes={cid: _changes_at(visit_frame, r, chosen.id) for cid, r in results.items()},
         previous_date=previous.visit_date if previous else None,
-        outcome_changes={cid: _outcome_change_at(visit_frame, r, chosen.id) for cid, r in results.items() if _outcome_change_at(visit_frame, r, chosen.id)},
+        outcome_changes={
+            cid: _outcome_change_at(visit_frame, r, chosen.id)
+            for cid, r in results.items()
+            if _outcome_change_at(visit_frame, r, chosen.id)
+        },
     )
 
 
 def _outcome_change_at(visits: pd.DataFrame, result: SetResult, visit_key: int) -> tuple[str, str] | None:
     changed = engine.outcome_changes(visits, result)
     changed = changed[changed["visit_key"] == visit_key]
-    return (str(changed["previous_outcome"].iloc[0]), str(changed["outcome"].iloc[0])) if len(changed) else None
+    return (
+        (str(changed["previous_outcome"].iloc[0]), str(changed["outcome"].iloc[0])) if len(changed) else None
+    )
 
 
 def _changes_at(visits: pd.DataFrame, result: SetResult, visit_key: int) -> pd.DataFrame:
@@ -161,7 +212,8 @@ def _changes_at(visits: pd.DataFrame, result: SetResult, visit_key: int) -> pd.D
 
 def _only(result: SetResult, visit_key: int) -> SetResult:
     return SetResult(
-        result.criteria, result.version,
+        result.criteria,
+        result.version,
         result.findings[result.findings["visit_key"] == visit_key].reset_index(drop=True),
         result.outcomes[result.outcomes["visit_key"] == visit_key].reset_index(drop=True),
         result.extra_keys,
@@ -169,7 +221,9 @@ def _only(result: SetResult, visit_key: int) -> SetResult:
     )
 
 
-def _input_fingerprints(visits: pd.DataFrame, info: LimitSetInfo, criteria_version: str, settings: Settings) -> dict[int, str]:
+def _input_fingerprints(
+    visits: pd.DataFrame, info: LimitSetInfo, criteria_version: str, settings: Settings
+) -> dict[int, str]:
     """What an evaluation depends on: the visit's content, the patient's age/height/sex, the limits set and
     version, the criteria version and the settings."""
     fixed = f"{info.id}:{info.version}:{criteria_version}:{settings}"
@@ -187,12 +241,26 @@ def _input_fingerprints(visits: pd.DataFrame, info: LimitSetInfo, criteria_versi
 CHUNK_VISITS = 1000
 # How often visits whose data changed while they were being evaluated are taken up again in the same run.
 RECHECK_ROUNDS = 2
-_EVALUATION_COLUMNS = ("visit_id", "criteria_id", "criteria_version", "limit_set_id", "limit_set_version",
-                       "input_sha256", "outcome", "result", "computed_at")
+_EVALUATION_COLUMNS = (
+    "visit_id",
+    "criteria_id",
+    "criteria_version",
+    "limit_set_id",
+    "limit_set_version",
+    "input_sha256",
+    "outcome",
+    "result",
+    "computed_at",
+)
 
 
-def _rows(visits: pd.DataFrame, result: SetResult, info: LimitSetInfo, settings: Settings,
-          encode: Callable[[Any], Any]) -> list[dict[str, Any]]:
+def _rows(
+    visits: pd.DataFrame,
+    result: SetResult,
+    info: LimitSetInfo,
+    settings: Settings,
+    encode: Callable[[Any], Any],
+) -> list[dict[str, Any]]:
     """The evaluation rows of ``visits`` for one criteria set, the trace already encoded for its column by
     ``encode`` (:func:`_trace_encoder`), so that the work is done before the write lock is taken. A visit the
     set gave no outcome for has no row."""
@@ -217,14 +285,18 @@ def _rows(visits: pd.DataFrame, result: SetResult, info: LimitSetInfo, settings:
     ]
 
 
-def _write(session: Session, criteria_id: str, info: LimitSetInfo, keys: list[int],
-           rows: list[dict[str, Any]]) -> list[tuple[int, str, str | None, str]]:
+def _write(
+    session: Session, criteria_id: str, info: LimitSetInfo, keys: list[int], rows: list[dict[str, Any]]
+) -> list[tuple[int, str, str | None, str]]:
     """Replace the stored evaluations of ``keys`` by ``rows``; return ``(visit_key, criteria_id, outcome
     before or None, outcome now)`` for the audit trail."""
     before: dict[int, str] = {}
     for part in _chunks(keys):
-        scope = (Evaluation.visit_id.in_(part), Evaluation.criteria_id == criteria_id,
-                 Evaluation.limit_set_id == info.id)
+        scope = (
+            Evaluation.visit_id.in_(part),
+            Evaluation.criteria_id == criteria_id,
+            Evaluation.limit_set_id == info.id,
+        )
         outcomes = session.execute(select(Evaluation.visit_id, Evaluation.outcome).where(*scope))
         before.update((visit_id, outcome) for visit_id, outcome in outcomes)
         session.execute(delete(Evaluation).where(*scope))
@@ -255,8 +327,10 @@ def _insert_rows(session: Session, rows: list[dict[str, Any]]) -> None:
     table = Evaluation.__table__
     marker = "?" if dialect.paramstyle == "qmark" else "%s"
     quote = dialect.identifier_preparer.quote
-    sql = (f"INSERT INTO {quote(table.name)} ({', '.join(quote(c) for c in _EVALUATION_COLUMNS)}) "
-           f"VALUES ({', '.join([marker] * len(_EVALUATION_COLUMNS))})")
+    sql = (
+        f"INSERT INTO {quote(table.name)} ({', '.join(quote(c) for c in _EVALUATION_COLUMNS)}) "
+        f"VALUES ({', '.join([marker] * len(_EVALUATION_COLUMNS))})"
+    )
     stamp = table.c.computed_at.type.bind_processor(dialect) or (lambda value: value)
     values = [tuple(stamp(r[c]) if c == "computed_at" else r[c] for c in _EVALUATION_COLUMNS) for r in rows]
     cursor = connection.connection.driver_connection.cursor()
@@ -266,14 +340,20 @@ def _insert_rows(session: Session, rows: list[dict[str, Any]]) -> None:
         cursor.close()
 
 
-def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult], info: LimitSetInfo,
-          settings: Settings) -> list[tuple[int, str, str | None, str]]:
+def _save(
+    session: Session,
+    visits: pd.DataFrame,
+    results: dict[str, SetResult],
+    info: LimitSetInfo,
+    settings: Settings,
+) -> list[tuple[int, str, str | None, str]]:
     """Replace the stored evaluations of these visits (in the caller's transaction); return the changes for
     the audit trail (see :func:`_write`)."""
     keys = [int(k) for k in visits["visit_key"]]
     encode = _trace_encoder(session)
-    prepared = {criteria_id: _rows(visits, result, info, settings, encode)
-                for criteria_id, result in results.items()}
+    prepared = {
+        criteria_id: _rows(visits, result, info, settings, encode) for criteria_id, result in results.items()
+    }
     take_write_lock(session, serialise="evaluations")
     changes: list[tuple[int, str, str | None, str]] = []
     for criteria_id, rows in prepared.items():
@@ -281,28 +361,57 @@ def _save(session: Session, visits: pd.DataFrame, results: dict[str, SetResult],
     return changes
 
 
-def _audit_saved(session: Session, changes: list[tuple[int, str, str | None, str]], visits: pd.DataFrame,
-                 info: LimitSetInfo, settings: Settings, *, username: str, one_visit: bool,
-                 part: str | None = None) -> None:
+def _audit_saved(
+    session: Session,
+    changes: list[tuple[int, str, str | None, str]],
+    visits: pd.DataFrame,
+    info: LimitSetInfo,
+    settings: Settings,
+    *,
+    username: str,
+    one_visit: bool,
+    part: str | None = None,
+) -> None:
     """One audit event per save: for one visit the outcome of each set before → after; for a cohort (or one
     chunk of it, named by ``part``) the counts, and every visit whose outcome changed (code/date: set
     before → after)."""
     if not changes:
         return
     where = {int(r.visit_key): f"{r.patient}/{r.visit_date.isoformat()}" for r in visits.itertuples()}
-    common = {"limits": f"{info.name} v{info.version}", "settings": str(settings)}
+    common = {"limits": f"{info.name} v{info.version}", "settings": settings_in_words(settings)}
     if one_visit:
         key = changes[0][0]
-        audit.record(session, username=username, action="save_evaluations", entity="evaluations",
-                     entity_key=where.get(key), before={c: old for _, c, old, _ in changes if old is not None} or None,
-                     after={**{c: new for _, c, _, new in changes}, **common})
+        audit.record(
+            session,
+            username=username,
+            action="save_evaluations",
+            entity="evaluations",
+            entity_key=where.get(key),
+            before={c: old for _, c, old, _ in changes if old is not None} or None,
+            after={**{c: new for _, c, _, new in changes}, **common},
+        )
         return
-    changed = [f"{where.get(k, k)}: {c} {old} → {new}" for k, c, old, new in changes if old is not None and old != new]
-    audit.record(session, username=username, action="save_evaluations", entity="evaluations", entity_key=None,
-                 after={"evaluations": len(changes), "visits": len({k for k, *_ in changes}),
-                        "outcomes_changed": len(changed), "changed": changed[:200], **common,
-                        **({"part": part} if part else {})},
-                 detail=None if len(changed) <= 200 else f"{len(changed) - 200} more outcome changes not listed")
+    changed = [
+        f"{where.get(k, k)}: {c} {old} → {new}"
+        for k, c, old, new in changes
+        if old is not None and old != new
+    ]
+    audit.record(
+        session,
+        username=username,
+        action="save_evaluations",
+        entity="evaluations",
+        entity_key=None,
+        after={
+            "evaluations": len(changes),
+            "visits": len({k for k, *_ in changes}),
+            "outcomes_changed": len(changed),
+            "changed": changed[:200],
+            **common,
+            **({"part": part} if part else {}),
+        },
+        detail=None if len(changed) <= 200 else f"{len(changed) - 200} more outcome changes not listed",
+    )
 
 
 def refresh_evaluations(
@@ -348,14 +457,15 @@ def refresh_evaluations(
 
     info, limits, keys = retry_when_busy(start, attempts=attempts)
     counts = {"visits": len(keys), "recomputed": 0, "unchanged": 0, "changed_meanwhile": 0}
-    parts = [keys[i:i + chunk_visits] for i in range(0, len(keys), chunk_visits)]
+    parts = [keys[i : i + chunk_visits] for i in range(0, len(keys), chunk_visits)]
     done = 0
 
     def run(part: list[int], label: str | None) -> list[int]:
         def attempt() -> tuple[int, int, list[int]]:
             try:
-                outcome = _refresh_part(session, part, criteria_ids, info, limits, settings,
-                                        username=username, label=label)
+                outcome = _refresh_part(
+                    session, part, criteria_ids, info, limits, settings, username=username, label=label
+                )
                 if commit_chunks:
                     session.commit()
                     checkpoint("evaluate-chunk-committed")
@@ -370,8 +480,9 @@ def refresh_evaluations(
         except DatabaseBusy:
             if not commit_chunks:
                 raise
-            raise DatabaseBusy(f"{done:,} of {len(keys):,} visits were evaluated and saved; run evaluate "
-                               "again to continue") from None
+            raise DatabaseBusy(
+                f"{done:,} of {len(keys):,} visits were evaluated and saved; run evaluate again to continue"
+            ) from None
         counts["recomputed"] += recomputed
         counts["unchanged"] += unchanged
         return changed
@@ -390,9 +501,17 @@ def refresh_evaluations(
     return counts
 
 
-def _refresh_part(session: Session, part: list[int], criteria_ids: list[str], info: LimitSetInfo,
-                  limits: pd.DataFrame, settings: Settings, *, username: str,
-                  label: str | None) -> tuple[int, int, list[int]]:
+def _refresh_part(
+    session: Session,
+    part: list[int],
+    criteria_ids: list[str],
+    info: LimitSetInfo,
+    limits: pd.DataFrame,
+    settings: Settings,
+    *,
+    username: str,
+    label: str | None,
+) -> tuple[int, int, list[int]]:
     """Evaluate one chunk of visits and save what is stale; return (evaluations saved, evaluations already
     current, visits whose inputs changed between reading and saving: left for another round)."""
     visits, tests, sites = load_frames(session, part)
@@ -402,7 +521,8 @@ def _refresh_part(session: Session, part: list[int], criteria_ids: list[str], in
             ((visit_id, criteria_id), fingerprint)
             for visit_id, criteria_id, fingerprint in session.execute(
                 select(Evaluation.visit_id, Evaluation.criteria_id, Evaluation.input_sha256).where(
-                    Evaluation.limit_set_id == info.id, Evaluation.visit_id.in_(keys))
+                    Evaluation.limit_set_id == info.id, Evaluation.visit_id.in_(keys)
+                )
             )
         )
     results = engine.evaluate(visits, tests, sites, limits, criteria_ids, settings)
@@ -425,8 +545,10 @@ def _refresh_part(session: Session, part: list[int], criteria_ids: list[str], in
     # The inputs again, now that this transaction is the writer: a visit changed since it was read (an import
     # with --replace, an annotation) is not saved with an outdated trace but taken up again.
     stale_ids = sorted({k for _, keys, _, _ in planned.values() for k in keys})
-    now = pd.concat([pd.read_sql(_visit_query(ids), session.connection()) for ids in _chunks(stale_ids)],
-                    ignore_index=True)
+    now = pd.concat(
+        [pd.read_sql(_visit_query(ids), session.connection()) for ids in _chunks(stale_ids)],
+        ignore_index=True,
+    )
     now = _typed_visits(now)
     moved: set[int] = set()
     for version, keys, _, expected in planned.values():
@@ -460,7 +582,17 @@ def to_json(result: SetResult, visit_key: int) -> dict[str, Any]:
     return to_json_many(result, [visit_key])[visit_key]
 
 
-FINDING_TEXT = ("parameter", "item", "unit", "comparator", "status", "source", "source_status", "limit_source", "limit_status")
+FINDING_TEXT = (
+    "parameter",
+    "item",
+    "unit",
+    "comparator",
+    "status",
+    "source",
+    "source_status",
+    "limit_source",
+    "limit_status",
+)
 
 
 def _text_or_none(value: Any) -> str | None:
@@ -481,7 +613,22 @@ def to_json_many(result: SetResult, visit_keys: list[int]) -> dict[int, dict[str
     findings = result.findings[result.findings["visit_key"].isin(wanted)]
     # Nerves sorted as groupby(sort=True) would; findings keep their order within a nerve.
     findings = findings.sort_values(["visit_key", "nerve", "side", "modality"], kind="stable")
-    columns = {c: findings[c].to_numpy(dtype=object) for c in ("visit_key", "nerve", "side", "modality", "segment", "value", "limit", "limit_name", "threshold", "reason", *FINDING_TEXT)}
+    columns = {
+        c: findings[c].to_numpy(dtype=object)
+        for c in (
+            "visit_key",
+            "nerve",
+            "side",
+            "modality",
+            "segment",
+            "value",
+            "limit",
+            "limit_name",
+            "threshold",
+            "reason",
+            *FINDING_TEXT,
+        )
+    }
     nerves: dict[int, list[dict[str, Any]]] = {k: [] for k in wanted}
     current: tuple | None = None
     for i in range(len(findings)):
@@ -512,7 +659,12 @@ def to_json_many(result: SetResult, visit_keys: list[int]) -> dict[int, dict[str
     for outcome in result.outcomes[result.outcomes["visit_key"].isin(wanted)].to_dict("records"):
         key = int(outcome["visit_key"])
         rule = outcome.get("rule")
-        payload = {"criteria": result.criteria, "criteria_version": result.version, "outcome": outcome["outcome"], "rule": rule if isinstance(rule, str) else None}
+        payload = {
+            "criteria": result.criteria,
+            "criteria_version": result.version,
+            "outcome": outcome["outcome"],
+            "rule": rule if isinstance(rule, str) else None,
+        }
         for extra in result.extra_keys:
             payload[extra] = _json_safe(outcome[extra])
         if "undecided_items" in outcome:  # the CIDP and MMN sets (DESIGN.md §5)

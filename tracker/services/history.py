@@ -12,8 +12,15 @@ from sqlalchemy.orm import Session
 from tracker.db.models import NerveTest, StimulationSite, Visit, VisitRevision, utc_now
 from tracker.domain import catalogue
 from tracker.errors import Problem
-from tracker.services import audit
-from tracker.services.measurement_file import NERVE_LEVEL, SITE_VALUES, VISIT_KEY, VISIT_LEVEL, MeasurementBatch, fingerprints_of
+from tracker.services.access import audit
+from tracker.services.measurement_file import (
+    NERVE_LEVEL,
+    SITE_VALUES,
+    VISIT_KEY,
+    VISIT_LEVEL,
+    MeasurementBatch,
+    fingerprints_of,
+)
 from tracker.services.rows import chunks as _chunks
 from tracker.services.rows import clean as _clean
 from tracker.services.tables import ROW

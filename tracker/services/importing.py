@@ -35,12 +35,8 @@ from tracker.db.models import (
     utc_now,
 )
 from tracker.errors import InputRejected, Problem
-from tracker.services import audit
+from tracker.services.access import audit
 from tracker.services.clinical_file import SCORE_KEY, TREATMENT_KEY, validate_scores, validate_treatments
-from tracker.services.measurement_file import (
-    MeasurementBatch,
-    validate_measurements,
-)
 from tracker.services.history import (
     describe_changes,
     keep_history,
@@ -48,8 +44,13 @@ from tracker.services.history import (
     shown_value,
     stored_fingerprints,
 )
-from tracker.services.measurement_file import VISIT_KEY
-from tracker.services.rows import chunks as _chunks, clean as _clean
+from tracker.services.measurement_file import (
+    VISIT_KEY,
+    MeasurementBatch,
+    validate_measurements,
+)
+from tracker.services.rows import chunks as _chunks
+from tracker.services.rows import clean as _clean
 from tracker.services.tables import ROW, InputTable, read_table
 
 # Optional measurements column: the version of the stored visit that the file's values were made from

@@ -20,7 +20,8 @@ from tracker.domain import catalogue
 from tracker.domain.plausibility import Range, ranges
 from tracker.domain.vocabulary import LIMIT_BOUNDS, LIMIT_PARAMETERS, MODALITIES, SEXES
 from tracker.errors import InputRejected, NotFound, Problem
-from tracker.services import audit, checks
+from tracker.services import checks
+from tracker.services.access import audit
 from tracker.services.checks import Collector
 from tracker.services.input_limits import excerpt, from_environment, guarded
 from tracker.services.tables import ROW, InputTable, read_table

@@ -9,7 +9,7 @@ from tracker.criteria import engine
 from tracker.criteria.model import Settings
 from tracker.db.models import AppSetting
 from tracker.errors import TrackerError
-from tracker.services.audit import record
+from tracker.services.access.audit import record
 
 DEFAULT_CRITERIA_KEY = "default_criteria"
 COLD_LIMBS_KEY = "cold_limbs"

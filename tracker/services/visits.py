@@ -15,7 +15,7 @@ from sqlalchemy.orm import Session
 from tracker.db.models import NerveTest, Visit, utc_now
 from tracker.domain.vocabulary import PHENOTYPES, SIDES
 from tracker.errors import NotFound, TrackerError
-from tracker.services import audit
+from tracker.services.access import audit
 from tracker.services.history import keep_history, stored_fingerprints
 from tracker.services.records import find_patient
 

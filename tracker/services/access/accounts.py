@@ -28,7 +28,9 @@ from tracker.services.access.permissions import ALL_ROLES, Actor, NotPermitted
 
 # OWASP Password Storage Cheat Sheet (2023): "Use Argon2id with a minimum configuration of 19 MiB of memory,
 # an iteration count of 2, and 1 degree of parallelism." Salt 16 bytes, tag 32 bytes.
-HASHER = PasswordHasher(time_cost=2, memory_cost=19 * 1024, parallelism=1, hash_len=32, salt_len=16, type=Type.ID)
+HASHER = PasswordHasher(
+    time_cost=2, memory_cost=19 * 1024, parallelism=1, hash_len=32, salt_len=16, type=Type.ID
+)
 # NIST SP 800-63B §5.1.1.2 asks at least 8 characters and accepting at least 64; we ask 12 (common practice
 # for staff accounts holding patient data, no single source) and cap at 128 so one sign-in costs what it should.
 PASSWORD_MIN, PASSWORD_MAX = 12, 128
@@ -55,8 +57,14 @@ class UserInfo:
 
 
 def _info(user: User) -> UserInfo:
-    return UserInfo(user.username, user.display_name, user.role, user.active, user.password_hash is not None,
-                    user.locked_until)
+    return UserInfo(
+        user.username,
+        user.display_name,
+        user.role,
+        user.active,
+        user.password_hash is not None,
+        user.locked_until,
+    )
 
 
 def hash_password(password: str) -> str:
@@ -124,8 +132,9 @@ def system_actor(session: Session) -> Actor:
 # --- sign-in ---------------------------------------------------------------------------------------------
 
 
-def authenticate(session: Session, username: str, password: str, *, via: str = "sign-in",
-                 now: dt.datetime | None = None) -> Actor:
+def authenticate(
+    session: Session, username: str, password: str, *, via: str = "sign-in", now: dt.datetime | None = None
+) -> Actor:
     """Check ``password`` for ``username`` in the caller's transaction (commit it either way: failures count).
 
     Locked, inactive, unknown and password-less accounts, and wrong passwords, all raise
@@ -135,17 +144,30 @@ def authenticate(session: Session, username: str, password: str, *, via: str = "
     user = _find(session, username) if 0 < len(username) <= USERNAME_MAX else None
     if user is None or user.password_hash is None:
         _verify(_dummy_hash(), password)  # a wrong name costs as long as a wrong password
-        record(session, username="(unknown)" if user is None else username, action="sign_in_refused",
-               entity="user", entity_key=None if user is None else username,
-               detail="no such account" if user is None else "the account has no password")
+        record(
+            session,
+            username="(unknown)" if user is None else username,
+            action="sign_in_refused",
+            entity="user",
+            entity_key=None if user is None else username,
+            detail="no such account" if user is None else "the account has no password",
+        )
         raise SignInRefused("Sign-in refused: the user name or the password is not right.")
     locked_until = _aware(user.locked_until)
     if locked_until is not None and locked_until > now:
         minutes = max(1, int((locked_until - now).total_seconds() // 60) + 1)
-        record(session, username=username, action="sign_in_refused", entity="user", entity_key=username,
-               detail="account locked")
-        raise SignInRefused(f"Sign-in refused: too many failed attempts; try again in {minutes} minutes, or ask "
-                            "an administrator.")
+        record(
+            session,
+            username=username,
+            action="sign_in_refused",
+            entity="user",
+            entity_key=username,
+            detail="account locked",
+        )
+        raise SignInRefused(
+            f"Sign-in refused: too many failed attempts; try again in {minutes} minutes, or ask "
+            "an administrator."
+        )
     if not _verify(user.password_hash, password) or not user.active:
         if user.active:
             user.failed_sign_ins += 1
@@ -153,9 +175,15 @@ def authenticate(session: Session, username: str, password: str, *, via: str = "
                 user.locked_until = now + dt.timedelta(minutes=LOCK_MINUTES)
                 user.failed_sign_ins = 0
         session.flush()
-        record(session, username=username, action="sign_in_refused", entity="user", entity_key=username,
-               detail="inactive account" if not user.active else "wrong password",
-               after={"locked": user.locked_until is not None and _aware(user.locked_until) > now})
+        record(
+            session,
+            username=username,
+            action="sign_in_refused",
+            entity="user",
+            entity_key=username,
+            detail="inactive account" if not user.active else "wrong password",
+            after={"locked": user.locked_until is not None and _aware(user.locked_until) > now},
+        )
         raise SignInRefused("Sign-in refused: the user name or the password is not right.")
     # A command-line password check writes nothing when there is nothing to reset (the action it allows is
     # audited under the same name); a dashboard sign-in starts a session and is audited.
@@ -197,28 +225,53 @@ def list_users(session: Session) -> list[UserInfo]:
     return [_info(u) for u in session.scalars(select(User).order_by(User.username))]
 
 
-def init_first_admin(session: Session, username: str, password: str, *, identity: str,
-                     display_name: str | None = None) -> UserInfo:
+def init_first_admin(
+    session: Session, username: str, password: str, *, identity: str, display_name: str | None = None
+) -> UserInfo:
     """Create the first administrator; only on an empty users table, and only for the acting login itself
     (so that the new admin can act here)."""
     if accounts_exist(session):
-        raise NotPermitted("The users table is not empty: accounts are added by an administrator "
-                           "(ncs-tracker users add NAME --role ROLE).")
+        raise NotPermitted(
+            "The users table is not empty: accounts are added by an administrator "
+            "(ncs-tracker users add NAME --role ROLE)."
+        )
     username = _valid_name(username)
     if username != identity:
-        raise NotPermitted(f"Commands on this database act as the login {identity!r}; the first administrator "
-                           f"must be that login so that it can manage accounts here (ncs-tracker users init {identity}).")
-    user = User(username=username, role="admin", display_name=display_name, active=True,
-                password_hash=hash_password(password), password_changed_at=utc_now(), failed_sign_ins=0)
+        raise NotPermitted(
+            f"Commands on this database act as the login {identity!r}; the first administrator "
+            f"must be that login so that it can manage accounts here (ncs-tracker users init {identity})."
+        )
+    user = User(
+        username=username,
+        role="admin",
+        display_name=display_name,
+        active=True,
+        password_hash=hash_password(password),
+        password_changed_at=utc_now(),
+        failed_sign_ins=0,
+    )
     session.add(user)
     session.flush()
-    record(session, username=username, action="init_first_admin", entity="user", entity_key=username,
-           after={"role": "admin", "active": True})
+    record(
+        session,
+        username=username,
+        action="init_first_admin",
+        entity="user",
+        entity_key=username,
+        after={"role": "admin", "active": True},
+    )
     return _info(user)
 
 
-def set_user(session: Session, username: str, *, role: str, acting: Actor, display_name: str | None = None,
-             password: str | None = None) -> tuple[UserInfo, str]:
+def set_user(
+    session: Session,
+    username: str,
+    *,
+    role: str,
+    acting: Actor,
+    display_name: str | None = None,
+    password: str | None = None,
+) -> tuple[UserInfo, str]:
     """Add ``username`` with ``role``, or change an existing user's role (reactivating it). Only an
     authenticated admin, and never on their own account. Returns the user and ``"added"``, ``"changed"``
     or ``"unchanged"``."""
@@ -230,13 +283,25 @@ def set_user(session: Session, username: str, *, role: str, acting: Actor, displ
         raise NotPermitted("Nobody changes their own role or account state; ask another administrator.")
     user = _find(session, username)
     if user is None:
-        user = User(username=username, role=role, display_name=display_name, active=True, failed_sign_ins=0,
-                    password_hash=None if password is None else hash_password(password),
-                    password_changed_at=None if password is None else utc_now())
+        user = User(
+            username=username,
+            role=role,
+            display_name=display_name,
+            active=True,
+            failed_sign_ins=0,
+            password_hash=None if password is None else hash_password(password),
+            password_changed_at=None if password is None else utc_now(),
+        )
         session.add(user)
         session.flush()
-        record(session, username=acting.name, action="add", entity="user", entity_key=username,
-               after={"role": role, "active": True, "password_set": password is not None})
+        record(
+            session,
+            username=acting.name,
+            action="add",
+            entity="user",
+            entity_key=username,
+            after={"role": role, "active": True, "password_set": password is not None},
+        )
         return _info(user), "added"
     before = {"role": user.role, "active": user.active}
     if before["role"] == "admin" and role != "admin":
@@ -251,8 +316,15 @@ def set_user(session: Session, username: str, *, role: str, acting: Actor, displ
     if before == after:
         return _info(user), "unchanged"
     session.flush()
-    record(session, username=acting.name, action="change", entity="user", entity_key=username, before=before,
-           after=after)
+    record(
+        session,
+        username=acting.name,
+        action="change",
+        entity="user",
+        entity_key=username,
+        before=before,
+        after=after,
+    )
     return _info(user), "changed"
 
 
@@ -269,8 +341,15 @@ def deactivate_user(session: Session, username: str, *, acting: Actor) -> UserIn
             _keep_one_admin(session, username)
         user.active = False
         session.flush()
-        record(session, username=acting.name, action="deactivate", entity="user", entity_key=username,
-               before={"active": True}, after={"active": False})
+        record(
+            session,
+            username=acting.name,
+            action="deactivate",
+            entity="user",
+            entity_key=username,
+            before={"active": True},
+            after={"active": False},
+        )
     return _info(user)
 
 
@@ -287,8 +366,14 @@ def set_password(session: Session, username: str, new_password: str, *, acting: 
     user.password_hash, user.password_changed_at = hash_password(new_password), utc_now()
     user.failed_sign_ins, user.locked_until = 0, None
     session.flush()
-    record(session, username=acting.name, action="set_password", entity="user", entity_key=username,
-           detail="own password" if username == acting.name else "reset by an administrator")
+    record(
+        session,
+        username=acting.name,
+        action="set_password",
+        entity="user",
+        entity_key=username,
+        detail="own password" if username == acting.name else "reset by an administrator",
+    )
 
 
 def _require_admin(acting: Actor) -> None:
@@ -298,8 +383,11 @@ def _require_admin(acting: Actor) -> None:
 
 
 def _keep_one_admin(session: Session, leaving: str) -> None:
-    others = session.scalar(select(func.count()).select_from(User).where(
-        User.role == "admin", User.active.is_(True), User.username != leaving))
+    others = session.scalar(
+        select(func.count())
+        .select_from(User)
+        .where(User.role == "admin", User.active.is_(True), User.username != leaving)
+    )
     if not others:
         raise NotPermitted("This is the last active administrator; make another one first.")
 

@@ -65,10 +65,19 @@ def record(
 ) -> None:
     """Add one audit event to the caller's transaction (it commits or rolls back with the write) and seal it
     into the chain."""
-    seal(session.connection(), {
-        "occurred_at": utc_now(), "username": username, "action": action, "entity": entity,
-        "entity_key": entity_key, "before": before, "after": after, "detail": detail,
-    })
+    seal(
+        session.connection(),
+        {
+            "occurred_at": utc_now(),
+            "username": username,
+            "action": action,
+            "entity": entity,
+            "entity_key": entity_key,
+            "before": before,
+            "after": after,
+            "detail": detail,
+        },
+    )
 
 
 def seal(connection: Connection, values: dict[str, Any]) -> None:
@@ -120,8 +129,12 @@ def verify(connection: Connection, *, chunk: int = 5000) -> ChainReport:
             if row["row_hash"] is None:
                 return ChainReport(checked, row["id"], "the row was never sealed into the chain")
             if row["prev_hash"] != expected_prev:
-                return ChainReport(checked, row["id"], "the link to the previous row does not match "
-                                   "(a row before it was removed, inserted or changed)")
+                return ChainReport(
+                    checked,
+                    row["id"],
+                    "the link to the previous row does not match "
+                    "(a row before it was removed, inserted or changed)",
+                )
             if row_digest(row["prev_hash"], dict(row)) != row["row_hash"]:
                 return ChainReport(checked, row["id"], "the row's content was changed after it was written")
             expected_prev, checked, last_id = row["row_hash"], checked + 1, row["id"]
@@ -140,8 +153,8 @@ def events(
     query = select(AuditEvent).order_by(AuditEvent.id.desc())
     if entity_key_prefix:
         query = query.where(
-            (AuditEvent.entity_key == entity_key_prefix) | AuditEvent.entity_key.startswith(entity_key_prefix + "/",
-                                                                                           autoescape=True)
+            (AuditEvent.entity_key == entity_key_prefix)
+            | AuditEvent.entity_key.startswith(entity_key_prefix + "/", autoescape=True)
         )
     if since is not None:
         query = query.where(AuditEvent.occurred_at >= dt.datetime.combine(since, dt.time(), tzinfo=dt.UTC))
@@ -182,6 +195,13 @@ def event_lines(
         change = audit_change_words(event.before, event.after)
         if event.detail:
             change = f"{change} ({event.detail})" if change else event.detail
-        lines.append(EventLine(event.id, (_instant(event.occurred_at) or "")[:19].replace("T", " "),
-                               event.username, what, change))
+        lines.append(
+            EventLine(
+                event.id,
+                (_instant(event.occurred_at) or "")[:19].replace("T", " "),
+                event.username,
+                what,
+                change,
+            )
+        )
     return lines

@@ -36,7 +36,9 @@ PERMISSIONS: dict[str, tuple[str, ...]] = {
 NEED_ACCOUNT = frozenset({"export_identified", "manage_users", "change_own_password"})
 # Privileged actions: on the command line the acting login must prove itself with its password, and a
 # ``--user`` naming someone else is refused.
-PRIVILEGED = frozenset({"export_identified", "manage_users", "change_own_password", "limits", "settings", "backup", "restore"})
+PRIVILEGED = frozenset(
+    {"export_identified", "manage_users", "change_own_password", "limits", "settings", "backup", "restore"}
+)
 # Read by anyone who can open the database when they have no account (or an inactive one).
 WITHOUT_ACCOUNT = frozenset({"read", "see_patient_codes"})
 
@@ -99,4 +101,6 @@ class Actor:
                 "'ncs-tracker users init' (it ends single-user mode)."
             )
         held = f"role {self.role}" if self.role else "no active account in this database"
-        raise NotPermitted(f"{self.name} may not {words}: it needs the role {roles}, and {self.name} has {held}.")
+        raise NotPermitted(
+            f"{self.name} may not {words}: it needs the role {roles}, and {self.name} has {held}."
+        )

@@ -29,9 +29,9 @@ from sqlalchemy.orm import Session
 
 from tracker import CAUTION, __version__
 from tracker.errors import TrackerError
-from tracker.services import audit
-from tracker.services.export import deidentify
-from tracker.services.export import reference
+from tracker.services.access import audit
+from tracker.services.access.permissions import Actor
+from tracker.services.export import deidentify, reference
 from tracker.services.export.columns import SCORE_WINDOW_DAYS, dictionary_frame, empty_frame
 from tracker.services.export.files import (
     ExcelTable,
@@ -45,8 +45,15 @@ from tracker.services.export.response import manifest_entry as response_manifest
 from tracker.services.export.tables import ExportOptions, ExportPlan, prepare
 
 REMOVED_FIELDS = [
-    "patient code", "hospital record number", "name", "birth date", "birth year", "real visit dates", "examiner",
-    "laboratory", "treatment notes and every other free-text note",
+    "patient code",
+    "hospital record number",
+    "name",
+    "birth date",
+    "birth year",
+    "real visit dates",
+    "examiner",
+    "laboratory",
+    "treatment notes and every other free-text note",
 ]
 
 
@@ -72,9 +79,12 @@ class ExportResult:
     summary: str = ""
 
 
-def export_frame(session: Session, options: ExportOptions, *, username: str) -> pd.DataFrame:
-    """The whole export table as one DataFrame (columns and order as in the files; not neutralised for spreadsheets)."""
-    plan = prepare(session, options, username=username)
+def export_frame(
+    session: Session, options: ExportOptions, *, username: str, actor: Actor | None = None
+) -> pd.DataFrame:
+    """The whole export table as one DataFrame (columns and order as in the files; not neutralised for spreadsheets).
+    An identified frame needs ``actor`` (authenticated, allowed ``export_identified``)."""
+    plan = prepare(session, options, username=username, actor=actor)
     chunks = list(plan.frames(session))
     if not chunks:
         return empty_frame(plan.columns)
@@ -88,20 +98,21 @@ def write_export(
     file_format: str,
     out: Path | str | None,
     username: str,
+    actor: Actor | None = None,
     overwrite: bool = False,
     progress: Callable[[int, int], None] | None = None,
 ) -> ExportResult:
     """Write the export table, its dictionary and its manifest; audit the export; return what was written.
 
     Files are written under temporary names and renamed only when everything succeeded; on any error the
-    partial files are removed. An identified export refused by :func:`deidentify.require_identified_permission`
-    writes nothing at all.
+    partial files are removed. An identified export needs ``actor`` (authenticated, allowed
+    ``export_identified``); refused by :func:`deidentify.require_identified_permission`, it writes nothing at all.
     """
     paths = output_paths(out, options.level, file_format)
     existing = [p for p in paths.values() if os.path.lexists(p)]  # a link of that name, dangling or not, too
     if existing and not overwrite:
         raise TrackerError(f"{existing[0]} already exists; choose another --out or add --overwrite.")
-    plan = prepare(session, options, username=username)
+    plan = prepare(session, options, username=username, actor=actor)
     for path in paths.values():
         path.parent.mkdir(parents=True, exist_ok=True)
     partial: dict[str, Path] = {}
@@ -142,7 +153,15 @@ def write_export(
             path.unlink(missing_ok=True)
         raise
     files = [WrittenFile(f.role, paths[f.role], f.sha256, f.size, f.rows) for f in written]
-    files.append(WrittenFile("manifest", paths["manifest"], sha256_of(paths["manifest"]), paths["manifest"].stat().st_size, None))
+    files.append(
+        WrittenFile(
+            "manifest",
+            paths["manifest"],
+            sha256_of(paths["manifest"]),
+            paths["manifest"].stat().st_size,
+            None,
+        )
+    )
     return ExportResult(files, plan.visit_count, table.rows, manifest, summary)
 
 
@@ -226,8 +245,10 @@ def _filters(plan: ExportPlan) -> dict[str, Any]:
     patients: dict[str, Any] | None = None
     if plan.patients_filter:
         # Patient codes are not written into a de-identified export, not even here: the export ids stand in.
-        patients = {"count": len(plan.patients_filter),
-                    "export_ids": sorted(deidentify.export_id(plan.secret, c) for c in plan.patients_filter)}
+        patients = {
+            "count": len(plan.patients_filter),
+            "export_ids": sorted(deidentify.export_id(plan.secret, c) for c in plan.patients_filter),
+        }
         if options.identified:
             patients["codes"] = plan.patients_filter
     return {
@@ -253,10 +274,16 @@ def build_manifest(
         "level": options.level,
         "format": file_format,
         "identified": options.identified,
-        "de_identification": None if options.identified else {
+        "de_identification": None
+        if options.identified
+        else {
             "export_id": "HMAC-SHA256 of the patient code keyed by this database's secret export key, first 16 hex digits",
-            "dates": ("visit_date_shifted: real date moved by a secret per-patient offset of 1 to 365 days (earlier or later), "
-                      "plus days_since_first_visit" if options.dates == "shifted" else "days_since_first_visit only"),
+            "dates": (
+                "visit_date_shifted: real date moved by a secret per-patient offset of 1 to 365 days (earlier or later), "
+                "plus days_since_first_visit"
+                if options.dates == "shifted"
+                else "days_since_first_visit only"
+            ),
             "ages": (
                 "age_at_visit top-coded: ages over 89 given as 90 with age_top_coded true (HIPAA Safe "
                 "Harbor, 45 CFR 164.514(b)(2)(i)(C))"
@@ -264,8 +291,13 @@ def build_manifest(
             "removed": REMOVED_FIELDS,
         },
         "criteria": [
-            {"id": s.criteria, "version": s.version, "column_prefix": s.alias if s in plan.sets else None,
-             "used_for": (["columns"] if s in plan.sets else []) + (["outcome filter"] if s.criteria in filtering else [])}
+            {
+                "id": s.criteria,
+                "version": s.version,
+                "column_prefix": s.alias if s in plan.sets else None,
+                "used_for": (["columns"] if s in plan.sets else [])
+                + (["outcome filter"] if s.criteria in filtering else []),
+            }
             for s in plan.evaluated_sets
         ],
         "criteria_settings": dataclasses.asdict(plan.settings),
@@ -280,14 +312,20 @@ def build_manifest(
         "patients_exported": len(plan.counts.patients_kept),
         "summary": summary,
         "chunk_visits": options.chunk_visits,
-        "files": [{"role": f.role, "name": f.path.name, "sha256": f.sha256, "bytes": f.size, "rows": f.rows} for f in written],
+        "files": [
+            {"role": f.role, "name": f.path.name, "sha256": f.sha256, "bytes": f.size, "rows": f.rows}
+            for f in written
+        ],
         "identity_promise": (
             "The same database, options and library versions give byte-identical data and dictionary files, and this "
             "manifest (it holds no timestamp). The manifest's own hash is not listed in it."
         ),
         "library_versions": {
-            "python": platform.python_version(), "pandas": pd.__version__, "pyarrow": pyarrow.__version__,
-            "openpyxl": openpyxl.__version__, "sqlalchemy": sqlalchemy.__version__,
+            "python": platform.python_version(),
+            "pandas": pd.__version__,
+            "pyarrow": pyarrow.__version__,
+            "openpyxl": openpyxl.__version__,
+            "sqlalchemy": sqlalchemy.__version__,
         },
     }
 
@@ -303,7 +341,9 @@ def _settings_origin(options: ExportOptions) -> str:
     return f"options of this export: {given}; the others: {database}, else the defaults"
 
 
-def _audit(session: Session, plan: ExportPlan, file_format: str, written: list[WrittenFile], username: str) -> None:
+def _audit(
+    session: Session, plan: ExportPlan, file_format: str, written: list[WrittenFile], username: str
+) -> None:
     options = plan.options
     audit.record(
         session,

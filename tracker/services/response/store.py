@@ -10,7 +10,7 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from tracker.db.models import ResponseAssessment
-from tracker.services import audit
+from tracker.services.access import audit
 from tracker.services.records import find_patient
 from tracker.services.response.patient import PatientResponse
 
