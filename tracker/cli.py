@@ -775,7 +775,12 @@ def _serve(url: str, *, host: str, port: int, sign_in: bool = False) -> None:
     help="One row per visit, per nerve test, per segment, or per measured or derived quantity.",
 )
 @click.option(
-    "--format", "file_format", type=click.Choice(["csv", "parquet", "xlsx"]), default="csv", show_default=True
+    "--format",
+    "file_format",
+    type=click.Choice(["csv", "parquet", "xlsx", "fhir"]),
+    default="csv",
+    show_default=True,
+    help="Tables (csv, parquet, xlsx) or FHIR R4 NDJSON resources in the --out folder (fhir; --level ignored).",
 )
 @click.option(
     "--out",
@@ -933,7 +938,8 @@ def export_command(
             progress=progress,
         )
     kind = "IDENTIFIED export (recorded in the audit trail)" if identified else "de-identified export"
-    click.echo(f"{kind}: {result.visits} visits, {result.rows} rows at level {level}")
+    shape = "Observations (FHIR R4)" if file_format == "fhir" else f"rows at level {level}"
+    click.echo(f"{kind}: {result.visits} visits, {result.rows} {shape}")
     for written in result.files:
         rows = f", {written.rows} rows" if written.rows is not None else ""
         click.echo(

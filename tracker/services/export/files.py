@@ -35,7 +35,7 @@ import pyarrow.parquet as pq
 from tracker.errors import TrackerError
 from tracker.services.export.columns import Column, arrow_schema
 
-FORMATS = ("csv", "parquet", "xlsx")
+FORMATS = ("csv", "parquet", "xlsx", "fhir")  # fhir: NDJSON resources, written by export/fhir.py
 FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
 _FORMULA_PATTERN = r"[=+\-@\t\r]"
 # Zip entries and document dates of Excel files: the earliest time a zip archive can hold.

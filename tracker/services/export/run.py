@@ -107,7 +107,14 @@ def write_export(
     Files are written under temporary names and renamed only when everything succeeded; on any error the
     partial files are removed. An identified export needs ``actor`` (authenticated, allowed
     ``export_identified``); refused by :func:`deidentify.require_identified_permission`, it writes nothing at all.
+    ``file_format`` "fhir" writes FHIR R4 NDJSON resources instead (:mod:`tracker.services.export.fhir`).
     """
+    if file_format == "fhir":
+        from tracker.services.export.fhir import write_fhir
+
+        return write_fhir(
+            session, options, out=out, username=username, actor=actor, overwrite=overwrite, progress=progress
+        )
     paths = output_paths(out, options.level, file_format)
     existing = [p for p in paths.values() if os.path.lexists(p)]  # a link of that name, dangling or not, too
     if existing and not overwrite:
