@@ -72,6 +72,17 @@ TREATMENT_COLUMNS = [
     "note",
 ]
 SCORE_COLUMNS = ["patient", "date", "scale", "value"]
+PATIENT_COLUMNS = ["patient", "onset_date"]
+# Invented symptom-onset dates (no names, record numbers or birth dates: the demo clinic has no identities).
+# DEMO-05 is studied on days 7, 30 and 90 from onset; the others began months before their first study.
+ONSETS = (
+    ("DEMO-01", "2022-09-10"),
+    ("DEMO-02", "2023-01-20"),
+    ("DEMO-03", "2021-11-15"),
+    ("DEMO-04", "2022-05-01"),
+    ("DEMO-05", "2025-08-25"),
+    ("DEMO-06", "2023-06-01"),
+)
 
 # --------------------------------------------------------------------------------------------
 # Nerve templates (healthy adult of 170 cm). Limits: lln_* lower limit, uln_* upper limit.
@@ -730,9 +741,10 @@ def main() -> None:
     write_csv("measurements.csv", MEASUREMENT_COLUMNS, measurements)
     write_csv("treatments.csv", TREATMENT_COLUMNS, treatments)
     write_csv("scores.csv", SCORE_COLUMNS, scores)
+    write_csv("patients.csv", PATIENT_COLUMNS, [dict(zip(PATIENT_COLUMNS, p)) for p in ONSETS])
     print(
         f"invented demo data written to {HERE}: {len(measurements)} measurement rows, "
-        f"{len(treatments)} treatment rows, {len(scores)} score rows"
+        f"{len(treatments)} treatment rows, {len(scores)} score rows, {len(ONSETS)} patient rows"
     )
 
 

@@ -29,7 +29,7 @@ KnownPatients = Callable[[list[str]], Iterable[str]]
 """Given patient codes, the ones that are stored (a database look-up supplied by the importer)."""
 
 
-def _unknown_patients(collect: Collector, patient: pd.Series, known_patients: KnownPatients | None) -> None:
+def unknown_patients(collect: Collector, patient: pd.Series, known_patients: KnownPatients | None) -> None:
     """Every row whose (well-formed) patient code is not stored, listed with the other problems of the file."""
     if known_patients is None:
         return
@@ -47,7 +47,7 @@ def _unknown_patients(collect: Collector, patient: pd.Series, known_patients: Kn
         )
 
 
-def _duplicates(collect: Collector, frame: pd.DataFrame, key: list[str], what: str) -> None:
+def duplicates(collect: Collector, frame: pd.DataFrame, key: list[str], what: str) -> None:
     dup = frame[frame.duplicated(key, keep=False)]
     for _, rows in dup.groupby(key, sort=False)[ROW]:
         listed = ", ".join(str(r) for r in rows)
@@ -69,7 +69,7 @@ def validate_treatments(
             collect.add_one(None, None, None, "the file has a header but no data rows")
         raise InputRejected("The treatments file was refused", guarded(collect.sorted_problems()))
     patient = checks.patient_codes(collect)
-    _unknown_patients(collect, patient, known_patients)
+    unknown_patients(collect, patient, known_patients)
     therapy = checks.vocabulary(collect, "therapy", {t: t for t in THERAPIES}, required=True)
     start = checks.iso_dates(collect, "start_date", required=True, not_after=today)
     end = checks.iso_dates(collect, "end_date", required=False, not_after=None)
@@ -98,7 +98,7 @@ def validate_treatments(
         }
     )
     ok = frame[TREATMENT_KEY].notna().all(axis=1)
-    _duplicates(collect, frame[ok], TREATMENT_KEY, "patient, therapy and start date")
+    duplicates(collect, frame[ok], TREATMENT_KEY, "patient, therapy and start date")
     if collect.problems:
         raise InputRejected("The treatments file was refused", guarded(collect.sorted_problems()))
     return frame
@@ -118,7 +118,7 @@ def validate_scores(
         raise InputRejected("The scores file was refused", guarded(collect.sorted_problems()))
     known = scales()
     patient = checks.patient_codes(collect)
-    _unknown_patients(collect, patient, known_patients)
+    unknown_patients(collect, patient, known_patients)
     date = checks.iso_dates(collect, "date", required=True, not_after=today)
     scale = checks.vocabulary(collect, "scale", {s: s for s in known}, required=True)
     value, _ = checks.number(collect, "value", required=True)
@@ -139,7 +139,7 @@ def validate_scores(
         }
     )
     ok = frame[SCORE_KEY].notna().all(axis=1)
-    _duplicates(collect, frame[ok], SCORE_KEY, "patient, date and scale")
+    duplicates(collect, frame[ok], SCORE_KEY, "patient, date and scale")
     if collect.problems:
         raise InputRejected("The scores file was refused", guarded(collect.sorted_problems()))
     return frame

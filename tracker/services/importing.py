@@ -1,4 +1,5 @@
-"""Import a measurements, treatments or scores file: validate everything, then write in one transaction.
+"""Import a measurements, treatments, scores or patients file: validate everything, then write in one
+transaction.
 
 The caller owns the transaction: on any :class:`~tracker.errors.InputRejected` nothing has been written.
 Re-importing identical content changes no clinical data; changed content of a stored visit (or treatment,
@@ -29,6 +30,7 @@ from tracker.db.models import (
     NerveTest,
     OutcomeScore,
     Patient,
+    PatientIdentity,
     StimulationSite,
     Treatment,
     Visit,
@@ -44,11 +46,13 @@ from tracker.services.history import (
     shown_value,
     stored_fingerprints,
 )
+from tracker.services.input_limits import guarded
 from tracker.services.measurement_file import (
     VISIT_KEY,
     MeasurementBatch,
     validate_measurements,
 )
+from tracker.services.patient_file import IDENTITY_VALUES, RECORD_VALUES, validate_patients
 from tracker.services.rows import chunks as _chunks
 from tracker.services.rows import clean as _clean
 from tracker.services.tables import ROW, InputTable, read_table
@@ -71,10 +75,13 @@ class ImportReport:
     replaced: int = 0
     unchanged: int = 0
     patients_added: int = 0
+    identities: int = 0  # patients file: patients whose identity fields were added or replaced
     unusual: list[Problem] = field(default_factory=list)
     warnings: list[Problem] = field(default_factory=list)  # imported all the same; worth a look
 
     def summary(self) -> str:
+        if self.kind == "patients":
+            return self._patients_summary()
         noun = {"measurements": "visits", "treatments": "treatment periods", "scores": "scores"}[self.kind]
         verb = "would add" if self.dry_run else "added"
         text = (
@@ -85,6 +92,16 @@ class ImportReport:
             text += f"; {self.patients_added} new patients"
         if self.unusual:
             text += f"; {len(self.unusual)} unusual values accepted with --allow-unusual"
+        return text + (" (dry run: nothing written)" if self.dry_run else "")
+
+    def _patients_summary(self) -> str:
+        """Counts only: a patients file may carry names, and a summary never repeats one."""
+        would = "would be " if self.dry_run else ""
+        text = (
+            f"patients: {self.rows} rows checked; {self.added} patients {would}given new details, "
+            f"{self.replaced} {would}replaced, {self.unchanged} unchanged; identity fields of "
+            f"{self.identities} patients {would}stored apart from the pseudonymous record"
+        )
         return text + (" (dry run: nothing written)" if self.dry_run else "")
 
 
@@ -207,6 +224,10 @@ def _import_table(session: Session, table: InputTable, *, username: str, dry_run
                                 sorted(version_problems + disagreements, key=lambda p: p.row or 0))
         report = _store_measurements(session, batch, username=username, dry_run=dry_run, replace=replace,
                                      force=force, file_versions=file_versions, forced=forced)
+    elif table.kind == "patients":
+        frame = validate_patients(table.cells, today=today,
+                                  known_patients=lambda codes: _stored_codes(session, codes))
+        report = _store_patients(session, frame, username=username, dry_run=dry_run, replace=replace)
     elif table.kind == "treatments":
         frame = validate_treatments(table.cells, today=today, known_patients=lambda codes: _stored_codes(session, codes))
         report = _store_records(session, frame, kind="treatments", username=username, dry_run=dry_run, replace=replace)
@@ -228,6 +249,7 @@ def _import_table(session: Session, table: InputTable, *, username: str, dry_run
                 "replaced": report.replaced,
                 "unchanged": report.unchanged,
                 "patients_added": report.patients_added,
+                **({"identities": report.identities} if table.kind == "patients" else {}),
                 "replace": replace,
                 "allow_unusual": allow_unusual,
                 "unusual_values_accepted": [str(p) for p in report.unusual],
@@ -765,3 +787,120 @@ def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username
 def _jsonable(value: Any) -> Any:
     value = _clean(value)
     return value.isoformat() if isinstance(value, dt.date) else value
+
+
+# -- patients: onset date and identities ---------------------------------------------------------------------
+
+RECORD_WORDS = {"sex": "sex", "birth_year": "birth year", "onset_date": "onset date"}
+IDENTITY_WORDS = {"full_name": "name", "record_number": "record number", "birth_date": "birth date"}
+
+
+@dataclass
+class _PatientChange:
+    """What one row of a patients file changes: values of the pseudonymous record (with the stored ones they
+    replace) and identity fields (whose values are never audited or printed)."""
+
+    row: int
+    code: str
+    patient_id: int
+    record: dict[str, Any] = field(default_factory=dict)
+    record_before: dict[str, Any] = field(default_factory=dict)
+    identity: dict[str, Any] = field(default_factory=dict)
+    identity_replaced: list[str] = field(default_factory=list)
+    identity_stored: bool = False
+    replaced: bool = False
+
+
+def _store_patients(session: Session, frame: pd.DataFrame, *, username: str, dry_run: bool,
+                    replace: bool) -> ImportReport:
+    """Fill empty values of stored patients and their identities; a value that differs from a stored one is
+    refused unless ``replace`` (as sex and birth year in a measurements file). Identity fields go to
+    ``patient_identities`` only, and messages and the audit trail name the fields, never their values."""
+    report = ImportReport(kind="patients", rows=0, dry_run=dry_run)
+    if not dry_run:  # read as the writer: a value stored meanwhile by another import is compared, not lost
+        take_write_lock(session, serialise="import")
+    codes = sorted(frame["patient"].unique())
+    record: dict[str, dict[str, Any]] = {}
+    ids: dict[str, int] = {}
+    for part in _chunks(codes):
+        for row in session.execute(
+            select(Patient.id, Patient.code, *[getattr(Patient, c) for c in RECORD_VALUES])
+            .where(Patient.code.in_(part))
+        ):
+            ids[row.code] = int(row.id)
+            record[row.code] = {c: getattr(row, c) for c in RECORD_VALUES}
+    unknown = frame[~frame["patient"].isin(list(ids))]
+    if len(unknown):  # validated without ``known_patients``: still refuse, row by row
+        raise InputRejected("The patients file was refused", guarded([
+            Problem(int(r), "patient", p, "unknown patient; import the patient's measurements first")
+            for r, p in zip(unknown[ROW], unknown["patient"])]))
+    identities: dict[int, dict[str, Any]] = {}
+    for part in _chunks(sorted(ids.values())):
+        for row in session.execute(
+            select(PatientIdentity.patient_id, *[getattr(PatientIdentity, c) for c in IDENTITY_VALUES])
+            .where(PatientIdentity.patient_id.in_(part))
+        ):
+            identities[int(row.patient_id)] = {c: getattr(row, c) for c in IDENTITY_VALUES}
+
+    changes, conflicts = [], []
+    for r in frame.to_dict("records"):
+        code = r["patient"]
+        change = _PatientChange(row=int(r[ROW]), code=code, patient_id=ids[code])
+        stored_identity = identities.get(change.patient_id)
+        change.identity_stored = stored_identity is not None
+        for column in RECORD_VALUES + IDENTITY_VALUES:
+            given = _clean(r[column])
+            if given is None:  # an empty cell keeps the stored value
+                continue
+            given = int(given) if column == "birth_year" else given
+            is_identity = column in IDENTITY_VALUES
+            stored = (stored_identity or {}).get(column) if is_identity else record[code][column]
+            if stored == given:
+                continue
+            if stored is not None and not replace:
+                if is_identity:  # neither value is shown: a name or record number is not for a message
+                    message = (f"patient {code} is stored with another {IDENTITY_WORDS[column]}; import with "
+                               "--replace to replace it")
+                else:
+                    message = (f"patient {code} is stored with {RECORD_WORDS[column]} {shown_value(stored)}, "
+                               f"the file gives {shown_value(given)}; import with --replace to replace it")
+                conflicts.append(Problem(change.row, column, None, message))
+                continue
+            change.replaced = change.replaced or stored is not None
+            if is_identity:
+                change.identity[column] = given
+                if stored is not None:
+                    change.identity_replaced.append(column)
+            else:
+                change.record[column] = given
+                change.record_before[column] = _jsonable(stored)
+        changes.append(change)
+    if conflicts:
+        raise InputRejected("The file conflicts with stored data",
+                            sorted(conflicts, key=lambda p: p.row or 0))
+    report.replaced = sum(c.replaced for c in changes)
+    report.added = sum(bool(c.record or c.identity) and not c.replaced for c in changes)
+    report.unchanged = sum(not (c.record or c.identity) for c in changes)
+    report.identities = sum(bool(c.identity) for c in changes)
+    if dry_run:
+        return report
+    for change in changes:
+        if change.record:
+            session.execute(update(Patient).where(Patient.id == change.patient_id).values(**change.record))
+            audit.record(session, username=username, action="update_patient", entity="patients",
+                         entity_key=change.code, before=change.record_before,
+                         after={k: _jsonable(v) for k, v in change.record.items()})
+        if change.identity:
+            if change.identity_stored:
+                session.execute(update(PatientIdentity).where(PatientIdentity.patient_id == change.patient_id)
+                                .values(**change.identity))
+            else:
+                session.execute(
+                    insert(PatientIdentity).values(patient_id=change.patient_id, **change.identity)
+                )
+            # The fields, never their values: the audit trail is read by people who may not see identities.
+            audit.record(session, username=username, action="update_patient_identity",
+                         entity="patient_identities", entity_key=change.code,
+                         after={"fields_set": sorted(change.identity),
+                                "fields_replaced": sorted(change.identity_replaced)})
+    return report

@@ -36,10 +36,15 @@ class InputTable:
 
     cells: pd.DataFrame
     sha256: str
-    kind: str  # "measurements", "treatments", "scores", "limits"
+    kind: str  # "measurements", "treatments", "scores", "patients", "limits"
 
 
-KIND_MARKERS = (("bound", "limits"), ("nerve", "measurements"), ("therapy", "treatments"), ("scale", "scores"))
+KIND_MARKERS = (
+    ("bound", "limits"), ("nerve", "measurements"), ("therapy", "treatments"), ("scale", "scores"),
+    ("onset_date", "patients"), ("full_name", "patients"), ("record_number", "patients"),
+    ("birth_date", "patients"),
+)
+IMPORT_KINDS = ("measurements", "treatments", "scores", "patients")
 
 
 def _decode(raw: bytes) -> str:
@@ -350,7 +355,7 @@ def read_bounded(path: Path, limits: InputLimits | None = None) -> bytes:
 
 def read_table(
     path: Path,
-    allowed_kinds: tuple[str, ...] = ("measurements", "treatments", "scores"),
+    allowed_kinds: tuple[str, ...] = IMPORT_KINDS,
     *,
     limits: InputLimits | None = None,
 ) -> InputTable:
@@ -363,7 +368,7 @@ def read_table(
 def parse_table(
     raw: bytes,
     suffix: str,
-    allowed_kinds: tuple[str, ...] = ("measurements", "treatments", "scores"),
+    allowed_kinds: tuple[str, ...] = IMPORT_KINDS,
     *,
     name: str | None = None,
     limits: InputLimits | None = None,
@@ -530,7 +535,8 @@ def _parse(raw: bytes, suffix: str, allowed_kinds: tuple[str, ...], limits: Inpu
                     1,
                     None,
                     ", ".join(h for h in headers if h) or "(empty)",
-                    "expected measurements (with a 'nerve' column), treatments ('therapy') or scores ('scale')",
+                    "expected measurements (with a 'nerve' column), treatments ('therapy'), scores ('scale') "
+                    "or patients ('onset_date', 'full_name', 'record_number' or 'birth_date')",
                 )
             ],
         )
