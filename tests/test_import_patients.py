@@ -320,3 +320,20 @@ def test_demo_onsets_give_the_days_the_demo_story_tells(demo_db, tmp_path, capsy
     assert code == 0, err
     frame = pd.read_csv(out_file)
     assert sorted(frame["days_since_onset"].tolist()) == [7, 30, 90]
+
+
+def test_an_onset_after_the_first_visit_is_stored_with_a_warning(demo_db, sessions, tmp_path, capsys):
+    path = _write(tmp_path / "p.csv", ["patient,onset_date", "DEMO-05,2025-08-25", "DEMO-03,2023-03-22"])
+    code, out, err = run_cli(capsys, "--db", demo_db, "import", path)
+    assert code == 0, err
+    assert (
+        "warning: row 3, column 'onset_date': the onset of DEMO-03 (2023-03-22) is after their first visit "
+        "(2023-03-21): days_since_onset of that visit is negative — check the date"
+    ) in err
+    assert "DEMO-05" not in err  # onset a week before the first study: no warning
+    with sessions() as session:
+        assert session.scalar(select(Patient.onset_date).where(Patient.code == "DEMO-03")) == dt.date(
+            2023, 3, 22
+        )
+        event = session.scalars(select(AuditEvent).where(AuditEvent.action == "import_patients")).one()
+        assert len(event.after["warnings"]) == 1 and event.after["identities"] == 0

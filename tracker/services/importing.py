@@ -882,6 +882,7 @@ def _store_patients(session: Session, frame: pd.DataFrame, *, username: str, dry
     report.added = sum(bool(c.record or c.identity) and not c.replaced for c in changes)
     report.unchanged = sum(not (c.record or c.identity) for c in changes)
     report.identities = sum(bool(c.identity) for c in changes)
+    report.warnings = _onsets_after_visits(session, changes)
     if dry_run:
         return report
     for change in changes:
@@ -904,3 +905,26 @@ def _store_patients(session: Session, frame: pd.DataFrame, *, username: str, dry
                          after={"fields_set": sorted(change.identity),
                                 "fields_replaced": sorted(change.identity_replaced)})
     return report
+
+
+def _onsets_after_visits(session: Session, changes: list[_PatientChange]) -> list[Problem]:
+    """A new onset date after the patient's first stored visit is stored, with a warning: that visit's
+    ``days_since_onset`` would be negative, which is more often a typing slip than a study before symptoms."""
+    onsets = {c.patient_id: c for c in changes if "onset_date" in c.record}
+    first: dict[int, dt.date] = {}
+    for part in _chunks(sorted(onsets)):
+        first.update(
+            (int(pid), day) for pid, day in session.execute(
+                select(Visit.patient_id, func.min(Visit.visit_date)).where(Visit.patient_id.in_(part))
+                .group_by(Visit.patient_id)
+            )
+        )
+    warnings = []
+    for pid, change in onsets.items():
+        onset, visit = change.record["onset_date"], first.get(pid)
+        if visit is not None and onset > visit:
+            warnings.append(Problem(
+                change.row, "onset_date", None,
+                f"the onset of {change.code} ({onset.isoformat()}) is after their first visit "
+                f"({visit.isoformat()}): days_since_onset of that visit is negative — check the date"))
+    return sorted(warnings, key=lambda p: p.row or 0)
