@@ -96,7 +96,7 @@ def db_status(context: Context) -> None:
 def import_command(
     context: Context, files: tuple[Path, ...], dry_run: bool, replace: bool, force: bool, allow_unusual: bool
 ) -> None:
-    """Import measurements, treatments or scores (UTF-8 CSV, or the first sheet of an .xlsx).
+    """Import measurements, treatments, scores or patients (UTF-8 CSV, or the first sheet of an .xlsx).
 
     The kind of file is recognised from its header: a 'nerve' column for measurements, 'therapy' for
     treatments, 'scale' for scores. The columns and the accepted nerve and site names are listed in the
