@@ -125,3 +125,18 @@ def test_a_second_check_records_the_outcome_before_and_after(trail, capsys):
     # Before and after: the outcome either changed (a → b) or is marked unchanged; never left out.
     [outcome_words] = [part for part in out.split("; ") if "ean-pns-2021-cidp:" in part]
     assert "→" in outcome_words or "(unchanged)" in outcome_words
+
+
+def test_choosing_the_default_limits_records_before_and_after(trail, capsys, tmp_path):
+    """The issue's finding: "choose default limits" recorded no before/after."""
+    limits = tmp_path / "lab.csv"
+    limits.write_text("nerve,modality,parameter,bound,value,source\n"
+                      "median,motor,distal_latency_ms,uln,4.5,invented laboratory limits for this test\n",
+                      encoding="utf-8")
+    code, _, err = run_cli(capsys, "--db", trail, "limits", "import", str(limits), "--name", "lab-invented")
+    assert code == 0, err
+    code, _, err = run_cli(capsys, "--db", trail, "limits", "default", "lab-invented")
+    assert code == 0, err
+    code, out, _ = run_cli(capsys, "--db", trail, "audit", "--limit", "1")
+    assert "chose the default normal limits — lab-invented v1" in out
+    assert "default: default v2 → lab-invented v1" in out

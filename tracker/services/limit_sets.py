@@ -243,9 +243,15 @@ def list_limit_sets(session: Session) -> list[LimitSetInfo]:
 
 def set_default(session: Session, name: str, *, username: str) -> LimitSetInfo:
     chosen = _latest(session, name)
+    previous = session.scalar(select(LimitSet).where(LimitSet.is_default.is_(True)))
     session.execute(update(LimitSet).values(is_default=False))
     session.execute(update(LimitSet).where(LimitSet.id == chosen.id).values(is_default=True))
-    audit.record(session, username=username, action="choose_default_limits", entity="limit_sets", entity_key=f"{chosen.name} v{chosen.version}")
+    audit.record(
+        session, username=username, action="choose_default_limits", entity="limit_sets",
+        entity_key=f"{chosen.name} v{chosen.version}",
+        before={"default": None if previous is None else f"{previous.name} v{previous.version}"},
+        after={"default": f"{chosen.name} v{chosen.version}"},
+    )
     return _info(session, chosen)
 
 
