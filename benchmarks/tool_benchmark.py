@@ -448,7 +448,7 @@ def main() -> None:
     parser.add_argument("--repeat", type=int, default=1, help="imports into fresh databases, best counts")
     parser.add_argument("--pg", default=PG_ADMIN, help="PostgreSQL server (its maintenance database)")
     parser.add_argument(
-        "--smoke", action="store_true", help="CI: no warm-ups, one run each, figures not meant"
+        "--smoke", action="store_true", help="CI: no warm-ups, one run each (figures meaningless)"
     )
     parser.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = parser.parse_args()
