@@ -158,7 +158,10 @@ def show_command(context: Context, patient: str, visit_date: str | None) -> None
     "criteria",
     metavar="ID",
     multiple=True,
-    help="Criteria set id (repeatable), or 'all' for every set side by side. Default: by the visit's diagnosis.",
+    help=(
+        "Criteria set id (repeatable), or 'all' for every set side by side. Default: by the visit's "
+        "diagnosis."
+    ),
 )
 @click.option(
     "--limits", "limits_name", metavar="NAME", help="Normal-limit set (default: the one marked default)."
@@ -298,7 +301,8 @@ def response_command(
     list_rules: bool,
     output: str,
 ) -> None:
-    """Is the patient better, stable or worse on each treatment regimen — and why (changes against published thresholds)."""
+    """Is the patient better, stable or worse on each treatment regimen — and why
+    (changes against published thresholds)."""
     import json
 
     from tracker.response.rules import rule_sets
@@ -363,7 +367,8 @@ def report_command(
     limits_name: str | None,
     overwrite: bool,
 ) -> None:
-    """Write the printable follow-up report of one visit: criteria outcome, treatment response, changes, trend.
+    """Write the printable follow-up report of one visit: criteria outcome,
+    treatment response, changes, trend.
 
     The file holds patient data: it is created readable by you only (mode 0600).
     """
@@ -398,7 +403,10 @@ def report_command(
     "wrist",
     multiple=True,
     metavar="SIDE=yes|no",
-    help="Median distal latency explained by neuropathy at the wrist on that side (repeatable), e.g. right=yes.",
+    help=(
+        "Median distal latency explained by neuropathy at the wrist on that side (repeatable), e.g. "
+        "right=yes."
+    ),
 )
 @pass_context
 def annotate_command(
@@ -780,7 +788,9 @@ def _serve(url: str, *, host: str, port: int, sign_in: bool = False) -> None:
     type=click.Choice(["csv", "parquet", "xlsx", "fhir"]),
     default="csv",
     show_default=True,
-    help="Tables (csv, parquet, xlsx) or FHIR R4 NDJSON resources in the --out folder (fhir; --level ignored).",
+    help=(
+        "Tables (csv, parquet, xlsx) or FHIR R4 NDJSON resources in the --out folder (fhir; --level ignored)."
+    ),
 )
 @click.option(
     "--out",
@@ -809,7 +819,9 @@ def _serve(url: str, *, host: str, port: int, sign_in: bool = False) -> None:
     "outcomes",
     metavar="ID=VALUE",
     multiple=True,
-    help="Only visits where criteria set ID has this outcome (repeatable; values of one set are alternatives).",
+    help=(
+        "Only visits where criteria set ID has this outcome (repeatable; values of one set are alternatives)."
+    ),
 )
 @click.option("--patients", metavar="CODE,...", help="Only these patients (comma-separated clinic codes).")
 @click.option(
@@ -825,14 +837,19 @@ def _serve(url: str, *, host: str, port: int, sign_in: bool = False) -> None:
 @click.option(
     "--identified",
     is_flag=True,
-    help="Include codes, names, record numbers, birth dates and real dates (role coordinator or admin only; audited).",
+    help=(
+        "Include codes, names, record numbers, birth dates and real dates (role coordinator or admin only; "
+        "audited)."
+    ),
 )
 @click.option("--overwrite", is_flag=True, help="Replace files of an earlier export at the same place.")
 @click.option(
     "--chunk-visits",
     type=click.IntRange(min=1),
     metavar="N",
-    help="Visits read, evaluated and written at a time (default 2000): fewer use less memory, more run faster.",
+    help=(
+        "Visits read, evaluated and written at a time (default 2000): fewer use less memory, more run faster."
+    ),
 )
 # The criteria settings, as check takes them (unset: the database's settings, else the defaults).
 @click.option(

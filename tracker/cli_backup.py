@@ -45,7 +45,10 @@ def backup_command(context: Context, file: Path, secret_out: Path | None, no_sec
         raise click.UsageError("--no-secret and --secret-out exclude each other.")
     url = context.url
     result = service.backup(
-        url, file, username=_authorised(context, url, "backup"), secret_path=secret_out,
+        url,
+        file,
+        username=_authorised(context, url, "backup"),
+        secret_path=secret_out,
         write_secret=not no_secret,
     )
     click.echo(
@@ -101,8 +104,9 @@ def restore_command(context: Context, file: Path, secret_file: Path | None, forc
     from tracker.services.access import backup as service
 
     url = context.url
-    result = service.restore(url, file, username=_authorised(context, url, "restore"), secret_file=secret_file,
-                             force=force)
+    result = service.restore(
+        url, file, username=_authorised(context, url, "restore"), secret_file=secret_file, force=force
+    )
     click.echo(
         f"Restored {file} (made {result.created_at}) into {_shown(url)}: "
         f"{service.describe_rows(result.tables)}."

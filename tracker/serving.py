@@ -37,19 +37,45 @@ def free_port(host: str, wanted: int, tries: int = 50) -> int:
             except OSError:
                 continue
             return port
-    raise TrackerError(f"No free port between {wanted} and {wanted + tries - 1} on {host}; choose one with --port.")
+    raise TrackerError(
+        f"No free port between {wanted} and {wanted + tries - 1} on {host}; choose one with --port."
+    )
 
 
 def streamlit_command(host: str, port: int) -> list[str]:
     return [
-        sys.executable, "-m", "tracker.dashboard.launch", "run", str(APP),
-        "--server.address", host, "--server.port", str(port), "--server.headless", "true",
-        "--browser.gatherUsageStats", "false", "--client.showErrorDetails", "none", "--client.toolbarMode", "minimal",
-        "--server.fileWatcherType", "none", "--server.runOnSave", "false",
+        sys.executable,
+        "-m",
+        "tracker.dashboard.launch",
+        "run",
+        str(APP),
+        "--server.address",
+        host,
+        "--server.port",
+        str(port),
+        "--server.headless",
+        "true",
+        "--browser.gatherUsageStats",
+        "false",
+        "--client.showErrorDetails",
+        "none",
+        "--client.toolbarMode",
+        "minimal",
+        "--server.fileWatcherType",
+        "none",
+        "--server.runOnSave",
+        "false",
         # Uploads larger than an import accepts are refused by the browser side, not held in memory first.
-        "--server.maxUploadSize", str(max(1, input_limits.from_environment().file_bytes // input_limits.MB)),
-        "--theme.base", "light", "--theme.primaryColor", style.ACCENT, "--theme.textColor", style.INK,
-        "--theme.secondaryBackgroundColor", style.PAPER,
+        "--server.maxUploadSize",
+        str(max(1, input_limits.from_environment().file_bytes // input_limits.MB)),
+        "--theme.base",
+        "light",
+        "--theme.primaryColor",
+        style.ACCENT,
+        "--theme.textColor",
+        style.INK,
+        "--theme.secondaryBackgroundColor",
+        style.PAPER,
     ]
 
 
@@ -67,14 +93,14 @@ def check_exposure(host: str, *, sign_in: bool) -> None:
     if not sign_in and not is_loopback(host):
         raise TrackerError(
             f"Refusing to serve on {host} without sign-in: anyone who can reach that address would see every "
-            "patient. Add --sign-in (accounts with passwords: 'ncs-tracker users init', 'users add'), or serve "
-            "on 127.0.0.1 for yourself only."
+            "patient. Add --sign-in (accounts with passwords: 'ncs-tracker users init', 'users add'), or "
+            "serve on 127.0.0.1 for yourself only."
         )
 
 
 def run_dashboard(url: str, *, host: str, port: int, sign_in: bool, announce: Callable[[str], None]) -> None:
-    """Start the dashboard and wait until it stops. Ctrl+C, SIGTERM and SIGHUP stop the Streamlit child too, so
-    that no dashboard keeps serving patient data after ``serve`` itself was stopped."""
+    """Start the dashboard and wait until it stops. Ctrl+C, SIGTERM and SIGHUP stop the Streamlit child too,
+    so that no dashboard keeps serving patient data after ``serve`` itself was stopped."""
     check_exposure(host, sign_in=sign_in)
     port = free_port(host, port)
     environment = {k: v for k, v in os.environ.items() if k != ENV_SIGN_IN}

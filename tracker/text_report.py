@@ -14,8 +14,14 @@ def number(value: float | None, decimals: int = 1) -> str:
 
 
 def _table(header: list[str], rows: list[list[str]], indent: str = "  ") -> list[str]:
-    widths = [max(len(header[i]), *(len(r[i]) for r in rows)) if rows else len(header[i]) for i in range(len(header))]
-    line = lambda cells: indent + "  ".join(c.ljust(w) if i == 0 else c.rjust(w) for i, (c, w) in enumerate(zip(cells, widths)))
+    widths = [
+        max(len(header[i]), *(len(r[i]) for r in rows)) if rows else len(header[i])
+        for i in range(len(header))
+    ]
+    line = lambda cells: (
+        indent
+        + "  ".join(c.ljust(w) if i == 0 else c.rjust(w) for i, (c, w) in enumerate(zip(cells, widths)))
+    )
     return [line(header), indent + "  ".join("-" * w for w in widths)] + [line(r) for r in rows]
 
 
@@ -40,7 +46,17 @@ def _motor_lines(nerves: list[NerveRecord]) -> list[str]:
                 _f_wave(n),
             ]
         )
-    lines += _table(["nerve", "temp. (°C)", "distal latency (ms)", "CMAP (mV)", "CMAP duration (ms)", "F-wave latency (ms)"], rows)
+    lines += _table(
+        [
+            "nerve",
+            "temp. (°C)",
+            "distal latency (ms)",
+            "CMAP (mV)",
+            "CMAP duration (ms)",
+            "F-wave latency (ms)",
+        ],
+        rows,
+    )
     segment_rows = []
     for n in nerves:
         for seg in n.summary.segments:
@@ -57,7 +73,10 @@ def _motor_lines(nerves: list[NerveRecord]) -> list[str]:
     if segment_rows:
         lines.append("")
         lines.append("Motor segments")
-        lines += _table(["segment", "dist. (mm)", "CV (m/s)", "amp. drop (%)", "area drop (%)", "dur. rise (%)"], segment_rows)
+        lines += _table(
+            ["segment", "dist. (mm)", "CV (m/s)", "amp. drop (%)", "area drop (%)", "dur. rise (%)"],
+            segment_rows,
+        )
     return lines
 
 
@@ -76,7 +95,9 @@ def _sensory_lines(nerves: list[NerveRecord]) -> list[str]:
                 number(s.sensory_velocity_m_per_s),
             ]
         )
-    return ["Sensory nerves"] + _table(["nerve", "temp. (°C)", "onset latency (ms)", "peak latency (ms)", "SNAP (µV)", "CV (m/s)"], rows)
+    return ["Sensory nerves"] + _table(
+        ["nerve", "temp. (°C)", "onset latency (ms)", "peak latency (ms)", "SNAP (µV)", "CV (m/s)"], rows
+    )
 
 
 def visit_lines(visit: VisitRecord) -> list[str]:
@@ -84,7 +105,9 @@ def visit_lines(visit: VisitRecord) -> list[str]:
     if visit.height_cm is not None:
         head += f" — height {visit.height_cm:g} cm"
     if visit.diagnosis:
-        head += f" — {DIAGNOSIS_SHORT.get(visit.diagnosis, words(visit.diagnosis))}" + (f" ({words(visit.phenotype)})" if visit.phenotype else "")
+        head += f" — {DIAGNOSIS_SHORT.get(visit.diagnosis, words(visit.diagnosis))}" + (
+            f" ({words(visit.phenotype)})" if visit.phenotype else ""
+        )
     lines = [head]
     motor = [n for n in visit.nerves if n.modality == "motor"]
     sensory = [n for n in visit.nerves if n.modality == "sensory"]
@@ -107,10 +130,16 @@ def _scale_label(scale: str) -> str:
 
 def patient_lines(record: PatientRecord) -> list[str]:
     about = [x for x in (record.sex, f"born {record.birth_year}" if record.birth_year else None) if x]
-    diagnosis = DIAGNOSIS_SHORT.get(record.diagnosis, words(record.diagnosis)) if record.diagnosis else "no diagnosis recorded"
+    diagnosis = (
+        DIAGNOSIS_SHORT.get(record.diagnosis, words(record.diagnosis))
+        if record.diagnosis
+        else "no diagnosis recorded"
+    )
     if record.phenotype:
         diagnosis += f" ({words(record.phenotype)})"
-    lines = [f"Patient {record.code}" + (f" — {', '.join(about)}" if about else "") + f"; diagnosis: {diagnosis}"]
+    lines = [
+        f"Patient {record.code}" + (f" — {', '.join(about)}" if about else "") + f"; diagnosis: {diagnosis}"
+    ]
     if record.treatments:
         lines.append("Treatments:")
         for t in record.treatments:
@@ -122,7 +151,11 @@ def patient_lines(record: PatientRecord) -> list[str]:
     for visit in record.visits:
         lines.append("")
         lines += visit_lines(visit)
-        scores = [f"{_scale_label(scale)} {value:g}" for date, scale, value in record.scores if date == visit.visit_date]
+        scores = [
+            f"{_scale_label(scale)} {value:g}"
+            for date, scale, value in record.scores
+            if date == visit.visit_date
+        ]
         if scores:
             lines.append("  Scores on this day: " + "; ".join(scores))
     lines += ["", CAUTION]

@@ -18,9 +18,10 @@ from tracker.services.access.permissions import Actor
 
 VIEWS = Path(__file__).resolve().parent / "views"
 
-st.set_page_config(page_title=f"{style.TITLE} — {style.SUBTITLE}", layout="wide", initial_sidebar_state="expanded")
+st.set_page_config(
+    page_title=f"{style.TITLE} — {style.SUBTITLE}", layout="wide", initial_sidebar_state="expanded"
+)
 st.markdown(style.CSS, unsafe_allow_html=True)
-
 
 
 def _sign_in_form() -> None:
@@ -31,7 +32,9 @@ def _sign_in_form() -> None:
         st.info(notice)
     with st.form("sign_in", clear_on_submit=True):
         username = st.text_input("User name", key="sign_in_user", autocomplete="username")
-        password = st.text_input("Password", type="password", key="sign_in_password", autocomplete="current-password")
+        password = st.text_input(
+            "Password", type="password", key="sign_in_password", autocomplete="current-password"
+        )
         submitted = st.form_submit_button("Sign in", type="primary")
     if submitted:
         # The browser clears both fields, but the server would keep what was typed (a password, or one
@@ -78,7 +81,9 @@ def main() -> None:
         who = f"{actor.name} ({actor.role})" if actor.role else actor.name
         if actor.single_user:
             who += " · single-user mode"
-        st.caption(f"Version {__version__} · {'signed in as' if state.sign_in_required() else 'working as'} {who}")
+        st.caption(
+            f"Version {__version__} · {'signed in as' if state.sign_in_required() else 'working as'} {who}"
+        )
         if state.sign_in_required() and st.button("Sign out", key="sign_out"):
             state.sign_out("Signed out.")
             st.rerun()

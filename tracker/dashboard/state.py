@@ -148,8 +148,10 @@ def require(permission: str) -> Actor:
     current.require(permission)
     if permission in PRIVILEGED and not current.single_user and not current.authenticated:
         # As on the command line, a privileged change needs the account's password: here, a sign-in.
-        raise NotPermitted(f"To {PERMISSION_WORDS[permission]} here, start the dashboard with sign-in "
-                           "(ncs-tracker serve --sign-in) and sign in with your password.")
+        raise NotPermitted(
+            f"To {PERMISSION_WORDS[permission]} here, start the dashboard with sign-in "
+            "(ncs-tracker serve --sign-in) and sign in with your password."
+        )
     return current
 
 
@@ -179,5 +181,8 @@ def guarded(render: Callable[[], T]) -> T | None:
         st.error(str(error))
     except Exception as error:  # a bug: no details on screen or in the log (they may name a patient)
         log.error("dashboard page failed: %s", type(error).__name__)
-        st.error(f"Something went wrong ({type(error).__name__}); nothing was saved by this step. Please report it with the time it happened.")
+        st.error(
+            f"Something went wrong ({type(error).__name__}); nothing was saved by this step. Please report "
+            "it with the time it happened."
+        )
     return None

@@ -29,7 +29,14 @@ CHANGE_VERDICT_LABELS = {
     "no_threshold": "no published threshold",
     "not_comparable": "not comparable",
 }
-CHANGE_VERDICT_SHAPES = {"improved": "▲", "worsened": "▼", "within_noise": "·", "within_threshold": "·", "no_threshold": "–", "not_comparable": "–"}
+CHANGE_VERDICT_SHAPES = {
+    "improved": "▲",
+    "worsened": "▼",
+    "within_noise": "·",
+    "within_threshold": "·",
+    "no_threshold": "–",
+    "not_comparable": "–",
+}
 REFERENCE_LABELS = {
     "regimen_baseline": "since the regimen baseline",
     "previous": "since the previous visit",
@@ -64,6 +71,7 @@ def words(identifier: str) -> str:
     """A site or segment identifier in words: ``below_fibular_head`` → ``below fibular head``."""
     return identifier.replace("_", " ")
 
+
 # Short forms with units for narrow tables (terminal, report tables).
 NERVE_PARAMETER_SHORT = {
     "distal_cmap_amplitude": "distal CMAP, mV",
@@ -80,8 +88,14 @@ NERVE_PARAMETER_SHORT = {
 SDC_STEP_LABELS = {"improved": "▲ better beyond SDC", "worsened": "▼ worse beyond SDC"}
 
 # Short verdicts for tables whose title already says "beyond the threshold" (printable report).
-CHANGE_VERDICT_SHORT = {"improved": "better", "worsened": "worse", "within_noise": "within", "within_threshold": "within",
-                        "no_threshold": "no threshold", "not_comparable": "not comparable"}
+CHANGE_VERDICT_SHORT = {
+    "improved": "better",
+    "worsened": "worse",
+    "within_noise": "within",
+    "within_threshold": "within",
+    "no_threshold": "no threshold",
+    "not_comparable": "not comparable",
+}
 DIAGNOSIS_LABELS = {
     "cidp": "CIDP (chronic inflammatory demyelinating polyradiculoneuropathy)",
     "mmn": "MMN (multifocal motor neuropathy)",
@@ -126,7 +140,10 @@ PLOTTED_FEATURE_LABELS = {
 }
 COMPARATOR_SIGNS = {"ge": "≥", "gt": ">", "le": "≤", "lt": "<"}
 # A threshold line in words, by the quantity it cuts: (name of the line, what the percentage is).
-THRESHOLD_KINDS = {"block": ("block threshold", "reduction"), "dispersion": ("dispersion threshold", "duration increase")}
+THRESHOLD_KINDS = {
+    "block": ("block threshold", "reduction"),
+    "dispersion": ("dispersion threshold", "duration increase"),
+}
 
 
 def threshold_label(parameter: str, comparator: str, value: float, reference: str, unit: str = "") -> str:
@@ -143,14 +160,28 @@ def threshold_label(parameter: str, comparator: str, value: float, reference: st
     return f"{name}: {sign} {value:g} {unit}".rstrip()
 
 
-# Outcome values of the criteria sets, in words (DESIGN.md §5 lists the ids). An unknown value is shown in words.
+# Outcome values of the criteria sets, in words (DESIGN.md §5 lists the
+# ids). An unknown value is shown in words.
 OUTCOME_LABELS = {
-    "definite": "definite", "probable": "probable", "possible": "possible", "met": "met", "not_met": "not met",
-    "cidp": "CIDP", "possible_cidp": "possible CIDP",
-    "strongly_supportive": "strongly supportive", "weakly_supportive": "weakly supportive",
-    "abnormal_2_nerves": "abnormal in ≥ 2 nerves", "abnormal_1_nerve": "abnormal in 1 nerve", "normal": "normal",
-    "demyelinating": "demyelinating", "axonal": "axonal", "inexcitable": "inexcitable", "equivocal": "equivocal",
-    "not_evaluable": "not evaluable", "not evaluated": "not evaluated", "undecided": "undecided (missing data)",
+    "definite": "definite",
+    "probable": "probable",
+    "possible": "possible",
+    "met": "met",
+    "not_met": "not met",
+    "cidp": "CIDP",
+    "possible_cidp": "possible CIDP",
+    "strongly_supportive": "strongly supportive",
+    "weakly_supportive": "weakly supportive",
+    "abnormal_2_nerves": "abnormal in ≥ 2 nerves",
+    "abnormal_1_nerve": "abnormal in 1 nerve",
+    "normal": "normal",
+    "demyelinating": "demyelinating",
+    "axonal": "axonal",
+    "inexcitable": "inexcitable",
+    "equivocal": "equivocal",
+    "not_evaluable": "not evaluable",
+    "not evaluated": "not evaluated",
+    "undecided": "undecided (missing data)",
 }
 # Item statuses of a criteria trace: (word, shape). Never a state by colour alone.
 STATUS_LABELS = {
@@ -187,23 +218,53 @@ def nerve_words(nerve: str, side: str | None = None, modality: str | None = None
 
 # Criteria items (the sets' own codes) in words, for trace tables; unknown items fall back to words().
 ITEM_LABELS = {
-    "dml": "distal motor latency", "dml_low_cmap": "distal motor latency (low CMAP)", "dml_switch": "low-CMAP switch (latency)",
-    "cv": "motor conduction velocity", "cv_low_cmap": "motor conduction velocity (low CMAP)", "cv_switch": "low-CMAP switch (velocity)",
-    "f_latency": "F-wave latency", "f_latency_low_cmap": "F-wave latency (low CMAP)", "f_switch": "low-CMAP switch (F-wave)",
-    "f_absent": "F-waves absent", "cb": "conduction block", "cb_erb": "conduction block to Erb's point",
-    "cb_precondition": "block precondition (distal CMAP)", "cb_td": "block or abnormal dispersion", "td": "temporal dispersion",
-    "td_duration": "temporal dispersion (duration)", "dcmap_duration": "distal CMAP duration",
-    "definite_cb": "definite conduction block", "probable_cb": "probable conduction block",
-    "probable_cb_long": "probable block (long segment)", "probable_cb_dispersed": "probable block (dispersed)",
-    "axonal_low_cmap": "low distal CMAP (axonal)", "very_low_cmap": "very low distal CMAP", "cmap_switch": "low-CMAP switch",
-    "sensory_cv": "sensory conduction velocity", "sensory_cv_low_snap": "sensory conduction velocity (low SNAP)",
-    "sensory_switch": "low-SNAP switch", "sensory_peak_latency": "sensory peak latency", "snap_amplitude": "SNAP amplitude",
-    "snap_normal": "SNAP normal (exclusion check)", "snap_reduced": "SNAP reduced", "sural_sparing": "sural sparing",
-    "sural_normal": "sural SNAP normal", "sensory_cidp_cv": "sensory CIDP: velocity", "sensory_cidp_cv_low_snap": "sensory CIDP: velocity (low SNAP)",
-    "sensory_cidp_switch": "sensory CIDP: low-SNAP switch", "normal_cv": "velocity normal", "normal_dml": "distal latency normal",
-    "normal_f": "F-wave normal", "normal_dcmap": "distal CMAP normal", "normal_pcmap": "proximal CMAP normal",
-    "normal_ratio": "proximal/distal ratio normal", "one_nerve_floor": "one-nerve floor", "amplitude_lln": "amplitude ≥ LLN",
-    "amplitude_mv": "CMAP amplitude", "duration_dispersed": "duration (dispersion)", "duration_max": "duration limit",
+    "dml": "distal motor latency",
+    "dml_low_cmap": "distal motor latency (low CMAP)",
+    "dml_switch": "low-CMAP switch (latency)",
+    "cv": "motor conduction velocity",
+    "cv_low_cmap": "motor conduction velocity (low CMAP)",
+    "cv_switch": "low-CMAP switch (velocity)",
+    "f_latency": "F-wave latency",
+    "f_latency_low_cmap": "F-wave latency (low CMAP)",
+    "f_switch": "low-CMAP switch (F-wave)",
+    "f_absent": "F-waves absent",
+    "cb": "conduction block",
+    "cb_erb": "conduction block to Erb's point",
+    "cb_precondition": "block precondition (distal CMAP)",
+    "cb_td": "block or abnormal dispersion",
+    "td": "temporal dispersion",
+    "td_duration": "temporal dispersion (duration)",
+    "dcmap_duration": "distal CMAP duration",
+    "definite_cb": "definite conduction block",
+    "probable_cb": "probable conduction block",
+    "probable_cb_long": "probable block (long segment)",
+    "probable_cb_dispersed": "probable block (dispersed)",
+    "axonal_low_cmap": "low distal CMAP (axonal)",
+    "very_low_cmap": "very low distal CMAP",
+    "cmap_switch": "low-CMAP switch",
+    "sensory_cv": "sensory conduction velocity",
+    "sensory_cv_low_snap": "sensory conduction velocity (low SNAP)",
+    "sensory_switch": "low-SNAP switch",
+    "sensory_peak_latency": "sensory peak latency",
+    "snap_amplitude": "SNAP amplitude",
+    "snap_normal": "SNAP normal (exclusion check)",
+    "snap_reduced": "SNAP reduced",
+    "sural_sparing": "sural sparing",
+    "sural_normal": "sural SNAP normal",
+    "sensory_cidp_cv": "sensory CIDP: velocity",
+    "sensory_cidp_cv_low_snap": "sensory CIDP: velocity (low SNAP)",
+    "sensory_cidp_switch": "sensory CIDP: low-SNAP switch",
+    "normal_cv": "velocity normal",
+    "normal_dml": "distal latency normal",
+    "normal_f": "F-wave normal",
+    "normal_dcmap": "distal CMAP normal",
+    "normal_pcmap": "proximal CMAP normal",
+    "normal_ratio": "proximal/distal ratio normal",
+    "one_nerve_floor": "one-nerve floor",
+    "amplitude_lln": "amplitude ≥ LLN",
+    "amplitude_mv": "CMAP amplitude",
+    "duration_dispersed": "duration (dispersion)",
+    "duration_max": "duration limit",
 }
 
 
@@ -213,17 +274,47 @@ def item_label(item: object) -> str:
 
 # Table headers with units, by the identifier a table column has in code.
 COLUMN_LABELS = {
-    "visit_date": "visit date", "patient": "patient", "diagnosis": "diagnosis", "phenotype": "phenotype",
-    "nerve": "nerve", "side": "side", "modality": "modality", "site_order": "site (1 = distal)", "site": "site",
-    "segment": "segment", "series": "segment or site", "panel": "nerve", "unit": "unit", "value": "value", "note": "note",
-    "distance_mm": "distance (mm)", "latency_ms": "onset latency (ms)", "peak_latency_ms": "peak latency (ms)",
-    "amplitude_mv": "amplitude (mV, motor)", "amplitude_uv": "amplitude (µV, sensory)", "amplitude": "amplitude",
-    "duration_ms": "duration (ms)", "area_mvms": "area (mV·ms)", "temperature_c": "temperature (°C)", "lff_hz": "low-frequency filter (Hz)",
-    "f_latency_ms": "F-wave latency (ms)", "f_persistence_pct": "F-wave persistence (%)", "recording_site": "recording site",
-    "velocity_m_s": "velocity (m/s)", "amplitude_reduction_pct": "amplitude reduction (%)", "area_reduction_pct": "area reduction (%)",
-    "duration_increase_pct": "duration increase (%)", "height_cm": "height (cm)", "cold": "limb cold",
-    "first_visit": "first visit", "last_visit": "last visit", "current_treatment": "current treatment",
-    "latest_outcome": "latest outcome", "latest_criteria": "judged by", "visits": "visits", "patients": "patients",
+    "visit_date": "visit date",
+    "patient": "patient",
+    "diagnosis": "diagnosis",
+    "phenotype": "phenotype",
+    "nerve": "nerve",
+    "side": "side",
+    "modality": "modality",
+    "site_order": "site (1 = distal)",
+    "site": "site",
+    "segment": "segment",
+    "series": "segment or site",
+    "panel": "nerve",
+    "unit": "unit",
+    "value": "value",
+    "note": "note",
+    "distance_mm": "distance (mm)",
+    "latency_ms": "onset latency (ms)",
+    "peak_latency_ms": "peak latency (ms)",
+    "amplitude_mv": "amplitude (mV, motor)",
+    "amplitude_uv": "amplitude (µV, sensory)",
+    "amplitude": "amplitude",
+    "duration_ms": "duration (ms)",
+    "area_mvms": "area (mV·ms)",
+    "temperature_c": "temperature (°C)",
+    "lff_hz": "low-frequency filter (Hz)",
+    "f_latency_ms": "F-wave latency (ms)",
+    "f_persistence_pct": "F-wave persistence (%)",
+    "recording_site": "recording site",
+    "velocity_m_s": "velocity (m/s)",
+    "amplitude_reduction_pct": "amplitude reduction (%)",
+    "area_reduction_pct": "area reduction (%)",
+    "duration_increase_pct": "duration increase (%)",
+    "height_cm": "height (cm)",
+    "cold": "limb cold",
+    "first_visit": "first visit",
+    "last_visit": "last visit",
+    "current_treatment": "current treatment",
+    "latest_outcome": "latest outcome",
+    "latest_criteria": "judged by",
+    "visits": "visits",
+    "patients": "patients",
 }
 
 
@@ -242,17 +333,27 @@ def clinical_number(value: float | None, unit: str, missing: str = "—") -> str
     return f"{float(value):.{PRECISION.get(unit, 2)}f}"
 
 
-THERAPY_LABELS = {"ivig": "IVIg", "scig": "SCIg", "corticosteroid": "corticosteroid", "plasma_exchange": "plasma exchange",
-                  "rituximab": "rituximab", "efgartigimod": "efgartigimod", "other": "other"}
+THERAPY_LABELS = {
+    "ivig": "IVIg",
+    "scig": "SCIg",
+    "corticosteroid": "corticosteroid",
+    "plasma_exchange": "plasma exchange",
+    "rituximab": "rituximab",
+    "efgartigimod": "efgartigimod",
+    "other": "other",
+}
 
 
 def therapy_label(therapy: str) -> str:
     return THERAPY_LABELS.get(therapy, words(therapy))
 
+
 DIAGNOSIS_SHORT = {"cidp": "CIDP", "mmn": "MMN", "gbs": "GBS", "other": "other"}
 
 
-def treatment_words(therapy: str, dose: float | None, dose_unit: str | None, interval_days: float | None) -> str:
+def treatment_words(
+    therapy: str, dose: float | None, dose_unit: str | None, interval_days: float | None
+) -> str:
     """``ivig 2 g/kg every 21 days``, ``corticosteroid 40 mg daily`` — the words a clinician would write (a
     missing dose, unit or interval is left out)."""
     text = therapy.replace("_", " ")
@@ -274,17 +375,28 @@ SETTING_LABELS = {
     "duration_filter_strict": "2010 duration cut-offs only at their own filter",
 }
 SETTING_VALUE_LABELS = {
-    "warn": "values kept, with a warning", "exclude": "the nerve excluded",
-    "standard": "the standard segment", "all_outside_entrapment": "every segment outside entrapment sites",
+    "warn": "values kept, with a warning",
+    "exclude": "the nerve excluded",
+    "standard": "the standard segment",
+    "all_outside_entrapment": "every segment outside entrapment sites",
     "outside_entrapment": "over every path outside entrapment sites",
 }
 # Extra keys of a criteria outcome (DESIGN.md §5), e.g. the EAN/PNS 2021 motor and sensory parts.
-OUTCOME_KEY_LABELS = {"motor": "motor", "sensory": "sensory", "sensory_supportive": "sensory supportive", "items_met": "items met"}
+OUTCOME_KEY_LABELS = {
+    "motor": "motor",
+    "sensory": "sensory",
+    "sensory_supportive": "sensory supportive",
+    "items_met": "items met",
+}
 
 
 def setting_words(name: str, value: object) -> str:
     """``AAN wrist exclusion: off`` — a criteria setting and its value in words."""
-    shown = ("on" if value else "off") if isinstance(value, bool) else SETTING_VALUE_LABELS.get(str(value), words(str(value)))
+    shown = (
+        ("on" if value else "off")
+        if isinstance(value, bool)
+        else SETTING_VALUE_LABELS.get(str(value), words(str(value)))
+    )
     return f"{SETTING_LABELS.get(name, words(name))}: {shown}"
 
 
@@ -377,6 +489,7 @@ CRITERIA_SWITCH_LABELS = {
     ),
     "duration_filter_strict": (
         "EFNS/PNS 2010: distal CMAP duration not evaluable with another low-frequency filter",
-        "Off, the publication's reading: judged with a warning (cut-offs derived at 20 Hz, from memory, not verified).",
+        "Off, the publication's reading: judged with a warning (cut-offs derived at 20 Hz, from memory, not "
+        "verified).",
     ),
 }

@@ -27,7 +27,9 @@ class Collector:
         self.rows = cells[ROW].to_numpy()
         self.problems: list[Problem] = []
 
-    def add(self, mask: np.ndarray | pd.Series, column: str, message: str, values: pd.Series | None = None) -> None:
+    def add(
+        self, mask: np.ndarray | pd.Series, column: str, message: str, values: pd.Series | None = None
+    ) -> None:
         mask = np.asarray(mask, dtype=bool)
         if not mask.any():
             return
@@ -114,13 +116,17 @@ def number(
     bad = ~empty & ~is_word & (np.isnan(values) | np.isinf(values))
     values[np.isinf(values)] = np.nan
     with_comma = raw.str.contains(",", regex=False).to_numpy()
-    collect.add(bad & with_comma, column, f"not a number; expected {expected} with a point as the decimal separator")
+    collect.add(
+        bad & with_comma, column, f"not a number; expected {expected} with a point as the decimal separator"
+    )
     collect.add(bad & ~with_comma, column, f"not a number; expected {expected}")
     collect.add(required_mask & empty, column, f"required value is missing; expected {expected}")
     return values, is_word
 
 
-def in_range(collect: Collector, column: str, values: np.ndarray, rule: Range, *, skip: np.ndarray | None = None) -> None:
+def in_range(
+    collect: Collector, column: str, values: np.ndarray, rule: Range, *, skip: np.ndarray | None = None
+) -> None:
     outside = rule.outside(values)
     if skip is not None:
         outside &= ~skip
@@ -181,7 +187,8 @@ CODE_RULE = (
 
 
 def _code_fault(code: str) -> str:
-    """What makes ``code`` invalid, in words: the characters not allowed, a wrong first character, the length."""
+    """What makes ``code`` invalid, in words: the characters not allowed, a
+    wrong first character, the length."""
     faults = []
     odd = list(dict.fromkeys(c for c in code if not (c.isascii() and (c.isalnum() or c in "._-"))))
     if odd:
@@ -207,7 +214,8 @@ def patient_codes(collect: Collector, column: str = "patient") -> pd.Series:
             collect.add(
                 mask,
                 column,
-                f"not a valid patient code: {fault}; {CODE_RULE} (a pseudonymous code, never a name or record number)",
+                f"not a valid patient code: {fault}; {CODE_RULE} (a pseudonymous code, never a name or "
+                "record number)",
             )
     return raw
 

@@ -30,7 +30,8 @@ KnownPatients = Callable[[list[str]], Iterable[str]]
 
 
 def unknown_patients(collect: Collector, patient: pd.Series, known_patients: KnownPatients | None) -> None:
-    """Every row whose (well-formed) patient code is not stored, listed with the other problems of the file."""
+    """Every row whose (well-formed) patient code is not stored, listed with
+    the other problems of the file."""
     if known_patients is None:
         return
     valid = patient[patient.str.match(checks.CODE).to_numpy(dtype=bool)]
@@ -79,10 +80,18 @@ def validate_treatments(
         collect.add(dose <= 0, "dose", "a dose must be above 0")
     unit_map = {u.lower(): u for u in DOSE_UNITS}
     dose_unit = checks.vocabulary(collect, "dose_unit", unit_map)
-    collect.add(~np.isnan(dose) & dose_unit.isna().to_numpy() & (checks.text(cells, "dose_unit") == "").to_numpy(), "dose_unit", "a dose needs its unit (e.g. g/kg)")
+    collect.add(
+        ~np.isnan(dose) & dose_unit.isna().to_numpy() & (checks.text(cells, "dose_unit") == "").to_numpy(),
+        "dose_unit",
+        "a dose needs its unit (e.g. g/kg)",
+    )
     interval, _ = checks.number(collect, "interval_days", unit="days")
     with np.errstate(invalid="ignore"):
-        collect.add(~np.isnan(interval) & ((interval <= 0) | (interval != np.floor(interval)) | (interval > 3660)), "interval_days", "expected a whole number of days from 1 to 3660")
+        collect.add(
+            ~np.isnan(interval) & ((interval <= 0) | (interval != np.floor(interval)) | (interval > 3660)),
+            "interval_days",
+            "expected a whole number of days from 1 to 3660",
+        )
     note = checks.text(cells, "note")
     frame = pd.DataFrame(
         {
@@ -127,7 +136,11 @@ def validate_scores(
         with np.errstate(invalid="ignore"):
             outside = rows & ((value < info.minimum) | (value > info.maximum))
             fractional = rows & info.integer & ~np.isnan(value) & (value != np.floor(value))
-        collect.add(outside, "value", f"outside the {name} range; expected {info.minimum:g}–{info.maximum:g} {info.unit}")
+        collect.add(
+            outside,
+            "value",
+            f"outside the {name} range; expected {info.minimum:g}–{info.maximum:g} {info.unit}",
+        )
         collect.add(fractional & ~outside, "value", f"{name} takes whole numbers")
     frame = pd.DataFrame(
         {

@@ -154,7 +154,8 @@ def check_visit(
     )
     if chosen is None:
         raise NotFound(
-            f"Patient {code} has no visit on {visit_date.isoformat()}; visits: {', '.join(v.visit_date.isoformat() for v in visits)}"
+            f"Patient {code} has no visit on {visit_date.isoformat()}; visits: "
+            f"{', '.join(v.visit_date.isoformat() for v in visits)}"
         )
     index = [v.id for v in visits].index(chosen.id)
     previous = visits[index - 1] if index > 0 else None

@@ -31,18 +31,32 @@ def stored_fingerprints(session: Session, visit_ids: list[int]) -> dict[int, str
     key_columns = [Visit.id.label("visit_id"), Visit.patient_id.label("patient"), Visit.visit_date]
     visits, tests, sites = [], [], []
     for part in _chunks(visit_ids):
-        visits += session.execute(select(*key_columns, *[getattr(Visit, c) for c in VISIT_LEVEL]).where(Visit.id.in_(part))).all()
+        visits += session.execute(
+            select(*key_columns, *[getattr(Visit, c) for c in VISIT_LEVEL]).where(Visit.id.in_(part))
+        ).all()
         test_key = [NerveTest.visit_id, NerveTest.nerve, NerveTest.side, NerveTest.modality]
-        tests += session.execute(select(*test_key, *[getattr(NerveTest, c) for c in NERVE_LEVEL]).where(NerveTest.visit_id.in_(part))).all()
+        tests += session.execute(
+            select(*test_key, *[getattr(NerveTest, c) for c in NERVE_LEVEL]).where(
+                NerveTest.visit_id.in_(part)
+            )
+        ).all()
         site_values = [getattr(StimulationSite, c) for c in SITE_VALUES]
         sites += session.execute(
-            select(*test_key, *site_values).join(StimulationSite, StimulationSite.nerve_test_id == NerveTest.id).where(NerveTest.visit_id.in_(part))
+            select(*test_key, *site_values)
+            .join(StimulationSite, StimulationSite.nerve_test_id == NerveTest.id)
+            .where(NerveTest.visit_id.in_(part))
         ).all()
-    visit_frame = pd.DataFrame(visits, columns=["visit_id", "patient", "visit_date", *VISIT_LEVEL]).sort_values("visit_id")
+    visit_frame = pd.DataFrame(
+        visits, columns=["visit_id", "patient", "visit_date", *VISIT_LEVEL]
+    ).sort_values("visit_id")
     visit_frame["patient"] = visit_frame["visit_id"]  # one group per visit: the key only needs to be unique
     visit_frame["visit_date"] = 0
-    test_frame = pd.DataFrame(tests, columns=["patient", "nerve", "side", "modality", *NERVE_LEVEL]).assign(visit_date=0)
-    site_frame = pd.DataFrame(sites, columns=["patient", "nerve", "side", "modality", *SITE_VALUES]).assign(visit_date=0)
+    test_frame = pd.DataFrame(tests, columns=["patient", "nerve", "side", "modality", *NERVE_LEVEL]).assign(
+        visit_date=0
+    )
+    site_frame = pd.DataFrame(sites, columns=["patient", "nerve", "side", "modality", *SITE_VALUES]).assign(
+        visit_date=0
+    )
     visit_frame = visit_frame.sort_values(["patient", "visit_date"]).reset_index(drop=True)
     return dict(zip(visit_frame["visit_id"], fingerprints_of(site_frame, test_frame, visit_frame)))
 
@@ -57,12 +71,16 @@ def _snapshot(session: Session, visit_ids: list[int]) -> dict[int, dict[str, Any
     for part in _chunks(visit_ids):
         for row in session.execute(select(Visit.id, *visit_columns).where(Visit.id.in_(part))):
             visits[row[0]] = {c.key: _clean(v) for c, v in zip(visit_columns, row[1:])}
-        tests = session.execute(select(NerveTest.id, NerveTest.visit_id, *test_columns).where(NerveTest.visit_id.in_(part))).all()
+        tests = session.execute(
+            select(NerveTest.id, NerveTest.visit_id, *test_columns).where(NerveTest.visit_id.in_(part))
+        ).all()
         test_ids = [t[0] for t in tests]
         sites: dict[int, list[dict[str, Any]]] = {t: [] for t in test_ids}
         for test_part in _chunks(test_ids):
             for s in session.execute(
-                select(StimulationSite.nerve_test_id, *site_columns).where(StimulationSite.nerve_test_id.in_(test_part)).order_by(StimulationSite.site_order)
+                select(StimulationSite.nerve_test_id, *site_columns)
+                .where(StimulationSite.nerve_test_id.in_(test_part))
+                .order_by(StimulationSite.site_order)
             ):
                 sites[s[0]].append({c.name: _clean(v) for c, v in zip(site_columns, s[1:])})
         for t in tests:
@@ -72,8 +90,14 @@ def _snapshot(session: Session, visit_ids: list[int]) -> dict[int, dict[str, Any
     return {v: {"visit": visits.get(v, {}), "nerve_tests": tests_by_visit[v]} for v in visit_ids}
 
 
-def keep_history(session: Session, changed: pd.DataFrame, *, username: str, reason: str = "import --replace",
-                 forced: dict[int, dict[str, Any]] | None = None) -> None:
+def keep_history(
+    session: Session,
+    changed: pd.DataFrame,
+    *,
+    username: str,
+    reason: str = "import --replace",
+    forced: dict[int, dict[str, Any]] | None = None,
+) -> None:
     """Snapshot each visit in ``changed`` (``visit_id``, ``version``, ``status``, fingerprints, ``patient``,
     ``visit_date``) into ``visit_revisions`` before it is amended, and audit the replacement.
 
@@ -109,7 +133,11 @@ def keep_history(session: Session, changed: pd.DataFrame, *, username: str, reas
             action="replace_visit",
             entity="visits",
             entity_key=f"{row.patient}/{row.visit_date.isoformat()}",
-            before={"version": int(row.version), "content_sha256": row.db_fingerprint, "kept_as_revision": int(row.version)},
+            before={
+                "version": int(row.version),
+                "content_sha256": row.db_fingerprint,
+                "kept_as_revision": int(row.version),
+            },
             after=after,
         )
 
@@ -134,9 +162,13 @@ def last_changes(session: Session, visit_ids: list[int]) -> dict[int, str]:
         revisions = {
             (r.visit_id, r.revision): r
             for r in session.execute(
-                select(VisitRevision.visit_id, VisitRevision.revision, VisitRevision.replaced_by,
-                       VisitRevision.replaced_at, VisitRevision.reason)
-                .where(VisitRevision.visit_id.in_(part))
+                select(
+                    VisitRevision.visit_id,
+                    VisitRevision.revision,
+                    VisitRevision.replaced_by,
+                    VisitRevision.replaced_at,
+                    VisitRevision.reason,
+                ).where(VisitRevision.visit_id.in_(part))
             )
         }
         for visit_id, version, created_at in visits:
@@ -149,19 +181,40 @@ def last_changes(session: Session, visit_ids: list[int]) -> dict[int, str]:
     return found
 
 
-# -- what a re-import would change ----------------------------------------------------------------------------
+# -- what a re-import would change ---------------------------------------------------------------------------
 
 _WORDS = {
-    "label": "site name", "distance_mm": "distance", "latency_ms": "latency", "peak_latency_ms": "peak latency",
-    "amplitude_mv": "amplitude", "amplitude_uv": "amplitude", "duration_ms": "duration", "area_mvms": "area",
-    "temperature_c": "temperature", "lff_hz": "low-frequency filter", "f_latency_ms": "F-wave latency",
-    "f_persistence_pct": "F-wave persistence", "recording_site": "recording site", "wrist_entrapment": "wrist entrapment",
-    "height_cm": "height", "diagnosis": "diagnosis", "phenotype": "phenotype",
+    "label": "site name",
+    "distance_mm": "distance",
+    "latency_ms": "latency",
+    "peak_latency_ms": "peak latency",
+    "amplitude_mv": "amplitude",
+    "amplitude_uv": "amplitude",
+    "duration_ms": "duration",
+    "area_mvms": "area",
+    "temperature_c": "temperature",
+    "lff_hz": "low-frequency filter",
+    "f_latency_ms": "F-wave latency",
+    "f_persistence_pct": "F-wave persistence",
+    "recording_site": "recording site",
+    "wrist_entrapment": "wrist entrapment",
+    "height_cm": "height",
+    "diagnosis": "diagnosis",
+    "phenotype": "phenotype",
 }
 _UNITS = {
-    "distance_mm": "mm", "latency_ms": "ms", "peak_latency_ms": "ms", "amplitude_mv": "mV", "amplitude_uv": "µV",
-    "duration_ms": "ms", "area_mvms": "mV·ms", "temperature_c": "°C", "lff_hz": "Hz", "f_latency_ms": "ms",
-    "f_persistence_pct": "%", "height_cm": "cm",
+    "distance_mm": "mm",
+    "latency_ms": "ms",
+    "peak_latency_ms": "ms",
+    "amplitude_mv": "mV",
+    "amplitude_uv": "µV",
+    "duration_ms": "ms",
+    "area_mvms": "mV·ms",
+    "temperature_c": "°C",
+    "lff_hz": "Hz",
+    "f_latency_ms": "ms",
+    "f_persistence_pct": "%",
+    "height_cm": "cm",
 }
 _TEST_VALUES = [c for c in NERVE_LEVEL if c != "f_absent"]  # f_absent is shown inside f_latency_ms ("absent")
 _SITE_COMPARED = [c for c in SITE_VALUES if c != "site_order"]
@@ -220,9 +273,15 @@ def _stored_content(session: Session, visit_ids: list[int]):
     sites: dict[int, dict[tuple, dict[int, dict[str, Any]]]] = {v: {} for v in visit_ids}
     test_key = [NerveTest.visit_id, NerveTest.nerve, NerveTest.side, NerveTest.modality]
     for part in _chunks(visit_ids):
-        for row in session.execute(select(Visit.id, *[getattr(Visit, c) for c in VISIT_LEVEL]).where(Visit.id.in_(part))):
+        for row in session.execute(
+            select(Visit.id, *[getattr(Visit, c) for c in VISIT_LEVEL]).where(Visit.id.in_(part))
+        ):
             visits[row[0]] = dict(zip(VISIT_LEVEL, row[1:]))
-        for row in session.execute(select(*test_key, *[getattr(NerveTest, c) for c in NERVE_LEVEL]).where(NerveTest.visit_id.in_(part))):
+        for row in session.execute(
+            select(*test_key, *[getattr(NerveTest, c) for c in NERVE_LEVEL]).where(
+                NerveTest.visit_id.in_(part)
+            )
+        ):
             tests[row[0]][tuple(row[1:4])] = dict(zip(NERVE_LEVEL, row[4:]))
         site_rows = session.execute(
             select(*test_key, *[getattr(StimulationSite, c) for c in SITE_VALUES])
@@ -254,8 +313,13 @@ def describe_changes(session: Session, changed: pd.DataFrame, batch: Measurement
         return []
     if batch.rows is None:  # a batch assembled without its rows: say that the visit differs, not where
         return [
-            Problem(int(getattr(v, ROW)), "visit_date", v.visit_date.isoformat(), f"the visit of {v.patient} on this date is already stored "
-                    "with different values; import with --replace to replace it (the earlier values are kept in its history)")
+            Problem(
+                int(getattr(v, ROW)),
+                "visit_date",
+                v.visit_date.isoformat(),
+                f"the visit of {v.patient} on this date is already stored with different values; import with "
+                "--replace to replace it (the earlier values are kept in its history)",
+            )
             for v in changed.itertuples()
         ]
     keys = changed[[*VISIT_KEY, "visit_id"]]
@@ -275,17 +339,41 @@ def describe_changes(session: Session, changed: pd.DataFrame, batch: Measurement
         for column in VISIT_LEVEL:
             old, new = stored_visits[visit_id][column], new_visits.loc[visit_id, column]
             if not _same(old, new):
-                found.append(Problem(_first_row(visit_rows, column), column, None, _change(_WORDS[column], old, new, column)))
+                found.append(
+                    Problem(
+                        _first_row(visit_rows, column),
+                        column,
+                        None,
+                        _change(_WORDS[column], old, new, column),
+                    )
+                )
 
-        file_tests = {(t["nerve"], t["side"], t["modality"]): t for t in tests_by_visit[visit_id].to_dict("records")}
+        file_tests = {
+            (t["nerve"], t["side"], t["modality"]): t for t in tests_by_visit[visit_id].to_dict("records")
+        }
         for key in sorted(set(stored_tests[visit_id]) | set(file_tests)):
             name = _test_name(*key)
-            test_rows = visit_rows[(visit_rows["nerve"] == key[0]) & (visit_rows["side"] == key[1]) & (visit_rows["modality"] == key[2])]
+            test_rows = visit_rows[
+                (visit_rows["nerve"] == key[0])
+                & (visit_rows["side"] == key[1])
+                & (visit_rows["modality"] == key[2])
+            ]
             if key not in file_tests:
-                found.append(Problem(first, "nerve", None, f"{_PREFIX}the {name} nerve test is stored but not in the file"))
+                found.append(
+                    Problem(
+                        first, "nerve", None, f"{_PREFIX}the {name} nerve test is stored but not in the file"
+                    )
+                )
                 continue
             if key not in stored_tests[visit_id]:
-                found.append(Problem(int(test_rows[ROW].min()), "nerve", None, f"{_PREFIX}the {name} nerve test is not in the stored visit"))
+                found.append(
+                    Problem(
+                        int(test_rows[ROW].min()),
+                        "nerve",
+                        None,
+                        f"{_PREFIX}the {name} nerve test is not in the stored visit",
+                    )
+                )
                 continue
             old_test, new_test = stored_tests[visit_id][key], file_tests[key]
             for column in _TEST_VALUES:
@@ -293,22 +381,50 @@ def describe_changes(session: Session, changed: pd.DataFrame, batch: Measurement
                 if column == "f_latency_ms":
                     old, new = _f_wave(old_test), _f_wave(new_test)
                 if not _same(old, new):
-                    found.append(Problem(_first_row(test_rows, column), column, None, _change(f"{name} {_WORDS[column]}", old, new, column)))
+                    found.append(
+                        Problem(
+                            _first_row(test_rows, column),
+                            column,
+                            None,
+                            _change(f"{name} {_WORDS[column]}", old, new, column),
+                        )
+                    )
             old_sites = stored_sites[visit_id].get(key, {})
             new_sites = {int(r["site_order"]): r for r in test_rows.to_dict("records")}
             for order in sorted(set(old_sites) | set(new_sites)):
                 if order not in new_sites:
-                    found.append(Problem(int(test_rows[ROW].min()), "site_order", None, f"{_PREFIX}{name} site {order} is stored but not in the file"))
+                    found.append(
+                        Problem(
+                            int(test_rows[ROW].min()),
+                            "site_order",
+                            None,
+                            f"{_PREFIX}{name} site {order} is stored but not in the file",
+                        )
+                    )
                     continue
                 row = int(new_sites[order][ROW])
                 if order not in old_sites:
-                    found.append(Problem(row, "site_order", None, f"{_PREFIX}{name} site {order} is not in the stored visit"))
+                    found.append(
+                        Problem(
+                            row,
+                            "site_order",
+                            None,
+                            f"{_PREFIX}{name} site {order} is not in the stored visit",
+                        )
+                    )
                     continue
                 for column in _SITE_COMPARED:
                     old, new = old_sites[order][column], new_sites[order][column]
                     if not _same(old, new):
                         shown_column = "site" if column == "label" else column
-                        found.append(Problem(row, shown_column, None, _change(f"{name} site {order} {_WORDS[column]}", old, new, column)))
+                        found.append(
+                            Problem(
+                                row,
+                                shown_column,
+                                None,
+                                _change(f"{name} site {order} {_WORDS[column]}", old, new, column),
+                            )
+                        )
         problems.append(
             Problem(
                 first,

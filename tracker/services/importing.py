@@ -157,7 +157,9 @@ def _bulk_insert(session: Session, table, frame: pd.DataFrame, columns: list[str
         if isinstance(table.c[column].type, (Date, DateTime)):
             process = table.c[column].type.bind_processor(dialect) or (lambda value: value)
             converted = {
-                v: process(v.to_pydatetime() if isinstance(v, pd.Timestamp) else v) for v in set(cells) if v is not None
+                v: process(v.to_pydatetime() if isinstance(v, pd.Timestamp) else v)
+                for v in set(cells)
+                if v is not None
             }
             cells = [None if v is None else converted[v] for v in cells]
         cells_by_column.append(cells)
@@ -180,8 +182,16 @@ def import_file(
     today: dt.date | None = None,
 ) -> ImportReport:
     """Import one file (kind recognised from its header). Raises :class:`InputRejected` on any problem."""
-    return import_table(session, read_table(path), username=username, dry_run=dry_run, replace=replace,
-                        force=force, allow_unusual=allow_unusual, today=today)
+    return import_table(
+        session,
+        read_table(path),
+        username=username,
+        dry_run=dry_run,
+        replace=replace,
+        force=force,
+        allow_unusual=allow_unusual,
+        today=today,
+    )
 
 
 def import_table(
@@ -202,12 +212,29 @@ def import_table(
     :class:`~tracker.db.locking.DatabaseBusy`.
     """
     with busy_as_error():
-        return _import_table(session, table, username=username, dry_run=dry_run, replace=replace, force=force,
-                             allow_unusual=allow_unusual, today=today)
+        return _import_table(
+            session,
+            table,
+            username=username,
+            dry_run=dry_run,
+            replace=replace,
+            force=force,
+            allow_unusual=allow_unusual,
+            today=today,
+        )
 
 
-def _import_table(session: Session, table: InputTable, *, username: str, dry_run: bool, replace: bool,
-                  force: bool, allow_unusual: bool, today: dt.date | None) -> ImportReport:
+def _import_table(
+    session: Session,
+    table: InputTable,
+    *,
+    username: str,
+    dry_run: bool,
+    replace: bool,
+    force: bool,
+    allow_unusual: bool,
+    today: dt.date | None,
+) -> ImportReport:
     forced: list[str] = []
     if table.kind == "measurements":
         cells, stated, version_problems = _stated_versions(table.cells)
@@ -220,20 +247,39 @@ def _import_table(session: Session, table: InputTable, *, username: str, dry_run
             raise InputRejected(error.summary, merged) from None
         file_versions, disagreements = _versions_by_visit(batch, stated)
         if version_problems or disagreements:
-            raise InputRejected("The measurements file was refused",
-                                sorted(version_problems + disagreements, key=lambda p: p.row or 0))
-        report = _store_measurements(session, batch, username=username, dry_run=dry_run, replace=replace,
-                                     force=force, file_versions=file_versions, forced=forced)
+            raise InputRejected(
+                "The measurements file was refused",
+                sorted(version_problems + disagreements, key=lambda p: p.row or 0),
+            )
+        report = _store_measurements(
+            session,
+            batch,
+            username=username,
+            dry_run=dry_run,
+            replace=replace,
+            force=force,
+            file_versions=file_versions,
+            forced=forced,
+        )
     elif table.kind == "patients":
-        frame = validate_patients(table.cells, today=today,
-                                  known_patients=lambda codes: _stored_codes(session, codes))
+        frame = validate_patients(
+            table.cells, today=today, known_patients=lambda codes: _stored_codes(session, codes)
+        )
         report = _store_patients(session, frame, username=username, dry_run=dry_run, replace=replace)
     elif table.kind == "treatments":
-        frame = validate_treatments(table.cells, today=today, known_patients=lambda codes: _stored_codes(session, codes))
-        report = _store_records(session, frame, kind="treatments", username=username, dry_run=dry_run, replace=replace)
+        frame = validate_treatments(
+            table.cells, today=today, known_patients=lambda codes: _stored_codes(session, codes)
+        )
+        report = _store_records(
+            session, frame, kind="treatments", username=username, dry_run=dry_run, replace=replace
+        )
     else:
-        frame = validate_scores(table.cells, today=today, known_patients=lambda codes: _stored_codes(session, codes))
-        report = _store_records(session, frame, kind="scores", username=username, dry_run=dry_run, replace=replace)
+        frame = validate_scores(
+            table.cells, today=today, known_patients=lambda codes: _stored_codes(session, codes)
+        )
+        report = _store_records(
+            session, frame, kind="scores", username=username, dry_run=dry_run, replace=replace
+        )
     report.rows = len(table.cells)
     if not dry_run:
         audit.record(
@@ -274,17 +320,22 @@ def _stated_versions(cells: pd.DataFrame) -> tuple[pd.DataFrame, pd.Series | Non
     valid = numbers.notna() & (numbers >= 1) & (numbers <= 2**31 - 1) & (numbers == numbers.round())
     bad = (raw != "") & ~valid
     problems = [
-        Problem(int(row), VERSION_COLUMN, value[:20],
-                "expected the stored visit's version as a whole number from 1 (ncs-tracker show prints it as "
-                "'version N'), or an empty cell")
+        Problem(
+            int(row),
+            VERSION_COLUMN,
+            value[:20],
+            "expected the stored visit's version as a whole number from 1 (ncs-tracker show prints it as "
+            "'version N'), or an empty cell",
+        )
         for row, value in zip(cells.loc[bad, ROW], raw[bad])
     ]
     stated = pd.Series(numbers.where(valid).to_numpy(), index=cells[ROW].to_numpy())
     return cells.drop(columns=[VERSION_COLUMN]), stated, problems
 
 
-def _versions_by_visit(batch: MeasurementBatch,
-                       stated: pd.Series | None) -> tuple[pd.DataFrame, list[Problem]]:
+def _versions_by_visit(
+    batch: MeasurementBatch, stated: pd.Series | None
+) -> tuple[pd.DataFrame, list[Problem]]:
     """One ``file_version`` per visit that states one (empty cells are left out); a visit whose rows state
     different versions is a problem at its first disagreeing row."""
     if stated is None or batch.rows is None:
@@ -296,18 +347,29 @@ def _versions_by_visit(batch: MeasurementBatch,
     differ = rows[rows["file_version"].to_numpy() != np.asarray(expected, dtype=float)]
     differ = differ.drop_duplicates(VISIT_KEY)
     problems = [
-        Problem(int(getattr(r, ROW)), VERSION_COLUMN, None,
-                f"the rows of the visit of {r.patient} on {r.visit_date.isoformat()} state different "
-                f"versions ({int(first.loc[(r.patient, r.visit_date)])} and {int(r.file_version)}); a visit "
-                "is made from one version")
+        Problem(
+            int(getattr(r, ROW)),
+            VERSION_COLUMN,
+            None,
+            f"the rows of the visit of {r.patient} on {r.visit_date.isoformat()} state different "
+            f"versions ({int(first.loc[(r.patient, r.visit_date)])} and {int(r.file_version)}); a visit "
+            "is made from one version",
+        )
         for r in differ.itertuples()
     ]
     return first.astype(int).reset_index(), problems
 
 
-def _version_conflicts(session: Session, visits: pd.DataFrame, replaced: pd.Series,
-                       base: dict[tuple[str, dt.date], int] | None, *, force: bool, forced: list[str],
-                       lock: bool) -> tuple[list[Problem], dict[int, dict[str, Any]]]:
+def _version_conflicts(
+    session: Session,
+    visits: pd.DataFrame,
+    replaced: pd.Series,
+    base: dict[tuple[str, dt.date], int] | None,
+    *,
+    force: bool,
+    forced: list[str],
+    lock: bool,
+) -> tuple[list[Problem], dict[int, dict[str, Any]]]:
     """The stored visits this import would replace although they changed after the file's base version.
 
     The base of a visit is its ``visit_version`` in the file, else the version this import read before it took
@@ -342,12 +404,16 @@ def _version_conflicts(session: Session, visits: pd.DataFrame, replaced: pd.Seri
         elif based_on is None:
             what = f"{visit} was stored by another process while this import ran: {now}"
         else:
-            what = (f"{visit} was changed by another process while this import ran (it read version "
-                    f"{based_on}): {now}")
+            what = (
+                f"{visit} was changed by another process while this import ran (it read version "
+                f"{based_on}): {now}"
+            )
         if force:
             base_words = "no stored visit" if based_on is None else f"version {based_on}"
-            forced.append(f"{row.patient}/{row.visit_date.isoformat()}: stored version {stored}, "
-                          f"file based on {base_words}")
+            forced.append(
+                f"{row.patient}/{row.visit_date.isoformat()}: stored version {stored}, "
+                f"file based on {base_words}"
+            )
             overridden[int(row.visit_id)] = {
                 "stored_version": stored,
                 "based_on_version": based_on,
@@ -355,10 +421,14 @@ def _version_conflicts(session: Session, visits: pd.DataFrame, replaced: pd.Seri
             }
             continue
         problems.append(
-            Problem(int(getattr(row, ROW)), VERSION_COLUMN if from_file else "visit_date", None,
-                    f"{what}; nothing was replaced — look at the stored values (ncs-tracker show "
-                    f"{row.patient} --visit {row.visit_date.isoformat()}), make the change on them, or "
-                    "import with --replace --force to overwrite them anyway")
+            Problem(
+                int(getattr(row, ROW)),
+                VERSION_COLUMN if from_file else "visit_date",
+                None,
+                f"{what}; nothing was replaced — look at the stored values (ncs-tracker show "
+                f"{row.patient} --visit {row.visit_date.isoformat()}), make the change on them, or "
+                "import with --replace --force to overwrite them anyway",
+            )
         )
     return problems, overridden
 
@@ -383,7 +453,7 @@ def _base_versions(session: Session, batch: MeasurementBatch) -> dict[tuple[str,
     return {(codes[int(r.patient_id)], r.visit_date): int(r.version) for r in stored.itertuples()}
 
 
-# -- measurements ---------------------------------------------------------------------------------------------
+# -- measurements --------------------------------------------------------------------------------------------
 
 
 def _existing_patients(session: Session, codes: list[str]) -> pd.DataFrame:
@@ -403,10 +473,18 @@ def _existing_visits(session: Session, patient_ids: list[int]) -> pd.DataFrame:
     found = []
     for part in _chunks(patient_ids):
         found += session.execute(
-            select(Visit.id, Visit.patient_id, Visit.visit_date, Visit.content_sha256, Visit.status, Visit.version)
-            .where(Visit.patient_id.in_(part))
+            select(
+                Visit.id,
+                Visit.patient_id,
+                Visit.visit_date,
+                Visit.content_sha256,
+                Visit.status,
+                Visit.version,
+            ).where(Visit.patient_id.in_(part))
         ).all()
-    return pd.DataFrame(found, columns=["visit_id", "patient_id", "visit_date", "db_fingerprint", "status", "version"])
+    return pd.DataFrame(
+        found, columns=["visit_id", "patient_id", "visit_date", "db_fingerprint", "status", "version"]
+    )
 
 
 def _patient_conflicts(patients: pd.DataFrame) -> list[Problem]:
@@ -422,15 +500,24 @@ def _patient_conflicts(patients: pd.DataFrame) -> list[Problem]:
                         int(getattr(row, ROW)),
                         column,
                         str(given if column == "sex" else int(given)),
-                        f"patient {row.patient} is stored with {column} {stored!r}; import with --replace to change it",
+                        f"patient {row.patient} is stored with {column} {stored!r}; import with --replace to "
+                        "change it",
                     )
                 )
     return problems
 
 
-def _store_measurements(session: Session, batch: MeasurementBatch, *, username: str, dry_run: bool,
-                        replace: bool, force: bool = False, file_versions: pd.DataFrame | None = None,
-                        forced: list[str] | None = None) -> ImportReport:
+def _store_measurements(
+    session: Session,
+    batch: MeasurementBatch,
+    *,
+    username: str,
+    dry_run: bool,
+    replace: bool,
+    force: bool = False,
+    file_versions: pd.DataFrame | None = None,
+    forced: list[str] | None = None,
+) -> ImportReport:
     report = ImportReport(kind="measurements", rows=0, dry_run=dry_run, unusual=batch.unusual)
     forced = [] if forced is None else forced
     # What this import starts from, read before it waits for the write lock; then everything is read again
@@ -463,11 +550,14 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     if not replace:
         conflicts += describe_changes(session, visits[changed], batch)
     else:
-        late, forced_visits = _version_conflicts(session, visits, changed, base, force=force, forced=forced,
-                                                 lock=not dry_run)
+        late, forced_visits = _version_conflicts(
+            session, visits, changed, base, force=force, forced=forced, lock=not dry_run
+        )
         conflicts += late
     if conflicts:
-        raise InputRejected("The file conflicts with stored data", sorted(conflicts, key=lambda p: p.row or 0))  # stable: a visit's line first
+        raise InputRejected(
+            "The file conflicts with stored data", sorted(conflicts, key=lambda p: p.row or 0)
+        )  # stable: a visit's line first
 
     new_patients = patients[patients["patient_id"].isna()]
     report.patients_added = len(new_patients)
@@ -475,7 +565,9 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     report.replaced = int(changed.sum())
     report.added = int((~is_stored).sum())
     written = ~unchanged
-    stored_dates = stored.assign(patient=stored["patient_id"].map(patients.set_index("patient_id")["patient"].to_dict()))
+    stored_dates = stored.assign(
+        patient=stored["patient_id"].map(patients.set_index("patient_id")["patient"].to_dict())
+    )
     report.warnings = (
         _single_nerve_visits(batch, visits[written])
         + _date_slips(visits[written], batch.visits, stored_dates)
@@ -484,8 +576,19 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     if dry_run:
         return report
     try:
-        _write_measurements(session, batch, patients, new_patients, visits, is_stored, unchanged, changed,
-                            username=username, replace=replace, forced_visits=forced_visits)
+        _write_measurements(
+            session,
+            batch,
+            patients,
+            new_patients,
+            visits,
+            is_stored,
+            unchanged,
+            changed,
+            username=username,
+            replace=replace,
+            forced_visits=forced_visits,
+        )
     except Exception as error:
         if not is_unique_violation(error):
             raise
@@ -493,10 +596,20 @@ def _store_measurements(session: Session, batch: MeasurementBatch, *, username: 
     return report
 
 
-def _write_measurements(session: Session, batch: MeasurementBatch, patients: pd.DataFrame,
-                        new_patients: pd.DataFrame, visits: pd.DataFrame, is_stored: pd.Series,
-                        unchanged: pd.Series, changed: pd.Series, *, username: str, replace: bool,
-                        forced_visits: dict[int, dict[str, Any]]) -> None:
+def _write_measurements(
+    session: Session,
+    batch: MeasurementBatch,
+    patients: pd.DataFrame,
+    new_patients: pd.DataFrame,
+    visits: pd.DataFrame,
+    is_stored: pd.Series,
+    unchanged: pd.Series,
+    changed: pd.Series,
+    *,
+    username: str,
+    replace: bool,
+    forced_visits: dict[int, dict[str, Any]],
+) -> None:
     """Write what :func:`_store_measurements` decided: new patients and visits, replaced visits (kept in
     their history first), nerve tests and sites."""
     if len(new_patients):
@@ -520,8 +633,16 @@ def _write_measurements(session: Session, batch: MeasurementBatch, patients: pd.
         keep_history(session, visits[changed], username=username, forced=forced_visits)
         for part in _chunks(replaced_ids):
             session.execute(delete(NerveTest).where(NerveTest.visit_id.in_(part)))
-        columns = ["visit_id", "patient", "visit_date", "height_cm", "diagnosis", "phenotype", "fingerprint",
-                   "version"]
+        columns = [
+            "visit_id",
+            "patient",
+            "visit_date",
+            "height_cm",
+            "diagnosis",
+            "phenotype",
+            "fingerprint",
+            "version",
+        ]
         for row in _records(visits[changed], columns):
             done = session.execute(
                 update(Visit)
@@ -536,10 +657,19 @@ def _write_measurements(session: Session, batch: MeasurementBatch, patients: pd.
                 )
             )
             if done.rowcount != 1:  # read as the writer: only a writer outside these rules gets here
-                raise InputRejected("The file conflicts with stored data", [Problem(
-                    None, "visit_date", None,
-                    f"the visit of {row['patient']} on {row['visit_date'].isoformat()} changed while it was "
-                    "being replaced (its version moved on); nothing was written — import again")])
+                raise InputRejected(
+                    "The file conflicts with stored data",
+                    [
+                        Problem(
+                            None,
+                            "visit_date",
+                            None,
+                            f"the visit of {row['patient']} on {row['visit_date'].isoformat()} changed while "
+                            "it was being replaced (its version moved on); nothing was written — import "
+                            "again",
+                        )
+                    ],
+                )
 
     new_visits = visits[~is_stored].copy()
     if len(new_visits):
@@ -551,7 +681,18 @@ def _write_measurements(session: Session, batch: MeasurementBatch, patients: pd.
             version=1,
             created_at=now,
         )
-        columns = ["id", "patient_id", "visit_date", "height_cm", "diagnosis", "phenotype", "content_sha256", "status", "version", "created_at"]
+        columns = [
+            "id",
+            "patient_id",
+            "visit_date",
+            "height_cm",
+            "diagnosis",
+            "phenotype",
+            "content_sha256",
+            "status",
+            "version",
+            "created_at",
+        ]
         _bulk_insert(session, Visit.__table__, new_visits, columns)
         visits.loc[~is_stored, "visit_id"] = new_visits["id"].to_numpy()
     checkpoint("import-visits-written")
@@ -567,10 +708,14 @@ def _versions_of_new_visits(new_visits: pd.DataFrame) -> list[Problem]:
     visit is added as version 1, with a warning."""
     stated = new_visits[new_visits["file_version"].notna()]
     return [
-        Problem(int(getattr(r, ROW)), VERSION_COLUMN, None,
-                f"visit_version {int(r.file_version)} is stated but no visit of {r.patient} on "
-                f"{r.visit_date.isoformat()} is stored here: it is added as a new visit (version 1) — check "
-                "the date if it was meant to amend one")
+        Problem(
+            int(getattr(r, ROW)),
+            VERSION_COLUMN,
+            None,
+            f"visit_version {int(r.file_version)} is stated but no visit of {r.patient} on "
+            f"{r.visit_date.isoformat()} is stored here: it is added as a new visit (version 1) — check "
+            "the date if it was meant to amend one",
+        )
         for r in stated.itertuples()
     ]
 
@@ -583,10 +728,16 @@ def _stored_meanwhile(written: pd.DataFrame) -> InputRejected:
     more = f" and {len(written) - len(named)} more" if len(written) > len(named) else ""
     return InputRejected(
         "Another process wrote some of the same visits at the same time",
-        [Problem(None, "visit_date", None,
-                 f"{', '.join(named)}{more}: stored or replaced by another import while this one ran; "
-                 "nothing of this file was written — import it again (visits now stored the same are "
-                 "reported as unchanged, changed ones are listed)")],
+        [
+            Problem(
+                None,
+                "visit_date",
+                None,
+                f"{', '.join(named)}{more}: stored or replaced by another import while this one ran; "
+                "nothing of this file was written — import it again (visits now stored the same are "
+                "reported as unchanged, changed ones are listed)",
+            )
+        ],
     )
 
 
@@ -597,15 +748,20 @@ def _single_nerve_visits(batch: MeasurementBatch, written: pd.DataFrame) -> list
     """A visit of one nerve (one side of one nerve, motor and/or sensory) is imported, with a warning: the
     criteria sets need several nerves, so it may be part of a study exported in pieces."""
     nerves = batch.nerve_tests.drop_duplicates(["patient", "visit_date", "nerve", "side"])
-    counts = nerves.groupby(["patient", "visit_date"]).agg(count=("nerve", "size"), nerve=("nerve", "first"), side=("side", "first"))
-    single = written.merge(counts[counts["count"] == 1].reset_index(), on=["patient", "visit_date"], how="inner")
+    counts = nerves.groupby(["patient", "visit_date"]).agg(
+        count=("nerve", "size"), nerve=("nerve", "first"), side=("side", "first")
+    )
+    single = written.merge(
+        counts[counts["count"] == 1].reset_index(), on=["patient", "visit_date"], how="inner"
+    )
     return [
         Problem(
             int(getattr(row, ROW)),
             "nerve",
             None,
-            f"the visit of {row.patient} on {row.visit_date.isoformat()} holds a single nerve ({row.nerve.replace('_', ' ')} "
-            f"{row.side}); the criteria need several nerves — check that the whole study is in the file",
+            f"the visit of {row.patient} on {row.visit_date.isoformat()} holds a single nerve "
+            f"({row.nerve.replace('_', ' ')} {row.side}); the criteria need several nerves — check that the "
+            "whole study is in the file",
         )
         for row in single.itertuples()
     ]
@@ -622,8 +778,8 @@ def _swapped(day: dt.date) -> dt.date | None:
 
 
 def _date_slips(written: pd.DataFrame, file_visits: pd.DataFrame, stored: pd.DataFrame) -> list[Problem]:
-    """A visit within 14 days of another visit of the same patient, whose day and month swapped would be a real
-    date, may carry a date-entry slip: imported, with a warning naming both dates."""
+    """A visit within 14 days of another visit of the same patient, whose day and month swapped would be a
+    real date, may carry a date-entry slip: imported, with a warning naming both dates."""
     candidates = [(row, _swapped(row.visit_date)) for row in written.itertuples()]
     candidates = [(row, swapped) for row, swapped in candidates if swapped is not None]
     if not candidates:
@@ -635,7 +791,9 @@ def _date_slips(written: pd.DataFrame, file_visits: pd.DataFrame, stored: pd.Dat
                 dates.setdefault(patient, set()).add(day)
     warnings = []
     for row, swapped in candidates:
-        near = sorted(d for d in dates.get(row.patient, ()) if 0 < abs((d - row.visit_date).days) <= SLIP_WINDOW_DAYS)
+        near = sorted(
+            d for d in dates.get(row.patient, ()) if 0 < abs((d - row.visit_date).days) <= SLIP_WINDOW_DAYS
+        )
         if not near:
             continue
         other = min(near, key=lambda d: abs((d - row.visit_date).days))
@@ -645,9 +803,9 @@ def _date_slips(written: pd.DataFrame, file_visits: pd.DataFrame, stored: pd.Dat
                 int(getattr(row, ROW)),
                 "visit_date",
                 None,
-                f"the visit of {row.patient} on {row.visit_date.isoformat()} is {gap} day{'s' if gap != 1 else ''} from "
-                f"their visit on {other.isoformat()}; with day and month swapped it would be {swapped.isoformat()} "
-                "— check the date for an entry slip",
+                f"the visit of {row.patient} on {row.visit_date.isoformat()} is {gap} "
+                f"day{'s' if gap != 1 else ''} from their visit on {other.isoformat()}; with day and month "
+                f"swapped it would be {swapped.isoformat()} — check the date for an entry slip",
             )
         )
     return warnings
@@ -674,7 +832,15 @@ def _fill_or_replace_patients(session: Session, known: pd.DataFrame, *, username
         if changes:
             before = {k: _clean(getattr(row, f"db_{k}")) for k in changes}
             session.execute(update(Patient).where(Patient.id == int(row.patient_id)).values(**changes))
-            audit.record(session, username=username, action="update_patient", entity="patients", entity_key=row.patient, before=before, after=changes)
+            audit.record(
+                session,
+                username=username,
+                action="update_patient",
+                entity="patients",
+                entity_key=row.patient,
+                before=before,
+                after=changes,
+            )
 
 
 def _insert_nerve_tests(session: Session, batch: MeasurementBatch, written: pd.DataFrame) -> None:
@@ -686,12 +852,35 @@ def _insert_nerve_tests(session: Session, batch: MeasurementBatch, written: pd.D
     tests = batch.nerve_tests.merge(written, on=key, how="inner")
     tests["visit_id"] = tests["visit_id"].astype(int)
     tests["f_absent"] = tests["f_absent"].astype(bool)
-    test_columns = ["visit_id", *test_key, "recording_site", "temperature_c", "lff_hz", "f_latency_ms", "f_absent", "f_persistence_pct", "wrist_entrapment"]
+    test_columns = [
+        "visit_id",
+        *test_key,
+        "recording_site",
+        "temperature_c",
+        "lff_hz",
+        "f_latency_ms",
+        "f_absent",
+        "f_persistence_pct",
+        "wrist_entrapment",
+    ]
     tests["nerve_test_id"] = _allocate_ids(session, NerveTest.__table__, len(tests))
-    _bulk_insert(session, NerveTest.__table__, tests.rename(columns={"nerve_test_id": "id"}), ["id", *test_columns])
+    _bulk_insert(
+        session, NerveTest.__table__, tests.rename(columns={"nerve_test_id": "id"}), ["id", *test_columns]
+    )
     sites = batch.sites.merge(tests[[*key, *test_key, "nerve_test_id"]], on=[*key, *test_key], how="inner")
     sites["nerve_test_id"] = sites["nerve_test_id"].astype(int)
-    site_columns = ["nerve_test_id", "site_order", "label", "distance_mm", "latency_ms", "peak_latency_ms", "amplitude_mv", "amplitude_uv", "duration_ms", "area_mvms"]
+    site_columns = [
+        "nerve_test_id",
+        "site_order",
+        "label",
+        "distance_mm",
+        "latency_ms",
+        "peak_latency_ms",
+        "amplitude_mv",
+        "amplitude_uv",
+        "duration_ms",
+        "area_mvms",
+    ]
     _bulk_insert(session, StimulationSite.__table__, sites, site_columns)
 
 
@@ -709,14 +898,18 @@ def _refresh_patient_diagnosis(session: Session, patient_ids: list[int]) -> None
             session.execute(update(Patient).where(Patient.id.in_(part)).values({column: latest}))
 
 
-# -- treatments and scores ------------------------------------------------------------------------------------
+# -- treatments and scores -----------------------------------------------------------------------------------
 
 
-def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username: str, dry_run: bool, replace: bool) -> ImportReport:
+def _store_records(
+    session: Session, frame: pd.DataFrame, *, kind: str, username: str, dry_run: bool, replace: bool
+) -> ImportReport:
     report = ImportReport(kind=kind, rows=0, dry_run=dry_run)
     model = Treatment if kind == "treatments" else OutcomeScore
     key = TREATMENT_KEY if kind == "treatments" else SCORE_KEY
-    value_columns = ["end_date", "dose", "dose_unit", "interval_days", "note"] if kind == "treatments" else ["value"]
+    value_columns = (
+        ["end_date", "dose", "dose_unit", "interval_days", "note"] if kind == "treatments" else ["value"]
+    )
     date_column = "start_date" if kind == "treatments" else "score_date"
     frame = frame.rename(columns={"date": "score_date"}) if kind == "scores" else frame
     key = [date_column if k == "date" else k for k in key]
@@ -727,7 +920,10 @@ def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username
     ids = _existing_patients(session, codes).set_index("patient")["patient_id"]
     unknown = frame[~frame["patient"].isin(ids.index)]
     if len(unknown):  # validated without ``known_patients``: still refuse, row by row
-        problems = [Problem(int(r), "patient", p, "unknown patient; import the patient's measurements first") for r, p in zip(unknown[ROW], unknown["patient"])]
+        problems = [
+            Problem(int(r), "patient", p, "unknown patient; import the patient's measurements first")
+            for r, p in zip(unknown[ROW], unknown["patient"])
+        ]
         raise InputRejected(f"The {kind} file was refused", problems)
     frame = frame.assign(patient_id=frame["patient"].map(ids).astype(int))
     key_db = ["patient_id"] + key[1:]
@@ -735,7 +931,9 @@ def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username
     stored_rows = []
     for part in _chunks([int(i) for i in ids]):
         stored_rows += session.execute(
-            select(model.id, *[getattr(model, c) for c in key_db + value_columns]).where(model.patient_id.in_(part))
+            select(model.id, *[getattr(model, c) for c in key_db + value_columns]).where(
+                model.patient_id.in_(part)
+            )
         ).all()
     stored = pd.DataFrame(stored_rows, columns=["record_id"] + key_db + [f"db_{c}" for c in value_columns])
     merged = frame.merge(stored, on=key_db, how="left")
@@ -763,16 +961,27 @@ def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username
                             int(r[ROW]),
                             column,
                             None,
-                            f"differs from the stored {kind[:-1]} of {r['patient']} ({record}): {column.replace('_', ' ')} "
-                            f"{shown_value(stored)} → {shown_value(given)}{unit}; import with --replace to replace it",
+                            f"differs from the stored {kind[:-1]} of {r['patient']} ({record}): "
+                            f"{column.replace('_', ' ')} {shown_value(stored)} → {shown_value(given)}{unit}; "
+                            "import with --replace to replace it",
                         )
                     )
         raise InputRejected("The file conflicts with stored data", problems)
-    report.added, report.replaced, report.unchanged = int((~is_stored).sum()), int(changed.sum()), int(unchanged.sum())
+    report.added, report.replaced, report.unchanged = (
+        int((~is_stored).sum()),
+        int(changed.sum()),
+        int(unchanged.sum()),
+    )
     if dry_run:
         return report
     if (~is_stored).any():
-        session.execute(insert(model), [{k: _clean(v) if k != "interval_days" or v is None else int(v) for k, v in r.items()} for r in _records(merged[~is_stored], key_db + value_columns)])
+        session.execute(
+            insert(model),
+            [
+                {k: _clean(v) if k != "interval_days" or v is None else int(v) for k, v in r.items()}
+                for r in _records(merged[~is_stored], key_db + value_columns)
+            ],
+        )
     for r in merged[changed].itertuples():
         before = {c: _jsonable(getattr(r, f"db_{c}")) for c in value_columns}
         after = {c: _jsonable(getattr(r, c)) for c in value_columns}
@@ -780,7 +989,15 @@ def _store_records(session: Session, frame: pd.DataFrame, *, kind: str, username
         if "interval_days" in values and values["interval_days"] is not None:
             values["interval_days"] = int(values["interval_days"])
         session.execute(update(model).where(model.id == int(r.record_id)).values(**values))
-        audit.record(session, username=username, action=f"replace_{kind[:-1]}", entity=model.__tablename__, entity_key=f"{r.patient}/{getattr(r, key[1])}/{getattr(r, key[-1])}", before=before, after=after)
+        audit.record(
+            session,
+            username=username,
+            action=f"replace_{kind[:-1]}",
+            entity=model.__tablename__,
+            entity_key=f"{r.patient}/{getattr(r, key[1])}/{getattr(r, key[-1])}",
+            before=before,
+            after=after,
+        )
     return report
 
 
@@ -811,8 +1028,9 @@ class _PatientChange:
     replaced: bool = False
 
 
-def _store_patients(session: Session, frame: pd.DataFrame, *, username: str, dry_run: bool,
-                    replace: bool) -> ImportReport:
+def _store_patients(
+    session: Session, frame: pd.DataFrame, *, username: str, dry_run: bool, replace: bool
+) -> ImportReport:
     """Fill empty values of stored patients and their identities; a value that differs from a stored one is
     refused unless ``replace`` (as sex and birth year in a measurements file). Identity fields go to
     ``patient_identities`` only, and messages and the audit trail name the fields, never their values."""
@@ -824,21 +1042,29 @@ def _store_patients(session: Session, frame: pd.DataFrame, *, username: str, dry
     ids: dict[str, int] = {}
     for part in _chunks(codes):
         for row in session.execute(
-            select(Patient.id, Patient.code, *[getattr(Patient, c) for c in RECORD_VALUES])
-            .where(Patient.code.in_(part))
+            select(Patient.id, Patient.code, *[getattr(Patient, c) for c in RECORD_VALUES]).where(
+                Patient.code.in_(part)
+            )
         ):
             ids[row.code] = int(row.id)
             record[row.code] = {c: getattr(row, c) for c in RECORD_VALUES}
     unknown = frame[~frame["patient"].isin(list(ids))]
     if len(unknown):  # validated without ``known_patients``: still refuse, row by row
-        raise InputRejected("The patients file was refused", guarded([
-            Problem(int(r), "patient", p, "unknown patient; import the patient's measurements first")
-            for r, p in zip(unknown[ROW], unknown["patient"])]))
+        raise InputRejected(
+            "The patients file was refused",
+            guarded(
+                [
+                    Problem(int(r), "patient", p, "unknown patient; import the patient's measurements first")
+                    for r, p in zip(unknown[ROW], unknown["patient"])
+                ]
+            ),
+        )
     identities: dict[int, dict[str, Any]] = {}
     for part in _chunks(sorted(ids.values())):
         for row in session.execute(
-            select(PatientIdentity.patient_id, *[getattr(PatientIdentity, c) for c in IDENTITY_VALUES])
-            .where(PatientIdentity.patient_id.in_(part))
+            select(PatientIdentity.patient_id, *[getattr(PatientIdentity, c) for c in IDENTITY_VALUES]).where(
+                PatientIdentity.patient_id.in_(part)
+            )
         ):
             identities[int(row.patient_id)] = {c: getattr(row, c) for c in IDENTITY_VALUES}
 
@@ -859,11 +1085,15 @@ def _store_patients(session: Session, frame: pd.DataFrame, *, username: str, dry
                 continue
             if stored is not None and not replace:
                 if is_identity:  # neither value is shown: a name or record number is not for a message
-                    message = (f"patient {code} is stored with another {IDENTITY_WORDS[column]}; import with "
-                               "--replace to replace it")
+                    message = (
+                        f"patient {code} is stored with another {IDENTITY_WORDS[column]}; import with "
+                        "--replace to replace it"
+                    )
                 else:
-                    message = (f"patient {code} is stored with {RECORD_WORDS[column]} {shown_value(stored)}, "
-                               f"the file gives {shown_value(given)}; import with --replace to replace it")
+                    message = (
+                        f"patient {code} is stored with {RECORD_WORDS[column]} {shown_value(stored)}, "
+                        f"the file gives {shown_value(given)}; import with --replace to replace it"
+                    )
                 conflicts.append(Problem(change.row, column, None, message))
                 continue
             change.replaced = change.replaced or stored is not None
@@ -876,8 +1106,9 @@ def _store_patients(session: Session, frame: pd.DataFrame, *, username: str, dry
                 change.record_before[column] = _jsonable(stored)
         changes.append(change)
     if conflicts:
-        raise InputRejected("The file conflicts with stored data",
-                            sorted(conflicts, key=lambda p: p.row or 0))
+        raise InputRejected(
+            "The file conflicts with stored data", sorted(conflicts, key=lambda p: p.row or 0)
+        )
     report.replaced = sum(c.replaced for c in changes)
     report.added = sum(bool(c.record or c.identity) and not c.replaced for c in changes)
     report.unchanged = sum(not (c.record or c.identity) for c in changes)
@@ -888,22 +1119,38 @@ def _store_patients(session: Session, frame: pd.DataFrame, *, username: str, dry
     for change in changes:
         if change.record:
             session.execute(update(Patient).where(Patient.id == change.patient_id).values(**change.record))
-            audit.record(session, username=username, action="update_patient", entity="patients",
-                         entity_key=change.code, before=change.record_before,
-                         after={k: _jsonable(v) for k, v in change.record.items()})
+            audit.record(
+                session,
+                username=username,
+                action="update_patient",
+                entity="patients",
+                entity_key=change.code,
+                before=change.record_before,
+                after={k: _jsonable(v) for k, v in change.record.items()},
+            )
         if change.identity:
             if change.identity_stored:
-                session.execute(update(PatientIdentity).where(PatientIdentity.patient_id == change.patient_id)
-                                .values(**change.identity))
+                session.execute(
+                    update(PatientIdentity)
+                    .where(PatientIdentity.patient_id == change.patient_id)
+                    .values(**change.identity)
+                )
             else:
                 session.execute(
                     insert(PatientIdentity).values(patient_id=change.patient_id, **change.identity)
                 )
             # The fields, never their values: the audit trail is read by people who may not see identities.
-            audit.record(session, username=username, action="update_patient_identity",
-                         entity="patient_identities", entity_key=change.code,
-                         after={"fields_set": sorted(change.identity),
-                                "fields_replaced": sorted(change.identity_replaced)})
+            audit.record(
+                session,
+                username=username,
+                action="update_patient_identity",
+                entity="patient_identities",
+                entity_key=change.code,
+                after={
+                    "fields_set": sorted(change.identity),
+                    "fields_replaced": sorted(change.identity_replaced),
+                },
+            )
     return report
 
 
@@ -914,8 +1161,10 @@ def _onsets_after_visits(session: Session, changes: list[_PatientChange]) -> lis
     first: dict[int, dt.date] = {}
     for part in _chunks(sorted(onsets)):
         first.update(
-            (int(pid), day) for pid, day in session.execute(
-                select(Visit.patient_id, func.min(Visit.visit_date)).where(Visit.patient_id.in_(part))
+            (int(pid), day)
+            for pid, day in session.execute(
+                select(Visit.patient_id, func.min(Visit.visit_date))
+                .where(Visit.patient_id.in_(part))
                 .group_by(Visit.patient_id)
             )
         )
@@ -923,8 +1172,13 @@ def _onsets_after_visits(session: Session, changes: list[_PatientChange]) -> lis
     for pid, change in onsets.items():
         onset, visit = change.record["onset_date"], first.get(pid)
         if visit is not None and onset > visit:
-            warnings.append(Problem(
-                change.row, "onset_date", None,
-                f"the onset of {change.code} ({onset.isoformat()}) is after their first visit "
-                f"({visit.isoformat()}): days_since_onset of that visit is negative — check the date"))
+            warnings.append(
+                Problem(
+                    change.row,
+                    "onset_date",
+                    None,
+                    f"the onset of {change.code} ({onset.isoformat()}) is after their first visit "
+                    f"({visit.isoformat()}): days_since_onset of that visit is negative — check the date",
+                )
+            )
     return sorted(warnings, key=lambda p: p.row or 0)

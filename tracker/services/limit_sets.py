@@ -27,7 +27,16 @@ from tracker.services.input_limits import excerpt, from_environment, guarded
 from tracker.services.tables import ROW, InputTable, read_table
 
 REQUIRED = ["nerve", "modality", "parameter", "bound", "value"]
-OPTIONAL = ["age_min", "age_max", "height_min_cm", "height_max_cm", "sex", "source", "status", "recording_site"]
+OPTIONAL = [
+    "age_min",
+    "age_max",
+    "height_min_cm",
+    "height_max_cm",
+    "sex",
+    "source",
+    "status",
+    "recording_site",
+]
 # A laboratory's set has tens to a few hundred rows; the overlap check compares the strata of one nerve,
 # modality, parameter and bound pairwise, so a set and each of its groups are kept well below the general
 # row limit of an import file (100 strata: e.g. 10 age bands × 5 height bands × 2 sexes).
@@ -48,7 +57,13 @@ PLAUSIBLE_QUANTITY = {
     ("amplitude", "sensory"): "amplitude_uv",
 }
 AGE_BAND = Range(
-    "age", "years", 0, True, 120, True, False,
+    "age",
+    "years",
+    0,
+    True,
+    120,
+    True,
+    False,
     "no documented human life reaches 123 years; common practice, no source",
 )
 
@@ -87,7 +102,9 @@ def validate_limits(cells: pd.DataFrame) -> pd.DataFrame:
             collect.add_one(None, None, None, "the file has a header but no data rows")
         raise InputRejected("The limits file was refused", guarded(collect.sorted_problems()))
     nerve_words = {w: catalogue.canonical_nerve(w) for w in catalogue.known_nerve_words()}
-    nerve = checks.vocabulary(collect, "nerve", nerve_words, required=True, shown_choices=sorted(catalogue.nerves()))
+    nerve = checks.vocabulary(
+        collect, "nerve", nerve_words, required=True, shown_choices=sorted(catalogue.nerves())
+    )
     modality = checks.vocabulary(collect, "modality", {m: m for m in MODALITIES}, required=True)
     parameter = checks.vocabulary(collect, "parameter", {p: p for p in LIMIT_PARAMETERS}, required=True)
     bound = checks.vocabulary(collect, "bound", {b: b for b in LIMIT_BOUNDS}, required=True)
@@ -108,11 +125,13 @@ def validate_limits(cells: pd.DataFrame) -> pd.DataFrame:
             collect.add(
                 outside,
                 column,
-                f"outside the plausible range of an age or height band; expected {rule.describe()}"
+                f"outside the plausible range of an age or height band; expected {rule.describe()}",
             )
         bands[low], bands[high] = lo, hi
     sex = checks.vocabulary(collect, "sex", {s: s for s in SEXES})
-    status = checks.vocabulary(collect, "status", {"verified": "verified", "memory": "memory", "local": "local"})
+    status = checks.vocabulary(
+        collect, "status", {"verified": "verified", "memory": "memory", "local": "local"}
+    )
     frame = pd.DataFrame(
         {
             ROW: cells[ROW].to_numpy(),
@@ -140,7 +159,9 @@ def validate_limits(cells: pd.DataFrame) -> pd.DataFrame:
         )
     for pair in [] if len(crowded) else limit_rules.overlapping_strata(frame):
         a, b = (int(frame.loc[i, ROW]) for i in pair)
-        collect.add_one(b, None, None, f"rows {a} and {b} give the same limit for overlapping strata; narrow one of them")
+        collect.add_one(
+            b, None, None, f"rows {a} and {b} give the same limit for overlapping strata; narrow one of them"
+        )
     if collect.problems:
         raise InputRejected("The limits file was refused", guarded(collect.sorted_problems()))
     return frame
@@ -162,15 +183,29 @@ def _plausible_values(
         collect.add(outside, "value", message)
 
 
-def import_limit_set(session: Session, path: Path, *, name: str, username: str, description: str | None = None) -> LimitSetInfo:
+def import_limit_set(
+    session: Session, path: Path, *, name: str, username: str, description: str | None = None
+) -> LimitSetInfo:
     """Store a laboratory's limits as a new set, or as the next version of the set with that name."""
-    return import_limit_table(session, read_table(path, allowed_kinds=("limits",)), name=name, username=username, description=description)
+    return import_limit_table(
+        session,
+        read_table(path, allowed_kinds=("limits",)),
+        name=name,
+        username=username,
+        description=description,
+    )
 
 
-def import_limit_table(session: Session, table: InputTable, *, name: str, username: str, description: str | None = None) -> LimitSetInfo:
-    """As :func:`import_limit_set`, from a parsed table (an upload: ``parse_table(raw, suffix, ("limits",))``)."""
+def import_limit_table(
+    session: Session, table: InputTable, *, name: str, username: str, description: str | None = None
+) -> LimitSetInfo:
+    """As :func:`import_limit_set`, from a parsed table (an upload:
+    ``parse_table(raw, suffix, ("limits",))``)."""
     if not name.strip():
-        raise InputRejected("The limit set needs a name", [Problem(None, "name", name, "give the set a short name, e.g. your laboratory's")])
+        raise InputRejected(
+            "The limit set needs a name",
+            [Problem(None, "name", name, "give the set a short name, e.g. your laboratory's")],
+        )
     if len(name) > NAME_CHARS:
         raise InputRejected(
             "The limit set's name is too long",
@@ -187,22 +222,55 @@ def import_limit_table(session: Session, table: InputTable, *, name: str, userna
     if description is not None and len(description) > cell_chars:
         raise InputRejected(
             "The limit set's description is too long",
-            [Problem(None, "--description", excerpt("--description", description),
-                     f"a description has at most {cell_chars:,} characters; it has {len(description):,}")],
+            [
+                Problem(
+                    None,
+                    "--description",
+                    excerpt("--description", description),
+                    f"a description has at most {cell_chars:,} characters; it has {len(description):,}",
+                )
+            ],
         )
     frame = validate_limits(table.cells)
     version = (session.scalar(select(func.max(LimitSet.version)).where(LimitSet.name == name)) or 0) + 1
     set_id = session.scalar(
         insert(LimitSet).returning(LimitSet.id),
-        [{"name": name, "version": version, "description": description or f"imported from a file (sha256 {table.sha256[:12]})", "is_default": False, "created_at": utc_now()}],
+        [
+            {
+                "name": name,
+                "version": version,
+                "description": description or f"imported from a file (sha256 {table.sha256[:12]})",
+                "is_default": False,
+                "created_at": utc_now(),
+            }
+        ],
     )
     _insert_rows(session, set_id, frame)
-    audit.record(session, username=username, action="import_limits", entity="limit_sets", entity_key=f"{name} v{version}", after={"rows": len(frame), "file_sha256": table.sha256})
+    audit.record(
+        session,
+        username=username,
+        action="import_limits",
+        entity="limit_sets",
+        entity_key=f"{name} v{version}",
+        after={"rows": len(frame), "file_sha256": table.sha256},
+    )
     return LimitSetInfo(set_id, name, version, len(frame), False, description)
 
 
 def _insert_rows(session: Session, set_id: int, frame: pd.DataFrame) -> None:
-    columns = ["nerve", "modality", "parameter", "bound", "value", "age_min", "age_max", "height_min_cm", "height_max_cm", "sex", "source"]
+    columns = [
+        "nerve",
+        "modality",
+        "parameter",
+        "bound",
+        "value",
+        "age_min",
+        "age_max",
+        "height_min_cm",
+        "height_max_cm",
+        "sex",
+        "source",
+    ]
     data = frame[columns].astype(object).where(frame[columns].notna(), None)
     session.execute(insert(LimitRow), [{"limit_set_id": set_id, **row} for row in data.to_dict("records")])
 
@@ -210,7 +278,9 @@ def _insert_rows(session: Session, set_id: int, frame: pd.DataFrame) -> None:
 def ensure_default(session: Session) -> LimitSetInfo:
     """The shipped default set, stored once per shipped version so that evaluations can refer to it."""
     found = session.scalar(
-        select(LimitSet).where(LimitSet.name == limit_rules.DEFAULT_NAME, LimitSet.version == limit_rules.DEFAULT_VERSION)
+        select(LimitSet).where(
+            LimitSet.name == limit_rules.DEFAULT_NAME, LimitSet.version == limit_rules.DEFAULT_VERSION
+        )
     )
     if found is None:
         marked = session.scalars(select(LimitSet.name).where(LimitSet.is_default)).all()
@@ -221,7 +291,15 @@ def ensure_default(session: Session) -> LimitSetInfo:
             session.execute(update(LimitSet).where(LimitSet.is_default).values(is_default=False))
         set_id = session.scalar(
             insert(LimitSet).returning(LimitSet.id),
-            [{"name": limit_rules.DEFAULT_NAME, "version": limit_rules.DEFAULT_VERSION, "description": limit_rules.DEFAULT_DESCRIPTION, "is_default": take_mark, "created_at": utc_now()}],
+            [
+                {
+                    "name": limit_rules.DEFAULT_NAME,
+                    "version": limit_rules.DEFAULT_VERSION,
+                    "description": limit_rules.DEFAULT_DESCRIPTION,
+                    "is_default": take_mark,
+                    "created_at": utc_now(),
+                }
+            ],
         )
         rows = limit_rules.default_limits()
         frame = rows.assign(source=[f"{s} [{st}]" for s, st in zip(rows["source"], rows["status"])])
@@ -231,8 +309,12 @@ def ensure_default(session: Session) -> LimitSetInfo:
 
 
 def _info(session: Session, limit_set: LimitSet) -> LimitSetInfo:
-    count = session.scalar(select(func.count()).select_from(LimitRow).where(LimitRow.limit_set_id == limit_set.id))
-    return LimitSetInfo(limit_set.id, limit_set.name, limit_set.version, count, limit_set.is_default, limit_set.description)
+    count = session.scalar(
+        select(func.count()).select_from(LimitRow).where(LimitRow.limit_set_id == limit_set.id)
+    )
+    return LimitSetInfo(
+        limit_set.id, limit_set.name, limit_set.version, count, limit_set.is_default, limit_set.description
+    )
 
 
 def list_limit_sets(session: Session) -> list[LimitSetInfo]:
@@ -247,7 +329,10 @@ def set_default(session: Session, name: str, *, username: str) -> LimitSetInfo:
     session.execute(update(LimitSet).values(is_default=False))
     session.execute(update(LimitSet).where(LimitSet.id == chosen.id).values(is_default=True))
     audit.record(
-        session, username=username, action="choose_default_limits", entity="limit_sets",
+        session,
+        username=username,
+        action="choose_default_limits",
+        entity="limit_sets",
         entity_key=f"{chosen.name} v{chosen.version}",
         before={"default": None if previous is None else f"{previous.name} v{previous.version}"},
         after={"default": f"{chosen.name} v{chosen.version}"},
@@ -256,28 +341,67 @@ def set_default(session: Session, name: str, *, username: str) -> LimitSetInfo:
 
 
 def _latest(session: Session, name: str) -> LimitSet:
-    chosen = session.scalar(select(LimitSet).where(LimitSet.name == name).order_by(LimitSet.version.desc()).limit(1))
+    chosen = session.scalar(
+        select(LimitSet).where(LimitSet.name == name).order_by(LimitSet.version.desc()).limit(1)
+    )
     if chosen is None:
         names = sorted(set(session.scalars(select(LimitSet.name))))
         hint = catalogue.suggest(name, names)
-        raise NotFound(f"No normal-limit set named {name!r}" + (f"; did you mean {hint!r}?" if hint else f"; known: {', '.join(names)}"))
+        raise NotFound(
+            f"No normal-limit set named {name!r}"
+            + (f"; did you mean {hint!r}?" if hint else f"; known: {', '.join(names)}")
+        )
     return chosen
 
 
 def resolve(session: Session, name: str | None) -> tuple[LimitSetInfo, pd.DataFrame]:
-    """The set to evaluate with (named, else the one marked default, else the shipped default) and its rows."""
+    """The set to evaluate with (named, else the one marked default, else
+    the shipped default) and its rows."""
     default = ensure_default(session)
     if name:
         chosen = _info(session, _latest(session, name))
     else:
-        marked = session.scalar(select(LimitSet).where(LimitSet.is_default).order_by(LimitSet.version.desc()).limit(1))
+        marked = session.scalar(
+            select(LimitSet).where(LimitSet.is_default).order_by(LimitSet.version.desc()).limit(1)
+        )
         chosen = _info(session, marked) if marked is not None else default
     rows = session.execute(
-        select(LimitRow.nerve, LimitRow.modality, LimitRow.parameter, LimitRow.bound, LimitRow.value, LimitRow.age_min, LimitRow.age_max,
-               LimitRow.height_min_cm, LimitRow.height_max_cm, LimitRow.sex, LimitRow.source).where(LimitRow.limit_set_id == chosen.id)
+        select(
+            LimitRow.nerve,
+            LimitRow.modality,
+            LimitRow.parameter,
+            LimitRow.bound,
+            LimitRow.value,
+            LimitRow.age_min,
+            LimitRow.age_max,
+            LimitRow.height_min_cm,
+            LimitRow.height_max_cm,
+            LimitRow.sex,
+            LimitRow.source,
+        ).where(LimitRow.limit_set_id == chosen.id)
     ).all()
-    frame = pd.DataFrame(rows, columns=["nerve", "modality", "parameter", "bound", "value", "age_min", "age_max", "height_min_cm", "height_max_cm", "sex", "source"])
-    frame["status"] = ["memory" if isinstance(s, str) and "[memory]" in s else ("verified" if isinstance(s, str) and "[verified]" in s else "local") for s in frame["source"]]
+    frame = pd.DataFrame(
+        rows,
+        columns=[
+            "nerve",
+            "modality",
+            "parameter",
+            "bound",
+            "value",
+            "age_min",
+            "age_max",
+            "height_min_cm",
+            "height_max_cm",
+            "sex",
+            "source",
+        ],
+    )
+    frame["status"] = [
+        "memory"
+        if isinstance(s, str) and "[memory]" in s
+        else ("verified" if isinstance(s, str) and "[verified]" in s else "local")
+        for s in frame["source"]
+    ]
     return chosen, limit_rules.normalise(frame)
 
 

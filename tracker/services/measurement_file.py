@@ -45,12 +45,30 @@ OPTIONAL = [
     "wrist_entrapment",
 ]
 KNOWN = REQUIRED + AMPLITUDES + OPTIONAL
-NERVE_LEVEL = ["temperature_c", "lff_hz", "f_latency_ms", "f_absent", "f_persistence_pct", "recording_site", "wrist_entrapment"]
+NERVE_LEVEL = [
+    "temperature_c",
+    "lff_hz",
+    "f_latency_ms",
+    "f_absent",
+    "f_persistence_pct",
+    "recording_site",
+    "wrist_entrapment",
+]
 VISIT_LEVEL = ["height_cm", "diagnosis", "phenotype"]
 PATIENT_LEVEL = ["sex", "birth_year"]
 TEST_KEY = ["patient", "visit_date", "nerve", "side", "modality"]
 VISIT_KEY = ["patient", "visit_date"]
-SITE_VALUES = ["site_order", "label", "distance_mm", "latency_ms", "peak_latency_ms", "amplitude_mv", "amplitude_uv", "duration_ms", "area_mvms"]
+SITE_VALUES = [
+    "site_order",
+    "label",
+    "distance_mm",
+    "latency_ms",
+    "peak_latency_ms",
+    "amplitude_mv",
+    "amplitude_uv",
+    "duration_ms",
+    "area_mvms",
+]
 # Free text stored in a column of bounded length is checked against that length here, in validation, so that
 # a dry run and the import agree on SQLite (which stores any length) and PostgreSQL (which refuses).
 RECORDING_SITE_CHARS: int = NerveTest.__table__.c.recording_site.type.length
@@ -102,7 +120,13 @@ def _site_labels(collect: Collector, nerve: pd.Series, modality: pd.Series) -> p
     present = (raw != "").to_numpy() & nerve.notna().to_numpy() & modality.notna().to_numpy()
     if not present.any():
         return result
-    frame = pd.DataFrame({"n": nerve[present], "m": modality[present], "w": checks.map_unique(raw[present], catalogue.normalise_word)})
+    frame = pd.DataFrame(
+        {
+            "n": nerve[present],
+            "m": modality[present],
+            "w": checks.map_unique(raw[present], catalogue.normalise_word),
+        }
+    )
     for (n, m, w), index in frame.groupby(["n", "m", "w"]).groups.items():
         label = catalogue.canonical_site(n, m, w)
         if label is not None:
@@ -131,7 +155,9 @@ def _plain(value: object) -> str:
     return str(value)
 
 
-def _consistency(collect: Collector, frame: pd.DataFrame, group: np.ndarray, columns: list[str], level: str) -> None:
+def _consistency(
+    collect: Collector, frame: pd.DataFrame, group: np.ndarray, columns: list[str], level: str
+) -> None:
     """Values of a nerve-, visit- or patient-level column must agree on every row that states them."""
     all_counts = frame[columns].groupby(group).nunique(dropna=True)
     for column in columns:
@@ -146,7 +172,8 @@ def _consistency(collect: Collector, frame: pd.DataFrame, group: np.ndarray, col
                 int(collect.rows[stated[-1]]),
                 source_column,
                 None,
-                f"rows of the same {level} disagree ({shown}); a {level}-level value must be the same on every row",
+                f"rows of the same {level} disagree ({shown}); a {level}-level value must be the same on "
+                "every row",
             )
 
 
@@ -159,13 +186,15 @@ def _f_wave_words_and_numbers(collect: Collector, frame: pd.DataFrame, group: np
     for group_id in np.unique(group[has_number & has_word]):
         stated = np.flatnonzero((group == group_id) & (number | word))
         shown = ", ".join(
-            f"row {collect.rows[i]}: {'absent' if word[i] else _plain(frame['f_latency_ms'].iloc[i])}" for i in stated
+            f"row {collect.rows[i]}: {'absent' if word[i] else _plain(frame['f_latency_ms'].iloc[i])}"
+            for i in stated
         )
         collect.add_one(
             int(collect.rows[stated[-1]]),
             "f_latency_ms",
             None,
-            f"rows of the same nerve test disagree ({shown}); a nerve test-level value must be the same on every row",
+            f"rows of the same nerve test disagree ({shown}); a nerve test-level value must be the same on "
+            "every row",
         )
 
 
@@ -173,7 +202,9 @@ def _group_ids(frame: pd.DataFrame, keys: list[str]) -> np.ndarray:
     return frame.groupby(keys, sort=False, dropna=False).ngroup().to_numpy()
 
 
-def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, today: dt.date | None = None) -> MeasurementBatch:
+def validate_measurements(
+    cells: pd.DataFrame, *, allow_unusual: bool = False, today: dt.date | None = None
+) -> MeasurementBatch:
     """Check every cell and every group of rows; raise :class:`InputRejected` listing all problems."""
     today = today or dt.date.today()
     limits = ranges()
@@ -181,7 +212,9 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     checks.unknown_columns(collect, KNOWN)
     missing = checks.missing_columns(collect, REQUIRED)
     if not any(c in cells.columns for c in AMPLITUDES):
-        collect.add_one(1, "amplitude_mv", None, "the header needs amplitude_mv (motor) and/or amplitude_uv (sensory)")
+        collect.add_one(
+            1, "amplitude_mv", None, "the header needs amplitude_mv (motor) and/or amplitude_uv (sensory)"
+        )
         missing = True
     if missing or len(cells) == 0:
         if len(cells) == 0 and not missing:
@@ -191,7 +224,9 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     patient = checks.patient_codes(collect)
     visit_date = checks.iso_dates(collect, "visit_date", required=True, not_after=today)
     nerve = _nerve_mapping(collect)
-    side = checks.vocabulary(collect, "side", SIDE_ALIASES, required=True, shown_choices=["left", "right", "L", "R"])
+    side = checks.vocabulary(
+        collect, "side", SIDE_ALIASES, required=True, shown_choices=["left", "right", "L", "R"]
+    )
     modality = checks.vocabulary(collect, "modality", _word_map(("motor", "sensory")), required=True)
     motor = (modality == "motor").to_numpy()
     sensory = (modality == "sensory").to_numpy()
@@ -199,14 +234,26 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     # A nerve must be studied in a modality it has.
     pairs = nerve.fillna("") + "|" + modality.fillna("")
     known_pair = checks.map_unique(
-        pairs, lambda p: "" in p.split("|") or p.split("|")[1] in catalogue.nerves()[p.split("|")[0]].modalities
+        pairs,
+        lambda p: "" in p.split("|") or p.split("|")[1] in catalogue.nerves()[p.split("|")[0]].modalities,
     ).to_numpy(dtype=bool)
-    collect.add(~known_pair, "modality", "this nerve is not studied in this modality here (see tracker/reference/nerves.csv and the README's nerve table)")
+    collect.add(
+        ~known_pair,
+        "modality",
+        "this nerve is not studied in this modality here (see tracker/reference/nerves.csv and the README's "
+        "nerve table)",
+    )
 
     site_order, _ = checks.number(collect, "site_order", required=True)
-    bad_order = ~np.isnan(site_order) & ((site_order < 1) | (site_order != np.floor(site_order)) | (site_order > 20))
+    bad_order = ~np.isnan(site_order) & (
+        (site_order < 1) | (site_order != np.floor(site_order)) | (site_order > 20)
+    )
     collect.add(bad_order, "site_order", "expected a whole number from 1 (most distal) to 20")
-    collect.add(sensory & ~np.isnan(site_order) & (site_order != 1), "site_order", "a sensory test has one stimulation site: site_order must be 1")
+    collect.add(
+        sensory & ~np.isnan(site_order) & (site_order != 1),
+        "site_order",
+        "a sensory test has one stimulation site: site_order must be 1",
+    )
 
     distance, _ = checks.number(collect, "distance_mm", required=True, unit="mm")
     checks.in_range(collect, "distance_mm", distance, limits["distance_mm"])
@@ -215,25 +262,57 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     amplitude_uv, _ = checks.number(collect, "amplitude_uv", unit="µV")
     checks.in_range(collect, "amplitude_mv", amplitude_mv, limits["amplitude_mv"])
     checks.in_range(collect, "amplitude_uv", amplitude_uv, limits["amplitude_uv"])
-    collect.add(motor & np.isnan(amplitude_mv), "amplitude_mv", "a motor row needs the CMAP amplitude in mV (0 for no response)")
-    collect.add(motor & ~np.isnan(amplitude_uv), "amplitude_uv", "a motor row gives its amplitude in amplitude_mv, not µV")
-    collect.add(sensory & np.isnan(amplitude_uv), "amplitude_uv", "a sensory row needs the SNAP amplitude in µV (0 for no response)")
-    collect.add(sensory & ~np.isnan(amplitude_mv), "amplitude_mv", "a sensory row gives its amplitude in amplitude_uv, not mV")
+    collect.add(
+        motor & np.isnan(amplitude_mv),
+        "amplitude_mv",
+        "a motor row needs the CMAP amplitude in mV (0 for no response)",
+    )
+    collect.add(
+        motor & ~np.isnan(amplitude_uv),
+        "amplitude_uv",
+        "a motor row gives its amplitude in amplitude_mv, not µV",
+    )
+    collect.add(
+        sensory & np.isnan(amplitude_uv),
+        "amplitude_uv",
+        "a sensory row needs the SNAP amplitude in µV (0 for no response)",
+    )
+    collect.add(
+        sensory & ~np.isnan(amplitude_mv),
+        "amplitude_mv",
+        "a sensory row gives its amplitude in amplitude_uv, not mV",
+    )
     amplitude = np.where(motor, amplitude_mv, amplitude_uv)
 
     latency, latency_absent = checks.number(collect, "latency_ms", words=ABSENT_WORDS, unit="ms")
     checks.in_range(collect, "latency_ms", latency, limits["latency_ms"])
     no_response = amplitude == 0
     has_amplitude = ~np.isnan(amplitude) & (amplitude > 0)
-    collect.add(no_response & ~np.isnan(latency), "latency_ms", "amplitude 0 records no response: leave latency_ms empty (or write 'absent')")
+    collect.add(
+        no_response & ~np.isnan(latency),
+        "latency_ms",
+        "amplitude 0 records no response: leave latency_ms empty (or write 'absent')",
+    )
     latency_text = checks.text(cells, "latency_ms")
-    collect.add(has_amplitude & np.isnan(latency) & ~latency_absent & (latency_text == "").to_numpy(), "latency_ms", "a recorded response needs its onset latency in ms")
-    collect.add(has_amplitude & latency_absent, "latency_ms", "latency says 'absent' but the amplitude is above 0; write amplitude 0 for no response")
+    collect.add(
+        has_amplitude & np.isnan(latency) & ~latency_absent & (latency_text == "").to_numpy(),
+        "latency_ms",
+        "a recorded response needs its onset latency in ms",
+    )
+    collect.add(
+        has_amplitude & latency_absent,
+        "latency_ms",
+        "latency says 'absent' but the amplitude is above 0; write amplitude 0 for no response",
+    )
 
     peak_latency, _ = checks.number(collect, "peak_latency_ms", unit="ms")
     checks.in_range(collect, "peak_latency_ms", peak_latency, limits["peak_latency_ms"])
     with np.errstate(invalid="ignore"):
-        collect.add(peak_latency < latency, "peak_latency_ms", "the peak latency is earlier than the onset latency of the same response")
+        collect.add(
+            peak_latency < latency,
+            "peak_latency_ms",
+            "the peak latency is earlier than the onset latency of the same response",
+        )
     duration, _ = checks.number(collect, "duration_ms", unit="ms")
     checks.in_range(collect, "duration_ms", duration, limits["duration_ms"])
     area, _ = checks.number(collect, "area_mvms", unit="mV·ms")
@@ -247,9 +326,15 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     checks.in_range(collect, "f_latency_ms", f_latency, limits["f_latency_ms"])
     f_persistence, _ = checks.number(collect, "f_persistence_pct", unit="%")
     checks.in_range(collect, "f_persistence_pct", f_persistence, limits["f_persistence_pct"])
-    collect.add(sensory & (~np.isnan(f_latency) | f_absent), "f_latency_ms", "F-waves belong to motor nerve tests")
-    collect.add(sensory & ~np.isnan(f_persistence), "f_persistence_pct", "F-waves belong to motor nerve tests")
-    recording = checks.map_unique(checks.text(cells, "recording_site"), catalogue.normalise_word).replace("", None)
+    collect.add(
+        sensory & (~np.isnan(f_latency) | f_absent), "f_latency_ms", "F-waves belong to motor nerve tests"
+    )
+    collect.add(
+        sensory & ~np.isnan(f_persistence), "f_persistence_pct", "F-waves belong to motor nerve tests"
+    )
+    recording = checks.map_unique(checks.text(cells, "recording_site"), catalogue.normalise_word).replace(
+        "", None
+    )
     collect.add(
         recording.str.len().gt(RECORDING_SITE_CHARS).to_numpy(dtype=bool),
         "recording_site",
@@ -261,16 +346,33 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     sex = checks.vocabulary(collect, "sex", _word_map(SEXES))
     birth_year, _ = checks.number(collect, "birth_year", unit="years")
     with np.errstate(invalid="ignore"):
-        collect.add(~np.isnan(birth_year) & (birth_year != np.floor(birth_year)), "birth_year", "expected a whole year such as 1961")
+        collect.add(
+            ~np.isnan(birth_year) & (birth_year != np.floor(birth_year)),
+            "birth_year",
+            "expected a whole year such as 1961",
+        )
     checks.in_range(collect, "birth_year", birth_year, limits["birth_year"])
     visit_year = visit_date.dt.year.to_numpy(dtype=float, na_value=np.nan)
     with np.errstate(invalid="ignore"):
         collect.add(birth_year > visit_year, "birth_year", "the birth year is after the visit date")
     diagnosis = checks.vocabulary(collect, "diagnosis", _word_map(DIAGNOSES))
     phenotype = checks.vocabulary(collect, "phenotype", _word_map(PHENOTYPES))
-    collect.add(phenotype.notna().to_numpy() & diagnosis.notna().to_numpy() & (diagnosis != "cidp").to_numpy(), "phenotype", "a phenotype is recorded for CIDP only")
-    entrapment = checks.vocabulary(collect, "wrist_entrapment", {k: ("yes" if v else "no") for k, v in YES_NO.items()}, shown_choices=["yes", "no"])
-    collect.add(entrapment.notna().to_numpy() & nerve.notna().to_numpy() & (nerve != "median").to_numpy(), "wrist_entrapment", "wrist_entrapment is stated on median nerve rows only")
+    collect.add(
+        phenotype.notna().to_numpy() & diagnosis.notna().to_numpy() & (diagnosis != "cidp").to_numpy(),
+        "phenotype",
+        "a phenotype is recorded for CIDP only",
+    )
+    entrapment = checks.vocabulary(
+        collect,
+        "wrist_entrapment",
+        {k: ("yes" if v else "no") for k, v in YES_NO.items()},
+        shown_choices=["yes", "no"],
+    )
+    collect.add(
+        entrapment.notna().to_numpy() & nerve.notna().to_numpy() & (nerve != "median").to_numpy(),
+        "wrist_entrapment",
+        "wrist_entrapment is stated on median nerve rows only",
+    )
     site_label = _site_labels(collect, nerve, modality)
 
     frame = pd.DataFrame(
@@ -313,7 +415,9 @@ def validate_measurements(cells: pd.DataFrame, *, allow_unusual: bool = False, t
     return _assemble(frame, unusual)
 
 
-def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, allow_unusual: bool, limits) -> None:
+def _group_checks(
+    collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, allow_unusual: bool, limits
+) -> None:
     """Checks that involve several rows: duplicates, site sequence, agreement, latencies, velocities."""
     valid = frame[keys_ok]
     offset = np.flatnonzero(keys_ok)  # position in the full table
@@ -327,13 +431,22 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
         dup = valid[duplicated]
         for _, rows in dup.groupby(TEST_KEY + ["site_order"], sort=False)[ROW]:
             listed = ", ".join(str(r) for r in rows)
-            collect.add_one(int(rows.iloc[-1]), "site_order", None, f"the same nerve test and site_order appear on rows {listed}")
+            collect.add_one(
+                int(rows.iloc[-1]),
+                "site_order",
+                None,
+                f"the same nerve test and site_order appear on rows {listed}",
+            )
 
     orders = valid.groupby(test_group)["site_order"]
     expected = orders.transform("count").to_numpy()
     highest = orders.transform("max").to_numpy()
     gap = (highest != expected) & ~duplicated
-    sub.add(gap & (valid["site_order"].to_numpy() == highest), "site_order", "site orders of this nerve test are not 1, 2, 3… without gaps")
+    sub.add(
+        gap & (valid["site_order"].to_numpy() == highest),
+        "site_order",
+        "site orders of this nerve test are not 1, 2, 3… without gaps",
+    )
 
     _consistency(sub, valid, test_group, NERVE_LEVEL, "nerve test")
     _f_wave_words_and_numbers(sub, valid, test_group)
@@ -353,7 +466,11 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
         velocity = quantise_array(np.where(same_test & (difference > 0), distance / difference, np.nan))
     mask = np.zeros(len(valid), dtype=bool)
     mask[order[not_growing]] = True
-    sub.add(mask, "latency_ms", "the latency is not longer than at the previous (more distal) site; latencies grow proximally")
+    sub.add(
+        mask,
+        "latency_ms",
+        "the latency is not longer than at the previous (more distal) site; latencies grow proximally",
+    )
 
     modality = valid["modality"].to_numpy()[order]
     sensory_first = (modality == "sensory") & ~same_test
@@ -395,7 +512,12 @@ def _group_checks(collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, 
         too_short = distal & (f_latency <= valid["latency_ms"].to_numpy())
     if too_short.any():
         shown = pd.Series(np.where(np.isnan(f_latency), "", f_latency.astype(str)))
-        sub.add(too_short, "f_latency_ms", "the minimal F-wave latency is not longer than the distal motor latency", values=shown)
+        sub.add(
+            too_short,
+            "f_latency_ms",
+            "the minimal F-wave latency is not longer than the distal motor latency",
+            values=shown,
+        )
 
 
 def _sorted(frame: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
@@ -436,7 +558,9 @@ def _assemble(frame: pd.DataFrame, unusual: list[Problem]) -> MeasurementBatch:
     )
 
 
-def _first_by_code(frame: pd.DataFrame, code: np.ndarray, keys: list[str], columns: list[str]) -> pd.DataFrame:
+def _first_by_code(
+    frame: pd.DataFrame, code: np.ndarray, keys: list[str], columns: list[str]
+) -> pd.DataFrame:
     """Like :func:`_first` for rows already sorted so that each group (integer ``code``) is contiguous."""
     starts = np.flatnonzero(np.r_[True, code[1:] != code[:-1]])
     result = frame[keys].iloc[starts].reset_index(drop=True)
@@ -471,7 +595,9 @@ def _number_matrix(frame: pd.DataFrame, columns: list[str]) -> np.ndarray:
             values[:, index] = series.to_numpy(dtype=float)
             continue
         if series.dtype == object or series.dtype == bool:
-            series = series.map({True: 1.0, False: 0.0}) if column in ("f_absent", "wrist_entrapment") else series
+            series = (
+                series.map({True: 1.0, False: 0.0}) if column in ("f_absent", "wrist_entrapment") else series
+            )
         values[:, index] = pd.to_numeric(series, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     missing = np.isnan(values)
     values[missing] = 0.0

@@ -40,8 +40,13 @@ class InputTable:
 
 
 KIND_MARKERS = (
-    ("bound", "limits"), ("nerve", "measurements"), ("therapy", "treatments"), ("scale", "scores"),
-    ("onset_date", "patients"), ("full_name", "patients"), ("record_number", "patients"),
+    ("bound", "limits"),
+    ("nerve", "measurements"),
+    ("therapy", "treatments"),
+    ("scale", "scores"),
+    ("onset_date", "patients"),
+    ("full_name", "patients"),
+    ("record_number", "patients"),
     ("birth_date", "patients"),
 )
 IMPORT_KINDS = ("measurements", "treatments", "scores", "patients")
@@ -253,8 +258,14 @@ def _too_many_rows(limits: InputLimits) -> InputRejected:
 def _too_many_columns(limits: InputLimits) -> InputRejected:
     return InputRejected(
         "The file has more columns than allowed",
-        [Problem(1, None, None, f"the header has more than {limits.columns:,} columns "
-                 f"({limits.setting('columns')})")],
+        [
+            Problem(
+                1,
+                None,
+                None,
+                f"the header has more than {limits.columns:,} columns ({limits.setting('columns')})",
+            )
+        ],
     )
 
 
@@ -480,10 +491,16 @@ def _parse(raw: bytes, suffix: str, allowed_kinds: tuple[str, ...], limits: Inpu
         if frame is None:
             try:
                 frame = pd.read_csv(
-                    io.StringIO(text), dtype=str, keep_default_na=False, skip_blank_lines=False, na_filter=False
+                    io.StringIO(text),
+                    dtype=str,
+                    keep_default_na=False,
+                    skip_blank_lines=False,
+                    na_filter=False,
                 )
             except pd.errors.ParserError as error:
-                raise InputRejected("The file is not valid CSV", [Problem(None, None, None, str(error))]) from None
+                raise InputRejected(
+                    "The file is not valid CSV", [Problem(None, None, None, str(error))]
+                ) from None
     else:
         raise InputRejected(
             "Unsupported file type",
@@ -512,12 +529,16 @@ def _parse(raw: bytes, suffix: str, allowed_kinds: tuple[str, ...], limits: Inpu
         for h in sorted({h for h in headers if headers.count(h) > 1})
     ]
     if ROW in headers:
-        problems.append(Problem(1, ROW, ROW, "this column name is reserved by ncs-tracker; rename the column"))
+        problems.append(
+            Problem(1, ROW, ROW, "this column name is reserved by ncs-tracker; rename the column")
+        )
     if problems:
         raise InputRejected("The header row has duplicate or reserved columns", problems)
     frame.columns = headers
     if not trimmed:
-        frame = frame.astype(str).apply(lambda column: column.str.strip()) if len(frame) else frame.astype(str)
+        frame = (
+            frame.astype(str).apply(lambda column: column.str.strip()) if len(frame) else frame.astype(str)
+        )
     frame[ROW] = numbers if numbers is not None else range(2, len(frame) + 2)
     # Rows where every cell is empty (trailing spreadsheet rows) carry no data.
     data_columns = [c for c in frame.columns if c != ROW]
@@ -541,6 +562,13 @@ def _parse(raw: bytes, suffix: str, allowed_kinds: tuple[str, ...], limits: Inpu
             ],
         )
     if kind not in allowed_kinds:
-        hint = "import it with: ncs-tracker limits import FILE --name NAME" if kind == "limits" else f"expected {' or '.join(allowed_kinds)}"
-        raise InputRejected("This file is of another kind", [Problem(1, None, kind, f"the header is that of a {kind} file; {hint}")])
+        hint = (
+            "import it with: ncs-tracker limits import FILE --name NAME"
+            if kind == "limits"
+            else f"expected {' or '.join(allowed_kinds)}"
+        )
+        raise InputRejected(
+            "This file is of another kind",
+            [Problem(1, None, kind, f"the header is that of a {kind} file; {hint}")],
+        )
     return InputTable(cells=frame.reset_index(drop=True), sha256=sha, kind=kind)

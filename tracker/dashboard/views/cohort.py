@@ -20,12 +20,25 @@ require("read")  # checked on the server whatever the navigation shows
 st.title("Cohort")
 url = database_url()
 cols = st.columns([1, 1, 1, 2])
-diagnosis = cols[0].selectbox("Diagnosis", [None, *DIAGNOSES], key="cohort_diagnosis", format_func=lambda d: "all" if d is None else DIAGNOSIS_SHORT.get(d, d))
+diagnosis = cols[0].selectbox(
+    "Diagnosis",
+    [None, *DIAGNOSES],
+    key="cohort_diagnosis",
+    format_func=lambda d: "all" if d is None else DIAGNOSIS_SHORT.get(d, d),
+)
 start = cols[1].date_input("Visits from", value=None, key="cohort_start", format="YYYY-MM-DD")
-end = cols[2].date_input("Visits to", value=None, key="cohort_end", format="YYYY-MM-DD", max_value=dt.date.today())
+end = cols[2].date_input(
+    "Visits to", value=None, key="cohort_end", format="YYYY-MM-DD", max_value=dt.date.today()
+)
 with cols[3]:
     limits_name = limits_picker(key="cohort_limits")
-criteria = st.multiselect("Criteria sets", engine.available(), default=engine.available(), key="cohort_criteria", format_func=criteria_title)
+criteria = st.multiselect(
+    "Criteria sets",
+    engine.available(),
+    default=engine.available(),
+    key="cohort_criteria",
+    format_func=criteria_title,
+)
 visits = reads.visits(url, tuple(criteria), limits_name, diagnosis, start, end)
 codes_shown = may("see_patient_codes")
 if not codes_shown:  # a research coordinator sees export ids (as in the research export), never clinic codes
@@ -38,18 +51,32 @@ listed = visits if codes_shown else visits.rename(columns={"patient": "export_id
 left, right = st.columns([1, 2])
 with left:
     st.subheader("By diagnosis")
-    st.dataframe(tables.cohort_visits(counts_by_diagnosis(visits)), hide_index=True, width="stretch", key="cohort_counts")
+    st.dataframe(
+        tables.cohort_visits(counts_by_diagnosis(visits)),
+        hide_index=True,
+        width="stretch",
+        key="cohort_counts",
+    )
 with right:
     st.subheader("Outcome per criteria set (share of visits)")
     shares = outcome_shares(visits, criteria)
     st.plotly_chart(figures.outcome_share_figure(shares), key="cohort_shares", width="stretch")
-    st.caption("From saved evaluations; “not evaluated” visits have none yet (Patients page → Evaluate all visits).")
+    st.caption(
+        "From saved evaluations; “not evaluated” visits have none yet (Patients page → Evaluate all visits)."
+    )
 
 st.subheader(f"Visits ({len(visits)})")
 st.dataframe(tables.cohort_visits(listed), hide_index=True, width="stretch", key="cohort_visits")
 st.download_button(
-    "Download this table (CSV; clinic use: contains patient codes)" if codes_shown
-    else "Download this table (CSV with export ids and real visit dates)", csv_bytes(listed),
-    file_name="cohort_visits.csv", mime="text/csv", key="cohort_download",
+    "Download this table (CSV; clinic use: contains patient codes)"
+    if codes_shown
+    else "Download this table (CSV with export ids and real visit dates)",
+    csv_bytes(listed),
+    file_name="cohort_visits.csv",
+    mime="text/csv",
+    key="cohort_download",
 )
-st.caption("For research, use the de-identified export: `ncs-tracker export` (export ids instead of codes, shifted dates, a data dictionary and a manifest).")
+st.caption(
+    "For research, use the de-identified export: `ncs-tracker export` (export ids instead of codes, shifted "
+    "dates, a data dictionary and a manifest)."
+)

@@ -31,8 +31,9 @@ from tracker.services.access.permissions import ALL_ROLES, Actor, NotPermitted
 HASHER = PasswordHasher(
     time_cost=2, memory_cost=19 * 1024, parallelism=1, hash_len=32, salt_len=16, type=Type.ID
 )
-# NIST SP 800-63B §5.1.1.2 asks at least 8 characters and accepting at least 64; we ask 12 (common practice
-# for staff accounts holding patient data, no single source) and cap at 128 so one sign-in costs what it should.
+# NIST SP 800-63B §5.1.1.2 asks at least 8 characters and accepting at least 64; we ask
+# 12 (common practice for staff accounts holding patient data, no single source) and cap
+# at 128 so one sign-in costs what it should.
 PASSWORD_MIN, PASSWORD_MAX = 12, 128
 # Lock-out: after this many consecutive failures the account is locked for LOCK_MINUTES (common practice,
 # no source; OWASP's Authentication Cheat Sheet asks for a lock-out without fixing the numbers).

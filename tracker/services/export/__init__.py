@@ -1,7 +1,7 @@
 """Research export (``ncs-tracker export``): analysis-ready visit / nerve / segment / long tables,
-de-identified by default, with a data dictionary, the limits and criteria tables and a manifest, so that
-the export folder explains itself. Entry points: :func:`write_export` (files, chunk by chunk), :func:`export_frame`
-(one DataFrame), :class:`ExportOptions`, :func:`neutralise_text` (spreadsheet safety).
+de-identified by default, with a data dictionary, the limits and criteria tables and a manifest, so
+that the export folder explains itself. Entry points: :func:`write_export` (files, chunk by chunk),
+:func:`export_frame` (one DataFrame), :class:`ExportOptions`, :func:`neutralise_text` (spreadsheet safety).
 
 Types a statistician can load without a cast: whole numbers (counts, ages, days) are nullable integers
 (pandas Int64, Parquet int32), flags nullable booleans, outcomes categories (ordered where the criteria rank

@@ -80,20 +80,24 @@ def neutralise_frame(frame: pd.DataFrame, columns: list[Column]) -> pd.DataFrame
 
 class CsvTable:
     """UTF-8 CSV without byte-order mark, ISO dates, empty cells for missing values, and CRLF line ends as
-    RFC 4180 has them: Python's CSV writer then quotes every cell that holds a line break or a carriage
-    return (with bare ``\\n`` line ends a carriage return inside a cell would split the row for some readers)."""
+    RFC 4180 has them: Python's CSV writer then quotes every cell that holds a line break or a carriage return
+    (with bare ``\\n`` line ends a carriage return inside a cell would split the row for some readers)."""
 
     def __init__(self, path: Path, columns: list[Column], handle: IO[bytes]):
         self.path = path
         self.columns = columns
         self.rows = 0
         self._handle = io.TextIOWrapper(handle, encoding="utf-8", newline="")
-        pd.DataFrame(columns=[c.name for c in columns]).to_csv(self._handle, index=False, lineterminator=CSV_LINE_END)
+        pd.DataFrame(columns=[c.name for c in columns]).to_csv(
+            self._handle, index=False, lineterminator=CSV_LINE_END
+        )
 
     def append(self, frame: pd.DataFrame) -> None:
         if frame.empty:
             return
-        neutralise_frame(frame, self.columns).to_csv(self._handle, header=False, index=False, lineterminator=CSV_LINE_END)
+        neutralise_frame(frame, self.columns).to_csv(
+            self._handle, header=False, index=False, lineterminator=CSV_LINE_END
+        )
         self.rows += len(frame)
 
     def close(self) -> None:
@@ -190,10 +194,15 @@ def fix_zip_times(source: Path | IO[bytes], target: Path | IO[bytes]) -> None:
             info.compress_type = zipfile.ZIP_DEFLATED
             info.external_attr = 0o644 << 16
             if entry.filename == "docProps/core.xml":
-                zout.writestr(info, _CORE_DATES.sub(lambda m: m.group(1) + stamp + m.group(3), zin.read(entry)))
+                zout.writestr(
+                    info, _CORE_DATES.sub(lambda m: m.group(1) + stamp + m.group(3), zin.read(entry))
+                )
                 continue
             info.file_size = entry.file_size  # lets zipfile choose ZIP64 the same way every time
-            with zin.open(entry) as src, zout.open(info, "w", force_zip64=entry.file_size > 0x7FFF0000) as dst:
+            with (
+                zin.open(entry) as src,
+                zout.open(info, "w", force_zip64=entry.file_size > 0x7FFF0000) as dst,
+            ):
                 shutil.copyfileobj(src, dst, COPY_BLOCK_BYTES)
 
 

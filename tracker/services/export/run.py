@@ -5,9 +5,10 @@ level, de-identified by default, with a data dictionary and a manifest beside ev
 - :func:`write_export` streams it to CSV, Parquet or Excel chunk by chunk (bounded memory), writes the
   dictionary and the manifest, and records the export in the audit trail.
 
-What is removed by default, and how ids, dates and ages are made, is in :mod:`tracker.services.export.deidentify`;
-the columns and their meanings are in :mod:`tracker.services.export.columns`; the tables are built in
-:mod:`tracker.services.export.tables`; files are written by :mod:`tracker.services.export.files`.
+What is removed by default, and how ids, dates and ages are made, is in
+:mod:`tracker.services.export.deidentify`; the columns and their meanings are in
+:mod:`tracker.services.export.columns`; the tables are built in :mod:`tracker.services.export.tables`; files
+are written by :mod:`tracker.services.export.files`.
 """
 
 from __future__ import annotations
@@ -82,8 +83,8 @@ class ExportResult:
 def export_frame(
     session: Session, options: ExportOptions, *, username: str, actor: Actor | None = None
 ) -> pd.DataFrame:
-    """The whole export table as one DataFrame (columns and order as in the files; not neutralised for spreadsheets).
-    An identified frame needs ``actor`` (authenticated, allowed ``export_identified``)."""
+    """The whole export table as one DataFrame (columns and order as in the files; not neutralised for
+    spreadsheets). An identified frame needs ``actor`` (authenticated, allowed ``export_identified``)."""
     plan = prepare(session, options, username=username, actor=actor)
     chunks = list(plan.frames(session))
     if not chunks:
@@ -104,10 +105,10 @@ def write_export(
 ) -> ExportResult:
     """Write the export table, its dictionary and its manifest; audit the export; return what was written.
 
-    Files are written under temporary names and renamed only when everything succeeded; on any error the
-    partial files are removed. An identified export needs ``actor`` (authenticated, allowed
-    ``export_identified``); refused by :func:`deidentify.require_identified_permission`, it writes nothing at all.
-    ``file_format`` "fhir" writes FHIR R4 NDJSON resources instead (:mod:`tracker.services.export.fhir`).
+    Files are written under temporary names and renamed only when everything succeeded; on any error
+    the partial files are removed. An identified export needs ``actor`` (authenticated, allowed
+    ``export_identified``); refused by :func:`deidentify.require_identified_permission`, it writes nothing at
+    all. ``file_format`` "fhir" writes FHIR R4 NDJSON resources instead (:mod:`tracker.services.export.fhir`).
     """
     if file_format == "fhir":
         from tracker.services.export.fhir import write_fhir
@@ -284,10 +285,13 @@ def build_manifest(
         "de_identification": None
         if options.identified
         else {
-            "export_id": "HMAC-SHA256 of the patient code keyed by this database's secret export key, first 16 hex digits",
+            "export_id": (
+                "HMAC-SHA256 of the patient code keyed by this database's secret export key, first 16 hex "
+                "digits"
+            ),
             "dates": (
-                "visit_date_shifted: real date moved by a secret per-patient offset of 1 to 365 days (earlier or later), "
-                "plus days_since_first_visit"
+                "visit_date_shifted: real date moved by a secret per-patient offset of 1 to 365 days "
+                "(earlier or later), plus days_since_first_visit"
                 if options.dates == "shifted"
                 else "days_since_first_visit only"
             ),
@@ -310,7 +314,9 @@ def build_manifest(
         "criteria_settings": dataclasses.asdict(plan.settings),
         "criteria_settings_from": _settings_origin(options),
         "limits": {"name": plan.limits_info.name, "version": plan.limits_info.version},
-        "scores_rule": f"score on the visit date, else the nearest within ±{SCORE_WINDOW_DAYS} days (earlier on a tie)",
+        "scores_rule": (
+            f"score on the visit date, else the nearest within ±{SCORE_WINDOW_DAYS} days (earlier on a tie)"
+        ),
         "response": None if plan.response is None else response_manifest(plan.response),
         "filters": _filters(plan),
         "visits_selected": plan.visit_count,
@@ -324,8 +330,8 @@ def build_manifest(
             for f in written
         ],
         "identity_promise": (
-            "The same database, options and library versions give byte-identical data and dictionary files, and this "
-            "manifest (it holds no timestamp). The manifest's own hash is not listed in it."
+            "The same database, options and library versions give byte-identical data and dictionary files, "
+            "and this manifest (it holds no timestamp). The manifest's own hash is not listed in it."
         ),
         "library_versions": {
             "python": platform.python_version(),
