@@ -35,7 +35,9 @@ def login(monkeypatch, db_url: str, name: str) -> Iterator[tuple[str, str]]:
         return
     role = f"{name}_{uuid.uuid4().hex[:6]}".replace("-", "_")
     admin = create_engine(PG_ADMIN_URL, isolation_level="AUTOCOMMIT")
-    admin_url = make_url(PG_ADMIN_URL)  # the owner of every test database, even when db_url names another login
+    admin_url = make_url(
+        PG_ADMIN_URL
+    )  # the owner of every test database, even when db_url names another login
     owner_url = make_url(db_url).set(username=admin_url.username, password=admin_url.password)
     owner = create_engine(owner_url, isolation_level="AUTOCOMMIT")
     database = make_url(db_url).database
@@ -44,13 +46,17 @@ def login(monkeypatch, db_url: str, name: str) -> Iterator[tuple[str, str]]:
         connection.execute(text(f'GRANT CONNECT ON DATABASE "{database}" TO "{role}"'))
     with owner.connect() as connection:
         connection.execute(text(f'GRANT USAGE ON SCHEMA public TO "{role}"'))
-        connection.execute(text(f'GRANT SELECT, INSERT, UPDATE, DELETE ON ALL TABLES IN SCHEMA public TO "{role}"'))
+        connection.execute(
+            text(f'GRANT SELECT, INSERT, UPDATE, DELETE ON ALL TABLES IN SCHEMA public TO "{role}"')
+        )
         connection.execute(text(f'GRANT USAGE, SELECT ON ALL SEQUENCES IN SCHEMA public TO "{role}"'))
     try:
         yield owner_url.set(username=role, password=None).render_as_string(hide_password=False), role
     finally:
         with owner.connect() as connection:
-            connection.execute(text(f"SELECT pg_terminate_backend(pid) FROM pg_stat_activity WHERE usename = '{role}'"))
+            connection.execute(
+                text(f"SELECT pg_terminate_backend(pid) FROM pg_stat_activity WHERE usename = '{role}'")
+            )
             connection.execute(text(f'DROP OWNED BY "{role}"'))
         with admin.connect() as connection:
             connection.execute(text(f'REVOKE ALL ON DATABASE "{database}" FROM "{role}"'))
@@ -61,7 +67,8 @@ def login(monkeypatch, db_url: str, name: str) -> Iterator[tuple[str, str]]:
 
 @contextmanager
 def again(monkeypatch, db_url: str, name: str) -> Iterator[str]:
-    """Yield a URL acting as the existing login ``name`` (made by :func:`login`) inside another login's block."""
+    """Yield a URL acting as the existing login ``name`` (made by :func:`login`)
+    inside another login's block."""
     if make_url(db_url).get_backend_name() == "sqlite":
         from tracker.services.access import accounts
 

@@ -49,7 +49,9 @@ def admin(monkeypatch, db_url, capsys):
         yield url, name
 
 
-def test_users_init_only_once_only_on_an_empty_table_and_only_for_ones_own_login(monkeypatch, db_url, sessions, capsys):
+def test_users_init_only_once_only_on_an_empty_table_and_only_for_ones_own_login(
+    monkeypatch, db_url, sessions, capsys
+):
     with login(monkeypatch, db_url, "first-invented") as (url, name):
         typed(monkeypatch, PASSWORD, PASSWORD)
         code, _, err = run_cli(capsys, "--db", url, "users", "init", "somebody-else")
@@ -70,8 +72,18 @@ def test_mallory_cannot_grant_herself_admin_by_naming_another_user(monkeypatch, 
     url, _ = admin
     before = fingerprint_of(url)
     with login(monkeypatch, url, "mallory-invented") as (mallory_url, _):
-        code, _, err = run_cli(capsys, "--db", mallory_url, "--user", "admin-invented", "users", "add", "mallory-invented",
-                               "--role", "admin")
+        code, _, err = run_cli(
+            capsys,
+            "--db",
+            mallory_url,
+            "--user",
+            "admin-invented",
+            "users",
+            "add",
+            "mallory-invented",
+            "--role",
+            "admin",
+        )
         assert code == 1 and "cannot choose who acts" in err
         monkeypatch.setenv("NCS_TRACKER_USER", "admin-invented")
         code, _, err = run_cli(capsys, "--db", mallory_url, "users", "list")
@@ -79,12 +91,16 @@ def test_mallory_cannot_grant_herself_admin_by_naming_another_user(monkeypatch, 
         monkeypatch.delenv("NCS_TRACKER_USER")
         # Her own login, with no account: refused before any password is asked.
         typed(monkeypatch, PASSWORD)
-        code, _, err = run_cli(capsys, "--db", mallory_url, "users", "add", "mallory-invented", "--role", "admin")
+        code, _, err = run_cli(
+            capsys, "--db", mallory_url, "users", "add", "mallory-invented", "--role", "admin"
+        )
         assert code == 1 and "may not manage accounts" in err and "no active account" in err
     assert fingerprint_of(url) == before
 
 
-def test_a_viewer_cannot_import_export_identified_change_roles_or_limits(monkeypatch, admin, capsys, tmp_path):
+def test_a_viewer_cannot_import_export_identified_change_roles_or_limits(
+    monkeypatch, admin, capsys, tmp_path
+):
     url, admin_name = admin
     with login(monkeypatch, url, "viewer-invented") as (viewer_url, viewer):
         with again(monkeypatch, url, admin_name) as admin_url:
@@ -94,7 +110,9 @@ def test_a_viewer_cannot_import_export_identified_change_roles_or_limits(monkeyp
         code, _, err = run_cli(capsys, "--db", viewer_url, "import", str(DEMO / "measurements.csv"))
         assert code == 1 and "may not enter, import or annotate studies" in err
         typed(monkeypatch, PASSWORD)
-        code, _, err = run_cli(capsys, "--db", viewer_url, "export", "--identified", "--out", f"{tmp_path}/out/")
+        code, _, err = run_cli(
+            capsys, "--db", viewer_url, "export", "--identified", "--out", f"{tmp_path}/out/"
+        )
         assert code == 1 and "coordinator or admin" in err
         typed(monkeypatch, PASSWORD)
         code, _, err = run_cli(capsys, "--db", viewer_url, "users", "add", viewer, "--role", "admin")
@@ -139,7 +157,9 @@ def test_a_deactivated_admin_cannot_regrant_herself(monkeypatch, admin, sessions
         assert session.scalar(select(User.active).where(User.username == first)) is False
 
 
-def test_a_wrong_password_is_refused_counted_audited_and_locks_after_five(monkeypatch, admin, sessions, capsys):
+def test_a_wrong_password_is_refused_counted_audited_and_locks_after_five(
+    monkeypatch, admin, sessions, capsys
+):
     url, name = admin
     for attempt in range(5):
         typed(monkeypatch, f"wrong guess {attempt}")
@@ -154,8 +174,9 @@ def test_a_wrong_password_is_refused_counted_audited_and_locks_after_five(monkey
     assert not any("wrong guess" in str(e.before) + str(e.after) + str(e.detail) for e in _audit(sessions))
 
 
-def test_a_coordinator_with_her_password_receives_an_identified_export_and_it_is_audited(monkeypatch, admin, sessions,
-                                                                                       capsys, tmp_path):
+def test_a_coordinator_with_her_password_receives_an_identified_export_and_it_is_audited(
+    monkeypatch, admin, sessions, capsys, tmp_path
+):
     url, _ = admin
     code, _, err = run_cli(capsys, "--db", url, "import", str(DEMO / "measurements.csv"))
     assert code == 0, err
@@ -163,18 +184,33 @@ def test_a_coordinator_with_her_password_receives_an_identified_export_and_it_is
         with again(monkeypatch, url, admin[1]) as admin_url:
             assert _add(monkeypatch, capsys, admin_url, coordinator, "coordinator")[0] == 0
         typed(monkeypatch, "not her password")
-        code, _, err = run_cli(capsys, "--db", coordinator_url, "export", "--identified", "--out", f"{tmp_path}/a/")
+        code, _, err = run_cli(
+            capsys, "--db", coordinator_url, "export", "--identified", "--out", f"{tmp_path}/a/"
+        )
         assert code == 1 and "Sign-in refused" in err and not (tmp_path / "a").exists()
         typed(monkeypatch, PASSWORD)
-        code, out, err = run_cli(capsys, "--db", coordinator_url, "export", "--identified", "--patients", "DEMO-03",
-                                 "--criteria", "aan-1991-cidp", "--out", str(tmp_path / "cohort.csv"))
+        code, out, err = run_cli(
+            capsys,
+            "--db",
+            coordinator_url,
+            "export",
+            "--identified",
+            "--patients",
+            "DEMO-03",
+            "--criteria",
+            "aan-1991-cidp",
+            "--out",
+            str(tmp_path / "cohort.csv"),
+        )
         assert code == 0, err
         assert "IDENTIFIED" in out and "DEMO-03" in (tmp_path / "cohort.csv").read_text(encoding="utf-8")
         # A de-identified export needs no password, only the role.
         code, _, err = run_cli(capsys, "--db", coordinator_url, "export", "--out", f"{tmp_path}/b/")
         assert code == 0, err
     assert [(e.action, e.username) for e in _audit(sessions, entity="export")] == [
-        ("export_identified", coordinator), ("export", coordinator)]
+        ("export_identified", coordinator),
+        ("export", coordinator),
+    ]
 
 
 def test_single_user_mode_imports_but_never_exports_identified(db_url, capsys, tmp_path):
@@ -199,8 +235,14 @@ def test_environment_variables_do_not_change_the_login_on_sqlite(tmp_path, capsy
     engine.dispose()
     real = accounts.os_login()
     env = {**os.environ, "LOGNAME": "boss-invented", "USER": "boss-invented", "USERNAME": "boss-invented"}
-    result = subprocess.run([sys.executable, "-m", "tracker", "--db", url, "users", "list"], input=PASSWORD + "\n",
-                            capture_output=True, text=True, env=env, timeout=120)
+    result = subprocess.run(
+        [sys.executable, "-m", "tracker", "--db", url, "users", "list"],
+        input=PASSWORD + "\n",
+        capture_output=True,
+        text=True,
+        env=env,
+        timeout=120,
+    )
     assert result.returncode == 1
     assert f"{real} may not manage accounts" in result.stderr
 
@@ -209,7 +251,11 @@ def test_environment_variables_do_not_change_the_login_on_sqlite(tmp_path, capsy
 # must come before anything is written; the allowed role must get past the permission check.
 COMMANDS = [
     ("write_clinical", ["import", str(DEMO / "scores.csv")], ("clinician", "admin")),
-    ("write_clinical", ["annotate", "DEMO-01", "--visit", "2023-02-14", "--phenotype", "distal"], ("clinician", "admin")),
+    (
+        "write_clinical",
+        ["annotate", "DEMO-01", "--visit", "2023-02-14", "--phenotype", "distal"],
+        ("clinician", "admin"),
+    ),
     ("write_clinical", ["evaluate"], ("clinician", "admin")),
     ("read_audit", ["audit"], ("clinician", "admin")),
     ("read_audit", ["audit", "verify"], ("clinician", "admin")),
@@ -248,14 +294,23 @@ def _grant(url: str, boss: str, name: str, role: str) -> None:
 
     engine = make_engine(url)
     with make_session_factory(engine).begin() as session:
-        accounts.set_user(session, name, role=role, acting=Actor(boss, "admin", "os-login", authenticated=True),
-                          password=PASSWORD)
+        accounts.set_user(
+            session,
+            name,
+            role=role,
+            acting=Actor(boss, "admin", "os-login", authenticated=True),
+            password=PASSWORD,
+        )
     engine.dispose()
 
 
-@pytest.mark.parametrize(("permission", "args", "allowed"), COMMANDS, ids=[" ".join(c[1][:2]) for c in COMMANDS])
+@pytest.mark.parametrize(
+    ("permission", "args", "allowed"), COMMANDS, ids=[" ".join(c[1][:2]) for c in COMMANDS]
+)
 @pytest.mark.parametrize("role", ["viewer", "clinician", "coordinator", "admin"])
-def test_every_permission_holds_for_every_role(monkeypatch, staffed, capsys, tmp_path, role, permission, args, allowed):
+def test_every_permission_holds_for_every_role(
+    monkeypatch, staffed, capsys, tmp_path, role, permission, args, allowed
+):
     url, boss = staffed
     out = tmp_path / "exports"
     args = [a.replace("{tmp}", str(out)) for a in args]

@@ -19,8 +19,9 @@ def trail(db_url, capsys):
     """A database with a few audited writes: an import, a check (saves evaluations), an annotation."""
     assert run_cli(capsys, "--db", db_url, "import", str(DEMO / "measurements.csv"))[0] == 0
     assert run_cli(capsys, "--db", db_url, "check", "DEMO-01", "--criteria", "all")[0] == 0
-    code, _, err = run_cli(capsys, "--db", db_url, "annotate", "DEMO-01", "--visit", "2023-02-14",
-                           "--phenotype", "distal")
+    code, _, err = run_cli(
+        capsys, "--db", db_url, "annotate", "DEMO-01", "--visit", "2023-02-14", "--phenotype", "distal"
+    )
     assert code == 0, err
     return db_url
 
@@ -34,10 +35,13 @@ def test_an_untouched_trail_verifies(trail, capsys):
     assert code == 0 and "intact" in out
 
 
-@pytest.mark.parametrize("statement", [
-    "UPDATE audit_events SET username = 'someone-else' WHERE id = 1",
-    "DELETE FROM audit_events WHERE id = 2",
-])
+@pytest.mark.parametrize(
+    "statement",
+    [
+        "UPDATE audit_events SET username = 'someone-else' WHERE id = 1",
+        "DELETE FROM audit_events WHERE id = 2",
+    ],
+)
 def test_the_triggers_refuse_changing_or_deleting_a_row_even_for_the_owner(trail, statement):
     engine = make_engine(trail)
     with pytest.raises(DBAPIError, match="append-only"):
@@ -51,8 +55,11 @@ def test_an_application_login_cannot_change_audit_rows_on_postgresql(trail, monk
         pytest.skip("PostgreSQL roles only")
     with login(monkeypatch, trail, "app-invented") as (url, _):
         engine = make_engine(url)
-        for statement in ("UPDATE audit_events SET detail = 'x'", "DELETE FROM audit_events",
-                          "TRUNCATE audit_events"):
+        for statement in (
+            "UPDATE audit_events SET detail = 'x'",
+            "DELETE FROM audit_events",
+            "TRUNCATE audit_events",
+        ):
             with pytest.raises(DBAPIError):
                 with engine.begin() as connection:
                     connection.execute(text(statement))
@@ -72,11 +79,14 @@ def _without_triggers(url: str, statement: str) -> None:
     engine.dispose()
 
 
-@pytest.mark.parametrize(("statement", "problem"), [
-    ("UPDATE audit_events SET username = 'someone-else' WHERE id = 2", "content was changed"),
-    ("DELETE FROM audit_events WHERE id = 2", "link to the previous row does not match"),
-    ("UPDATE audit_events SET after = NULL WHERE id = 1", "content was changed"),
-])
+@pytest.mark.parametrize(
+    ("statement", "problem"),
+    [
+        ("UPDATE audit_events SET username = 'someone-else' WHERE id = 2", "content was changed"),
+        ("DELETE FROM audit_events WHERE id = 2", "link to the previous row does not match"),
+        ("UPDATE audit_events SET after = NULL WHERE id = 1", "content was changed"),
+    ],
+)
 def test_verify_names_the_first_broken_link(trail, capsys, statement, problem):
     _without_triggers(trail, statement)
     code, _, err = _verify(capsys, trail)
@@ -88,8 +98,12 @@ def test_verify_names_the_first_broken_link(trail, capsys, statement, problem):
 def test_a_row_inserted_by_hand_is_found(trail, capsys):
     engine = make_engine(trail)
     with engine.begin() as connection:
-        connection.execute(text("INSERT INTO audit_events (occurred_at, username, action, entity) "
-                                "VALUES (CURRENT_TIMESTAMP, 'forger-invented', 'add', 'user')"))
+        connection.execute(
+            text(
+                "INSERT INTO audit_events (occurred_at, username, action, entity) "
+                "VALUES (CURRENT_TIMESTAMP, 'forger-invented', 'add', 'user')"
+            )
+        )
     engine.dispose()
     code, _, err = _verify(capsys, trail)
     assert code == 1 and "never sealed" in err
@@ -114,12 +128,37 @@ def test_check_and_evaluate_and_annotate_are_in_the_trail_in_words(trail, capsys
 
 
 def test_a_second_check_records_the_outcome_before_and_after(trail, capsys):
-    """Checking a visit again after its phenotype changed: the audit row shows the outcome before and after."""
+    """Checking a visit again after its phenotype changed: the audit row
+    shows the outcome before and after."""
     for phenotype in ("distal", "typical"):
-        assert run_cli(capsys, "--db", trail, "annotate", "DEMO-01", "--visit", "2023-02-14",
-                       "--phenotype", phenotype)[0] == 0
-        assert run_cli(capsys, "--db", trail, "check", "DEMO-01", "--visit", "2023-02-14",
-                       "--criteria", "ean-pns-2021-cidp")[0] == 0
+        assert (
+            run_cli(
+                capsys,
+                "--db",
+                trail,
+                "annotate",
+                "DEMO-01",
+                "--visit",
+                "2023-02-14",
+                "--phenotype",
+                phenotype,
+            )[0]
+            == 0
+        )
+        assert (
+            run_cli(
+                capsys,
+                "--db",
+                trail,
+                "check",
+                "DEMO-01",
+                "--visit",
+                "2023-02-14",
+                "--criteria",
+                "ean-pns-2021-cidp",
+            )[0]
+            == 0
+        )
     code, out, _ = run_cli(capsys, "--db", trail, "audit", "--limit", "1")
     assert code == 0 and "saved criteria evaluations — DEMO-01/2023-02-14" in out
     # Before and after: the outcome either changed (a → b) or is marked unchanged; never left out.
@@ -130,9 +169,11 @@ def test_a_second_check_records_the_outcome_before_and_after(trail, capsys):
 def test_choosing_the_default_limits_records_before_and_after(trail, capsys, tmp_path):
     """The issue's finding: "choose default limits" recorded no before/after."""
     limits = tmp_path / "lab.csv"
-    limits.write_text("nerve,modality,parameter,bound,value,source\n"
-                      "median,motor,distal_latency_ms,uln,4.5,invented laboratory limits for this test\n",
-                      encoding="utf-8")
+    limits.write_text(
+        "nerve,modality,parameter,bound,value,source\n"
+        "median,motor,distal_latency_ms,uln,4.5,invented laboratory limits for this test\n",
+        encoding="utf-8",
+    )
     code, _, err = run_cli(capsys, "--db", trail, "limits", "import", str(limits), "--name", "lab-invented")
     assert code == 0, err
     code, _, err = run_cli(capsys, "--db", trail, "limits", "default", "lab-invented")

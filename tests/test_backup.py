@@ -107,7 +107,11 @@ def fill(url: str) -> None:
             session.add(User(username="invented-clinician", role="clinician"))
             # The login that runs the commands below is this database's admin (backup and restore need one,
             # with the password, once accounts exist).
-            session.add(User(username=system_identity(session)[0], role="admin", password_hash=hash_password(PASSWORD)))
+            session.add(
+                User(
+                    username=system_identity(session)[0], role="admin", password_hash=hash_password(PASSWORD)
+                )
+            )
     finally:
         engine.dispose()
 

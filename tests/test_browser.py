@@ -27,13 +27,23 @@ from tracker.services.follow_up import follow_up
 
 pytestmark = pytest.mark.browser
 CHROMIUM_FLAGS = [
-    "--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking", "--disable-component-update",
-    "--disable-sync", "--no-first-run", "--disable-quic",
+    "--headless",
+    "--no-sandbox",
+    "--disable-gpu",
+    "--disable-background-networking",
+    "--disable-component-update",
+    "--disable-sync",
+    "--no-first-run",
+    "--disable-quic",
 ]
 
 
 def chromium_path() -> str:
-    path = os.environ.get("NCS_TRACKER_CHROMIUM") or shutil.which("chromium") or ("/usr/bin/chromium" if Path("/usr/bin/chromium").exists() else None)
+    path = (
+        os.environ.get("NCS_TRACKER_CHROMIUM")
+        or shutil.which("chromium")
+        or ("/usr/bin/chromium" if Path("/usr/bin/chromium").exists() else None)
+    )
     if path is None:
         reason = "Debian's chromium is not installed (apt-get install -y chromium); the browser test needs it"
         if os.environ.get("CI"):
@@ -55,9 +65,20 @@ def serving(folder: Path, url: str, *options: str) -> Iterator[str]:
     port = free_port()
     log = (folder / "serve.log").open("w")
     process = subprocess.Popen(
-        [sys.executable, "-c", "from tracker.cli import main; main()", "--db", url, "serve",
-         "--port", str(port), *options],
-        stdout=log, stderr=subprocess.STDOUT, start_new_session=True,
+        [
+            sys.executable,
+            "-c",
+            "from tracker.cli import main; main()",
+            "--db",
+            url,
+            "serve",
+            "--port",
+            str(port),
+            *options,
+        ],
+        stdout=log,
+        stderr=subprocess.STDOUT,
+        start_new_session=True,
     )
     base = f"http://127.0.0.1:{port}"
     try:
@@ -111,7 +132,14 @@ def test_follow_up_page_draws_and_hover_shows_the_value(served, tmp_path):
         try:
             page = browser.new_page(viewport={"width": 1400, "height": 1800})
             outside: list[str] = []
-            page.on("request", lambda request: outside.append(request.url) if not request.url.startswith(("http://127.0.0.1", "data:", "blob:")) else None)
+            page.on(
+                "request",
+                lambda request: (
+                    outside.append(request.url)
+                    if not request.url.startswith(("http://127.0.0.1", "data:", "blob:"))
+                    else None
+                ),
+            )
             started = time.perf_counter()
             page.goto(f"{base}/follow-up?patient=DEMO-04")
             page.wait_for_selector(".js-plotly-plot .scatterlayer path.js-line", timeout=60_000)
@@ -119,7 +147,8 @@ def test_follow_up_page_draws_and_hover_shows_the_value(served, tmp_path):
             page.get_by_text("DEMO-04", exact=False).first.wait_for(timeout=30_000)
             assert page.get_by_text("must be reviewed by a qualified clinician", exact=False).count() >= 1
 
-            # Hover the first measured point of the trend chart (the second chart; the first is the outcome strip).
+            # Hover the first measured point of the trend chart (the second chart; the
+            # first is the outcome strip).
             trend = page.locator(".js-plotly-plot").nth(1)
             point = trend.locator(".scatterlayer .trace .points path").first
             point.scroll_into_view_if_needed()
@@ -161,7 +190,14 @@ def test_follow_up_page_shows_the_treatment_response(served, tmp_path):
         try:
             page = browser.new_page(viewport={"width": 1400, "height": 2400})
             outside: list[str] = []
-            page.on("request", lambda request: outside.append(request.url) if not request.url.startswith(("http://127.0.0.1", "data:", "blob:")) else None)
+            page.on(
+                "request",
+                lambda request: (
+                    outside.append(request.url)
+                    if not request.url.startswith(("http://127.0.0.1", "data:", "blob:"))
+                    else None
+                ),
+            )
             page.goto(f"{base}/follow-up?patient=DEMO-02")
             page.get_by_text("Treatment response", exact=True).wait_for(timeout=60_000)
             assert page.get_by_text("defers to the treating clinician", exact=False).count() >= 1
@@ -195,8 +231,15 @@ def test_sign_in_form_then_a_viewer_sees_the_patients_page(tmp_path):
     fill_demo(url)
     engine = make_engine(url)
     with make_session_factory(engine).begin() as session:
-        session.add(User(username="viewer-invented", role="viewer", active=True, failed_sign_ins=0,
-                         password_hash=hash_password(password)))
+        session.add(
+            User(
+                username="viewer-invented",
+                role="viewer",
+                active=True,
+                failed_sign_ins=0,
+                password_hash=hash_password(password),
+            )
+        )
     engine.dispose()
 
     local = ("http://127.0.0.1", "data:", "blob:")

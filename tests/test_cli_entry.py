@@ -102,14 +102,20 @@ def test_import_help_cites_only_what_the_repository_holds():
     result = _run("import", "--help")
     assert result.returncode == 0, result.stderr
     text = " ".join(result.stdout.split())
-    cited = set(re.findall(r"[\w./-]+\.(?:md|csv|py|toml|txt)\b", text)) | set(re.findall(r"\b[\w.-]+/(?=\s|$)", text))
+    cited = set(re.findall(r"[\w./-]+\.(?:md|csv|py|toml|txt)\b", text)) | set(
+        re.findall(r"\b[\w.-]+/(?=\s|$)", text)
+    )
     if "README" in text:
         cited.add("README.md")
     assert cited, text  # the help does point somewhere: the check below is not vacuous
     for name in cited:
-        assert (ROOT / name).exists() or (ROOT / "tracker" / name).exists(), f"{name} is cited but not in the repository"
+        assert (ROOT / name).exists() or (ROOT / "tracker" / name).exists(), (
+            f"{name} is cited but not in the repository"
+        )
     for heading in re.findall(r'README \("([^"]+)"\)', text):
-        assert re.search(rf"^#+ {re.escape(heading)}$", (ROOT / "README.md").read_text(encoding="utf-8"), re.M), heading
+        assert re.search(
+            rf"^#+ {re.escape(heading)}$", (ROOT / "README.md").read_text(encoding="utf-8"), re.M
+        ), heading
     assert "§" not in text, text  # a section sign points into a document the repository does not hold
 
 

@@ -28,7 +28,14 @@ from tracker.services import preferences
 from tracker.services.entry import empty_layout, entry_table
 
 APP = str(Path(__file__).resolve().parent.parent / "tracker" / "dashboard" / "app.py")
-PAGES = ["views/patients.py", "views/follow_up.py", "views/visit_review.py", "views/visit_entry.py", "views/cohort.py", "views/settings.py"]
+PAGES = [
+    "views/patients.py",
+    "views/follow_up.py",
+    "views/visit_review.py",
+    "views/visit_entry.py",
+    "views/cohort.py",
+    "views/settings.py",
+]
 TITLES = ["Patients", "Follow-up", "Visit review", "New study", "Cohort", "Settings"]
 
 
@@ -76,7 +83,12 @@ def plotly_specs(at: AppTest) -> list[dict]:
 
 
 def page_text(at: AppTest) -> str:
-    parts = [m.value for m in at.markdown] + [c.value for c in at.caption] + [i.value for i in at.info] + [e.value for e in at.error]
+    parts = (
+        [m.value for m in at.markdown]
+        + [c.value for c in at.caption]
+        + [i.value for i in at.info]
+        + [e.value for e in at.error]
+    )
     return "\n".join(str(p) for p in parts)
 
 
@@ -130,8 +142,13 @@ def test_follow_up_switches_parameter(monkeypatch, demo_url):
     assert not at.exception
     trend = plotly_specs(at)[1]
     assert trend["layout"]["meta"]["parameter"] == "distal_latency"
-    median = [t for t in trend["data"] if t.get("meta", {}).get("panel") == "median right (motor)" and t["meta"]["kind"] == "measured"][0]
-    # First value = the demo file's distal latency of that visit (demo_data/measurements.csv, invented): 7.05 ms.
+    median = [
+        t
+        for t in trend["data"]
+        if t.get("meta", {}).get("panel") == "median right (motor)" and t["meta"]["kind"] == "measured"
+    ][0]
+    # First value = the demo file's distal latency of that visit
+    # (demo_data/measurements.csv, invented): 7.05 ms.
     assert median["customdata"][0][:2] == ["2023-02-14", "7.05"]
 
 
@@ -144,7 +161,13 @@ def test_visit_review_shows_trace_and_outcome(monkeypatch, demo_url):
     # Hand-checked in tests/test_demo_outcomes.py: EFNS/PNS 2010 definite by distal latencies at this visit.
     assert "▲ definite" in text
     traces = [d.value for d in at.dataframe]
-    median = next(t for t in traces if "criterion" in t and (t["criterion"] == "distal motor latency").any() and t["value"].str.contains("7.05").any())
+    median = next(
+        t
+        for t in traces
+        if "criterion" in t
+        and (t["criterion"] == "distal motor latency").any()
+        and t["value"].str.contains("7.05").any()
+    )
     row = median[median["criterion"] == "distal motor latency"].iloc[0]
     assert row["verdict"].startswith("▲ met") and "6.60" in row["threshold"]
     # The source is a footnote number; the footnote names the publication.
@@ -441,13 +464,17 @@ def test_cohort_counts_match_the_database(monkeypatch, demo_url):
     engine = make_engine(demo_url)
     with make_session_factory(engine)() as session:
         visits = session.scalar(select(func.count()).select_from(Visit))
-        by_diagnosis = dict(session.execute(select(Visit.diagnosis, func.count()).group_by(Visit.diagnosis)).all())
+        by_diagnosis = dict(
+            session.execute(select(Visit.diagnosis, func.count()).group_by(Visit.diagnosis)).all()
+        )
     engine.dispose()
     assert int(counts["visits"].sum()) == visits == 29
     # Diagnoses in words on screen (labels.DIAGNOSIS_SHORT: "mmn" → "MMN"), ids in the database.
     from tracker.domain.labels import DIAGNOSIS_SHORT
 
-    assert {k: int(v) for k, v in counts["visits"].items()} == {DIAGNOSIS_SHORT[k]: v for k, v in by_diagnosis.items()}
+    assert {k: int(v) for k, v in counts["visits"].items()} == {
+        DIAGNOSIS_SHORT[k]: v for k, v in by_diagnosis.items()
+    }
     at.selectbox(key="cohort_diagnosis").select("mmn").run()
     visits_table = at.dataframe[1].value
     assert set(visits_table["diagnosis"]) == {"MMN"} and len(visits_table) == by_diagnosis["mmn"]
@@ -487,7 +514,9 @@ def test_follow_up_says_when_a_set_has_no_threshold_for_the_parameter(monkeypatc
     # Definite motor conduction block: negative-peak area reduction ≥ 50 % (same publication).
     assert lines and all(set(_numbers(t["y"])) == {50.0} for t in lines)
     blocks = [t for t in trend["data"] if t.get("meta", {}).get("kind") == "measured"]
-    assert blocks and all(t["meta"]["series"].startswith("wrist →") or "→" in t["meta"]["series"] for t in blocks)
+    assert blocks and all(
+        t["meta"]["series"].startswith("wrist →") or "→" in t["meta"]["series"] for t in blocks
+    )
 
 
 def _numbers(values) -> list[float]:
@@ -535,12 +564,16 @@ def test_follow_up_shows_score_panels_and_the_response(monkeypatch, demo_url):
     # Another rule set: the panel follows the service.
     at.selectbox(key="follow_rules").select("trial-composite").run()
     assert not at.exception and not at.error
-    composite = _service(demo_url, lambda session: patient_response(session, "DEMO-02", rules_id="trial-composite"))
+    composite = _service(
+        demo_url, lambda session: patient_response(session, "DEMO-02", rules_id="trial-composite")
+    )
     text = page_text(at)
     assert composite.rule_set.title in text
     for c in composite.classifications:
         assert f"{CLASSIFICATION_SHAPES[c.classification]} {CLASSIFICATION_LABELS[c.classification]}" in text
-    evidence = [d.value for d in at.dataframe if "threshold" in d.value.columns and "source" in d.value.columns]
+    evidence = [
+        d.value for d in at.dataframe if "threshold" in d.value.columns and "source" in d.value.columns
+    ]
     assert sum(len(e) for e in evidence) == sum(len(c.evidence) for c in composite.classifications)
 
 
@@ -553,14 +586,20 @@ def test_patients_page_has_the_course_column(monkeypatch, demo_url):
         if rules_id != "trial-aincat":
             at.selectbox(key="patients_rules").select(rules_id).run()
             assert not at.exception
-        expected = _service(demo_url, lambda session: cohort_course(session, rules_id=rules_id)).set_index("code")
+        expected = _service(demo_url, lambda session: cohort_course(session, rules_id=rules_id)).set_index(
+            "code"
+        )
         table = at.dataframe[0].value.set_index("patient")
         assert set(COURSE_LABELS.values()) >= set(table["course"])
         assert table["course"].to_dict() == {code: COURSE_LABELS[c] for code, c in expected["course"].items()}
         from tracker.response.rules import rule_sets
 
-        title = rule_sets()[rules_id].title  # the rule set in words, with its version (ids stay in JSON and exports)
-        assert table["course rule set"].to_dict() == {code: f"{title} (version {v})" for code, v in zip(expected.index, expected["rules_version"])}
+        title = rule_sets()[
+            rules_id
+        ].title  # the rule set in words, with its version (ids stay in JSON and exports)
+        assert table["course rule set"].to_dict() == {
+            code: f"{title} (version {v})" for code, v in zip(expected.index, expected["rules_version"])
+        }
 
 
 def test_visit_review_criteria_follow_the_patients_diagnosis(monkeypatch, demo_url):
@@ -591,7 +630,11 @@ def _plotly_words(spec: dict) -> list[str]:
     layout = spec.get("layout", {})
     title = lambda t: (t.get("text") or "") if isinstance(t, dict) else (t or "")
     out = [title(layout.get("title"))] + [a.get("text") or "" for a in layout.get("annotations", []) or []]
-    out += [title(v.get("title")) for k, v in layout.items() if k[:5] in ("xaxis", "yaxis") and isinstance(v, dict)]
+    out += [
+        title(v.get("title"))
+        for k, v in layout.items()
+        if k[:5] in ("xaxis", "yaxis") and isinstance(v, dict)
+    ]
     for trace in spec.get("data", []):
         out.append(str(trace.get("name") or ""))
         for key in ("text", "x", "y"):  # category axes (criteria sets) and marker words
@@ -610,7 +653,19 @@ def shown_words(at: AppTest) -> list[str]:
 
     def walk(node) -> None:
         kind = type(node).__name__
-        if kind in ("Markdown", "Caption", "Title", "Header", "Subheader", "Info", "Warning", "Error", "Success", "Text", "Code"):
+        if kind in (
+            "Markdown",
+            "Caption",
+            "Title",
+            "Header",
+            "Subheader",
+            "Info",
+            "Warning",
+            "Error",
+            "Success",
+            "Text",
+            "Code",
+        ):
             out.append(str(node.value))
         if kind in ("Selectbox", "Radio", "Multiselect"):
             out.append(node.label)
@@ -672,11 +727,15 @@ def test_visit_review_changes_since_the_previous_visit_as_a_table(monkeypatch, d
     from tracker.dashboard.tables import CHANGE_COLUMNS
 
     at = open_page(monkeypatch, demo_url, "views/visit_review.py", patient="DEMO-01")
-    at.multiselect(key="review_criteria").set_value(["ean-pns-2021-cidp", "efns-pns-2010-cidp", "aan-1991-cidp"]).run()
+    at.multiselect(key="review_criteria").set_value(
+        ["ean-pns-2021-cidp", "efns-pns-2010-cidp", "aan-1991-cidp"]
+    ).run()
     assert not at.exception
     changed = [d.value for d in at.dataframe if list(d.value.columns) == CHANGE_COLUMNS]
     assert changed and all(len(t) for t in changed)
-    assert all(set(t["now"]) <= {"▲ met", "○ not met", "? not evaluable", "– not applicable"} for t in changed)
+    assert all(
+        set(t["now"]) <= {"▲ met", "○ not met", "? not evaluable", "– not applicable"} for t in changed
+    )
     assert any(m.value.startswith("**Changed since") for m in at.markdown)
 
 

@@ -184,7 +184,7 @@ def test_day_counts_are_whole_numbers_in_csv_and_excel(clinic, tmp_path):
         assert all(isinstance(v, int) for v in values if v is not None), name
 
 
-# -- 2. absences are findings ----------------------------------------------------------------------------------
+# -- 2. absences are findings --------------------------------------------------------------------------------
 
 
 def test_recorded_absences_are_flagged_rows_at_every_level(clinic):

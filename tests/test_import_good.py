@@ -10,7 +10,16 @@ import pytest
 from sqlalchemy import func, select
 
 from conftest import DEMO, fingerprint, run_cli
-from tracker.db.models import AuditEvent, NerveTest, OutcomeScore, Patient, StimulationSite, Treatment, Visit, VisitRevision
+from tracker.db.models import (
+    AuditEvent,
+    NerveTest,
+    OutcomeScore,
+    Patient,
+    StimulationSite,
+    Treatment,
+    Visit,
+    VisitRevision,
+)
 from tracker.services.records import patient_record
 
 DEMO_FILES = [DEMO / "measurements.csv", DEMO / "treatments.csv", DEMO / "scores.csv"]
@@ -64,10 +73,13 @@ def test_show_prints_velocities_computed_from_the_file(db_url, capsys):
     rows = [r for r in _demo_rows() if r["patient"] == "DEMO-01" and r["modality"] == "motor"]
     first_date = min(r["visit_date"] for r in rows)
     median = sorted(
-        (r for r in rows if r["visit_date"] == first_date and r["nerve"] == "median"), key=lambda r: int(r["site_order"])
+        (r for r in rows if r["visit_date"] == first_date and r["nerve"] == "median"),
+        key=lambda r: int(r["site_order"]),
     )
     # Hand arithmetic straight from the CSV cells: distance (mm) / latency difference (ms) = m/s.
-    expected = float(median[1]["distance_mm"]) / (float(median[1]["latency_ms"]) - float(median[0]["latency_ms"]))
+    expected = float(median[1]["distance_mm"]) / (
+        float(median[1]["latency_ms"]) - float(median[0]["latency_ms"])
+    )
     code, out, err = run_cli(capsys, "--db", db_url, "show", "DEMO-01", "--visit", first_date)
     assert code == 0, err
     segment_line = next(line for line in out.splitlines() if "median right: wrist → elbow" in line)
@@ -106,7 +118,11 @@ def test_reordered_and_reformatted_rows_are_the_same_content(db_url, engine, tmp
 def test_changed_visit_needs_replace_and_keeps_history(db_url, engine, sessions, tmp_path, capsys):
     assert run_cli(capsys, "--db", db_url, "import", str(DEMO_FILES[0]))[0] == 0
     rows = _demo_rows()
-    target = next(i for i, r in enumerate(rows) if r["patient"] == "DEMO-03" and r["nerve"] == "ulnar" and r["site_order"] == "2")
+    target = next(
+        i
+        for i, r in enumerate(rows)
+        if r["patient"] == "DEMO-03" and r["nerve"] == "ulnar" and r["site_order"] == "2"
+    )
     old_latency = float(rows[target]["latency_ms"])
     rows[target]["latency_ms"] = f"{old_latency + 0.2:.2f}"
     path = tmp_path / "amended.csv"
@@ -119,7 +135,9 @@ def test_changed_visit_needs_replace_and_keeps_history(db_url, engine, sessions,
     code, _, err = run_cli(capsys, "--db", db_url, "import", str(path))
     assert code == 1
     first_row_of_visit = 2 + min(
-        i for i, r in enumerate(rows) if r["patient"] == "DEMO-03" and r["visit_date"] == rows[target]["visit_date"]
+        i
+        for i, r in enumerate(rows)
+        if r["patient"] == "DEMO-03" and r["visit_date"] == rows[target]["visit_date"]
     )
     assert f"row {first_row_of_visit}, column 'visit_date'" in err
     assert "--replace" in err
@@ -130,14 +148,20 @@ def test_changed_visit_needs_replace_and_keeps_history(db_url, engine, sessions,
     assert "replaced 1" in out
     date = dt.date.fromisoformat(rows[target]["visit_date"])
     with sessions() as session:
-        visit = session.scalar(select(Visit).join(Patient).where(Patient.code == "DEMO-03", Visit.visit_date == date))
+        visit = session.scalar(
+            select(Visit).join(Patient).where(Patient.code == "DEMO-03", Visit.visit_date == date)
+        )
         assert visit.version == 2
         revision = session.scalar(select(VisitRevision).where(VisitRevision.visit_id == visit.id))
         assert revision.revision == 1 and revision.replaced_by
-        ulnar = next(t for t in revision.snapshot["nerve_tests"] if t["nerve"] == "ulnar" and t["modality"] == "motor")
+        ulnar = next(
+            t for t in revision.snapshot["nerve_tests"] if t["nerve"] == "ulnar" and t["modality"] == "motor"
+        )
         assert [s["latency_ms"] for s in ulnar["sites"] if s["site_order"] == 2] == [old_latency]
         record = patient_record(session, "DEMO-03", visit_date=visit.visit_date)
-        site = next(n for n in record.visits[0].nerves if n.nerve == "ulnar" and n.modality == "motor").sites[1]
+        site = next(n for n in record.visits[0].nerves if n.nerve == "ulnar" and n.modality == "motor").sites[
+            1
+        ]
         assert site.latency_ms == pytest.approx(old_latency + 0.2)
         actions = session.scalars(select(AuditEvent.action)).all()
         assert "replace_visit" in actions
@@ -177,7 +201,9 @@ def test_xlsx_gives_the_same_content_as_csv(backend, tmp_path, capsys):
             engine = make_engine(url)
             with engine.connect() as connection:
                 prints.append(
-                    connection.execute(select(Visit.content_sha256).order_by(Visit.content_sha256)).scalars().all()
+                    connection.execute(select(Visit.content_sha256).order_by(Visit.content_sha256))
+                    .scalars()
+                    .all()
                 )
             engine.dispose()
     assert prints[0] == prints[1]
@@ -206,7 +232,9 @@ def test_no_response_is_stored_as_a_finding(db_url, sessions, capsys):
     assert absent, "the demo clinic includes absent responses"
     with sessions() as session:
         stored = session.scalars(
-            select(StimulationSite).where((StimulationSite.amplitude_uv == 0) | (StimulationSite.amplitude_mv == 0))
+            select(StimulationSite).where(
+                (StimulationSite.amplitude_uv == 0) | (StimulationSite.amplitude_mv == 0)
+            )
         ).all()
         assert len(stored) == len(absent)
         assert all(s.latency_ms is None for s in stored)
@@ -223,11 +251,16 @@ def test_fingerprints_recomputed_from_stored_rows_equal_the_import_ones(db_url, 
 
 def test_patient_diagnosis_follows_the_latest_visit_that_states_it(db_url, sessions, tmp_path, capsys):
     # Invented scenario: an acute neuropathy first recorded as GBS is later judged CIDP.
-    header = "patient,visit_date,nerve,side,modality,site_order,distance_mm,latency_ms,amplitude_mv,diagnosis,phenotype\n"
+    header = (
+        "patient,visit_date,nerve,side,modality,site_order,distance_mm,latency_ms,amplitude_mv,"
+        "diagnosis,phenotype\n"
+    )
     first = tmp_path / "first.csv"
     first.write_text(header + "T-7,2024-01-10,median,right,motor,1,70,4.0,6.0,gbs,\n", encoding="utf-8")
     later = tmp_path / "later.csv"
-    later.write_text(header + "T-7,2024-06-10,median,right,motor,1,70,4.6,5.0,cidp,typical\n", encoding="utf-8")
+    later.write_text(
+        header + "T-7,2024-06-10,median,right,motor,1,70,4.6,5.0,cidp,typical\n", encoding="utf-8"
+    )
     assert run_cli(capsys, "--db", db_url, "import", str(first))[0] == 0
     with sessions() as session:
         assert session.scalar(select(Patient.diagnosis).where(Patient.code == "T-7")) == "gbs"
@@ -239,7 +272,10 @@ def test_patient_diagnosis_follows_the_latest_visit_that_states_it(db_url, sessi
 
 def test_phenotype_comes_from_the_same_visit_as_the_diagnosis(db_url, sessions, tmp_path, capsys):
     # Invented scenario: CIDP (distal) first, later reclassified as "other" with no phenotype.
-    header = "patient,visit_date,nerve,side,modality,site_order,distance_mm,latency_ms,amplitude_mv,diagnosis,phenotype\n"
+    header = (
+        "patient,visit_date,nerve,side,modality,site_order,distance_mm,latency_ms,amplitude_mv,"
+        "diagnosis,phenotype\n"
+    )
     path = tmp_path / "two.csv"
     path.write_text(
         header

@@ -47,8 +47,15 @@ def _add_accounts(url: str, roles: dict[str, str]) -> None:
     try:
         with make_session_factory(engine).begin() as session:
             for name, role in roles.items():
-                session.add(User(username=name, role=role, active=True, failed_sign_ins=0,
-                                 password_hash=accounts.hash_password(PASSWORD)))
+                session.add(
+                    User(
+                        username=name,
+                        role=role,
+                        active=True,
+                        failed_sign_ins=0,
+                        password_hash=accounts.hash_password(PASSWORD),
+                    )
+                )
     finally:
         engine.dispose()
 
@@ -139,8 +146,11 @@ def everything_stored(url: str) -> str:
     engine = make_engine(url)
     try:
         with engine.connect() as connection:
-            return "\n".join(repr(tuple(row)) for table in Base.metadata.sorted_tables
-                             for row in connection.execute(select(table)))
+            return "\n".join(
+                repr(tuple(row))
+                for table in Base.metadata.sorted_tables
+                for row in connection.execute(select(table))
+            )
     finally:
         engine.dispose()
 
@@ -460,8 +470,10 @@ def test_a_demoted_clinician_loses_new_study_at_the_next_run(url):
     at = signed_in("demoted-invented")
     at.switch_page("views/visit_entry.py").run()
     assert [t.value for t in at.title] == ["New study"]
-    as_admin(url, lambda session, admin: accounts.set_user(session, "demoted-invented", role="viewer",
-                                                            acting=admin))
+    as_admin(
+        url,
+        lambda session, admin: accounts.set_user(session, "demoted-invented", role="viewer", acting=admin),
+    )
     before = database_fingerprint(url)
     # Way around: pressing the button of the page that is still open in the browser.
     next(b for b in at.button if b.label == "Check and save").click()
@@ -499,11 +511,24 @@ def test_a_dashboard_started_by_hand_beyond_loopback_asks_for_sign_in(clinic, mo
 # --- serve: where it may listen --------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize(("host", "loopback"), [
-    ("127.0.0.1", True), ("::1", True), ("localhost", True), ("127.0.0.2", True),
-    ("0.0.0.0", False), ("::", False), ("", False), ("192.168.1.20", False), ("10.0.0.5", False),
-    ("fe80::1", False), ("my-workstation.example", False), (" 127.0.0.1", False), ("[::1]", False),
-])
+@pytest.mark.parametrize(
+    ("host", "loopback"),
+    [
+        ("127.0.0.1", True),
+        ("::1", True),
+        ("localhost", True),
+        ("127.0.0.2", True),
+        ("0.0.0.0", False),
+        ("::", False),
+        ("", False),
+        ("192.168.1.20", False),
+        ("10.0.0.5", False),
+        ("fe80::1", False),
+        ("my-workstation.example", False),
+        (" 127.0.0.1", False),
+        ("[::1]", False),
+    ],
+)
 def test_check_exposure_lets_only_loopback_serve_without_sign_in(host, loopback):
     from tracker.errors import TrackerError
     from tracker.serving import check_exposure
@@ -534,13 +559,19 @@ def started(monkeypatch):
     from tracker import serving
 
     recorder = _Started()
-    monkeypatch.setattr(serving, "subprocess", SimpleNamespace(
-        Popen=recorder.Popen, DEVNULL=subprocess.DEVNULL, TimeoutExpired=subprocess.TimeoutExpired))
+    monkeypatch.setattr(
+        serving,
+        "subprocess",
+        SimpleNamespace(
+            Popen=recorder.Popen, DEVNULL=subprocess.DEVNULL, TimeoutExpired=subprocess.TimeoutExpired
+        ),
+    )
     return recorder
 
 
-def test_serve_beyond_loopback_without_sign_in_exits_1_and_starts_nothing(db_url, started, capsys,
-                                                                          monkeypatch):
+def test_serve_beyond_loopback_without_sign_in_exits_1_and_starts_nothing(
+    db_url, started, capsys, monkeypatch
+):
     from conftest import run_cli
 
     monkeypatch.delenv("NCS_TRACKER_SIGN_IN", raising=False)
@@ -581,8 +612,9 @@ def test_serve_with_sign_in_needs_an_active_account_with_a_password(db_url, star
     assert "Dashboard: http://0.0.0.0:" in out
 
 
-def test_serve_on_loopback_without_sign_in_does_not_pass_a_stray_sign_in_setting(db_url, started, capsys,
-                                                                                 monkeypatch):
+def test_serve_on_loopback_without_sign_in_does_not_pass_a_stray_sign_in_setting(
+    db_url, started, capsys, monkeypatch
+):
     from conftest import run_cli
 
     monkeypatch.setenv("NCS_TRACKER_SIGN_IN", "no")
@@ -601,7 +633,9 @@ def test_serve_on_ipv6_loopback_needs_no_sign_in_and_announces_a_usable_address(
     code, out, err = run_cli(capsys, "--db", db_url, "serve", "--host", "::1", "--port", "18670")
     assert code == 0, err
     [(command, environment)] = started.calls
-    assert command[command.index("--server.address") + 1] == "::1" and "NCS_TRACKER_SIGN_IN" not in environment
+    assert (
+        command[command.index("--server.address") + 1] == "::1" and "NCS_TRACKER_SIGN_IN" not in environment
+    )
     assert "Dashboard: http://[::1]:" in out
 
 
