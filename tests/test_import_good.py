@@ -7,9 +7,9 @@ import datetime as dt
 
 import openpyxl
 import pytest
+from conftest import DEMO, fingerprint, run_cli
 from sqlalchemy import func, select
 
-from conftest import DEMO, fingerprint, run_cli
 from tracker.db.models import (
     AuditEvent,
     NerveTest,
@@ -37,8 +37,9 @@ def _demo_rows() -> list[dict[str, str]]:
 
 def _clinical_fingerprint(engine) -> str:
     """Fingerprint without the audit trail (re-imports are audited but change no clinical data)."""
-    from conftest import Base
     import hashlib
+
+    from conftest import Base
 
     digest = hashlib.sha256()
     with engine.connect() as connection:
@@ -169,6 +170,7 @@ def test_changed_visit_needs_replace_and_keeps_history(db_url, engine, sessions,
 
 def test_xlsx_gives_the_same_content_as_csv(backend, tmp_path, capsys):
     from conftest import new_database
+
     from tracker.db import migrate
     from tracker.db.session import make_engine
 

@@ -217,9 +217,8 @@ def check_command(
 
     from tracker.check_report import json_payload, text
     from tracker.criteria import engine
-    from tracker.services.evaluation import check_visit
-
     from tracker.services import preferences
+    from tracker.services.evaluation import check_visit
 
     chosen = engine.available() if "all" in criteria else list(criteria) or None
     day = _parse_date(visit_date) if visit_date else None
@@ -751,8 +750,8 @@ def serve_command(context: Context, port: int, host: str, sign_in: bool) -> None
     Without --sign-in the dashboard acts as your login (one person on this machine); with it, visitors sign
     in with their own accounts and see what their roles allow.
     """
-    from tracker.serving import check_exposure
     from tracker.services.access.accounts import list_users
+    from tracker.serving import check_exposure
 
     check_exposure(host, sign_in=sign_in)
     context.engine()  # refuse early, with one line, when the schema is missing or outdated
@@ -902,8 +901,7 @@ def export_command(
     The criteria settings apply as in check: the options given here, else the database's settings."""
     import dataclasses
 
-    from tracker.services.export import write_export
-    from tracker.services.export import ExportOptions
+    from tracker.services.export import ExportOptions, write_export
 
     pairs = []
     for item in outcomes:

@@ -25,9 +25,9 @@ from tracker.config import ENV_SIGN_IN, resolve_database_url
 from tracker.db.migrate import require_current_schema
 from tracker.db.session import make_engine, make_session_factory
 from tracker.errors import TrackerError
-from tracker.serving import is_loopback
 from tracker.services.access import accounts
 from tracker.services.access.permissions import PERMISSION_WORDS, PRIVILEGED, Actor, NotPermitted
+from tracker.serving import is_loopback
 
 log = logging.getLogger("ncs_tracker.dashboard")
 

@@ -13,8 +13,8 @@ from tracker.dashboard.state import database_url, may, require, user, writing
 from tracker.dashboard.widgets import criteria_title, limits_picker
 from tracker.domain.labels import DIAGNOSIS_SHORT
 from tracker.domain.vocabulary import DIAGNOSES
-from tracker.services.export import deidentify
 from tracker.services.cohort import counts_by_diagnosis, csv_bytes, outcome_shares
+from tracker.services.export import deidentify
 
 require("read")  # checked on the server whatever the navigation shows
 st.title("Cohort")
