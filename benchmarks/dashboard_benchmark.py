@@ -497,10 +497,12 @@ def database_counts(url: str) -> dict[str, int]:
         Evaluation,
         NerveTest,
         OutcomeScore,
-        Patient as PatientRow,
         StimulationSite,
         Treatment,
         Visit,
+    )
+    from tracker.db.models import (
+        Patient as PatientRow,
     )
     from tracker.db.session import make_engine, make_session_factory
 

@@ -100,9 +100,8 @@ def patients_page_seconds(url: str) -> float:
 def report_seconds() -> float:
     from tracker.db import migrate
     from tracker.db.session import make_engine, make_session_factory
-    from tracker.services.importing import import_file
-
     from tracker.report import build, render, write_private  # the printable report (issue 9, point 6)
+    from tracker.services.importing import import_file
 
     def write_report(
         session, code: str, out: Path

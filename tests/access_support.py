@@ -14,9 +14,10 @@ import uuid
 from collections.abc import Iterator
 from contextlib import contextmanager
 
-from conftest import PG_ADMIN_URL
 from sqlalchemy import create_engine, text
 from sqlalchemy.engine import make_url
+
+from conftest import PG_ADMIN_URL
 
 PASSWORD = "invented password 1"  # test accounts only
 

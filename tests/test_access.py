@@ -12,10 +12,10 @@ import subprocess
 import sys
 
 import pytest
-from access_support import PASSWORD, again, login, typed
-from conftest import DEMO, fingerprint, run_cli
 from sqlalchemy import select
 
+from access_support import PASSWORD, again, login, typed
+from conftest import DEMO, fingerprint, run_cli
 from tracker.db.models import AuditEvent, User
 
 OTHER_PASSWORD = "another invented pass 2"

@@ -6,11 +6,11 @@ Each test is one way a hostile user could try to rewrite history, or one write t
 from __future__ import annotations
 
 import pytest
-from access_support import login
-from conftest import DEMO, run_cli
 from sqlalchemy import text
 from sqlalchemy.exc import DBAPIError
 
+from access_support import login
+from conftest import DEMO, run_cli
 from tracker.db.session import is_sqlite, make_engine
 
 

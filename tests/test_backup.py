@@ -24,12 +24,12 @@ import uuid
 from pathlib import Path
 
 import pytest
-from access_support import PASSWORD
 from alembic.script import ScriptDirectory
-from conftest import DEMO, PG_ADMIN_URL, _pg_admin, fingerprint, new_database, run_cli
 from sqlalchemy import inspect, select, text
 from sqlalchemy.engine import make_url
 
+from access_support import PASSWORD
+from conftest import DEMO, PG_ADMIN_URL, _pg_admin, fingerprint, new_database, run_cli
 from tracker.db import migrate
 from tracker.db.models import Base, Patient, PatientIdentity, User, Visit, VisitRevision
 from tracker.db.session import create_private_file, make_engine, make_session_factory

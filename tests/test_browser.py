@@ -20,8 +20,8 @@ from contextlib import contextmanager
 from pathlib import Path
 
 import pytest
-from dashboard_support import fill_demo
 
+from dashboard_support import fill_demo
 from tracker.db.session import make_engine, make_session_factory
 from tracker.services.follow_up import follow_up
 

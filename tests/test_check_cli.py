@@ -6,9 +6,9 @@ import datetime as dt
 import json
 
 import pytest
-from conftest import DEMO, fingerprint, run_cli
 from sqlalchemy import func, select
 
+from conftest import DEMO, fingerprint, run_cli
 from tracker.db.models import Evaluation, LimitSet
 
 DEMO_FILES = [str(DEMO / n) for n in ("measurements.csv", "treatments.csv", "scores.csv")]

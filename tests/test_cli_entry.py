@@ -9,6 +9,7 @@ import sys
 from pathlib import Path
 
 import pytest
+
 from conftest import DEMO
 
 SCRIPT = shutil.which("ncs-tracker", path=str(Path(sys.executable).parent)) or shutil.which("ncs-tracker")

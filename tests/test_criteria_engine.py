@@ -8,10 +8,10 @@ import random
 import numpy as np
 import pandas as pd
 import pytest
-from criteria_cases import Motor, Sensory, Visit, evaluate, frames
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from criteria_cases import Motor, Sensory, Visit, evaluate, frames
 from tracker.criteria import engine, limits
 from tracker.criteria.model import MET, NOT_EVALUABLE
 

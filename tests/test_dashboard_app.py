@@ -16,11 +16,11 @@ from pathlib import Path
 import pandas as pd
 import pytest
 import streamlit as st
-from conftest import fingerprint, new_database
-from dashboard_support import fill_demo
 from sqlalchemy import func, select
 from streamlit.testing.v1 import AppTest
 
+from conftest import fingerprint, new_database
+from dashboard_support import fill_demo
 from tracker.db.models import AuditEvent, NerveTest, Patient, StimulationSite, Visit
 from tracker.db.session import make_engine, make_session_factory
 from tracker.services import preferences

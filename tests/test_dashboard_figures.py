@@ -8,6 +8,7 @@ import datetime as dt
 import pytest
 from sqlalchemy import func, select
 
+from conftest import new_database
 from dashboard_support import demo_csv_rows, fill_demo
 from tracker.criteria import engine as criteria_engine
 from tracker.criteria.model import Settings
@@ -18,8 +19,6 @@ from tracker.services.evaluation import load_frames
 from tracker.services.follow_up import PARAMETERS, follow_up
 from tracker.services.limit_sets import resolve
 from tracker.services.response import response_view
-
-from conftest import new_database
 
 
 @pytest.fixture(scope="module", params=["sqlite", pytest.param("postgresql", marks=pytest.mark.postgres)])
@@ -690,12 +689,11 @@ def test_mmn_block_is_plotted_per_segment_on_negative_peak_area(demo_sessions):
 
 def test_upload_goes_through_the_importer(tmp_path):
     # The New study page's upload hands the file's bytes to the importer: same checks, same all-or-nothing.
+    from conftest import fingerprint
     from tracker.db import migrate
     from tracker.errors import InputRejected
     from tracker.services.demo import demo_data_dir
     from tracker.services.entry import import_upload
-
-    from conftest import fingerprint
 
     url = f"sqlite:///{tmp_path / 'upload.sqlite3'}"
     migrate.upgrade(url)

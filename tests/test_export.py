@@ -36,8 +36,8 @@ from tracker.db.models import (
 from tracker.db.session import make_engine, make_session_factory
 from tracker.errors import TrackerError
 from tracker.services import preferences
-from tracker.services.export import deidentify, files as export_files
-from tracker.services.export import export_frame, write_export
+from tracker.services.export import deidentify, export_frame, write_export
+from tracker.services.export import files as export_files
 from tracker.services.export.tables import ExportOptions
 from tracker.services.importing import import_file
 

@@ -20,10 +20,10 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
-from conftest import BACKENDS, DEMO, new_database, run_cli
 from sqlalchemy import select
 
 import tracker
+from conftest import BACKENDS, DEMO, new_database, run_cli
 from tracker.criteria import thresholds
 from tracker.criteria.citations import citations
 from tracker.db import migrate

@@ -9,9 +9,9 @@ import json
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
-from conftest import DEMO, fingerprint, run_cli
 from sqlalchemy import select
 
+from conftest import DEMO, fingerprint, run_cli
 from tracker.db.models import AuditEvent, Patient, PatientIdentity, User
 from tracker.services.demo import build_demo_database
 from tracker.services.export import files as export_files
@@ -112,7 +112,6 @@ def test_identified_export_refused_without_a_role_and_nothing_written(demo_db, e
 
 def test_identified_export_refused_for_a_viewer(demo_db, engine, sessions, tmp_path, capsys, monkeypatch):
     from access_support import PASSWORD, login, typed
-
     from tracker.services.access import accounts
 
     with login(monkeypatch, demo_db, "viewer-invented") as (url, name):
@@ -130,7 +129,6 @@ def test_identified_export_by_a_coordinator_is_written_and_audited(
     demo_db, sessions, tmp_path, capsys, monkeypatch
 ):
     from access_support import PASSWORD, login, typed
-
     from tracker.services.access import accounts
 
     with login(monkeypatch, demo_db, "coordinator-invented") as (url, name):

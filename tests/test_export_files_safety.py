@@ -14,10 +14,11 @@ import tempfile
 from pathlib import Path
 
 import pytest
-from conftest import DEMO, run_cli
 
+from conftest import DEMO, run_cli
 from tracker.errors import TrackerError
-from tracker.services.export import deidentify, files as export_files, write_export
+from tracker.services.export import deidentify, write_export
+from tracker.services.export import files as export_files
 from tracker.services.export.tables import ExportOptions
 from tracker.services.importing import import_file
 

@@ -24,14 +24,12 @@ from sqlalchemy import select
 
 from conftest import BACKENDS, new_database
 from tracker.db import migrate
-from tracker.db.models import Patient
+from tracker.db.models import Patient, User
 from tracker.db.session import make_engine, make_session_factory
 from tracker.response.rules import DEFAULT_RULES, rule_sets
-from tracker.db.models import User
 from tracker.services import preferences
 from tracker.services.access.permissions import Actor
-from tracker.services.export import deidentify
-from tracker.services.export import export_frame, write_export
+from tracker.services.export import deidentify, export_frame, write_export
 from tracker.services.export.response import score_at
 from tracker.services.export.tables import ExportOptions
 from tracker.services.importing import import_file

@@ -23,9 +23,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import pytest
-from conftest import BACKENDS, DEMO, fingerprint, new_database, run_cli
 from sqlalchemy import select
 
+from conftest import BACKENDS, DEMO, fingerprint, new_database, run_cli
 from tracker.db import migrate
 from tracker.db.models import AuditEvent
 from tracker.db.session import make_engine, make_session_factory

@@ -7,9 +7,9 @@ import datetime as dt
 
 import openpyxl
 import pytest
-from conftest import DEMO, fingerprint, run_cli
 from sqlalchemy import func, select
 
+from conftest import DEMO, fingerprint, run_cli
 from tracker.db.models import (
     AuditEvent,
     NerveTest,
@@ -170,7 +170,6 @@ def test_changed_visit_needs_replace_and_keeps_history(db_url, engine, sessions,
 
 def test_xlsx_gives_the_same_content_as_csv(backend, tmp_path, capsys):
     from conftest import new_database
-
     from tracker.db import migrate
     from tracker.db.session import make_engine
 

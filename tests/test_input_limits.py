@@ -25,9 +25,9 @@ from pathlib import Path
 
 import openpyxl
 import pytest
-from conftest import fingerprint, run_cli
 from sqlalchemy import select
 
+from conftest import fingerprint, run_cli
 from tracker.db.models import LimitSet, NerveTest
 from tracker.errors import InputRejected, TrackerError
 from tracker.services import input_limits

@@ -17,11 +17,11 @@ from types import SimpleNamespace
 
 import pytest
 import streamlit as st
-from conftest import BACKENDS, fingerprint, new_database
-from dashboard_support import fill_demo
 from sqlalchemy import select, text
 from streamlit.testing.v1 import AppTest
 
+from conftest import BACKENDS, fingerprint, new_database
+from dashboard_support import fill_demo
 from tracker.db.models import AuditEvent, Base, User
 from tracker.db.session import make_engine, make_session_factory
 from tracker.services import preferences

@@ -19,7 +19,6 @@ from tracker.criteria.model import (
 from tracker.criteria.thresholds import COMPARATORS
 from tracker.domain.conduction import quantise_array
 
-
 _OPERATORS = {"ge": np.greater_equal, "gt": np.greater, "le": np.less_equal, "lt": np.less}
 
 

@@ -14,12 +14,12 @@ def main() -> None:
 
     import plotly.graph_objects  # noqa: F401
     import plotly.subplots  # noqa: F401
+    from streamlit.web.cli import main as streamlit_main
 
     import tracker.dashboard.figures  # noqa: F401
     import tracker.services.cohort  # noqa: F401
     import tracker.services.evaluation  # noqa: F401
     import tracker.services.follow_up  # noqa: F401
-    from streamlit.web.cli import main as streamlit_main
     from tracker.criteria import engine
 
     for module in engine.REGISTRY.values():  # the criteria sets are imported on first use otherwise

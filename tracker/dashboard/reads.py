@@ -16,8 +16,7 @@ from tracker.services import cohort, preferences
 from tracker.services.follow_up import FollowUp, follow_up, outcome_history
 from tracker.services.limit_sets import LimitSetInfo, list_limit_sets
 from tracker.services.records import PatientRecord, patient_codes, patient_record
-from tracker.services.response import cohort_course
-from tracker.services.response import ResponseView, response_view
+from tracker.services.response import ResponseView, cohort_course, response_view
 
 TTL = 600  # s: another user's writes show up at the latest after this
 

@@ -9,8 +9,8 @@ from __future__ import annotations
 
 import datetime as dt
 
-from tracker.report.content import FollowUpReport, build
 from tracker.report import output
+from tracker.report.content import FollowUpReport, build
 from tracker.report.output import creation_stamp, format_of, write_private
 
 __all__ = ["FollowUpReport", "build", "creation_stamp", "format_of", "output", "render", "write_private"]

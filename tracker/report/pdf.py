@@ -24,8 +24,10 @@ from reportlab.platypus import (
     Paragraph,
     SimpleDocTemplate,
     Spacer,
-    Table as PdfTable,
     TableStyle,
+)
+from reportlab.platypus import (
+    Table as PdfTable,
 )
 
 from tracker.report.content import FollowUpReport, Heading, Table

@@ -14,9 +14,9 @@ from sqlalchemy import case, func, literal, select
 from sqlalchemy.orm import Session
 
 from tracker.db.models import Evaluation, Patient, Treatment, Visit
+from tracker.services.evaluation import DEFAULT_CRITERIA, FALLBACK_CRITERIA
 from tracker.services.export import neutralise_text
 from tracker.services.follow_up import treatment_label
-from tracker.services.evaluation import DEFAULT_CRITERIA, FALLBACK_CRITERIA
 from tracker.services.limit_sets import resolve
 
 NOT_EVALUATED = "not evaluated"

@@ -19,9 +19,9 @@ from tracker.criteria import engine, features, thresholds
 from tracker.criteria.model import Settings
 from tracker.db.models import OutcomeScore, Treatment, Visit
 from tracker.domain.labels import COMPARATOR_SIGNS, PLOTTED_FEATURE_LABELS, threshold_label, treatment_words
+from tracker.services.evaluation import default_criteria, load_frames
 from tracker.services.limit_sets import LimitSetInfo, resolve
 from tracker.services.records import find_patient
-from tracker.services.evaluation import default_criteria, load_frames
 
 
 @dataclass(frozen=True)

@@ -17,8 +17,8 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from tracker.db.models import User
-from tracker.services.access.permissions import PERMISSIONS, Actor, NotPermitted
 from tracker.services import preferences
+from tracker.services.access.permissions import PERMISSIONS, Actor, NotPermitted
 
 # Hex digits of the HMAC kept as the export id: 64 bits, so that the chance of two patients of a cohort of
 # 100,000 sharing an id is about 3 in 10^10.

@@ -24,12 +24,12 @@ from tracker.criteria.model import SetResult, Settings
 from tracker.db.models import NerveTest, OutcomeScore, Patient, PatientIdentity, Treatment, Visit
 from tracker.domain.plausibility import scales
 from tracker.domain.vocabulary import DIAGNOSES
-from tracker.services.access.permissions import Actor
 from tracker.errors import NotFound, TrackerError
 from tracker.response.settings import ResponseSettings
-from tracker.services.export import deidentify
-from tracker.services.evaluation import load_frames
 from tracker.services import preferences
+from tracker.services.access.permissions import Actor
+from tracker.services.evaluation import load_frames
+from tracker.services.export import deidentify
 from tracker.services.export.columns import (
     NERVE_QUANTITIES,
     OUTCOME_VALUES,
