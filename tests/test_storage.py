@@ -50,7 +50,7 @@ ODD_DOCUMENTS = [
 ]
 
 
-# -- the column type ------------------------------------------------------------------------------------------
+# -- the column type ----------------------------------------------------------------------------------------
 
 
 @pytest.mark.parametrize("value", ODD_DOCUMENTS + [[1, 2, "x"], "text"])
@@ -100,7 +100,7 @@ def test_progress_goes_to_stderr_every_n_rows(capsys):
     assert capsys.readouterr().err.splitlines() == ["converting: 12 of 25 rows", "converting: 25 of 25 rows"]
 
 
-# -- a database with saved evaluations ------------------------------------------------------------------------
+# -- a database with saved evaluations ----------------------------------------------------------------------
 
 
 def _fill(url: str, folder) -> None:
