@@ -450,6 +450,7 @@ def test_a_busy_session_still_ends_after_the_longest_session(url, monkeypatch):
     clock.shift += step  # …until the longest session is over
     at.run()
     assert shows_sign_in_form(at) and not at.dataframe and "DEMO-" not in rendered(at)
+    assert f"at most {state.MAX_SESSION_HOURS} hours" in " ".join(i.value for i in at.info)
 
 
 def test_a_deactivated_account_is_signed_out_at_its_next_run(url):

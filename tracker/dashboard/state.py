@@ -103,8 +103,11 @@ def actor() -> Actor | None:
     if held is None:
         return None
     now = time.monotonic()
-    if now - held["last_seen"] > IDLE_MINUTES * 60 or now - held["signed_in"] > MAX_SESSION_HOURS * 3600:
+    if now - held["last_seen"] > IDLE_MINUTES * 60:
         sign_out(f"Your session ended after {IDLE_MINUTES} minutes without activity; please sign in again.")
+        return None
+    if now - held["signed_in"] > MAX_SESSION_HOURS * 3600:
+        sign_out(f"Your session ended: it may last at most {MAX_SESSION_HOURS} hours; please sign in again.")
         return None
     with reading() as session:
         current = accounts.actor_for(session, held["name"], "sign-in", authenticated=True)
