@@ -477,7 +477,7 @@ def build_database(name: str, patients_total: int, *, evaluate: str, rebuild: bo
     step = 500
     for start in range(0, len(visit_ids), step):
         with sessions.begin() as session:
-            refresh_evaluations(session, visit_ids=visit_ids[start : start + step])
+            refresh_evaluations(session, visit_ids=visit_ids[start : start + step], username="benchmark")
         progress(
             f"[{name}] evaluated {min(start + step, len(visit_ids)):,}/{len(visit_ids):,} visits "
             f"({time.perf_counter() - started:.0f} s)"
@@ -716,7 +716,7 @@ def browser_benchmark(repeat: int) -> tuple[list[float] | None, str]:
         path = Path(folder) / "demo.sqlite3"
         engine, _ = build_demo_database(path, username="benchmark")
         with make_session_factory(engine).begin() as session:
-            refresh_evaluations(session)
+            refresh_evaluations(session, username="benchmark")
         engine.dispose()
         url, port = f"sqlite:///{path}", free_port()
         command = [sys.executable, "-m", "tracker", "--db", url, "serve", "--port", str(port)]

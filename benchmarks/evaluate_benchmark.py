@@ -43,7 +43,7 @@ def main() -> None:
         for label in ("first evaluate (compute and save all)", "second evaluate (nothing changed)"):
             started = time.perf_counter()
             with sessions.begin() as session:
-                counts = refresh_evaluations(session)
+                counts = refresh_evaluations(session, username="benchmark")
             print(
                 f"{label}: {time.perf_counter() - started:.1f} s — {counts['visits']:,} visits, "
                 f"{counts['recomputed']:,} saved, {counts['unchanged']:,} unchanged"
