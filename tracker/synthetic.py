@@ -5,7 +5,7 @@ ALL DATA PRODUCED HERE ARE INVENTED. Codes are artificial (``SYN-TARGET``, ``SYN
 names, record numbers or birth dates, and the values describe no real person. Not for clinical use.
 
 Deterministic: a patient's record depends only on its code (every patient has its own random generator,
-seeded with the code), so a cohort of ``n`` patients is a prefix of a cohort of ``m > n`` patients, and the
+started from the code), so a cohort of ``n`` patients is a prefix of a cohort of ``m > n`` patients, and the
 followed patient ``SYN-TARGET`` is the same in every cohort. Only the standard library is used.
 
 Model (plausible, not fitted to any data): every nerve test starts from healthy adult values (distal
@@ -147,7 +147,7 @@ class SyntheticPatient:
 
 
 def _rng(code: str, purpose: str) -> random.Random:
-    """The generator of one patient and purpose (seeded with text: the same in every run and process)."""
+    """The generator of one patient and purpose (started from text: the same in every run and process)."""
     return random.Random(f"ncs-tracker synthetic v1 {code} {purpose}")
 
 
