@@ -17,7 +17,14 @@ from tracker.db import migrate, types
 from tracker.db.models import Evaluation
 from tracker.db.session import is_sqlite, make_engine, make_session_factory, sqlite_file
 from tracker.services.demo import DEMO_FILES, demo_data_dir
-from tracker.services.evaluation import compact_trace, load_frames, refresh_evaluations, to_json_many
+from tracker.services.evaluation import (
+    compact_trace,
+    expand_trace,
+    load_frames,
+    refresh_evaluations,
+    to_json_many,
+)
+from tracker.services.evaluation.traces import stored_traces
 from tracker.services.importing import import_file
 from tracker.services.limit_sets import resolve
 from tracker.synthetic import cohort, write_csv_files
@@ -274,15 +281,23 @@ def test_evaluations_are_saved_compressed_and_read_back_as_computed(db_url, tmp_
         )
     finally:
         engine.dispose()
+    keys = [int(k) for k in visits["visit_key"]]
     expected = {
-        (key, criteria_id): compact_trace(payload)
+        (key, criteria_id): document
         for criteria_id, result in results.items()
-        for key, payload in to_json_many(result, [int(k) for k in visits["visit_key"]]).items()
+        for key, document in stored_traces(result, keys).items()
     }
     assert stored.keys() == expected.keys()
     assert all(stored[key] == expected[key] for key in expected)
+    # Read back, the stored form is the full trace as shown (DESIGN.md §5).
+    shown = {
+        (key, criteria_id): payload
+        for criteria_id, result in results.items()
+        for key, payload in to_json_many(result, keys).items()
+    }
+    assert all(expand_trace(stored[key]) == shown[key] for key in shown)
     raw = _raw_results(db_url)
     assert all(isinstance(value, bytes) and value[0] == types.CURRENT_FORMAT for value in raw)
-    text_bytes = sum(len(json.dumps(value).encode()) for value in stored.values())
+    text_bytes = sum(len(json.dumps(value).encode()) for value in shown.values())
     # Measured about 1/18 of the JSON text on this data; a tenth leaves room for other traces.
     assert sum(len(value) for value in raw) < text_bytes / 10
