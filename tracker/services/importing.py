@@ -165,7 +165,14 @@ def _bulk_insert(session: Session, table, frame: pd.DataFrame, columns: list[str
         cells_by_column.append(cells)
     cursor = connection.connection.driver_connection.cursor()
     try:
-        cursor.executemany(sql, zip(*cells_by_column, strict=True))
+        if dialect.name == "postgresql":
+            # COPY: one statement streams every row (executemany sends them one by one, even pipelined).
+            copy_sql = f"COPY {quote(table.name)} ({', '.join(quote(c) for c in columns)}) FROM STDIN"
+            with cursor.copy(copy_sql) as copy:
+                for row in zip(*cells_by_column, strict=True):
+                    copy.write_row(row)
+        else:
+            cursor.executemany(sql, zip(*cells_by_column, strict=True))
     finally:
         cursor.close()
 
@@ -975,13 +982,10 @@ def _store_records(
     if dry_run:
         return report
     if (~is_stored).any():
-        session.execute(
-            insert(model),
-            [
-                {k: _clean(v) if k != "interval_days" or v is None else int(v) for k, v in r.items()}
-                for r in _records(merged[~is_stored], key_db + value_columns)
-            ],
-        )
+        added = merged[~is_stored]
+        if "interval_days" in added:  # whole days, validated; stored as an integer
+            added = added.assign(interval_days=added["interval_days"].astype("Int64"))
+        _bulk_insert(session, model.__table__, added, key_db + value_columns)
     for r in merged[changed].itertuples():
         before = {c: _jsonable(getattr(r, f"db_{c}")) for c in value_columns}
         after = {c: _jsonable(getattr(r, c)) for c in value_columns}
