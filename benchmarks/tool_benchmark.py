@@ -12,16 +12,21 @@ Measured in one run (progress on stderr, the table on stdout):
   and ``sqlite3.executemany`` into one flat table per file (WAL, synchronous=NORMAL, as the tool), on
   PostgreSQL ``COPY … FROM STDIN (FORMAT csv)`` of the same files into one flat table per file. Best of
   ``--repeat`` (fresh databases each time) — as ``benchmarks/import_benchmark.py``;
-* evaluate: ``ncs-tracker evaluate`` (every criteria set, every visit, saved) against loading the rows the
-  engine reads (``load_frames`` of every visit) — as ``benchmarks/evaluate_benchmark.py``;
+* evaluate: ``ncs-tracker evaluate`` (every criteria set, every visit, saved: the engine, the stored
+  traces, the writes and the audit) against loading the rows the engine reads (``load_frames`` of every
+  visit), for information — as ``benchmarks/evaluate_benchmark.py``;
 * the follow-up page (the followed patient) and the patients page: Streamlit ``AppTest``, cold caches,
   the engine created untimed, large against small database; medians of ``--runs`` alternating runs — as
   ``benchmarks/dashboard_benchmark.py`` and ``benchmarks/response_benchmark.py``;
 * ``ncs-tracker check SYN-TARGET`` (one visit, saved) against ``ncs-tracker show SYN-TARGET``: wall
   time of the whole command as a subprocess, medians of ``--runs`` alternating runs;
+* the criteria engine alone: all six sets over every visit in one pass, in memory, against loading the
+  rows it reads (``load_frames``) in the same process — as ``benchmarks/criteria_benchmark.py``;
 * export (``--level nerve --format csv``) and response (``cohort_response``: every patient): time per
-  visit or patient, large against small, and peak memory large against small — as
+  visit or patient, large against small — as
   ``benchmarks/export_memory_benchmark.py`` and ``benchmarks/response_benchmark.py``;
+* peak memory of import, evaluate, export and response: the large cohort against a tenth of it (its
+  first ``--patients / 10`` patients, in a database of its own), i.e. for ten times the data;
 * storage: database bytes per visit, and database bytes against the bytes of the CSV files imported (SQLite:
   the file; PostgreSQL: ``pg_total_relation_size`` summed over the tables, indexes and TOAST included).
 
@@ -135,16 +140,27 @@ def _floor_copy(url: str, files: list[str]) -> None:
         connection.commit()
 
 
-def _load(url: str) -> dict:
+def _load(url: str, with_engine: bool) -> dict:
+    """Load the rows the engine reads (every visit); with ``with_engine``, then run all six criteria sets
+    over them in one pass, in memory (nothing saved), and time that too."""
+    from tracker.criteria import engine as criteria_engine
     from tracker.db.session import make_engine, make_session_factory
     from tracker.services.evaluation import load_frames
+    from tracker.services.limit_sets import resolve
 
     engine = make_engine(url)
     try:
         with make_session_factory(engine)() as session:
+            _info, limits = resolve(session, None)
             started = time.perf_counter()
             visits, tests, sites = load_frames(session)
-            return {"seconds": time.perf_counter() - started, "visits": len(visits), "sites": len(sites)}
+            report = {"seconds": time.perf_counter() - started, "visits": len(visits), "sites": len(sites)}
+        if with_engine:
+            started = time.perf_counter()
+            results = criteria_engine.evaluate(visits, tests, sites, limits)
+            report["engine_seconds"] = time.perf_counter() - started
+            report["sets"] = len(results)
+        return report
     finally:
         engine.dispose()
 
@@ -187,7 +203,9 @@ def child(kind: str, target: str, rest: list[str]) -> None:
     elif kind == "floor-copy":
         _floor_copy(target, rest)
     elif kind == "load":
-        report = _load(target)
+        report = _load(target, with_engine=False)
+    elif kind == "engine":
+        report = _load(target, with_engine=True)
     elif kind == "response":
         report = _response(target)
     else:
@@ -481,7 +499,8 @@ def measure(
     args, databases: Databases, scratch: Path, runs: int, warm_up: bool, synthetic
 ) -> tuple[list[Row], str]:
     files: dict[str, list[str]] = {}
-    for name, count in (("small", args.small), ("large", args.patients)):
+    tenth_patients = max(1, args.patients // 10)
+    for name, count in (("small", args.small), ("tenth", tenth_patients), ("large", args.patients)):
         folder = scratch / f"files-{name}"
         folder.mkdir()
         files[name] = [str(p) for p in synthetic.write_csv_files(folder, list(synthetic.cohort(count)))]
@@ -490,9 +509,21 @@ def measure(
 
     # Small database: the reference of the page, export and response comparisons.
     small = databases.migrated("small")
-    small_import = run_child("import", small, *files["small"])
-    small_evaluate = run_child("evaluate", small)
+    run_child("import", small, *files["small"])
+    run_child("evaluate", small)
     progress("small database imported and evaluated")
+    # A tenth of the large cohort: the reference of the peak-memory comparisons (10 × the data).
+    tenth = databases.migrated("tenth")
+    tenth_runs = {
+        "import": run_child("import", tenth, *files["tenth"]),
+        "evaluate": run_child("evaluate", tenth),
+    }
+    (scratch / "export-tenth").mkdir()
+    tenth_runs["export"] = run_child("export", tenth, str(scratch / "export-tenth"))
+    tenth_runs["response"] = run_child("response", tenth)
+    tenth_count = counts(tenth)
+    databases.drop(tenth)
+    progress(f"tenth database ({tenth_count['visits']:,} visits) imported, evaluated, exported")
 
     # Import: best of --repeat into fresh databases, against the floor.
     imports, floors, large = [], [], ""
@@ -517,6 +548,8 @@ def measure(
 
     load = run_child("load", large)
     progress(f"load: {load['seconds']:.2f} s ({load['visits']:,} visits)")
+    in_memory = run_child("engine", large)
+    progress(f"engine: load {in_memory['seconds']:.2f} s, six sets {in_memory['engine_seconds']:.2f} s")
     evaluate = run_child("evaluate", large)
     progress(f"evaluate: {evaluate['seconds']:.2f} s")
     size = databases.size_bytes(large)
@@ -567,11 +600,18 @@ def measure(
             3,
         ),
         Row(
-            "evaluate (6 sets, saved)",
+            "criteria engine (6 sets, in memory)",
+            f"{in_memory['engine_seconds']:.2f} s",
+            f"load the rows {in_memory['seconds']:.2f} s",
+            in_memory["engine_seconds"] / in_memory["seconds"],
+            2,
+        ),
+        Row(
+            "evaluate command (6 sets, saved)",
             f"{evaluate['seconds']:.2f} s",
             f"load the rows {load['seconds']:.2f} s",
             evaluate["seconds"] / load["seconds"],
-            2,
+            None,
         ),
         Row(
             "follow-up page (AppTest)",
@@ -609,19 +649,19 @@ def measure(
             None,
         ),
     ]
-    for label, large_run, small_run in (
-        ("import", best_import, small_import),
-        ("evaluate", evaluate, small_evaluate),
-        ("export", exports["large"], exports["small"]),
-        ("response", responses["large"], responses["small"]),
+    for label, large_run, target in (
+        ("import", best_import, 1.5),
+        ("evaluate", evaluate, 1.5),
+        ("export", exports["large"], 1.5),
+        ("response", responses["large"], None),
     ):
         rows.append(
             Row(
-                f"peak memory: {label}",
+                f"peak memory: {label} (10 × data)",
                 f"large {large_run['peak_mb']:.0f} MB",
-                f"small {small_run['peak_mb']:.0f} MB",
-                large_run["peak_mb"] / small_run["peak_mb"],
-                None,
+                f"a tenth {tenth_runs[label]['peak_mb']:.0f} MB",
+                large_run["peak_mb"] / tenth_runs[label]["peak_mb"],
+                target,
             )
         )
     visits = count["visits"]
@@ -637,7 +677,8 @@ def measure(
     facts = (
         f"{count['patients']:,} invented patients ({visits:,} visits, {count['sites']:,} stimulation sites, "
         f"{count['evaluations']:,} saved evaluations) against {small_count['patients']:,} "
-        f"({small_count['visits']:,} visits)"
+        f"({small_count['visits']:,} visits); peak memory against a tenth: {tenth_count['patients']:,} "
+        f"({tenth_count['visits']:,} visits)"
     )
     return rows, facts
 

@@ -14,16 +14,17 @@ from tracker import synthetic
 ROOT = Path(__file__).resolve().parent.parent
 STEPS = (
     "import (3 files)",
-    "evaluate (6 sets, saved)",
+    "criteria engine (6 sets, in memory)",
+    "evaluate command (6 sets, saved)",
     "follow-up page (AppTest)",
     "patients page (AppTest)",
     "check one visit (wall)",
     "export per visit (nerve, csv)",
     "response per patient",
-    "peak memory: import",
-    "peak memory: evaluate",
-    "peak memory: export",
-    "peak memory: response",
+    "peak memory: import (10 × data)",
+    "peak memory: evaluate (10 × data)",
+    "peak memory: export (10 × data)",
+    "peak memory: response (10 × data)",
     "database bytes per visit",
 )
 
