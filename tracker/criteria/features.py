@@ -161,8 +161,27 @@ def _plain_text(frame: pd.DataFrame) -> pd.DataFrame:
         if frame[column].dtype == object:
             continue  # already plain (the limit columns are built that way)
         if column in TEXT_COLUMNS or column.endswith(("_source", "_status", "_stratum", "_segment")):
-            frame[column] = pd.Series(frame[column].to_numpy(dtype=object), index=frame.index, dtype=object)
+            values = _shared(frame[column].to_numpy(dtype=object))
+            frame[column] = pd.Series(values, index=frame.index, dtype=object)
     return frame
+
+
+def _shared(values: np.ndarray) -> np.ndarray:
+    """``values`` (an object array, edited in place) with every text replaced by the first equal text object.
+
+    Text read from Arrow comes as a new object per row: the rules group and compare these columns many times,
+    and with one object per distinct word its hash is computed once and equality is identity."""
+    if not len(values):
+        return values
+    codes, count = rules.codes_of(values)
+    present, first = np.unique(codes, return_index=True)
+    lookup = np.zeros(count, dtype=np.int64)
+    lookup[present] = first
+    is_text = np.zeros(count, dtype=bool)
+    is_text[present] = [type(values[row]) is str for row in first]
+    text = is_text[codes]
+    values[text] = values[lookup[codes[text]]]
+    return values
 
 
 def _paths(sites: pd.DataFrame, nerves: pd.DataFrame) -> pd.DataFrame:

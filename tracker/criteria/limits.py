@@ -16,6 +16,7 @@ import numpy as np
 import pandas as pd
 
 from tracker.criteria.citations import source_text
+from tracker.criteria.rules import codes_of
 
 LIMIT_COLUMNS = [
     "nerve",
@@ -130,11 +131,16 @@ def attach_limits(nerves: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
     strata = [_describe_stratum(row) for row in limits.rename(columns={"sex": "sex_limit"}).itertuples()]
     n = len(nerves)
     # Which (nerve, modality) each nerve test has, as small integer codes the limit rows can be matched on.
-    pairs = pd.MultiIndex.from_arrays(
-        [nerves["nerve"].to_numpy(dtype=object), nerves["modality"].to_numpy(dtype=object)]
+    # (Codes of plain object columns: a MultiIndex of them would first turn each into a string column.)
+    nerve_names = nerves["nerve"].to_numpy(dtype=object)
+    modalities = nerves["modality"].to_numpy(dtype=object)
+    nerve_codes, _ = codes_of(nerve_names)
+    modality_codes, modality_count = codes_of(modalities)
+    _, first, pair_codes = np.unique(
+        nerve_codes * modality_count + modality_codes, return_index=True, return_inverse=True
     )
-    pair_codes, pair_values = pd.factorize(pairs)
-    pair_code = {value: code for code, value in enumerate(pair_values)}
+    pair_codes = pair_codes.reshape(-1)
+    pair_code = {(nerve_names[row], modalities[row]): code for code, row in enumerate(first)}
     age = nerves["age_years"].to_numpy(dtype=float)
     height = nerves["height_cm"].to_numpy(dtype=float)
     sex_codes, sex_values = pd.factorize(

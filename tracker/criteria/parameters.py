@@ -38,7 +38,9 @@ def limit_provenance(frame: pd.DataFrame, column: str) -> dict[str, pd.Series]:
         stratum,
     )
     return {
-        "limit_source": pd.Series(with_stratum, index=frame.index),
+        # object: letting pandas infer a string column here, only to turn it back into objects, cost more
+        # than the rule itself
+        "limit_source": pd.Series(with_stratum, index=frame.index, dtype=object),
         "limit_status": frame[f"{column}_status"],
     }
 
@@ -468,10 +470,11 @@ def _derived_filter(table: ThresholdTable, item: str, nerves: pd.Series) -> tupl
     rows = [r for r in table.rows if r.item == item and r.lff_hz is None]
     at = {r.nerve: (r.derived_lff_hz, r.derived_lff_status) for r in rows if r.derived_lff_hz is not None}
     generic = at.get("*", (np.nan, ""))
-    # Series.map with a dict: one hash lookup per row in pandas, not a Python loop over millions of rows.
-    derived = nerves.map({n: v[0] for n, v in at.items()}).to_numpy(dtype=float, copy=True)
-    status = nerves.map({n: v[1] for n, v in at.items()}).to_numpy(dtype=object, copy=True)
-    unnamed = pd.isna(status)
-    derived[unnamed] = generic[0]
-    status[unnamed] = generic[1]
+    # Looked up once per distinct nerve name, not once per row.
+    found = rules.per_distinct(
+        lambda name: at.get(name, generic) if isinstance(name, str) else generic, nerves
+    )
+    derived = np.array([f[0] for f in found], dtype=float)
+    status = np.empty(len(found), dtype=object)
+    status[:] = [f[1] for f in found]
     return derived, status

@@ -17,6 +17,11 @@ from tracker.criteria.model import (
     Settings,
 )
 from tracker.criteria.thresholds import COMPARATORS
+
+try:  # Python-object hash table (pandas internals, present in pandas 2.2 and 3): see codes_of()
+    from pandas._libs.hashtable import PyObjectHashTable as _ObjectTable
+except ImportError:  # pragma: no cover - a pandas without it takes the public path
+    _ObjectTable = None
 from tracker.domain.conduction import quantise_array
 
 _OPERATORS = {"ge": np.greater_equal, "gt": np.greater, "le": np.less_equal, "lt": np.less}
@@ -191,6 +196,28 @@ def item_findings(
     return pd.DataFrame({column: columns[column] for column in FINDING_COLUMNS}, copy=False)
 
 
+def codes_of(values: np.ndarray) -> tuple[np.ndarray, int]:
+    """Small integer codes telling apart the distinct values of ``values`` (missing values share one code),
+    and how many codes there are. Float values are told apart by their bits (``-0.0`` apart from ``0.0``).
+
+    Text columns go through Python's own hash and equality (a hash is computed once per string object and
+    kept; the same object is equal at once): pandas' factorize hashes every character of every row again,
+    which for the long citation texts of a cohort costs more than the rules themselves."""
+    if values.dtype.kind == "f":
+        values = values.astype(np.float64).view(np.int64)
+    elif values.dtype == object and _ObjectTable is not None:
+        try:
+            uniques, codes = _ObjectTable(max(16, min(len(values), 1024))).factorize(values, na_sentinel=-1)
+        except (TypeError, ValueError):  # a private pandas interface that changed: the public path below
+            pass
+        else:
+            codes = np.asarray(codes, dtype=np.int64)
+            codes[codes < 0] = len(uniques)  # every missing value (None, NaN, pd.NA) as one more value
+            return codes, len(uniques) + 1
+    codes, uniques = pd.factorize(values, use_na_sentinel=False)
+    return np.asarray(codes, dtype=np.int64), len(uniques)
+
+
 def per_distinct(function, *columns) -> np.ndarray:
     """``function(*values)`` for every row of ``columns`` (equal-length arrays), called once per distinct
     combination of values and spread over the rows (an object array).
@@ -203,11 +230,9 @@ def per_distinct(function, *columns) -> np.ndarray:
     arrays = [c.to_numpy() if isinstance(c, pd.Series) else np.asarray(c) for c in columns]
     combined = np.zeros(n, dtype=np.int64)
     for values in arrays:
-        if values.dtype.kind == "f":
-            values = values.astype(np.float64).view(np.int64)
-        codes, uniques = pd.factorize(values, use_na_sentinel=False)
+        codes, count = codes_of(values)
         # Keep the combined codes small: renumber (by first appearance) after each column.
-        combined, _ = pd.factorize(combined * len(uniques) + codes)
+        combined, _ = pd.factorize(combined * count + codes)
     # Codes count up in order of first appearance, so a code first appears where the running maximum grows.
     first = (
         np.flatnonzero(np.r_[True, combined[1:] > np.maximum.accumulate(combined)[:-1]])
@@ -251,7 +276,7 @@ def met_sets(findings: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     ]
     if met.empty:
         return pd.DataFrame(index=pd.MultiIndex.from_arrays([[], []], names=["visit_key", "identity"]))
-    met = met.assign(identity=nerve_identity(met, settings).to_numpy())
+    met = met.assign(identity=nerve_identity(met, settings))  # a Series: stays plain objects
     table = met.groupby(["visit_key", "identity", "item"]).size().unstack("item", fill_value=0) > 0
     return table
 

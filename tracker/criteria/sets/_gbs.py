@@ -417,7 +417,7 @@ def nerve_state(
     base = pd.DataFrame(
         {
             "visit_key": motor["visit_key"].to_numpy(),
-            "identity": rules.nerve_identity(motor, settings).to_numpy(),
+            "identity": pd.Series(rules.nerve_identity(motor, settings).to_numpy(), dtype=object),
             "absent": (motor["distal_amplitude"] == 0).to_numpy(),
             "known": motor["distal_amplitude"].notna().to_numpy(),
         }

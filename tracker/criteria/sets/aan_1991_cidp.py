@@ -363,7 +363,7 @@ def _item_counts(
         pd.DataFrame(
             {
                 "visit_key": part["visit_key"].to_numpy(),
-                "identity": rules.nerve_identity(part, settings).to_numpy(),
+                "identity": pd.Series(rules.nerve_identity(part, settings).to_numpy(), dtype=object),
                 "met": status == MET,
                 "wanting": status == NOT_EVALUABLE,
             }

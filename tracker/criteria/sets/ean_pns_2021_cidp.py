@@ -305,8 +305,9 @@ def _nerve_table(
     rows = pd.DataFrame(
         {
             "visit_key": chosen["visit_key"].to_numpy(),
-            "identity": rules.nerve_identity(chosen, settings).to_numpy(),
-            "item": chosen["item"].to_numpy(dtype=object),
+            # plain objects, as the findings hold them (inferring a string column costs more than the rule)
+            "identity": pd.Series(rules.nerve_identity(chosen, settings).to_numpy(), dtype=object),
+            "item": pd.Series(chosen["item"].to_numpy(dtype=object), dtype=object),
         }
     )
     table = rows.groupby(["visit_key", "identity", "item"]).size().unstack("item", fill_value=0) > 0
