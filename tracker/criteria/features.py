@@ -23,6 +23,7 @@ import numpy as np
 import pandas as pd
 
 from tracker.criteria import rules
+from tracker.criteria.codes import distinct
 from tracker.criteria.limits import attach_limits
 from tracker.domain.catalogue import nerves as nerve_catalogue
 from tracker.domain.conduction import quantise_array
@@ -173,14 +174,10 @@ def _shared(values: np.ndarray) -> np.ndarray:
     and with one object per distinct word its hash is computed once and equality is identity."""
     if not len(values):
         return values
-    codes, count = rules.codes_of(values)
-    present, first = np.unique(codes, return_index=True)
-    lookup = np.zeros(count, dtype=np.int64)
-    lookup[present] = first
-    is_text = np.zeros(count, dtype=bool)
-    is_text[present] = [type(values[row]) is str for row in first]
+    codes, first = distinct(values)
+    is_text = np.array([type(values[row]) is str for row in first], dtype=bool)
     text = is_text[codes]
-    values[text] = values[lookup[codes[text]]]
+    values[text] = values[first[codes[text]]]
     return values
 
 

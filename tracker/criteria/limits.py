@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from tracker.criteria.citations import source_text
-from tracker.criteria.rules import codes_of
+from tracker.criteria.codes import distinct
 
 LIMIT_COLUMNS = [
     "nerve",
@@ -134,12 +134,7 @@ def attach_limits(nerves: pd.DataFrame, limits: pd.DataFrame) -> pd.DataFrame:
     # (Codes of plain object columns: a MultiIndex of them would first turn each into a string column.)
     nerve_names = nerves["nerve"].to_numpy(dtype=object)
     modalities = nerves["modality"].to_numpy(dtype=object)
-    nerve_codes, _ = codes_of(nerve_names)
-    modality_codes, modality_count = codes_of(modalities)
-    _, first, pair_codes = np.unique(
-        nerve_codes * modality_count + modality_codes, return_index=True, return_inverse=True
-    )
-    pair_codes = pair_codes.reshape(-1)
+    pair_codes, first = distinct(nerve_names, modalities)
     pair_code = {(nerve_names[row], modalities[row]): code for code, row in enumerate(first)}
     age = nerves["age_years"].to_numpy(dtype=float)
     height = nerves["height_cm"].to_numpy(dtype=float)

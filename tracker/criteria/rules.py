@@ -7,6 +7,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from tracker.criteria.codes import distinct
 from tracker.criteria.model import (
     FINDING_COLUMNS,
     MET,
@@ -17,11 +18,6 @@ from tracker.criteria.model import (
     Settings,
 )
 from tracker.criteria.thresholds import COMPARATORS
-
-try:  # Python-object hash table (pandas internals, present in pandas 2.2 and 3): see codes_of()
-    from pandas._libs.hashtable import PyObjectHashTable as _ObjectTable
-except ImportError:  # pragma: no cover - a pandas without it takes the public path
-    _ObjectTable = None
 from tracker.domain.conduction import quantise_array
 
 _OPERATORS = {"ge": np.greater_equal, "gt": np.greater, "le": np.less_equal, "lt": np.less}
@@ -155,18 +151,24 @@ def item_findings(
         own = reason_code == -1
         reason[own] = own_reason[own]
 
-    def text(values) -> pd.Series:
+    index = pd.RangeIndex(n)
+
+    def text(values, *, owned: bool = False) -> pd.Series:
         # Plain Python objects: letting pandas infer a string column for each of millions of findings
         # costs more than the rules themselves.
         # Always a new array (a caller's array, or a read-only view of a frame's column, must not end up
-        # inside the findings, which the sets edit in place).
+        # inside the findings, which the sets edit in place); ``owned``: already made here.
         if isinstance(values, pd.Series):
-            values = values.to_numpy(dtype=object, copy=True)
-        if values is None or isinstance(values, str):
+            array = values.to_numpy(dtype=object, copy=True)
+        elif values is None or isinstance(values, str):
             array = np.empty(n, dtype=object)
             array[:] = values
-            return pd.Series(array, dtype=object, copy=False)
-        return pd.Series(np.array(values, dtype=object), dtype=object, copy=False)
+        elif owned:
+            array = values
+        else:
+            array = np.array(values, dtype=object)
+        # One shared index: the frame below then needs no alignment.
+        return pd.Series(array, index=index, dtype=object, copy=False)
 
     columns = {
         "visit_key": frame["visit_key"].to_numpy(copy=True),
@@ -183,8 +185,8 @@ def item_findings(
         "limit_name": text(limit_name),
         "threshold": quantise_array(threshold),
         "comparator": text(comparator),
-        "status": text(status),
-        "reason": text(reason),
+        "status": text(status, owned=True),
+        "reason": text(reason, owned=True),
         "source": text(source),
         "source_status": text(source_status),
         "limit_source": text(limit_source),
@@ -193,29 +195,7 @@ def item_findings(
     }
     # Every array above is new and owned here, so the frame takes them without a copy: copying and
     # consolidating the text columns of every item cost more than the comparisons themselves.
-    return pd.DataFrame({column: columns[column] for column in FINDING_COLUMNS}, copy=False)
-
-
-def codes_of(values: np.ndarray) -> tuple[np.ndarray, int]:
-    """Small integer codes telling apart the distinct values of ``values`` (missing values share one code),
-    and how many codes there are. Float values are told apart by their bits (``-0.0`` apart from ``0.0``).
-
-    Text columns go through Python's own hash and equality (a hash is computed once per string object and
-    kept; the same object is equal at once): pandas' factorize hashes every character of every row again,
-    which for the long citation texts of a cohort costs more than the rules themselves."""
-    if values.dtype.kind == "f":
-        values = values.astype(np.float64).view(np.int64)
-    elif values.dtype == object and _ObjectTable is not None:
-        try:
-            uniques, codes = _ObjectTable(max(16, min(len(values), 1024))).factorize(values, na_sentinel=-1)
-        except (TypeError, ValueError):  # a private pandas interface that changed: the public path below
-            pass
-        else:
-            codes = np.asarray(codes, dtype=np.int64)
-            codes[codes < 0] = len(uniques)  # every missing value (None, NaN, pd.NA) as one more value
-            return codes, len(uniques) + 1
-    codes, uniques = pd.factorize(values, use_na_sentinel=False)
-    return np.asarray(codes, dtype=np.int64), len(uniques)
+    return pd.DataFrame({column: columns[column] for column in FINDING_COLUMNS}, index=index, copy=False)
 
 
 def per_distinct(function, *columns) -> np.ndarray:
@@ -226,19 +206,8 @@ def per_distinct(function, *columns) -> np.ndarray:
     or reason combinations. Float columns are told apart by their bits (``-0.0`` stays apart from ``0.0``);
     in text columns ``None`` and NaN fall together, so ``function`` must treat every missing value alike.
     """
-    n = len(columns[0]) if columns else 0
     arrays = [c.to_numpy() if isinstance(c, pd.Series) else np.asarray(c) for c in columns]
-    combined = np.zeros(n, dtype=np.int64)
-    for values in arrays:
-        codes, count = codes_of(values)
-        # Keep the combined codes small: renumber (by first appearance) after each column.
-        combined, _ = pd.factorize(combined * count + codes)
-    # Codes count up in order of first appearance, so a code first appears where the running maximum grows.
-    first = (
-        np.flatnonzero(np.r_[True, combined[1:] > np.maximum.accumulate(combined)[:-1]])
-        if n
-        else np.zeros(0, dtype=np.int64)
-    )
+    combined, first = distinct(*arrays)
     results = np.empty(len(first), dtype=object)
     for position, row in enumerate(first):
         results[position] = function(*(a[row] for a in arrays))  # one by one: a result may be a tuple
@@ -422,3 +391,24 @@ def settle(
         where = raised.to_numpy() & (items.map(len).to_numpy() > 0)
         rule[where] = rule[where].astype(str) + items[where].map(words)
     return outcome, rule, items
+
+
+def stack(frames: list[pd.DataFrame]) -> pd.DataFrame:
+    """``pd.concat(frames, ignore_index=True)`` for findings parts: when every part has the same columns with
+    the same NumPy dtypes (the rule), one ``np.concatenate`` per column — pandas' block concatenation of
+    many text columns costs more than the rules. Anything else goes to ``pd.concat`` itself."""
+    frames = list(frames)
+    if not frames:
+        return pd.concat(frames, ignore_index=True)
+    columns = list(frames[0].columns)
+    dtypes = list(frames[0].dtypes)
+    plain = len(set(columns)) == len(columns) and all(isinstance(d, np.dtype) for d in dtypes)
+    plain = plain and all(list(f.columns) == columns and list(f.dtypes) == dtypes for f in frames[1:])
+    if not plain:
+        return pd.concat(frames, ignore_index=True)
+    index = pd.RangeIndex(sum(len(f) for f in frames))
+    data = {}
+    for position, (column, dtype) in enumerate(zip(columns, dtypes)):
+        values = np.concatenate([f.iloc[:, position].to_numpy() for f in frames])
+        data[column] = pd.Series(values, index=index, dtype=dtype, copy=False) if dtype == object else values
+    return pd.DataFrame(data, index=index, columns=columns, copy=False)

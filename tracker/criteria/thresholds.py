@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 
 from tracker.criteria.citations import keys_of, source_text
+from tracker.criteria.codes import distinct
 
 COMPARATORS = {"ge": "≥", "gt": ">", "le": "≤", "lt": "<"}
 
@@ -74,26 +75,18 @@ class ThresholdTable:
         rows = [r for r in self.rows if r.item == item]
         if not rows:
             raise KeyError(f"{self.criteria_id}: no threshold rows for {item!r}")
-        # Decide each (nerve, filter) class once, then spread the answers over the rows. A row applies to
-        # every nerve ("*") or to the nerve it names, and excludes only nerves it names: every nerve the rows
-        # do not name is decided alike (class 0), so only the named ones need telling apart.
+        # Decide each distinct (nerve, filter) pair once, then spread the answers over the rows.
         names = nerves.to_numpy(dtype=object)
-        named = sorted(
-            {r.nerve for r in rows if r.nerve != "*"} | {n for r in rows for n in r.excluded_nerves}
-        )
-        nerve_class = np.zeros(len(names), dtype=np.intp)
-        for position, name in enumerate(named, start=1):
-            nerve_class[_equal(names, name)] = position
         if lff_hz is None or all(r.lff_hz is None for r in rows):
             # The filter setting only matters to rows that name one.
-            lff_codes, lff_values = np.zeros(len(names), dtype=np.intp), np.array([np.nan])
+            filters = np.full(len(names), np.nan)
+            inverse, first = distinct(names)
         else:
-            lff_codes, lff_values = pd.factorize(np.asarray(lff_hz, dtype=float), use_na_sentinel=False)
-            if not len(lff_values):
-                lff_values = np.array([np.nan])
-        width = len(lff_values)
-        decided = [self._decide(rows, nerve, lff) for nerve in (None, *named) for lff in lff_values]
-        inverse = nerve_class * width + lff_codes
+            filters = np.asarray(lff_hz, dtype=float)
+            inverse, first = distinct(names, filters)
+        decided = [self._decide(rows, names[row], filters[row]) for row in first]
+        if not len(decided):
+            decided = [self._decide(rows, None, np.nan)]
         columns = {"value": np.array([d[0] for d in decided], dtype=float)[inverse]}
         for position, column in enumerate(
             ("source", "status", "description", "comparator", "reference"), start=1
@@ -119,15 +112,6 @@ class ThresholdTable:
                 # An excluded nerve has no threshold, but the trace still cites the rule that excludes it.
                 found = (np.nan, *found[1:])
         return found
-
-
-def _equal(values: np.ndarray, name: str) -> np.ndarray:
-    """``values == name`` element-wise over an object array; a missing value (``None``, NaN, ``pd.NA``) is
-    never equal."""
-    try:
-        return np.asarray(values == name, dtype=bool)
-    except TypeError:  # pd.NA has no truth value: compare through pandas, where missing is never equal
-        return pd.Series(values, dtype=object).eq(name).fillna(False).to_numpy(dtype=bool)
 
 
 @cache

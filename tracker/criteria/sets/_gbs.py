@@ -83,14 +83,11 @@ def _scaled(
 
 def _names(rows: pd.DataFrame) -> np.ndarray:
     """``"110 % of ULN"`` per row, built once per distinct (reference, factor) pair."""
-    reference = rows["reference"].to_numpy(dtype=object)
-    factor = rows["value"].to_numpy(dtype=float)
-    names = np.full(len(rows), "", dtype=object)
-    for ref in pd.unique(reference[pd.notna(reference)]):
-        is_ref = reference == ref
-        for value in np.unique(factor[is_ref & ~np.isnan(factor)]):
-            names[is_ref & (factor == value)] = limit_text(ref, value)
-    return names
+    return rules.per_distinct(
+        lambda ref, value: "" if pd.isna(ref) or np.isnan(value) else limit_text(ref, value),
+        rows["reference"].to_numpy(dtype=object),
+        rows["value"].to_numpy(dtype=float),
+    )
 
 
 def switched(
@@ -386,7 +383,7 @@ def no_response_reasons(parts: list[pd.DataFrame], nerves: pd.DataFrame) -> pd.D
     for part in parts:
         if len(part) != len(no_response):
             raise ValueError("findings part not aligned with the motor nerve tests")
-    findings = pd.concat(parts, ignore_index=True)
+    findings = rules.stack(parts)
     flag = np.tile(no_response, len(parts))
     status = findings["status"].to_numpy(dtype=object)
     reason = findings["reason"].to_numpy(dtype=object).copy()

@@ -339,7 +339,7 @@ def block_or_dispersion(nerves, paths, table, settings):
 
 def findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     table = load(ID)
-    return pd.concat(
+    return rules.stack(
         [
             velocity(nerves, table, settings),
             block_or_dispersion(nerves, paths, table, settings),
@@ -347,7 +347,6 @@ def findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> p
             f_latency(nerves, table, settings),
             f_absent(nerves, table, settings),
         ],
-        ignore_index=True,
     )
 
 

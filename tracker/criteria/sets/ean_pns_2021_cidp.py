@@ -66,7 +66,7 @@ WRIST = "median not counted: neuropathy at the wrist judged by the clinician"
 
 def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     table = load(ID)
-    return pd.concat(
+    return rules.stack(
         [
             p.distal_latency(nerves, table, "dml", settings, criteria=ID),
             p.velocity(nerves, table, "cv", settings, criteria=ID),
@@ -80,7 +80,6 @@ def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings
             p.dispersion(nerves, paths, table, "td", settings, criteria=ID),
             distal_duration(nerves, table, settings),
         ],
-        ignore_index=True,
     )
 
 
@@ -220,7 +219,7 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
                 inapplicable=inapplicable,
             )
         )
-    return pd.concat(parts, ignore_index=True)
+    return rules.stack(parts)
 
 
 def sensory_cidp_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
@@ -287,7 +286,7 @@ def sensory_cidp_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFr
                 inapplicable=[(_wrist(pattern), WRIST)],
             )
         )
-    return pd.concat(parts, ignore_index=True)
+    return rules.stack(parts)
 
 
 # ---------------------------------------------------------------- combination (vectorised over visits)
@@ -649,5 +648,5 @@ def evaluate(
             "undecided_items": undecided.to_numpy(),
         }
     )
-    findings = pd.concat([motor, sensory, cidp_sensory], ignore_index=True)[FINDING_COLUMNS]
+    findings = rules.stack([motor, sensory, cidp_sensory])[FINDING_COLUMNS]
     return SetResult(ID, load(ID).version, findings, outcomes, extra_keys=("motor", "sensory"))

@@ -18,7 +18,7 @@ SENSORY_NERVES = ("median", "ulnar", "radial", "sural")
 
 def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     table = load(ID)
-    return pd.concat(
+    return rules.stack(
         [
             p.distal_latency(nerves, table, "dml", settings, criteria=ID),
             p.velocity(nerves, table, "cv", settings, criteria=ID),
@@ -39,7 +39,6 @@ def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings
                 exclude_labels=("erb",),
             ),
         ],
-        ignore_index=True,
     )
 
 
@@ -105,7 +104,7 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     )
     snap.loc[is_sural, "item"] = "sural_normal"
     del reduced
-    return pd.concat([cv, snap], ignore_index=True)
+    return rules.stack([cv, snap])
 
 
 RANKS = {"not_met": 0, "possible": 1, "probable": 2, "definite": 3}
@@ -193,7 +192,7 @@ def evaluate(
     return SetResult(
         ID,
         load(ID).version,
-        pd.concat([motor, sensory], ignore_index=True),
+        rules.stack([motor, sensory]),
         outcomes,
         extra_keys=("sensory_supportive",),
         outcome_items=(*DEMYELINATING, "probable_cb"),

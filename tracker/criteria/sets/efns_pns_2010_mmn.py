@@ -224,7 +224,7 @@ def segment_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settin
             f"> {dispersed_min.value:g} %",
         ),
     ]
-    return pd.concat(frames, ignore_index=True)
+    return rules.stack(frames)
 
 
 def per_nerve(segments: pd.DataFrame, nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
@@ -317,7 +317,7 @@ def per_nerve(segments: pd.DataFrame, nerves: pd.DataFrame, settings: Settings) 
         )
         found["test_key"] = without["test_key"].to_numpy()
         parts.append(found)
-    return pd.concat(parts, ignore_index=True)
+    return rules.stack(parts)
 
 
 def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
@@ -456,9 +456,8 @@ def evaluate(
             "undecided_items": undecided.to_numpy(),
         }
     )
-    findings = pd.concat(
-        [motor.drop(columns=["test_key", "site_order", "wanting", "rank"], errors="ignore"), sensory],
-        ignore_index=True,
+    findings = rules.stack(
+        [motor.drop(columns=["test_key", "site_order", "wanting", "rank"], errors="ignore"), sensory]
     )
     # The SNAP check is required for the diagnosis, not for the block level:
     # it is no near miss of the outcome.
