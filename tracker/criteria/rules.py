@@ -408,7 +408,7 @@ def stack(frames: list[pd.DataFrame]) -> pd.DataFrame:
         return pd.concat(frames, ignore_index=True)
     index = pd.RangeIndex(sum(len(f) for f in frames))
     data = {}
-    for position, (column, dtype) in enumerate(zip(columns, dtypes)):
-        values = np.concatenate([f.iloc[:, position].to_numpy() for f in frames])
+    for column, dtype in zip(columns, dtypes):
+        values = np.concatenate([f[column].to_numpy() for f in frames])
         data[column] = pd.Series(values, index=index, dtype=dtype, copy=False) if dtype == object else values
     return pd.DataFrame(data, index=index, columns=columns, copy=False)

@@ -65,22 +65,24 @@ WRIST = "median not counted: neuropathy at the wrist judged by the clinician"
 
 
 def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> pd.DataFrame:
+    return rules.stack(_motor_parts(nerves, paths, settings))
+
+
+def _motor_parts(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> list[pd.DataFrame]:
     table = load(ID)
-    return rules.stack(
-        [
-            p.distal_latency(nerves, table, "dml", settings, criteria=ID),
-            p.velocity(nerves, table, "cv", settings, criteria=ID),
-            p.f_latency(nerves, table, "f_latency", "f_latency_low_cmap", "f_switch", settings, criteria=ID),
-            p.f_absent(nerves, table, "f_absent", settings, criteria=ID),
-            # Block at 30 % everywhere except from Erb's point, where the cb_erb item asks for 50 %.
-            p.block(
-                nerves, paths, table, "cb", "cb_precondition", settings, criteria=ID, exclude_labels=("erb",)
-            ),
-            erb_block(nerves, paths, table, settings),
-            p.dispersion(nerves, paths, table, "td", settings, criteria=ID),
-            distal_duration(nerves, table, settings),
-        ],
-    )
+    return [
+        p.distal_latency(nerves, table, "dml", settings, criteria=ID),
+        p.velocity(nerves, table, "cv", settings, criteria=ID),
+        p.f_latency(nerves, table, "f_latency", "f_latency_low_cmap", "f_switch", settings, criteria=ID),
+        p.f_absent(nerves, table, "f_absent", settings, criteria=ID),
+        # Block at 30 % everywhere except from Erb's point, where the cb_erb item asks for 50 %.
+        p.block(
+            nerves, paths, table, "cb", "cb_precondition", settings, criteria=ID, exclude_labels=("erb",)
+        ),
+        erb_block(nerves, paths, table, settings),
+        p.dispersion(nerves, paths, table, "td", settings, criteria=ID),
+        distal_duration(nerves, table, settings),
+    ]
 
 
 def erb_block(
@@ -172,6 +174,10 @@ def _wrist(frame: pd.DataFrame) -> np.ndarray:
 
 def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     """Sensory conduction: SNAP amplitude < LLN, conduction velocity < LLN, peak latency > ULN."""
+    return rules.stack(_sensory_parts(nerves, settings))
+
+
+def _sensory_parts(nerves: pd.DataFrame, settings: Settings) -> list[pd.DataFrame]:
     table = load(ID)
     frame = p.sensory(nerves)
     frame = frame[frame["nerve"].isin(SENSORY_NERVES)]
@@ -219,12 +225,16 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
                 inapplicable=inapplicable,
             )
         )
-    return rules.stack(parts)
+    return parts
 
 
 def sensory_cidp_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     """Sensory CIDP: velocity < 80 % LLN (< 70 % if SNAP < 80 % LLN); sural sparing (median/radial SNAP
     below LLN with a sural SNAP at or above LLN)."""
+    return rules.stack(_sensory_cidp_parts(nerves, settings))
+
+
+def _sensory_cidp_parts(nerves: pd.DataFrame, settings: Settings) -> list[pd.DataFrame]:
     table = load(ID)
     frame = p.sensory(nerves)
     frame = frame[frame["nerve"].isin(SENSORY_CIDP_NERVES)]
@@ -286,7 +296,7 @@ def sensory_cidp_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFr
                 inapplicable=[(_wrist(pattern), WRIST)],
             )
         )
-    return rules.stack(parts)
+    return parts
 
 
 # ---------------------------------------------------------------- combination (vectorised over visits)
@@ -600,12 +610,19 @@ def evaluate(
 ) -> SetResult:
     keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
     phenotypes = _phenotypes(visits, keys)
-    motor = motor_findings(nerves, paths, settings)
-    sensory = sensory_findings(nerves, settings)
-    # Sensory CIDP items only for visits recorded with the sensory phenotype (elsewhere they would be noise).
-    cidp_sensory = sensory_cidp_findings(
-        nerves[nerves["visit_key"].isin(phenotypes.index[phenotypes == "sensory"])], settings
-    )
+    # Stacked once: the motor, sensory and sensory-CIDP findings are views of the set's findings.
+    groups = [
+        _motor_parts(nerves, paths, settings),
+        _sensory_parts(nerves, settings),
+        # Sensory CIDP items only for visits recorded with the sensory phenotype (elsewhere they would be
+        # noise).
+        _sensory_cidp_parts(
+            nerves[nerves["visit_key"].isin(phenotypes.index[phenotypes == "sensory"])], settings
+        ),
+    ]
+    findings = rules.stack([part for group in groups for part in group])[FINDING_COLUMNS]
+    ends = np.cumsum([sum(len(part) for part in group) for group in groups])
+    motor, sensory, cidp_sensory = (findings.iloc[start:end] for start, end in zip([0, *ends[:-1]], ends))
     outcome, rule, level, abnormal, normal = combine(motor, sensory, cidp_sensory, phenotypes, keys, settings)
     # Undecided: each way the missing motor and sensory findings could turn out (met or not met, motor and
     # sensory apart: motor CIDP needs normal sensory nerves, sensory CIDP normal motor nerves).
@@ -648,5 +665,4 @@ def evaluate(
             "undecided_items": undecided.to_numpy(),
         }
     )
-    findings = rules.stack([motor, sensory, cidp_sensory])[FINDING_COLUMNS]
     return SetResult(ID, load(ID).version, findings, outcomes, extra_keys=("motor", "sensory"))

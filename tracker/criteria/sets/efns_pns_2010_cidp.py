@@ -17,33 +17,39 @@ SENSORY_NERVES = ("median", "ulnar", "radial", "sural")
 
 
 def motor_findings(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> pd.DataFrame:
+    return rules.stack(_motor_parts(nerves, paths, settings))
+
+
+def _motor_parts(nerves: pd.DataFrame, paths: pd.DataFrame, settings: Settings) -> list[pd.DataFrame]:
     table = load(ID)
-    return rules.stack(
-        [
-            p.distal_latency(nerves, table, "dml", settings, criteria=ID),
-            p.velocity(nerves, table, "cv", settings, criteria=ID),
-            p.f_latency(nerves, table, "f_latency", "f_latency_low_cmap", "f_switch", settings, criteria=ID),
-            p.f_absent(nerves, table, "f_absent", settings, criteria=ID),
-            p.block(nerves, paths, table, "cb", "cb_precondition", settings, criteria=ID),
-            p.dispersion(nerves, paths, table, "td", settings, criteria=ID),
-            p.distal_duration(nerves, table, "dcmap_duration", settings, criteria=ID),
-            # Probable block: tibial excluded (table), and Erb's point needs ≥ 50 % (the definite item).
-            p.block(
-                nerves,
-                paths,
-                table,
-                "probable_cb",
-                "cb_precondition",
-                settings,
-                criteria=ID,
-                exclude_labels=("erb",),
-            ),
-        ],
-    )
+    return [
+        p.distal_latency(nerves, table, "dml", settings, criteria=ID),
+        p.velocity(nerves, table, "cv", settings, criteria=ID),
+        p.f_latency(nerves, table, "f_latency", "f_latency_low_cmap", "f_switch", settings, criteria=ID),
+        p.f_absent(nerves, table, "f_absent", settings, criteria=ID),
+        p.block(nerves, paths, table, "cb", "cb_precondition", settings, criteria=ID),
+        p.dispersion(nerves, paths, table, "td", settings, criteria=ID),
+        p.distal_duration(nerves, table, "dcmap_duration", settings, criteria=ID),
+        # Probable block: tibial excluded (table), and Erb's point needs ≥ 50 % (the definite item).
+        p.block(
+            nerves,
+            paths,
+            table,
+            "probable_cb",
+            "cb_precondition",
+            settings,
+            criteria=ID,
+            exclude_labels=("erb",),
+        ),
+    ]
 
 
 def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     """Supportive item 3: sensory CV < 80 % LLN (< 70 % if SNAP < 80 % LLN); sural sparing."""
+    return rules.stack(_sensory_parts(nerves, settings))
+
+
+def _sensory_parts(nerves: pd.DataFrame, settings: Settings) -> list[pd.DataFrame]:
     table = load(ID)
     frame = p.sensory(nerves)
     frame = frame[frame["nerve"].isin(SENSORY_NERVES)]
@@ -104,7 +110,7 @@ def sensory_findings(nerves: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     )
     snap.loc[is_sural, "item"] = "sural_normal"
     del reduced
-    return rules.stack([cv, snap])
+    return [cv, snap]
 
 
 RANKS = {"not_met": 0, "possible": 1, "probable": 2, "definite": 3}
@@ -154,8 +160,11 @@ def combine(motor: pd.DataFrame, keys: pd.Index, settings: Settings) -> tuple[pd
 def evaluate(
     nerves: pd.DataFrame, paths: pd.DataFrame, visits: pd.DataFrame, settings: Settings
 ) -> SetResult:
-    motor = motor_findings(nerves, paths, settings)
-    sensory = sensory_findings(nerves, settings)
+    # Stacked once: the motor and sensory findings are views of the set's findings.
+    motor_parts = _motor_parts(nerves, paths, settings)
+    findings = rules.stack(motor_parts + _sensory_parts(nerves, settings))
+    split = sum(len(part) for part in motor_parts)
+    motor, sensory = findings.iloc[:split], findings.iloc[split:]
     keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
     outcome, rule = combine(motor, keys, settings)
     # Undecided: would the motor findings not evaluable for want of data, if met, give a higher level?
@@ -192,7 +201,7 @@ def evaluate(
     return SetResult(
         ID,
         load(ID).version,
-        rules.stack([motor, sensory]),
+        findings,
         outcomes,
         extra_keys=("sensory_supportive",),
         outcome_items=(*DEMYELINATING, "probable_cb"),
