@@ -25,6 +25,16 @@ SCORE_KEY = ["patient", "date", "scale"]
 DOSE_UNITS = ("g/kg", "mg/kg", "g", "mg", "ml", "mL/kg", "exchanges", "mg/m2", "other")
 
 
+def python_dates(parsed: pd.Series) -> np.ndarray:
+    """``parsed.dt.date.to_numpy()`` (dates, NaT where missing), converting each distinct day once: a file
+    repeats its dates on thousands of rows."""
+    codes, uniques = pd.factorize(parsed, use_na_sentinel=True)
+    days = np.empty(len(uniques) + 1, dtype=object)
+    days[:-1] = [day.date() for day in uniques]
+    days[-1] = pd.NaT  # code -1: a missing date
+    return days[codes]
+
+
 KnownPatients = Callable[[list[str]], Iterable[str]]
 """Given patient codes, the ones that are stored (a database look-up supplied by the importer)."""
 
@@ -98,8 +108,8 @@ def validate_treatments(
             ROW: cells[ROW].to_numpy(),
             "patient": patient.to_numpy(),
             "therapy": therapy.to_numpy(),
-            "start_date": start.dt.date.to_numpy(),
-            "end_date": end.dt.date.to_numpy(),
+            "start_date": python_dates(start),
+            "end_date": python_dates(end),
             "dose": dose,
             "dose_unit": dose_unit.to_numpy(),
             "interval_days": interval,
@@ -146,7 +156,7 @@ def validate_scores(
         {
             ROW: cells[ROW].to_numpy(),
             "patient": patient.to_numpy(),
-            "date": date.dt.date.to_numpy(),
+            "date": python_dates(date),
             "scale": scale.to_numpy(),
             "value": value,
         }

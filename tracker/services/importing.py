@@ -55,7 +55,7 @@ from tracker.services.measurement_file import (
 from tracker.services.patient_file import IDENTITY_VALUES, RECORD_VALUES, validate_patients
 from tracker.services.rows import chunks as _chunks
 from tracker.services.rows import clean as _clean
-from tracker.services.tables import ROW, InputTable, read_table
+from tracker.services.tables import ROW, InputTable, TableStream, open_stream, read_table
 
 # Optional measurements column: the version of the stored visit that the file's values were made from
 # (``ncs-tracker show`` prints it). With it, --replace goes ahead only while the stored visit is still that
@@ -78,6 +78,9 @@ class ImportReport:
     identities: int = 0  # patients file: patients whose identity fields were added or replaced
     unusual: list[Problem] = field(default_factory=list)
     warnings: list[Problem] = field(default_factory=list)  # imported all the same; worth a look
+    # Sort key of each warning (kind of warning, patient, visit date): a file imported in blocks lists its
+    # warnings in the order of the whole file.
+    warning_keys: list[tuple] = field(default_factory=list, repr=False)
 
     def summary(self) -> str:
         if self.kind == "patients":
@@ -119,12 +122,14 @@ def _allocate_ids(session: Session, table, count: int) -> list[int]:
     """
     connection = session.connection()
     if connection.dialect.name == "postgresql":
-        return list(
-            connection.execute(
-                text("SELECT nextval(pg_get_serial_sequence(:table, 'id')) FROM generate_series(1, :count)"),
-                {"table": table.name, "count": count},
-            ).scalars()
-        )
+        drawn = connection.execute(
+            text(
+                "SELECT array_agg(nextval(pg_get_serial_sequence(:table, 'id'))) "
+                "FROM generate_series(1, :count)"
+            ),
+            {"table": table.name, "count": count},
+        ).scalar_one()
+        return list(drawn or [])
     connection.execute(update(table).where(text("0 = 1")).values(id=table.c.id))
     start = connection.execute(select(func.coalesce(func.max(table.c.id), 0))).scalar_one() + 1
     return list(range(start, start + count))
@@ -188,7 +193,28 @@ def import_file(
     allow_unusual: bool = False,
     today: dt.date | None = None,
 ) -> ImportReport:
-    """Import one file (kind recognised from its header). Raises :class:`InputRejected` on any problem."""
+    """Import one file (kind recognised from its header). Raises :class:`InputRejected` on any problem.
+
+    A long CSV file of measurements, treatments or scores is read, checked and written in blocks of whole
+    patients (:class:`~tracker.services.tables.TableStream`), so that memory does not grow with the file;
+    the blocks are written inside a savepoint, and a file with any problem (or one that is not regular
+    enough to be read in blocks) is rolled back to it and imported whole, which names every problem.
+    ``replace`` imports are read whole: they compare with versions read before the write lock.
+    """
+    if not replace:
+        stream = open_stream(path)
+        if stream is not None:
+            with busy_as_error():
+                report = _import_stream(
+                    session,
+                    stream,
+                    username=username,
+                    dry_run=dry_run,
+                    allow_unusual=allow_unusual,
+                    today=today,
+                )
+            if report is not None:
+                return report
     return import_table(
         session,
         read_table(path),
@@ -243,6 +269,46 @@ def _import_table(
     today: dt.date | None,
 ) -> ImportReport:
     forced: list[str] = []
+    report = _check_and_store(
+        session,
+        table,
+        username=username,
+        dry_run=dry_run,
+        replace=replace,
+        force=force,
+        allow_unusual=allow_unusual,
+        today=today,
+        forced=forced,
+    )
+    report.rows = len(table.cells)
+    if not dry_run:
+        _record_import(
+            session,
+            table.kind,
+            table.sha256,
+            report,
+            username=username,
+            replace=replace,
+            force=force,
+            allow_unusual=allow_unusual,
+            forced=forced,
+        )
+    return report
+
+
+def _check_and_store(
+    session: Session,
+    table: InputTable,
+    *,
+    username: str,
+    dry_run: bool,
+    replace: bool,
+    force: bool,
+    allow_unusual: bool,
+    today: dt.date | None,
+    forced: list[str],
+) -> ImportReport:
+    """Validate a table and store it (nothing of the import's own audit event); raises on any problem."""
     if table.kind == "measurements":
         cells, stated, version_problems = _stated_versions(table.cells)
         try:
@@ -287,31 +353,118 @@ def _import_table(
         report = _store_records(
             session, frame, kind="scores", username=username, dry_run=dry_run, replace=replace
         )
-    report.rows = len(table.cells)
-    if not dry_run:
-        audit.record(
-            session,
-            username=username,
-            action=f"import_{table.kind}",
-            entity="file",
-            entity_key=f"sha256:{table.sha256[:16]}",
-            after={
-                "file_sha256": table.sha256,
-                "rows": report.rows,
-                "added": report.added,
-                "replaced": report.replaced,
-                "unchanged": report.unchanged,
-                "patients_added": report.patients_added,
-                **({"identities": report.identities} if table.kind == "patients" else {}),
-                "replace": replace,
-                "allow_unusual": allow_unusual,
-                "unusual_values_accepted": [str(p) for p in report.unusual],
-                "warnings": [str(p) for p in report.warnings],
-                **({"force": True, "forced_over": forced} if force else {}),
-            },
-        )
-        checkpoint("import-written")
     return report
+
+
+def _record_import(
+    session: Session,
+    kind: str,
+    sha256: str,
+    report: ImportReport,
+    *,
+    username: str,
+    replace: bool,
+    force: bool,
+    allow_unusual: bool,
+    forced: list[str],
+) -> None:
+    """The import's audit event (file digest, counts, options, accepted values, warnings)."""
+    audit.record(
+        session,
+        username=username,
+        action=f"import_{kind}",
+        entity="file",
+        entity_key=f"sha256:{sha256[:16]}",
+        after={
+            "file_sha256": sha256,
+            "rows": report.rows,
+            "added": report.added,
+            "replaced": report.replaced,
+            "unchanged": report.unchanged,
+            "patients_added": report.patients_added,
+            **({"identities": report.identities} if kind == "patients" else {}),
+            "replace": replace,
+            "allow_unusual": allow_unusual,
+            "unusual_values_accepted": [str(p) for p in report.unusual],
+            "warnings": [str(p) for p in report.warnings],
+            **({"force": True, "forced_over": forced} if force else {}),
+        },
+    )
+    checkpoint("import-written")
+
+
+class _ReadWhole(Exception):
+    """A streamed file turned out to need the whole-file import (see :func:`_import_stream`)."""
+
+
+def _import_stream(
+    session: Session,
+    stream: TableStream,
+    *,
+    username: str,
+    dry_run: bool,
+    allow_unusual: bool,
+    today: dt.date | None,
+) -> ImportReport | None:
+    """Import a long file block by block; ``None`` (with nothing of it written) when it must be imported
+    whole: a problem in any block, or a file not regular enough for blocks. The counts, accepted values and
+    warnings add up to what the whole-file import reports, in the same order."""
+    if not dry_run:  # a transaction of its own around the savepoint (SQLite: RELEASE must not commit)
+        take_write_lock(session, serialise="import")
+    savepoint = None if dry_run else session.begin_nested()
+    total = ImportReport(kind=stream.kind, rows=0, dry_run=dry_run)
+    keyed: list[tuple[tuple, Problem]] = []
+    try:
+        for cells in stream.blocks():
+            part = _check_and_store(
+                session,
+                InputTable(cells=cells, sha256="", kind=stream.kind),
+                username=username,
+                dry_run=dry_run,
+                replace=False,
+                force=False,
+                allow_unusual=allow_unusual,
+                today=today,
+                forced=[],
+            )
+            total.rows += len(cells)
+            total.added += part.added
+            total.replaced += part.replaced
+            total.unchanged += part.unchanged
+            total.patients_added += part.patients_added
+            total.unusual += part.unusual
+            keyed += zip(part.warning_keys, part.warnings, strict=True)
+        if stream.unusual:
+            raise _ReadWhole
+    except (InputRejected, _ReadWhole):
+        if savepoint is not None:
+            savepoint.rollback()
+        return None
+    except BaseException:
+        if savepoint is not None and savepoint.is_active:
+            savepoint.rollback()
+        raise
+    if savepoint is not None:
+        savepoint.commit()
+    # The whole-file order: segment velocities before sensory ones, each by row; warnings by kind, then
+    # by patient and visit date.
+    total.unusual.sort(key=lambda p: (not p.message.startswith("segment"), p.row or 0))
+    keyed.sort(key=lambda pair: pair[0])
+    total.warnings = [problem for _, problem in keyed]
+    total.warning_keys = [key for key, _ in keyed]
+    if not dry_run:
+        _record_import(
+            session,
+            stream.kind,
+            stream.sha256,
+            total,
+            username=username,
+            replace=False,
+            force=False,
+            allow_unusual=allow_unusual,
+            forced=[],
+        )
+    return total
 
 
 # -- the visit version a file was made from ------------------------------------------------------------------
@@ -575,11 +728,19 @@ def _store_measurements(
     stored_dates = stored.assign(
         patient=stored["patient_id"].map(patients.set_index("patient_id")["patient"].to_dict())
     )
-    report.warnings = (
-        _single_nerve_visits(batch, visits[written])
-        + _date_slips(visits[written], batch.visits, stored_dates)
-        + _versions_of_new_visits(visits[~is_stored])
-    )
+    keyed = [
+        (number, *key, problem)
+        for number, found in enumerate(
+            (
+                _single_nerve_visits(batch, visits[written]),
+                _date_slips(visits[written], batch.visits, stored_dates),
+                _versions_of_new_visits(visits[~is_stored]),
+            )
+        )
+        for key, problem in found
+    ]
+    report.warnings = [problem for *_, problem in keyed]
+    report.warning_keys = [(number, patient, day) for number, patient, day, _ in keyed]
     if dry_run:
         return report
     try:
@@ -710,18 +871,24 @@ def _write_measurements(
     _refresh_patient_diagnosis(session, [int(i) for i in known])
 
 
-def _versions_of_new_visits(new_visits: pd.DataFrame) -> list[Problem]:
+Keyed = list[tuple[tuple[str, dt.date], Problem]]  # warnings with their visit (patient code, visit date)
+
+
+def _versions_of_new_visits(new_visits: pd.DataFrame) -> Keyed:
     """A ``visit_version`` stated for a visit that is not stored (another database, a changed date?): the
     visit is added as version 1, with a warning."""
     stated = new_visits[new_visits["file_version"].notna()]
     return [
-        Problem(
-            int(getattr(r, ROW)),
-            VERSION_COLUMN,
-            None,
-            f"visit_version {int(r.file_version)} is stated but no visit of {r.patient} on "
-            f"{r.visit_date.isoformat()} is stored here: it is added as a new visit (version 1) — check "
-            "the date if it was meant to amend one",
+        (
+            (r.patient, r.visit_date),
+            Problem(
+                int(getattr(r, ROW)),
+                VERSION_COLUMN,
+                None,
+                f"visit_version {int(r.file_version)} is stated but no visit of {r.patient} on "
+                f"{r.visit_date.isoformat()} is stored here: it is added as a new visit (version 1) — check "
+                "the date if it was meant to amend one",
+            ),
         )
         for r in stated.itertuples()
     ]
@@ -751,7 +918,7 @@ def _stored_meanwhile(written: pd.DataFrame) -> InputRejected:
 SLIP_WINDOW_DAYS = 14
 
 
-def _single_nerve_visits(batch: MeasurementBatch, written: pd.DataFrame) -> list[Problem]:
+def _single_nerve_visits(batch: MeasurementBatch, written: pd.DataFrame) -> Keyed:
     """A visit of one nerve (one side of one nerve, motor and/or sensory) is imported, with a warning: the
     criteria sets need several nerves, so it may be part of a study exported in pieces."""
     nerves = batch.nerve_tests.drop_duplicates(["patient", "visit_date", "nerve", "side"])
@@ -762,13 +929,16 @@ def _single_nerve_visits(batch: MeasurementBatch, written: pd.DataFrame) -> list
         counts[counts["count"] == 1].reset_index(), on=["patient", "visit_date"], how="inner"
     )
     return [
-        Problem(
-            int(getattr(row, ROW)),
-            "nerve",
-            None,
-            f"the visit of {row.patient} on {row.visit_date.isoformat()} holds a single nerve "
-            f"({row.nerve.replace('_', ' ')} {row.side}); the criteria need several nerves — check that the "
-            "whole study is in the file",
+        (
+            (row.patient, row.visit_date),
+            Problem(
+                int(getattr(row, ROW)),
+                "nerve",
+                None,
+                f"the visit of {row.patient} on {row.visit_date.isoformat()} holds a single nerve "
+                f"({row.nerve.replace('_', ' ')} {row.side}); the criteria need several nerves — check that "
+                "the whole study is in the file",
+            ),
         )
         for row in single.itertuples()
     ]
@@ -784,7 +954,7 @@ def _swapped(day: dt.date) -> dt.date | None:
         return None
 
 
-def _date_slips(written: pd.DataFrame, file_visits: pd.DataFrame, stored: pd.DataFrame) -> list[Problem]:
+def _date_slips(written: pd.DataFrame, file_visits: pd.DataFrame, stored: pd.DataFrame) -> Keyed:
     """A visit within 14 days of another visit of the same patient, whose day and month swapped would be a
     real date, may carry a date-entry slip: imported, with a warning naming both dates."""
     candidates = [(row, _swapped(row.visit_date)) for row in written.itertuples()]
@@ -806,13 +976,16 @@ def _date_slips(written: pd.DataFrame, file_visits: pd.DataFrame, stored: pd.Dat
         other = min(near, key=lambda d: abs((d - row.visit_date).days))
         gap = abs((other - row.visit_date).days)
         warnings.append(
-            Problem(
-                int(getattr(row, ROW)),
-                "visit_date",
-                None,
-                f"the visit of {row.patient} on {row.visit_date.isoformat()} is {gap} "
-                f"day{'s' if gap != 1 else ''} from their visit on {other.isoformat()}; with day and month "
-                f"swapped it would be {swapped.isoformat()} — check the date for an entry slip",
+            (
+                (row.patient, row.visit_date),
+                Problem(
+                    int(getattr(row, ROW)),
+                    "visit_date",
+                    None,
+                    f"the visit of {row.patient} on {row.visit_date.isoformat()} is {gap} "
+                    f"day{'s' if gap != 1 else ''} from their visit on {other.isoformat()}; with day and "
+                    f"month swapped it would be {swapped.isoformat()} — check the date for an entry slip",
+                ),
             )
         )
     return warnings

@@ -22,6 +22,7 @@ from tracker.domain.vocabulary import ABSENT_WORDS, DIAGNOSES, PHENOTYPES, SEXES
 from tracker.errors import InputRejected, Problem
 from tracker.services import checks
 from tracker.services.checks import Collector
+from tracker.services.clinical_file import python_dates
 from tracker.services.input_limits import guarded
 from tracker.services.tables import ROW
 
@@ -379,7 +380,7 @@ def validate_measurements(
         {
             ROW: cells[ROW].to_numpy(),
             "patient": patient.to_numpy(),
-            "visit_date": visit_date.dt.date.to_numpy(),
+            "visit_date": python_dates(visit_date),
             "nerve": nerve.to_numpy(),
             "side": side.to_numpy(),
             "modality": modality.to_numpy(),
@@ -419,9 +420,12 @@ def _group_checks(
     collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, allow_unusual: bool, limits
 ) -> None:
     """Checks that involve several rows: duplicates, site sequence, agreement, latencies, velocities."""
-    valid = frame[keys_ok]
-    offset = np.flatnonzero(keys_ok)  # position in the full table
-    sub = Collector(collect.cells.iloc[offset].reset_index(drop=True))  # shows the cells as written
+    if keys_ok.all():  # the usual case: no copy of the table
+        valid, sub = frame, Collector(collect.cells)
+    else:
+        valid = frame[keys_ok]
+        offset = np.flatnonzero(keys_ok)  # position in the full table
+        sub = Collector(collect.cells.iloc[offset].reset_index(drop=True))  # shows the cells as written
     sub.problems = collect.problems
 
     test_group = _group_ids(valid, TEST_KEY)

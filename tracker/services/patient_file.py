@@ -20,7 +20,7 @@ from tracker.domain.vocabulary import SEXES
 from tracker.errors import InputRejected
 from tracker.services import checks
 from tracker.services.checks import Collector
-from tracker.services.clinical_file import KnownPatients, duplicates, unknown_patients
+from tracker.services.clinical_file import KnownPatients, duplicates, python_dates, unknown_patients
 from tracker.services.input_limits import guarded
 from tracker.services.tables import ROW
 
@@ -97,10 +97,10 @@ def validate_patients(
             "patient": patient.to_numpy(),
             "sex": sex.to_numpy(),
             "birth_year": birth_year,
-            "onset_date": onset.dt.date.to_numpy(),
+            "onset_date": python_dates(onset),
             "full_name": identity_text["full_name"].to_numpy(),
             "record_number": identity_text["record_number"].to_numpy(),
-            "birth_date": birth_date.dt.date.to_numpy(),
+            "birth_date": python_dates(birth_date),
         }
     )
     duplicates(collect, frame[frame["patient"] != ""], ["patient"], "patient")

@@ -15,9 +15,11 @@ import os
 import re
 import stat
 import zipfile
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
@@ -572,3 +574,168 @@ def _parse(raw: bytes, suffix: str, allowed_kinds: tuple[str, ...], limits: Inpu
             [Problem(1, None, kind, f"the header is that of a {kind} file; {hint}")],
         )
     return InputTable(cells=frame.reset_index(drop=True), sha256=sha, kind=kind)
+
+
+# -- long files: read in blocks of whole patients ------------------------------------------------------------
+
+STREAM_BYTES = 8 * 1_000_000  # a CSV file larger than this is read in blocks (smaller ones are read whole)
+BLOCK_BYTES = 4 * 1_000_000  # about this much of the file is held as cells at a time
+STREAM_KINDS = ("measurements", "treatments", "scores")
+
+
+class _Watched(io.RawIOBase):
+    """The file as Arrow reads it, hashed on the way and watched for what the whole-file reader refuses
+    (NUL bytes, growing past the size limit)."""
+
+    def __init__(self, handle, limit: int) -> None:
+        self.handle, self.limit = handle, limit
+        self.sha = hashlib.sha256()
+        self.size = 0
+        self.unusual = False
+
+    def readable(self) -> bool:
+        return True
+
+    def read(self, size: int = -1) -> bytes:
+        data = self.handle.read(size)
+        self.sha.update(data)
+        self.size += len(data)
+        if b"\x00" in data or self.size > self.limit:
+            self.unusual = True
+        return data
+
+
+class TableStream:
+    """A long, regular CSV file read in blocks: each block is a table of cells as :func:`parse_table` makes
+    them (trimmed text, canonical column names, spreadsheet row numbers, empty rows left out) and holds every
+    row of its patients, provided the file keeps each patient's rows together.
+
+    Anything the whole-file reader would refuse or read differently (a NUL byte, text that is not UTF-8,
+    ragged or blank rows, cells too long, too many rows, a patient whose rows are apart) sets
+    :attr:`unusual` and ends the blocks: the caller then reads the file whole, which gives its exact
+    messages. :attr:`sha256` is the file's digest once every block was read.
+    """
+
+    def __init__(self, path: Path, kind: str, names: list[str], headers: list[str], limits: InputLimits):
+        self.path, self.kind, self.limits = path, kind, limits
+        self.names, self.headers = names, headers
+        self.unusual = False
+        self.sha256 = ""
+
+    def blocks(self) -> Iterator[pd.DataFrame]:
+        placeholders = [f"column_{i}" for i in range(len(self.names))]
+        irregular: list[object] = []
+
+        def note(row: object) -> str:
+            irregular.append(row)
+            return "skip"
+
+        seen: set[str] = set()  # patients of the blocks given out: none may come back later
+        carry: pd.DataFrame | None = None
+        next_row = 2
+        with open(self.path, "rb") as handle:
+            watched = _Watched(handle, self.limits.file_bytes)
+            try:
+                reader = arrow_csv.open_csv(
+                    watched,
+                    read_options=arrow_csv.ReadOptions(
+                        column_names=placeholders, skip_rows=1, block_size=BLOCK_BYTES
+                    ),
+                    parse_options=arrow_csv.ParseOptions(invalid_row_handler=note, ignore_empty_lines=False),
+                    convert_options=arrow_csv.ConvertOptions(
+                        column_types={p: pa.string() for p in placeholders},
+                        strings_can_be_null=False,
+                        quoted_strings_can_be_null=False,
+                    ),
+                )
+                for batch in reader:
+                    if irregular or watched.unusual:
+                        break
+                    frame = pd.DataFrame(
+                        {
+                            h: pc.utf8_trim_whitespace(batch.column(i)).to_pandas()
+                            for i, h in enumerate(self.headers)
+                        }
+                    )
+                    frame[ROW] = range(next_row, next_row + len(frame))
+                    next_row += len(frame)
+                    if next_row - 2 > self.limits.rows:
+                        break
+                    frame = frame[(frame[self.headers] != "").any(axis=1)]
+                    if _cell_problems(frame, frame[ROW], self.limits):
+                        break
+                    if carry is not None:
+                        frame = pd.concat([carry, frame], ignore_index=True)
+                    codes = frame["patient"].to_numpy()
+                    if len(codes) == 0:
+                        carry = frame
+                        continue
+                    # The last patient's rows may go on in the next block: they wait for it.
+                    change = np.flatnonzero(codes[1:] != codes[:-1])
+                    cut = int(change[-1]) + 1 if len(change) else 0
+                    carry = frame.iloc[cut:]
+                    if cut == 0:
+                        continue
+                    block = frame.iloc[:cut].reset_index(drop=True)
+                    if not self._new_patients(block, seen):
+                        break
+                    yield block
+                else:
+                    if not (irregular or watched.unusual):
+                        if carry is not None and len(carry):
+                            block = carry.reset_index(drop=True)
+                            if self._new_patients(block, seen):
+                                yield block
+                            else:
+                                return
+                        self.sha256 = watched.sha.hexdigest()
+                        return
+            except (pa.ArrowInvalid, pa.ArrowNotImplementedError, OSError):
+                pass
+        self.unusual = True
+
+    def _new_patients(self, block: pd.DataFrame, seen: set[str]) -> bool:
+        """Whether no patient of ``block`` was in an earlier block (else :attr:`unusual` is set)."""
+        codes = set(block["patient"].unique())
+        if codes & seen:
+            self.unusual = True
+            return False
+        seen.update(codes)
+        return True
+
+
+def open_stream(
+    path: Path, allowed_kinds: tuple[str, ...] = IMPORT_KINDS, *, limits: InputLimits | None = None
+) -> TableStream | None:
+    """A :class:`TableStream` of ``path`` when it is a long CSV file of a kind read in blocks (measurements,
+    treatments, scores) with a plain header; ``None`` when the file is to be read whole by
+    :func:`read_table` (which also gives every refusal its message)."""
+    limits = limits or from_environment()
+    if path.suffix.lower() not in (".csv", ".txt"):
+        return None
+    try:
+        info = os.stat(path)
+        if not stat.S_ISREG(info.st_mode) or not STREAM_BYTES < info.st_size <= limits.file_bytes:
+            return None
+        with open(path, "rb") as handle:
+            first = handle.readline(1 << 20)
+    except OSError:
+        return None
+    if first.startswith(b"\xef\xbb\xbf"):
+        first = first[3:]
+    try:
+        line = first.decode("utf-8").rstrip("\r\n")
+    except UnicodeDecodeError:
+        return None
+    if not line or '"' in line or "\x00" in line:
+        return None
+    names = line.split(",")
+    if len(names) > limits.columns or any(len(n) > limits.cell_chars for n in names):
+        return None
+    headers = [normalise_word(n) for n in names]
+    if len(set(headers)) != len(headers) or ROW in headers or "patient" not in headers or "" in headers:
+        return None
+    kind = next((k for marker, k in KIND_MARKERS if marker in headers), None)
+    if kind not in STREAM_KINDS or kind not in allowed_kinds:
+        return None
+    return TableStream(path, kind, names, headers, limits)
