@@ -57,3 +57,26 @@ def once(name: Hashable, inputs: tuple, compute: Callable[[], T]) -> T:
     if isinstance(result, np.ndarray):
         result.flags.writeable = False  # shared by every caller: an edit would be a bug, so make it fail
     return result
+
+
+def by_content(name: Hashable, arrays: tuple[np.ndarray, ...], compute: Callable[[], T]) -> T:
+    """``compute()``, or inside :func:`shared` the result computed earlier for ``name`` over the same memory.
+
+    For read-only arrays only (the columns ``to_numpy()`` hands out of a frame under copy-on-write): the
+    sets take many shallow copies and row subsets of one frame, whose columns are then new array objects
+    over the same memory, so :func:`once` (by identity) cannot recognise them. The arrays are kept with the
+    result, so their memory cannot be reused by another array while the block lasts; a writable array (one
+    the caller could still change) is never cached. Callers pass only columns of frames nobody edits in
+    place (the nerve tests and their subsets). A cached array result is made read-only."""
+    store = _store.get()
+    if store is None or not all(isinstance(a, np.ndarray) and not a.flags.writeable for a in arrays):
+        return compute()
+    key = (name, *((a.__array_interface__["data"][0], a.shape, a.strides, a.dtype.str) for a in arrays))
+    hit = store.get(key)
+    if hit is None:
+        hit = (tuple(arrays), compute())
+        for part in hit[1] if isinstance(hit[1], tuple) else (hit[1],):
+            if isinstance(part, np.ndarray):
+                part.flags.writeable = False
+        store[key] = hit
+    return hit[1]

@@ -36,6 +36,7 @@ def limit_provenance(frame: pd.DataFrame, column: str) -> dict[str, pd.Series]:
         lambda s, st: s if not isinstance(s, str) else (f"{s} — stratum: {st}" if isinstance(st, str) else s),
         source,
         stratum,
+        shared=True,
     )
     return {
         # object: letting pandas infer a string column here, only to turn it back into objects, cost more

@@ -7,6 +7,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from tracker.criteria import memo
 from tracker.criteria.codes import distinct
 from tracker.criteria.model import (
     FINDING_COLUMNS,
@@ -198,16 +199,23 @@ def item_findings(
     return pd.DataFrame({column: columns[column] for column in FINDING_COLUMNS}, index=index, copy=False)
 
 
-def per_distinct(function, *columns) -> np.ndarray:
+def per_distinct(function, *columns, shared: bool = False) -> np.ndarray:
     """``function(*values)`` for every row of ``columns`` (equal-length arrays), called once per distinct
     combination of values and spread over the rows (an object array).
 
     Texts built row by row cost far more than the comparisons, and a cohort has few distinct label, nerve
     or reason combinations. Float columns are told apart by their bits (``-0.0`` stays apart from ``0.0``);
     in text columns ``None`` and NaN fall together, so ``function`` must treat every missing value alike.
+    ``shared``: the columns are read-only columns of frames nobody edits in place (the nerve tests), so their
+    codes may be reused within one evaluation (:func:`tracker.criteria.memo.by_content`).
     """
     arrays = [c.to_numpy() if isinstance(c, pd.Series) else np.asarray(c) for c in columns]
-    combined, first = distinct(*arrays)
+    if (
+        shared
+    ):  # columns of the nerve tests (or their subsets), asked for again and again: see memo.by_content
+        combined, first = memo.by_content("distinct", tuple(arrays), lambda: distinct(*arrays))
+    else:
+        combined, first = distinct(*arrays)
     results = np.empty(len(first), dtype=object)
     for position, row in enumerate(first):
         results[position] = function(*(a[row] for a in arrays))  # one by one: a result may be a tuple

@@ -21,6 +21,7 @@ from importlib import resources
 import numpy as np
 import pandas as pd
 
+from tracker.criteria import memo
 from tracker.criteria.citations import keys_of, source_text
 from tracker.criteria.codes import distinct
 
@@ -77,13 +78,14 @@ class ThresholdTable:
             raise KeyError(f"{self.criteria_id}: no threshold rows for {item!r}")
         # Decide each distinct (nerve, filter) pair once, then spread the answers over the rows.
         names = nerves.to_numpy(dtype=object)
+        # The sets look up many items over the same nerve tests: the pairs are found once per column.
         if lff_hz is None or all(r.lff_hz is None for r in rows):
             # The filter setting only matters to rows that name one.
             filters = np.full(len(names), np.nan)
-            inverse, first = distinct(names)
+            inverse, first = memo.by_content("distinct", (names,), lambda: distinct(names))
         else:
             filters = np.asarray(lff_hz, dtype=float)
-            inverse, first = distinct(names, filters)
+            inverse, first = memo.by_content("distinct", (names, filters), lambda: distinct(names, filters))
         decided = [self._decide(rows, names[row], filters[row]) for row in first]
         if not len(decided):
             decided = [self._decide(rows, None, np.nan)]
