@@ -157,14 +157,17 @@ def item_findings(
     def text(values, *, owned: bool = False) -> pd.Series:
         # Plain Python objects: letting pandas infer a string column for each of millions of findings
         # costs more than the rules themselves.
-        # Always a new array (a caller's array, or a read-only view of a frame's column, must not end up
-        # inside the findings, which the sets edit in place); ``owned``: already made here.
+        # A caller's writable array is copied (the caller could still change it); a read-only column of a
+        # frame is taken as it is: nobody can write through it, and the sets edit only the status, reason
+        # and item columns of findings, which are always new arrays (``owned``: made here).
         if isinstance(values, pd.Series):
-            array = values.to_numpy(dtype=object, copy=True)
-        elif values is None or isinstance(values, str):
+            values = values.to_numpy(dtype=object)
+        if values is None or isinstance(values, str):
             array = np.empty(n, dtype=object)
             array[:] = values
-        elif owned:
+        elif owned or (
+            isinstance(values, np.ndarray) and values.dtype == object and not values.flags.writeable
+        ):
             array = values
         else:
             array = np.array(values, dtype=object)
@@ -172,7 +175,7 @@ def item_findings(
         return pd.Series(array, index=index, dtype=object, copy=False)
 
     columns = {
-        "visit_key": frame["visit_key"].to_numpy(copy=True),
+        "visit_key": frame["visit_key"].to_numpy(),  # read-only: never edited
         "criteria": text(criteria),
         "nerve": text(frame["nerve"]),
         "side": text(frame["side"]),
