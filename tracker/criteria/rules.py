@@ -79,6 +79,13 @@ def margin(values: np.ndarray, thresholds: np.ndarray, comparator: str | np.ndar
     return quantise_array(t - v if comparators in ("ge", "gt") else v - t)
 
 
+def _filled(value: str | None, n: int) -> np.ndarray:
+    """An object array of ``n`` times ``value``."""
+    array = np.empty(n, dtype=object)
+    array[:] = value
+    return array
+
+
 def item_findings(
     frame: pd.DataFrame,
     *,
@@ -154,7 +161,7 @@ def item_findings(
 
     index = pd.RangeIndex(n)
 
-    def text(values, *, owned: bool = False) -> pd.Series:
+    def text(values, *, owned: bool = False, edited: bool = False) -> pd.Series:
         # Plain Python objects: letting pandas infer a string column for each of millions of findings
         # costs more than the rules themselves.
         # A caller's writable array is copied (the caller could still change it); a read-only column of a
@@ -163,8 +170,13 @@ def item_findings(
         if isinstance(values, pd.Series):
             values = values.to_numpy(dtype=object)
         if values is None or isinstance(values, str):
-            array = np.empty(n, dtype=object)
-            array[:] = values
+            # One word on every row: within an evaluation the items share one read-only array per word and
+            # length (the parts are stacked into new arrays at the end); a column the sets edit is its own.
+            array = (
+                _filled(values, n)
+                if edited
+                else memo.once(("filled", values, n), (), lambda: _filled(values, n))
+            )
         elif owned or (
             isinstance(values, np.ndarray) and values.dtype == object and not values.flags.writeable
         ):
@@ -180,7 +192,7 @@ def item_findings(
         "nerve": text(frame["nerve"]),
         "side": text(frame["side"]),
         "modality": text(frame["modality"] if "modality" in frame else "motor"),
-        "item": text(item),
+        "item": text(item, edited=True),  # the EFNS/PNS 2010 set renames some (sural_normal)
         "parameter": text(parameter),
         "segment": text(segment),
         "value": value,
