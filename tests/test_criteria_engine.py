@@ -317,3 +317,79 @@ def test_met_turning_not_evaluable_and_outcome_turning_undecided_are_changes():
         "previous": "possible",
         "current": "undecided",
     }
+
+
+# ---------------------------------------------------------------- building blocks of the fast path (issue 12)
+# Each is compared with the plain pandas operation it stands for (common practice, no source).
+
+
+def test_codes_tell_apart_what_pandas_factorize_tells_apart():
+    from tracker.criteria.codes import codes_of, distinct
+
+    words = np.array(["ulnar", None, "median", np.nan, "ulnar", pd.NA, "médian"], dtype=object)
+    codes, count = codes_of(words)
+    expected, uniques = pd.factorize(words, use_na_sentinel=False)
+    assert count == len(uniques)
+    # Same partition of the rows (every missing value in one group), whatever the numbering.
+    assert len(set(zip(codes, expected))) == len(set(codes)) == len(set(expected))
+    # Floats by their bits: -0.0 and 0.0 apart, NaN together.
+    float_codes, _ = codes_of(np.array([0.0, -0.0, np.nan, np.nan, 1.5]))
+    assert float_codes[0] != float_codes[1] and float_codes[2] == float_codes[3]
+    combined, first = distinct(np.array(["a", "b", "a", "b"], dtype=object), np.array([1, 1, 1, 2]))
+    assert list(combined) == [0, 1, 0, 2] and list(first) == [0, 1, 3]
+
+
+def test_stack_gives_what_pd_concat_gives():
+    from tracker.criteria.rules import stack
+
+    a = pd.DataFrame({"t": pd.Series(["x", None], dtype=object), "v": [1.0, np.nan], "k": [1, 2]})
+    b = pd.DataFrame({"t": pd.Series([np.nan, "y"], dtype=object), "v": [3.0, 4.0], "k": [3, 4]})
+    for parts in ([a, b], [a.iloc[:0], b], [b]):
+        pd.testing.assert_frame_equal(stack(parts), pd.concat(parts, ignore_index=True), check_exact=True)
+        assert stack(parts)["t"].tolist() == pd.concat(parts, ignore_index=True)["t"].tolist()
+    # Different dtypes or columns: pandas decides, as before.
+    c = b.assign(k=b["k"].astype(float))
+    pd.testing.assert_frame_equal(stack([a, c]), pd.concat([a, c], ignore_index=True))
+    d = b.rename(columns={"k": "other"})
+    pd.testing.assert_frame_equal(stack([a, d]), pd.concat([a, d], ignore_index=True))
+    # The result owns its arrays: editing it leaves the parts alone.
+    out = stack([a, b])
+    out.loc[0, "t"] = "changed"
+    assert a.loc[0, "t"] == "x"
+
+
+def test_codes_by_content_are_reused_only_for_read_only_columns():
+    from tracker.criteria import memo
+
+    frame = pd.DataFrame({"nerve": pd.Series(["ulnar", "median", "ulnar"], dtype=object)})
+    calls = []
+
+    def compute(values):
+        calls.append(1)
+        return np.arange(len(values))
+
+    with memo.shared():
+        column = frame["nerve"].to_numpy()  # read-only under copy-on-write
+        assert not column.flags.writeable
+        first = memo.by_content("codes", (column,), lambda: compute(column))
+        again = memo.by_content(
+            "codes", (frame.copy(deep=False)["nerve"].to_numpy(),), lambda: compute(column)
+        )
+        assert again is first and len(calls) == 1 and not first.flags.writeable
+        writable = np.array(["ulnar", "median", "ulnar"], dtype=object)
+        memo.by_content("codes", (writable,), lambda: compute(writable))
+        memo.by_content("codes", (writable,), lambda: compute(writable))
+        assert len(calls) == 3  # a writable array could change: never reused
+    memo.by_content("codes", (column,), lambda: compute(column))
+    assert len(calls) == 4  # outside an evaluation nothing is kept
+
+
+def test_findings_of_an_evaluation_are_editable_and_own_their_arrays(cohort):
+    """Within an evaluation the items share read-only columns; what the sets hand back is the callers' own."""
+    results = engine.evaluate(*frames(cohort), limits.default_limits())
+    for result in results.values():
+        findings = result.findings
+        assert len(findings)
+        # A read-only column would refuse these edits (ValueError).
+        for column in ("nerve", "criteria", "parameter", "source", "reason", "visit_key"):
+            findings.loc[findings.index[:1], column] = findings[column].iloc[-1]
