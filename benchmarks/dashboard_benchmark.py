@@ -2,15 +2,16 @@
 browser draw it? Two measurements, printed in one run (issue 4, "Performance").
 
 1. Follow-up page time against database size. Two SQLite databases are built: "small" (10 patients) and
-   "large" (5,000 patients). In both, the patient ``BENCH-TARGET`` has the same 30 visits (about every
-   3 months; 7 motor and sensory nerve tests per visit: median, ulnar, fibular and tibial motor with 2–3
-   stimulation sites, median, ulnar and sural sensory with one) plus treatments and clinical scores; every
-   other patient has 3–8 visits with the same nerve layout. The data are written as interchange CSV files
-   (DESIGN.md §4.1–4.2), loaded with the tool's importer and evaluated against every criteria set
-   (``refresh_evaluations``), as in a clinic database. Both databases are cached under the temporary
-   folder, keyed by :data:`VERSION`, so a second run starts at once. The first build of the large one
-   takes about 20 minutes on 2 cores and about 4.5 GB of disk, nearly all of it the saved evaluations
-   (``--evaluate latest`` saves only the target's and each patient's latest visit: a quick build).
+   "large" (5,000 patients) of invented patients from :mod:`tracker.synthetic` (the generator shared with
+   the tests and the tool benchmark). In both, the followed patient ``SYN-TARGET`` has the same 30 visits
+   (about every 3 months; 7 motor and sensory nerve tests per visit: median, ulnar, fibular and tibial motor
+   with 2–3 stimulation sites, median, ulnar and sural sensory with one) plus treatments and clinical
+   scores; every other patient has 3–8 visits with the same nerve layout. The data are written as
+   interchange CSV files (DESIGN.md §4.1–4.2), loaded with the tool's importer and evaluated against every
+   criteria set (``refresh_evaluations``), as in a clinic database. Both databases are cached under the
+   temporary folder, keyed by :data:`VERSION`, so a second run starts at once. The first build of the large
+   one takes many minutes on 2 cores, nearly all of it the evaluations (``--evaluate latest`` saves only the
+   target's and each patient's latest visit: a quick build).
 
    The page is timed with Streamlit's ``AppTest``: a fresh app for each run, the patient chosen in the
    shared session state, one run of the default page, ``switch_page`` to the follow-up page, then every
@@ -28,8 +29,8 @@ browser draw it? Two measurements, printed in one run (issue 4, "Performance").
    is measured, one warm-up load then 5 timed loads, each in a new browser context (target: under 3 s).
    The server is stopped by its process id at the end, also on errors.
 
-All patients, visits and values are invented by a generator with a fixed random state; codes are
-artificial (``BENCH-00001`` …) and no names or identifiers appear anywhere.
+All patients, visits and values are invented (:mod:`tracker.synthetic`: every patient's random generator
+starts from its code); codes are artificial (``SYN-00001`` …) and no names or identifiers appear anywhere.
 
 Run: ``.venv/bin/python benchmarks/dashboard_benchmark.py`` (options: ``--repeat``, ``--large``,
 ``--evaluate``, ``--skip-browser``, ``--rebuild``). Progress goes to stderr, results to stdout; the last
@@ -40,11 +41,9 @@ from __future__ import annotations
 
 import argparse
 import contextlib
-import csv
-import datetime as dt
 import io
+import itertools
 import os
-import random
 import signal
 import socket
 import statistics
@@ -53,16 +52,21 @@ import sys
 import tempfile
 import time
 import urllib.request
-from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field
+from collections.abc import Callable
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
+
+from tracker import synthetic  # noqa: E402  (the invented cohort shared with the tests and other benchmarks)
+
 APP = ROOT / "tracker" / "dashboard" / "app.py"
-VERSION = "dashboard-bench-v3"  # change it whenever the generator changes: the cached databases are rebuilt
+# Change it whenever the data change (v4: tracker.synthetic instead of this script's own generator): the
+# cached databases of an older version are then never reused.
+VERSION = "dashboard-bench-v4"
 CACHE = Path(tempfile.gettempdir()) / f"ncs-tracker-benchmark-{VERSION}"
-TARGET = "BENCH-TARGET"
-TARGET_VISITS = 30
+TARGET = synthetic.TARGET
+TARGET_VISITS = synthetic.TARGET_VISITS
 SMALL_PATIENTS, LARGE_PATIENTS = 10, 5000
 CHUNK = 250  # patients per imported file (progress, and memory of one all-or-nothing import)
 DEMO_PATIENT = "DEMO-01"
@@ -78,325 +82,6 @@ CHROMIUM_ARGS = [
     "--disable-quic",
 ]
 PLOT_LINE = ".js-plotly-plot .scatterlayer path.js-line"
-
-# -- invented data: interchange files ------------------------------------------------------------------------
-
-MEASUREMENT_HEADER = [
-    "patient",
-    "visit_date",
-    "nerve",
-    "side",
-    "modality",
-    "site_order",
-    "site",
-    "distance_mm",
-    "latency_ms",
-    "peak_latency_ms",
-    "amplitude_mv",
-    "amplitude_uv",
-    "duration_ms",
-    "area_mvms",
-    "temperature_c",
-    "lff_hz",
-    "f_latency_ms",
-    "f_persistence_pct",
-    "recording_site",
-    "height_cm",
-    "sex",
-    "birth_year",
-    "diagnosis",
-    "phenotype",
-]
-TREATMENT_HEADER = [
-    "patient",
-    "therapy",
-    "start_date",
-    "end_date",
-    "dose",
-    "dose_unit",
-    "interval_days",
-    "note",
-]
-SCORE_HEADER = ["patient", "date", "scale", "value"]
-
-
-@dataclass(frozen=True)
-class Motor:
-    sites: tuple[str, ...]
-    distances_mm: tuple[int, ...]  # site 1: to the recording electrode; then from the previous site
-    distal_latency_ms: float  # healthy values, slowed by the patient's disease below
-    cv_m_s: float
-    cmap_mv: float
-    f_latency_ms: float
-    recording_site: str
-    limb: str
-
-
-@dataclass(frozen=True)
-class Sensory:
-    site: str
-    distance_mm: int
-    cv_m_s: float
-    snap_uv: float
-    recording_site: str
-    limb: str
-
-
-MOTOR = {
-    "median": Motor(("wrist", "elbow"), (70, 230), 3.6, 56, 8.5, 27, "abductor_pollicis_brevis", "arm"),
-    "ulnar": Motor(
-        ("wrist", "below_elbow", "above_elbow"),
-        (70, 210, 100),
-        2.9,
-        58,
-        9.0,
-        28,
-        "abductor_digiti_minimi",
-        "arm",
-    ),
-    "fibular": Motor(
-        ("ankle", "below_fibular_head", "popliteal_fossa"),
-        (90, 320, 100),
-        4.8,
-        47,
-        5.5,
-        48,
-        "extensor_digitorum_brevis",
-        "leg",
-    ),
-    "tibial": Motor(("ankle", "popliteal_fossa"), (90, 400), 4.5, 46, 11.0, 49, "abductor_hallucis", "leg"),
-}
-SENSORY = {
-    "median": Sensory("wrist", 130, 55, 30, "digit_2", "arm"),
-    "ulnar": Sensory("wrist", 110, 55, 25, "digit_5", "arm"),
-    "sural": Sensory("calf", 140, 48, 16, "posterior_ankle", "leg"),
-}
-NERVE_TESTS_PER_VISIT = len(MOTOR) + len(SENSORY)
-
-
-@dataclass
-class Patient:
-    code: str
-    sex: str
-    birth_year: int
-    height_cm: int
-    diagnosis: str
-    phenotype: str
-    visits: list[tuple[dt.date, float]]  # (date, severity 0 = normal … 1 = severe demyelination)
-    treatments: list[list[object]] = field(default_factory=list)
-    scores: list[list[object]] = field(default_factory=list)
-
-
-def limb_temperature(limb: str, rng: random.Random) -> float:
-    """Skin temperature: about one test in ten below the guideline minimum (arm 33 °C, leg 30 °C)."""
-    minimum = 33.0 if limb == "arm" else 30.0
-    return (
-        rng.uniform(minimum - 1.5, minimum - 0.1)
-        if rng.random() < 0.1
-        else rng.uniform(minimum, minimum + 2.5)
-    )
-
-
-def visit_rows(patient: Patient, date: dt.date, severity: float, rng: random.Random) -> list[list[object]]:
-    """One visit's stimulation-site rows: plausible values, slower and smaller with ``severity``."""
-    common = [patient.height_cm, patient.sex, patient.birth_year, patient.diagnosis, patient.phenotype]
-    rows: list[list[object]] = []
-    for nerve, m in MOTOR.items():
-        slow = max(0.4, (1 - 0.6 * severity) * rng.uniform(0.9, 1.05))  # fraction of the healthy velocity
-        latency = m.distal_latency_ms / slow
-        amplitude = m.cmap_mv * rng.uniform(0.6, 1.1) * (1 - 0.5 * severity)
-        duration = 5.5 / slow
-        temperature = limb_temperature(m.limb, rng)
-        f_latency = m.f_latency_ms / slow * rng.uniform(0.97, 1.04)
-        persistence = rng.randint(20, 100)
-        for order, (label, distance) in enumerate(zip(m.sites, m.distances_mm)):
-            if order:
-                latency += distance / (m.cv_m_s * slow * rng.uniform(0.92, 1.08))
-                amplitude *= rng.uniform(0.55 if severity > 0.6 else 0.8, 0.98)
-                duration *= rng.uniform(1.0, 1.35)
-            rows.append(
-                [
-                    patient.code,
-                    date.isoformat(),
-                    nerve,
-                    "right",
-                    "motor",
-                    order + 1,
-                    label,
-                    distance,
-                    f"{latency:.2f}",
-                    "",
-                    f"{amplitude:.1f}",
-                    "",
-                    f"{duration:.1f}",
-                    f"{amplitude * duration * 0.45:.1f}",
-                    f"{temperature:.1f}",
-                    2,
-                    f"{f_latency:.1f}",
-                    persistence,
-                    m.recording_site,
-                    *common,
-                ]
-            )
-    for nerve, s in SENSORY.items():
-        slow = (1 - 0.4 * severity) * rng.uniform(0.9, 1.05)
-        latency = s.distance_mm / (s.cv_m_s * slow)
-        snap = s.snap_uv * rng.uniform(0.5, 1.2) * (1 - 0.7 * severity)
-        temperature = limb_temperature(s.limb, rng)
-        rows.append(
-            [
-                patient.code,
-                date.isoformat(),
-                nerve,
-                "right",
-                "sensory",
-                1,
-                s.site,
-                s.distance_mm,
-                f"{latency:.2f}",
-                f"{latency + rng.uniform(0.6, 0.9):.2f}",
-                "",
-                f"{snap:.1f}",
-                "",
-                "",
-                f"{temperature:.1f}",
-                20,
-                "",
-                "",
-                s.recording_site,
-                *common,
-            ]
-        )
-    return rows
-
-
-def target_patient() -> Patient:
-    """The followed patient: 30 visits about every 3 months from 2017, on IVIG, a relapse when the interval
-    is stretched, identical in every database (its own fixed random state)."""
-    rng = random.Random(20261201)  # fixed random state: the same patient in every database and every run
-    patient = Patient(TARGET, "female", 1962, 166, "cidp", "typical", [])
-    date = dt.date(2017, 1, 16)
-    for visit in range(TARGET_VISITS):
-        course = 0.85 - 0.45 * min(visit, 8) / 8  # improves under treatment …
-        if 16 <= visit <= 20:
-            course += 0.08 * (visit - 15)  # … relapses while the interval is extended …
-        if visit > 20:
-            course += 0.4 - 0.06 * (visit - 20)  # … and recovers when it is restored
-        severity = min(1.0, max(0.15, course + rng.uniform(-0.05, 0.05)))
-        patient.visits.append((date, severity))
-        incat = round(1 + 6 * severity)
-        arm = min(5, round(3 * severity))  # INCAT grades: arm and leg add up to the total
-        patient.scores += [
-            [TARGET, date.isoformat(), "incat", incat],
-            [TARGET, date.isoformat(), "incat_arm", arm],
-            [TARGET, date.isoformat(), "incat_leg", incat - arm],
-            [TARGET, date.isoformat(), "mrc_sum", round(58 - 22 * severity)],
-            [TARGET, date.isoformat(), "i_rods", round(85 - 60 * severity)],
-            [TARGET, date.isoformat(), "grip_kpa_right", round(95 - 55 * severity + rng.uniform(-4, 4))],
-        ]
-        date += dt.timedelta(days=91 + rng.randint(-7, 7))
-    first = patient.visits[0][0]
-    relapse, restored = patient.visits[15][0], patient.visits[21][0]
-    patient.treatments = [
-        [
-            TARGET,
-            "ivig",
-            first + dt.timedelta(days=6),
-            first + dt.timedelta(days=10),
-            2,
-            "g/kg",
-            "",
-            "loading course over 5 days",
-        ],
-        [
-            TARGET,
-            "ivig",
-            first + dt.timedelta(days=31),
-            relapse - dt.timedelta(days=1),
-            1,
-            "g/kg",
-            21,
-            "maintenance",
-        ],
-        [
-            TARGET,
-            "ivig",
-            relapse,
-            restored - dt.timedelta(days=1),
-            1,
-            "g/kg",
-            35,
-            "interval extended (spacing trial)",
-        ],
-        [TARGET, "ivig", restored, "", 1, "g/kg", 21, "interval restored after relapse"],
-    ]
-    return patient
-
-
-def cohort_patients(count: int) -> Iterator[Patient]:
-    """Every other patient: 3–8 visits 3–10 months apart between 2014 and 2025. A database of n patients
-    holds the first n − 1 of this sequence, so the small cohort is a prefix of the large one."""
-    rng = random.Random(20261202)  # fixed random state (a second one, so the cohort never shifts the target)
-    for number in range(1, count + 1):
-        code = f"BENCH-{number:05d}"
-        diagnosis = rng.choices(["cidp", "mmn", "gbs", "other"], weights=[70, 10, 10, 10])[0]
-        phenotype = rng.choice(["typical", "typical", "distal", "multifocal"]) if diagnosis == "cidp" else ""
-        patient = Patient(
-            code,
-            rng.choice(["female", "male"]),
-            rng.randint(1940, 1995),
-            rng.randint(150, 195),
-            diagnosis,
-            phenotype,
-            [],
-        )
-        date = dt.date(2014, 1, 1) + dt.timedelta(days=rng.randint(0, 6 * 365))
-        severity = rng.uniform(0.1, 1.0)
-        for _ in range(rng.randint(3, 8)):
-            patient.visits.append((date, severity))
-            if rng.random() < 0.5:
-                incat, arm = round(6 * severity), min(5, round(2.5 * severity))
-                patient.scores.append([code, date.isoformat(), "incat", incat])
-                patient.scores.append([code, date.isoformat(), "incat_arm", arm])
-                patient.scores.append([code, date.isoformat(), "incat_leg", incat - arm])
-                patient.scores.append([code, date.isoformat(), "mrc_sum", round(58 - 25 * severity)])
-            severity = min(1.0, max(0.0, severity + rng.uniform(-0.15, 0.1)))
-            date += dt.timedelta(days=rng.randint(90, 300))
-        if diagnosis in ("cidp", "mmn") and rng.random() < 0.7:
-            start = patient.visits[0][0] + dt.timedelta(days=rng.randint(3, 20))
-            patient.treatments.append(
-                [code, "ivig", start, "", rng.choice([1, 2]), "g/kg", rng.choice([21, 28, 35]), ""]
-            )
-        yield patient
-
-
-def write_files(folder: Path, patients: list[Patient], rng: random.Random) -> list[Path]:
-    """The measurements, treatments and scores files of these patients (treatment/score files only if any)."""
-    files = [folder / "measurements.csv", folder / "treatments.csv", folder / "scores.csv"]
-    tables: list[tuple[list[str], list[list[object]]]] = [
-        (
-            MEASUREMENT_HEADER,
-            [
-                row
-                for p in patients
-                for date, severity in p.visits
-                for row in visit_rows(p, date, severity, rng)
-            ],
-        ),
-        (TREATMENT_HEADER, [row for p in patients for row in p.treatments]),
-        (SCORE_HEADER, [row for p in patients for row in p.scores]),
-    ]
-    written = []
-    for path, (header, rows) in zip(files, tables):
-        if not rows:
-            continue
-        with open(path, "w", encoding="utf-8", newline="") as handle:
-            writer = csv.writer(handle)
-            writer.writerow(header)
-            writer.writerows(rows)
-        written.append(path)
-    return written
-
 
 # -- building the databases ----------------------------------------------------------------------------------
 
@@ -441,19 +126,18 @@ def build_database(name: str, patients_total: int, *, evaluate: str, rebuild: bo
     migrate.upgrade(url)
     engine = make_engine(url)
     sessions = make_session_factory(engine)
-    rng = random.Random(20261203)  # fixed random state for the measured values of the cohort
-    target_rng = random.Random(
-        20261204
-    )  # fixed random state for the target's values: the same in every database
-    groups: list[tuple[list[Patient], random.Random]] = [([target_patient()], target_rng)]
-    others = list(cohort_patients(patients_total - 1))
-    groups += [(others[i : i + CHUNK], rng) for i in range(0, len(others), CHUNK)]
+    # Every patient's values depend only on its code (tracker.synthetic), so the small database is a
+    # prefix of the large one and the target is the same in both.
+    patients = synthetic.cohort(patients_total)
     imported = 0
     with tempfile.TemporaryDirectory(prefix="ncs-bench-files-") as scratch:
-        for number, (group, values_rng) in enumerate(groups, start=1):
+        for number in itertools.count(1):
+            group = list(itertools.islice(patients, CHUNK))
+            if not group:
+                break
             folder = Path(scratch) / f"part{number:03d}"
             folder.mkdir()
-            files = write_files(folder, group, values_rng)
+            files = synthetic.write_csv_files(folder, group)
             with sessions.begin() as session:
                 for file in files:
                     import_file(session, file, username="benchmark")
@@ -813,8 +497,8 @@ def main() -> None:
         file=out,
     )
     print(
-        f"target patient {TARGET}: {TARGET_VISITS} visits × {NERVE_TESTS_PER_VISIT} nerve tests, identical "
-        "in both databases",
+        f"target patient {TARGET}: {TARGET_VISITS} visits × {synthetic.NERVE_TESTS_PER_VISIT} nerve tests, "
+        "identical in both databases",
         file=out,
     )
     print("services called by the follow-up page, timed directly (median of 3):", file=out)

@@ -8,8 +8,9 @@
 2. The Patients page with its course column (AppTest, cold caches), 5,000 vs 10 patients (target ≤ 1.5 ×).
 3. One printable report (PDF) of the demo patient DEMO-02, wall time in-process after imports (target ≤ 3 s).
 
-The databases are the dashboard benchmark's invented cohorts (``benchmarks/dashboard_benchmark.py``, fixed
-random states, codes ``BENCH-…``, no identifiers), built once with ``--evaluate latest`` and cached.
+The databases are the dashboard benchmark's invented cohorts (``benchmarks/dashboard_benchmark.py``, which
+takes them from :mod:`tracker.synthetic`, the generator shared with the tests and the tool benchmark: codes
+``SYN-…``, no identifiers), built once with ``--evaluate latest`` and cached.
 
 Run: ``.venv/bin/python benchmarks/response_benchmark.py`` (``--repeat N``, ``--large
 N``). Progress on stderr, results on stdout.
@@ -29,7 +30,7 @@ HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 sys.path.insert(0, str(HERE))
 
-import dashboard_benchmark as bench  # noqa: E402  (the shared generator and its cached databases)
+import dashboard_benchmark as bench  # noqa: E402  (its cached databases of tracker.synthetic cohorts)
 
 APP = ROOT / "tracker" / "dashboard" / "app.py"
 
@@ -138,8 +139,10 @@ def main() -> None:
     parser.add_argument("--skip-report", action="store_true")
     args = parser.parse_args()
     urls = {
-        "small": bench.build_database("small", bench.SMALL_PATIENTS, evaluate="latest", rebuild=False),
-        "large": bench.build_database("large", args.large, evaluate="latest", rebuild=False),
+        # Named as the dashboard benchmark names them (size and evaluation mode), so the two share a cache
+        # and a database with only the latest visits evaluated never stands in for a fully evaluated one.
+        name: bench.build_database(f"{name}-{count}-eval-latest", count, evaluate="latest", rebuild=False)
+        for name, count in (("small", bench.SMALL_PATIENTS), ("large", args.large))
     }
     from tracker.db import migrate
 
