@@ -1,197 +1,253 @@
-"""Import throughput against a plain-sqlite3 floor, measured in one run.
+"""Import against its floor, and import memory against the length of the files (issue 12, items 3 and 4).
 
-Generates a valid measurements file of 2,000 patients × 5 visits × 4 motor nerves × 3 sites (120,000
-stimulation-site rows; invented values), then:
+Data: ``tracker.synthetic`` (deterministic, invented patients; measurements, treatments and scores files).
+Measured in one run, each step in a fresh child process (this script with ``--child``), which times its
+own work after its imports and reads its peak resident memory (``VmHWM``, reset at ``exec``):
 
-1. ``ncs-tracker`` import (read, validate every cell and group, classify against the database, write the
-   normalised tables, audit) into a fresh SQLite database, committed;
-2. the floor: read the same CSV with the ``csv`` module and insert every row with ``sqlite3.executemany``
-   into one flat table of a fresh SQLite file, committed. The executemany alone is printed too, for a
-   stricter reading of "floor".
+* import: ``ncs-tracker import`` of the three files into a fresh database at the current schema;
+* floor, SQLite: ``csv.reader`` and ``sqlite3.executemany`` of the same rows into one flat table per file
+  (WAL, synchronous=NORMAL, as the tool); PostgreSQL: ``COPY … FROM STDIN (FORMAT csv)`` of the same
+  files into one flat text table each — the floors of ``benchmarks/tool_benchmark.py``, copied;
+* both ``--repeat`` times into fresh databases, best counts; the ratio import / floor (target ≤ 3);
+* with ``--memory K``: the import of K × the patients, its peak memory against the best import's
+  (target ≤ 1.5 for K = 10).
 
-Both databases use the tool's SQLite settings (WAL journal, synchronous=NORMAL), so the comparison is like
-with like. Each side runs ``--repeat`` times into fresh files and the best time counts (the usual way to
-remove disk and scheduler noise). Prints both times and their ratio (target: import ≤ 3 × floor).
-
-Run: ``python benchmarks/import_benchmark.py``.
+Run: ``.venv/bin/python benchmarks/import_benchmark.py --backend sqlite --patients 500 --memory 10``.
+PostgreSQL: throwaway databases on ``--pg`` (default ``127.0.0.1:5432``, user postgres), dropped at the end.
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import csv
-import random
-import sqlite3
+import io
+import json
+import subprocess
+import sys
 import tempfile
 import time
+import uuid
 from pathlib import Path
 
-from tracker.db import migrate
-from tracker.db.session import make_engine, make_session_factory
-from tracker.services.importing import import_file
+ROOT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(ROOT))
 
-# nerve: (site labels, distal distance mm, segment distances mm, distal latency ms, CV m/s, CMAP mV)
-NERVES = {
-    "median": (("wrist", "elbow", "axilla"), 70, (230, 120), 3.6, 55, 8.0),
-    "ulnar": (("wrist", "below_elbow", "above_elbow"), 70, (210, 100), 2.9, 57, 9.0),
-    "fibular": (("ankle", "below_fibular_head", "popliteal_fossa"), 90, (320, 100), 4.8, 47, 5.0),
-    "tibial": (("ankle", "popliteal_fossa"), 90, (400,), 4.5, 46, 10.0),
-}
-HEADER = [
-    "patient",
-    "visit_date",
-    "nerve",
-    "side",
-    "modality",
-    "site_order",
-    "site",
-    "distance_mm",
-    "latency_ms",
-    "amplitude_mv",
-    "duration_ms",
-    "area_mvms",
-    "temperature_c",
-    "lff_hz",
-    "f_latency_ms",
-    "height_cm",
-    "sex",
-    "birth_year",
-    "diagnosis",
-]
+PG_ADMIN = "postgresql+psycopg://postgres@127.0.0.1:5432/postgres"
 
 
-def write_file(path: Path, patients: int, visits: int) -> int:
-    rng = random.Random(7)  # fixed: every run measures the same file
-    rows = 0
-    with open(path, "w", encoding="utf-8", newline="") as handle:
-        writer = csv.writer(handle)
-        writer.writerow(HEADER)
-        for p in range(patients):
-            code, sex, born, height = (
-                f"B{p:05d}",
-                rng.choice(["female", "male"]),
-                rng.randint(1940, 1995),
-                rng.randint(150, 195),
-            )
-            for v in range(visits):
-                date = f"{2020 + v}-{rng.randint(1, 12):02d}-{rng.randint(1, 28):02d}"
-                for nerve, (labels, first, gaps, dml, cv, amp) in NERVES.items():
-                    # tibial has two standard sites; a third (ankle → knee → thigh) keeps 3 sites per nerve
-                    labels = labels if len(labels) == 3 else labels + ("popliteal_fossa",)
-                    distances = (first, *gaps, 150)[:3]
-                    latency, amplitude = dml * rng.uniform(0.9, 1.6), amp * rng.uniform(0.5, 1.1)
-                    f_wave = round(latency * 6 + 20, 1)
-                    for order in range(3):
-                        if order:
-                            latency += distances[order] / (cv * rng.uniform(0.55, 1.05))
-                            amplitude *= rng.uniform(0.8, 0.98)
-                        label = labels[order] if nerve != "tibial" or order < 2 else ""
-                        writer.writerow(
-                            [
-                                code,
-                                date,
-                                nerve,
-                                "right",
-                                "motor",
-                                order + 1,
-                                label,
-                                distances[order],
-                                f"{latency:.2f}",
-                                f"{amplitude:.1f}",
-                                f"{5.5 * (1 + 0.1 * order):.1f}",
-                                f"{amplitude * 2.5:.1f}",
-                                33.0 if nerve in ("median", "ulnar") else 31.5,
-                                2,
-                                f_wave,
-                                height,
-                                sex,
-                                born,
-                                "cidp",
-                            ]
-                        )
-                        rows += 1
-    return rows
+def _peak_mb() -> float:
+    """This process's peak resident memory (MB): VmHWM, reset at exec (ru_maxrss would include the parent)."""
+    with contextlib.suppress(OSError):
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    import resource
+
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
-def _flat_table(database: Path) -> sqlite3.Connection:
+def _flat_columns(path: Path) -> list[str]:
+    with open(path, encoding="utf-8", newline="") as handle:
+        return next(csv.reader(handle))
+
+
+def _floor_sqlite(database: str, files: list[str]) -> None:
+    import sqlite3
+
     connection = sqlite3.connect(database)
     connection.execute("PRAGMA journal_mode=WAL")
     connection.execute("PRAGMA synchronous=NORMAL")
-    connection.execute(f"CREATE TABLE sites ({', '.join(HEADER)})")
-    return connection
-
-
-def floor_seconds(csv_path: Path, database: Path) -> float:
-    """Read the file with csv.reader and stream its rows into executemany, committed."""
-    start = time.perf_counter()
-    connection = _flat_table(database)
-    with open(csv_path, encoding="utf-8", newline="") as handle:
-        reader = csv.reader(handle)
-        next(reader)
-        connection.executemany(f"INSERT INTO sites VALUES ({', '.join('?' * len(HEADER))})", reader)
+    for number, name in enumerate(files):
+        columns = _flat_columns(Path(name))
+        connection.execute(f"CREATE TABLE flat{number} ({', '.join(columns)})")
+        with open(name, encoding="utf-8", newline="") as handle:
+            reader = csv.reader(handle)
+            next(reader)
+            marks = ", ".join("?" * len(columns))
+            connection.executemany(f"INSERT INTO flat{number} VALUES ({marks})", reader)
     connection.commit()
     connection.close()
-    return time.perf_counter() - start
 
 
-def insert_only_seconds(csv_path: Path, database: Path) -> float:
-    """The executemany alone, from rows already in memory, committed."""
-    with open(csv_path, encoding="utf-8", newline="") as handle:
-        rows = list(csv.reader(handle))[1:]
-    connection = _flat_table(database)
-    start = time.perf_counter()
-    connection.executemany(f"INSERT INTO sites VALUES ({', '.join('?' * len(HEADER))})", rows)
-    connection.commit()
-    elapsed = time.perf_counter() - start
-    connection.close()
-    return elapsed
+def _floor_copy(url: str, files: list[str]) -> None:
+    import psycopg
+    from sqlalchemy.engine import make_url
+
+    parsed = make_url(url)
+    with psycopg.connect(
+        host=parsed.host, port=parsed.port, user=parsed.username, dbname=parsed.database
+    ) as connection:
+        with connection.cursor() as cursor:
+            for number, name in enumerate(files):
+                columns = _flat_columns(Path(name))
+                cursor.execute(f"CREATE TABLE flat{number} ({', '.join(c + ' text' for c in columns)})")
+                with cursor.copy(f"COPY flat{number} FROM STDIN (FORMAT csv, HEADER true)") as copy:
+                    with open(name, "rb") as handle:
+                        while block := handle.read(1 << 20):
+                            copy.write(block)
+        connection.commit()
 
 
-def import_seconds(csv_path: Path, database: Path) -> tuple[float, str]:
-    url = f"sqlite:///{database}"
-    migrate.upgrade(url)  # schema creation is not part of an import
-    engine = make_engine(url)
-    start = time.perf_counter()
-    with make_session_factory(engine).begin() as session:
-        report = import_file(session, csv_path, username="benchmark")
-    elapsed = time.perf_counter() - start
-    engine.dispose()
-    return elapsed, report.summary()
+def _import(url: str, files: list[str]) -> None:
+    from tracker.cli import main
+
+    out = io.StringIO()
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(out):
+        try:
+            main(["--db", url, "import", *files])
+            code = 0
+        except SystemExit as done:
+            code = int(done.code or 0)
+    if code:
+        raise SystemExit(f"ncs-tracker import failed ({code}):\n{out.getvalue()[-2000:]}")
+
+
+def child(kind: str, target: str, files: list[str]) -> None:
+    """One measured step; prints a JSON line: seconds of work (after the imports) and peak memory (MB)."""
+    # Imported before the clock starts (a long-running clinic process has them loaded already), as the
+    # children of benchmarks/tool_benchmark.py do, and Alembic, which every command's schema check imports.
+    import pandas  # noqa: F401
+    import sqlalchemy  # noqa: F401
+
+    import tracker.cli  # noqa: F401
+    import tracker.db.migrate  # noqa: F401  (the schema check's Alembic: 0.2–0.3 s to import, not import work)
+    import tracker.services.evaluation  # noqa: F401
+    import tracker.services.export  # noqa: F401
+    import tracker.services.importing  # noqa: F401
+
+    started = time.perf_counter()
+    {"import": _import, "floor-sqlite": _floor_sqlite, "floor-copy": _floor_copy}[kind](target, files)
+    print(json.dumps({"seconds": time.perf_counter() - started, "peak_mb": _peak_mb()}), flush=True)
+
+
+def run_child(kind: str, target: str, files: list[str]) -> dict:
+    command = [sys.executable, __file__, "--child", kind, target, *files]
+    finished = subprocess.run(command, capture_output=True, text=True, cwd=ROOT)
+    if finished.returncode != 0:
+        raise SystemExit(f"step {kind} failed:\n{finished.stdout[-3000:]}{finished.stderr[-3000:]}")
+    return json.loads(finished.stdout.strip().splitlines()[-1])
+
+
+class Databases:
+    """Throwaway databases of one backend, all removed by :meth:`drop_all`."""
+
+    def __init__(self, backend: str, folder: Path, pg_admin: str) -> None:
+        self.backend, self.folder, self.pg_admin = backend, folder, pg_admin
+        self.made: list[str] = []
+
+    def new(self, label: str, *, migrated: bool = True) -> str:
+        if self.backend == "sqlite":
+            url = f"sqlite:///{self.folder / f'{label}-{len(self.made)}.sqlite3'}"
+        else:
+            from sqlalchemy import create_engine, text
+            from sqlalchemy.engine import make_url
+
+            name = f"ncs_bench_{label}_{uuid.uuid4().hex[:8]}"
+            admin = create_engine(self.pg_admin, isolation_level="AUTOCOMMIT")
+            try:
+                with admin.connect() as connection:
+                    connection.execute(text(f'CREATE DATABASE "{name}"'))
+            finally:
+                admin.dispose()
+            url = make_url(self.pg_admin).set(database=name).render_as_string(hide_password=False)
+        self.made.append(url)
+        if migrated:
+            from tracker.db import migrate
+
+            migrate.upgrade(url)
+        return url
+
+    def drop(self, url: str) -> None:
+        if url not in self.made:
+            return
+        self.made.remove(url)
+        if self.backend == "sqlite":
+            path = Path(url.removeprefix("sqlite:///"))
+            for leftover in (path, Path(f"{path}-wal"), Path(f"{path}-shm")):
+                leftover.unlink(missing_ok=True)
+            return
+        from sqlalchemy import create_engine, text
+        from sqlalchemy.engine import make_url
+
+        admin = create_engine(self.pg_admin, isolation_level="AUTOCOMMIT")
+        try:
+            with admin.connect() as connection:
+                connection.execute(text(f'DROP DATABASE IF EXISTS "{make_url(url).database}" WITH (FORCE)'))
+        finally:
+            admin.dispose()
+
+    def drop_all(self) -> None:
+        for url in list(self.made):
+            with contextlib.suppress(Exception):
+                self.drop(url)
+
+
+def _runs(reports: list[dict]) -> str:
+    return ", ".join(f"{r['seconds']:.2f}" for r in reports)
 
 
 def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("--patients", type=int, default=2000)
-    parser.add_argument("--visits", type=int, default=5)
-    parser.add_argument("--repeat", type=int, default=3)
+    parser = argparse.ArgumentParser(description=(__doc__ or "").splitlines()[0])
+    parser.add_argument("--backend", choices=["sqlite", "postgresql"], default="sqlite")
+    parser.add_argument("--patients", type=int, default=500, help="invented patients (default 500)")
+    parser.add_argument("--repeat", type=int, default=3, help="imports and floors, best counts (default 3)")
+    parser.add_argument("--memory", type=int, default=0, help="also import K × the patients (peak memory)")
+    parser.add_argument("--pg", default=PG_ADMIN, help="PostgreSQL server (its maintenance database)")
+    parser.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = parser.parse_args()
-    with tempfile.TemporaryDirectory() as folder:
-        folder = Path(folder)
-        csv_path = folder / "measurements.csv"
-        rows = write_file(csv_path, args.patients, args.visits)
-        print(f"file: {rows:,} stimulation-site rows ({csv_path.stat().st_size / 1e6:.1f} MB)")
-        floors, inserts, imports = [], [], []
-        for attempt in range(args.repeat):
-            floors.append(floor_seconds(csv_path, folder / f"floor{attempt}.sqlite3"))
-            inserts.append(insert_only_seconds(csv_path, folder / f"insert{attempt}.sqlite3"))
-            seconds, summary = import_seconds(csv_path, folder / f"tracker{attempt}.sqlite3")
-            imports.append(seconds)
-        floor, seconds = min(floors), min(imports)
-        print(
-            f"ncs-tracker import: best {seconds:.2f} s of {', '.join(f'{t:.2f}' for t in imports)} — "
-            f"{summary}"
-        )
-        insert = min(inserts)
-        print(
-            f"floor (csv.reader + sqlite3 executemany, one flat table): best {floor:.2f} s of "
-            f"{', '.join(f'{t:.2f}' for t in floors)}"
-        )
-        print(
-            f"executemany alone (rows already in memory): best {insert:.2f} s of "
-            f"{', '.join(f'{t:.2f}' for t in inserts)}"
-        )
-        print(f"ratio import / floor: {seconds / floor:.2f} (target ≤ 3)")
-        print(f"ratio import / executemany alone: {seconds / insert:.2f}")
+    if args.child:
+        child(args.child[0], args.child[1], args.child[2:])
+        return
+    from tracker import synthetic
+
+    with tempfile.TemporaryDirectory(prefix="ncs-import-bench-") as scratch_name:
+        scratch = Path(scratch_name)
+        databases = Databases(args.backend, scratch, args.pg)
+        try:
+            files: dict[int, list[str]] = {}
+            for count in [args.patients] + ([args.patients * args.memory] if args.memory else []):
+                folder = scratch / f"files-{count}"
+                folder.mkdir()
+                written = synthetic.write_csv_files(folder, list(synthetic.cohort(count)))
+                files[count] = [str(p) for p in written]
+            size = sum(Path(f).stat().st_size for f in files[args.patients])
+            imports, floors = [], []
+            for _ in range(args.repeat):
+                url = databases.new("import")
+                imports.append(run_child("import", url, files[args.patients]))
+                databases.drop(url)
+                if args.backend == "sqlite":
+                    floor_db = str(scratch / "floor.sqlite3")
+                    floors.append(run_child("floor-sqlite", floor_db, files[args.patients]))
+                    for leftover in (floor_db, floor_db + "-wal", floor_db + "-shm"):
+                        Path(leftover).unlink(missing_ok=True)
+                else:
+                    floor_url = databases.new("floor", migrated=False)
+                    floors.append(run_child("floor-copy", floor_url, files[args.patients]))
+                    databases.drop(floor_url)
+            best = min(imports, key=lambda r: r["seconds"])
+            floor = min(f["seconds"] for f in floors)
+            floor_name = "csv.reader + executemany" if args.backend == "sqlite" else "COPY (FORMAT csv)"
+            print(
+                f"import benchmark — {args.backend}, {args.patients:,} patients ({size / 1e6:.1f} MB of CSV)"
+            )
+            print(f"data: {synthetic.LABEL}")
+            print(f"import: best {best['seconds']:.2f} s of {_runs(imports)}")
+            print(f"floor ({floor_name}): best {floor:.2f} s of {_runs(floors)}")
+            print(f"ratio import / floor: {best['seconds'] / floor:.2f} (target ≤ 3)")
+            if args.memory:
+                count = args.patients * args.memory
+                url = databases.new("memory")
+                large = run_child("import", url, files[count])
+                databases.drop(url)
+                print(
+                    f"peak memory: {count:,} patients {large['peak_mb']:.0f} MB ({large['seconds']:.1f} s) "
+                    f"against {args.patients:,} patients {best['peak_mb']:.0f} MB: ratio "
+                    f"{large['peak_mb'] / best['peak_mb']:.2f} (target ≤ 1.5)"
+                )
+        finally:
+            databases.drop_all()
 
 
 if __name__ == "__main__":

@@ -196,3 +196,25 @@ def test_a_warning_of_each_block_is_listed_in_the_order_of_the_whole_file(db_url
     assert len([w for w in whole.warnings if w.column == "nerve"]) == 2
     assert [str(w) for w in streamed.warnings] == [str(w) for w in whole.warnings]
     assert streamed.summary() == whole.summary()
+
+
+def test_a_file_the_block_reader_cannot_take_is_refused_with_the_whole_file_message(
+    db_url, engine, tmp_path, blocks, monkeypatch
+):
+    """A NUL byte near the end: the block reader gives up (Arrow may have read ahead to it before the first
+    block), nothing is written, and the refusal names the byte's row and column as the whole-file reader
+    does."""
+    measurements = _files(tmp_path / "files")[0]
+    raw = measurements.read_bytes()
+    at = raw.rindex(b",median,")
+    measurements.write_bytes(raw[: at + 1] + b"med\x00ian" + raw[at + 7 :])
+    before = fingerprint(engine)
+    assert tables.open_stream(measurements) is not None  # the header is fine: the blocks are tried
+    with pytest.raises(InputRejected) as streamed:
+        _import(db_url, [measurements])
+    assert fingerprint(engine) == before
+    monkeypatch.setattr(tables, "STREAM_BYTES", 1 << 40)
+    with pytest.raises(InputRejected) as whole:
+        _import(db_url, [measurements])
+    assert (streamed.value.summary, streamed.value.problems) == (whole.value.summary, whole.value.problems)
+    assert "NUL" in streamed.value.summary

@@ -62,6 +62,10 @@ from tracker.services.tables import ROW, InputTable, TableStream, open_stream, r
 # version. Read here, not by the file validator: it says which stored visit the rows amend, not what was
 # measured.
 VERSION_COLUMN = "visit_version"
+# Tables, not mapped classes, in the queries of every import: Core statements compile faster and need no
+# mapper configuration (a cost paid again by every new process, such as each ncs-tracker command).
+_PATIENTS = Patient.__table__
+_VISITS = Visit.__table__
 
 
 @dataclass
@@ -620,7 +624,9 @@ def _existing_patients(session: Session, codes: list[str]) -> pd.DataFrame:
     found = []
     for part in _chunks(codes):
         found += session.execute(
-            select(Patient.id, Patient.code, Patient.sex, Patient.birth_year).where(Patient.code.in_(part))
+            select(_PATIENTS.c.id, _PATIENTS.c.code, _PATIENTS.c.sex, _PATIENTS.c.birth_year).where(
+                _PATIENTS.c.code.in_(part)
+            )
         ).all()
     return pd.DataFrame(found, columns=["patient_id", "patient", "db_sex", "db_birth_year"])
 
@@ -634,13 +640,13 @@ def _existing_visits(session: Session, patient_ids: list[int]) -> pd.DataFrame:
     for part in _chunks(patient_ids):
         found += session.execute(
             select(
-                Visit.id,
-                Visit.patient_id,
-                Visit.visit_date,
-                Visit.content_sha256,
-                Visit.status,
-                Visit.version,
-            ).where(Visit.patient_id.in_(part))
+                _VISITS.c.id,
+                _VISITS.c.patient_id,
+                _VISITS.c.visit_date,
+                _VISITS.c.content_sha256,
+                _VISITS.c.status,
+                _VISITS.c.version,
+            ).where(_VISITS.c.patient_id.in_(part))
         ).all()
     return pd.DataFrame(
         found, columns=["visit_id", "patient_id", "visit_date", "db_fingerprint", "status", "version"]
@@ -1068,14 +1074,14 @@ def _refresh_patient_diagnosis(session: Session, patient_ids: list[int]) -> None
     """A patient's current diagnosis and phenotype are those of their latest visit that states a diagnosis."""
     for column in ("diagnosis", "phenotype"):
         latest = (
-            select(getattr(Visit, column))
-            .where(Visit.patient_id == Patient.id, Visit.diagnosis.is_not(None))
-            .order_by(Visit.visit_date.desc())
+            select(_VISITS.c[column])
+            .where(_VISITS.c.patient_id == _PATIENTS.c.id, _VISITS.c.diagnosis.is_not(None))
+            .order_by(_VISITS.c.visit_date.desc())
             .limit(1)
             .scalar_subquery()
         )
         for part in _chunks(patient_ids):
-            session.execute(update(Patient).where(Patient.id.in_(part)).values({column: latest}))
+            session.execute(update(_PATIENTS).where(_PATIENTS.c.id.in_(part)).values({column: latest}))
 
 
 # -- treatments and scores -----------------------------------------------------------------------------------
@@ -1110,9 +1116,10 @@ def _store_records(
 
     stored_rows = []
     for part in _chunks([int(i) for i in ids]):
+        records = model.__table__
         stored_rows += session.execute(
-            select(model.id, *[getattr(model, c) for c in key_db + value_columns]).where(
-                model.patient_id.in_(part)
+            select(records.c.id, *[records.c[c] for c in key_db + value_columns]).where(
+                records.c.patient_id.in_(part)
             )
         ).all()
     stored = pd.DataFrame(stored_rows, columns=["record_id"] + key_db + [f"db_{c}" for c in value_columns])
