@@ -279,12 +279,15 @@ def per_nerve(segments: pd.DataFrame, nerves: pd.DataFrame, settings: Settings) 
         )
         first = position == 0
         notes[owner[first]] = pieces[first]
+        # Texts joined once per distinct pair (the same few texts repeat over a cohort's nerves).
         for step in range(1, int(position.max()) + 1):
             at = position == step
-            notes[owner[at]] = notes[owner[at]] + "; " + pieces[at]
+            notes[owner[at]] = rules.per_distinct(lambda a, b: a + "; " + b, notes[owner[at]], pieces[at])
         noted = pd.notna(notes)
         reason = best["reason"].to_numpy(dtype=object, copy=True)  # always text (item_findings)
-        reason[noted] = reason[noted] + "; other segments not assessed: " + notes[noted]
+        reason[noted] = rules.per_distinct(
+            lambda r, note: r + "; other segments not assessed: " + note, reason[noted], notes[noted]
+        )
         best["reason"] = pd.Series(reason, index=best.index, dtype=object)
     parts = [best]
     for name in LEVELS:
