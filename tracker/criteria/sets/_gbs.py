@@ -17,8 +17,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from tracker.criteria import memo, rules
 from tracker.criteria import parameters as p
-from tracker.criteria import rules
 from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, Settings
 from tracker.criteria.thresholds import COMPARATORS, ThresholdTable
 
@@ -464,8 +464,17 @@ def _met_by_item(findings: pd.DataFrame, n: int) -> dict[str, np.ndarray]:
 
 
 def per_visit(mask: pd.Series, keys: pd.Index) -> pd.Series:
-    """Count of true rows per visit (0 for visits without rows)."""
-    return mask.astype(int).groupby(level="visit_key").sum().reindex(keys, fill_value=0)
+    """Count of true rows per visit (0 for visits without rows); ``mask``: booleans indexed by
+    (``visit_key``, identity)."""
+    # Each row's position in ``keys`` is found once per index (a group-by per count costs more than the rule).
+    position = memo.once(
+        "visit_positions",
+        (mask.index, keys),
+        lambda: keys.get_indexer(mask.index.get_level_values("visit_key")),
+    )
+    chosen = position[(position >= 0) & mask.to_numpy(dtype=bool)]
+    counts = np.bincount(chosen, minlength=len(keys)).astype(np.int64)
+    return pd.Series(counts, index=keys, name=mask.name)
 
 
 def _items_met(state: pd.DataFrame, items: list[str]) -> pd.Series:
@@ -504,14 +513,15 @@ def classify(
     total_items = state["n_items"].groupby(level="visit_key").sum().reindex(keys, fill_value=0)
     very_low = rule_text(table, VERY_LOW_CMAP)
 
-    outcome = pd.Series("equivocal", index=keys, dtype=object)
-    rule = pd.Series("", index=keys, dtype=object)
-    decided = pd.Series(False, index=keys)
+    # Plain arrays over ``keys`` (setting a Series through a mask costs more than the rule).
+    outcome = np.full(len(keys), "equivocal", dtype=object)
+    rule = np.full(len(keys), "", dtype=object)
+    decided = np.zeros(len(keys), dtype=bool)
 
-    def assign(mask: pd.Series, name: str, text: str) -> None:
-        fire = mask.reindex(keys, fill_value=False).astype(bool) & ~decided
+    def assign(mask: pd.Series, name: str, text: str | pd.Series) -> None:
+        fire = mask.reindex(keys, fill_value=False).to_numpy(dtype=bool) & ~decided
         outcome[fire] = name
-        rule[fire] = text
+        rule[fire] = text.reindex(keys).to_numpy(dtype=object)[fire] if isinstance(text, pd.Series) else text
         decided[fire] = True
 
     for text, mask in demyelinating.items():
@@ -527,7 +537,7 @@ def classify(
     undecidable = (
         enough & (n_unknown > 0) & ((n_present == 0) | ((n_present == 1) & (n_present_very_low == 1)))
     )
-    decided[undecidable] = True
+    decided[undecidable.to_numpy(dtype=bool)] = True
     assign(all_absent, "inexcitable", "distal CMAP absent in all nerves")
     assign(
         one_very_low,
@@ -586,8 +596,8 @@ def classify(
         default="does not fit the demyelinating, axonal, inexcitable or normal pattern",
     )
     rest = outcome == "equivocal"
-    rule[rest] = reasons[rest.to_numpy()]
-    return pd.DataFrame({"visit_key": keys, "outcome": outcome.to_numpy(), "rule": rule.to_numpy()})
+    rule[rest] = reasons[rest]
+    return pd.DataFrame({"visit_key": keys, "outcome": outcome, "rule": rule})
 
 
 def _missing_feature_findings(findings: pd.DataFrame, features: list[str]) -> pd.Series:
