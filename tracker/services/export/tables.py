@@ -8,6 +8,7 @@ Values are in the units the column names say: ms, mV (motor), µV (sensory), mV�
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, fields
@@ -18,7 +19,7 @@ import pandas as pd
 from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
-from tracker.criteria import engine, features
+from tracker.criteria import engine, features, memo
 from tracker.criteria import limits as limit_rules
 from tracker.criteria.model import SetResult, Settings
 from tracker.db.models import NerveTest, OutcomeScore, Patient, PatientIdentity, Treatment, Visit
@@ -425,19 +426,11 @@ def _build_chunk(plan: ExportPlan, session: Session, chunk: pd.DataFrame) -> pd.
     if options.level != "visit":  # built once, for the tables and for the engine
         nerves, paths = features.build(tested, tests, sites, plan.limits)
     evaluate = plan.evaluated and not tests.empty
-    results = (
-        engine.evaluate(
-            tested,
-            tests,
-            sites,
-            plan.limits,
-            plan.evaluated,
-            plan.settings,
-            built=None if nerves is None else (nerves, paths),
-        )
-        if evaluate
-        else {}
-    )
+    results = {}
+    if evaluate:
+        built = (nerves, paths) if nerves is not None else features.build(tested, tests, sites, plan.limits)
+        results = _evaluate(plan, tested, tests, sites, built)
+        del built
     keep = _outcome_filter(options, results, visits["visit_key"])
     context = _visit_context(plan, session, chunk, visits)
     context = context[context["visit_key"].isin(keep)]
@@ -458,6 +451,53 @@ def _build_chunk(plan: ExportPlan, session: Session, chunk: pd.DataFrame) -> pd.
     # A visit without a nerve test (segment level: without a motor segment) gives no row.
     plan.counts.visits_without_rows += len(set(context["visit_key"]) - set(frame["visit_key"]))
     return frame
+
+
+# The findings columns the tables read (:func:`_statuses`); a set's other columns are dropped per chunk.
+STATUS_SOURCE = ["visit_key", "nerve", "side", "modality", "segment", "item", "status", "value"]
+
+
+def _evaluate(
+    plan: ExportPlan,
+    visits: pd.DataFrame,
+    tests: pd.DataFrame,
+    sites: pd.DataFrame,
+    built: tuple[pd.DataFrame, pd.DataFrame],
+) -> dict[str, SetResult]:
+    """Every evaluated set over the chunk's visits, one set at a time, each kept only as far as the export
+    reads it: its outcomes, and the findings of the items shown as columns (nerve and segment levels, in
+    :data:`STATUS_SOURCE` columns only). A set's full findings are dropped before the next set runs, so the
+    chunk's peak memory holds the findings of one set rather than of all of them."""
+    shown = {s.criteria: s for s in plan.sets}
+    results = {}
+    with memo.shared():  # the sets still share their derived frames (motor nerve tests, best paths…)
+        for criteria_id in plan.evaluated:
+            result = engine.evaluate(
+                visits, tests, sites, plan.limits, [criteria_id], plan.settings, built=built
+            )[criteria_id]
+            results[criteria_id] = _reduced(plan.options.level, shown.get(criteria_id), result)
+    return results
+
+
+def _reduced(level: str, found: SetColumns | None, result: SetResult) -> SetResult:
+    """``result`` with only the findings rows and columns that the ``level`` table of a shown set needs."""
+    findings = result.findings
+    if found is not None and level in ("nerve", "segment"):
+        _require_known_items(found, findings)
+        wanted = [i.item for i in found.items if level == "nerve" or i.has_segment]
+        findings = findings.loc[findings["item"].isin(wanted), STATUS_SOURCE]
+    else:
+        findings = findings.loc[[], STATUS_SOURCE]
+    return dataclasses.replace(result, findings=findings.reset_index(drop=True))
+
+
+def _require_known_items(found: SetColumns, findings: pd.DataFrame) -> None:
+    unknown = set(findings["item"]) - {i.item for i in found.items}
+    if unknown:
+        raise TrackerError(
+            f"Criteria set {found.criteria} reported items {sorted(unknown)} that the export does not "
+            "know; this is a bug in ncs-tracker, please report it."
+        )
 
 
 def _outcome_filter(options: ExportOptions, results: dict[str, SetResult], visit_keys: pd.Series) -> set[int]:
@@ -525,14 +565,9 @@ def _statuses(
         if found.criteria not in results:
             continue
         wanted = {i.item: i.column for i in found.items if keep_items(i)}
+        _require_known_items(found, results[found.criteria].findings)
         findings = results[found.criteria].findings
         findings = findings[findings["item"].isin(list(wanted))]
-        unknown = set(results[found.criteria].findings["item"]) - {i.item for i in found.items}
-        if unknown:
-            raise TrackerError(
-                f"Criteria set {found.criteria} reported items {sorted(unknown)} that the export does not "
-                "know; this is a bug in ncs-tracker, please report it."
-            )
         parts.append(
             pd.DataFrame(
                 {
@@ -753,14 +788,19 @@ def _nerve_level(
     silent = sites[(sites["amplitude"] == 0) & sites["latency_ms"].isna()].groupby("test_key").size()
     frame["sites_no_response"] = frame["test_key"].map(silent).fillna(0)
     frame = _key_frame(plan, context).merge(frame, on="visit_key", how="inner")
-    statuses = _statuses(results, plan.sets, lambda item: True)
-    if statuses is not None and not statuses.empty:
+    # One set at a time (each set has columns of its own): the long status rows of one set are in memory at
+    # once, not those of every set.
+    for found in plan.sets:
+        statuses = _statuses(results, [found], lambda item: True)
+        if statuses is None or statuses.empty:
+            continue
         wide = statuses.pivot_table(
             index=NERVE_KEY, columns="column", values="status", aggfunc="first"
         ).reset_index()
         wide.columns.name = None
         frame = frame.merge(wide, on=NERVE_KEY, how="left")
-        frame = _with_item_values(frame, statuses, plan.sets)
+        frame = _with_item_values(frame, statuses, [found])
+        del statuses, wide
     return frame.sort_values(["position", "nerve", "side", "modality"], kind="stable")
 
 
@@ -772,11 +812,11 @@ def _with_item_values(frame: pd.DataFrame, statuses: pd.DataFrame, sets: list[Se
     if rows.empty:
         return frame
     rows = rows.drop_duplicates([*NERVE_KEY, "column"])
+    index = pd.MultiIndex.from_frame(frame[NERVE_KEY])
     for column, (value_column, segment_column) in targets.items():
         these = rows[rows["column"] == column].set_index(NERVE_KEY)
         if these.empty:
             continue
-        index = pd.MultiIndex.from_frame(frame[NERVE_KEY])
         frame[value_column] = these["value"].reindex(index).to_numpy(dtype=float)
         segments = these["segment"].reindex(index).to_numpy(dtype=object)
         frame[segment_column] = [s if isinstance(s, str) and s else None for s in segments]
@@ -798,8 +838,10 @@ def _segment_level(
     frame["response_absent"] = (frame["amplitude_mv"] == 0) & frame["latency_ms"].isna()
     frame["modality"] = "motor"
     frame = _key_frame(plan, context).merge(frame, on="visit_key", how="inner")
-    statuses = _statuses(results, plan.sets, lambda item: item.has_segment)
-    if statuses is not None and not statuses.empty:
+    for found in plan.sets:  # one set at a time, as at the nerve level
+        statuses = _statuses(results, [found], lambda item: item.has_segment)
+        if statuses is None or statuses.empty:
+            continue
         statuses = statuses[statuses["segment"].map(lambda s: isinstance(s, str) and s != "")]
         # A finding names either the segment (site below → site) or the path from the distal site.
         rows = frame[["visit_key", "nerve", "side", "modality", "site_order", "segment", "path"]]
