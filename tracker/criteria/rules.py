@@ -273,8 +273,22 @@ def met_sets(findings: pd.DataFrame, settings: Settings) -> pd.DataFrame:
     return table
 
 
+def count_per_visit(mask: pd.Series, keys: pd.Index) -> pd.Series:
+    """Per visit of ``keys``: how many rows of ``mask`` are true (0 for visits without rows). ``mask``:
+    booleans indexed by ``visit_key`` (and the nerve identity)."""
+    # Each row's position in ``keys`` is found once per index: a group-by for every count cost more than the
+    # rules.
+    position = memo.once(
+        "visit_positions",
+        (mask.index, keys),
+        lambda: keys.get_indexer(mask.index.get_level_values("visit_key")),
+    )
+    chosen = position[(position >= 0) & mask.to_numpy(dtype=bool)]
+    return pd.Series(np.bincount(chosen, minlength=len(keys)).astype(np.int64), index=keys, name=mask.name)
+
+
 def _per_visit(values: pd.Series, visits: pd.Index) -> pd.Series:
-    return values.groupby(level="visit_key").sum().reindex(visits, fill_value=0).astype(int)
+    return count_per_visit(values, visits)
 
 
 def count_nerves(sets: pd.DataFrame, item: str, visits: pd.Index) -> pd.Series:

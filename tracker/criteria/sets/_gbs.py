@@ -17,8 +17,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from tracker.criteria import memo, rules
 from tracker.criteria import parameters as p
+from tracker.criteria import rules
 from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, Settings
 from tracker.criteria.thresholds import COMPARATORS, ThresholdTable
 
@@ -464,17 +464,8 @@ def _met_by_item(findings: pd.DataFrame, n: int) -> dict[str, np.ndarray]:
 
 
 def per_visit(mask: pd.Series, keys: pd.Index) -> pd.Series:
-    """Count of true rows per visit (0 for visits without rows); ``mask``: booleans indexed by
-    (``visit_key``, identity)."""
-    # Each row's position in ``keys`` is found once per index (a group-by per count costs more than the rule).
-    position = memo.once(
-        "visit_positions",
-        (mask.index, keys),
-        lambda: keys.get_indexer(mask.index.get_level_values("visit_key")),
-    )
-    chosen = position[(position >= 0) & mask.to_numpy(dtype=bool)]
-    counts = np.bincount(chosen, minlength=len(keys)).astype(np.int64)
-    return pd.Series(counts, index=keys, name=mask.name)
+    """Count of true rows per visit (0 for visits without rows)."""
+    return rules.count_per_visit(mask, keys)
 
 
 def _items_met(state: pd.DataFrame, items: list[str]) -> pd.Series:

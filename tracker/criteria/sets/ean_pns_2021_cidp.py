@@ -332,7 +332,7 @@ def _column(table: pd.DataFrame, *items: str) -> pd.Series:
 
 def _count(mask: pd.Series, keys: pd.Index) -> pd.Series:
     """Per visit: number of nerves where ``mask`` holds."""
-    return mask.groupby(level="visit_key").sum().reindex(keys, fill_value=0).astype(int)
+    return rules.count_per_visit(mask, keys)
 
 
 def _one_plus_other(first: pd.Series, other: pd.Series, keys: pd.Index) -> pd.Series:
