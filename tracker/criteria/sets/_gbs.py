@@ -134,14 +134,18 @@ def switched(
         met_normal = rules.compare(value, threshold, comparator)
         met_low = rules.compare(value, low_threshold, low_comparator)
         switch_words = rule_text(table, switch_item)
-        names = np.where(use_low, _names(low_rows) + f" (distal CMAP {switch_words})", names)
         undecided = ~known & (met_normal != met_low) & ~np.isnan(value)
-        names = np.where(
-            known,
-            names,
-            names
-            + np.where(undecided, " (distal CMAP unknown)", " (distal CMAP unknown: both thresholds agree)"),
-        )
+
+        def limit_name(normal_name: str, low_name: str, is_low: bool, is_known: bool, unsure: bool) -> str:
+            name = low_name + f" (distal CMAP {switch_words})" if is_low else normal_name
+            if is_known:
+                return name
+            return name + (
+                " (distal CMAP unknown)" if unsure else " (distal CMAP unknown: both thresholds agree)"
+            )
+
+        # Written once per distinct combination (a cohort has few), not once per nerve test.
+        names = rules.per_distinct(limit_name, names, _names(low_rows), use_low, known, undecided)
         threshold = np.where(use_low, low_threshold, threshold)
         comparator = np.where(use_low, low_comparator, comparator)
         blocks.append((undecided, SWITCH_UNKNOWN))

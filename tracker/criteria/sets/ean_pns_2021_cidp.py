@@ -125,9 +125,13 @@ def distal_duration(nerves: pd.DataFrame, table: ThresholdTable, settings: Setti
     lff_text = np.full(len(lff), "", dtype=object)
     for hz in np.unique(lff[~np.isnan(lff)]):
         lff_text[lff == hz] = f"{hz:g}"
-    other_reason = "no cut-off for a " + lff_text + f" Hz low-frequency filter (this set has {filters} Hz)"
+    other_reason = rules.per_distinct(
+        lambda text: f"no cut-off for a {text} Hz low-frequency filter (this set has {filters} Hz)", lff_text
+    )
     comparator = rows["comparator"].fillna("gt").to_numpy(dtype=object)
-    names = np.where(np.isnan(threshold), "", "cut-off for LFF " + lff_text + " Hz").astype(object)
+    names = rules.per_distinct(
+        lambda missing, text: "" if missing else f"cut-off for LFF {text} Hz", np.isnan(threshold), lff_text
+    )
     return rules.item_findings(
         frame,
         criteria=ID,
