@@ -435,7 +435,7 @@ def evaluate(
         pd.Series(list(texts), index=keys, dtype=object),
         best,
         {"not_met": 0, "met": 1},
-        found[open_rows],
+        found.loc[open_rows, rules.OPEN_COLUMNS],
         keys,
         note=False,
     )

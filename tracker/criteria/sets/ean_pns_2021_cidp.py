@@ -306,13 +306,19 @@ def _sensory_cidp_parts(nerves: pd.DataFrame, settings: Settings) -> list[pd.Dat
 # ---------------------------------------------------------------- combination (vectorised over visits)
 
 
+NERVE_TABLE_COLUMNS = ["visit_key", "nerve", "side", "item", "status"]
+
+
 def _nerve_table(
     findings: pd.DataFrame, settings: Settings, keys: pd.Index, status: str | None = MET
 ) -> pd.DataFrame:
     """Boolean table indexed by (visit_key, nerve identity), one column per item: the item has ``status``
     there (any judged status — met or not met — when ``status`` is None)."""
     statuses = findings["status"].to_numpy(dtype=object)
-    chosen = findings[statuses == status] if status else findings[(statuses == MET) | (statuses == NOT_MET)]
+    # Only the columns the table needs: taking every column of the findings costs more than the rule.
+    chosen = findings.loc[
+        statuses == status if status else (statuses == MET) | (statuses == NOT_MET), NERVE_TABLE_COLUMNS
+    ]
     if chosen.empty:
         return pd.DataFrame(index=pd.MultiIndex.from_arrays([[], []], names=["visit_key", "identity"]))
     rows = pd.DataFrame(
@@ -424,7 +430,10 @@ def sensory_counts(findings: pd.DataFrame, settings: Settings, keys: pd.Index) -
     is met and the amplitude plus at least one latency measure (velocity or peak latency) were judged."""
     met = _nerve_table(findings, settings, keys, MET)
     judged_not_met = _nerve_table(
-        findings[findings["status"].to_numpy(dtype=object) == NOT_MET], settings, keys, None
+        findings.loc[findings["status"].to_numpy(dtype=object) == NOT_MET, NERVE_TABLE_COLUMNS],
+        settings,
+        keys,
+        None,
     )
     abnormal = _column(met, *SENSORY_ITEMS)
     judged = _column(judged_not_met, "snap_amplitude") & _column(
@@ -650,7 +659,12 @@ def evaluate(
                 higher = what_if.map(RANKS).to_numpy() > best.map(RANKS).to_numpy()
                 best[higher] = what_if[higher]
     candidates = pd.concat(
-        [motor[open_motor], sensory[open_sensory], cidp_sensory[open_cidp]], ignore_index=True
+        [
+            motor.loc[open_motor, rules.OPEN_COLUMNS],
+            sensory.loc[open_sensory, rules.OPEN_COLUMNS],
+            cidp_sensory.loc[open_cidp, rules.OPEN_COLUMNS],
+        ],
+        ignore_index=True,
     )
     outcome, rule, undecided = rules.settle(outcome, rule, best, RANKS, candidates, keys)
     # No phenotype recorded: say so instead of "typical:" (the typical-CIDP rules are applied).

@@ -170,7 +170,9 @@ def evaluate(
     # Undecided: would the motor findings not evaluable for want of data, if met, give a higher level?
     open_ = rules.wanting(motor)
     best = combine(rules.with_status(motor, open_, MET), keys, settings)[0] if open_.any() else outcome
-    outcome, rule, undecided = rules.settle(outcome, rule, best, RANKS, motor[open_], keys)
+    outcome, rule, undecided = rules.settle(
+        outcome, rule, best, RANKS, motor.loc[open_, rules.OPEN_COLUMNS], keys
+    )
 
     # Per visit: whether some sensory finding of the kind exists (plain arrays: the findings are many).
     item = sensory["item"].to_numpy(dtype=object)
