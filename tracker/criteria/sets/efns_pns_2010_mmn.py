@@ -420,8 +420,14 @@ def evaluate(
         rule[text.index] = text
     # Segments not evaluable for want of data, at a level above the visit's outcome, leave the outcome open.
     # Nerves without proximal stimulation (want of data) are as open as a segment that could not be judged.
-    unstimulated = motor[(motor["reason"].to_numpy(dtype=object) == NO_PROXIMAL) & rules.wanting(motor)]
-    wanting = pd.concat([segments[segments["wanting"]], unstimulated], ignore_index=True)
+    # Only the columns read below and by rules.settle (taking every column costs more than the rule).
+    unstimulated = motor.loc[
+        (motor["reason"].to_numpy(dtype=object) == NO_PROXIMAL) & rules.wanting(motor), rules.OPEN_COLUMNS
+    ]
+    wanting = pd.concat(
+        [segments.loc[segments["wanting"].to_numpy(dtype=bool), rules.OPEN_COLUMNS], unstimulated],
+        ignore_index=True,
+    )
     level_of_visit = outcome.reindex(wanting["visit_key"]).to_numpy(dtype=object)
     above = (level_of_visit == "not_met") | (
         (level_of_visit == "probable") & (wanting["item"] == "definite_cb").to_numpy()

@@ -100,7 +100,13 @@ def evaluate(
     findings = motor_findings(nerves, paths, settings)
     keys = pd.Index(visits["visit_key"].unique(), name="visit_key")
     state = g.nerve_state(findings, nerves, settings, FEATURES)
-    sets = rules.met_sets(findings[findings["item"].isin(FEATURES)], settings)
+    # Only the columns met_sets reads (taking every finding column costs more than the rule).
+    sets = rules.met_sets(
+        findings.loc[
+            findings["item"].isin(FEATURES).to_numpy(), ["visit_key", "nerve", "side", "item", "status"]
+        ],
+        settings,
+    )
 
     def count(item: str) -> pd.Series:
         return rules.count_nerves(sets, item, keys)
