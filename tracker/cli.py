@@ -225,8 +225,9 @@ def check_command(
     username = context.user  # the evaluations are saved and audited under the acting login
     with context.session_factory().begin() as session:
         # Unless asked otherwise, the clinic's settings (dashboard → Settings) apply here too.
-        if chosen is None and preferences.default_criteria(session):
-            chosen = [preferences.default_criteria(session)]
+        stored_default = preferences.default_criteria(session) if chosen is None else None
+        if stored_default:
+            chosen = [stored_default]
         # The stored criteria switches too; an option given here takes precedence.
         settings = preferences.criteria_settings(
             session,
@@ -847,7 +848,7 @@ def _serve(url: str, *, host: str, port: int, sign_in: bool = False) -> None:
     type=click.IntRange(min=1),
     metavar="N",
     help=(
-        "Visits read, evaluated and written at a time (default 2000): fewer use less memory, more run faster."
+        "Visits read, evaluated and written at a time (default 1000): fewer use less memory, more run faster."
     ),
 )
 # The criteria settings, as check takes them (unset: the database's settings, else the defaults).
