@@ -623,11 +623,14 @@ def _base_versions(session: Session, batch: MeasurementBatch) -> dict[tuple[str,
 def _existing_patients(session: Session, codes: list[str]) -> pd.DataFrame:
     found = []
     for part in _chunks(codes):
-        found += session.execute(
-            select(_PATIENTS.c.id, _PATIENTS.c.code, _PATIENTS.c.sex, _PATIENTS.c.birth_year).where(
-                _PATIENTS.c.code.in_(part)
-            )
-        ).all()
+        found += map(
+            tuple,
+            session.execute(
+                select(_PATIENTS.c.id, _PATIENTS.c.code, _PATIENTS.c.sex, _PATIENTS.c.birth_year).where(
+                    _PATIENTS.c.code.in_(part)
+                )
+            ),
+        )
     return pd.DataFrame(found, columns=["patient_id", "patient", "db_sex", "db_birth_year"])
 
 
@@ -638,16 +641,19 @@ def _stored_codes(session: Session, codes: list[str]) -> list[str]:
 def _existing_visits(session: Session, patient_ids: list[int]) -> pd.DataFrame:
     found = []
     for part in _chunks(patient_ids):
-        found += session.execute(
-            select(
-                _VISITS.c.id,
-                _VISITS.c.patient_id,
-                _VISITS.c.visit_date,
-                _VISITS.c.content_sha256,
-                _VISITS.c.status,
-                _VISITS.c.version,
-            ).where(_VISITS.c.patient_id.in_(part))
-        ).all()
+        found += map(
+            tuple,
+            session.execute(
+                select(
+                    _VISITS.c.id,
+                    _VISITS.c.patient_id,
+                    _VISITS.c.visit_date,
+                    _VISITS.c.content_sha256,
+                    _VISITS.c.status,
+                    _VISITS.c.version,
+                ).where(_VISITS.c.patient_id.in_(part))
+            ),
+        )
     return pd.DataFrame(
         found, columns=["visit_id", "patient_id", "visit_date", "db_fingerprint", "status", "version"]
     )
@@ -1117,11 +1123,14 @@ def _store_records(
     stored_rows = []
     for part in _chunks([int(i) for i in ids]):
         records = model.__table__
-        stored_rows += session.execute(
-            select(records.c.id, *[records.c[c] for c in key_db + value_columns]).where(
-                records.c.patient_id.in_(part)
-            )
-        ).all()
+        stored_rows += map(
+            tuple,
+            session.execute(
+                select(records.c.id, *[records.c[c] for c in key_db + value_columns]).where(
+                    records.c.patient_id.in_(part)
+                )
+            ),
+        )
     stored = pd.DataFrame(stored_rows, columns=["record_id"] + key_db + [f"db_{c}" for c in value_columns])
     merged = frame.merge(stored, on=key_db, how="left")
     is_stored = merged["record_id"].notna()
