@@ -58,9 +58,10 @@ DATE_MODES = ("shifted", "relative")
 # Visits per chunk: each chunk is loaded, evaluated and written before the next is read, so peak memory
 # depends on this number, not on the cohort. Every chunk pays a fixed cost (many small pandas steps per
 # criteria set), so very small chunks are slow. Measured on invented cohorts (tracker.synthetic), nerve
-# level CSV, every criteria set, peak RSS of a fresh process: 3,000 patients (16,632 visits) 2,000 → 30 s
-# and 399 MB, 1,000 → 27 s and 304 MB, 500 → 44 s and 253 MB; 500 patients (2,796 visits) 2,000 → 6.8 s and
-# 358 MB, 1,000 → 9.0 s and 307 MB.
+# level CSV, every criteria set, fresh process on a shared 2-core machine: 3,000 patients (16,632 visits)
+# peak RSS 392–399 MB with 2,000, 302–304 MB with 1,000, 253 MB with 500; CPU seconds of three alternating
+# pairs 29.9, 34.2, 35.3 (2,000) against 27.8, 43.3, 37.5 (1,000), and 44 s with 500 — 1,000 trades about a
+# tenth of the time for a quarter less memory.
 CHUNK_VISITS = 1000
 NERVE_KEY = ["visit_key", "nerve", "side", "modality"]
 
