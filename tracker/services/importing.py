@@ -969,8 +969,10 @@ def _swapped(day: dt.date) -> dt.date | None:
 def _date_slips(written: pd.DataFrame, file_visits: pd.DataFrame, stored: pd.DataFrame) -> Keyed:
     """A visit within 14 days of another visit of the same patient, whose day and month swapped would be a
     real date, may carry a date-entry slip: imported, with a warning naming both dates."""
-    candidates = [(row, _swapped(row.visit_date)) for row in written.itertuples()]
-    candidates = [(row, swapped) for row, swapped in candidates if swapped is not None]
+    days = written["visit_date"].tolist()
+    swapped_of = {day: _swapped(day) for day in set(days)}  # once per distinct date
+    could_slip = np.array([swapped_of[day] is not None for day in days], dtype=bool)
+    candidates = [(row, swapped_of[row.visit_date]) for row in written[could_slip].itertuples()]
     if not candidates:
         return []
     dates: dict[str, set[dt.date]] = {}
