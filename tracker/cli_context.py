@@ -29,6 +29,7 @@ class Context:
         self.stated_user = user or os.environ.get(ENV_USER) or None
         self.debug = debug
         self._engine: Engine | None = None
+        self._schema_checked = False
         self._actors: dict[str, Actor] = {}
 
     @property
@@ -89,14 +90,16 @@ class Context:
                     f"There is no database file at {missing_file}; run: ncs-tracker db upgrade"
                 )
             self._engine = make_engine(url)
-        if require_schema:
+        if require_schema and not self._schema_checked:  # once per command: the schema does not move under it
             require_current_schema(self._engine)
+            self._schema_checked = True
         return self._engine
 
     def close(self) -> None:
         if self._engine is not None:
             self._engine.dispose()
             self._engine = None
+            self._schema_checked = False
 
     def session_factory(self):
         from tracker.db.session import make_session_factory

@@ -63,12 +63,20 @@ def evaluate(
 
 
 def temperature_warnings(
-    visits: pd.DataFrame, tests: pd.DataFrame, sites: pd.DataFrame, limits: pd.DataFrame
+    visits: pd.DataFrame,
+    tests: pd.DataFrame,
+    sites: pd.DataFrame,
+    limits: pd.DataFrame,
+    *,
+    nerves: pd.DataFrame | None = None,
 ) -> pd.DataFrame:
     """Nerve tests of ``visits`` recorded from a limb colder than the guideline minimum (no correction is
     applied). Tests of other visits in ``tests`` are ignored."""
-    tests = tests[tests["visit_key"].isin(visits["visit_key"])]
-    nerves, _ = features.build(visits, tests, sites[sites["test_key"].isin(tests["test_key"])], limits)
+    if nerves is None:
+        tests = tests[tests["visit_key"].isin(visits["visit_key"])]
+        nerves, _ = features.build(visits, tests, sites[sites["test_key"].isin(tests["test_key"])], limits)
+    else:
+        nerves = nerves[nerves["visit_key"].isin(visits["visit_key"])]
     cold = nerves[nerves["cold"].fillna(False).astype(bool)]
     minimums = features.temperature_minimums()
 

@@ -13,6 +13,7 @@ A revision that rewrites a large table (0006 compresses the saved traces) report
 
 from __future__ import annotations
 
+import functools
 import sys
 from collections.abc import Callable
 from pathlib import Path
@@ -43,7 +44,9 @@ def alembic_config(url: str) -> Config:
     return config
 
 
+@functools.cache
 def head_revision() -> str:
+    """The newest revision of the installed migrations (read once per process: the scripts do not change)."""
     script = ScriptDirectory.from_config(alembic_config("sqlite://"))
     head = script.get_current_head()
     assert head is not None

@@ -10,7 +10,7 @@ import pandas as pd
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from tracker.criteria import engine
+from tracker.criteria import engine, features
 from tracker.criteria.model import SetResult, Settings
 from tracker.db.models import Visit
 from tracker.errors import NotFound, TrackerError
@@ -88,12 +88,14 @@ def check_visit(
             f"The visit of {code} on {chosen.visit_date.isoformat()} has no nerve tests to evaluate."
         )
     settings = settings or Settings()
-    results = engine.evaluate(visit_frame, tests, sites, limits, criteria_ids, settings)
+    built = features.build(visit_frame, tests, sites, limits)
+    results = engine.evaluate(visit_frame, tests, sites, limits, criteria_ids, settings, built=built)
     current = {cid: _only(result, chosen.id) for cid, result in results.items()}
     if username is not None:  # saved (and audited) for a known user; otherwise only computed
         chosen_frame = visit_frame[visit_frame["visit_key"] == chosen.id]
         changes = _save(session, chosen_frame, current, info, settings)
         _audit_saved(session, changes, chosen_frame, info, settings, username=username, one_visit=True)
+    outcome_changes = {cid: _outcome_change_at(visit_frame, r, chosen.id) for cid, r in results.items()}
     return VisitCheck(
         patient=patient.code,
         visit_date=chosen.visit_date,
@@ -102,16 +104,12 @@ def check_visit(
         limits=info,
         results=current,
         warnings=engine.temperature_warnings(
-            visit_frame[visit_frame["visit_key"] == chosen.id], tests, sites, limits
+            visit_frame[visit_frame["visit_key"] == chosen.id], tests, sites, limits, nerves=built[0]
         ),
         closest={cid: engine.closest_miss(r) for cid, r in current.items()},
         changes={cid: _changes_at(visit_frame, r, chosen.id) for cid, r in results.items()},
         previous_date=previous.visit_date if previous else None,
-        outcome_changes={
-            cid: _outcome_change_at(visit_frame, r, chosen.id)
-            for cid, r in results.items()
-            if _outcome_change_at(visit_frame, r, chosen.id)
-        },
+        outcome_changes={cid: change for cid, change in outcome_changes.items() if change},
     )
 
 
