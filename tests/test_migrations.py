@@ -2,14 +2,16 @@
 
 from __future__ import annotations
 
+import pytest
 from alembic.autogenerate import compare_metadata
 from alembic.runtime.migration import MigrationContext
 from sqlalchemy import func, inspect, select, text
 
 from conftest import DEMO, run_cli
-from tracker.db import migrate
+from tracker.db import migrate, schema_check
 from tracker.db.models import Base, NerveTest, OutcomeScore, Patient, StimulationSite, Treatment, Visit
 from tracker.db.session import is_sqlite, make_engine
+from tracker.errors import SchemaNotReady
 
 CORE = [Patient, Visit, NerveTest, StimulationSite, Treatment, OutcomeScore]
 
@@ -80,6 +82,20 @@ def test_commands_refuse_an_outdated_schema(empty_url, capsys):
     assert "outdated" in err and "ncs-tracker db upgrade" in err
     code, out, _ = run_cli(capsys, "--db", empty_url, "db", "upgrade")
     assert code == 0 and "current" in out
+
+
+def test_the_quick_schema_check_knows_the_newest_migration(empty_url):
+    # The start-up check answers "current" without Alembic from its own copy of the newest revision id.
+    assert schema_check.SCHEMA_HEAD == migrate.head_revision()
+    migrate.upgrade(empty_url, "0005")
+    engine = make_engine(empty_url)
+    try:
+        with pytest.raises(SchemaNotReady, match="outdated"):
+            schema_check.require_current_schema(engine)
+        migrate.upgrade(empty_url)
+        schema_check.require_current_schema(engine)  # current: no error
+    finally:
+        engine.dispose()
 
 
 def test_the_audit_chain_migration_seals_existing_rows_and_keeps_them(empty_url, capsys):

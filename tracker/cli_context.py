@@ -79,7 +79,7 @@ class Context:
         return url
 
     def engine(self, *, require_schema: bool = True) -> Engine:
-        from tracker.db.migrate import require_current_schema
+        from tracker.db.schema_check import require_current_schema
         from tracker.db.session import make_engine
 
         if self._engine is None:

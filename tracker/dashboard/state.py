@@ -22,7 +22,7 @@ from sqlalchemy import Engine
 from sqlalchemy.orm import Session
 
 from tracker.config import ENV_SIGN_IN, resolve_database_url
-from tracker.db.migrate import require_current_schema
+from tracker.db.schema_check import require_current_schema
 from tracker.db.session import make_engine, make_session_factory
 from tracker.errors import TrackerError
 from tracker.services.access import accounts
