@@ -140,7 +140,8 @@ def _allocate_ids(session: Session, table, count: int) -> list[int]:
 
 
 def _bulk_insert(session: Session, table, frame: pd.DataFrame, columns: list[str]) -> None:
-    """Insert many rows through the driver's own executemany (the bulk path: tens of thousands of sites).
+    """Insert many rows in bulk (tens of thousands of sites): ``COPY … FROM STDIN`` through psycopg 3 on
+    PostgreSQL, the driver's own executemany on SQLite.
 
     Dates and times are converted exactly as SQLAlchemy would (its bind processors: ISO text on SQLite),
     once per distinct value; numbers, text and booleans are passed to the driver as they are, missing
