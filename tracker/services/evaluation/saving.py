@@ -127,8 +127,9 @@ def _trace_encoder(session: Session) -> Callable[[Any], Any]:
 
 
 def _insert_rows(session: Session, rows: list[dict[str, Any]]) -> None:
-    """Insert evaluation rows through the driver's executemany; the traces come encoded for their column
-    (:func:`_trace_encoder`)."""
+    """Insert evaluation rows in bulk — ``COPY … FROM STDIN`` through psycopg 3 on PostgreSQL (its
+    executemany sends the rows one by one: 166,000 evaluations took 180 s against 70 s on SQLite), the
+    driver's executemany on SQLite; the traces come encoded for their column (:func:`_trace_encoder`)."""
     if not rows:
         return
     connection = session.connection()
@@ -144,7 +145,13 @@ def _insert_rows(session: Session, rows: list[dict[str, Any]]) -> None:
     values = [tuple(stamp(r[c]) if c == "computed_at" else r[c] for c in _EVALUATION_COLUMNS) for r in rows]
     cursor = connection.connection.driver_connection.cursor()
     try:
-        cursor.executemany(sql, values)
+        if dialect.name == "postgresql":
+            columns = ", ".join(quote(c) for c in _EVALUATION_COLUMNS)
+            with cursor.copy(f"COPY {quote(table.name)} ({columns}) FROM STDIN") as copy:
+                for row in values:
+                    copy.write_row(row)
+        else:
+            cursor.executemany(sql, values)
     finally:
         cursor.close()
 
