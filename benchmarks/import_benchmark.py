@@ -20,73 +20,25 @@ from __future__ import annotations
 
 import argparse
 import contextlib
-import csv
 import io
 import json
 import subprocess
 import sys
 import tempfile
 import time
-import uuid
 from pathlib import Path
 
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-PG_ADMIN = "postgresql+psycopg://postgres@127.0.0.1:5432/postgres"
-
-
-def _peak_mb() -> float:
-    """This process's peak resident memory (MB): VmHWM, reset at exec (ru_maxrss would include the parent)."""
-    with contextlib.suppress(OSError):
-        for line in Path("/proc/self/status").read_text().splitlines():
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024
-    import resource
-
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-
-
-def _flat_columns(path: Path) -> list[str]:
-    with open(path, encoding="utf-8", newline="") as handle:
-        return next(csv.reader(handle))
-
-
-def _floor_sqlite(database: str, files: list[str]) -> None:
-    import sqlite3
-
-    connection = sqlite3.connect(database)
-    connection.execute("PRAGMA journal_mode=WAL")
-    connection.execute("PRAGMA synchronous=NORMAL")
-    for number, name in enumerate(files):
-        columns = _flat_columns(Path(name))
-        connection.execute(f"CREATE TABLE flat{number} ({', '.join(columns)})")
-        with open(name, encoding="utf-8", newline="") as handle:
-            reader = csv.reader(handle)
-            next(reader)
-            marks = ", ".join("?" * len(columns))
-            connection.executemany(f"INSERT INTO flat{number} VALUES ({marks})", reader)
-    connection.commit()
-    connection.close()
-
-
-def _floor_copy(url: str, files: list[str]) -> None:
-    import psycopg
-    from sqlalchemy.engine import make_url
-
-    parsed = make_url(url)
-    with psycopg.connect(
-        host=parsed.host, port=parsed.port, user=parsed.username, dbname=parsed.database
-    ) as connection:
-        with connection.cursor() as cursor:
-            for number, name in enumerate(files):
-                columns = _flat_columns(Path(name))
-                cursor.execute(f"CREATE TABLE flat{number} ({', '.join(c + ' text' for c in columns)})")
-                with cursor.copy(f"COPY flat{number} FROM STDIN (FORMAT csv, HEADER true)") as copy:
-                    with open(name, "rb") as handle:
-                        while block := handle.read(1 << 20):
-                            copy.write(block)
-        connection.commit()
+# The tool benchmark's floors, peak-memory reading and throwaway databases (one copy of each).
+from benchmarks.tool_benchmark import (  # noqa: E402
+    PG_ADMIN,
+    Databases,
+    _floor_copy,
+    _floor_sqlite,
+    _peak_mb,
+)
 
 
 def _import(url: str, files: list[str]) -> None:
@@ -129,60 +81,6 @@ def run_child(kind: str, target: str, files: list[str]) -> dict:
     return json.loads(finished.stdout.strip().splitlines()[-1])
 
 
-class Databases:
-    """Throwaway databases of one backend, all removed by :meth:`drop_all`."""
-
-    def __init__(self, backend: str, folder: Path, pg_admin: str) -> None:
-        self.backend, self.folder, self.pg_admin = backend, folder, pg_admin
-        self.made: list[str] = []
-
-    def new(self, label: str, *, migrated: bool = True) -> str:
-        if self.backend == "sqlite":
-            url = f"sqlite:///{self.folder / f'{label}-{len(self.made)}.sqlite3'}"
-        else:
-            from sqlalchemy import create_engine, text
-            from sqlalchemy.engine import make_url
-
-            name = f"ncs_bench_{label}_{uuid.uuid4().hex[:8]}"
-            admin = create_engine(self.pg_admin, isolation_level="AUTOCOMMIT")
-            try:
-                with admin.connect() as connection:
-                    connection.execute(text(f'CREATE DATABASE "{name}"'))
-            finally:
-                admin.dispose()
-            url = make_url(self.pg_admin).set(database=name).render_as_string(hide_password=False)
-        self.made.append(url)
-        if migrated:
-            from tracker.db import migrate
-
-            migrate.upgrade(url)
-        return url
-
-    def drop(self, url: str) -> None:
-        if url not in self.made:
-            return
-        self.made.remove(url)
-        if self.backend == "sqlite":
-            path = Path(url.removeprefix("sqlite:///"))
-            for leftover in (path, Path(f"{path}-wal"), Path(f"{path}-shm")):
-                leftover.unlink(missing_ok=True)
-            return
-        from sqlalchemy import create_engine, text
-        from sqlalchemy.engine import make_url
-
-        admin = create_engine(self.pg_admin, isolation_level="AUTOCOMMIT")
-        try:
-            with admin.connect() as connection:
-                connection.execute(text(f'DROP DATABASE IF EXISTS "{make_url(url).database}" WITH (FORCE)'))
-        finally:
-            admin.dispose()
-
-    def drop_all(self) -> None:
-        for url in list(self.made):
-            with contextlib.suppress(Exception):
-                self.drop(url)
-
-
 def _runs(reports: list[dict]) -> str:
     return ", ".join(f"{r['seconds']:.2f}" for r in reports)
 
@@ -214,7 +112,7 @@ def main() -> None:
             size = sum(Path(f).stat().st_size for f in files[args.patients])
             imports, floors = [], []
             for _ in range(args.repeat):
-                url = databases.new("import")
+                url = databases.migrated("import")
                 imports.append(run_child("import", url, files[args.patients]))
                 databases.drop(url)
                 if args.backend == "sqlite":
@@ -223,7 +121,7 @@ def main() -> None:
                     for leftover in (floor_db, floor_db + "-wal", floor_db + "-shm"):
                         Path(leftover).unlink(missing_ok=True)
                 else:
-                    floor_url = databases.new("floor", migrated=False)
+                    floor_url = databases.new("floor")
                     floors.append(run_child("floor-copy", floor_url, files[args.patients]))
                     databases.drop(floor_url)
             best = min(imports, key=lambda r: r["seconds"])
@@ -238,7 +136,7 @@ def main() -> None:
             print(f"ratio import / floor: {best['seconds'] / floor:.2f} (target ≤ 3)")
             if args.memory:
                 count = args.patients * args.memory
-                url = databases.new("memory")
+                url = databases.migrated("memory")
                 large = run_child("import", url, files[count])
                 databases.drop(url)
                 print(

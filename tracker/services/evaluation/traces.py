@@ -200,7 +200,8 @@ _SOURCE_FIELDS = ("source", "limit_source")
 
 
 def compact_trace(payload: dict[str, Any]) -> dict[str, Any]:
-    """The trace as stored in ``evaluations.result``: the same content, each citation written once.
+    """Stored format 2 (written before format 3; still read, and made here for the tests that read it):
+    the same content as the trace, each citation written once.
 
     Citations are long and repeated on every finding (about half of a trace's bytes); the stored form keeps
     them in ``sources`` and refers to them by position. :func:`expand_trace` gives back the full shape.
