@@ -54,15 +54,20 @@ def _threshold(
     reference = rows["reference"].to_numpy(dtype=object)
     if limit is None:
         return rows, factor
-    scaled = np.where(np.isin(reference, ["uln", "lln"]), factor * limit, factor)
+    relative = memo.by_content(
+        ("of_limit", tuple(LIMIT_NAMES)), (reference,), lambda: np.isin(reference, list(LIMIT_NAMES))
+    )
+    scaled = np.where(relative, factor * limit, factor)
     return rows, scaled
 
 
-def _limit_name(reference: pd.Series, factor: pd.Series) -> np.ndarray:
-    return rules.per_distinct(
+def _limit_name(rows: pd.DataFrame) -> np.ndarray:
+    """``"110 % of ULN"`` (or ``"fixed"``) per row of a threshold lookup, built once per nerve."""
+    return rules.per_code(
         lambda r, f: f"{f * 100:g} % of {LIMIT_NAMES.get(r, r)}" if r in LIMIT_NAMES else "fixed",
-        reference,
-        factor,
+        rows["lookup"].to_numpy(),
+        rows["reference"],
+        rows["value"],
     )
 
 
@@ -100,7 +105,7 @@ def distal_latency(
         threshold=threshold,
         comparator=rows["comparator"].to_numpy(dtype=object),
         limit=limit,
-        limit_name=_limit_name(rows["reference"], rows["value"]),
+        limit_name=_limit_name(rows),
         source=rows["source"],
         source_status=rows["status"],
         **limit_provenance(frame, "uln_distal_latency_ms"),
@@ -137,7 +142,7 @@ def velocity(
         threshold=threshold,
         comparator=rows["comparator"].to_numpy(dtype=object),
         limit=limit,
-        limit_name=_limit_name(rows["reference"], rows["value"]),
+        limit_name=_limit_name(rows),
         source=rows["source"],
         source_status=rows["status"],
         segment=frame[f"{column}_segment"].to_numpy(dtype=object),
@@ -226,7 +231,7 @@ def f_absent(nerves, table: ThresholdTable, item: str, settings: Settings, *, cr
         threshold=threshold,
         comparator=rows["comparator"].to_numpy(dtype=object),
         limit=limit,
-        limit_name=_limit_name(rows["reference"], rows["value"]),
+        limit_name=_limit_name(rows),
         source=rows["source"],
         source_status=rows["status"],
         requirement=absent,

@@ -37,7 +37,10 @@ def _uniform(comparator: str | np.ndarray, shape: tuple[int, ...]):
     comparators = np.broadcast_to(comparators, shape)
     if comparators.size:
         head = comparators.flat[0]
-        if isinstance(head, str) and bool((comparators == head).all()):
+        # The threshold lookups share their comparator columns within an evaluation: scanned once each.
+        if isinstance(head, str) and memo.by_content(
+            "uniform", (comparators,), lambda: bool((comparators == head).all())
+        ):
             return head
     return comparators
 
@@ -74,7 +77,7 @@ def margin(values: np.ndarray, thresholds: np.ndarray, comparator: str | np.ndar
     v, t = np.asarray(values, dtype=float), np.asarray(thresholds, dtype=float)
     comparators = _uniform(comparator, v.shape)
     if isinstance(comparators, np.ndarray):
-        upward = np.isin(comparators, ["ge", "gt"])
+        upward = memo.by_content("upward", (comparators,), lambda: np.isin(comparators, ["ge", "gt"]))
         return quantise_array(np.where(upward, t - v, v - t))
     return quantise_array(t - v if comparators in ("ge", "gt") else v - t)
 
@@ -235,6 +238,27 @@ def per_distinct(function, *columns, shared: bool = False) -> np.ndarray:
     for position, row in enumerate(first):
         results[position] = function(*(a[row] for a in arrays))  # one by one: a result may be a tuple
     return results[combined]
+
+
+def per_code(function, codes: np.ndarray, *columns) -> np.ndarray:
+    """``function(*values)`` for every row of ``columns``, called once per code of ``codes`` and spread over
+    the rows (an object array), as :func:`per_distinct` but without grouping the values: the caller knows
+    that rows with one code hold the same values in every column (the ``lookup`` codes of
+    :meth:`tracker.criteria.thresholds.ThresholdTable.per_nerve`)."""
+    codes = np.asarray(codes, dtype=np.int64)
+    arrays = [c.to_numpy() if isinstance(c, pd.Series) else np.asarray(c) for c in columns]
+    if not len(codes):
+        return np.empty(0, dtype=object)
+    count = int(codes.max()) + 1
+    # Codes counting up in order of first appearance: a code first appears where the running maximum grows.
+    first = np.flatnonzero(np.r_[True, codes[1:] > np.maximum.accumulate(codes)[:-1]])
+    if len(first) != count or codes[0] != 0:  # any other order (a subset of the rows): find them by sorting
+        present, first = np.unique(codes, return_index=True)
+        codes = np.searchsorted(present, codes)
+    results = np.empty(len(first), dtype=object)
+    for position, row in enumerate(first):
+        results[position] = function(*(a[row] for a in arrays))  # one by one: a result may be a tuple
+    return results[codes]
 
 
 def common_blocks(nerves: pd.DataFrame, settings: Settings) -> list[tuple[np.ndarray, str]]:

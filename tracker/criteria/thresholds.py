@@ -70,7 +70,9 @@ class ThresholdTable:
         """Vectorised lookup: for each nerve (and filter setting), the matching row's value and source.
 
         Returns a frame aligned with ``nerves`` with ``value`` (NaN where no row applies), ``source``,
-        ``status``, ``description``, ``comparator``, ``reference``. A nerve-specific row wins over ``*``;
+        ``status``, ``description``, ``comparator``, ``reference``, and ``lookup``: the code of the row's
+        (nerve, filter) pair, counting up in order of first appearance — rows with one code share every other
+        column (:func:`tracker.criteria.rules.per_code`). A nerve-specific row wins over ``*``;
         a row with ``lff_hz`` applies only to that filter setting.
         """
         rows = [r for r in self.rows if r.item == item]
@@ -89,13 +91,20 @@ class ThresholdTable:
         decided = [self._decide(rows, names[row], filters[row]) for row in first]
         if not len(decided):
             decided = [self._decide(rows, None, np.nan)]
-        columns = {"value": np.array([d[0] for d in decided], dtype=float)[inverse]}
+        columns = {
+            "value": np.array([d[0] for d in decided], dtype=float)[inverse],
+            "lookup": np.asarray(inverse, dtype=np.int64),
+        }
         for position, column in enumerate(
             ("source", "status", "description", "comparator", "reference"), start=1
         ):
-            column_values = np.empty(len(decided), dtype=object)
-            column_values[:] = [d[position] for d in decided]
-            columns[column] = pd.Series(column_values[inverse], index=nerves.index, dtype=object, copy=False)
+            words = tuple(d[position] for d in decided)
+            columns[column] = pd.Series(
+                memo.by_content(("spread", words), (inverse,), lambda: _spread(words, inverse)),
+                index=nerves.index,
+                dtype=object,
+                copy=False,
+            )
         return pd.DataFrame(columns, index=nerves.index, copy=False)
 
     @staticmethod
@@ -114,6 +123,16 @@ class ThresholdTable:
                 # An excluded nerve has no threshold, but the trace still cites the rule that excludes it.
                 found = (np.nan, *found[1:])
         return found
+
+
+def _spread(words: tuple, inverse: np.ndarray) -> np.ndarray:
+    """``words[code]`` for every code of ``inverse`` (an object array).
+
+    Many items of a set give every nerve the same comparator, reference or status: within one evaluation the
+    spread array is then built once per nerve column and shared read-only (``memo.by_content``)."""
+    column_values = np.empty(len(words), dtype=object)
+    column_values[:] = words
+    return column_values[inverse]
 
 
 @cache

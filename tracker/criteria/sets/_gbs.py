@@ -17,8 +17,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from tracker.criteria import memo, rules
 from tracker.criteria import parameters as p
-from tracker.criteria import rules
 from tracker.criteria.model import MET, NOT_APPLICABLE, NOT_EVALUABLE, NOT_MET, Settings
 from tracker.criteria.thresholds import COMPARATORS, ThresholdTable
 
@@ -78,13 +78,17 @@ def _scaled(
     if limit is None:
         return rows, factor
     reference = rows["reference"].to_numpy(dtype=object)
-    return rows, np.where(np.isin(reference, list(LIMIT_NAMES)), factor * limit, factor)
+    relative = memo.by_content(
+        ("of_limit", tuple(LIMIT_NAMES)), (reference,), lambda: np.isin(reference, list(LIMIT_NAMES))
+    )
+    return rows, np.where(relative, factor * limit, factor)
 
 
 def _names(rows: pd.DataFrame) -> np.ndarray:
-    """``"110 % of ULN"`` per row, built once per distinct (reference, factor) pair."""
-    return rules.per_distinct(
+    """``"110 % of ULN"`` per row of a threshold lookup, built once per nerve."""
+    return rules.per_code(
         lambda ref, value: "" if pd.isna(ref) or np.isnan(value) else limit_text(ref, value),
+        rows["lookup"].to_numpy(),
         rows["reference"].to_numpy(dtype=object),
         rows["value"].to_numpy(dtype=float),
     )
