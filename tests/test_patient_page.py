@@ -92,3 +92,36 @@ def test_by_diagnosis_judges_each_patient_by_the_set_of_its_diagnosis(demo_url):
                 assert row["latest_outcome"] == own.loc[code, "latest_outcome"]
     finally:
         engine.dispose()
+
+
+def test_patient_without_visits_and_outcome_pages(demo_url):
+    """A patient with no visit yet is listed as "no visits" (0 visits, no dates) and counted, as in the whole
+    list; with an outcome chosen, pages of one row join up to that outcome's rows (invented patient)."""
+    from tracker.db.models import Patient
+
+    engine = make_engine(demo_url)
+    try:
+        with make_session_factory(engine).begin() as session:
+            session.add(Patient(code="DEMO-00", diagnosis="mmn"))
+        with make_session_factory(engine)() as session:
+            whole = patient_list(session, criteria="efns-pns-2010-mmn")
+            first = patient_page(session, criteria=None, page_rows=1)
+            assert first.total == len(whole) == 7 and "no visits" in first.outcomes
+            assert list(first.rows["patient"]) == ["DEMO-00"]
+            row = first.rows.iloc[0]
+            assert row["visits"] == 0 and row["latest_outcome"] == "no visits"
+            assert row["first_visit"] is None and row["last_visit"] is None
+            assert row["latest_criteria"] == "efns-pns-2010-mmn"  # the patient's own diagnosis, no visit's
+            for outcome in first.outcomes:
+                wanted = whole[whole["latest_outcome"] == outcome] if outcome == "no visits" else None
+                chosen = patient_page(session, criteria=None, outcome=outcome, page_rows=50)
+                rows = []
+                for page in range(1, chosen.total + 1):
+                    rows += _text(
+                        patient_page(session, criteria=None, outcome=outcome, page=page, page_rows=1).rows
+                    )
+                assert rows == _text(chosen.rows) and len(rows) == chosen.total
+                if wanted is not None:
+                    assert _text(chosen.rows) == _text(wanted)
+    finally:
+        engine.dispose()

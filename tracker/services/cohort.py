@@ -8,10 +8,11 @@ from __future__ import annotations
 
 import datetime as dt
 from dataclasses import dataclass
+from typing import Any
 
 import pandas as pd
-from sqlalchemy import case, func, literal, select
-from sqlalchemy.orm import Session
+from sqlalchemy import ColumnElement, Select, case, func, literal, select, true
+from sqlalchemy.orm import Session, aliased
 
 from tracker.db.models import Evaluation, Patient, Treatment, Visit
 from tracker.services.evaluation import DEFAULT_CRITERIA, FALLBACK_CRITERIA
@@ -125,87 +126,76 @@ def patient_page(
     today: dt.date | None = None,
 ) -> PatientPage:
     """The patient list as :func:`patient_list`, but filtered, counted and cut into pages by the database, so
-    that a page costs the same for 10 or 5,000 patients (the rows of one page only are read into Python).
+    that a page costs about the same for 10 or 5,000 patients (the rows of one page only are read into
+    Python; the counts per latest outcome are one aggregate over index look-ups).
 
     ``criteria`` None: each patient's latest visit is judged by the set its diagnosis maps to (the visit's
     diagnosis, else the patient's), as ``check`` and ``evaluate`` choose it; the rows then name the set in
     ``latest_criteria``."""
     limit_set_id = resolve(session, limits_name)[0].id
-    # Correlated subqueries, each answered from an index (visits by patient and date, evaluations by visit):
-    # the database touches one patient's rows per patient, and Python only the rows of one page.
-    mine = Visit.patient_id == Patient.id
-    visits = select(func.count(Visit.id)).where(mine).scalar_subquery()
-    first = select(func.min(Visit.visit_date)).where(mine).scalar_subquery()
-    last = select(func.max(Visit.visit_date)).where(mine).scalar_subquery()
-    latest_visit = (
-        select(Visit.id)
-        .where(mine)
-        .order_by(Visit.visit_date.desc())
-        .limit(1)
-        .correlate(Patient)
-        .scalar_subquery()
-    )
+    latest_from, latest, on_latest = _latest_visit(session)
     if criteria is None:
-        latest_diagnosis = (
-            select(Visit.diagnosis)
-            .where(mine)
-            .order_by(Visit.visit_date.desc())
-            .limit(1)
-            .correlate(Patient)
-            .scalar_subquery()
-        )
-        diagnosis_used = func.coalesce(latest_diagnosis, Patient.diagnosis)
+        # A simple CASE: the diagnosis is worked out once per patient, not once per WHEN.
         chosen = case(
-            *[(diagnosis_used == d, literal(c)) for d, c in DEFAULT_CRITERIA.items()],
+            DEFAULT_CRITERIA,
+            value=func.coalesce(latest.diagnosis, Patient.diagnosis),
             else_=literal(FALLBACK_CRITERIA),
         )
     else:
         chosen = literal(criteria)
-    saved = (
-        select(Evaluation.outcome)
-        .where(
-            Evaluation.visit_id == latest_visit,
-            Evaluation.criteria_id == chosen,
-            Evaluation.limit_set_id == limit_set_id,
-        )
-        .limit(1)
-        .scalar_subquery()
-    )
     word = case(
-        (visits == 0, literal("no visits")), else_=func.coalesce(saved, literal(NOT_EVALUATED))
-    ).label("latest_outcome")
-    query = select(
+        (latest.id.is_(None), literal("no visits")),
+        else_=func.coalesce(Evaluation.outcome, literal(NOT_EVALUATED)),
+    )
+    filters = []
+    if search.strip():
+        filters.append(func.lower(Patient.code).contains(search.strip().lower(), autoescape=True))
+    if diagnosis:
+        filters.append(Patient.diagnosis == diagnosis)
+
+    def joined(*columns: Any) -> Select:
+        return (
+            select(*columns)
+            .select_from(Patient)
+            .outerjoin(latest_from, on_latest)
+            .outerjoin(
+                Evaluation,
+                (Evaluation.visit_id == latest.id)
+                & (Evaluation.criteria_id == chosen)
+                & (Evaluation.limit_set_id == limit_set_id),
+            )
+            .where(*filters)
+        )
+
+    # One pass gives both the outcomes present (for the filter) and the counts (for the page count). The
+    # only step that reads every patient: per patient one index step to the latest visit, its row, and its
+    # evaluation by the (visit, criteria, limits) unique index; nothing per patient reaches Python.
+    counts = dict(session.execute(joined(word, func.count()).group_by(word)).all())
+    outcomes = sorted(counts)
+    total = counts.get(outcome, 0) if outcome else sum(counts.values())
+    mine = Visit.patient_id == Patient.id
+    query = joined(
         Patient.id,
         Patient.code,
         Patient.diagnosis,
         Patient.phenotype,
-        visits.label("visits"),
-        first.label("first_visit"),
-        last.label("last_visit"),
+        select(func.count(Visit.id)).where(mine).correlate(Patient).scalar_subquery(),
+        select(func.min(Visit.visit_date)).where(mine).correlate(Patient).scalar_subquery(),
+        latest.visit_date,
         word,
-        chosen.label("latest_criteria"),
+        chosen,
     )
-    if search.strip():
-        query = query.where(func.lower(Patient.code).contains(search.strip().lower(), autoescape=True))
-    if diagnosis:
-        query = query.where(Patient.diagnosis == diagnosis)
-    filtered = query.subquery()
-    # One pass gives both the outcomes present (for the filter) and the counts (for the page count).
-    counts = dict(
-        session.execute(
-            select(filtered.c.latest_outcome, func.count()).group_by(filtered.c.latest_outcome)
-        ).all()
-    )
-    outcomes = sorted(counts)
+    offset = max(0, page - 1) * page_rows
     if outcome:
-        filtered_rows = select(filtered).where(filtered.c.latest_outcome == outcome)
-        total = counts.get(outcome, 0)
-    else:
-        filtered_rows = select(filtered)
-        total = sum(counts.values())
-    rows = session.execute(
-        filtered_rows.order_by(filtered.c.code).limit(page_rows).offset(max(0, page - 1) * page_rows)
-    ).all()
+        query = query.where(word == outcome)
+    else:  # the page's patients first (code index), so only their rows are joined whatever the plan
+        query = query.where(
+            Patient.id.in_(
+                select(Patient.id).where(*filters).order_by(Patient.code).limit(page_rows).offset(offset)
+            )
+        )
+        offset = 0
+    rows = session.execute(query.order_by(Patient.code).limit(page_rows).offset(offset)).all()
     frame = pd.DataFrame(
         [tuple(r) for r in rows],
         columns=[
@@ -228,6 +218,26 @@ def patient_page(
     frame["current_treatment"] = _current_treatments(session, frame, today or dt.date.today())
     return PatientPage(
         frame[[*PATIENT_COLUMNS, "latest_criteria"]].reset_index(drop=True), int(total), outcomes
+    )
+
+
+def _latest_visit(session: Session) -> tuple[Any, Any, ColumnElement[bool]]:
+    """Each patient's latest visit: what to left-join to ``Patient``, its columns (``id``, ``diagnosis``,
+    ``visit_date``) and the join condition; one backward step in the (patient, date) index per patient.
+
+    PostgreSQL: a LATERAL subquery, which the planner runs as that index step per patient (a join on a
+    correlated subquery made it hash every visit and run the subquery twice per patient). SQLite, which has
+    no LATERAL: the visit row by primary key, found by the same index step in a correlated subquery."""
+    newest_first = select(Visit.id, Visit.diagnosis, Visit.visit_date).where(Visit.patient_id == Patient.id)
+    newest_first = newest_first.order_by(Visit.visit_date.desc()).limit(1)
+    if session.get_bind().dialect.name == "postgresql":
+        latest = newest_first.lateral("latest_visit")
+        return latest, latest.c, true()
+    latest = aliased(Visit, name="latest_visit")
+    return (
+        latest,
+        latest,
+        latest.id == newest_first.with_only_columns(Visit.id).correlate(Patient).scalar_subquery(),
     )
 
 
