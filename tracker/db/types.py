@@ -68,8 +68,15 @@ def _primed_compressor(fmt: int) -> Any:
 
 def encode_json(value: Any) -> bytes:
     """``value`` as stored by :class:`CompressedJSON`: the format byte, then the zlib stream."""
+    return compress_canonical(canonical_json(value))
+
+
+def compress_canonical(text: bytes) -> bytes:
+    """The stored bytes of a document given as its :func:`canonical_json` (what :func:`encode_json` does
+    after encoding), so that a caller can compress apart from encoding: zlib lets go of the GIL while it
+    compresses, and another thread can compress while this one encodes."""
     compressor = _primed_compressor(CURRENT_FORMAT).copy()
-    return bytes((CURRENT_FORMAT,)) + compressor.compress(canonical_json(value)) + compressor.flush()
+    return bytes((CURRENT_FORMAT,)) + compressor.compress(text) + compressor.flush()
 
 
 def decode_json(raw: bytes | bytearray | memoryview | str) -> Any:
