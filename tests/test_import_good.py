@@ -288,3 +288,27 @@ def test_phenotype_comes_from_the_same_visit_as_the_diagnosis(db_url, sessions, 
     with sessions() as session:
         patient = session.scalar(select(Patient).where(Patient.code == "T-8"))
         assert (patient.diagnosis, patient.phenotype) == ("other", None)
+
+
+def test_text_with_backslashes_and_missing_values_is_stored_as_written(db_url, sessions, capsys, tmp_path):
+    """Nerve tests and sites go to PostgreSQL as COPY text built column by column: a backslash in a word
+    is escaped, not read as an escape, and missing values stay NULL (SQLite: the same rows)."""
+    rows = _demo_rows()
+    first = (rows[0]["patient"], rows[0]["visit_date"])
+    visit_rows = [r for r in rows if (r["patient"], r["visit_date"]) == first]
+    for row in visit_rows:
+        row["recording_site"] = "apb\\adm\\N"
+        row["temperature_c"] = ""
+    path = tmp_path / "measurements.csv"
+    with open(path, "w", encoding="utf-8", newline="") as handle:
+        writer = csv.DictWriter(handle, fieldnames=list(visit_rows[0]))
+        writer.writeheader()
+        writer.writerows(visit_rows)
+    code, _, err = run_cli(capsys, "--db", db_url, "import", str(path))
+    assert code == 0, err
+    with sessions() as session:
+        tests = session.execute(select(NerveTest.recording_site, NerveTest.temperature_c)).all()
+        sites = session.scalar(select(func.count()).select_from(StimulationSite))
+    assert tests and {t.recording_site for t in tests} == {"apb\\adm\\n"}  # recording sites are lower-cased
+    assert {t.temperature_c for t in tests} == {None}
+    assert sites == len(visit_rows)

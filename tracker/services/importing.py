@@ -16,12 +16,18 @@ version (its ``visit_version`` column, else the version this import first read) 
 from __future__ import annotations
 
 import datetime as dt
+import functools
+import queue
+import threading
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 from sqlalchemy import Date, DateTime, delete, func, insert, select, text, update
 from sqlalchemy.orm import Session
 
@@ -151,6 +157,18 @@ def _bulk_insert(session: Session, table, frame: pd.DataFrame, columns: list[str
         return
     connection = session.connection()
     dialect = connection.dialect
+    if dialect.name == "postgresql":
+        payload = _copy_text(frame, columns)
+        if payload is not None:
+            quote = dialect.identifier_preparer.quote
+            copy_sql = f"COPY {quote(table.name)} ({', '.join(quote(c) for c in columns)}) FROM STDIN"
+            cursor = connection.connection.driver_connection.cursor()
+            try:
+                with cursor.copy(copy_sql) as copy:
+                    copy.write(payload)
+            finally:
+                cursor.close()
+            return
     marker = "?" if dialect.paramstyle == "qmark" else "%s"
     quote = dialect.identifier_preparer.quote
     sql = (
@@ -185,6 +203,49 @@ def _bulk_insert(session: Session, table, frame: pd.DataFrame, columns: list[str
             cursor.executemany(sql, zip(*cells_by_column, strict=True))
     finally:
         cursor.close()
+
+
+# Arrow types whose text (Arrow's cast to string) PostgreSQL reads back as the same value: numbers in their
+# shortest exact form, booleans as true/false, text as it is (escaped below).
+_COPY_TEXT_TYPES = (
+    pa.types.is_floating,
+    pa.types.is_integer,
+    pa.types.is_boolean,
+    pa.types.is_string,
+    pa.types.is_null,  # a column with no value stated
+)
+_COPY_ESCAPES = (("\\", "\\\\"), ("\t", "\\t"), ("\n", "\\n"), ("\r", "\\r"))
+
+
+def _copy_text(frame: pd.DataFrame, columns: list[str]) -> bytes | None:
+    """The rows in ``COPY … FROM STDIN`` text format, built column by column by Arrow (instead of one
+    ``write_row`` call per row, which cost more than everything else of the write); ``None`` when a column
+    holds values of another kind (dates, times: they go row by row, formatted by psycopg).
+
+    Missing values (NaN, None) become ``\\N`` (NULL); text is escaped as the format requires.
+    """
+    texts = []
+    for column in columns:
+        try:
+            values = pa.Array.from_pandas(frame[column])  # NaN and None are nulls
+        except (pa.ArrowInvalid, pa.ArrowTypeError):
+            return None
+        if isinstance(values, pa.ChunkedArray):
+            values = values.combine_chunks()
+        if pa.types.is_large_string(values.type):
+            values = values.cast(pa.string())
+        if not any(is_type(values.type) for is_type in _COPY_TEXT_TYPES):
+            return None
+        text_values = pc.cast(values, pa.large_string())
+        if pa.types.is_string(values.type):
+            for plain, escaped in _COPY_ESCAPES:
+                text_values = pc.replace_substring(text_values, plain, escaped)
+        texts.append(pc.fill_null(text_values, "\\N"))
+    lines = pc.binary_join_element_wise(*texts, pa.scalar("\t", pa.large_string()))
+    ending = pa.array([""] * len(frame), pa.large_string())  # joined with "\n": a newline after each row
+    lines = pc.binary_join_element_wise(lines, ending, pa.scalar("\n", pa.large_string()))
+    offsets = np.frombuffer(lines.buffers()[1], dtype=np.int64)[lines.offset : lines.offset + len(lines) + 1]
+    return lines.buffers()[2].to_pybytes()[int(offsets[0]) : int(offsets[-1])]
 
 
 def import_file(
@@ -312,23 +373,16 @@ def _check_and_store(
     allow_unusual: bool,
     today: dt.date | None,
     forced: list[str],
+    checked: _CheckedMeasurements | None = None,
 ) -> ImportReport:
-    """Validate a table and store it (nothing of the import's own audit event); raises on any problem."""
+    """Validate a table and store it (nothing of the import's own audit event); raises on any problem.
+
+    ``checked``: the measurements of ``table`` already validated (by :func:`_check_measurements`).
+    """
     if table.kind == "measurements":
-        cells, stated, version_problems = _stated_versions(table.cells)
-        try:
-            batch = validate_measurements(cells, allow_unusual=allow_unusual, today=today)
-        except InputRejected as error:
-            if not version_problems:
-                raise
-            merged = sorted(error.problems + version_problems, key=lambda p: p.row or 0)
-            raise InputRejected(error.summary, merged) from None
-        file_versions, disagreements = _versions_by_visit(batch, stated)
-        if version_problems or disagreements:
-            raise InputRejected(
-                "The measurements file was refused",
-                sorted(version_problems + disagreements, key=lambda p: p.row or 0),
-            )
+        if checked is None:
+            checked = _check_measurements(table.cells, allow_unusual=allow_unusual, today=today)
+        batch, file_versions = checked
         report = _store_measurements(
             session,
             batch,
@@ -359,6 +413,31 @@ def _check_and_store(
             session, frame, kind="scores", username=username, dry_run=dry_run, replace=replace
         )
     return report
+
+
+_CheckedMeasurements = tuple[MeasurementBatch, pd.DataFrame]
+
+
+def _check_measurements(
+    cells: pd.DataFrame, *, allow_unusual: bool, today: dt.date | None
+) -> _CheckedMeasurements:
+    """Validate measurement cells: the batch and the ``visit_version`` stated per visit. Reads no database
+    (so that a block can be checked while the previous one is written); raises on any problem."""
+    cells, stated, version_problems = _stated_versions(cells)
+    try:
+        batch = validate_measurements(cells, allow_unusual=allow_unusual, today=today)
+    except InputRejected as error:
+        if not version_problems:
+            raise
+        merged = sorted(error.problems + version_problems, key=lambda p: p.row or 0)
+        raise InputRejected(error.summary, merged) from None
+    file_versions, disagreements = _versions_by_visit(batch, stated)
+    if version_problems or disagreements:
+        raise InputRejected(
+            "The measurements file was refused",
+            sorted(version_problems + disagreements, key=lambda p: p.row or 0),
+        )
+    return batch, file_versions
 
 
 def _record_import(
@@ -402,6 +481,71 @@ class _ReadWhole(Exception):
     """A streamed file turned out to need the whole-file import (see :func:`_import_stream`)."""
 
 
+class _Ahead:
+    """The blocks of a stream, each read (and, with ``check``, validated) in a thread of its own one block
+    ahead of the caller, which meanwhile writes the previous block: the database's work on a block (SQLite's
+    B-tree inserts, PostgreSQL's COPY on the server) overlaps Python's on the next, as both drivers release
+    the GIL while they wait. ``check`` must not touch the database. Iterating gives ``(cells, checked)``;
+    an exception of the thread (a block's :class:`InputRejected`) is raised where its block would be
+    given. :meth:`close` stops the thread (the stream is left unread) and waits for it.
+    """
+
+    _END = object()
+
+    def __init__(self, blocks: Iterator[pd.DataFrame], check: Callable[[pd.DataFrame], Any] | None) -> None:
+        self._blocks, self._check = blocks, check
+        self._queue: queue.Queue = queue.Queue(maxsize=1)
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, name="import-read-ahead", daemon=True)
+        self._thread.start()
+
+    def _put(self, item: Any) -> bool:
+        while not self._stop.is_set():
+            try:
+                self._queue.put(item, timeout=0.1)
+                return True
+            except queue.Full:
+                continue
+        return False
+
+    def _run(self) -> None:
+        try:
+            for cells in self._blocks:
+                checked = self._check(cells) if self._check is not None else None
+                if not self._put((cells, checked, None)):
+                    return
+        except BaseException as error:  # given to the caller with the block it belongs to
+            self._put((None, None, error))
+            return
+        finally:
+            if self._stop.is_set():
+                close = getattr(self._blocks, "close", None)
+                if close is not None:
+                    close()
+        self._put(self._END)
+
+    def __iter__(self) -> Iterator[tuple[pd.DataFrame, Any]]:
+        while True:
+            item = self._queue.get()
+            if item is self._END:
+                self._thread.join()  # the stream's last state (unusual, sha256) is final
+                return
+            cells, checked, error = item
+            if error is not None:
+                self._thread.join()
+                raise error
+            yield cells, checked
+
+    def close(self) -> None:
+        self._stop.set()
+        while self._thread.is_alive():
+            try:
+                self._queue.get(timeout=0.1)
+            except queue.Empty:
+                pass
+        self._thread.join()
+
+
 def _import_stream(
     session: Session,
     stream: TableStream,
@@ -419,8 +563,12 @@ def _import_stream(
     savepoint = None if dry_run else session.begin_nested()
     total = ImportReport(kind=stream.kind, rows=0, dry_run=dry_run)
     keyed: list[tuple[tuple, Problem]] = []
+    check = None
+    if stream.kind == "measurements":
+        check = functools.partial(_check_measurements, allow_unusual=allow_unusual, today=today)
+    ahead = _Ahead(stream.blocks(), check)
     try:
-        for cells in stream.blocks():
+        for cells, checked in ahead:
             part = _check_and_store(
                 session,
                 InputTable(cells=cells, sha256="", kind=stream.kind),
@@ -431,6 +579,7 @@ def _import_stream(
                 allow_unusual=allow_unusual,
                 today=today,
                 forced=[],
+                checked=checked,
             )
             total.rows += len(cells)
             total.added += part.added
@@ -442,10 +591,12 @@ def _import_stream(
         if stream.unusual:
             raise _ReadWhole
     except (InputRejected, _ReadWhole):
+        ahead.close()
         if savepoint is not None:
             savepoint.rollback()
         return None
     except BaseException:
+        ahead.close()
         if savepoint is not None and savepoint.is_active:
             savepoint.rollback()
         raise
@@ -934,13 +1085,32 @@ SLIP_WINDOW_DAYS = 14
 def _single_nerve_visits(batch: MeasurementBatch, written: pd.DataFrame) -> Keyed:
     """A visit of one nerve (one side of one nerve, motor and/or sensory) is imported, with a warning: the
     criteria sets need several nerves, so it may be part of a study exported in pieces."""
-    nerves = batch.nerve_tests.drop_duplicates(["patient", "visit_date", "nerve", "side"])
-    counts = nerves.groupby(["patient", "visit_date"]).agg(
-        count=("nerve", "size"), nerve=("nerve", "first"), side=("side", "first")
-    )
-    single = written.merge(
-        counts[counts["count"] == 1].reset_index(), on=["patient", "visit_date"], how="inner"
-    )
+    positions = _written_positions(batch, written)
+    if positions is not None and batch.test_visit is not None:
+        # By position: the distinct (nerve, side) pairs of each visit, counted on integer codes.
+        tests = batch.nerve_tests
+        nerve_codes, nerve_words = pd.factorize(tests["nerve"])
+        side_codes, side_words = pd.factorize(tests["side"])
+        pair = nerve_codes.astype(np.int64) * max(len(side_words), 1) + side_codes
+        width = max(len(nerve_words), 1) * max(len(side_words), 1)
+        distinct = np.unique(batch.test_visit.astype(np.int64) * width + pair)
+        counts = np.bincount(distinct // width, minlength=len(batch.visits))
+        first_test = np.full(len(batch.visits), -1, dtype=np.int64)
+        seen, first_at = np.unique(batch.test_visit, return_index=True)
+        first_test[seen] = first_at
+        chosen = counts[positions] == 1
+        tested = first_test[positions[chosen]]
+        single = written[chosen].assign(
+            nerve=tests["nerve"].to_numpy()[tested], side=tests["side"].to_numpy()[tested]
+        )
+    else:
+        nerves = batch.nerve_tests.drop_duplicates(["patient", "visit_date", "nerve", "side"])
+        counts = nerves.groupby(["patient", "visit_date"]).agg(
+            count=("nerve", "size"), nerve=("nerve", "first"), side=("side", "first")
+        )
+        single = written.merge(
+            counts[counts["count"] == 1].reset_index(), on=["patient", "visit_date"], how="inner"
+        )
     return [
         (
             (row.patient, row.visit_date),
@@ -1038,13 +1208,44 @@ def _fill_or_replace_patients(session: Session, known: pd.DataFrame, *, username
             )
 
 
+def _written_positions(batch: MeasurementBatch, written: pd.DataFrame) -> np.ndarray | None:
+    """The rows of ``batch.visits`` that ``written`` holds (its index, when it was cut from a frame aligned
+    with ``batch.visits``, as :func:`_store_measurements` makes it), else ``None``."""
+    if batch.site_test is None or batch.test_visit is None:
+        return None
+    positions = written.index.to_numpy()
+    if positions.dtype.kind not in "iu" or (len(positions) and positions.max() >= len(batch.visits)):
+        return None
+    own = batch.visits.iloc[positions]
+    if not (
+        np.array_equal(own["patient"].to_numpy(), written["patient"].to_numpy())
+        and np.array_equal(own["visit_date"].to_numpy(), written["visit_date"].to_numpy())
+    ):
+        return None
+    return positions
+
+
 def _insert_nerve_tests(session: Session, batch: MeasurementBatch, written: pd.DataFrame) -> None:
-    """Insert the nerve tests and sites of the written visits (Core executemany: no ORM overhead)."""
+    """Insert the nerve tests and sites of the written visits (Core executemany: no ORM overhead).
+
+    Nerve tests and sites are linked to their visits by the batch's positions (:attr:`MeasurementBatch.
+    site_test`, :attr:`~MeasurementBatch.test_visit`): a merge on the text keys of every site cost more
+    than the rest of this function. Rows are inserted in the batch's order either way.
+    """
     if written.empty:
         return
     key = ["patient", "visit_date"]
     test_key = ["nerve", "side", "modality"]
-    tests = batch.nerve_tests.merge(written, on=key, how="inner")
+    positions = _written_positions(batch, written)
+    if positions is None:
+        tests = batch.nerve_tests.merge(written, on=key, how="inner")
+    else:
+        visit_ids = np.full(len(batch.visits), -1, dtype=np.int64)
+        visit_ids[positions] = written["visit_id"].astype(int).to_numpy()
+        test_visit_ids = visit_ids[batch.test_visit]
+        test_kept = test_visit_ids >= 0
+        tests = batch.nerve_tests[test_kept].reset_index(drop=True)
+        tests["visit_id"] = test_visit_ids[test_kept]
     tests["visit_id"] = tests["visit_id"].astype(int)
     tests["f_absent"] = tests["f_absent"].astype(bool)
     test_columns = [
@@ -1062,7 +1263,17 @@ def _insert_nerve_tests(session: Session, batch: MeasurementBatch, written: pd.D
     _bulk_insert(
         session, NerveTest.__table__, tests.rename(columns={"nerve_test_id": "id"}), ["id", *test_columns]
     )
-    sites = batch.sites.merge(tests[[*key, *test_key, "nerve_test_id"]], on=[*key, *test_key], how="inner")
+    if positions is None:
+        sites = batch.sites.merge(
+            tests[[*key, *test_key, "nerve_test_id"]], on=[*key, *test_key], how="inner"
+        )
+    else:
+        test_ids = np.full(len(batch.nerve_tests), -1, dtype=np.int64)
+        test_ids[np.flatnonzero(test_kept)] = tests["nerve_test_id"].to_numpy()
+        site_test_ids = test_ids[batch.site_test]
+        site_kept = site_test_ids >= 0
+        sites = batch.sites[site_kept].reset_index(drop=True)
+        sites["nerve_test_id"] = site_test_ids[site_kept]
     sites["nerve_test_id"] = sites["nerve_test_id"].astype(int)
     site_columns = [
         "nerve_test_id",

@@ -90,6 +90,10 @@ class MeasurementBatch:
     patients: pd.DataFrame
     unusual: list[Problem] = field(default_factory=list)
     rows: pd.DataFrame | None = None  # every validated row (keys, all values, ``ROW``): to locate a value
+    # Positions, so that the importer links rows without merging on their text keys: the nerve test (row of
+    # ``nerve_tests``) of each site, and the visit (row of ``visits``) of each nerve test.
+    site_test: np.ndarray | None = None
+    test_visit: np.ndarray | None = None
 
 
 def _word_map(words) -> dict[str, str]:
@@ -552,6 +556,9 @@ def _assemble(frame: pd.DataFrame, unusual: list[Problem]) -> MeasurementBatch:
     visits = _first_by_code(frame, visit_code, VISIT_KEY, VISIT_LEVEL)
     patients = _first(frame, ["patient"], PATIENT_LEVEL)
     visits["fingerprint"] = _fingerprints(frame, nerve_tests, visits)
+    # Both codes number their groups 0, 1, 2… in the order of the sorted rows, which are the rows of
+    # ``nerve_tests`` and ``visits``.
+    test_starts = np.flatnonzero(np.r_[True, test_code[1:] != test_code[:-1]])
     return MeasurementBatch(
         sites=frame[TEST_KEY + SITE_VALUES],
         nerve_tests=nerve_tests,
@@ -559,6 +566,8 @@ def _assemble(frame: pd.DataFrame, unusual: list[Problem]) -> MeasurementBatch:
         patients=patients,
         unusual=unusual,
         rows=frame,
+        site_test=test_code,
+        test_visit=visit_code[test_starts],
     )
 
 
