@@ -16,10 +16,6 @@ version (its ``visit_version`` column, else the version this import first read) 
 from __future__ import annotations
 
 import datetime as dt
-import functools
-import queue
-import threading
-from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -373,16 +369,10 @@ def _check_and_store(
     allow_unusual: bool,
     today: dt.date | None,
     forced: list[str],
-    checked: _CheckedMeasurements | None = None,
 ) -> ImportReport:
-    """Validate a table and store it (nothing of the import's own audit event); raises on any problem.
-
-    ``checked``: the measurements of ``table`` already validated (by :func:`_check_measurements`).
-    """
+    """Validate a table and store it (nothing of the import's own audit event); raises on any problem."""
     if table.kind == "measurements":
-        if checked is None:
-            checked = _check_measurements(table.cells, allow_unusual=allow_unusual, today=today)
-        batch, file_versions = checked
+        batch, file_versions = _check_measurements(table.cells, allow_unusual=allow_unusual, today=today)
         report = _store_measurements(
             session,
             batch,
@@ -415,14 +405,11 @@ def _check_and_store(
     return report
 
 
-_CheckedMeasurements = tuple[MeasurementBatch, pd.DataFrame]
-
-
 def _check_measurements(
     cells: pd.DataFrame, *, allow_unusual: bool, today: dt.date | None
-) -> _CheckedMeasurements:
-    """Validate measurement cells: the batch and the ``visit_version`` stated per visit. Reads no database
-    (so that a block can be checked while the previous one is written); raises on any problem."""
+) -> tuple[MeasurementBatch, pd.DataFrame]:
+    """Validate measurement cells: the batch and the ``visit_version`` stated per visit (no database
+    read); raises on any problem."""
     cells, stated, version_problems = _stated_versions(cells)
     try:
         batch = validate_measurements(cells, allow_unusual=allow_unusual, today=today)
@@ -481,71 +468,6 @@ class _ReadWhole(Exception):
     """A streamed file turned out to need the whole-file import (see :func:`_import_stream`)."""
 
 
-class _Ahead:
-    """The blocks of a stream, each read (and, with ``check``, validated) in a thread of its own one block
-    ahead of the caller, which meanwhile writes the previous block: the database's work on a block (SQLite's
-    B-tree inserts, PostgreSQL's COPY on the server) overlaps Python's on the next, as both drivers release
-    the GIL while they wait. ``check`` must not touch the database. Iterating gives ``(cells, checked)``;
-    an exception of the thread (a block's :class:`InputRejected`) is raised where its block would be
-    given. :meth:`close` stops the thread (the stream is left unread) and waits for it.
-    """
-
-    _END = object()
-
-    def __init__(self, blocks: Iterator[pd.DataFrame], check: Callable[[pd.DataFrame], Any] | None) -> None:
-        self._blocks, self._check = blocks, check
-        self._queue: queue.Queue = queue.Queue(maxsize=1)
-        self._stop = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="import-read-ahead", daemon=True)
-        self._thread.start()
-
-    def _put(self, item: Any) -> bool:
-        while not self._stop.is_set():
-            try:
-                self._queue.put(item, timeout=0.1)
-                return True
-            except queue.Full:
-                continue
-        return False
-
-    def _run(self) -> None:
-        try:
-            for cells in self._blocks:
-                checked = self._check(cells) if self._check is not None else None
-                if not self._put((cells, checked, None)):
-                    return
-        except BaseException as error:  # given to the caller with the block it belongs to
-            self._put((None, None, error))
-            return
-        finally:
-            if self._stop.is_set():
-                close = getattr(self._blocks, "close", None)
-                if close is not None:
-                    close()
-        self._put(self._END)
-
-    def __iter__(self) -> Iterator[tuple[pd.DataFrame, Any]]:
-        while True:
-            item = self._queue.get()
-            if item is self._END:
-                self._thread.join()  # the stream's last state (unusual, sha256) is final
-                return
-            cells, checked, error = item
-            if error is not None:
-                self._thread.join()
-                raise error
-            yield cells, checked
-
-    def close(self) -> None:
-        self._stop.set()
-        while self._thread.is_alive():
-            try:
-                self._queue.get(timeout=0.1)
-            except queue.Empty:
-                pass
-        self._thread.join()
-
-
 def _import_stream(
     session: Session,
     stream: TableStream,
@@ -563,12 +485,8 @@ def _import_stream(
     savepoint = None if dry_run else session.begin_nested()
     total = ImportReport(kind=stream.kind, rows=0, dry_run=dry_run)
     keyed: list[tuple[tuple, Problem]] = []
-    check = None
-    if stream.kind == "measurements":
-        check = functools.partial(_check_measurements, allow_unusual=allow_unusual, today=today)
-    ahead = _Ahead(stream.blocks(), check)
     try:
-        for cells, checked in ahead:
+        for cells in stream.blocks():
             part = _check_and_store(
                 session,
                 InputTable(cells=cells, sha256="", kind=stream.kind),
@@ -579,7 +497,6 @@ def _import_stream(
                 allow_unusual=allow_unusual,
                 today=today,
                 forced=[],
-                checked=checked,
             )
             total.rows += len(cells)
             total.added += part.added
@@ -591,12 +508,10 @@ def _import_stream(
         if stream.unusual:
             raise _ReadWhole
     except (InputRejected, _ReadWhole):
-        ahead.close()
         if savepoint is not None:
             savepoint.rollback()
         return None
     except BaseException:
-        ahead.close()
         if savepoint is not None and savepoint.is_active:
             savepoint.rollback()
         raise
