@@ -34,13 +34,17 @@ def _uniform(comparator: str | np.ndarray, shape: tuple[int, ...]):
     comparators = np.asarray(comparator, dtype=object)
     if comparators.ndim == 0:
         return comparators.item()
+    # A broadcast view is read-only even over a writable array: only a read-only column (the threshold
+    # lookups', shared within an evaluation) may have its scan remembered.
+    shared = not comparators.flags.writeable
     comparators = np.broadcast_to(comparators, shape)
     if comparators.size:
         head = comparators.flat[0]
-        # The threshold lookups share their comparator columns within an evaluation: scanned once each.
-        if isinstance(head, str) and memo.by_content(
-            "uniform", (comparators,), lambda: bool((comparators == head).all())
-        ):
+
+        def same() -> bool:
+            return bool((comparators == head).all())
+
+        if isinstance(head, str) and (memo.by_content("uniform", (comparators,), same) if shared else same()):
             return head
     return comparators
 
@@ -77,7 +81,12 @@ def margin(values: np.ndarray, thresholds: np.ndarray, comparator: str | np.ndar
     v, t = np.asarray(values, dtype=float), np.asarray(thresholds, dtype=float)
     comparators = _uniform(comparator, v.shape)
     if isinstance(comparators, np.ndarray):
-        upward = memo.by_content("upward", (comparators,), lambda: np.isin(comparators, ["ge", "gt"]))
+        shared = isinstance(comparator, np.ndarray) and not comparator.flags.writeable  # as in _uniform
+
+        def up() -> np.ndarray:
+            return np.isin(comparators, ["ge", "gt"])
+
+        upward = memo.by_content("upward", (comparators,), up) if shared else up()
         return quantise_array(np.where(upward, t - v, v - t))
     return quantise_array(t - v if comparators in ("ge", "gt") else v - t)
 
