@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import csv
 import datetime as dt
+from pathlib import Path
 
 import openpyxl
 import pytest
@@ -33,6 +34,15 @@ def _count(sessions, model) -> int:
 def _demo_rows() -> list[dict[str, str]]:
     with open(DEMO / "measurements.csv", encoding="utf-8", newline="") as handle:
         return list(csv.DictReader(handle))
+
+
+def _write_rows(path: Path, rows: list[dict[str, str]]) -> Path:
+    """Rows of the measurements file written back as CSV, header from the first row."""
+    with open(path, "w", encoding="utf-8", newline="") as handle:
+        writer = csv.DictWriter(handle, fieldnames=list(rows[0]))
+        writer.writeheader()
+        writer.writerows(rows)
+    return path
 
 
 def _clinical_fingerprint(engine) -> str:
@@ -105,11 +115,7 @@ def test_reordered_and_reformatted_rows_are_the_same_content(db_url, engine, tmp
         if row["latency_ms"]:
             row["latency_ms"] = f"{float(row['latency_ms']):.3f}"
         row["side"] = row["side"].upper()[0]
-    path = tmp_path / "reordered.csv"
-    with open(path, "w", encoding="utf-8", newline="") as handle:
-        writer = csv.DictWriter(handle, fieldnames=list(rows[0]))
-        writer.writeheader()
-        writer.writerows(rows)
+    path = _write_rows(tmp_path / "reordered.csv", rows)
     code, out, err = run_cli(capsys, "--db", db_url, "import", str(path))
     assert code == 0, err
     assert "29 unchanged" in out
@@ -126,11 +132,7 @@ def test_changed_visit_needs_replace_and_keeps_history(db_url, engine, sessions,
     )
     old_latency = float(rows[target]["latency_ms"])
     rows[target]["latency_ms"] = f"{old_latency + 0.2:.2f}"
-    path = tmp_path / "amended.csv"
-    with open(path, "w", encoding="utf-8", newline="") as handle:
-        writer = csv.DictWriter(handle, fieldnames=list(rows[0]))
-        writer.writeheader()
-        writer.writerows(rows)
+    path = _write_rows(tmp_path / "amended.csv", rows)
 
     before = fingerprint(engine)
     code, _, err = run_cli(capsys, "--db", db_url, "import", str(path))
@@ -299,11 +301,7 @@ def test_text_with_backslashes_and_missing_values_is_stored_as_written(db_url, s
     for row in visit_rows:
         row["recording_site"] = "apb\\adm\\N"
         row["temperature_c"] = ""
-    path = tmp_path / "measurements.csv"
-    with open(path, "w", encoding="utf-8", newline="") as handle:
-        writer = csv.DictWriter(handle, fieldnames=list(visit_rows[0]))
-        writer.writeheader()
-        writer.writerows(visit_rows)
+    path = _write_rows(tmp_path / "measurements.csv", visit_rows)
     code, _, err = run_cli(capsys, "--db", db_url, "import", str(path))
     assert code == 0, err
     with sessions() as session:
