@@ -31,9 +31,9 @@ from conftest import fingerprint, run_cli
 from tracker.db.models import LimitSet, NerveTest
 from tracker.errors import InputRejected, TrackerError
 from tracker.services import input_limits
+from tracker.services.importing.measurements_check import RECORDING_SITE_CHARS
 from tracker.services.input_limits import InputLimits, excerpt, from_environment
 from tracker.services.limit_sets import import_limit_set, validate_limits
-from tracker.services.measurement_file import RECORDING_SITE_CHARS
 from tracker.services.tables import parse_table, read_bounded, read_table
 
 HEADER = [

@@ -8,7 +8,7 @@ import pytest
 from conftest import DEMO
 from tracker.errors import InputRejected
 from tracker.services import tables
-from tracker.services.measurement_file import validate_measurements
+from tracker.services.importing.measurements_check import validate_measurements
 
 HEADER = "patient,visit_date,nerve,side,modality,site_order,distance_mm,latency_ms,amplitude_mv\n"
 

@@ -13,7 +13,7 @@ from tracker.db.models import NerveTest, StimulationSite, Visit, VisitRevision, 
 from tracker.domain import catalogue
 from tracker.errors import Problem
 from tracker.services.access import audit
-from tracker.services.measurement_file import (
+from tracker.services.importing.measurements_check import (
     NERVE_LEVEL,
     SITE_VALUES,
     VISIT_KEY,

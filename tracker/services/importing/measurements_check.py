@@ -22,7 +22,7 @@ from tracker.domain.vocabulary import ABSENT_WORDS, DIAGNOSES, PHENOTYPES, SEXES
 from tracker.errors import InputRejected, Problem
 from tracker.services import checks
 from tracker.services.checks import Collector
-from tracker.services.clinical_file import python_dates
+from tracker.services.importing.clinical_check import python_dates
 from tracker.services.input_limits import guarded
 from tracker.services.tables import ROW
 

@@ -20,7 +20,12 @@ from tracker.domain.vocabulary import SEXES
 from tracker.errors import InputRejected
 from tracker.services import checks
 from tracker.services.checks import Collector
-from tracker.services.clinical_file import KnownPatients, duplicates, python_dates, unknown_patients
+from tracker.services.importing.clinical_check import (
+    KnownPatients,
+    duplicates,
+    python_dates,
+    unknown_patients,
+)
 from tracker.services.input_limits import guarded
 from tracker.services.tables import ROW
 
@@ -44,7 +49,8 @@ def validate_patients(
 
     Dates are ``YYYY-MM-DD`` and not after ``today``; a birth date lies in the plausible birth-year range and
     agrees with a ``birth_year`` on the same row; the onset is not before the birth date. ``known_patients``:
-    as for :func:`tracker.services.clinical_file.validate_treatments` (a patients file adds no patient).
+    as for :func:`tracker.services.importing.clinical_check.validate_treatments` (a patients file adds no
+    patient).
     """
     today = today or dt.date.today()
     collect = Collector(cells)

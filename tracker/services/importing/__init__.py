@@ -39,22 +39,24 @@ from tracker.db.models import (
     utc_now,
 )
 from tracker.errors import InputRejected, Problem
+
+# history as a module, its functions looked up when called: history imports measurements_check from this
+# package, so importing history first runs this package while history is still half loaded.
+from tracker.services import history
 from tracker.services.access import audit
-from tracker.services.clinical_file import SCORE_KEY, TREATMENT_KEY, validate_scores, validate_treatments
-from tracker.services.history import (
-    describe_changes,
-    keep_history,
-    last_changes,
-    shown_value,
-    stored_fingerprints,
+from tracker.services.importing.clinical_check import (
+    SCORE_KEY,
+    TREATMENT_KEY,
+    validate_scores,
+    validate_treatments,
 )
-from tracker.services.input_limits import guarded
-from tracker.services.measurement_file import (
+from tracker.services.importing.measurements_check import (
     VISIT_KEY,
     MeasurementBatch,
     validate_measurements,
 )
-from tracker.services.patient_file import IDENTITY_VALUES, RECORD_VALUES, validate_patients
+from tracker.services.importing.patients_check import IDENTITY_VALUES, RECORD_VALUES, validate_patients
+from tracker.services.input_limits import guarded
 from tracker.services.rows import chunks as _chunks
 from tracker.services.rows import clean as _clean
 from tracker.services.tables import ROW, InputTable, TableStream, open_stream, read_table
@@ -625,7 +627,7 @@ def _version_conflicts(
             late.append((row, stored, based_on, from_file))
     if not late:
         return [], {}
-    who = last_changes(session, [int(row.visit_id) for row, *_ in late])
+    who = history.last_changes(session, [int(row.visit_id) for row, *_ in late])
     problems, overridden = [], {}
     for row, stored, based_on, from_file in late:
         visit = f"the visit of {row.patient} on {row.visit_date.isoformat()}"
@@ -781,13 +783,13 @@ def _store_measurements(
     is_stored = visits["visit_id"].notna()
     unknown = is_stored & (visits["db_fingerprint"] == "")
     if unknown.any():  # stored before fingerprints existed (or after a downgrade): compute from the rows
-        recomputed = stored_fingerprints(session, [int(v) for v in visits.loc[unknown, "visit_id"]])
+        recomputed = history.stored_fingerprints(session, [int(v) for v in visits.loc[unknown, "visit_id"]])
         visits.loc[unknown, "db_fingerprint"] = visits.loc[unknown, "visit_id"].map(recomputed)
     unchanged = is_stored & (visits["db_fingerprint"] == visits["fingerprint"])
     changed = is_stored & ~unchanged
     forced_visits: dict[int, dict[str, Any]] = {}
     if not replace:
-        conflicts += describe_changes(session, visits[changed], batch)
+        conflicts += history.describe_changes(session, visits[changed], batch)
     else:
         late, forced_visits = _version_conflicts(
             session, visits, changed, base, force=force, forced=forced, lock=not dry_run
@@ -877,7 +879,7 @@ def _write_measurements(
 
     replaced_ids = [int(v) for v in visits.loc[changed, "visit_id"]]
     if replaced_ids:
-        keep_history(session, visits[changed], username=username, forced=forced_visits)
+        history.keep_history(session, visits[changed], username=username, forced=forced_visits)
         for part in _chunks(replaced_ids):
             session.execute(delete(NerveTest).where(NerveTest.visit_id.in_(part)))
         columns = [
@@ -1287,7 +1289,8 @@ def _store_records(
                             column,
                             None,
                             f"differs from the stored {kind[:-1]} of {r['patient']} ({record}): "
-                            f"{column.replace('_', ' ')} {shown_value(stored)} → {shown_value(given)}{unit}; "
+                            f"{column.replace('_', ' ')} {history.shown_value(stored)} → "
+                            f"{history.shown_value(given)}{unit}; "
                             "import with --replace to replace it",
                         )
                     )
@@ -1413,8 +1416,9 @@ def _store_patients(
                     )
                 else:
                     message = (
-                        f"patient {code} is stored with {RECORD_WORDS[column]} {shown_value(stored)}, "
-                        f"the file gives {shown_value(given)}; import with --replace to replace it"
+                        f"patient {code} is stored with {RECORD_WORDS[column]} "
+                        f"{history.shown_value(stored)}, the file gives {history.shown_value(given)}; "
+                        "import with --replace to replace it"
                     )
                 conflicts.append(Problem(change.row, column, None, message))
                 continue
