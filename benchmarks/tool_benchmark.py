@@ -21,7 +21,8 @@ Measured in one run (progress on stderr, the table on stdout):
 * ``ncs-tracker check SYN-TARGET`` (one visit, saved) against ``ncs-tracker show SYN-TARGET``: wall
   time of the whole command as a subprocess, medians of ``--runs`` alternating runs;
 * the criteria engine alone: all six sets over every visit in one pass, in memory, against loading the
-  rows it reads (``load_frames``) in the same process — as ``benchmarks/criteria_benchmark.py``;
+  rows it reads (``load_frames``) in the same process — as ``benchmarks/criteria_benchmark.py``; both with
+  their user and system CPU time (system time: mostly the kernel handing the process fresh memory pages);
 * export (``--level nerve --format csv``) and response (``cohort_response``: every patient): time per
   visit or patient, large against small — as
   ``benchmarks/export_memory_benchmark.py`` and ``benchmarks/response_benchmark.py``;
@@ -81,6 +82,25 @@ def _peak_mb() -> float:
     import resource
 
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def _cpu() -> tuple[float, float]:
+    """(user, system) CPU seconds of this process so far."""
+    import resource
+
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    return usage.ru_utime, usage.ru_stime
+
+
+def _cpu_since(start: tuple[float, float]) -> dict[str, float]:
+    """User and system CPU seconds since ``start``. System time here is mostly the kernel giving the process
+    new memory pages (first touch), which grows with the memory a step allocates, not with its Python work."""
+    user, system = _cpu()
+    return {"user": user - start[0], "system": system - start[1]}
+
+
+def cpu_text(cpu: dict[str, float]) -> str:
+    return f"user {cpu['user']:.2f} + system {cpu['system']:.2f} s"
 
 
 def _cli(args: list[str]) -> None:
@@ -152,13 +172,15 @@ def _load(url: str, with_engine: bool) -> dict:
     try:
         with make_session_factory(engine)() as session:
             _info, limits = resolve(session, None)
-            started = time.perf_counter()
+            started, cpu = time.perf_counter(), _cpu()
             visits, tests, sites = load_frames(session)
             report = {"seconds": time.perf_counter() - started, "visits": len(visits), "sites": len(sites)}
+            report["cpu"] = _cpu_since(cpu)
         if with_engine:
-            started = time.perf_counter()
+            started, cpu = time.perf_counter(), _cpu()
             results = criteria_engine.evaluate(visits, tests, sites, limits)
             report["engine_seconds"] = time.perf_counter() - started
+            report["engine_cpu"] = _cpu_since(cpu)
             report["sets"] = len(results)
         return report
     finally:
@@ -549,7 +571,10 @@ def measure(
     load = run_child("load", large)
     progress(f"load: {load['seconds']:.2f} s ({load['visits']:,} visits)")
     in_memory = run_child("engine", large)
-    progress(f"engine: load {in_memory['seconds']:.2f} s, six sets {in_memory['engine_seconds']:.2f} s")
+    progress(
+        f"engine: load {in_memory['seconds']:.2f} s ({cpu_text(in_memory['cpu'])}), "
+        f"six sets {in_memory['engine_seconds']:.2f} s ({cpu_text(in_memory['engine_cpu'])})"
+    )
     evaluate = run_child("evaluate", large)
     progress(f"evaluate: {evaluate['seconds']:.2f} s")
     size = databases.size_bytes(large)
@@ -601,8 +626,8 @@ def measure(
         ),
         Row(
             "criteria engine (6 sets, in memory)",
-            f"{in_memory['engine_seconds']:.2f} s",
-            f"load the rows {in_memory['seconds']:.2f} s",
+            f"{in_memory['engine_seconds']:.2f} s (CPU {cpu_text(in_memory['engine_cpu'])})",
+            f"load the rows {in_memory['seconds']:.2f} s (CPU {cpu_text(in_memory['cpu'])})",
             in_memory["engine_seconds"] / in_memory["seconds"],
             2,
         ),
