@@ -507,14 +507,16 @@ def test_a_writer_that_skips_the_lock_meets_a_refusal_naming_the_visit(
     refusal is turned into a message naming the visit, and nothing of the file is written."""
     from tracker.db.session import make_engine, make_session_factory
     from tracker.errors import InputRejected
-    from tracker.services import importing
+    from tracker.services.importing import measurements_store
 
     path = _visit_file(tmp_path / "same.csv")
-    monkeypatch.setattr(importing, "take_write_lock", lambda session, **_: None)
-    original = importing._write_measurements
+    # Patched where _store_measurements looks them up when it runs.
+    monkeypatch.setattr(measurements_store, "take_write_lock", lambda session, **_: None)
+    original = measurements_store._write_measurements
 
     def other_import_first(*args, **kwargs):
-        monkeypatch.setattr(importing, "_write_measurements", original)  # the other import writes as usual
+        # the other import writes as usual
+        monkeypatch.setattr(measurements_store, "_write_measurements", original)
         other = make_engine(db_url)
         try:
             _import_in_process(make_session_factory(other), path)
@@ -522,7 +524,7 @@ def test_a_writer_that_skips_the_lock_meets_a_refusal_naming_the_visit(
             other.dispose()
         return original(*args, **kwargs)
 
-    monkeypatch.setattr(importing, "_write_measurements", other_import_first)
+    monkeypatch.setattr(measurements_store, "_write_measurements", other_import_first)
     with pytest.raises(InputRejected) as refused:
         _import_in_process(sessions, path)
     assert (
