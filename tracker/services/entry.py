@@ -35,7 +35,7 @@ from tracker.domain.labels import column_label, nerve_words, words
 from tracker.domain.vocabulary import SIDE_ALIASES
 from tracker.errors import InputRejected, Problem
 from tracker.services.importing import ImportReport, import_table
-from tracker.services.importing.measurements_check import AMPLITUDES, OPTIONAL, REQUIRED
+from tracker.services.importing.measurements_columns import AMPLITUDES, OPTIONAL, REQUIRED
 from tracker.services.records import patient_record
 from tracker.services.tables import parse_table
 

@@ -13,14 +13,9 @@ from tracker.db.models import NerveTest, StimulationSite, Visit, VisitRevision, 
 from tracker.domain import catalogue
 from tracker.errors import Problem
 from tracker.services.access import audit
-from tracker.services.importing.measurements_check import (
-    NERVE_LEVEL,
-    SITE_VALUES,
-    VISIT_KEY,
-    VISIT_LEVEL,
-    MeasurementBatch,
-    fingerprints_of,
-)
+from tracker.services.importing.fingerprints import fingerprints_of
+from tracker.services.importing.measurements_check import MeasurementBatch
+from tracker.services.importing.measurements_columns import NERVE_LEVEL, SITE_VALUES, VISIT_KEY, VISIT_LEVEL
 from tracker.services.rows import chunks as _chunks
 from tracker.services.rows import clean as _clean
 from tracker.services.tables import ROW

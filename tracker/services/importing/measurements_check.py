@@ -3,12 +3,14 @@
 Everything is checked before anything is written: every problem is collected with its row and column.
 Plausibility ranges come from ``reference/plausibility.csv``; the velocity range may be waived with
 ``allow_unusual`` (the waived findings are returned so that the import records them).
+
+Cells are checked here; the checks across rows are in :mod:`.measurements_groups`, the column names in
+:mod:`.measurements_columns`, the visit fingerprint in :mod:`.fingerprints`.
 """
 
 from __future__ import annotations
 
 import datetime as dt
-import hashlib
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -16,60 +18,28 @@ import pandas as pd
 
 from tracker.db.models import NerveTest
 from tracker.domain import catalogue
-from tracker.domain.conduction import quantise_array
 from tracker.domain.plausibility import ranges
 from tracker.domain.vocabulary import ABSENT_WORDS, DIAGNOSES, PHENOTYPES, SEXES, SIDE_ALIASES, YES_NO
 from tracker.errors import InputRejected, Problem
 from tracker.services import checks
 from tracker.services.checks import Collector
 from tracker.services.importing.clinical_check import python_dates
+from tracker.services.importing.fingerprints import _fingerprints
+from tracker.services.importing.measurements_columns import (
+    AMPLITUDES,
+    KNOWN,
+    NERVE_LEVEL,
+    PATIENT_LEVEL,
+    REQUIRED,
+    SITE_VALUES,
+    TEST_KEY,
+    VISIT_KEY,
+    VISIT_LEVEL,
+)
+from tracker.services.importing.measurements_groups import _group_checks
 from tracker.services.input_limits import guarded
 from tracker.services.tables import ROW
 
-REQUIRED = ["patient", "visit_date", "nerve", "side", "modality", "site_order", "distance_mm", "latency_ms"]
-AMPLITUDES = ["amplitude_mv", "amplitude_uv"]
-OPTIONAL = [
-    "site",
-    "peak_latency_ms",
-    "duration_ms",
-    "area_mvms",
-    "temperature_c",
-    "lff_hz",
-    "f_latency_ms",
-    "f_persistence_pct",
-    "recording_site",
-    "height_cm",
-    "sex",
-    "birth_year",
-    "diagnosis",
-    "phenotype",
-    "wrist_entrapment",
-]
-KNOWN = REQUIRED + AMPLITUDES + OPTIONAL
-NERVE_LEVEL = [
-    "temperature_c",
-    "lff_hz",
-    "f_latency_ms",
-    "f_absent",
-    "f_persistence_pct",
-    "recording_site",
-    "wrist_entrapment",
-]
-VISIT_LEVEL = ["height_cm", "diagnosis", "phenotype"]
-PATIENT_LEVEL = ["sex", "birth_year"]
-TEST_KEY = ["patient", "visit_date", "nerve", "side", "modality"]
-VISIT_KEY = ["patient", "visit_date"]
-SITE_VALUES = [
-    "site_order",
-    "label",
-    "distance_mm",
-    "latency_ms",
-    "peak_latency_ms",
-    "amplitude_mv",
-    "amplitude_uv",
-    "duration_ms",
-    "area_mvms",
-]
 # Free text stored in a column of bounded length is checked against that length here, in validation, so that
 # a dry run and the import agree on SQLite (which stores any length) and PostgreSQL (which refuses).
 RECORDING_SITE_CHARS: int = NerveTest.__table__.c.recording_site.type.length
@@ -149,62 +119,6 @@ def _site_labels(collect: Collector, nerve: pd.Series, modality: pd.Series) -> p
             + (", ".join(sorted({catalogue.canonical_site(n, m, k) for k in known})) or "none listed"),
         )
     return result
-
-
-def _plain(value: object) -> str:
-    """A value as a person would write it: 33 not np.float64(33.0), absent not True."""
-    if isinstance(value, (bool, np.bool_)):
-        return "yes" if value else "no"
-    if isinstance(value, (float, np.floating)):
-        return f"{float(value):g}"
-    return str(value)
-
-
-def _consistency(
-    collect: Collector, frame: pd.DataFrame, group: np.ndarray, columns: list[str], level: str
-) -> None:
-    """Values of a nerve-, visit- or patient-level column must agree on every row that states them."""
-    all_counts = frame[columns].groupby(group).nunique(dropna=True)
-    for column in columns:
-        series = frame[column]
-        counts = all_counts[column]
-        for group_id in counts.index[counts.to_numpy() > 1]:
-            members = np.flatnonzero(group == group_id)
-            stated = members[series.iloc[members].notna().to_numpy()]
-            shown = ", ".join(f"row {collect.rows[i]}: {_plain(series.iloc[i])}" for i in stated)
-            source_column = "f_latency_ms" if column == "f_absent" else column
-            collect.add_one(
-                int(collect.rows[stated[-1]]),
-                source_column,
-                None,
-                f"rows of the same {level} disagree ({shown}); a {level}-level value must be the same on "
-                "every row",
-            )
-
-
-def _f_wave_words_and_numbers(collect: Collector, frame: pd.DataFrame, group: np.ndarray) -> None:
-    """'absent' on one row of a nerve test and a minimal F-wave latency on another also disagree."""
-    number = frame["f_latency_ms"].notna().to_numpy()
-    word = frame["f_absent"].notna().to_numpy()
-    has_number = pd.Series(number).groupby(group).transform("any").to_numpy()
-    has_word = pd.Series(word).groupby(group).transform("any").to_numpy()
-    for group_id in np.unique(group[has_number & has_word]):
-        stated = np.flatnonzero((group == group_id) & (number | word))
-        shown = ", ".join(
-            f"row {collect.rows[i]}: {'absent' if word[i] else _plain(frame['f_latency_ms'].iloc[i])}"
-            for i in stated
-        )
-        collect.add_one(
-            int(collect.rows[stated[-1]]),
-            "f_latency_ms",
-            None,
-            f"rows of the same nerve test disagree ({shown}); a nerve test-level value must be the same on "
-            "every row",
-        )
-
-
-def _group_ids(frame: pd.DataFrame, keys: list[str]) -> np.ndarray:
-    return frame.groupby(keys, sort=False, dropna=False).ngroup().to_numpy()
 
 
 def validate_measurements(
@@ -420,114 +334,6 @@ def validate_measurements(
     return _assemble(frame, unusual)
 
 
-def _group_checks(
-    collect: Collector, frame: pd.DataFrame, keys_ok: np.ndarray, allow_unusual: bool, limits
-) -> None:
-    """Checks that involve several rows: duplicates, site sequence, agreement, latencies, velocities."""
-    if keys_ok.all():  # the usual case: no copy of the table
-        valid, sub = frame, Collector(collect.cells)
-    else:
-        valid = frame[keys_ok]
-        offset = np.flatnonzero(keys_ok)  # position in the full table
-        sub = Collector(collect.cells.iloc[offset].reset_index(drop=True))  # shows the cells as written
-    sub.problems = collect.problems
-
-    test_group = _group_ids(valid, TEST_KEY)
-    site_key = pd.DataFrame({"test": test_group, "order": valid["site_order"].to_numpy()})
-    duplicated = site_key.duplicated(keep=False).to_numpy()
-    if duplicated.any():
-        dup = valid[duplicated]
-        for _, rows in dup.groupby(TEST_KEY + ["site_order"], sort=False)[ROW]:
-            listed = ", ".join(str(r) for r in rows)
-            collect.add_one(
-                int(rows.iloc[-1]),
-                "site_order",
-                None,
-                f"the same nerve test and site_order appear on rows {listed}",
-            )
-
-    orders = valid.groupby(test_group)["site_order"]
-    expected = orders.transform("count").to_numpy()
-    highest = orders.transform("max").to_numpy()
-    gap = (highest != expected) & ~duplicated
-    sub.add(
-        gap & (valid["site_order"].to_numpy() == highest),
-        "site_order",
-        "site orders of this nerve test are not 1, 2, 3… without gaps",
-    )
-
-    _consistency(sub, valid, test_group, NERVE_LEVEL, "nerve test")
-    _f_wave_words_and_numbers(sub, valid, test_group)
-    _consistency(sub, valid, _group_ids(valid, VISIT_KEY), VISIT_LEVEL, "visit")
-    _consistency(sub, valid, _group_ids(valid, ["patient"]), PATIENT_LEVEL, "patient")
-
-    # Consecutive sites of one nerve test: latencies grow proximally; velocities are plausible.
-    order = np.lexsort((valid["site_order"].to_numpy(), test_group))
-    g = test_group[order]
-    latency = valid["latency_ms"].to_numpy()[order]
-    distance = valid["distance_mm"].to_numpy()[order]
-    same_test = np.r_[False, g[1:] == g[:-1]]
-    previous_latency = np.r_[np.nan, latency[:-1]]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        difference = quantise_array(latency - previous_latency)
-        not_growing = same_test & (difference <= 0)
-        velocity = quantise_array(np.where(same_test & (difference > 0), distance / difference, np.nan))
-    mask = np.zeros(len(valid), dtype=bool)
-    mask[order[not_growing]] = True
-    sub.add(
-        mask,
-        "latency_ms",
-        "the latency is not longer than at the previous (more distal) site; latencies grow proximally",
-    )
-
-    modality = valid["modality"].to_numpy()[order]
-    sensory_first = (modality == "sensory") & ~same_test
-    with np.errstate(invalid="ignore", divide="ignore"):
-        sensory_velocity = quantise_array(np.where(sensory_first, distance / latency, np.nan))
-    for values, rule_name, what in (
-        (velocity, "motor_velocity_m_per_s", "segment conduction velocity"),
-        (sensory_velocity, "sensory_velocity_m_per_s", "sensory conduction velocity"),
-    ):
-        rule = limits[rule_name]
-        distance_ok = ~limits["distance_mm"].outside(distance) & ~np.isnan(distance)
-        outside = rule.outside(values) & distance_ok
-        if not outside.any():
-            continue
-        mask = np.zeros(len(valid), dtype=bool)
-        mask[order[outside]] = True
-        message = (
-            f"{what} would be {{v}} m/s, outside {rule.describe()}: most likely a distance unit error "
-            "(cm written instead of mm?) or a wrong latency"
-        )
-        velocities = np.round(values[np.argsort(order)], 1)
-        written = sub.cells["distance_mm"].to_numpy()
-        target = sub.problems if not allow_unusual else collect.__dict__.setdefault("unusual", [])
-        for index in np.flatnonzero(mask):
-            target.append(
-                Problem(
-                    int(sub.rows[index]),
-                    "distance_mm",
-                    str(written[index]),
-                    message.format(v=f"{velocities[index]:g}")
-                    + ("" if allow_unusual else "; if the value is real, import with --allow-unusual"),
-                )
-            )
-
-    # F-wave minimal latency must exceed the distal (site 1) motor latency of the same nerve test.
-    f_latency = valid.groupby(test_group)["f_latency_ms"].transform("first").to_numpy()
-    distal = valid["site_order"].to_numpy() == 1
-    with np.errstate(invalid="ignore"):
-        too_short = distal & (f_latency <= valid["latency_ms"].to_numpy())
-    if too_short.any():
-        shown = pd.Series(np.where(np.isnan(f_latency), "", f_latency.astype(str)))
-        sub.add(
-            too_short,
-            "f_latency_ms",
-            "the minimal F-wave latency is not longer than the distal motor latency",
-            values=shown,
-        )
-
-
 def _sorted(frame: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
     """``frame`` sorted by ``keys`` (ascending, stable), like ``sort_values`` but on integer codes."""
     codes = [pd.factorize(frame[k], sort=True)[0] for k in keys]
@@ -580,79 +386,4 @@ def _first_by_code(
     values = frame[columns].groupby(code, sort=True).first().reset_index(drop=True)
     result[columns] = values
     result[ROW] = frame[ROW].groupby(code, sort=True).min().to_numpy()
-    return result
-
-
-def fingerprints_of(sites: pd.DataFrame, nerve_tests: pd.DataFrame, visits: pd.DataFrame) -> list[str]:
-    """Fingerprints of visits given as tables shaped like :class:`MeasurementBatch` (e.g. read back from the
-    database), in the order of ``visits``."""
-    sites = sites.sort_values(TEST_KEY + ["site_order"], kind="stable").reset_index(drop=True)
-    nerve_tests = nerve_tests.sort_values(TEST_KEY, kind="stable").reset_index(drop=True)
-    return _fingerprints(sites, nerve_tests, visits)
-
-
-SITE_TEXT = ["nerve", "side", "modality", "label"]
-SITE_NUMBERS = [c for c in SITE_VALUES if c != "label"]
-TEST_TEXT = ["nerve", "side", "modality", "recording_site"]
-TEST_NUMBERS = [c for c in NERVE_LEVEL if c != "recording_site"]
-VISIT_TEXT = ["diagnosis", "phenotype"]
-VISIT_NUMBERS = ["height_cm"]
-
-
-def _number_matrix(frame: pd.DataFrame, columns: list[str]) -> np.ndarray:
-    """Columns as little-endian float64 (booleans 1/0), NaN replaced by 0 with a separate missing mask."""
-    values = np.empty((len(frame), len(columns)), dtype="<f8")
-    for index, column in enumerate(columns):
-        series = frame[column]
-        if series.dtype.kind in "iuf":
-            values[:, index] = series.to_numpy(dtype=float)
-            continue
-        if series.dtype == object or series.dtype == bool:
-            series = (
-                series.map({True: 1.0, False: 0.0}) if column in ("f_absent", "wrist_entrapment") else series
-            )
-        values[:, index] = pd.to_numeric(series, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
-    missing = np.isnan(values)
-    values[missing] = 0.0
-    return np.concatenate([values, missing.astype("<f8")], axis=1)
-
-
-def _text_lines(frame: pd.DataFrame, columns: list[str]) -> list[str]:
-    """Each row's words joined by ``|`` (built once per distinct combination: files repeat them)."""
-    if frame.empty:
-        return []
-    codes = frame.groupby(columns, sort=False, dropna=False).ngroup().to_numpy()
-    first_rows = pd.Series(np.arange(len(frame))).groupby(codes).first().to_numpy()
-    table = frame[columns].iloc[first_rows].astype(object).to_numpy()
-    words = np.array(["|".join("" if pd.isna(v) else str(v) for v in row) for row in table], dtype=object)
-    return words[codes].tolist()
-
-
-def _fingerprints(frame: pd.DataFrame, nerve_tests: pd.DataFrame, visits: pd.DataFrame) -> list[str]:
-    """SHA-256 of each visit's measured content, independent of row order and of which row held a
-    nerve- or visit-level value. Numbers enter as their exact IEEE-754 bytes, words as UTF-8 text.
-
-    ``frame`` must be sorted by nerve test and site order, ``nerve_tests`` by nerve test, ``visits`` by
-    visit: then each visit's rows are contiguous in all three.
-    """
-    site_numbers = _number_matrix(frame, SITE_NUMBERS)
-    site_text = _text_lines(frame, SITE_TEXT)
-    test_numbers = _number_matrix(nerve_tests, TEST_NUMBERS)
-    test_text = _text_lines(nerve_tests, TEST_TEXT)
-    visit_numbers = _number_matrix(visits, VISIT_NUMBERS)
-    visit_text = _text_lines(visits, VISIT_TEXT)
-    site_counts = frame.groupby(VISIT_KEY, sort=True).size().to_numpy()
-    test_counts = nerve_tests.groupby(VISIT_KEY, sort=True).size().to_numpy()
-    result = []
-    site_at = test_at = 0
-    for index in range(len(visits)):
-        sites, tests = int(site_counts[index]), int(test_counts[index])
-        digest = hashlib.sha256(visit_text[index].encode("utf-8"))
-        digest.update(visit_numbers[index].tobytes())
-        digest.update("\n".join(test_text[test_at : test_at + tests]).encode("utf-8"))
-        digest.update(test_numbers[test_at : test_at + tests].tobytes())
-        digest.update("\n".join(site_text[site_at : site_at + sites]).encode("utf-8"))
-        digest.update(site_numbers[site_at : site_at + sites].tobytes())
-        result.append(digest.hexdigest())
-        site_at, test_at = site_at + sites, test_at + tests
     return result

@@ -19,7 +19,8 @@ from tracker.errors import InputRejected, Problem
 from tracker.services import history
 from tracker.services.access import audit
 from tracker.services.importing.bulk_insert import _allocate_ids, _bulk_insert, _records
-from tracker.services.importing.measurements_check import VISIT_KEY, MeasurementBatch
+from tracker.services.importing.measurements_check import MeasurementBatch
+from tracker.services.importing.measurements_columns import VISIT_KEY
 from tracker.services.importing.nerve_tests import _insert_nerve_tests
 from tracker.services.importing.report import ImportReport
 from tracker.services.importing.stored import _PATIENTS, _VISITS, _existing_patients, _existing_visits

@@ -17,7 +17,8 @@ from tracker.errors import Problem
 # history as a module, its functions looked up when called: history imports measurements_check from
 # this package, so importing history first runs this package while history is still half loaded.
 from tracker.services import history
-from tracker.services.importing.measurements_check import VISIT_KEY, MeasurementBatch
+from tracker.services.importing.measurements_check import MeasurementBatch
+from tracker.services.importing.measurements_columns import VISIT_KEY
 from tracker.services.importing.stored import _existing_patients, _existing_visits
 from tracker.services.rows import chunks as _chunks
 from tracker.services.tables import ROW
