@@ -125,3 +125,38 @@ def test_patient_without_visits_and_outcome_pages(demo_url):
                     assert _text(chosen.rows) == _text(wanted)
     finally:
         engine.dispose()
+
+
+def test_each_latest_outcome_is_read_from_the_covering_index_on_sqlite(demo_url):
+    """SQLite without statistics (no ANALYZE) would look the evaluation up by the unique index and read its
+    row (several kB of trace) for ``outcome``; the list names the covering index, so both of its queries
+    that read saved evaluations end in the index (EXPLAIN QUERY PLAN: "COVERING INDEX <name>")."""
+    from sqlalchemy import event
+
+    from tracker.db.models import EVALUATION_OUTCOME_INDEX
+
+    engine = make_engine(demo_url)
+    if engine.dialect.name != "sqlite":
+        engine.dispose()
+        pytest.skip("INDEXED BY is SQLite's; PostgreSQL's plan depends on table sizes and statistics")
+    statements: list[tuple[str, tuple]] = []
+
+    def keep(connection, cursor, statement, parameters, context, executemany) -> None:  # noqa: ANN001
+        statements.append((statement, parameters))
+
+    event.listen(engine, "before_cursor_execute", keep)
+    try:
+        with make_session_factory(engine)() as session:
+            page = patient_page(session, criteria=None, page_rows=2)
+        event.remove(engine, "before_cursor_execute", keep)
+        assert page.total == 6 and len(page.rows) == 2
+        reading = [(s, p) for s, p in statements if "evaluations" in s]
+        assert len(reading) == 2  # the count per outcome, then the page's rows
+        with engine.connect() as connection:
+            for statement, parameters in reading:
+                plan = connection.exec_driver_sql("EXPLAIN QUERY PLAN " + statement, parameters).all()
+                steps = [row[-1] for row in plan if "evaluation" in row[-1]]
+                assert steps, plan
+                assert all(f"USING COVERING INDEX {EVALUATION_OUTCOME_INDEX} " in s for s in steps), steps
+    finally:
+        engine.dispose()

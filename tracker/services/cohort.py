@@ -12,9 +12,12 @@ from typing import Any
 
 import pandas as pd
 from sqlalchemy import ColumnElement, Select, case, func, literal, select, true
+from sqlalchemy.ext.compiler import compiles
 from sqlalchemy.orm import Session, aliased
+from sqlalchemy.sql.compiler import SQLCompiler
+from sqlalchemy.sql.selectable import Alias
 
-from tracker.db.models import Evaluation, Patient, Treatment, Visit
+from tracker.db.models import EVALUATION_OUTCOME_INDEX, Evaluation, Patient, Treatment, Visit
 from tracker.services.evaluation import DEFAULT_CRITERIA, FALLBACK_CRITERIA
 from tracker.services.export import neutralise_text
 from tracker.services.follow_up import treatment_label
@@ -113,6 +116,30 @@ class PatientPage:
     outcomes: list[str]
 
 
+class _OutcomeIndexed(Alias):
+    """``evaluations`` under another name, read through the covering index of (visit, criteria, limits,
+    outcome) on SQLite (``INDEXED BY``). Without statistics (no ANALYZE) SQLite prefers the unique index of
+    the first three columns, then reads each row (about 1 kB with its trace) for its ``outcome``; with the
+    hint the look-up ends in the index: the patient list's count over 5,000 invented patients took half
+    the time (16.6 -> 8.4 ms). SQLAlchemy's ``with_hint`` renders nothing for SQLite, hence this alias."""
+
+    inherit_cache = True
+
+
+@compiles(_OutcomeIndexed)
+def _render_alias(element: _OutcomeIndexed, compiler: SQLCompiler, **kw: Any) -> str:
+    return compiler.visit_alias(element, **kw)
+
+
+@compiles(_OutcomeIndexed, "sqlite")
+def _render_alias_indexed(element: _OutcomeIndexed, compiler: SQLCompiler, **kw: Any) -> str:
+    sql = compiler.visit_alias(element, **kw)
+    # In a FROM clause only (SQLite syntax: ``table AS name INDEXED BY index``), not where it is named.
+    return (
+        f"{sql} INDEXED BY {EVALUATION_OUTCOME_INDEX}" if kw.get("asfrom") and not kw.get("ashint") else sql
+    )
+
+
 def patient_page(
     session: Session,
     *,
@@ -143,9 +170,10 @@ def patient_page(
         )
     else:
         chosen = literal(criteria)
+    outcome_from, saved_outcome, on_outcome = _saved_outcome(session, latest, chosen, limit_set_id)
     word = case(
         (latest.id.is_(None), literal("no visits")),
-        else_=func.coalesce(Evaluation.outcome, literal(NOT_EVALUATED)),
+        else_=func.coalesce(saved_outcome, literal(NOT_EVALUATED)),
     )
     filters = []
     if search.strip():
@@ -158,18 +186,13 @@ def patient_page(
             select(*columns)
             .select_from(Patient)
             .outerjoin(latest_from, on_latest)
-            .outerjoin(
-                Evaluation,
-                (Evaluation.visit_id == latest.id)
-                & (Evaluation.criteria_id == chosen)
-                & (Evaluation.limit_set_id == limit_set_id),
-            )
+            .outerjoin(outcome_from, on_outcome)
             .where(*filters)
         )
 
     # One pass gives both the outcomes present (for the filter) and the counts (for the page count). The
     # only step that reads every patient: per patient one index step to the latest visit, its row, and its
-    # evaluation by the (visit, criteria, limits) unique index; nothing per patient reaches Python.
+    # outcome from the (visit, criteria, limits, outcome) index; nothing per patient reaches Python.
     counts = dict(session.execute(joined(word, func.count()).group_by(word)).all())
     outcomes = sorted(counts)
     total = counts.get(outcome, 0) if outcome else sum(counts.values())
@@ -238,6 +261,39 @@ def _latest_visit(session: Session) -> tuple[Any, Any, ColumnElement[bool]]:
         latest,
         latest,
         latest.id == newest_first.with_only_columns(Visit.id).correlate(Patient).scalar_subquery(),
+    )
+
+
+def _saved_outcome(
+    session: Session, latest: Any, chosen: ColumnElement[str], limit_set_id: int
+) -> tuple[Any, ColumnElement[str], ColumnElement[bool]]:
+    """The saved outcome of each patient's latest visit by the chosen criteria and ``limit_set_id``: what to
+    left-join after :func:`_latest_visit`, the ``outcome`` column, and the join condition. Per patient one
+    step in the (visit, criteria, limits, outcome) index, which holds the outcome itself.
+
+    PostgreSQL: a LATERAL subquery, so that the planner looks each one up rather than hashing every saved
+    evaluation of the limit set. On a database just written, without statistics (autovacuum off, no
+    ANALYZE), the hash read all 166,000 rows (165 MB of heap) to count 5,000 invented patients: 130-210 ms,
+    against about 20 ms for the look-ups. Until VACUUM marks the pages all-visible, an index-only look-up
+    still visits the row's heap page. SQLite: an outer join
+    read through the covering index (``_OutcomeIndexed``)."""
+    if session.get_bind().dialect.name == "postgresql":
+        found = (
+            select(Evaluation.outcome)
+            .where(
+                Evaluation.visit_id == latest.id,
+                Evaluation.criteria_id == chosen,
+                Evaluation.limit_set_id == limit_set_id,
+            )
+            .limit(1)  # the unique (visit, criteria, limits) key: one row at most
+            .lateral("saved_outcome")
+        )
+        return found, found.c.outcome, true()
+    saved = aliased(Evaluation, _OutcomeIndexed._construct(Evaluation.__table__, name="saved_evaluation"))
+    return (
+        saved,
+        saved.outcome,
+        (saved.visit_id == latest.id) & (saved.criteria_id == chosen) & (saved.limit_set_id == limit_set_id),
     )
 
 
