@@ -68,3 +68,18 @@ def test_the_invented_courses_follow_their_diagnosis():
     target = synthetic.followed_patient()
     severity = [s for _, s in target.visits]
     assert severity[8] < severity[0] and severity[20] > severity[15] and severity[-1] < severity[20]
+
+
+def test_the_step_profiles_run_on_a_tiny_cohort():
+    """benchmarks/profile_steps.py (where import and the engine spend their time): every listing printed."""
+    command = [sys.executable, str(ROOT / "benchmarks" / "profile_steps.py"), "--backend", "sqlite"]
+    command += ["--patients", "3", "--top", "3"]
+    finished = subprocess.run(command, capture_output=True, text=True, cwd=ROOT, timeout=600)
+    assert finished.returncode == 0, finished.stderr[-3000:]
+    out = finished.stdout
+    assert "import under cProfile: wall" in out
+    assert "engine, six sets under cProfile: wall" in out
+    assert out.count("our functions by cumulative time") == 2
+    assert "tracker/criteria/engine.py" in out
+    lines = [line for line in out.splitlines() if "+ foreign keys on (the real tables)" in line]
+    assert len(lines) == 1 and re.search(r"\d+\.\d\d s", lines[0])
