@@ -14,7 +14,8 @@ version (its ``visit_version`` column, else the version this import first read) 
 
 Modules, by concept: :mod:`.api` (entry points), :mod:`.dispatch` (one table checked and stored by its kind;
 the import's audit event), :mod:`.blocks` (a long file in blocks); the file checks
-:mod:`.measurements_check`, :mod:`.clinical_check` (treatments, scores), :mod:`.patients_check`; storing
+:mod:`.measurements_check` (with :mod:`.measurements_columns`, :mod:`.measurements_groups` — checks across
+rows — and :mod:`.fingerprints`), :mod:`.clinical_check` (treatments, scores), :mod:`.patients_check`; storing
 :mod:`.measurements_store` (with :mod:`.nerve_tests`, :mod:`.visit_versions`, :mod:`.visit_warnings`),
 :mod:`.clinical_store`, :mod:`.patients_store`; shared :mod:`.report`, :mod:`.stored`, :mod:`.bulk_insert`.
 Other code imports from this package only the names below.

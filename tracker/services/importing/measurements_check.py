@@ -334,13 +334,6 @@ def validate_measurements(
     return _assemble(frame, unusual)
 
 
-def _sorted(frame: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
-    """``frame`` sorted by ``keys`` (ascending, stable), like ``sort_values`` but on integer codes."""
-    codes = [pd.factorize(frame[k], sort=True)[0] for k in keys]
-    order = np.lexsort(codes[::-1])
-    return frame.iloc[order].reset_index(drop=True)
-
-
 def _first(frame: pd.DataFrame, keys: list[str], columns: list[str]) -> pd.DataFrame:
     """One row per group: the first stated value of each column, and the group's first file row."""
     grouped = frame.groupby(keys, sort=True, dropna=False)
