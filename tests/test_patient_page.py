@@ -129,8 +129,9 @@ def test_patient_without_visits_and_outcome_pages(demo_url):
 
 def test_each_latest_outcome_is_read_from_the_covering_index_on_sqlite(demo_url):
     """SQLite without statistics (no ANALYZE) would look the evaluation up by the unique index and read its
-    row (several kB of trace) for ``outcome``; the list names the covering index, so both of its queries
-    that read saved evaluations end in the index (EXPLAIN QUERY PLAN: "COVERING INDEX <name>")."""
+    row (about 1 kB with its compressed trace) for ``outcome``; the list names the covering index, so both
+    of its queries that read saved evaluations end in the index (EXPLAIN QUERY PLAN: "COVERING INDEX
+    <name>")."""
     from sqlalchemy import event
 
     from tracker.db.models import EVALUATION_OUTCOME_INDEX

@@ -275,8 +275,8 @@ def _saved_outcome(
     evaluation of the limit set. On a database just written, without statistics (autovacuum off, no
     ANALYZE), the hash read all 166,000 rows (165 MB of heap) to count 5,000 invented patients: 130-210 ms,
     against about 20 ms for the look-ups. Until VACUUM marks the pages all-visible, an index-only look-up
-    still visits the row's heap page. SQLite: an outer join
-    read through the covering index (``_OutcomeIndexed``)."""
+    still visits the row's heap page. SQLite: an outer join read through the covering index
+    (``_OutcomeIndexed``)."""
     if session.get_bind().dialect.name == "postgresql":
         found = (
             select(Evaluation.outcome)
