@@ -27,6 +27,7 @@ import argparse
 import contextlib
 import cProfile
 import io
+import os
 import pstats
 import resource
 import sys
@@ -36,15 +37,21 @@ from pathlib import Path
 
 import tool_benchmark as bench
 
-OURS = "/tracker/"
+import tracker
+
+# Our code: files under the installed ``tracker`` package (a plain "/tracker/" would also match a checkout
+# that lives in a folder of that name, and with it every library of its virtual environment).
+OURS = os.path.dirname(tracker.__file__) + os.sep  # as profiled code names its files
 
 
 def _usage() -> tuple[float, float, int]:
+    """(user CPU s, system CPU s, minor page faults) of this process so far."""
     usage = resource.getrusage(resource.RUSAGE_SELF)
     return usage.ru_utime, usage.ru_stime, usage.ru_minflt
 
 
 def _since(start: tuple[float, float, int], wall: float) -> str:
+    """Wall time, CPU time and page faults since ``start`` (from :func:`_usage`), in words."""
     user, system, faults = _usage()
     return (
         f"wall {wall:.2f} s, CPU user {user - start[0]:.2f} s + system {system - start[1]:.2f} s, "
@@ -53,9 +60,10 @@ def _since(start: tuple[float, float, int], wall: float) -> str:
 
 
 def _short(function: tuple[str, int, str]) -> str:
+    """A profiled function as ``tracker/module.py:line name``, or ``file.py:line name`` for a library."""
     path, line, name = function
-    if OURS in path:
-        return f"tracker/{path.split(OURS, 1)[1]}:{line} {name}"
+    if path.startswith(OURS):
+        return f"tracker/{path[len(OURS) :]}:{line} {name}"
     if path == "~":
         return name
     return f"{Path(path).name}:{line} {name}"
@@ -66,7 +74,7 @@ def report(profile: cProfile.Profile, top: int) -> str:
     and all functions by own time (where the processor actually is: often pandas or NumPy internals)."""
     table = pstats.Stats(profile).stats  # type: ignore[attr-defined]
     lines = ["", f"  our functions by cumulative time (top {top}; calls, own s, cumulative s):"]
-    ours = sorted((item for item in table.items() if OURS in item[0][0]), key=lambda i: -i[1][3])[:top]
+    ours = sorted((i for i in table.items() if i[0][0].startswith(OURS)), key=lambda i: -i[1][3])[:top]
     lines += [f"    {p:>9,}  {own:7.3f}  {cum:7.3f}  {_short(f)}" for f, (_c, p, own, cum, _) in ours]
     lines += ["", f"  all functions by own time (top {top}; calls, own s, cumulative s):"]
     ranked = sorted(table.items(), key=lambda item: -item[1][2])[:top]
@@ -75,6 +83,7 @@ def report(profile: cProfile.Profile, top: int) -> str:
 
 
 def profile_import(url: str, files: list[str], top: int) -> str:
+    """``ncs-tracker import`` of ``files`` into ``url`` under cProfile: timings and the two listings."""
     from tracker.cli import main
 
     profile = cProfile.Profile()
@@ -93,6 +102,7 @@ def profile_import(url: str, files: list[str], top: int) -> str:
 
 
 def profile_engine(url: str, top: int) -> str:
+    """Load every visit of ``url``, then all six criteria sets over them under cProfile (nothing saved)."""
     from tracker.criteria import engine as criteria_engine
     from tracker.db.session import make_engine, make_session_factory
     from tracker.services.evaluation import load_frames
@@ -129,13 +139,18 @@ PG_KEYS = {
 
 
 def schema_cost_postgresql(url: str) -> str:
+    """Server time of ``COPY`` of the stored nerve tests and sites into new tables of growing shape."""
     import psycopg
     from sqlalchemy.engine import make_url
 
     parsed = make_url(url)
     lines = ["COPY of the stored rows into new tables of growing shape (best of 2):"]
     with psycopg.connect(
-        host=parsed.host, port=parsed.port, user=parsed.username, dbname=parsed.database
+        host=parsed.host,
+        port=parsed.port,
+        user=parsed.username,
+        password=parsed.password,
+        dbname=parsed.database,
     ) as connection:
         for table, key in PG_KEYS.items():
             buffer = io.BytesIO()
@@ -163,6 +178,7 @@ def schema_cost_postgresql(url: str) -> str:
 
 
 def schema_cost_sqlite(url: str, scratch: Path) -> str:
+    """Time of ``executemany`` of the stored nerve tests and sites into new tables of growing shape."""
     import sqlite3
 
     source = sqlite3.connect(url.removeprefix("sqlite:///"))
@@ -208,6 +224,7 @@ def schema_cost_sqlite(url: str, scratch: Path) -> str:
 
 
 def main() -> None:
+    """Generate the invented cohort, run the chosen steps, print their listings; drop every database."""
     parser = argparse.ArgumentParser(description=(__doc__ or "").splitlines()[0])
     parser.add_argument("--backend", choices=["sqlite", "postgresql"], default="sqlite")
     parser.add_argument("--patients", type=int, default=500)

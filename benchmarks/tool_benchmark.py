@@ -100,6 +100,7 @@ def _cpu_since(start: tuple[float, float]) -> dict[str, float]:
 
 
 def cpu_text(cpu: dict[str, float]) -> str:
+    """User and system CPU seconds of :func:`_cpu_since`, in words."""
     return f"user {cpu['user']:.2f} + system {cpu['system']:.2f} s"
 
 

@@ -18,7 +18,8 @@ the import's audit event), :mod:`.blocks` (a long file in blocks); the file chec
 rows — and :mod:`.fingerprints`), :mod:`.clinical_check` (treatments, scores), :mod:`.patients_check`; storing
 :mod:`.measurements_store` (with :mod:`.nerve_tests`, :mod:`.visit_versions`, :mod:`.visit_warnings`),
 :mod:`.clinical_store`, :mod:`.patients_store`; shared :mod:`.report`, :mod:`.stored`, :mod:`.bulk_insert`.
-Other code imports from this package only the names below.
+Callers use the names below; ``history`` and ``entry`` also take the column lists, ``MeasurementBatch``
+and ``fingerprints_of`` from the modules that define them.
 """
 
 from tracker.services.importing.api import import_file, import_table
