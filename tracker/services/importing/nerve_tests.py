@@ -9,6 +9,7 @@ from sqlalchemy.orm import Session
 from tracker.db.models import NerveTest, StimulationSite
 from tracker.services.importing.bulk_insert import _allocate_ids, _bulk_insert
 from tracker.services.importing.measurements_check import MeasurementBatch
+from tracker.services.importing.measurements_columns import SITE_VALUES
 
 
 def _written_positions(batch: MeasurementBatch, written: pd.DataFrame) -> np.ndarray | None:
@@ -78,16 +79,4 @@ def _insert_nerve_tests(session: Session, batch: MeasurementBatch, written: pd.D
         sites = batch.sites[site_kept].reset_index(drop=True)
         sites["nerve_test_id"] = site_test_ids[site_kept]
     sites["nerve_test_id"] = sites["nerve_test_id"].astype(int)
-    site_columns = [
-        "nerve_test_id",
-        "site_order",
-        "label",
-        "distance_mm",
-        "latency_ms",
-        "peak_latency_ms",
-        "amplitude_mv",
-        "amplitude_uv",
-        "duration_ms",
-        "area_mvms",
-    ]
-    _bulk_insert(session, StimulationSite.__table__, sites, site_columns)
+    _bulk_insert(session, StimulationSite.__table__, sites, ["nerve_test_id", *SITE_VALUES])
